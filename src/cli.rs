@@ -1,0 +1,59 @@
+//! The command line, defined once: clap derive, doc comments are the `--help` text.
+
+use std::path::PathBuf;
+
+use clap::{Args, Parser, Subcommand};
+
+use crate::import::Overrides;
+use crate::report::Format;
+
+/// How much of an ONNX model runs on a tile-array accelerator, where to cut it, and what
+/// the cut costs. Exit status: 0 ok, 1 a policy was violated, 2 tilecut could not run.
+#[derive(Parser, Debug)]
+#[command(name = "tilecut", version, about)]
+pub struct Cli {
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+#[derive(Subcommand, Debug)]
+pub enum Command {
+    /// Read a model: opsets, inputs and outputs, op counts, parameters, MACs, activation
+    /// bytes, tensors whose shapes stay unknown, and warnings.
+    Inspect(InspectArgs),
+}
+
+/// Options shared by every command that reads a model.
+#[derive(Args, Debug, Clone)]
+pub struct ModelArgs {
+    /// The ONNX model file.
+    pub model: PathBuf,
+    /// Fix a symbolic dimension, e.g. `--dim batch=1` (repeatable).
+    #[arg(long = "dim", value_name = "NAME=VALUE")]
+    pub dims: Vec<String>,
+    /// Fix an input's shape, e.g. `--input image=1x3x224x224` (repeatable).
+    #[arg(long = "input", value_name = "NAME=SHAPE")]
+    pub inputs: Vec<String>,
+}
+
+impl ModelArgs {
+    pub fn overrides(&self) -> Result<Overrides, crate::error::SettingError> {
+        let mut o = Overrides::default();
+        for d in &self.dims {
+            o.add_dim(d)?;
+        }
+        for i in &self.inputs {
+            o.add_input(i)?;
+        }
+        Ok(o)
+    }
+}
+
+#[derive(Args, Debug)]
+pub struct InspectArgs {
+    #[command(flatten)]
+    pub model: ModelArgs,
+    /// Output format.
+    #[arg(long, value_enum, default_value_t = Format::Table)]
+    pub format: Format,
+}

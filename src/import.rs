@@ -1,0 +1,766 @@
+//! From the wire format to the IR: values and nodes wired by name, model-local functions
+//! expanded, subgraphs imported as node bodies, nodes sorted topologically.
+
+use std::collections::{BTreeMap, BTreeSet, BinaryHeap, HashMap};
+use std::path::{Path, PathBuf};
+use std::sync::Arc;
+
+use crate::diag::{codes, Diagnostic};
+use crate::error::{ReadError, SettingError};
+use crate::ir::{
+    Attr, AttrValue, Body, DType, Dim, Fact, Graph, Model, Node, NodeCost, NodeId, Shape, Storage,
+    TensorData, Value, ValueId, ValueKind, ValueType,
+};
+use crate::onnx::load::{resolve_external, LoadedModel};
+use crate::onnx::{self, TensorProto};
+
+/// Subgraphs (If/Loop/Scan bodies) nested deeper than this are refused instead of recursed
+/// into. Real models nest two or three levels; the bound keeps hostile files from exhausting
+/// the stack.
+pub const MAX_SUBGRAPH_DEPTH: usize = 16;
+/// Model-local functions calling functions deeper than this are refused (and recursion is).
+pub const MAX_FUNCTION_DEPTH: usize = 8;
+
+/// Shape settings given by the user: `--dim NAME=VALUE` and `--input NAME=AxBxC`.
+#[derive(Clone, Debug, Default)]
+pub struct Overrides {
+    pub dims: BTreeMap<String, u64>,
+    pub inputs: BTreeMap<String, Vec<Dim>>,
+}
+
+impl Overrides {
+    /// Parses `NAME=VALUE` (a non-negative integer).
+    pub fn add_dim(&mut self, text: &str) -> Result<(), SettingError> {
+        let (name, value) = text
+            .split_once('=')
+            .ok_or_else(|| SettingError(format!("--dim `{text}`: expected NAME=VALUE")))?;
+        let v: u64 = value.trim().parse().map_err(|_| {
+            SettingError(format!("--dim `{text}`: `{value}` is not a non-negative integer"))
+        })?;
+        if name.trim().is_empty() {
+            return Err(SettingError(format!("--dim `{text}`: empty name")));
+        }
+        self.dims.insert(name.trim().to_string(), v);
+        Ok(())
+    }
+
+    /// Parses `NAME=1x3x224x224`; a part may also be a symbol name; `NAME=` is a scalar.
+    pub fn add_input(&mut self, text: &str) -> Result<(), SettingError> {
+        let (name, shape) = text
+            .split_once('=')
+            .ok_or_else(|| SettingError(format!("--input `{text}`: expected NAME=AxBxC")))?;
+        if name.is_empty() {
+            return Err(SettingError(format!("--input `{text}`: empty name")));
+        }
+        let mut dims = Vec::new();
+        for part in shape.split(['x', 'X', ',']).filter(|p| !p.is_empty()) {
+            let part = part.trim();
+            if let Ok(v) = part.parse::<u64>() {
+                dims.push(Dim::Known(v));
+            } else if part.starts_with('-') || part.chars().next().is_some_and(|c| c.is_ascii_digit()) {
+                return Err(SettingError(format!(
+                    "--input `{text}`: dim `{part}` is not a non-negative integer or a name"
+                )));
+            } else {
+                dims.push(Dim::sym(part));
+            }
+        }
+        self.inputs.insert(name.to_string(), dims);
+        Ok(())
+    }
+}
+
+/// Imports a decoded model. Structural faults are errors; what is merely unknown or odd
+/// becomes a diagnostic.
+pub fn import(
+    loaded: &LoadedModel,
+    overrides: &Overrides,
+) -> Result<(Model, Vec<Diagnostic>), ReadError> {
+    let proto = &loaded.proto;
+    let mut opsets = BTreeMap::new();
+    for o in &proto.opset_import {
+        let d = if o.domain == "ai.onnx" { String::new() } else { o.domain.clone() };
+        opsets.insert(d, o.version);
+    }
+    let mut cx = Cx {
+        path: &loaded.path,
+        dir: &loaded.dir,
+        functions: proto.functions.iter().map(|f| ((f.domain.clone(), f.name.clone()), f)).collect(),
+        overrides,
+        diags: Vec::new(),
+        used_dims: BTreeSet::new(),
+        used_inputs: BTreeSet::new(),
+    };
+    if opsets.is_empty() {
+        // IR version 1/2 models predate opset_import; the spec says to assume opset 1.
+        opsets.insert(String::new(), 1);
+        cx.diags.push(Diagnostic::new(
+            codes::OPSET_MISSING,
+            "the model imports no opset; assuming default-domain opset 1 (ONNX IR spec)",
+        ));
+    }
+    let graph_proto = proto.graph.as_ref().ok_or_else(|| ReadError::invalid(&loaded.path, "no graph"))?;
+    let (graph, free) = import_graph(&mut cx, graph_proto, 0)?;
+    if let Some((name, reader)) = free.first() {
+        return Err(ReadError::invalid(
+            &loaded.path,
+            format!("node `{reader}` reads tensor `{name}`, which no node, input or initializer defines"),
+        ));
+    }
+    for name in overrides.inputs.keys() {
+        if !cx.used_inputs.contains(name) {
+            return Err(ReadError::invalid(
+                &loaded.path,
+                format!("--input names `{name}`, which is not an input of the model"),
+            ));
+        }
+    }
+    for name in overrides.dims.keys() {
+        if !cx.used_dims.contains(name) {
+            cx.diags.push(Diagnostic::new(
+                codes::OVERRIDE_UNUSED,
+                format!("--dim {name}: no input declares a dim of that name"),
+            ));
+        }
+    }
+    let mut functions: Vec<String> = proto.functions.iter().map(|f| qualified(&f.domain, &f.name)).collect();
+    functions.sort();
+    let model = Model {
+        path: loaded.path.clone(),
+        ir_version: proto.ir_version,
+        producer: format!("{} {}", proto.producer_name, proto.producer_version).trim().to_string(),
+        opsets,
+        graph,
+        functions,
+    };
+    Ok((model, cx.diags))
+}
+
+fn qualified(domain: &str, op: &str) -> String {
+    if domain.is_empty() || domain == "ai.onnx" {
+        op.to_string()
+    } else {
+        format!("{domain}.{op}")
+    }
+}
+
+struct Cx<'a> {
+    path: &'a Path,
+    dir: &'a Path,
+    functions: HashMap<(String, String), &'a onnx::FunctionProto>,
+    overrides: &'a Overrides,
+    diags: Vec<Diagnostic>,
+    used_dims: BTreeSet<String>,
+    used_inputs: BTreeSet<String>,
+}
+
+impl Cx<'_> {
+    fn err(&self, msg: impl Into<String>) -> ReadError {
+        ReadError::invalid(self.path, msg)
+    }
+}
+
+/// A node after function expansion, still in wire form.
+struct FlatNode {
+    proto: onnx::NodeProto,
+    from_function: Option<String>,
+}
+
+/// Free names of a graph: (tensor name, first node reading it).
+type FreeNames = Vec<(String, String)>;
+
+fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Graph, FreeNames), ReadError> {
+    if depth > MAX_SUBGRAPH_DEPTH {
+        return Err(cx.err(format!(
+            "subgraphs nested deeper than {MAX_SUBGRAPH_DEPTH} levels (graph `{}`); refusing to recurse",
+            g.name
+        )));
+    }
+    let flat = expand_functions(cx, &g.node, 0, "")?;
+
+    let mut values: Vec<Value> = Vec::new();
+    let mut names: HashMap<String, ValueId> = HashMap::new();
+    let new_value = |values: &mut Vec<Value>, name: &str, kind: ValueKind, fact: Fact| {
+        values.push(Value {
+            name: name.to_string(),
+            kind,
+            fact,
+            declared: None,
+            producer: None,
+            consumers: Vec::new(),
+            data: None,
+            konst: None,
+        });
+        ValueId(values.len() as u32 - 1)
+    };
+
+    for t in &g.initializer {
+        let data = tensor_data(cx, t)?;
+        if names.contains_key(&t.name) {
+            return Err(cx.err(format!("initializer `{}` is defined twice", t.name)));
+        }
+        let fact = Fact::tensor(data.dtype, Shape::known(&data.dims));
+        let id = new_value(&mut values, &t.name, ValueKind::Initializer, fact);
+        values[id.index()].data = Some(data);
+        names.insert(t.name.clone(), id);
+    }
+    for sp in &g.sparse_initializer {
+        let Some(v) = sp.values.as_ref() else { continue };
+        let dims = non_negative_dims(cx, &v.name, &sp.dims)?;
+        let dtype = DType::from_onnx(v.data_type);
+        if names.contains_key(&v.name) {
+            return Err(cx.err(format!("initializer `{}` is defined twice", v.name)));
+        }
+        let id = new_value(&mut values, &v.name, ValueKind::Initializer, Fact::tensor(dtype, Shape::known(&dims)));
+        values[id.index()].data = Some(TensorData { dtype, dims, storage: Storage::Empty });
+        names.insert(v.name.clone(), id);
+    }
+    let mut inputs = Vec::new();
+    for vi in &g.input {
+        let declared = declared_fact(cx, vi, depth == 0)?;
+        if let Some(&id) = names.get(&vi.name) {
+            // Old IR versions list initializers among the inputs: a weight with a default.
+            values[id.index()].declared = Some(declared);
+            cx.diags.push(
+                Diagnostic::new(
+                    codes::INITIALIZER_AS_INPUT,
+                    "initializer also listed as a graph input (IR < 4 style); treated as a weight",
+                )
+                .at_tensor(&vi.name),
+            );
+            continue;
+        }
+        let id = new_value(&mut values, &vi.name, ValueKind::Input, declared.clone());
+        values[id.index()].declared = Some(declared);
+        names.insert(vi.name.clone(), id);
+        inputs.push(id);
+    }
+
+    // Node outputs, duplicate producers refused.
+    let mut producer_of: HashMap<String, usize> = HashMap::new();
+    for (i, n) in flat.iter().enumerate() {
+        for o in n.proto.output.iter().filter(|o| !o.is_empty()) {
+            if let Some(&other) = producer_of.get(o) {
+                return Err(cx.err(format!(
+                    "tensor `{o}` is produced twice: by node `{}` and by node `{}`",
+                    display_name(&flat[other].proto, other),
+                    display_name(&n.proto, i)
+                )));
+            }
+            if names.contains_key(o) {
+                return Err(cx.err(format!(
+                    "tensor `{o}` is produced by node `{}` but is also a graph input or initializer",
+                    display_name(&n.proto, i)
+                )));
+            }
+            producer_of.insert(o.clone(), i);
+        }
+    }
+
+    // Bodies first: their free names are inputs of the carrying node.
+    let mut bodies_of: Vec<(Vec<Body>, Vec<Attr>, FreeNames)> = Vec::with_capacity(flat.len());
+    for n in &flat {
+        let mut bodies = Vec::new();
+        let mut free: FreeNames = Vec::new();
+        let mut attrs = Vec::with_capacity(n.proto.attribute.len());
+        for a in &n.proto.attribute {
+            let value = attr_value(cx, a, depth, &mut bodies, &mut free)?;
+            attrs.push(Attr { name: a.name.clone(), value });
+        }
+        bodies_of.push((bodies, attrs, free));
+    }
+
+    // Dependencies between nodes, for the topological sort.
+    let mut graph_free: FreeNames = Vec::new();
+    let placeholder = |values: &mut Vec<Value>, names: &mut HashMap<String, ValueId>, name: &str| {
+        if let Some(&id) = names.get(name) {
+            return id;
+        }
+        let id = new_value(values, name, ValueKind::Input, Fact::default());
+        names.insert(name.to_string(), id);
+        id
+    };
+    let mut deps: Vec<Vec<usize>> = vec![Vec::new(); flat.len()];
+    let mut captured: Vec<ValueId> = Vec::new();
+    for (i, n) in flat.iter().enumerate() {
+        let reads = n.proto.input.iter().filter(|s| !s.is_empty()).chain(bodies_of[i].2.iter().map(|f| &f.0));
+        for name in reads {
+            if let Some(&p) = producer_of.get(name) {
+                deps[i].push(p);
+            } else if !names.contains_key(name) {
+                let id = placeholder(&mut values, &mut names, name);
+                captured.push(id);
+                graph_free.push((name.clone(), display_name(&n.proto, i)));
+            }
+        }
+    }
+    let order = topo_order(cx, &flat, &deps)?;
+
+    // Build nodes in that order.
+    let mut used_names: BTreeSet<String> = BTreeSet::new();
+    let mut nodes = Vec::with_capacity(flat.len());
+    let mut bodies_of: Vec<Option<(Vec<Body>, Vec<Attr>, FreeNames)>> = bodies_of.into_iter().map(Some).collect();
+    for &i in &order {
+        let n = &flat[i];
+        let id = NodeId(nodes.len() as u32);
+        let (bodies, attrs, free) = bodies_of[i].take().unwrap_or_default();
+        let mut name = if n.proto.name.is_empty() { generated_name(&n.proto, i) } else { n.proto.name.clone() };
+        if used_names.contains(&name) {
+            let mut k = 2;
+            while used_names.contains(&format!("{name}~{k}")) {
+                k += 1;
+            }
+            name = format!("{name}~{k}");
+        }
+        used_names.insert(name.clone());
+        let mut node_inputs = Vec::with_capacity(n.proto.input.len());
+        for s in &n.proto.input {
+            if s.is_empty() {
+                node_inputs.push(None);
+                continue;
+            }
+            let v = match names.get(s) {
+                Some(&v) => v,
+                None => {
+                    let v = new_value(&mut values, s, ValueKind::Activation, Fact::default());
+                    names.insert(s.clone(), v);
+                    v
+                }
+            };
+            values[v.index()].consumers.push(id);
+            node_inputs.push(Some(v));
+        }
+        let mut node_outputs = Vec::with_capacity(n.proto.output.len());
+        for s in &n.proto.output {
+            if s.is_empty() {
+                node_outputs.push(None);
+                continue;
+            }
+            let v = new_value(&mut values, s, ValueKind::Activation, Fact::default());
+            values[v.index()].producer = Some(id);
+            names.insert(s.clone(), v);
+            node_outputs.push(Some(v));
+        }
+        let mut caps = Vec::new();
+        for (fname, _) in &free {
+            let Some(&v) = names.get(fname) else { continue };
+            if !caps.contains(&v) && !node_inputs.contains(&Some(v)) {
+                values[v.index()].consumers.push(id);
+                caps.push(v);
+            }
+        }
+        nodes.push(Node {
+            name,
+            generated_name: n.proto.name.is_empty(),
+            op_type: n.proto.op_type.clone(),
+            domain: n.proto.domain.clone(),
+            inputs: node_inputs,
+            outputs: node_outputs,
+            attrs,
+            bodies,
+            captures: caps,
+            from_function: n.from_function.clone(),
+            cost: NodeCost::default(),
+            folded: false,
+        });
+    }
+
+    let mut outputs = Vec::new();
+    for vi in &g.output {
+        let declared = declared_fact(cx, vi, false)?;
+        let id = match names.get(&vi.name) {
+            Some(&id) => id,
+            None => {
+                let id = placeholder(&mut values, &mut names, &vi.name);
+                captured.push(id);
+                graph_free.push((vi.name.clone(), format!("graph output of `{}`", g.name)));
+                id
+            }
+        };
+        let v = &mut values[id.index()];
+        if v.producer.is_some() {
+            v.kind = ValueKind::Output;
+        }
+        v.declared = Some(declared);
+        outputs.push(id);
+    }
+    for vi in &g.value_info {
+        if let Some(&id) = names.get(&vi.name) {
+            let declared = declared_fact(cx, vi, false)?;
+            if values[id.index()].declared.is_none() {
+                values[id.index()].declared = Some(declared);
+            }
+        }
+    }
+    for v in &values {
+        if v.kind == ValueKind::Initializer && v.consumers.is_empty() && !outputs.contains(&names[&v.name]) {
+            cx.diags.push(Diagnostic::new(codes::UNUSED_INITIALIZER, "initializer not used by any node").at_tensor(&v.name));
+        }
+    }
+    let graph = Graph {
+        name: g.name.clone(),
+        nodes,
+        values,
+        inputs,
+        outputs,
+        captured,
+    };
+    Ok((graph, graph_free))
+}
+
+fn display_name(n: &onnx::NodeProto, index: usize) -> String {
+    if n.name.is_empty() {
+        generated_name(n, index)
+    } else {
+        n.name.clone()
+    }
+}
+
+/// A name for an unnamed node that does not depend on where it stands in the file: its op
+/// and first output (output names are unique in a valid graph).
+fn generated_name(n: &onnx::NodeProto, index: usize) -> String {
+    match n.output.iter().find(|o| !o.is_empty()) {
+        Some(o) => format!("{}:{}", n.op_type, o),
+        None => format!("{}#{}", n.op_type, index),
+    }
+}
+
+/// Kahn's algorithm, always taking the earliest ready node in file order, so a file already
+/// in order keeps it. A cycle is an error naming its nodes (found with petgraph's SCCs).
+fn topo_order(cx: &Cx, flat: &[FlatNode], deps: &[Vec<usize>]) -> Result<Vec<usize>, ReadError> {
+    let n = flat.len();
+    let mut indegree = vec![0usize; n];
+    let mut users: Vec<Vec<usize>> = vec![Vec::new(); n];
+    for (i, ds) in deps.iter().enumerate() {
+        for &d in ds {
+            indegree[i] += 1;
+            users[d].push(i);
+        }
+    }
+    let mut ready: BinaryHeap<std::cmp::Reverse<usize>> =
+        (0..n).filter(|&i| indegree[i] == 0).map(std::cmp::Reverse).collect();
+    let mut order = Vec::with_capacity(n);
+    while let Some(std::cmp::Reverse(i)) = ready.pop() {
+        order.push(i);
+        for &u in &users[i] {
+            indegree[u] -= 1;
+            if indegree[u] == 0 {
+                ready.push(std::cmp::Reverse(u));
+            }
+        }
+    }
+    if order.len() == n {
+        return Ok(order);
+    }
+    let mut pg = petgraph::graph::DiGraph::<usize, ()>::new();
+    let idx: Vec<_> = (0..n).map(|i| pg.add_node(i)).collect();
+    for (i, ds) in deps.iter().enumerate() {
+        for &d in ds {
+            pg.add_edge(idx[d], idx[i], ());
+        }
+    }
+    let mut cycle: Vec<String> = petgraph::algo::tarjan_scc(&pg)
+        .into_iter()
+        .find(|scc| scc.len() > 1 || pg.contains_edge(scc[0], scc[0]))
+        .unwrap_or_default()
+        .into_iter()
+        .map(|ix| display_name(&flat[pg[ix]].proto, pg[ix]))
+        .collect();
+    cycle.sort();
+    let shown: Vec<String> = cycle.iter().take(8).map(|s| format!("`{s}`")).collect();
+    let more = if cycle.len() > 8 { format!(" and {} more", cycle.len() - 8) } else { String::new() };
+    Err(cx.err(format!("the graph has a cycle through nodes {}{more}", shown.join(", "))))
+}
+
+fn expand_functions(
+    cx: &mut Cx,
+    nodes: &[onnx::NodeProto],
+    depth: usize,
+    stack: &str,
+) -> Result<Vec<FlatNode>, ReadError> {
+    let mut out = Vec::with_capacity(nodes.len());
+    for n in nodes {
+        let key = (n.domain.clone(), n.op_type.clone());
+        let Some(f) = cx.functions.get(&key).copied() else {
+            out.push(FlatNode { proto: n.clone(), from_function: None });
+            continue;
+        };
+        if depth >= MAX_FUNCTION_DEPTH {
+            return Err(cx.err(format!(
+                "model-local functions call each other deeper than {MAX_FUNCTION_DEPTH} levels at `{}` (recursive?)",
+                qualified(&n.domain, &n.op_type)
+            )));
+        }
+        let call = if n.name.is_empty() { generated_name(n, out.len()) } else { n.name.clone() };
+        let mut rename: HashMap<&str, String> = HashMap::new();
+        for (i, formal) in f.input.iter().enumerate() {
+            rename.insert(formal, n.input.get(i).cloned().unwrap_or_default());
+        }
+        for (i, formal) in f.output.iter().enumerate() {
+            rename.insert(formal, n.output.get(i).cloned().unwrap_or_default());
+        }
+        let mut body = Vec::with_capacity(f.node.len());
+        for inner in &f.node {
+            let mut m = inner.clone();
+            let map = |s: &String| -> String {
+                if s.is_empty() {
+                    return String::new();
+                }
+                rename.get(s.as_str()).cloned().unwrap_or_else(|| format!("{call}/{s}"))
+            };
+            m.input = inner.input.iter().map(map).collect();
+            m.output = inner.output.iter().map(map).collect();
+            m.name = format!("{call}/{}", if inner.name.is_empty() { generated_name(inner, 0) } else { inner.name.clone() });
+            m.attribute = Vec::with_capacity(inner.attribute.len());
+            for a in &inner.attribute {
+                if a.ref_attr_name.is_empty() {
+                    m.attribute.push(a.clone());
+                    continue;
+                }
+                let given = n.attribute.iter().find(|x| x.name == a.ref_attr_name);
+                let default = f.attribute_proto.iter().find(|x| x.name == a.ref_attr_name);
+                if let Some(src) = given.or(default) {
+                    let mut b = src.clone();
+                    b.name = a.name.clone();
+                    m.attribute.push(b);
+                }
+            }
+            body.push(m);
+        }
+        let label = qualified(&n.domain, &n.op_type);
+        let inner_stack = format!("{stack}{label}>");
+        for mut flat in expand_functions(cx, &body, depth + 1, &inner_stack)? {
+            flat.from_function.get_or_insert_with(|| call.clone());
+            out.push(flat);
+        }
+    }
+    Ok(out)
+}
+
+fn attr_value(
+    cx: &mut Cx,
+    a: &onnx::AttributeProto,
+    depth: usize,
+    bodies: &mut Vec<Body>,
+    free: &mut FreeNames,
+) -> Result<AttrValue, ReadError> {
+    // Old writers leave `type` UNDEFINED; then the populated field decides.
+    let ty = if a.r#type != 0 {
+        a.r#type
+    } else if a.g.is_some() {
+        5
+    } else if a.t.is_some() {
+        4
+    } else if !a.ints.is_empty() {
+        7
+    } else if !a.floats.is_empty() {
+        6
+    } else if !a.strings.is_empty() {
+        8
+    } else if !a.graphs.is_empty() {
+        10
+    } else if !a.s.is_empty() {
+        3
+    } else if a.f != 0.0 {
+        1
+    } else {
+        2
+    };
+    let body = |cx: &mut Cx, g: &onnx::GraphProto, bodies: &mut Vec<Body>, free: &mut FreeNames| {
+        let (graph, f) = import_graph(cx, g, depth + 1)?;
+        for x in f {
+            if !free.iter().any(|y| y.0 == x.0) {
+                free.push(x);
+            }
+        }
+        bodies.push(Body { attr: a.name.clone(), graph });
+        Ok::<usize, ReadError>(bodies.len() - 1)
+    };
+    Ok(match ty {
+        1 => AttrValue::Float(a.f),
+        2 => AttrValue::Int(a.i),
+        3 => AttrValue::String(String::from_utf8_lossy(&a.s).into_owned()),
+        4 => match &a.t {
+            Some(t) => AttrValue::Tensor(tensor_data(cx, t)?),
+            None => AttrValue::Other,
+        },
+        5 => match &a.g {
+            Some(g) => AttrValue::Graph(body(cx, g, bodies, free)?),
+            None => AttrValue::Other,
+        },
+        6 => AttrValue::Floats(a.floats.clone()),
+        7 => AttrValue::Ints(a.ints.clone()),
+        8 => AttrValue::Strings(a.strings.iter().map(|s| String::from_utf8_lossy(s).into_owned()).collect()),
+        9 => AttrValue::Tensors(a.tensors.iter().map(|t| tensor_data(cx, t)).collect::<Result<_, _>>()?),
+        10 => {
+            let mut ids = Vec::new();
+            for g in &a.graphs {
+                ids.push(body(cx, g, bodies, free)?);
+            }
+            AttrValue::Graphs(ids)
+        }
+        _ => AttrValue::Other,
+    })
+}
+
+fn non_negative_dims(cx: &Cx, name: &str, dims: &[i64]) -> Result<Vec<u64>, ReadError> {
+    dims.iter()
+        .map(|&d| {
+            u64::try_from(d).map_err(|_| cx.err(format!("tensor `{name}` has negative dim {d}")))
+        })
+        .collect()
+}
+
+/// The IR view of a stored tensor; external payloads are located (and checked) but not read.
+fn tensor_data(cx: &mut Cx, t: &TensorProto) -> Result<TensorData, ReadError> {
+    let dims = non_negative_dims(cx, &t.name, &t.dims)?;
+    let dtype = DType::from_onnx(t.data_type);
+    let count = dims.iter().try_fold(1u64, |a, &d| a.checked_mul(d));
+    if count.is_none() {
+        return Err(cx.err(format!("tensor `{}` has dims whose product overflows 64 bits", t.name)));
+    }
+    let storage = if t.is_external() {
+        let get = |k: &str| t.external_data.iter().find(|e| e.key == k).map(|e| e.value.as_str());
+        let location = get("location").unwrap_or("");
+        let parse = |k: &str| -> Result<Option<u64>, ReadError> {
+            match get(k) {
+                None => Ok(None),
+                Some(s) => s.parse::<u64>().map(Some).map_err(|_| {
+                    cx.err(format!("tensor `{}`: external data {k} `{s}` is not a non-negative integer", t.name))
+                }),
+            }
+        };
+        let offset = parse("offset")?.unwrap_or(0);
+        let length = parse("length")?;
+        let (path, present) = resolve_external(cx.dir, location).map_err(|why| ReadError::ExternalData {
+            path: cx.path.to_path_buf(),
+            tensor: t.name.clone(),
+            location: location.to_string(),
+            why,
+        })?;
+        if !present {
+            cx.diags.push(
+                Diagnostic::new(
+                    codes::EXTERNAL_MISSING,
+                    format!("external data file `{location}` is missing; analysis uses the declared dims"),
+                )
+                .at_tensor(&t.name),
+            );
+        }
+        Storage::External { path, offset, length, present }
+    } else if !t.raw_data.is_empty() {
+        Storage::Raw(t.raw_data.clone())
+    } else if !t.float_data.is_empty() {
+        Storage::Fixed32(t.float_data.clone())
+    } else if !t.int32_data.is_empty() {
+        Storage::Varints(t.int32_data.clone())
+    } else if !t.int64_data.is_empty() {
+        Storage::Varints(t.int64_data.clone())
+    } else if !t.uint64_data.is_empty() {
+        Storage::Varints(t.uint64_data.clone())
+    } else if !t.double_data.is_empty() {
+        Storage::Fixed64(t.double_data.clone())
+    } else if !t.string_data.is_empty() {
+        Storage::Strings(t.string_data.len())
+    } else {
+        Storage::Empty
+    };
+    Ok(TensorData { dtype, dims, storage })
+}
+
+fn declared_fact(cx: &mut Cx, vi: &onnx::ValueInfoProto, apply_overrides: bool) -> Result<Fact, ReadError> {
+    let Some(tp) = vi.r#type.as_ref() else { return Ok(Fact::default()) };
+    let mut fact = type_fact(cx, &vi.name, tp)?;
+    if apply_overrides {
+        if let Some(dims) = cx.overrides.inputs.get(&vi.name) {
+            cx.used_inputs.insert(vi.name.clone());
+            fact.shape = Shape::of(dims.clone());
+        }
+        if let Some(dims) = fact.shape.0.as_mut() {
+            for (axis, d) in dims.iter_mut().enumerate() {
+                match d {
+                    Dim::Sym(s) => {
+                        if let Some(&v) = cx.overrides.dims.get(&**s) {
+                            cx.used_dims.insert(s.to_string());
+                            *d = Dim::Known(v);
+                        } else {
+                            cx.diags.push(
+                                Diagnostic::new(
+                                    codes::SYMBOLIC_DIM,
+                                    format!("input dim {axis} is symbolic `{s}`; fix it with --dim {s}=N"),
+                                )
+                                .at_tensor(&vi.name),
+                            );
+                        }
+                    }
+                    Dim::Unknown => cx.diags.push(
+                        Diagnostic::new(
+                            codes::UNKNOWN_DIM,
+                            format!(
+                                "input dim {axis} is missing or -1 (unknown); fix it with --input {}=…",
+                                vi.name
+                            ),
+                        )
+                        .at_tensor(&vi.name),
+                    ),
+                    Dim::Known(_) => {}
+                }
+            }
+        }
+    }
+    Ok(fact)
+}
+
+fn type_fact(cx: &Cx, name: &str, tp: &onnx::TypeProto) -> Result<Fact, ReadError> {
+    use onnx::type_proto::Value as T;
+    Ok(match &tp.value {
+        Some(T::TensorType(t)) => Fact::tensor(DType::from_onnx(t.elem_type), shape_of(cx, name, t.shape.as_ref())?),
+        Some(T::SparseTensorType(t)) => Fact {
+            value_type: ValueType::SparseTensor,
+            dtype: DType::from_onnx(t.elem_type),
+            shape: shape_of(cx, name, t.shape.as_ref())?,
+        },
+        Some(T::SequenceType(s)) => {
+            let inner = match s.elem_type.as_deref() {
+                Some(e) => type_fact(cx, name, e)?,
+                None => Fact::default(),
+            };
+            Fact { value_type: ValueType::Sequence(Box::new(inner)), dtype: None, shape: Shape::unknown() }
+        }
+        Some(T::OptionalType(s)) => {
+            let inner = match s.elem_type.as_deref() {
+                Some(e) => type_fact(cx, name, e)?,
+                None => Fact::default(),
+            };
+            Fact { value_type: ValueType::Optional(Box::new(inner)), dtype: None, shape: Shape::unknown() }
+        }
+        Some(T::MapType(_)) => Fact { value_type: ValueType::Map, dtype: None, shape: Shape::unknown() },
+        None => Fact::default(),
+    })
+}
+
+fn shape_of(cx: &Cx, name: &str, s: Option<&onnx::TensorShapeProto>) -> Result<Shape, ReadError> {
+    use onnx::tensor_shape_proto::dimension::Value as D;
+    let Some(s) = s else { return Ok(Shape::unknown()) };
+    let mut dims = Vec::with_capacity(s.dim.len());
+    for d in &s.dim {
+        dims.push(match &d.value {
+            Some(D::DimValue(v)) if *v >= 0 => Dim::Known(*v as u64),
+            Some(D::DimValue(-1)) => Dim::Unknown,
+            Some(D::DimValue(v)) => {
+                return Err(cx.err(format!("tensor `{name}` declares dim {v}; only -1 (unknown) may be negative")))
+            }
+            Some(D::DimParam(p)) if !p.is_empty() => Dim::Sym(Arc::from(p.as_str())),
+            _ => Dim::Unknown,
+        });
+    }
+    Ok(Shape::of(dims))
+}
+
+/// Where a stored tensor's external file lives, for callers that copy it (split).
+pub fn external_path(data: &TensorData) -> Option<&PathBuf> {
+    match &data.storage {
+        Storage::External { path, .. } => Some(path),
+        _ => None,
+    }
+}

@@ -1,0 +1,347 @@
+//! The inference driver: walks each graph in topological order, loads the small constants
+//! ops need, infers bodies before the node that carries them, folds shape arithmetic, marks
+//! weight-like subgraphs, and costs every node. Unknowns become diagnostics, never guesses.
+
+use std::collections::{BTreeMap, HashMap};
+
+use crate::diag::{codes, Diagnostic};
+use crate::ir::{ConstValue, DType, Fact, Graph, Model, NodeCost, Shape, Storage, ValueId, ValueKind, ValueType};
+use crate::onnx::load::read_external;
+use crate::ops::{self, CostRule, Ctx};
+use crate::values::{self, MAX_DECODE_ELEMENTS};
+
+/// Why a main-graph value's shape is not concrete, by value index.
+pub type UnknownReasons = BTreeMap<ValueId, String>;
+
+/// Infers facts and costs for the whole model in place.
+pub fn infer(model: &mut Model, diags: &mut Vec<Diagnostic>) -> UnknownReasons {
+    let opsets = model.opsets.clone();
+    let mut unknown_ops: BTreeMap<(String, String), (usize, String)> = BTreeMap::new();
+    let mut reasons = UnknownReasons::new();
+    infer_graph(&mut model.graph, &opsets, &HashMap::new(), diags, &mut unknown_ops, Some(&mut reasons));
+    for ((domain, op), (n, first)) in unknown_ops {
+        let q = if domain.is_empty() { op.clone() } else { format!("{domain}.{op}") };
+        diags.push(
+            Diagnostic::new(
+                codes::UNKNOWN_OP,
+                format!("op `{q}` is not known to tilecut ({n} node(s)); its outputs take the file's declared shapes, if any"),
+            )
+            .at_node(&first),
+        );
+    }
+    reasons
+}
+
+type OuterFacts<'a> = HashMap<String, (Fact, Option<ConstValue>, ValueKind)>;
+
+fn load_const(g: &mut Graph, v: ValueId) {
+    let value = &mut g.values[v.index()];
+    if value.konst.is_some() {
+        return;
+    }
+    let Some(data) = &value.data else { return };
+    let Some(n) = data.element_count() else { return };
+    if n > MAX_DECODE_ELEMENTS {
+        return;
+    }
+    value.konst = match &data.storage {
+        Storage::External { path, offset, length, present: true } => {
+            let (Some(dt), Some(bytes)) = (data.dtype, data.bytes()) else { return };
+            if length.is_some_and(|l| l != bytes) {
+                return;
+            }
+            read_external(path, *offset, bytes).ok().and_then(|b| values::decode_raw_bytes(dt, &b, data.dims.clone()))
+        }
+        _ => values::decode(data),
+    };
+}
+
+fn is_const_kind(k: ValueKind) -> bool {
+    matches!(k, ValueKind::Initializer | ValueKind::Constant)
+}
+
+fn infer_graph(
+    g: &mut Graph,
+    opsets: &BTreeMap<String, i64>,
+    outer: &OuterFacts,
+    diags: &mut Vec<Diagnostic>,
+    unknown_ops: &mut BTreeMap<(String, String), (usize, String)>,
+    mut reasons: Option<&mut UnknownReasons>,
+) {
+    // Captured outer values take their facts from outside.
+    for &c in &g.captured.clone() {
+        let name = g.values[c.index()].name.clone();
+        if let Some((f, k, kind)) = outer.get(&name) {
+            let v = &mut g.values[c.index()];
+            v.fact = f.clone();
+            v.konst = k.clone();
+            if is_const_kind(*kind) {
+                v.kind = ValueKind::Constant;
+            }
+        }
+    }
+    for v in &mut g.values {
+        if v.kind == ValueKind::Input {
+            if let Some(d) = &v.declared {
+                v.fact = d.clone();
+            }
+        }
+    }
+    for ni in 0..g.nodes.len() {
+        let slots: Vec<Option<ValueId>> = g.nodes[ni].inputs.clone();
+        for v in slots.iter().flatten().chain(g.nodes[ni].captures.clone().iter()) {
+            load_const(g, *v);
+        }
+        let node = &g.nodes[ni];
+        let opset = crate::ir::opset_of(opsets, &node.domain);
+        let def = ops::lookup(&node.domain, &node.op_type);
+
+        // Bodies first, with this graph's facts visible to them.
+        let mut body_outputs = Vec::new();
+        let mut body_costs = Vec::new();
+        if !node.bodies.is_empty() {
+            let mut scope: OuterFacts = outer.clone();
+            for v in &g.values {
+                scope.insert(v.name.clone(), (v.fact.clone(), v.konst.clone(), v.kind));
+            }
+            let input_facts: Vec<Fact> =
+                node.inputs.iter().map(|s| s.map(|v| g.values[v.index()].fact.clone()).unwrap_or_default()).collect();
+            let op = node.op_type.clone();
+            let num_scan = match node.attr("num_scan_inputs") {
+                Some(crate::ir::AttrValue::Int(n)) => *n as usize,
+                _ => 0,
+            };
+            let mut bodies = std::mem::take(&mut g.nodes[ni].bodies);
+            for b in &mut bodies {
+                seed_body_inputs(&mut b.graph, &op, &input_facts, num_scan);
+                infer_graph(&mut b.graph, opsets, &scope, diags, unknown_ops, None);
+                body_outputs.push(b.graph.outputs.iter().map(|&o| b.graph.values[o.index()].fact.clone()).collect());
+                body_costs.push(graph_cost(&b.graph));
+            }
+            g.nodes[ni].bodies = bodies;
+        }
+
+        let node = &g.nodes[ni];
+        let ctx = Ctx {
+            node,
+            inputs: node.inputs.iter().map(|s| s.map(|v| &g.values[v.index()].fact)).collect(),
+            consts: node.inputs.iter().map(|s| s.and_then(|v| g.values[v.index()].konst.as_ref())).collect(),
+            opset,
+            body_outputs,
+        };
+        let (facts, failure): (Vec<Fact>, Option<String>) = match def {
+            Some(d) => match (d.infer)(&ctx) {
+                Ok(f) => (f, None),
+                Err(e) => (Vec::new(), Some(format!("{} could not be inferred: {e}", node.op_type))),
+            },
+            None => {
+                let e = unknown_ops.entry((node.domain.clone(), node.op_type.clone())).or_insert((0, node.name.clone()));
+                e.0 += 1;
+                (Vec::new(), Some(format!("op `{}` is unknown to tilecut", node.op_type)))
+            }
+        };
+        let folded_values = def.and_then(|d| d.fold).and_then(|f| f(&ctx));
+        let all_const_inputs = node.all_inputs().iter().all(|v| is_const_kind(g.values[v.index()].kind) || g.values[v.index()].konst.as_ref().is_some_and(ConstValue::is_numeric));
+        let cost = node_cost(&ctx, def.map(|d| d.cost), &facts, &body_costs);
+        if let Some(f) = &failure {
+            if def.is_some() {
+                diags.push(Diagnostic::new(codes::SHAPE_FAILED, f.clone()).at_node(&node.name));
+            }
+        }
+        let random = ops::is_random(&node.op_type);
+        let outputs = node.outputs.clone();
+        let node_name = node.name.clone();
+        let fully_folded = folded_values.as_ref().is_some_and(|vals| {
+            vals.len() >= outputs.iter().flatten().count() && vals.iter().all(ConstValue::is_numeric)
+        });
+        let folded = !random && (all_const_inputs || fully_folded);
+        g.nodes[ni].cost = cost;
+        g.nodes[ni].folded = folded;
+
+        for (k, slot) in outputs.iter().enumerate() {
+            let Some(v) = slot else { continue };
+            let inferred = facts.get(k).cloned().unwrap_or_default();
+            let value = &mut g.values[v.index()];
+            let mut fact = inferred.clone();
+            if let Some(decl) = &value.declared {
+                let fact_known = fact.dtype.is_some() && fact.shape.is_concrete();
+                if fact_known && decl.dtype.is_some() && decl.shape.rank().is_some() && !agrees(&fact, decl) {
+                    diags.push(
+                        Diagnostic::new(
+                            codes::SHAPE_DISAGREES,
+                            format!(
+                                "inferred {} {} but the file declares {} {}",
+                                fact.dtype.map(|d| d.name()).unwrap_or("?"),
+                                fact.shape,
+                                decl.dtype.map(|d| d.name()).unwrap_or("?"),
+                                decl.shape
+                            ),
+                        )
+                        .at_node(&node_name)
+                        .at_tensor(&value.name),
+                    );
+                }
+                fact = fill_from(&fact, decl);
+            }
+            if let Some(r) = reasons.as_deref_mut() {
+                if !fact.shape.is_concrete() {
+                    let why = match &failure {
+                        Some(f) if inferred.shape.rank().is_none() => f.clone(),
+                        _ => {
+                            let syms = fact.shape.symbols();
+                            if syms.is_empty() {
+                                "depends on a tensor whose shape is unknown".to_string()
+                            } else {
+                                format!("depends on symbolic dims: {}", syms.join(", "))
+                            }
+                        }
+                    };
+                    r.insert(*v, why);
+                }
+            }
+            value.fact = fact;
+            value.konst = folded_values.as_ref().and_then(|vals| vals.get(k).cloned());
+            if folded && value.kind == ValueKind::Activation {
+                value.kind = ValueKind::Constant;
+            }
+        }
+    }
+    // Graph inputs the caller feeds but whose shapes are unknown, for the report.
+    if let Some(r) = reasons {
+        for &i in &g.inputs {
+            let f = &g.values[i.index()].fact;
+            if !f.shape.is_concrete() {
+                let syms = f.shape.symbols();
+                r.insert(i, if syms.is_empty() { "declared with unknown dims".into() } else { format!("declared with symbolic dims: {}", syms.join(", ")) });
+            }
+        }
+    }
+}
+
+fn agrees(a: &Fact, b: &Fact) -> bool {
+    if a.dtype != b.dtype {
+        return false;
+    }
+    match (a.shape.dims(), b.shape.dims()) {
+        (Some(x), Some(y)) => {
+            x.len() == y.len()
+                && x.iter().zip(y).all(|(p, q)| match (p, q) {
+                    (crate::ir::Dim::Known(m), crate::ir::Dim::Known(n)) => m == n,
+                    _ => true,
+                })
+        }
+        _ => true,
+    }
+}
+
+/// Fills what inference left unknown from the file's declaration.
+fn fill_from(fact: &Fact, decl: &Fact) -> Fact {
+    let dtype = fact.dtype.or(decl.dtype);
+    let shape = match (fact.shape.dims(), decl.shape.dims()) {
+        (None, Some(_)) => decl.shape.clone(),
+        (Some(x), Some(y)) if x.len() == y.len() => Shape::of(
+            x.iter()
+                .zip(y)
+                .map(|(p, q)| match (p, q) {
+                    (crate::ir::Dim::Unknown, q) => q.clone(),
+                    (p, _) => p.clone(),
+                })
+                .collect(),
+        ),
+        _ => fact.shape.clone(),
+    };
+    let value_type = if fact.dtype.is_none() && fact.shape.rank().is_none() { decl.value_type.clone() } else { fact.value_type.clone() };
+    Fact { value_type, dtype, shape }
+}
+
+/// Body graph inputs: Loop (iteration, condition, carried...), Scan (state..., scan slices).
+fn seed_body_inputs(body: &mut Graph, op: &str, inputs: &[Fact], num_scan: usize) {
+    let ids = body.inputs.clone();
+    for (k, id) in ids.iter().enumerate() {
+        let v = &mut body.values[id.index()];
+        let known = v.declared.as_ref().is_some_and(|d| d.dtype.is_some() && d.shape.is_concrete());
+        if known {
+            continue;
+        }
+        let seeded = match op {
+            "Loop" => match k {
+                0 => Some(Fact::tensor(Some(DType::I64), Shape::scalar())),
+                1 => Some(Fact::tensor(Some(DType::Bool), Shape::scalar())),
+                _ => inputs.get(k).cloned(),
+            },
+            "Scan" => {
+                let n_state = inputs.len().saturating_sub(num_scan);
+                inputs.get(k).cloned().map(|mut f| {
+                    if k >= n_state {
+                        if let Some(d) = f.shape.0.as_mut() {
+                            if !d.is_empty() {
+                                d.remove(0);
+                            }
+                        }
+                    }
+                    f
+                })
+            }
+            _ => None,
+        };
+        if let Some(f) = seeded {
+            let decl = v.declared.clone().unwrap_or_default();
+            v.declared = Some(fill_from(&decl, &f));
+        }
+    }
+}
+
+/// Summed (macs, ops) of a graph; None where any node's figure is unknown.
+fn graph_cost(g: &Graph) -> (Option<u64>, Option<u64>) {
+    let mut macs = Some(0u64);
+    let mut ops_ = Some(0u64);
+    for n in g.nodes.iter().filter(|n| !n.folded) {
+        macs = macs.zip(n.cost.macs).and_then(|(a, b)| a.checked_add(b));
+        ops_ = ops_.zip(n.cost.ops).and_then(|(a, b)| a.checked_add(b));
+    }
+    (macs, ops_)
+}
+
+fn node_cost(ctx: &Ctx, rule: Option<CostRule>, outs: &[Fact], bodies: &[(Option<u64>, Option<u64>)]) -> NodeCost {
+    let (mut macs, mut ops_) = match rule {
+        None => (None, None),
+        Some(CostRule::Free) => (Some(0), Some(0)),
+        Some(CostRule::PerOutput(k)) => (Some(0), outs.first().and_then(|f| f.shape.element_count()).and_then(|e| e.checked_mul(k))),
+        Some(CostRule::PerInput(k)) => (Some(0), ctx.fact(0).and_then(|f| f.shape.element_count()).and_then(|e| e.checked_mul(k))),
+        Some(CostRule::Custom(f)) => f(ctx, outs),
+    };
+    if !bodies.is_empty() {
+        let trips: Option<u64> = match ctx.node.op_type.as_str() {
+            "If" => Some(1),
+            "Loop" => ctx.konst(0).and_then(|c| c.as_ints().first().copied()).map(|t| t.max(0) as u64),
+            "Scan" => outs.iter().skip(ctx.node.inputs.len()).find_map(|f| f.shape.dims().and_then(|d| d.first()).and_then(|d| d.known())),
+            _ => Some(1),
+        };
+        let pick = |sel: fn(&(Option<u64>, Option<u64>)) -> Option<u64>| -> Option<u64> {
+            if ctx.node.op_type == "If" {
+                if let Some(c) = ctx.konst(0).and_then(|c| c.as_ints().first().copied()) {
+                    return bodies.get(if c != 0 { 0 } else { 1 }).and_then(sel);
+                }
+                // Unknown condition: cost the more expensive branch.
+                return bodies.iter().map(sel).try_fold(0u64, |m, x| x.map(|x| m.max(x)));
+            }
+            bodies.iter().map(sel).try_fold(0u64, |m, x| x.and_then(|x| m.checked_add(x)))?.checked_mul(trips?)
+        };
+        macs = macs.zip(pick(|b| b.0)).and_then(|(a, b)| a.checked_add(b));
+        ops_ = ops_.zip(pick(|b| b.1)).and_then(|(a, b)| a.checked_add(b));
+    }
+    let mut needs = Vec::new();
+    if macs.is_none() || ops_.is_none() {
+        for f in ctx.inputs.iter().flatten().copied().chain(outs.iter()) {
+            needs.extend(f.shape.symbols());
+        }
+        needs.sort();
+        needs.dedup();
+    }
+    NodeCost { macs, ops: ops_, needs_dims: needs }
+}
+
+/// True for tensor values (not sequences, maps or optionals).
+pub fn is_tensor(f: &Fact) -> bool {
+    f.value_type == ValueType::Tensor
+}

@@ -1,0 +1,392 @@
+//! tilecut's own model of an operator graph: an arena of nodes and values indexed by ids,
+//! each value with one producer, many consumers and a small fact (dtype, shape).
+//! A leaf module: it does no I/O and names no protobuf type.
+
+mod dtype;
+mod shape;
+
+pub use dtype::DType;
+pub use shape::{Dim, Shape};
+
+use bytes::Bytes;
+use std::collections::BTreeMap;
+use std::path::PathBuf;
+
+#[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord, Hash)]
+pub struct NodeId(pub u32);
+
+#[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord, Hash)]
+pub struct ValueId(pub u32);
+
+impl NodeId {
+    pub fn index(self) -> usize {
+        self.0 as usize
+    }
+}
+
+impl ValueId {
+    pub fn index(self) -> usize {
+        self.0 as usize
+    }
+}
+
+/// What a value is, from the graph's point of view.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord)]
+pub enum ValueKind {
+    /// A graph input the caller feeds.
+    Input,
+    /// A weight stored in the file (including old-IR initializers also listed as inputs).
+    Initializer,
+    /// Computed from constants only (Constant nodes and what folds from them): weight-like.
+    Constant,
+    /// Computed per inference.
+    Activation,
+    /// A graph output.
+    Output,
+}
+
+impl ValueKind {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            ValueKind::Input => "input",
+            ValueKind::Initializer => "initializer",
+            ValueKind::Constant => "constant",
+            ValueKind::Activation => "activation",
+            ValueKind::Output => "output",
+        }
+    }
+}
+
+/// The non-tensor value types ONNX allows, besides plain tensors.
+#[derive(Clone, Debug, PartialEq)]
+pub enum ValueType {
+    Tensor,
+    SparseTensor,
+    Sequence(Box<Fact>),
+    Map,
+    Optional(Box<Fact>),
+}
+
+/// What is known of a value: element type and shape, either possibly unknown.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Fact {
+    pub value_type: ValueType,
+    pub dtype: Option<DType>,
+    pub shape: Shape,
+}
+
+impl Default for Fact {
+    fn default() -> Self {
+        Fact { value_type: ValueType::Tensor, dtype: None, shape: Shape::unknown() }
+    }
+}
+
+impl Fact {
+    pub fn tensor(dtype: Option<DType>, shape: Shape) -> Fact {
+        Fact { value_type: ValueType::Tensor, dtype, shape }
+    }
+
+    /// Bytes of one instance of the value, if dtype and every dim are known.
+    pub fn bytes(&self) -> Option<u64> {
+        if self.value_type != ValueType::Tensor {
+            return None;
+        }
+        let n = self.shape.element_count()?;
+        self.dtype?.bytes_for(n)
+    }
+}
+
+/// Where the payload of a stored tensor lives; read only on demand.
+#[derive(Clone, Debug, PartialEq)]
+pub enum Storage {
+    /// `raw_data`: little-endian elements, sub-byte types packed two (or four) per byte.
+    Raw(Bytes),
+    /// Packed varints (`int32_data`, `int64_data`, `uint64_data`).
+    Varints(Bytes),
+    /// Packed little-endian f32 (`float_data`; fp16/bf16 bit patterns for those types).
+    Fixed32(Bytes),
+    /// Packed little-endian f64 (`double_data`).
+    Fixed64(Bytes),
+    /// Strings, never decoded for analysis.
+    Strings(usize),
+    /// A file next to the model, already checked to stay inside the model's folder.
+    External { path: PathBuf, offset: u64, length: Option<u64>, present: bool },
+    /// No payload at all (an empty tensor, or a malformed one reported elsewhere).
+    Empty,
+}
+
+/// A tensor stored in the model: initializer or attribute tensor.
+#[derive(Clone, Debug, PartialEq)]
+pub struct TensorData {
+    pub dtype: Option<DType>,
+    pub dims: Vec<u64>,
+    pub storage: Storage,
+}
+
+impl TensorData {
+    pub fn element_count(&self) -> Option<u64> {
+        self.dims.iter().try_fold(1u64, |acc, &d| acc.checked_mul(d))
+    }
+
+    /// Bytes the tensor occupies in memory (sub-byte types packed), if its type is known.
+    pub fn bytes(&self) -> Option<u64> {
+        self.dtype?.bytes_for(self.element_count()?)
+    }
+}
+
+/// The contents of a small constant tensor, as far as the analysis needs them.
+#[derive(Clone, Debug, PartialEq)]
+pub enum ConstData {
+    Int(Vec<i64>),
+    Float(Vec<f64>),
+    /// A shape value known in part (the output of `Shape` on a symbolic shape).
+    Dims(Vec<Dim>),
+}
+
+#[derive(Clone, Debug, PartialEq)]
+pub struct ConstValue {
+    pub dims: Vec<u64>,
+    pub data: ConstData,
+}
+
+impl ConstValue {
+    pub fn ints(dims: Vec<u64>, v: Vec<i64>) -> ConstValue {
+        ConstValue { dims, data: ConstData::Int(v) }
+    }
+
+    pub fn floats(dims: Vec<u64>, v: Vec<f64>) -> ConstValue {
+        ConstValue { dims, data: ConstData::Float(v) }
+    }
+
+    pub fn len(&self) -> usize {
+        match &self.data {
+            ConstData::Int(v) => v.len(),
+            ConstData::Float(v) => v.len(),
+            ConstData::Dims(v) => v.len(),
+        }
+    }
+
+    /// The values as integers, if every one is known (floats truncated, as Cast does).
+    pub fn try_ints(&self) -> Option<Vec<i64>> {
+        match &self.data {
+            ConstData::Int(v) => Some(v.clone()),
+            ConstData::Float(v) => Some(v.iter().map(|x| *x as i64).collect()),
+            ConstData::Dims(v) => v.iter().map(|d| d.known().and_then(|x| i64::try_from(x).ok())).collect(),
+        }
+    }
+
+    /// The values as dims (known or symbolic); negative integers become unknown dims.
+    pub fn as_dims(&self) -> Vec<Dim> {
+        match &self.data {
+            ConstData::Dims(v) => v.clone(),
+            _ => self.as_ints().into_iter().map(|x| if x >= 0 { Dim::Known(x as u64) } else { Dim::Unknown }).collect(),
+        }
+    }
+
+    /// Picks elements by flat index, whatever the element kind.
+    pub fn pick(&self, dims: Vec<u64>, idx: &[usize]) -> ConstValue {
+        let data = match &self.data {
+            ConstData::Int(v) => ConstData::Int(idx.iter().map(|&i| v[i]).collect()),
+            ConstData::Float(v) => ConstData::Float(idx.iter().map(|&i| v[i]).collect()),
+            ConstData::Dims(v) => ConstData::Dims(idx.iter().map(|&i| v[i].clone()).collect()),
+        };
+        ConstValue { dims, data }
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.len() == 0
+    }
+
+    /// The values as integers; unknown dims of a shape value become -1.
+    pub fn as_ints(&self) -> Vec<i64> {
+        match &self.data {
+            ConstData::Int(v) => v.clone(),
+            ConstData::Float(v) => v.iter().map(|x| *x as i64).collect(),
+            ConstData::Dims(v) => v.iter().map(|d| d.known().map(|x| x as i64).unwrap_or(-1)).collect(),
+        }
+    }
+
+    pub fn as_floats(&self) -> Vec<f64> {
+        match &self.data {
+            ConstData::Int(v) => v.iter().map(|x| *x as f64).collect(),
+            ConstData::Float(v) => v.clone(),
+            ConstData::Dims(v) => v.iter().map(|d| d.known().map(|x| x as f64).unwrap_or(f64::NAN)).collect(),
+        }
+    }
+
+    /// True if every element is a known number.
+    pub fn is_numeric(&self) -> bool {
+        self.try_ints().is_some() || matches!(self.data, ConstData::Float(_))
+    }
+}
+
+/// A value (tensor) of a graph.
+#[derive(Clone, Debug)]
+pub struct Value {
+    pub name: String,
+    pub kind: ValueKind,
+    pub fact: Fact,
+    /// The fact the file declared (graph input/output or value_info), kept for cross-checks.
+    pub declared: Option<Fact>,
+    pub producer: Option<NodeId>,
+    pub consumers: Vec<NodeId>,
+    pub data: Option<TensorData>,
+    pub konst: Option<ConstValue>,
+}
+
+/// An attribute value. Tensors and graphs are owned here; graphs are analyzed as bodies.
+#[derive(Clone, Debug, PartialEq)]
+pub enum AttrValue {
+    Float(f32),
+    Int(i64),
+    String(String),
+    Tensor(TensorData),
+    /// Index into the node's `bodies`.
+    Graph(usize),
+    Floats(Vec<f32>),
+    Ints(Vec<i64>),
+    Strings(Vec<String>),
+    Tensors(Vec<TensorData>),
+    Graphs(Vec<usize>),
+    /// A type, sparse tensor or anything else tilecut does not interpret.
+    Other,
+}
+
+#[derive(Clone, Debug)]
+pub struct Attr {
+    pub name: String,
+    pub value: AttrValue,
+}
+
+/// A subgraph carried by a node (If branches, Loop and Scan bodies).
+#[derive(Clone, Debug)]
+pub struct Body {
+    pub attr: String,
+    pub graph: Graph,
+}
+
+/// Cost figures of one node; `None` where a figure depends on an unknown dim.
+#[derive(Clone, Debug, Default, PartialEq)]
+pub struct NodeCost {
+    /// Multiply-accumulates (conventions in `ops`).
+    pub macs: Option<u64>,
+    /// Element-wise and other non-MAC arithmetic operations.
+    pub ops: Option<u64>,
+    /// Symbols whose values would make the unknown figures known.
+    pub needs_dims: Vec<String>,
+}
+
+#[derive(Clone, Debug)]
+pub struct Node {
+    pub name: String,
+    /// True when the file left the node unnamed and `name` was generated.
+    pub generated_name: bool,
+    pub op_type: String,
+    pub domain: String,
+    /// One slot per declared input; `None` for an omitted optional input ("").
+    pub inputs: Vec<Option<ValueId>>,
+    pub outputs: Vec<Option<ValueId>>,
+    pub attrs: Vec<Attr>,
+    pub bodies: Vec<Body>,
+    /// Outer-scope values the bodies read: edges like any other input.
+    pub captures: Vec<ValueId>,
+    /// The model-local function call this node was expanded from, if any.
+    pub from_function: Option<String>,
+    pub cost: NodeCost,
+    /// Set when every input is constant and the node was folded (weight-like).
+    pub folded: bool,
+}
+
+impl Node {
+    pub fn attr(&self, name: &str) -> Option<&AttrValue> {
+        self.attrs.iter().find(|a| a.name == name).map(|a| &a.value)
+    }
+
+    pub fn is_default_domain(&self) -> bool {
+        self.domain.is_empty() || self.domain == "ai.onnx"
+    }
+
+    /// Values read by this node, bodies' captures included, in slot order, deduplicated.
+    pub fn all_inputs(&self) -> Vec<ValueId> {
+        let mut out: Vec<ValueId> = Vec::new();
+        for v in self.inputs.iter().flatten().chain(self.captures.iter()) {
+            if !out.contains(v) {
+                out.push(*v);
+            }
+        }
+        out
+    }
+}
+
+/// A graph: nodes in a topological order, values, and the graph's interface.
+#[derive(Clone, Debug, Default)]
+pub struct Graph {
+    pub name: String,
+    pub nodes: Vec<Node>,
+    pub values: Vec<Value>,
+    pub inputs: Vec<ValueId>,
+    pub outputs: Vec<ValueId>,
+    /// Placeholders for outer-scope values a subgraph reads (their facts come from outside).
+    pub captured: Vec<ValueId>,
+}
+
+impl Graph {
+    pub fn node(&self, id: NodeId) -> &Node {
+        &self.nodes[id.index()]
+    }
+
+    pub fn value(&self, id: ValueId) -> &Value {
+        &self.values[id.index()]
+    }
+
+    pub fn value_by_name(&self, name: &str) -> Option<ValueId> {
+        self.values.iter().position(|v| v.name == name).map(|i| ValueId(i as u32))
+    }
+
+    pub fn node_ids(&self) -> impl Iterator<Item = NodeId> {
+        (0..self.nodes.len() as u32).map(NodeId)
+    }
+
+    /// The graph as a petgraph DAG over node ids, one edge per (producer, consumer, value).
+    pub fn to_petgraph(&self) -> petgraph::graph::DiGraph<NodeId, ValueId> {
+        let mut g = petgraph::graph::DiGraph::with_capacity(self.nodes.len(), self.values.len());
+        let idx: Vec<_> = self.node_ids().map(|n| g.add_node(n)).collect();
+        for (i, node) in self.nodes.iter().enumerate() {
+            for v in node.all_inputs() {
+                if let Some(p) = self.value(v).producer {
+                    g.add_edge(idx[p.index()], idx[i], v);
+                }
+            }
+        }
+        g
+    }
+}
+
+/// A whole model: metadata plus the main graph.
+#[derive(Clone, Debug)]
+pub struct Model {
+    pub path: PathBuf,
+    pub ir_version: i64,
+    pub producer: String,
+    /// domain ("" for the default) → opset version.
+    pub opsets: BTreeMap<String, i64>,
+    pub graph: Graph,
+    pub functions: Vec<String>,
+}
+
+impl Model {
+    /// The opset of the default domain (`ai.onnx`).
+    pub fn default_opset(&self) -> i64 {
+        opset_of(&self.opsets, "")
+    }
+}
+
+/// The version imported for `domain`, treating "" and "ai.onnx" as one; 0 when not imported.
+pub fn opset_of(opsets: &BTreeMap<String, i64>, domain: &str) -> i64 {
+    let d = if domain == "ai.onnx" { "" } else { domain };
+    opsets
+        .get(d)
+        .or_else(|| if d.is_empty() { opsets.get("ai.onnx") } else { None })
+        .copied()
+        .unwrap_or(0)
+}

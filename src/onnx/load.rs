@@ -1,0 +1,123 @@
+//! Opening a model file: memory map, zero-copy decode, and external-data paths.
+
+use std::fs::File;
+use std::path::{Component, Path, PathBuf};
+
+use bytes::Bytes;
+use prost::Message;
+
+use super::ModelProto;
+use crate::error::ReadError;
+
+/// A decoded model whose tensor payloads are slices of the mapped file.
+pub struct LoadedModel {
+    pub path: PathBuf,
+    /// The folder external data is resolved against (canonical).
+    pub dir: PathBuf,
+    pub proto: ModelProto,
+}
+
+/// Maps `path` and decodes it. Nothing of the weights is copied or even touched: the decoder
+/// slices `raw_data` and packed fields out of the mapping.
+pub fn load(path: &Path) -> Result<LoadedModel, ReadError> {
+    let io = |source| ReadError::Io { path: path.to_path_buf(), source };
+    let file = File::open(path).map_err(io)?;
+    let meta = file.metadata().map_err(io)?;
+    if meta.is_dir() {
+        return Err(ReadError::invalid(path, "is a folder, not a model file"));
+    }
+    if meta.len() == 0 {
+        return Err(ReadError::Empty { path: path.to_path_buf() });
+    }
+    // SAFETY: the map is read-only; tilecut never writes the input. A file truncated by another
+    // process while mapped would fault; that is the usual contract of mapped readers.
+    let map = unsafe { memmap2::Mmap::map(&file) }.map_err(io)?;
+    let bytes = Bytes::from_owner(map);
+    let proto = ModelProto::decode(bytes).map_err(|e| decode_error(path, e))?;
+    if proto.graph.is_none() {
+        return Err(ReadError::Decode {
+            path: path.to_path_buf(),
+            msg: "the file decodes but holds no graph".into(),
+        });
+    }
+    let parent = path.parent().filter(|p| !p.as_os_str().is_empty()).unwrap_or(Path::new("."));
+    let dir = parent.canonicalize().map_err(io)?;
+    Ok(LoadedModel { path: path.to_path_buf(), dir, proto })
+}
+
+/// Decodes model bytes already in memory (tests, generated models).
+pub fn decode(path: &Path, bytes: Bytes, dir: PathBuf) -> Result<LoadedModel, ReadError> {
+    if bytes.is_empty() {
+        return Err(ReadError::Empty { path: path.to_path_buf() });
+    }
+    let proto = ModelProto::decode(bytes).map_err(|e| decode_error(path, e))?;
+    if proto.graph.is_none() {
+        return Err(ReadError::Decode {
+            path: path.to_path_buf(),
+            msg: "the file decodes but holds no graph".into(),
+        });
+    }
+    Ok(LoadedModel { path: path.to_path_buf(), dir, proto })
+}
+
+fn decode_error(path: &Path, e: prost::DecodeError) -> ReadError {
+    let text = e.to_string();
+    let msg = if text.contains("recursion limit") {
+        "messages nested deeper than the decoder allows (subgraphs nested far too deep)".to_string()
+    } else {
+        // prost's text is already one line: "failed to decode Protobuf message: …".
+        text.replace("failed to decode Protobuf message: ", "")
+    };
+    ReadError::Decode { path: path.to_path_buf(), msg }
+}
+
+/// Resolves an external-data `location` inside `dir`. This is a security boundary: absolute
+/// paths and anything that leaves `dir` (by `..` or through a symbolic link) are refused.
+/// Returns the path and whether the file exists.
+pub fn resolve_external(dir: &Path, location: &str) -> Result<(PathBuf, bool), String> {
+    if location.is_empty() {
+        return Err("empty location".into());
+    }
+    let rel = Path::new(location);
+    if rel.is_absolute() || location.starts_with('/') || location.starts_with('\\') {
+        return Err("absolute paths are not allowed; external data must lie in the model's folder".into());
+    }
+    let mut depth: i64 = 0;
+    for c in rel.components() {
+        match c {
+            Component::Normal(_) => depth += 1,
+            Component::CurDir => {}
+            Component::ParentDir => {
+                depth -= 1;
+                if depth < 0 {
+                    return Err("the path leaves the model's folder".into());
+                }
+            }
+            Component::RootDir | Component::Prefix(_) => {
+                return Err("absolute paths are not allowed".into());
+            }
+        }
+    }
+    let joined = dir.join(rel);
+    match joined.canonicalize() {
+        Ok(real) => {
+            if !real.starts_with(dir) {
+                return Err("the path leaves the model's folder through a symbolic link".into());
+            }
+            let present = real.is_file();
+            Ok((real, present))
+        }
+        // A missing file still allows analysis from the declared dims.
+        Err(_) => Ok((joined, false)),
+    }
+}
+
+/// Reads `length` bytes at `offset` of an external file (only for small constants).
+pub fn read_external(path: &Path, offset: u64, length: u64) -> std::io::Result<Vec<u8>> {
+    use std::io::{Read, Seek, SeekFrom};
+    let mut f = File::open(path)?;
+    f.seek(SeekFrom::Start(offset))?;
+    let mut buf = vec![0u8; usize::try_from(length).unwrap_or(usize::MAX).min(1 << 24)];
+    f.read_exact(&mut buf)?;
+    Ok(buf)
+}

@@ -1,0 +1,13 @@
+//! The ONNX wire format: generated message types, the hand-written `TensorProto`, and loading
+//! a model file by memory map. The only module that names protobuf types.
+
+pub mod load;
+pub mod tensor;
+
+#[allow(clippy::all, missing_docs)]
+mod generated {
+    include!(concat!(env!("OUT_DIR"), "/onnx.rs"));
+}
+
+pub use generated::*;
+pub use tensor::TensorProto;

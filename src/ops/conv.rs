@@ -1,0 +1,254 @@
+//! Convolutions and pools: spatial output sizes from kernel, stride, dilation and padding
+//! (ONNX operator spec, Conv / ConvTranspose / MaxPool / AveragePool), and MAC counts.
+
+use crate::ir::{DType, Dim, Fact, Shape};
+
+use super::util::{count, tensor};
+use super::{CostRule, Ctx, Inferred, OpDef};
+
+/// Which input carries X and W for each conv-like op, and its output type.
+struct ConvIo {
+    x: usize,
+    w: Option<usize>,
+}
+
+fn io(op: &str) -> ConvIo {
+    match op {
+        "QLinearConv" => ConvIo { x: 0, w: Some(3) },
+        _ => ConvIo { x: 0, w: Some(1) },
+    }
+}
+
+fn floor_div(a: i64, b: i64) -> i64 {
+    a.div_euclid(b)
+}
+
+fn ceil_div(a: i64, b: i64) -> i64 {
+    -(-a).div_euclid(b)
+}
+
+/// Output size of one spatial axis of a conv or pool.
+#[allow(clippy::too_many_arguments)]
+fn spatial_out(
+    input: &Dim,
+    kernel: u64,
+    stride: u64,
+    dilation: u64,
+    pads: Option<(i64, i64)>,
+    auto_pad: &str,
+    ceil_mode: bool,
+) -> Result<Dim, String> {
+    let Dim::Known(i) = input else { return Ok(Dim::Unknown) };
+    let (i, k, s, d) = (*i as i64, kernel as i64, stride as i64, dilation as i64);
+    if s <= 0 || d <= 0 {
+        return Err("stride and dilation must be positive".into());
+    }
+    let ek = (k - 1) * d + 1;
+    let (pad_begin, pad_total) = pads.map(|(b, e)| (b, b + e)).unwrap_or((0, 0));
+    let out = match auto_pad {
+        "SAME_UPPER" | "SAME_LOWER" => ceil_div(i, s),
+        "VALID" => {
+            let n = i - ek;
+            if n < 0 { return Err(format!("kernel extent {ek} exceeds input {i}")); }
+            floor_div(n, s) + 1
+        }
+        _ => {
+            let n = i + pad_total - ek;
+            if n < 0 {
+                return Err(format!("kernel extent {ek} exceeds padded input {}", i + pad_total));
+            }
+            if ceil_mode {
+                let mut o = ceil_div(n, s) + 1;
+                // The last window must start inside the input or left padding (ONNX pool
+                // shape inference, matching the reference implementation).
+                if (o - 1) * s >= i + pad_begin {
+                    o -= 1;
+                }
+                o
+            } else {
+                floor_div(n, s) + 1
+            }
+        }
+    };
+    Ok(Dim::Known(out.max(0) as u64))
+}
+
+struct Window {
+    kernel: Vec<u64>,
+    strides: Vec<u64>,
+    dilations: Vec<u64>,
+    pads: Option<Vec<i64>>,
+    auto_pad: String,
+}
+
+fn window(ctx: &Ctx, spatial: usize, kernel: Option<Vec<u64>>) -> Result<Window, String> {
+    let kernel = match ctx.ints("kernel_shape") {
+        Some(k) => k.iter().map(|&v| u64::try_from(v).map_err(|_| format!("negative kernel dim {v}"))).collect::<Result<_, _>>()?,
+        None => kernel.ok_or("kernel shape unknown (no kernel_shape and W's shape is unknown)")?,
+    };
+    if kernel.len() != spatial {
+        return Err(format!("kernel has {} dims for {} spatial dims", kernel.len(), spatial));
+    }
+    let pos = |name: &str| -> Result<Vec<u64>, String> {
+        match ctx.ints(name) {
+            Some(v) if v.len() == spatial => v.iter().map(|&x| u64::try_from(x).map_err(|_| format!("negative {name}"))).collect(),
+            Some(v) if v.is_empty() => Ok(vec![1; spatial]),
+            Some(v) => Err(format!("{name} has {} values for {} spatial dims", v.len(), spatial)),
+            None => Ok(vec![1; spatial]),
+        }
+    };
+    let pads = ctx.ints("pads");
+    if let Some(p) = &pads {
+        if p.len() != 2 * spatial && !p.is_empty() {
+            return Err(format!("pads has {} values for {} spatial dims", p.len(), spatial));
+        }
+    }
+    let mut auto_pad = ctx.string("auto_pad").unwrap_or_else(|| "NOTSET".into());
+    if auto_pad.is_empty() {
+        auto_pad = "NOTSET".into();
+    }
+    Ok(Window { kernel, strides: pos("strides")?, dilations: pos("dilations")?, pads: pads.filter(|p| !p.is_empty()), auto_pad })
+}
+
+fn conv_spatial(ctx: &Ctx, x: &[Dim], w: &Window, ceil_mode: bool) -> Result<Vec<Dim>, String> {
+    let spatial = w.kernel.len();
+    (0..spatial)
+        .map(|i| {
+            let pad = w.pads.as_ref().map(|p| (p[i], p[i + spatial]));
+            spatial_out(&x[2 + i], w.kernel[i], w.strides[i], w.dilations[i], pad, &w.auto_pad, ceil_mode)
+        })
+        .collect::<Result<_, _>>()
+        .map_err(|e: String| format!("{}: {e}", ctx.node.op_type))
+}
+
+fn conv(ctx: &Ctx) -> Inferred {
+    let io = io(&ctx.node.op_type);
+    let x = ctx.dims(io.x).ok_or("input rank unknown")?;
+    if x.len() < 3 {
+        return Err(format!("input of rank {} (need N, C and spatial dims)", x.len()));
+    }
+    let wdims = io.w.and_then(|i| ctx.dims(i));
+    let kernel = wdims.as_ref().and_then(|w| w.get(2..).map(|k| k.iter().map(Dim::known).collect::<Option<Vec<_>>>())).flatten();
+    let win = window(ctx, x.len() - 2, kernel)?;
+    let mut out = vec![x[0].clone(), wdims.as_ref().and_then(|w| w.first().cloned()).unwrap_or(Dim::Unknown)];
+    out.extend(conv_spatial(ctx, &x, &win, false)?);
+    let dtype = match ctx.node.op_type.as_str() {
+        "ConvInteger" => Some(DType::I32),
+        "QLinearConv" => ctx.dtype(7),
+        _ => ctx.dtype(0),
+    };
+    Ok(vec![tensor(dtype, Shape::of(out))])
+}
+
+fn conv_transpose(ctx: &Ctx) -> Inferred {
+    let x = ctx.dims(0).ok_or("input rank unknown")?;
+    if x.len() < 3 {
+        return Err(format!("input of rank {}", x.len()));
+    }
+    let spatial = x.len() - 2;
+    let wdims = ctx.dims(1);
+    let kernel = wdims.as_ref().and_then(|w| w.get(2..).map(|k| k.iter().map(Dim::known).collect::<Option<Vec<_>>>())).flatten();
+    let win = window(ctx, spatial, kernel)?;
+    let group = ctx.int("group", 1).max(1) as u64;
+    let cout = wdims.as_ref().and_then(|w| w.get(1)).and_then(Dim::known).map(|c| Dim::Known(c * group)).unwrap_or(Dim::Unknown);
+    let out_pad = ctx.ints("output_padding").unwrap_or_else(|| vec![0; spatial]);
+    let mut out = vec![x[0].clone(), cout];
+    if let Some(shape) = ctx.ints("output_shape") {
+        let s = &shape[shape.len().saturating_sub(spatial)..];
+        out.extend(s.iter().map(|&v| Dim::Known(v.max(0) as u64)));
+        return Ok(vec![tensor(ctx.dtype(0), Shape::of(out))]);
+    }
+    for i in 0..spatial {
+        let Dim::Known(inp) = x[2 + i] else {
+            out.push(Dim::Unknown);
+            continue;
+        };
+        let (s, k, d) = (win.strides[i] as i64, win.kernel[i] as i64, win.dilations[i] as i64);
+        let op = out_pad.get(i).copied().unwrap_or(0);
+        let o = match win.auto_pad.as_str() {
+            "SAME_UPPER" | "SAME_LOWER" => inp as i64 * s,
+            _ => {
+                let pads = win.pads.as_ref().map(|p| p[i] + p[i + spatial]).unwrap_or(0);
+                s * (inp as i64 - 1) + op + ((k - 1) * d + 1) - if win.auto_pad == "VALID" { 0 } else { pads }
+            }
+        };
+        out.push(Dim::Known(o.max(0) as u64));
+    }
+    Ok(vec![tensor(ctx.dtype(0), Shape::of(out))])
+}
+
+fn pool(ctx: &Ctx) -> Inferred {
+    let x = ctx.dims(0).ok_or("input rank unknown")?;
+    if x.len() < 3 {
+        return Err(format!("input of rank {}", x.len()));
+    }
+    let win = window(ctx, x.len() - 2, None)?;
+    let ceil_mode = ctx.int("ceil_mode", 0) != 0;
+    let mut out = vec![x[0].clone(), x[1].clone()];
+    out.extend(conv_spatial(ctx, &x, &win, ceil_mode)?);
+    let shape = Shape::of(out);
+    let mut outs = vec![tensor(ctx.dtype(0), shape.clone())];
+    if ctx.outputs() > 1 {
+        outs.push(tensor(Some(DType::I64), shape));
+    }
+    Ok(outs)
+}
+
+fn global_pool(ctx: &Ctx) -> Inferred {
+    let x = ctx.dims(0).ok_or("input rank unknown")?;
+    if x.len() < 2 {
+        return Err(format!("input of rank {}", x.len()));
+    }
+    let mut out = vec![x[0].clone(), x[1].clone()];
+    out.extend(std::iter::repeat_n(Dim::Known(1), x.len() - 2));
+    Ok(vec![tensor(ctx.dtype(0), Shape::of(out))])
+}
+
+fn conv_macs(ctx: &Ctx, outs: &[Fact]) -> (Option<u64>, Option<u64>) {
+    let io = io(&ctx.node.op_type);
+    let macs = (|| {
+        let y = outs.first()?.shape.concrete()?;
+        let w = ctx.shape(io.w?).concrete()?;
+        // W is [Cout, Cin/group, k...]: every output element takes Cin/group·∏k MACs.
+        count(&y)?.checked_mul(count(&w[1..])?)
+    })();
+    (macs, Some(0))
+}
+
+fn conv_transpose_macs(ctx: &Ctx, _outs: &[Fact]) -> (Option<u64>, Option<u64>) {
+    let macs = (|| {
+        let x = ctx.shape(0).concrete()?;
+        let w = ctx.shape(1).concrete()?;
+        // W is [Cin, Cout/group, k...]: every input element scatters into Cout/group·∏k outputs.
+        count(&x)?.checked_mul(count(&w[1..])?)
+    })();
+    (macs, Some(0))
+}
+
+fn pool_ops(ctx: &Ctx, outs: &[Fact]) -> (Option<u64>, Option<u64>) {
+    let ops = (|| {
+        let y = outs.first()?.shape.element_count()?;
+        let k: u64 = count(&ctx.ints("kernel_shape")?.iter().map(|&v| v.max(0) as u64).collect::<Vec<_>>())?;
+        y.checked_mul(k)
+    })();
+    (Some(0), ops)
+}
+
+macro_rules! op {
+    ($name:literal, $infer:expr, $cost:expr) => {
+        OpDef { domain: "", op: $name, family: "conv", infer: $infer, cost: $cost, fold: None }
+    };
+}
+
+pub static OPS: &[OpDef] = &[
+    op!("Conv", conv, CostRule::Custom(conv_macs)),
+    op!("ConvInteger", conv, CostRule::Custom(conv_macs)),
+    op!("QLinearConv", conv, CostRule::Custom(conv_macs)),
+    op!("ConvTranspose", conv_transpose, CostRule::Custom(conv_transpose_macs)),
+    op!("MaxPool", pool, CostRule::Custom(pool_ops)),
+    op!("AveragePool", pool, CostRule::Custom(pool_ops)),
+    op!("LpPool", pool, CostRule::Custom(pool_ops)),
+    op!("GlobalAveragePool", global_pool, CostRule::PerInput(1)),
+    op!("GlobalMaxPool", global_pool, CostRule::PerInput(1)),
+    op!("GlobalLpPool", global_pool, CostRule::PerInput(2)),
+];

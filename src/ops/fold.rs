@@ -1,0 +1,168 @@
+//! Constant folding of small integer and float tensors, so exporter patterns such as
+//! `Shape → Gather → Unsqueeze → Concat → Reshape` resolve to concrete shapes.
+
+use crate::ir::{ConstData, ConstValue};
+
+use super::util::count;
+use super::Ctx;
+
+/// Element limit for folded values: shape arithmetic is tiny; anything larger is left alone.
+pub const MAX_FOLD_ELEMENTS: u64 = 1 << 16;
+
+/// Broadcast shape of two concrete shapes, or None if they do not broadcast.
+fn broadcast_dims(a: &[u64], b: &[u64]) -> Option<Vec<u64>> {
+    let r = a.len().max(b.len());
+    let mut out = vec![0; r];
+    for i in 0..r {
+        let x = if i + a.len() >= r { a[i + a.len() - r] } else { 1 };
+        let y = if i + b.len() >= r { b[i + b.len() - r] } else { 1 };
+        out[i] = match (x, y) {
+            (x, y) if x == y => x,
+            (1, y) => y,
+            (x, 1) => x,
+            _ => return None,
+        };
+    }
+    Some(out)
+}
+
+/// Index into `dims`-shaped data for the broadcast position `pos` of `out`.
+fn source_index(pos: &[u64], dims: &[u64]) -> usize {
+    let off = pos.len() - dims.len();
+    let mut idx = 0u64;
+    for (i, &d) in dims.iter().enumerate() {
+        let p = if d == 1 { 0 } else { pos[off + i] };
+        idx = idx * d + p;
+    }
+    idx as usize
+}
+
+fn positions(dims: &[u64]) -> impl Iterator<Item = Vec<u64>> + '_ {
+    let total = count(dims).unwrap_or(0);
+    (0..total).map(move |mut flat| {
+        let mut pos = vec![0; dims.len()];
+        for i in (0..dims.len()).rev() {
+            let d = dims[i].max(1);
+            pos[i] = flat % d;
+            flat /= d;
+        }
+        pos
+    })
+}
+
+/// Folds an element-wise op over any number of broadcast inputs.
+pub fn elementwise(
+    values: &[&ConstValue],
+    int_op: impl Fn(&[i64]) -> Option<i64>,
+    float_op: impl Fn(&[f64]) -> f64,
+    bool_result: bool,
+) -> Option<ConstValue> {
+    if !values.iter().all(|v| v.is_numeric()) {
+        return None;
+    }
+    let mut dims: Vec<u64> = Vec::new();
+    for v in values {
+        dims = broadcast_dims(&dims, &v.dims)?;
+    }
+    if count(&dims)? > MAX_FOLD_ELEMENTS {
+        return None;
+    }
+    let all_int = values.iter().all(|v| matches!(v.data, ConstData::Int(_)));
+    if all_int || bool_result {
+        let ints: Vec<Vec<i64>> = values.iter().map(|v| v.as_ints()).collect();
+        let floats: Vec<Vec<f64>> = values.iter().map(|v| v.as_floats()).collect();
+        let mut out = Vec::new();
+        for pos in positions(&dims) {
+            if all_int {
+                let args: Vec<i64> = values.iter().zip(&ints).map(|(v, d)| d[source_index(&pos, &v.dims)]).collect();
+                out.push(int_op(&args)?);
+            } else {
+                let args: Vec<f64> = values.iter().zip(&floats).map(|(v, d)| d[source_index(&pos, &v.dims)]).collect();
+                out.push(float_op(&args) as i64);
+            }
+        }
+        Some(ConstValue::ints(dims, out))
+    } else {
+        let floats: Vec<Vec<f64>> = values.iter().map(|v| v.as_floats()).collect();
+        let out = positions(&dims)
+            .map(|pos| {
+                let args: Vec<f64> = values.iter().zip(&floats).map(|(v, d)| d[source_index(&pos, &v.dims)]).collect();
+                float_op(&args)
+            })
+            .collect();
+        Some(ConstValue::floats(dims, out))
+    }
+}
+
+/// All inputs present and constant, in slot order.
+pub fn all_consts<'a>(ctx: &Ctx<'a>) -> Option<Vec<&'a ConstValue>> {
+    (0..ctx.node.inputs.len()).filter(|&i| ctx.has_input(i)).map(|i| ctx.konst(i)).collect()
+}
+
+/// Int division rounding toward negative infinity is not ONNX Div (which truncates like C).
+pub fn trunc_div(a: i64, b: i64) -> Option<i64> {
+    a.checked_div(b)
+}
+
+/// Gathers `indices` (already in range) from a 1-D or N-D constant along `axis`.
+pub fn gather(data: &ConstValue, indices: &ConstValue, axis: usize) -> Option<ConstValue> {
+    let r = data.dims.len();
+    if axis >= r {
+        return None;
+    }
+    let outer = count(&data.dims[..axis])?;
+    let dim = data.dims[axis];
+    let inner = count(&data.dims[axis + 1..])?;
+    let idx: Vec<u64> = indices
+        .as_ints()
+        .into_iter()
+        .map(|i| {
+            let j = if i < 0 { i + dim as i64 } else { i };
+            (0..dim as i64).contains(&j).then_some(j as u64)
+        })
+        .collect::<Option<_>>()?;
+    let mut dims = data.dims[..axis].to_vec();
+    dims.extend_from_slice(&indices.dims);
+    dims.extend_from_slice(&data.dims[axis + 1..]);
+    if count(&dims)? > MAX_FOLD_ELEMENTS {
+        return None;
+    }
+    let mut flat = Vec::new();
+    for o in 0..outer {
+        for &i in &idx {
+            for k in 0..inner {
+                flat.push(((o * dim + i) * inner + k) as usize);
+            }
+        }
+    }
+    Some(data.pick(dims, &flat))
+}
+
+/// Slices a constant along several axes (starts/ends already clamped, steps non-zero).
+pub fn slice(data: &ConstValue, ranges: &[(usize, i64, i64, i64)]) -> Option<ConstValue> {
+    let mut keep: Vec<Vec<u64>> = data.dims.iter().map(|&d| (0..d).collect()).collect();
+    for &(axis, start, end, step) in ranges {
+        let mut v = Vec::new();
+        let mut i = start;
+        while (step > 0 && i < end) || (step < 0 && i > end) {
+            v.push(i as u64);
+            i += step;
+        }
+        keep[axis] = v;
+    }
+    let dims: Vec<u64> = keep.iter().map(|k| k.len() as u64).collect();
+    let total = count(&dims)?;
+    if total > MAX_FOLD_ELEMENTS {
+        return None;
+    }
+    let strides: Vec<u64> = (0..data.dims.len()).map(|i| count(&data.dims[i + 1..]).unwrap_or(0)).collect();
+    let mut src_idx = Vec::with_capacity(total as usize);
+    for pos in positions(&dims) {
+        let mut s = 0;
+        for (a, &p) in pos.iter().enumerate() {
+            s += keep[a][p as usize] * strides[a];
+        }
+        src_idx.push(s as usize);
+    }
+    Some(data.pick(dims, &src_idx))
+}

@@ -1,0 +1,342 @@
+//! Contractions: MatMul (numpy semantics), Gemm, Einsum, and attention ops.
+
+use std::collections::BTreeMap;
+
+use crate::ir::{DType, Dim, Fact, Shape};
+
+use super::util::{broadcast, count, tensor};
+use super::{CostRule, Ctx, Inferred, OpDef};
+
+/// (A, B) input slots and output dtype of each matmul-like op.
+fn ab(ctx: &Ctx) -> (usize, usize, Option<DType>) {
+    match ctx.node.op_type.as_str() {
+        "QLinearMatMul" => (0, 3, ctx.dtype(7)),
+        "MatMulInteger" => (0, 1, Some(DType::I32)),
+        "MatMulIntegerToFloat" | "DynamicQuantizeMatMul" => (0, 1, Some(DType::F32)),
+        _ => (0, 1, ctx.dtype(0)),
+    }
+}
+
+/// numpy matmul shape: 1-D operands are promoted and the added dim removed afterwards.
+pub fn matmul_shape(a: &[Dim], b: &[Dim]) -> Result<Vec<Dim>, String> {
+    if a.is_empty() || b.is_empty() {
+        return Err("MatMul of a scalar".into());
+    }
+    let (mut a2, mut b2) = (a.to_vec(), b.to_vec());
+    if a.len() == 1 {
+        a2.insert(0, Dim::Known(1));
+    }
+    if b.len() == 1 {
+        b2.push(Dim::Known(1));
+    }
+    let (ka, kb) = (&a2[a2.len() - 1], &b2[b2.len() - 2]);
+    if let (Dim::Known(x), Dim::Known(y)) = (ka, kb) {
+        if x != y {
+            return Err(format!("inner dims differ: {x} vs {y}"));
+        }
+    }
+    let batch = broadcast(&[Shape::of(a2[..a2.len() - 2].to_vec()), Shape::of(b2[..b2.len() - 2].to_vec())])?;
+    let mut out = batch.0.unwrap_or_default();
+    if a.len() != 1 {
+        out.push(a2[a2.len() - 2].clone());
+    }
+    if b.len() != 1 {
+        out.push(b2[b2.len() - 1].clone());
+    }
+    Ok(out)
+}
+
+fn matmul(ctx: &Ctx) -> Inferred {
+    let (ia, ib, dt) = ab(ctx);
+    let (Some(a), Some(b)) = (ctx.dims(ia), ctx.dims(ib)) else {
+        return Err("operand rank unknown".into());
+    };
+    Ok(vec![tensor(dt, Shape::of(matmul_shape(&a, &b)?))])
+}
+
+fn matmul_macs(ctx: &Ctx, outs: &[Fact]) -> (Option<u64>, Option<u64>) {
+    let (ia, _, _) = ab(ctx);
+    let macs = (|| {
+        let y = outs.first()?.shape.element_count()?;
+        let a = ctx.shape(ia).concrete()?;
+        y.checked_mul(*a.last()?)
+    })();
+    (macs, Some(0))
+}
+
+fn gemm(ctx: &Ctx) -> Inferred {
+    let (Some(a), Some(b)) = (ctx.dims(0), ctx.dims(1)) else { return Err("operand rank unknown".into()) };
+    if a.len() != 2 || b.len() != 2 {
+        return Err(format!("Gemm needs 2-D operands, got ranks {} and {}", a.len(), b.len()));
+    }
+    let m = if ctx.int("transA", 0) != 0 { a[1].clone() } else { a[0].clone() };
+    let n = if ctx.int("transB", 0) != 0 { b[0].clone() } else { b[1].clone() };
+    Ok(vec![tensor(ctx.dtype(0), Shape::of(vec![m, n]))])
+}
+
+fn gemm_macs(ctx: &Ctx, outs: &[Fact]) -> (Option<u64>, Option<u64>) {
+    let y = outs.first().and_then(|f| f.shape.element_count());
+    let macs = (|| {
+        let a = ctx.shape(0).concrete()?;
+        let k = if ctx.int("transA", 0) != 0 { a.first()? } else { a.get(1)? };
+        y?.checked_mul(*k)
+    })();
+    (macs, y)
+}
+
+/// A parsed Einsum equation: one term per input, the output term; '.' stands for the ellipsis.
+struct Equation {
+    inputs: Vec<Vec<char>>,
+    output: Vec<char>,
+}
+
+fn parse_equation(eq: &str, n_inputs: usize) -> Result<Equation, String> {
+    let eq: String = eq.chars().filter(|c| !c.is_whitespace()).collect::<String>().replace("...", ".");
+    let (lhs, rhs) = match eq.split_once("->") {
+        Some((l, r)) => (l.to_string(), Some(r.to_string())),
+        None => (eq.clone(), None),
+    };
+    let inputs: Vec<Vec<char>> = lhs.split(',').map(|t| t.chars().collect()).collect();
+    if inputs.len() != n_inputs {
+        return Err(format!("equation has {} terms for {} inputs", inputs.len(), n_inputs));
+    }
+    let output = match rhs {
+        Some(r) => r.chars().collect(),
+        None => {
+            // Implicit mode: ellipsis first, then letters that occur once, alphabetically.
+            let mut counts: BTreeMap<char, usize> = BTreeMap::new();
+            for t in &inputs {
+                for &c in t {
+                    *counts.entry(c).or_default() += 1;
+                }
+            }
+            let mut out = Vec::new();
+            if counts.contains_key(&'.') {
+                out.push('.');
+            }
+            out.extend(counts.iter().filter(|(c, n)| **c != '.' && **n == 1).map(|(c, _)| *c));
+            out
+        }
+    };
+    Ok(Equation { inputs, output })
+}
+
+/// Letter sizes and the broadcast ellipsis dims of an Einsum.
+fn einsum_sizes(ctx: &Ctx) -> Result<(Equation, BTreeMap<char, Dim>, Vec<Dim>), String> {
+    let n = ctx.node.inputs.len();
+    let eq = parse_equation(&ctx.string("equation").ok_or("Einsum without equation")?, n)?;
+    let mut sizes: BTreeMap<char, Dim> = BTreeMap::new();
+    let mut ellipsis = Shape::of(Vec::new());
+    for (i, term) in eq.inputs.iter().enumerate() {
+        let dims = ctx.dims(i).ok_or("operand rank unknown")?;
+        let letters = term.iter().filter(|&&c| c != '.').count();
+        if dims.len() < letters {
+            return Err(format!("operand {i} has rank {} for term of {} letters", dims.len(), letters));
+        }
+        let ell_rank = dims.len() - letters;
+        let mut pos = 0;
+        for &c in term {
+            if c == '.' {
+                ellipsis = broadcast(&[ellipsis, Shape::of(dims[pos..pos + ell_rank].to_vec())])?;
+                pos += ell_rank;
+            } else {
+                let d = &dims[pos];
+                match sizes.get(&c) {
+                    Some(Dim::Known(1)) | None => {
+                        sizes.insert(c, d.clone());
+                    }
+                    Some(Dim::Known(_)) | Some(Dim::Sym(_)) => {}
+                    Some(Dim::Unknown) => {
+                        sizes.insert(c, d.clone());
+                    }
+                }
+                pos += 1;
+            }
+        }
+    }
+    Ok((eq, sizes, ellipsis.0.unwrap_or_default()))
+}
+
+fn einsum(ctx: &Ctx) -> Inferred {
+    let (eq, sizes, ell) = einsum_sizes(ctx)?;
+    let mut out = Vec::new();
+    for c in &eq.output {
+        if *c == '.' {
+            out.extend(ell.iter().cloned());
+        } else {
+            out.push(sizes.get(c).cloned().ok_or_else(|| format!("output letter {c} not in any input"))?);
+        }
+    }
+    Ok(vec![tensor(ctx.dtype(0), Shape::of(out))])
+}
+
+fn einsum_macs(ctx: &Ctx, _outs: &[Fact]) -> (Option<u64>, Option<u64>) {
+    let macs = (|| {
+        let (_, sizes, ell) = einsum_sizes(ctx).ok()?;
+        let mut all: Vec<u64> = sizes.values().map(Dim::known).collect::<Option<_>>()?;
+        all.extend(ell.iter().map(Dim::known).collect::<Option<Vec<_>>>()?);
+        count(&all)
+    })();
+    (macs, Some(0))
+}
+
+/// ONNX Attention (opset 23): Q, K, V as 3-D [B, S, H·D] or 4-D [B, H, S, D].
+fn attention(ctx: &Ctx) -> Inferred {
+    let q = ctx.dims(0).ok_or("Q rank unknown")?;
+    let k = ctx.dims(1).ok_or("K rank unknown")?;
+    let v = ctx.dims(2).ok_or("V rank unknown")?;
+    let dt = ctx.dtype(0);
+    let past = if ctx.has_input(4) { ctx.dims(4) } else { None };
+    let (y, kv_heads, kv_len, head_k, head_v, q_heads, q_len) = match (q.len(), k.len(), v.len()) {
+        (4, 4, 4) => (
+            vec![q[0].clone(), q[1].clone(), q[2].clone(), v[3].clone()],
+            k[1].clone(),
+            k[2].clone(),
+            k[3].clone(),
+            v[3].clone(),
+            q[1].clone(),
+            q[2].clone(),
+        ),
+        (3, 3, 3) => {
+            let qh = ctx.opt_int("q_num_heads").ok_or("3-D Attention without q_num_heads")?;
+            let kvh = ctx.opt_int("kv_num_heads").ok_or("3-D Attention without kv_num_heads")?;
+            let per = |d: &Dim, h: i64| match d {
+                Dim::Known(x) if h > 0 => Dim::Known(x / h as u64),
+                _ => Dim::Unknown,
+            };
+            let vh = per(&v[2], kvh);
+            let y_last = vh.mul(&Dim::Known(qh.max(0) as u64)).unwrap_or(Dim::Unknown);
+            (
+                vec![q[0].clone(), q[1].clone(), y_last],
+                Dim::Known(kvh.max(0) as u64),
+                k[1].clone(),
+                per(&k[2], kvh),
+                vh,
+                Dim::Known(qh.max(0) as u64),
+                q[1].clone(),
+            )
+        }
+        _ => return Err(format!("Q, K, V of ranks {}, {}, {}", q.len(), k.len(), v.len())),
+    };
+    let total = match &past {
+        Some(p) if p.len() == 4 => p[2].add(&kv_len).unwrap_or(Dim::Unknown),
+        _ => kv_len.clone(),
+    };
+    let mut outs = vec![tensor(dt, Shape::of(y))];
+    let batch = q[0].clone();
+    if ctx.outputs() > 1 {
+        outs.push(tensor(dt, Shape::of(vec![batch.clone(), kv_heads.clone(), total.clone(), head_k])));
+    }
+    if ctx.outputs() > 2 {
+        outs.push(tensor(dt, Shape::of(vec![batch.clone(), kv_heads, total.clone(), head_v])));
+    }
+    if ctx.outputs() > 3 {
+        outs.push(tensor(dt, Shape::of(vec![batch, q_heads, q_len, total])));
+    }
+    Ok(outs)
+}
+
+fn attention_macs(ctx: &Ctx, outs: &[Fact]) -> (Option<u64>, Option<u64>) {
+    let macs = (|| {
+        let y = outs.first()?.shape.element_count()?;
+        let q = ctx.shape(0).concrete()?;
+        let k = ctx.shape(1).concrete()?;
+        // Scores: B·Hq·Sq·Skv·Dqk; weighted sum: B·Hq·Sq·Skv·Dv = |Y|·Skv.
+        let (q_elems, skv) = (count(&q)?, if k.len() == 4 { k[2] } else { k[1] });
+        q_elems.checked_mul(skv)?.checked_add(y.checked_mul(skv)?)
+    })();
+    (macs, outs.first().and_then(|f| f.shape.element_count()).map(|y| y * 3))
+}
+
+/// com.microsoft Attention: input [B, S, hidden] and packed QKV weights.
+fn ms_attention(ctx: &Ctx) -> Inferred {
+    let x = ctx.dims(0).ok_or("input rank unknown")?;
+    if x.len() != 3 {
+        return Err(format!("input of rank {}", x.len()));
+    }
+    let v_hidden = match ctx.ints("qkv_hidden_sizes") {
+        Some(s) if s.len() == 3 => Dim::Known(s[2].max(0) as u64),
+        _ => match ctx.dims(1) {
+            Some(w) if w.len() == 2 => match &w[1] {
+                Dim::Known(n) => Dim::Known(n / 3),
+                _ => Dim::Unknown,
+            },
+            _ => Dim::Unknown,
+        },
+    };
+    Ok(vec![tensor(ctx.dtype(0), Shape::of(vec![x[0].clone(), x[1].clone(), v_hidden]))])
+}
+
+fn ms_attention_macs(ctx: &Ctx, _outs: &[Fact]) -> (Option<u64>, Option<u64>) {
+    let macs = (|| {
+        let x = ctx.shape(0).concrete()?;
+        let w = ctx.shape(1).concrete()?;
+        let proj = count(&x)?.checked_mul(*w.get(1)?)?;
+        let heads = ctx.opt_int("num_heads")?.max(1) as u64;
+        let (b, s, h) = (x[0], x[1], x[2]);
+        // Projection, then scores and weighted sum over all heads: 2·B·S·S·hidden.
+        let _ = heads;
+        proj.checked_add(2u64.checked_mul(b)?.checked_mul(s)?.checked_mul(s)?.checked_mul(h)?)
+    })();
+    (macs, Some(0))
+}
+
+fn mha(ctx: &Ctx) -> Inferred {
+    let q = ctx.dims(0).ok_or("query rank unknown")?;
+    if q.len() != 3 {
+        return Err(format!("query of rank {} (packed forms not modelled)", q.len()));
+    }
+    let v_last = match ctx.dims(2) {
+        Some(v) if v.len() == 3 => v[2].clone(),
+        _ => q[2].clone(),
+    };
+    Ok(vec![tensor(ctx.dtype(0), Shape::of(vec![q[0].clone(), q[1].clone(), v_last]))])
+}
+
+fn matmul_nbits(ctx: &Ctx) -> Inferred {
+    let a = ctx.dims(0).ok_or("A rank unknown")?;
+    let n = ctx.opt_int("N").ok_or("MatMulNBits without N")?;
+    let mut out = a.clone();
+    let last = out.last_mut().ok_or("A is a scalar")?;
+    *last = Dim::Known(n.max(0) as u64);
+    Ok(vec![tensor(ctx.dtype(0), Shape::of(out))])
+}
+
+fn matmul_nbits_macs(ctx: &Ctx, outs: &[Fact]) -> (Option<u64>, Option<u64>) {
+    let macs = (|| outs.first()?.shape.element_count()?.checked_mul(ctx.opt_int("K")?.max(0) as u64))();
+    (macs, Some(0))
+}
+
+fn fused_matmul(ctx: &Ctx) -> Inferred {
+    let (Some(mut a), Some(mut b)) = (ctx.dims(0), ctx.dims(1)) else { return Err("operand rank unknown".into()) };
+    if ctx.int("transA", 0) != 0 && a.len() >= 2 {
+        let n = a.len();
+        a.swap(n - 1, n - 2);
+    }
+    if ctx.int("transB", 0) != 0 && b.len() >= 2 {
+        let n = b.len();
+        b.swap(n - 1, n - 2);
+    }
+    Ok(vec![tensor(ctx.dtype(0), Shape::of(matmul_shape(&a, &b)?))])
+}
+
+macro_rules! op {
+    ($dom:literal, $name:literal, $infer:expr, $cost:expr) => {
+        OpDef { domain: $dom, op: $name, family: "matmul", infer: $infer, cost: $cost, fold: None }
+    };
+}
+
+pub static OPS: &[OpDef] = &[
+    op!("", "MatMul", matmul, CostRule::Custom(matmul_macs)),
+    op!("", "MatMulInteger", matmul, CostRule::Custom(matmul_macs)),
+    op!("", "QLinearMatMul", matmul, CostRule::Custom(matmul_macs)),
+    op!("", "Gemm", gemm, CostRule::Custom(gemm_macs)),
+    op!("", "Einsum", einsum, CostRule::Custom(einsum_macs)),
+    op!("", "Attention", attention, CostRule::Custom(attention_macs)),
+    op!("com.microsoft", "Attention", ms_attention, CostRule::Custom(ms_attention_macs)),
+    op!("com.microsoft", "MultiHeadAttention", mha, CostRule::PerOutput(1)),
+    op!("com.microsoft", "FusedMatMul", fused_matmul, CostRule::Custom(matmul_macs)),
+    op!("com.microsoft", "MatMulNBits", matmul_nbits, CostRule::Custom(matmul_nbits_macs)),
+    op!("com.microsoft", "MatMulIntegerToFloat", matmul, CostRule::Custom(matmul_macs)),
+    op!("com.microsoft", "DynamicQuantizeMatMul", matmul, CostRule::Custom(matmul_macs)),
+];

@@ -1,0 +1,118 @@
+//! What tilecut knows about each operator: one registry from (domain, op type) to a shape
+//! function, a cost rule and, for shape arithmetic, a constant folder. Families live in
+//! their own files; an op missing here becomes an unknown fact plus a diagnostic.
+//!
+//! Cost conventions (also in the README):
+//! - MACs count multiply-accumulates of the op's main contraction: Conv =
+//!   N·Cout·∏out_spatial·(Cin/group)·∏kernel; ConvTranspose = N·Cin·∏in_spatial·(Cout/group)·∏kernel;
+//!   MatMul = ∏batch·M·N·K; Gemm = M·N·K; Einsum = ∏ of every distinct index size; LSTM/GRU/RNN =
+//!   seq·dirs·batch·gates·hidden·(input+hidden); Attention = B·H·Sq·Skv·(Dqk+Dv).
+//!   Bias additions, activation functions and scaling are not MACs.
+//! - `ops` counts other arithmetic: element-wise ops one per output element (times the
+//!   per-op factor in the table), pools one per window element, reductions one per input element.
+//! - Data movement (Reshape, Transpose, Concat, Gather, …) costs neither: only bytes.
+
+mod control_flow;
+mod conv;
+mod elementwise;
+mod fold;
+mod matmul;
+mod norm;
+mod quant;
+mod recurrent;
+mod reduce;
+mod shape_ops;
+mod util;
+
+pub use util::broadcast;
+
+use crate::ir::{ConstValue, Fact, Node};
+
+/// What an op's functions see of one node.
+pub struct Ctx<'a> {
+    pub node: &'a Node,
+    pub inputs: Vec<Option<&'a Fact>>,
+    pub consts: Vec<Option<&'a ConstValue>>,
+    /// Opset version of the node's domain.
+    pub opset: i64,
+    /// Facts inferred for each body's outputs (If/Loop/Scan), in body order.
+    pub body_outputs: Vec<Vec<Fact>>,
+}
+
+/// An inference outcome for one node: the output facts, or why they are unknown.
+pub type Inferred = Result<Vec<Fact>, String>;
+
+/// How an op's arithmetic is counted.
+#[derive(Clone, Copy)]
+pub enum CostRule {
+    /// Pure data movement or metadata: no arithmetic.
+    Free,
+    /// `k` ops per element of output 0.
+    PerOutput(u64),
+    /// `k` ops per element of input 0 (reductions, normalisations).
+    PerInput(u64),
+    /// Op-specific: returns (macs, ops).
+    Custom(fn(&Ctx, &[Fact]) -> (Option<u64>, Option<u64>)),
+}
+
+/// Everything known about one op type.
+pub struct OpDef {
+    pub domain: &'static str,
+    pub op: &'static str,
+    /// The family file that owns it.
+    pub family: &'static str,
+    pub infer: fn(&Ctx) -> Inferred,
+    pub cost: CostRule,
+    /// Computes output values when inputs are small constants (shape arithmetic).
+    pub fold: Option<fn(&Ctx) -> Option<Vec<ConstValue>>>,
+}
+
+/// Domains tilecut treats as the standard one.
+pub fn is_default_domain(domain: &str) -> bool {
+    domain.is_empty() || domain == "ai.onnx"
+}
+
+/// The registry: every family's table, concatenated.
+pub fn registry() -> &'static [&'static [OpDef]] {
+    REGISTRY
+}
+
+static REGISTRY: &[&[OpDef]] = &[
+        elementwise::OPS,
+        conv::OPS,
+        matmul::OPS,
+        norm::OPS,
+        quant::OPS,
+        recurrent::OPS,
+        reduce::OPS,
+        shape_ops::OPS,
+        control_flow::OPS,
+];
+
+/// Looks an op up by domain and type.
+pub fn lookup(domain: &str, op: &str) -> Option<&'static OpDef> {
+    let d = if domain == "ai.onnx" { "" } else { domain };
+    registry().iter().flat_map(|t| t.iter()).find(|o| o.domain == d && o.op == op)
+}
+
+/// True for ops whose output is random: never folded as constants.
+pub fn is_random(op: &str) -> bool {
+    matches!(op, "RandomNormal" | "RandomUniform" | "RandomNormalLike" | "RandomUniformLike" | "Multinomial" | "Bernoulli")
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn registry_has_no_duplicates_and_every_op_has_a_cost_convention() {
+        let mut seen = std::collections::BTreeSet::new();
+        for op in registry().iter().flat_map(|t| t.iter()) {
+            assert!(seen.insert((op.domain, op.op)), "duplicate registry entry {}/{}", op.domain, op.op);
+            assert!(!op.op.is_empty() && !op.family.is_empty());
+            // Every entry has a cost rule by construction (the enum has no "unknown").
+            let _ = op.cost;
+        }
+        assert!(seen.len() > 150, "registry unexpectedly small: {}", seen.len());
+    }
+}

@@ -1,0 +1,67 @@
+//! LSTM, GRU and RNN (ONNX operator spec): Y [seq, dirs, batch, hidden] (layout 0) or
+//! [batch, seq, dirs, hidden] (layout 1), Y_h / Y_c [dirs, batch, hidden] (or batch-first).
+
+use crate::ir::{Dim, Fact, Shape};
+
+use super::util::tensor;
+use super::{CostRule, Ctx, Inferred, OpDef};
+
+fn gates(op: &str) -> u64 {
+    match op {
+        "LSTM" => 4,
+        "GRU" => 3,
+        _ => 1,
+    }
+}
+
+fn recurrent(ctx: &Ctx) -> Inferred {
+    let x = ctx.dims(0).ok_or("X rank unknown")?;
+    if x.len() != 3 {
+        return Err(format!("X of rank {}", x.len()));
+    }
+    let layout = ctx.int("layout", 0);
+    let (seq, batch) = if layout == 0 { (x[0].clone(), x[1].clone()) } else { (x[1].clone(), x[0].clone()) };
+    let dirs = if ctx.string("direction").as_deref() == Some("bidirectional") { 2 } else { 1 };
+    let hidden = match ctx.opt_int("hidden_size") {
+        Some(h) => Dim::Known(h.max(0) as u64),
+        None => match ctx.dims(2) {
+            // R is [dirs, gates·hidden, hidden].
+            Some(r) if r.len() == 3 => r[2].clone(),
+            _ => Dim::Unknown,
+        },
+    };
+    let dt = ctx.dtype(0);
+    let d = Dim::Known(dirs);
+    let y = if layout == 0 {
+        vec![seq, d.clone(), batch.clone(), hidden.clone()]
+    } else {
+        vec![batch.clone(), seq, d.clone(), hidden.clone()]
+    };
+    let state = if layout == 0 { vec![d, batch, hidden] } else { vec![batch, d, hidden] };
+    let mut outs = vec![tensor(dt, Shape::of(y))];
+    for _ in 1..ctx.outputs() {
+        outs.push(tensor(dt, Shape::of(state.clone())));
+    }
+    Ok(outs)
+}
+
+fn recurrent_macs(ctx: &Ctx, outs: &[Fact]) -> (Option<u64>, Option<u64>) {
+    let macs = (|| {
+        let y = outs.first()?.shape.concrete()?;
+        let x = ctx.shape(0).concrete()?;
+        let input = *x.last()?;
+        let hidden = *y.last()?;
+        // Every output element of every step: gates × (input + hidden) MACs.
+        let elems: u64 = y.iter().product();
+        elems.checked_mul(gates(&ctx.node.op_type))?.checked_mul(input.checked_add(hidden)?)
+    })();
+    (macs, outs.first().and_then(|f| f.shape.element_count()).map(|e| e * gates(&ctx.node.op_type) * 3))
+}
+
+macro_rules! op {
+    ($name:literal) => {
+        OpDef { domain: "", op: $name, family: "recurrent", infer: recurrent, cost: CostRule::Custom(recurrent_macs), fold: None }
+    };
+}
+
+pub static OPS: &[OpDef] = &[op!("LSTM"), op!("GRU"), op!("RNN")];

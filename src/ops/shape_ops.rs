@@ -1,0 +1,825 @@
+//! Shape and data-movement ops, with constant folding for the shape arithmetic exporters
+//! emit (Shape → Gather → Unsqueeze → Concat → Reshape and friends).
+
+use crate::ir::{AttrValue, ConstData, ConstValue, DType, Dim, Shape};
+use crate::values;
+
+use super::fold::{self, MAX_FOLD_ELEMENTS};
+use super::util::{broadcast, count, norm_axis, norm_insert_axis, product, tensor};
+use super::{CostRule, Ctx, Inferred, OpDef};
+
+/// Stands for a literal -1 inside a partly symbolic shape value (Reshape's "infer this dim").
+const INFER_MARK: &str = "-1";
+
+fn i64_shape(n: usize) -> Shape {
+    Shape::known(&[n as u64])
+}
+
+// ---- Constant, ConstantOfShape, Shape, Size, Range ------------------------------------
+
+fn constant_value(ctx: &Ctx) -> Option<(Option<DType>, Vec<u64>, Option<ConstValue>)> {
+    for a in &ctx.node.attrs {
+        let r = match (a.name.as_str(), &a.value) {
+            ("value", AttrValue::Tensor(t)) => (t.dtype, t.dims.clone(), values::decode(t)),
+            ("value_float", AttrValue::Float(f)) => (Some(DType::F32), vec![], Some(ConstValue::floats(vec![], vec![*f as f64]))),
+            ("value_floats", AttrValue::Floats(f)) => {
+                (Some(DType::F32), vec![f.len() as u64], Some(ConstValue::floats(vec![f.len() as u64], f.iter().map(|x| *x as f64).collect())))
+            }
+            ("value_int", AttrValue::Int(i)) => (Some(DType::I64), vec![], Some(ConstValue::ints(vec![], vec![*i]))),
+            ("value_ints", AttrValue::Ints(v)) => (Some(DType::I64), vec![v.len() as u64], Some(ConstValue::ints(vec![v.len() as u64], v.clone()))),
+            ("value_string", _) => (Some(DType::Str), vec![], None),
+            ("value_strings", AttrValue::Strings(v)) => (Some(DType::Str), vec![v.len() as u64], None),
+            _ => continue,
+        };
+        return Some(r);
+    }
+    None
+}
+
+fn constant(ctx: &Ctx) -> Inferred {
+    let (dt, dims, _) = constant_value(ctx).ok_or("Constant without a value attribute tilecut reads")?;
+    Ok(vec![tensor(dt, Shape::known(&dims))])
+}
+
+fn fold_constant(ctx: &Ctx) -> Option<Vec<ConstValue>> {
+    Some(vec![constant_value(ctx)?.2?])
+}
+
+fn constant_of_shape(ctx: &Ctx) -> Inferred {
+    let dt = match ctx.node.attr("value") {
+        Some(AttrValue::Tensor(t)) => t.dtype,
+        _ => Some(DType::F32),
+    };
+    let shape = match ctx.konst(0) {
+        Some(c) => Shape::of(c.as_dims()),
+        None => match ctx.shape(0).concrete() {
+            Some(s) if s.len() == 1 => Shape::of_rank(s[0] as usize),
+            _ => Shape::unknown(),
+        },
+    };
+    Ok(vec![tensor(dt, shape)])
+}
+
+fn fold_constant_of_shape(ctx: &Ctx) -> Option<Vec<ConstValue>> {
+    let dims: Vec<u64> = ctx.const_ints(0)?.iter().map(|&d| u64::try_from(d).ok()).collect::<Option<_>>()?;
+    let n = count(&dims)?;
+    if n > MAX_FOLD_ELEMENTS {
+        return None;
+    }
+    let fill = match ctx.node.attr("value") {
+        Some(AttrValue::Tensor(t)) => values::decode(t)?.as_floats().first().copied().unwrap_or(0.0),
+        _ => 0.0,
+    };
+    let is_float = match ctx.node.attr("value") {
+        Some(AttrValue::Tensor(t)) => t.dtype.is_none_or(DType::is_float),
+        _ => true,
+    };
+    Some(vec![if is_float {
+        ConstValue::floats(dims, vec![fill; n as usize])
+    } else {
+        ConstValue::ints(dims, vec![fill as i64; n as usize])
+    }])
+}
+
+/// Shape's `start`/`end` (opset 15), clamped as the spec says.
+fn shape_range(ctx: &Ctx, rank: usize) -> (usize, usize) {
+    let r = rank as i64;
+    let clamp = |v: i64| (if v < 0 { v + r } else { v }).clamp(0, r) as usize;
+    let start = clamp(ctx.int("start", 0));
+    let end = clamp(ctx.int("end", r));
+    (start, end.max(start))
+}
+
+fn shape(ctx: &Ctx) -> Inferred {
+    let shape = match ctx.dims(0) {
+        Some(d) => {
+            let (s, e) = shape_range(ctx, d.len());
+            i64_shape(e - s)
+        }
+        None => Shape::of_rank(1),
+    };
+    Ok(vec![tensor(Some(DType::I64), shape)])
+}
+
+fn fold_shape(ctx: &Ctx) -> Option<Vec<ConstValue>> {
+    let d = ctx.dims(0)?;
+    let (s, e) = shape_range(ctx, d.len());
+    let part = d[s..e].to_vec();
+    let dims = vec![part.len() as u64];
+    Some(vec![match part.iter().map(Dim::known).collect::<Option<Vec<u64>>>() {
+        Some(k) => ConstValue::ints(dims, k.into_iter().map(|x| x as i64).collect()),
+        None => ConstValue { dims, data: ConstData::Dims(part) },
+    }])
+}
+
+fn size(_ctx: &Ctx) -> Inferred {
+    Ok(vec![tensor(Some(DType::I64), Shape::scalar())])
+}
+
+fn fold_size(ctx: &Ctx) -> Option<Vec<ConstValue>> {
+    Some(vec![ConstValue::ints(vec![], vec![i64::try_from(ctx.shape(0).element_count()?).ok()?])])
+}
+
+fn range_len(ctx: &Ctx) -> Option<u64> {
+    let (s, l, d) = (ctx.konst(0)?, ctx.konst(1)?, ctx.konst(2)?);
+    let (s, l, d) = (*s.as_floats().first()?, *l.as_floats().first()?, *d.as_floats().first()?);
+    if d == 0.0 || !s.is_finite() || !l.is_finite() {
+        return None;
+    }
+    Some(((l - s) / d).ceil().max(0.0) as u64)
+}
+
+fn range(ctx: &Ctx) -> Inferred {
+    let shape = match range_len(ctx) {
+        Some(n) => Shape::known(&[n]),
+        None => Shape::of_rank(1),
+    };
+    Ok(vec![tensor(ctx.dtype(0), shape)])
+}
+
+fn fold_range(ctx: &Ctx) -> Option<Vec<ConstValue>> {
+    let n = range_len(ctx)?;
+    if n > MAX_FOLD_ELEMENTS {
+        return None;
+    }
+    let s = ctx.konst(0)?;
+    let (start, delta) = (*s.as_floats().first()?, *ctx.konst(2)?.as_floats().first()?);
+    let v: Vec<f64> = (0..n).map(|i| start + i as f64 * delta).collect();
+    Some(vec![super::util::const_like(s, vec![n], v)])
+}
+
+// ---- Reshape, Flatten, Transpose, Squeeze, Unsqueeze ----------------------------------
+
+/// Reshape with 0 (copy, unless allowzero) and -1 (infer) per the spec; symbolic sizes are
+/// carried through when the inferred dim's factors cancel.
+fn reshape_dims(input: Option<&[Dim]>, target: &[Dim], raw: &[i64], allowzero: bool) -> Result<Vec<Dim>, String> {
+    let mut out: Vec<Dim> = Vec::with_capacity(raw.len());
+    let mut infer_at = None;
+    for (i, (&r, t)) in raw.iter().zip(target).enumerate() {
+        if r == 0 && !allowzero && matches!(t, Dim::Known(0)) {
+            out.push(input.and_then(|d| d.get(i).cloned()).unwrap_or(Dim::Unknown));
+        } else if r == -1 {
+            if infer_at.is_some() {
+                return Err("shape has more than one -1".into());
+            }
+            infer_at = Some(i);
+            out.push(Dim::Unknown);
+        } else if r < -1 {
+            return Err(format!("shape value {r} is invalid"));
+        } else {
+            out.push(t.clone());
+        }
+    }
+    if let (Some(at), Some(input)) = (infer_at, input) {
+        out[at] = infer_dim(input, &out, at);
+    }
+    Ok(out)
+}
+
+/// The -1 dim of a reshape: ∏input / ∏(other output dims), cancelling equal symbols.
+fn infer_dim(input: &[Dim], out: &[Dim], at: usize) -> Dim {
+    let mut num: u64 = 1;
+    let mut syms: Vec<Dim> = Vec::new();
+    for d in input {
+        match d {
+            Dim::Known(v) => match num.checked_mul(*v) {
+                Some(x) => num = x,
+                None => return Dim::Unknown,
+            },
+            Dim::Sym(_) => syms.push(d.clone()),
+            Dim::Unknown => return Dim::Unknown,
+        }
+    }
+    let mut den: u64 = 1;
+    for (i, d) in out.iter().enumerate() {
+        if i == at {
+            continue;
+        }
+        match d {
+            Dim::Known(v) => match den.checked_mul(*v) {
+                Some(x) => den = x,
+                None => return Dim::Unknown,
+            },
+            Dim::Sym(_) => match syms.iter().position(|s| s == d) {
+                Some(p) => {
+                    syms.remove(p);
+                }
+                None => return Dim::Unknown,
+            },
+            Dim::Unknown => return Dim::Unknown,
+        }
+    }
+    if den == 0 || num % den != 0 {
+        return if num == 0 { Dim::Known(0) } else { Dim::Unknown };
+    }
+    let mut d = Dim::Known(num / den);
+    for s in syms {
+        d = d.mul(&s).unwrap_or(Dim::Unknown);
+    }
+    d
+}
+
+fn reshape(ctx: &Ctx) -> Inferred {
+    let (raw, target) = if ctx.opset >= 5 {
+        match ctx.konst(1) {
+            Some(c) => (c.as_ints(), c.as_dims()),
+            None => {
+                let rank = ctx.shape(1).concrete().and_then(|s| s.first().copied());
+                return Ok(vec![tensor(ctx.dtype(0), rank.map(|r| Shape::of_rank(r as usize)).unwrap_or_else(Shape::unknown))]);
+            }
+        }
+    } else {
+        let s = ctx.ints("shape").ok_or("Reshape-1 without shape attribute")?;
+        (s.clone(), s.iter().map(|&x| if x >= 0 { Dim::Known(x as u64) } else { Dim::Unknown }).collect())
+    };
+    // In a shape value, only the marker is "infer"; symbolic and unknown dims are sizes.
+    let literal: Vec<i64> = match ctx.konst(1).map(|c| &c.data) {
+        Some(ConstData::Dims(d)) => d
+            .iter()
+            .map(|x| match x {
+                Dim::Known(v) => *v as i64,
+                Dim::Sym(s) if &**s == INFER_MARK => -1,
+                _ => 1,
+            })
+            .collect(),
+        _ => raw,
+    };
+    let input = ctx.dims(0);
+    let dims = reshape_dims(input.as_deref(), &target, &literal, ctx.int("allowzero", 0) != 0)?;
+    Ok(vec![tensor(ctx.dtype(0), Shape::of(dims))])
+}
+
+fn fold_reshape(ctx: &Ctx) -> Option<Vec<ConstValue>> {
+    let data = ctx.konst(0)?;
+    let outs = reshape(ctx).ok()?;
+    let dims = outs.first()?.shape.concrete()?;
+    if count(&dims)? != data.len() as u64 {
+        return None;
+    }
+    let idx: Vec<usize> = (0..data.len()).collect();
+    Some(vec![data.pick(dims, &idx)])
+}
+
+fn flatten(ctx: &Ctx) -> Inferred {
+    let Some(d) = ctx.dims(0) else { return Ok(vec![tensor(ctx.dtype(0), Shape::of_rank(2))]) };
+    let axis = norm_insert_axis(ctx.int("axis", 1), d.len()).ok_or("axis out of range")?;
+    Ok(vec![tensor(ctx.dtype(0), Shape::of(vec![product(&d[..axis])?, product(&d[axis..])?]))])
+}
+
+fn transpose(ctx: &Ctx) -> Inferred {
+    let Some(d) = ctx.dims(0) else { return Ok(vec![tensor(ctx.dtype(0), Shape::unknown())]) };
+    let perm = ctx.ints("perm").unwrap_or_else(|| (0..d.len() as i64).rev().collect());
+    if perm.len() != d.len() {
+        return Err(format!("perm has {} entries for rank {}", perm.len(), d.len()));
+    }
+    let out = perm.iter().map(|&p| norm_axis(p, d.len()).map(|a| d[a].clone()).ok_or("perm entry out of range")).collect::<Result<_, _>>()?;
+    Ok(vec![tensor(ctx.dtype(0), Shape::of(out))])
+}
+
+/// Axes from the attribute (before `since`) or from input 1.
+fn axes(ctx: &Ctx, since: i64) -> Result<Option<Vec<i64>>, ()> {
+    if ctx.opset >= since {
+        if !ctx.has_input(1) {
+            return Ok(None);
+        }
+        ctx.const_ints(1).map(Some).ok_or(())
+    } else {
+        Ok(ctx.ints("axes"))
+    }
+}
+
+fn squeeze(ctx: &Ctx) -> Inferred {
+    let dt = ctx.dtype(0);
+    let Some(d) = ctx.dims(0) else { return Ok(vec![tensor(dt, Shape::unknown())]) };
+    let Ok(axes) = axes(ctx, 13) else { return Ok(vec![tensor(dt, Shape::unknown())]) };
+    let out = match axes {
+        Some(a) => {
+            let mut drop = vec![false; d.len()];
+            for x in a {
+                let i = norm_axis(x, d.len()).ok_or("axis out of range")?;
+                if let Dim::Known(v) = d[i] {
+                    if v != 1 {
+                        return Err(format!("cannot squeeze axis {i} of size {v}"));
+                    }
+                }
+                drop[i] = true;
+            }
+            d.iter().zip(drop).filter(|(_, x)| !x).map(|(v, _)| v.clone()).collect()
+        }
+        None => {
+            if d.iter().any(|x| !matches!(x, Dim::Known(_))) {
+                return Ok(vec![tensor(dt, Shape::unknown())]);
+            }
+            d.into_iter().filter(|x| *x != Dim::Known(1)).collect()
+        }
+    };
+    Ok(vec![tensor(dt, Shape::of(out))])
+}
+
+fn unsqueeze(ctx: &Ctx) -> Inferred {
+    let dt = ctx.dtype(0);
+    let Some(d) = ctx.dims(0) else { return Ok(vec![tensor(dt, Shape::unknown())]) };
+    let a = match axes(ctx, 13) {
+        Ok(Some(a)) => a,
+        Ok(None) => return Err("Unsqueeze without axes".into()),
+        Err(()) => return Ok(vec![tensor(dt, Shape::unknown())]),
+    };
+    let rank = d.len() + a.len();
+    let mut out: Vec<Option<Dim>> = vec![None; rank];
+    for x in &a {
+        let i = norm_axis(*x, rank).ok_or("axis out of range")?;
+        out[i] = Some(Dim::Known(1));
+    }
+    let mut it = d.into_iter();
+    let out = out.into_iter().map(|o| o.or_else(|| it.next()).unwrap_or(Dim::Unknown)).collect();
+    Ok(vec![tensor(dt, Shape::of(out))])
+}
+
+fn fold_same_data(ctx: &Ctx) -> Option<Vec<ConstValue>> {
+    let data = ctx.konst(0)?;
+    let out = (super::lookup(&ctx.node.domain, &ctx.node.op_type)?.infer)(ctx).ok()?;
+    let dims = out.first()?.shape.concrete()?;
+    if count(&dims)? != data.len() as u64 {
+        return None;
+    }
+    let idx: Vec<usize> = (0..data.len()).collect();
+    Some(vec![data.pick(dims, &idx)])
+}
+
+// ---- Concat, Split, Slice, Gather ------------------------------------------------------
+
+fn concat(ctx: &Ctx) -> Inferred {
+    let n = ctx.node.inputs.len();
+    let shapes: Vec<Option<Vec<Dim>>> = (0..n).filter(|&i| ctx.has_input(i)).map(|i| ctx.dims(i)).collect();
+    let dt = (0..n).find_map(|i| ctx.dtype(i));
+    let Some(rank) = shapes.iter().flatten().map(Vec::len).next() else { return Ok(vec![tensor(dt, Shape::unknown())]) };
+    let axis = norm_axis(ctx.int("axis", 0), rank).ok_or("axis out of range")?;
+    let mut out: Vec<Dim> = vec![Dim::Unknown; rank];
+    let mut total = Dim::Known(0);
+    for s in &shapes {
+        let Some(s) = s else {
+            total = Dim::Unknown;
+            continue;
+        };
+        if s.len() != rank {
+            return Err("inputs of different ranks".into());
+        }
+        for (i, d) in s.iter().enumerate() {
+            if i != axis && out[i] == Dim::Unknown {
+                out[i] = d.clone();
+            }
+        }
+        total = total.add(&s[axis]).ok_or("dim overflow")?;
+    }
+    out[axis] = total;
+    Ok(vec![tensor(dt, Shape::of(out))])
+}
+
+fn fold_concat(ctx: &Ctx) -> Option<Vec<ConstValue>> {
+    let parts = fold::all_consts(ctx)?;
+    if parts.iter().any(|p| p.dims.len() != 1) {
+        return None;
+    }
+    let any_dims = parts.iter().any(|p| matches!(p.data, ConstData::Dims(_)));
+    let any_float = parts.iter().any(|p| matches!(p.data, ConstData::Float(_)));
+    let n: usize = parts.iter().map(|p| p.len()).sum();
+    let dims = vec![n as u64];
+    Some(vec![if any_dims {
+        // A literal -1 next to symbolic sizes keeps its meaning for Reshape through a marker.
+        let dims_of = |p: &ConstValue| -> Vec<Dim> {
+            match &p.data {
+                ConstData::Dims(d) => d.clone(),
+                _ => p.as_ints().into_iter().map(|x| if x == -1 { Dim::sym(INFER_MARK) } else if x >= 0 { Dim::Known(x as u64) } else { Dim::Unknown }).collect(),
+            }
+        };
+        ConstValue { dims, data: ConstData::Dims(parts.iter().flat_map(|p| dims_of(p)).collect()) }
+    } else if any_float {
+        ConstValue::floats(dims, parts.iter().flat_map(|p| p.as_floats()).collect())
+    } else {
+        ConstValue::ints(dims, parts.iter().flat_map(|p| p.as_ints()).collect())
+    }])
+}
+
+fn split(ctx: &Ctx) -> Inferred {
+    let dt = ctx.dtype(0);
+    let n = ctx.outputs();
+    let Some(d) = ctx.dims(0) else { return Ok(vec![tensor(dt, Shape::unknown()); n]) };
+    let axis = norm_axis(ctx.int("axis", 0), d.len()).ok_or("axis out of range")?;
+    let sizes: Option<Vec<i64>> = if ctx.opset >= 13 {
+        if ctx.has_input(1) {
+            match ctx.const_ints(1) {
+                Some(s) => Some(s),
+                None => {
+                    let mut s = d.clone();
+                    s[axis] = Dim::Unknown;
+                    return Ok(vec![tensor(dt, Shape::of(s)); n]);
+                }
+            }
+        } else {
+            None
+        }
+    } else {
+        ctx.ints("split")
+    };
+    let parts: Vec<Dim> = match sizes {
+        Some(s) => {
+            if s.len() != n {
+                return Err(format!("split has {} sizes for {} outputs", s.len(), n));
+            }
+            s.iter().map(|&x| Dim::Known(x.max(0) as u64)).collect()
+        }
+        None => match &d[axis] {
+            Dim::Known(total) => {
+                let k = ctx.opt_int("num_outputs").map(|x| x.max(1) as u64).unwrap_or(n as u64).max(1);
+                // opset 18: chunks of ceil(total / k), the last one smaller.
+                let chunk = total.div_ceil(k);
+                (0..n as u64).map(|i| Dim::Known(chunk.min(total.saturating_sub(i * chunk)))).collect()
+            }
+            _ => vec![Dim::Unknown; n],
+        },
+    };
+    Ok(parts
+        .into_iter()
+        .map(|p| {
+            let mut s = d.clone();
+            s[axis] = p;
+            tensor(dt, Shape::of(s))
+        })
+        .collect())
+}
+
+/// Slice parameters: (starts, ends, axes, steps), from attributes (opset < 10) or inputs.
+fn slice_params(ctx: &Ctx) -> Option<(Vec<i64>, Vec<i64>, Option<Vec<i64>>, Option<Vec<i64>>)> {
+    if ctx.opset < 10 {
+        return Some((ctx.ints("starts")?, ctx.ints("ends")?, ctx.ints("axes"), None));
+    }
+    let opt = |i: usize| if ctx.has_input(i) { ctx.const_ints(i).map(Some) } else { Some(None) };
+    Some((ctx.const_ints(1)?, ctx.const_ints(2)?, opt(3)?, opt(4)?))
+}
+
+/// Per-axis (axis, start, end, step) after clamping, per the Slice spec.
+fn slice_ranges(ctx: &Ctx, d: &[Dim]) -> Result<Option<Vec<(usize, Option<(i64, i64, i64)>)>>, String> {
+    let Some((starts, ends, axes, steps)) = slice_params(ctx) else { return Ok(None) };
+    let axes = axes.unwrap_or_else(|| (0..starts.len() as i64).collect());
+    let steps = steps.unwrap_or_else(|| vec![1; starts.len()]);
+    if ends.len() != starts.len() || axes.len() != starts.len() || steps.len() != starts.len() {
+        return Err("starts, ends, axes and steps differ in length".into());
+    }
+    let mut out = Vec::new();
+    for i in 0..starts.len() {
+        let axis = norm_axis(axes[i], d.len()).ok_or("axis out of range")?;
+        let step = steps[i];
+        if step == 0 {
+            return Err("step 0".into());
+        }
+        let Dim::Known(dim) = d[axis] else {
+            out.push((axis, None));
+            continue;
+        };
+        let dim = dim as i64;
+        let fix = |v: i64| if v < 0 { v.saturating_add(dim) } else { v };
+        let (s, e) = (fix(starts[i]), fix(ends[i]));
+        let (s, e) = if step > 0 { (s.clamp(0, dim), e.clamp(0, dim)) } else { (s.clamp(0, dim - 1), e.clamp(-1, dim - 1)) };
+        out.push((axis, Some((s, e, step))));
+    }
+    Ok(Some(out))
+}
+
+fn slice(ctx: &Ctx) -> Inferred {
+    let dt = ctx.dtype(0);
+    let Some(d) = ctx.dims(0) else { return Ok(vec![tensor(dt, Shape::unknown())]) };
+    let Some(ranges) = slice_ranges(ctx, &d)? else {
+        // Unknown bounds: the rank stays, the sliced sizes are unknown.
+        let mut s = d.clone();
+        match ctx.opset >= 10 && ctx.has_input(3) {
+            true => match ctx.const_ints(3) {
+                Some(axes) => {
+                    for a in axes {
+                        if let Some(i) = norm_axis(a, s.len()) {
+                            s[i] = Dim::Unknown;
+                        }
+                    }
+                }
+                None => s.iter_mut().for_each(|x| *x = Dim::Unknown),
+            },
+            false => s.iter_mut().for_each(|x| *x = Dim::Unknown),
+        }
+        return Ok(vec![tensor(dt, Shape::of(s))]);
+    };
+    let mut out = d.clone();
+    for (axis, r) in ranges {
+        out[axis] = match r {
+            Some((s, e, step)) => {
+                let (span, st) = if step > 0 { ((e - s).max(0), step) } else { ((s - e).max(0), -step) };
+                let n = (span + st - 1) / st;
+                Dim::Known(n as u64)
+            }
+            None => Dim::Unknown,
+        };
+    }
+    Ok(vec![tensor(dt, Shape::of(out))])
+}
+
+fn fold_slice(ctx: &Ctx) -> Option<Vec<ConstValue>> {
+    let data = ctx.konst(0)?;
+    let d: Vec<Dim> = data.dims.iter().map(|&x| Dim::Known(x)).collect();
+    let ranges = slice_ranges(ctx, &d).ok()??;
+    let r: Vec<(usize, i64, i64, i64)> = ranges.into_iter().map(|(a, r)| r.map(|(s, e, st)| (a, s, e, st))).collect::<Option<_>>()?;
+    Some(vec![fold::slice(data, &r)?])
+}
+
+fn gather(ctx: &Ctx) -> Inferred {
+    let dt = ctx.dtype(0);
+    let (Some(d), Some(idx)) = (ctx.dims(0), ctx.dims(1)) else { return Ok(vec![tensor(dt, Shape::unknown())]) };
+    let axis = norm_axis(ctx.int("axis", 0), d.len()).ok_or("axis out of range")?;
+    let mut out = d[..axis].to_vec();
+    out.extend(idx);
+    out.extend_from_slice(&d[axis + 1..]);
+    Ok(vec![tensor(dt, Shape::of(out))])
+}
+
+fn fold_gather(ctx: &Ctx) -> Option<Vec<ConstValue>> {
+    let data = ctx.konst(0)?;
+    let idx = ctx.konst(1)?;
+    let axis = norm_axis(ctx.int("axis", 0), data.dims.len())?;
+    Some(vec![fold::gather(data, idx, axis)?])
+}
+
+fn gather_elements(ctx: &Ctx) -> Inferred {
+    Ok(vec![tensor(ctx.dtype(0), ctx.shape(1))])
+}
+
+fn gather_nd(ctx: &Ctx) -> Inferred {
+    let dt = ctx.dtype(0);
+    let (Some(d), Some(i)) = (ctx.dims(0), ctx.dims(1)) else { return Ok(vec![tensor(dt, Shape::unknown())]) };
+    let b = ctx.int("batch_dims", 0).max(0) as usize;
+    let Some(Dim::Known(last)) = i.last().cloned() else { return Ok(vec![tensor(dt, Shape::unknown())]) };
+    let last = last as usize;
+    if b + last > d.len() {
+        return Err("indices address more dims than data has".into());
+    }
+    let mut out = i[..i.len() - 1].to_vec();
+    out.extend_from_slice(&d[b + last..]);
+    Ok(vec![tensor(dt, Shape::of(out))])
+}
+
+// ---- Pad, Resize, Upsample, Tile, Expand -----------------------------------------------
+
+fn pad(ctx: &Ctx) -> Inferred {
+    let dt = ctx.dtype(0);
+    let Some(d) = ctx.dims(0) else { return Ok(vec![tensor(dt, Shape::unknown())]) };
+    let pads = if ctx.opset >= 11 { ctx.const_ints(1) } else { ctx.ints("pads").or_else(|| ctx.ints("paddings")) };
+    let Some(pads) = pads else { return Ok(vec![tensor(dt, Shape::of_rank(d.len()))]) };
+    let axes: Vec<usize> = if ctx.opset >= 18 && ctx.has_input(3) {
+        match ctx.const_ints(3) {
+            Some(a) => a.iter().map(|&x| norm_axis(x, d.len()).ok_or("axis out of range")).collect::<Result<_, _>>()?,
+            None => return Ok(vec![tensor(dt, Shape::of_rank(d.len()))]),
+        }
+    } else {
+        (0..d.len()).collect()
+    };
+    if pads.len() != 2 * axes.len() {
+        return Err(format!("pads has {} values for {} axes", pads.len(), axes.len()));
+    }
+    let mut out = d.clone();
+    for (k, &a) in axes.iter().enumerate() {
+        if let Dim::Known(v) = d[a] {
+            let n = v as i64 + pads[k] + pads[k + axes.len()];
+            out[a] = Dim::Known(n.max(0) as u64);
+        } else {
+            out[a] = Dim::Unknown;
+        }
+    }
+    Ok(vec![tensor(dt, Shape::of(out))])
+}
+
+fn scaled(d: &Dim, s: f64) -> Dim {
+    match d {
+        Dim::Known(v) => Dim::Known((*v as f64 * s).floor() as u64),
+        _ => Dim::Unknown,
+    }
+}
+
+fn resize(ctx: &Ctx) -> Inferred {
+    let dt = ctx.dtype(0);
+    let Some(d) = ctx.dims(0) else { return Ok(vec![tensor(dt, Shape::unknown())]) };
+    let (scale_slot, size_slot) = match (ctx.node.op_type.as_str(), ctx.opset) {
+        ("Upsample", _) | (_, ..=10) => (1, None),
+        _ => (2, Some(3)),
+    };
+    let axes: Vec<usize> = match ctx.ints("axes") {
+        Some(a) => a.iter().map(|&x| norm_axis(x, d.len()).ok_or("axis out of range")).collect::<Result<_, _>>()?,
+        None => (0..d.len()).collect(),
+    };
+    let unknown = || Ok(vec![tensor(dt, Shape::of_rank(d.len()))]);
+    let mut out = d.clone();
+    if let Some(sizes) = size_slot.filter(|&i| ctx.has_input(i)).map(|i| ctx.const_ints(i)) {
+        let Some(sizes) = sizes.filter(|s| !s.is_empty()) else { return unknown() };
+        if sizes.len() != axes.len() {
+            return Err("sizes length differs from the axes".into());
+        }
+        let policy = ctx.string("keep_aspect_ratio_policy").unwrap_or_else(|| "stretch".into());
+        if policy != "stretch" {
+            let known: Option<Vec<u64>> = axes.iter().map(|&a| d[a].known()).collect();
+            let Some(inp) = known else { return unknown() };
+            let ratios = sizes.iter().zip(&inp).map(|(&s, &i)| s as f64 / i as f64);
+            let r = if policy == "not_larger" { ratios.fold(f64::INFINITY, f64::min) } else { ratios.fold(0.0, f64::max) };
+            for (k, &a) in axes.iter().enumerate() {
+                out[a] = Dim::Known((inp[k] as f64 * r).round() as u64);
+            }
+        } else {
+            for (k, &a) in axes.iter().enumerate() {
+                out[a] = Dim::Known(sizes[k].max(0) as u64);
+            }
+        }
+        return Ok(vec![tensor(dt, Shape::of(out))]);
+    }
+    let scales: Option<Vec<f64>> = if ctx.node.op_type == "Upsample" && ctx.opset < 9 {
+        match ctx.node.attr("scales") {
+            Some(AttrValue::Floats(f)) => Some(f.iter().map(|&x| x as f64).collect()),
+            _ => None,
+        }
+    } else if ctx.has_input(scale_slot) {
+        ctx.konst(scale_slot).map(ConstValue::as_floats)
+    } else {
+        None
+    };
+    let Some(scales) = scales.filter(|s| !s.is_empty()) else { return unknown() };
+    if scales.len() != axes.len() {
+        return Err("scales length differs from the axes".into());
+    }
+    for (k, &a) in axes.iter().enumerate() {
+        out[a] = scaled(&d[a], scales[k]);
+    }
+    Ok(vec![tensor(dt, Shape::of(out))])
+}
+
+fn tile(ctx: &Ctx) -> Inferred {
+    let dt = ctx.dtype(0);
+    let Some(d) = ctx.dims(0) else { return Ok(vec![tensor(dt, Shape::unknown())]) };
+    let Some(reps) = ctx.const_ints(1) else { return Ok(vec![tensor(dt, Shape::of_rank(d.len()))]) };
+    if reps.len() != d.len() {
+        return Err("repeats length differs from the rank".into());
+    }
+    let out = d.iter().zip(&reps).map(|(x, &r)| x.mul(&Dim::Known(r.max(0) as u64)).ok_or("overflow")).collect::<Result<_, _>>()?;
+    Ok(vec![tensor(dt, Shape::of(out))])
+}
+
+fn expand(ctx: &Ctx) -> Inferred {
+    let dt = ctx.dtype(0);
+    let Some(target) = ctx.konst(1) else {
+        return Ok(vec![tensor(dt, Shape::unknown())]);
+    };
+    Ok(vec![tensor(dt, broadcast(&[ctx.shape(0), Shape::of(target.as_dims())])?)])
+}
+
+fn fold_expand(ctx: &Ctx) -> Option<Vec<ConstValue>> {
+    let data = ctx.konst(0)?;
+    let target = ctx.konst(1)?.try_ints()?;
+    let zeros_dims: Vec<u64> = target.iter().map(|&x| u64::try_from(x).ok()).collect::<Option<_>>()?;
+    let n = count(&zeros_dims)?;
+    if n > MAX_FOLD_ELEMENTS {
+        return None;
+    }
+    let zero = ConstValue::ints(zeros_dims.clone(), vec![0; n as usize]);
+    Some(vec![fold::elementwise(&[data, &zero], |a| Some(a[0]), |a| a[0], false)?])
+}
+
+// ---- Data-dependent and selection ops ---------------------------------------------------
+
+/// A size known only at run time, named after the node so the report can point at it.
+fn data_dependent(ctx: &Ctx, what: &str) -> Dim {
+    Dim::sym(&format!("{what}@{}", ctx.node.name))
+}
+
+fn top_k(ctx: &Ctx) -> Inferred {
+    let Some(d) = ctx.dims(0) else {
+        return Ok(vec![tensor(ctx.dtype(0), Shape::unknown()), tensor(Some(DType::I64), Shape::unknown())]);
+    };
+    let axis = norm_axis(ctx.int("axis", -1), d.len()).ok_or("axis out of range")?;
+    let k = if ctx.opset >= 10 { ctx.const_ints(1).and_then(|k| k.first().copied()) } else { ctx.opt_int("k") };
+    let mut out = d.clone();
+    out[axis] = match k {
+        Some(k) => Dim::Known(k.max(0) as u64),
+        None => data_dependent(ctx, "k"),
+    };
+    Ok(vec![tensor(ctx.dtype(0), Shape::of(out.clone())), tensor(Some(DType::I64), Shape::of(out))])
+}
+
+fn non_max_suppression(ctx: &Ctx) -> Inferred {
+    Ok(vec![tensor(Some(DType::I64), Shape::of(vec![data_dependent(ctx, "selected"), Dim::Known(3)]))])
+}
+
+fn non_zero(ctx: &Ctx) -> Inferred {
+    let rank = ctx.shape(0).rank().map(|r| Dim::Known(r as u64)).unwrap_or(Dim::Unknown);
+    Ok(vec![tensor(Some(DType::I64), Shape::of(vec![rank, data_dependent(ctx, "nonzero")]))])
+}
+
+fn compress(ctx: &Ctx) -> Inferred {
+    let dt = ctx.dtype(0);
+    let Some(mut d) = ctx.dims(0) else { return Ok(vec![tensor(dt, Shape::unknown())]) };
+    match ctx.opt_int("axis") {
+        Some(a) => {
+            let i = norm_axis(a, d.len()).ok_or("axis out of range")?;
+            d[i] = data_dependent(ctx, "kept");
+            Ok(vec![tensor(dt, Shape::of(d))])
+        }
+        None => Ok(vec![tensor(dt, Shape::of(vec![data_dependent(ctx, "kept")]))]),
+    }
+}
+
+fn unique(ctx: &Ctx) -> Inferred {
+    let n = data_dependent(ctx, "unique");
+    let mut outs = vec![tensor(ctx.dtype(0), match ctx.opt_int("axis") {
+        None => Shape::of(vec![n.clone()]),
+        Some(a) => match ctx.dims(0) {
+            Some(mut d) => {
+                let i = norm_axis(a, d.len()).ok_or("axis out of range")?;
+                d[i] = n.clone();
+                Shape::of(d)
+            }
+            None => Shape::unknown(),
+        },
+    })];
+    let len = ctx.shape(0).element_count().map(|e| Shape::known(&[e])).unwrap_or_else(|| Shape::of_rank(1));
+    for i in 1..ctx.outputs() {
+        outs.push(tensor(Some(DType::I64), if i == 2 { len.clone() } else { Shape::of(vec![n.clone()]) }));
+    }
+    Ok(outs)
+}
+
+fn depth_to_space(ctx: &Ctx) -> Inferred {
+    let dt = ctx.dtype(0);
+    let Some(d) = ctx.dims(0) else { return Ok(vec![tensor(dt, Shape::of_rank(4))]) };
+    if d.len() != 4 {
+        return Err(format!("input of rank {}", d.len()));
+    }
+    let b = ctx.int("blocksize", 0);
+    if b <= 0 {
+        return Err("blocksize must be positive".into());
+    }
+    let b = b as u64;
+    let up = ctx.node.op_type == "DepthToSpace";
+    let c = match &d[1] {
+        Dim::Known(c) if up => Dim::Known(c / (b * b)),
+        Dim::Known(c) => Dim::Known(c * b * b),
+        _ => Dim::Unknown,
+    };
+    let sp = |x: &Dim| match x {
+        Dim::Known(v) if up => Dim::Known(v * b),
+        Dim::Known(v) => Dim::Known(v / b),
+        _ => Dim::Unknown,
+    };
+    Ok(vec![tensor(dt, Shape::of(vec![d[0].clone(), c, sp(&d[2]), sp(&d[3])]))])
+}
+
+fn one_hot(ctx: &Ctx) -> Inferred {
+    let dt = ctx.dtype(2);
+    let Some(d) = ctx.dims(0) else { return Ok(vec![tensor(dt, Shape::unknown())]) };
+    let depth = ctx.konst(1).and_then(|c| c.as_floats().first().copied()).map(|x| Dim::Known(x.max(0.0) as u64)).unwrap_or(Dim::Unknown);
+    let axis = norm_insert_axis(ctx.int("axis", -1), d.len()).ok_or("axis out of range")?;
+    let mut out = d;
+    out.insert(axis, depth);
+    Ok(vec![tensor(dt, Shape::of(out))])
+}
+
+macro_rules! op {
+    ($name:literal, $infer:expr) => {
+        OpDef { domain: "", op: $name, family: "shape_ops", infer: $infer, cost: CostRule::Free, fold: None }
+    };
+    ($name:literal, $infer:expr, $fold:expr) => {
+        OpDef { domain: "", op: $name, family: "shape_ops", infer: $infer, cost: CostRule::Free, fold: Some($fold) }
+    };
+}
+
+pub static OPS: &[OpDef] = &[
+    op!("Constant", constant, fold_constant),
+    op!("ConstantOfShape", constant_of_shape, fold_constant_of_shape),
+    op!("Shape", shape, fold_shape),
+    op!("Size", size, fold_size),
+    op!("Range", range, fold_range),
+    op!("Reshape", reshape, fold_reshape),
+    op!("Flatten", flatten, fold_same_data),
+    op!("Transpose", transpose),
+    op!("Squeeze", squeeze, fold_same_data),
+    op!("Unsqueeze", unsqueeze, fold_same_data),
+    op!("Concat", concat, fold_concat),
+    op!("Split", split),
+    op!("Slice", slice, fold_slice),
+    op!("Gather", gather, fold_gather),
+    op!("GatherElements", gather_elements),
+    op!("GatherND", gather_nd),
+    op!("Pad", pad),
+    op!("Resize", resize),
+    op!("Upsample", resize),
+    op!("Tile", tile),
+    op!("Expand", expand, fold_expand),
+    op!("TopK", top_k),
+    op!("NonMaxSuppression", non_max_suppression),
+    op!("NonZero", non_zero),
+    op!("Compress", compress),
+    op!("Unique", unique),
+    op!("DepthToSpace", depth_to_space),
+    op!("SpaceToDepth", depth_to_space),
+    op!("OneHot", one_hot),
+];

@@ -1,0 +1,162 @@
+//! Helpers shared by the op families: attribute access, broadcasting, axis handling.
+
+use crate::ir::{AttrValue, ConstData, ConstValue, DType, Dim, Fact, Shape};
+
+use super::Ctx;
+
+impl<'a> Ctx<'a> {
+    pub fn fact(&self, i: usize) -> Option<&'a Fact> {
+        self.inputs.get(i).copied().flatten()
+    }
+
+    pub fn has_input(&self, i: usize) -> bool {
+        self.node.inputs.get(i).is_some_and(Option::is_some)
+    }
+
+    pub fn dtype(&self, i: usize) -> Option<DType> {
+        self.fact(i)?.dtype
+    }
+
+    pub fn shape(&self, i: usize) -> Shape {
+        self.fact(i).map(|f| f.shape.clone()).unwrap_or_else(Shape::unknown)
+    }
+
+    pub fn dims(&self, i: usize) -> Option<Vec<Dim>> {
+        self.fact(i)?.shape.0.clone()
+    }
+
+    pub fn konst(&self, i: usize) -> Option<&'a ConstValue> {
+        self.consts.get(i).copied().flatten()
+    }
+
+    pub fn const_ints(&self, i: usize) -> Option<Vec<i64>> {
+        self.konst(i).map(ConstValue::as_ints)
+    }
+
+    pub fn outputs(&self) -> usize {
+        self.node.outputs.len()
+    }
+
+    pub fn int(&self, name: &str, default: i64) -> i64 {
+        match self.node.attr(name) {
+            Some(AttrValue::Int(v)) => *v,
+            _ => default,
+        }
+    }
+
+    pub fn opt_int(&self, name: &str) -> Option<i64> {
+        match self.node.attr(name) {
+            Some(AttrValue::Int(v)) => Some(*v),
+            _ => None,
+        }
+    }
+
+    pub fn float(&self, name: &str, default: f32) -> f32 {
+        match self.node.attr(name) {
+            Some(AttrValue::Float(v)) => *v,
+            _ => default,
+        }
+    }
+
+    pub fn ints(&self, name: &str) -> Option<Vec<i64>> {
+        match self.node.attr(name) {
+            Some(AttrValue::Ints(v)) => Some(v.clone()),
+            _ => None,
+        }
+    }
+
+    pub fn string(&self, name: &str) -> Option<String> {
+        match self.node.attr(name) {
+            Some(AttrValue::String(s)) => Some(s.clone()),
+            _ => None,
+        }
+    }
+
+    /// An axis attribute normalised against `rank`, or an error naming the node.
+    pub fn axis(&self, value: i64, rank: usize) -> Result<usize, String> {
+        norm_axis(value, rank).ok_or_else(|| format!("axis {value} out of range for rank {rank}"))
+    }
+}
+
+pub fn norm_axis(value: i64, rank: usize) -> Option<usize> {
+    let r = rank as i64;
+    let a = if value < 0 { value + r } else { value };
+    (0..r).contains(&a).then_some(a as usize)
+}
+
+/// Like `norm_axis`, but for positions an axis may be inserted at (0..=rank).
+pub fn norm_insert_axis(value: i64, rank: usize) -> Option<usize> {
+    let r = rank as i64;
+    let a = if value < 0 { value + r + 1 } else { value };
+    (0..=r).contains(&a).then_some(a as usize)
+}
+
+pub fn same_as(ctx: &Ctx, i: usize) -> Fact {
+    ctx.fact(i).cloned().map(|mut f| {
+        if f.value_type != crate::ir::ValueType::Tensor {
+            return f;
+        }
+        f.value_type = crate::ir::ValueType::Tensor;
+        f
+    }).unwrap_or_default()
+}
+
+pub fn tensor(dtype: Option<DType>, shape: Shape) -> Fact {
+    Fact::tensor(dtype, shape)
+}
+
+fn broadcast_dim(a: &Dim, b: &Dim) -> Result<Dim, String> {
+    Ok(match (a, b) {
+        (Dim::Known(1), d) | (d, Dim::Known(1)) => d.clone(),
+        (Dim::Known(x), Dim::Known(y)) => {
+            if x != y {
+                return Err(format!("cannot broadcast dims {x} and {y}"));
+            }
+            Dim::Known(*x)
+        }
+        // A known size above one wins: the other must equal it or be 1 for the model to be valid.
+        (Dim::Known(x), _) | (_, Dim::Known(x)) => Dim::Known(*x),
+        (Dim::Sym(x), Dim::Sym(y)) if x == y => Dim::Sym(x.clone()),
+        _ => Dim::Unknown,
+    })
+}
+
+/// Multidirectional (numpy-style) broadcasting, ONNX "Broadcasting in ONNX".
+pub fn broadcast(shapes: &[Shape]) -> Result<Shape, String> {
+    let mut out: Vec<Dim> = Vec::new();
+    for s in shapes {
+        let Some(dims) = s.dims() else { return Ok(Shape::unknown()) };
+        if dims.len() > out.len() {
+            let mut grown = vec![Dim::Known(1); dims.len() - out.len()];
+            grown.extend(out);
+            out = grown;
+        }
+        let off = out.len() - dims.len();
+        for (i, d) in dims.iter().enumerate() {
+            out[off + i] = broadcast_dim(&out[off + i], d)?;
+        }
+    }
+    Ok(Shape::of(out))
+}
+
+/// Product of dims as a Dim (symbolic where needed); error on overflow.
+pub fn product(dims: &[Dim]) -> Result<Dim, String> {
+    let mut acc = Dim::Known(1);
+    for d in dims {
+        acc = acc.mul(d).ok_or("dim product overflows 64 bits")?;
+    }
+    Ok(acc)
+}
+
+/// Checked product of known sizes.
+pub fn count(dims: &[u64]) -> Option<u64> {
+    dims.iter().try_fold(1u64, |a, &d| a.checked_mul(d))
+}
+
+/// A constant with the same element kind as `like` (ints stay ints).
+pub fn const_like(like: &ConstValue, dims: Vec<u64>, v: Vec<f64>) -> ConstValue {
+    match like.data {
+        ConstData::Float(_) => ConstValue::floats(dims, v),
+        _ => ConstValue::ints(dims, v.into_iter().map(|x| x as i64).collect()),
+    }
+}

@@ -1,0 +1,341 @@
+//! `tilecut inspect`: what the reader found in a model.
+//!
+//! JSON shape (schema in `schemas/inspect.schema.json`, version `INSPECT_SCHEMA_VERSION`):
+//! `schema_version`; `model` {path, ir_version, producer, opsets[{domain, version}], nodes,
+//! nodes_in_subgraphs, functions[], params, weight_bytes, macs, ops, activation_bytes,
+//! unknown_because[]}; `inputs[]`/`outputs[]` {name, dtype, shape}; `op_counts[]` {op, count};
+//! `tensors[]` {name, dtype, shape, kind, producer, bytes}; `unknown_shapes[]` {tensor, node,
+//! reason}; `warnings[]` {code, node?, tensor?, message}. A shape is an array of integers
+//! (known), strings (symbolic) and nulls (unknown), or null when even the rank is unknown;
+//! a figure that depends on an unknown dim is null and `unknown_because` names the dims.
+
+use std::collections::BTreeMap;
+use std::io::Write;
+
+use serde::Serialize;
+use tabled::settings::Style;
+use tabled::{Table, Tabled};
+
+use crate::diag::Diagnostic;
+use crate::infer::UnknownReasons;
+use crate::ir::{DType, Dim, Fact, Graph, Model, Shape, ValueKind, ValueType};
+
+use super::{grouped, maybe};
+
+pub const INSPECT_SCHEMA_VERSION: u32 = 1;
+
+#[derive(Serialize, Debug, Clone)]
+pub struct InspectReport {
+    pub schema_version: u32,
+    pub model: ModelSummary,
+    pub inputs: Vec<Port>,
+    pub outputs: Vec<Port>,
+    pub op_counts: Vec<OpCount>,
+    pub tensors: Vec<TensorRow>,
+    pub unknown_shapes: Vec<UnknownShape>,
+    pub warnings: Vec<Diagnostic>,
+}
+
+#[derive(Serialize, Debug, Clone)]
+pub struct Opset {
+    pub domain: String,
+    pub version: i64,
+}
+
+#[derive(Serialize, Debug, Clone)]
+pub struct ModelSummary {
+    pub path: String,
+    pub ir_version: i64,
+    pub producer: String,
+    pub opsets: Vec<Opset>,
+    pub nodes: usize,
+    pub nodes_in_subgraphs: usize,
+    pub functions: Vec<String>,
+    pub params: u64,
+    pub weight_bytes: u64,
+    pub macs: Option<u64>,
+    pub ops: Option<u64>,
+    pub activation_bytes: Option<u64>,
+    pub unknown_because: Vec<String>,
+}
+
+#[derive(Serialize, Debug, Clone)]
+pub struct Port {
+    pub name: String,
+    pub dtype: Option<String>,
+    pub shape: Option<Vec<serde_json::Value>>,
+}
+
+#[derive(Serialize, Debug, Clone)]
+pub struct OpCount {
+    pub op: String,
+    pub count: usize,
+}
+
+#[derive(Serialize, Debug, Clone)]
+pub struct TensorRow {
+    pub name: String,
+    pub dtype: Option<String>,
+    pub shape: Option<Vec<serde_json::Value>>,
+    pub kind: &'static str,
+    pub producer: Option<String>,
+    pub bytes: Option<u64>,
+}
+
+#[derive(Serialize, Debug, Clone)]
+pub struct UnknownShape {
+    pub tensor: String,
+    pub node: Option<String>,
+    pub reason: String,
+}
+
+/// Shape as JSON: integers, strings for symbols, null for unknown dims.
+pub fn shape_json(s: &Shape) -> Option<Vec<serde_json::Value>> {
+    s.dims().map(|d| {
+        d.iter()
+            .map(|x| match x {
+                Dim::Known(v) => serde_json::Value::from(*v),
+                Dim::Sym(s) => serde_json::Value::from(s.to_string()),
+                Dim::Unknown => serde_json::Value::Null,
+            })
+            .collect()
+    })
+}
+
+fn dtype_name(f: &Fact) -> Option<String> {
+    match &f.value_type {
+        ValueType::Tensor => f.dtype.map(|d| d.name().to_string()),
+        ValueType::SparseTensor => f.dtype.map(|d| format!("sparse({})", d.name())),
+        ValueType::Sequence(inner) => Some(format!("sequence({})", inner.dtype.map(DType::name).unwrap_or("?"))),
+        ValueType::Optional(inner) => Some(format!("optional({})", inner.dtype.map(DType::name).unwrap_or("?"))),
+        ValueType::Map => Some("map".into()),
+    }
+}
+
+/// Weights: stored initializers and generated constants (Constant, ConstantOfShape) that are
+/// not integer shape/index data. Counted once, in every graph, bodies included.
+fn weights(g: &Graph, acc: &mut (u64, u64)) {
+    for v in &g.values {
+        let source = match v.kind {
+            ValueKind::Initializer => true,
+            ValueKind::Constant => v.producer.is_some_and(|p| matches!(g.node(p).op_type.as_str(), "Constant" | "ConstantOfShape")),
+            _ => false,
+        };
+        if !source || matches!(v.fact.dtype, Some(DType::I64) | Some(DType::Bool) | Some(DType::Str) | None) {
+            continue;
+        }
+        let n = v.data.as_ref().and_then(|d| d.element_count()).or_else(|| v.fact.shape.element_count()).unwrap_or(0);
+        let b = v.data.as_ref().and_then(|d| d.bytes()).or_else(|| v.fact.bytes()).unwrap_or(0);
+        acc.0 = acc.0.saturating_add(n);
+        acc.1 = acc.1.saturating_add(b);
+    }
+    for n in &g.nodes {
+        for b in &n.bodies {
+            weights(&b.graph, acc);
+        }
+    }
+}
+
+fn count_body_nodes(g: &Graph) -> usize {
+    g.nodes.iter().flat_map(|n| n.bodies.iter()).map(|b| b.graph.nodes.len() + count_body_nodes(&b.graph)).sum()
+}
+
+/// Builds the report. Pure: same model, same report.
+pub fn build(model: &Model, diags: &[Diagnostic], reasons: &UnknownReasons) -> InspectReport {
+    let g = &model.graph;
+    let port = |id: &crate::ir::ValueId| {
+        let v = g.value(*id);
+        Port { name: v.name.clone(), dtype: dtype_name(&v.fact), shape: shape_json(&v.fact.shape) }
+    };
+    let mut counts: BTreeMap<String, usize> = BTreeMap::new();
+    let mut macs = Some(0u64);
+    let mut ops = Some(0u64);
+    let mut because: Vec<String> = Vec::new();
+    for n in &g.nodes {
+        let label = if n.is_default_domain() { n.op_type.clone() } else { format!("{}.{}", n.domain, n.op_type) };
+        *counts.entry(label).or_default() += 1;
+        if n.folded {
+            continue;
+        }
+        macs = macs.zip(n.cost.macs).and_then(|(a, b)| a.checked_add(b));
+        ops = ops.zip(n.cost.ops).and_then(|(a, b)| a.checked_add(b));
+        if n.cost.macs.is_none() || n.cost.ops.is_none() {
+            because.extend(n.cost.needs_dims.iter().cloned());
+        }
+    }
+    let mut activation_bytes = Some(0u64);
+    let mut tensors = Vec::with_capacity(g.values.len());
+    for v in &g.values {
+        let bytes = v.data.as_ref().and_then(|d| d.bytes()).or_else(|| v.fact.bytes());
+        if matches!(v.kind, ValueKind::Input | ValueKind::Activation | ValueKind::Output) && !g.captured.iter().any(|c| g.value(*c).name == v.name) {
+            activation_bytes = activation_bytes.zip(bytes).and_then(|(a, b)| a.checked_add(b));
+            if bytes.is_none() {
+                because.extend(v.fact.shape.symbols());
+            }
+        }
+        tensors.push(TensorRow {
+            name: v.name.clone(),
+            dtype: dtype_name(&v.fact),
+            shape: shape_json(&v.fact.shape),
+            kind: v.kind.as_str(),
+            producer: v.producer.map(|p| g.node(p).name.clone()),
+            bytes,
+        });
+    }
+    because.sort();
+    because.dedup();
+    let mut w = (0, 0);
+    weights(g, &mut w);
+    let unknown_shapes = reasons
+        .iter()
+        .map(|(id, why)| {
+            let v = g.value(*id);
+            UnknownShape { tensor: v.name.clone(), node: v.producer.map(|p| g.node(p).name.clone()), reason: why.clone() }
+        })
+        .collect();
+    let mut warnings = diags.to_vec();
+    warnings.sort();
+    warnings.dedup();
+    InspectReport {
+        schema_version: INSPECT_SCHEMA_VERSION,
+        model: ModelSummary {
+            path: model.path.display().to_string(),
+            ir_version: model.ir_version,
+            producer: model.producer.clone(),
+            opsets: model.opsets.iter().map(|(d, v)| Opset { domain: if d.is_empty() { "ai.onnx".into() } else { d.clone() }, version: *v }).collect(),
+            nodes: g.nodes.len(),
+            nodes_in_subgraphs: count_body_nodes(g),
+            functions: model.functions.clone(),
+            params: w.0,
+            weight_bytes: w.1,
+            macs,
+            ops,
+            activation_bytes,
+            unknown_because: because,
+        },
+        inputs: g.inputs.iter().map(port).collect(),
+        outputs: g.outputs.iter().map(port).collect(),
+        op_counts: counts.into_iter().map(|(op, count)| OpCount { op, count }).collect(),
+        tensors,
+        unknown_shapes,
+        warnings,
+    }
+}
+
+pub fn render_json(r: &InspectReport, out: &mut dyn Write) -> std::io::Result<()> {
+    serde_json::to_writer_pretty(&mut *out, r)?;
+    writeln!(out)
+}
+
+fn shape_text(s: &Option<Vec<serde_json::Value>>) -> String {
+    match s {
+        None => "?".into(),
+        Some(d) => {
+            let parts: Vec<String> = d
+                .iter()
+                .map(|x| match x {
+                    serde_json::Value::Null => "?".into(),
+                    serde_json::Value::String(s) => s.clone(),
+                    other => other.to_string(),
+                })
+                .collect();
+            format!("[{}]", parts.join(", "))
+        }
+    }
+}
+
+#[derive(Tabled)]
+struct KeyValue {
+    #[tabled(rename = "model")]
+    key: String,
+    #[tabled(rename = "")]
+    value: String,
+}
+
+#[derive(Tabled)]
+struct PortRow {
+    #[tabled(rename = "port")]
+    side: &'static str,
+    name: String,
+    dtype: String,
+    shape: String,
+}
+
+#[derive(Tabled)]
+struct OpRow {
+    op: String,
+    nodes: usize,
+}
+
+#[derive(Tabled)]
+struct UnknownRow {
+    tensor: String,
+    node: String,
+    reason: String,
+}
+
+/// Most rows a table section shows before it says how many it left out.
+const TABLE_ROW_LIMIT: usize = 25;
+
+pub fn render_table(r: &InspectReport, out: &mut dyn Write) -> std::io::Result<()> {
+    let m = &r.model;
+    let opsets: Vec<String> = m.opsets.iter().map(|o| format!("{} {}", o.domain, o.version)).collect();
+    let mut kv = vec![
+        KeyValue { key: "file".into(), value: m.path.clone() },
+        KeyValue { key: "ir version".into(), value: m.ir_version.to_string() },
+        KeyValue { key: "opsets".into(), value: opsets.join(", ") },
+        KeyValue { key: "nodes".into(), value: format!("{} (+{} in subgraphs)", grouped(m.nodes as u64), grouped(m.nodes_in_subgraphs as u64)) },
+        KeyValue { key: "parameters".into(), value: grouped(m.params) },
+        KeyValue { key: "weight bytes".into(), value: grouped(m.weight_bytes) },
+        KeyValue { key: "MACs".into(), value: maybe(m.macs) },
+        KeyValue { key: "other ops".into(), value: maybe(m.ops) },
+        KeyValue { key: "activation bytes".into(), value: maybe(m.activation_bytes) },
+    ];
+    if !m.producer.is_empty() {
+        kv.insert(1, KeyValue { key: "producer".into(), value: m.producer.clone() });
+    }
+    if !m.unknown_because.is_empty() {
+        kv.push(KeyValue { key: "unknown until fixed".into(), value: m.unknown_because.iter().map(|d| format!("--dim {d}=N")).collect::<Vec<_>>().join(" ") });
+    }
+    writeln!(out, "{}", Table::new(kv).with(Style::sharp()))?;
+    let ports: Vec<PortRow> = r
+        .inputs
+        .iter()
+        .map(|p| ("input", p))
+        .chain(r.outputs.iter().map(|p| ("output", p)))
+        .map(|(side, p)| PortRow { side, name: p.name.clone(), dtype: p.dtype.clone().unwrap_or_else(|| "?".into()), shape: shape_text(&p.shape) })
+        .collect();
+    writeln!(out, "{}", Table::new(ports).with(Style::sharp()))?;
+    let mut ops: Vec<OpRow> = r.op_counts.iter().map(|o| OpRow { op: o.op.clone(), nodes: o.count }).collect();
+    ops.sort_by(|a, b| b.nodes.cmp(&a.nodes).then_with(|| a.op.cmp(&b.op)));
+    writeln!(out, "{}", Table::new(ops).with(Style::sharp()))?;
+    if !r.unknown_shapes.is_empty() {
+        let rows: Vec<UnknownRow> = r
+            .unknown_shapes
+            .iter()
+            .take(TABLE_ROW_LIMIT)
+            .map(|u| UnknownRow { tensor: u.tensor.clone(), node: u.node.clone().unwrap_or_else(|| "(graph input)".into()), reason: u.reason.clone() })
+            .collect();
+        writeln!(out, "tensors with unknown shapes: {}", r.unknown_shapes.len())?;
+        writeln!(out, "{}", Table::new(rows).with(Style::sharp()))?;
+        if r.unknown_shapes.len() > TABLE_ROW_LIMIT {
+            writeln!(out, "… {} more (see --format json)", r.unknown_shapes.len() - TABLE_ROW_LIMIT)?;
+        }
+    }
+    if !r.warnings.is_empty() {
+        writeln!(out, "warnings: {}", r.warnings.len())?;
+        for w in r.warnings.iter().take(TABLE_ROW_LIMIT) {
+            let at = match (&w.node, &w.tensor) {
+                (Some(n), Some(t)) => format!(" [node {n}, tensor {t}]"),
+                (Some(n), None) => format!(" [node {n}]"),
+                (None, Some(t)) => format!(" [tensor {t}]"),
+                (None, None) => String::new(),
+            };
+            writeln!(out, "  {}: {}{}", w.code, w.message, at)?;
+        }
+        if r.warnings.len() > TABLE_ROW_LIMIT {
+            writeln!(out, "  … {} more (see --format json)", r.warnings.len() - TABLE_ROW_LIMIT)?;
+        }
+    }
+    Ok(())
+}

@@ -1,0 +1,29 @@
+//! Reports: one view model per command, the only serializable trees, and one renderer per
+//! format. Only this module (and `main` for errors) writes to stdout.
+
+pub mod inspect;
+
+/// Output formats of the reading commands.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, clap::ValueEnum)]
+pub enum Format {
+    Table,
+    Json,
+}
+
+/// Formats a count with thousands separators, for tables.
+pub fn grouped(n: u64) -> String {
+    let s = n.to_string();
+    let mut out = String::with_capacity(s.len() + s.len() / 3);
+    for (i, c) in s.chars().enumerate() {
+        if i > 0 && (s.len() - i) % 3 == 0 {
+            out.push('_');
+        }
+        out.push(c);
+    }
+    out
+}
+
+/// A figure that may be unknown, for tables.
+pub fn maybe(n: Option<u64>) -> String {
+    n.map(grouped).unwrap_or_else(|| "unknown".into())
+}

@@ -75,6 +75,10 @@ fn loop_(ctx: &Ctx) -> Inferred {
 
 /// Scan (opset 9+): state outputs keep the body's facts; scan outputs gain the scan axis.
 fn scan(ctx: &Ctx) -> Inferred {
+    if ctx.opset < 9 {
+        // Scan-8 has a batch axis and sequence_lens input; not modelled.
+        return Err("Scan before opset 9 (batched form) is not modelled".into());
+    }
     let body = ctx.body_outputs.first().ok_or("Scan without body")?;
     let n_scan_in = ctx.int("num_scan_inputs", 0).max(0) as usize;
     let n_state = ctx.node.inputs.len().saturating_sub(n_scan_in);

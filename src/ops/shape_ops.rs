@@ -262,7 +262,13 @@ fn fold_reshape(ctx: &Ctx) -> Option<Vec<ConstValue>> {
 
 fn flatten(ctx: &Ctx) -> Inferred {
     let Some(d) = ctx.dims(0) else { return Ok(vec![tensor(ctx.dtype(0), Shape::of_rank(2))]) };
-    let axis = norm_insert_axis(ctx.int("axis", 1), d.len()).ok_or("axis out of range")?;
+    // Flatten's axis lies in [-r, r]; a negative one counts from the end (r + axis).
+    let (r, a) = (d.len() as i64, ctx.int("axis", 1));
+    let axis = if a < 0 { a + r } else { a };
+    if !(0..=r).contains(&axis) {
+        return Err(format!("axis {a} out of range for rank {r}"));
+    }
+    let axis = axis as usize;
     Ok(vec![tensor(ctx.dtype(0), Shape::of(vec![product(&d[..axis])?, product(&d[axis..])?]))])
 }
 
@@ -741,7 +747,11 @@ fn unique(ctx: &Ctx) -> Inferred {
             None => Shape::unknown(),
         },
     })];
-    let len = ctx.shape(0).element_count().map(|e| Shape::known(&[e])).unwrap_or_else(|| Shape::of_rank(1));
+    // inverse_indices: one per element, or one per slice along `axis`.
+    let len = match ctx.opt_int("axis") {
+        Some(a) => ctx.dims(0).and_then(|d| norm_axis(a, d.len()).map(|i| Shape::of(vec![d[i].clone()]))).unwrap_or_else(|| Shape::of_rank(1)),
+        None => ctx.shape(0).element_count().map(|e| Shape::known(&[e])).unwrap_or_else(|| Shape::of_rank(1)),
+    };
     for i in 1..ctx.outputs() {
         outs.push(tensor(Some(DType::I64), if i == 2 { len.clone() } else { Shape::of(vec![n.clone()]) }));
     }

@@ -1,0 +1,94 @@
+//! Helpers shared by the integration tests: building small models as protobuf in code.
+#![allow(dead_code)]
+
+use std::path::{Path, PathBuf};
+use std::process::Command;
+
+use prost::Message;
+use tilecut::onnx::{self, tensor_shape_proto::dimension::Value as D, type_proto, ModelProto, TensorProto};
+
+pub fn bin() -> Command {
+    Command::new(env!("CARGO_BIN_EXE_tilecut"))
+}
+
+pub fn conformance(name: &str) -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/onnx-node").join(name)
+}
+
+pub enum Dm {
+    N(i64),
+    S(&'static str),
+}
+
+pub fn vi(name: &str, elem: i32, dims: &[Dm]) -> onnx::ValueInfoProto {
+    let dim = dims
+        .iter()
+        .map(|d| onnx::tensor_shape_proto::Dimension {
+            value: Some(match d {
+                Dm::N(v) => D::DimValue(*v),
+                Dm::S(s) => D::DimParam(s.to_string()),
+            }),
+            denotation: String::new(),
+        })
+        .collect();
+    onnx::ValueInfoProto {
+        name: name.into(),
+        r#type: Some(onnx::TypeProto {
+            value: Some(type_proto::Value::TensorType(type_proto::Tensor { elem_type: elem, shape: Some(onnx::TensorShapeProto { dim }) })),
+            denotation: String::new(),
+        }),
+        ..Default::default()
+    }
+}
+
+pub fn node(op: &str, inputs: &[&str], outputs: &[&str]) -> onnx::NodeProto {
+    onnx::NodeProto {
+        op_type: op.into(),
+        name: format!("{op}_{}", outputs.first().copied().unwrap_or("")),
+        input: inputs.iter().map(|s| s.to_string()).collect(),
+        output: outputs.iter().map(|s| s.to_string()).collect(),
+        ..Default::default()
+    }
+}
+
+pub fn model(nodes: Vec<onnx::NodeProto>, inputs: Vec<onnx::ValueInfoProto>, outputs: Vec<onnx::ValueInfoProto>, inits: Vec<TensorProto>) -> ModelProto {
+    ModelProto {
+        ir_version: 8,
+        opset_import: vec![onnx::OperatorSetIdProto { domain: String::new(), version: 17 }],
+        graph: Some(onnx::GraphProto { node: nodes, name: "g".into(), input: inputs, output: outputs, initializer: inits, ..Default::default() }),
+        ..Default::default()
+    }
+}
+
+pub fn f32_init(name: &str, dims: &[i64]) -> TensorProto {
+    let n: i64 = dims.iter().product();
+    TensorProto {
+        name: name.into(),
+        dims: dims.to_vec(),
+        data_type: 1,
+        raw_data: bytes::Bytes::from(vec![0u8; (n * 4) as usize]),
+        ..Default::default()
+    }
+}
+
+pub fn write(dir: &Path, name: &str, m: &ModelProto) -> PathBuf {
+    let p = dir.join(name);
+    std::fs::write(&p, m.encode_to_vec()).expect("write model");
+    p
+}
+
+/// Runs tilecut and returns (exit code, stdout, stderr).
+pub fn run(args: &[&str]) -> (i32, String, String) {
+    let out = bin().args(args).output().expect("tilecut runs");
+    (out.status.code().unwrap_or(-1), String::from_utf8_lossy(&out.stdout).into_owned(), String::from_utf8_lossy(&out.stderr).into_owned())
+}
+
+/// Asserts a clean failure: exit 2, one line on stderr naming `needle`, nothing on stdout.
+pub fn assert_fails_cleanly(args: &[&str], needle: &str) {
+    let (code, out, err) = run(args);
+    assert_eq!(code, 2, "exit code for {args:?}: stderr {err}");
+    assert!(out.is_empty(), "stdout must stay empty on error, got {out}");
+    assert_eq!(err.trim_end().lines().count(), 1, "one-line error expected, got {err}");
+    assert!(!err.contains("panicked"), "panic: {err}");
+    assert!(err.contains(needle), "error should mention `{needle}`: {err}");
+}

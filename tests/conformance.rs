@@ -1,0 +1,113 @@
+//! Shape and type inference checked against the ONNX project's backend conformance models
+//! (`tests/onnx-node/`, Apache-2.0, provenance in its README). Each model's graph outputs
+//! declare element type and shape; we strip those declarations (and all value_info) before
+//! inference, so the check cannot pass by reading the answer back from the file.
+
+use std::path::{Path, PathBuf};
+
+use bytes::Bytes;
+use prost::Message;
+use tilecut::ir::{Dim, Fact};
+use tilecut::onnx::{self, ModelProto};
+
+fn models() -> Vec<PathBuf> {
+    let dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/onnx-node");
+    let mut v: Vec<PathBuf> = std::fs::read_dir(&dir)
+        .expect("tests/onnx-node exists")
+        .map(|e| e.expect("dir entry").path())
+        .filter(|p| p.extension().is_some_and(|e| e == "onnx"))
+        .collect();
+    v.sort();
+    v
+}
+
+/// The declared output facts, and the model with them stripped.
+fn strip(bytes: &[u8]) -> Option<(ModelProto, Vec<Option<onnx::TypeProto>>)> {
+    let mut m = ModelProto::decode(Bytes::copy_from_slice(bytes)).ok()?;
+    let g = m.graph.as_mut()?;
+    let declared = g.output.iter_mut().map(|o| o.r#type.take()).collect();
+    g.value_info.clear();
+    Some((m, declared))
+}
+
+fn declared_fact(t: &onnx::TypeProto) -> Option<(i32, Vec<Option<i64>>)> {
+    use onnx::tensor_shape_proto::dimension::Value as D;
+    use onnx::type_proto::Value as T;
+    match &t.value {
+        Some(T::TensorType(tt)) => {
+            let dims = tt.shape.as_ref()?.dim.iter().map(|d| match d.value { Some(D::DimValue(v)) => Some(v), _ => None }).collect();
+            Some((tt.elem_type, dims))
+        }
+        _ => None,
+    }
+}
+
+enum Outcome {
+    Agree,
+    Unknown,
+    Disagree(String),
+}
+
+fn compare(inferred: &Fact, declared: &(i32, Vec<Option<i64>>)) -> Outcome {
+    let Some(dt) = inferred.dtype else { return Outcome::Unknown };
+    let Some(dims) = inferred.shape.dims() else { return Outcome::Unknown };
+    if dims.iter().any(|d| !matches!(d, Dim::Known(_))) || declared.1.iter().any(Option::is_none) {
+        // A symbolic or unknown inferred dim is "not known", never counted as agreement.
+        return if dims.len() == declared.1.len() && dt.onnx_code() == declared.0 { Outcome::Unknown } else { Outcome::Disagree(format!("rank/type {dt} {} vs {:?}", inferred.shape, declared)) };
+    }
+    let ours: Vec<Option<i64>> = dims.iter().map(|d| d.known().map(|v| v as i64)).collect();
+    if dt.onnx_code() == declared.0 && ours == declared.1 {
+        Outcome::Agree
+    } else {
+        Outcome::Disagree(format!("inferred {dt} {} but declared type {} dims {:?}", inferred.shape, declared.0, declared.1))
+    }
+}
+
+#[test]
+fn inference_reproduces_declared_output_shapes_of_conformance_models() {
+    let (mut agree, mut unknown, mut skipped) = (0usize, 0usize, 0usize);
+    let mut failures = Vec::new();
+    for path in models() {
+        let name = path.file_name().and_then(|n| n.to_str()).unwrap_or("").to_string();
+        let bytes = std::fs::read(&path).expect("readable");
+        let Some((stripped, declared)) = strip(&bytes) else {
+            skipped += 1;
+            continue;
+        };
+        let encoded = Bytes::from(stripped.encode_to_vec());
+        let loaded = match tilecut::onnx::load::decode(&path, encoded, path.parent().expect("folder").canonicalize().expect("canonical")) {
+            Ok(l) => l,
+            Err(e) => {
+                failures.push(format!("{name}: decode failed: {e}"));
+                continue;
+            }
+        };
+        let (mut model, mut diags) = match tilecut::import::import(&loaded, &Default::default()) {
+            Ok(x) => x,
+            Err(e) => {
+                failures.push(format!("{name}: import failed: {e}"));
+                continue;
+            }
+        };
+        tilecut::infer::infer(&mut model, &mut diags);
+        for (k, d) in declared.iter().enumerate() {
+            let Some(decl) = d.as_ref().and_then(declared_fact) else {
+                skipped += 1;
+                continue;
+            };
+            let id = model.graph.outputs[k];
+            match compare(&model.graph.value(id).fact, &decl) {
+                Outcome::Agree => agree += 1,
+                Outcome::Unknown => unknown += 1,
+                Outcome::Disagree(why) => failures.push(format!("{name} output {k}: {why}")),
+            }
+        }
+    }
+    println!("conformance models: {agree} outputs agree, {unknown} left unknown, {skipped} without a tensor declaration, {} disagree", failures.len());
+    for f in &failures {
+        println!("  {f}");
+    }
+    assert!(failures.is_empty(), "{} outputs disagree with the ONNX conformance declarations", failures.len());
+    // A floor, so that a regression that turns known shapes into unknown ones fails too.
+    assert!(agree >= 1500, "only {agree} outputs agree");
+}

@@ -1,0 +1,374 @@
+//! The reader end to end through the CLI: formats, overrides, and every kind of bad input
+//! (each a one-line error naming the file, exit code 2, never a panic).
+
+mod common;
+
+use bytes::Bytes;
+use common::*;
+use prost::Message;
+use tilecut::onnx::{self, StringStringEntryProto, TensorProto};
+
+fn tmp() -> tempfile::TempDir {
+    tempfile::tempdir().expect("temp dir")
+}
+
+#[test]
+fn inspect_json_matches_committed_schema_and_conformance_declaration() {
+    // ONNX conformance model test_conv_with_strides_padding: x [1,1,7,5], W [1,1,3,3],
+    // strides 2, pads 1 → y [1,1,4,3] (declared in the file). MACs by our documented
+    // convention: 1·1·4·3 outputs × (1·3·3) = 108.
+    let p = conformance("test_conv_with_strides_padding.onnx");
+    let (code, out, err) = run(&["inspect", p.to_str().expect("utf8"), "--format", "json"]);
+    assert_eq!(code, 0, "{err}");
+    let v: serde_json::Value = serde_json::from_str(&out).expect("stdout is JSON");
+    let schema: serde_json::Value =
+        serde_json::from_str(include_str!("../schemas/inspect.schema.json")).expect("schema parses");
+    let validator = jsonschema::validator_for(&schema).expect("schema compiles");
+    let errors: Vec<String> = validator.iter_errors(&v).map(|e| e.to_string()).collect();
+    assert!(errors.is_empty(), "schema violations: {errors:?}");
+    assert_eq!(v["model"]["macs"], 108);
+    assert_eq!(v["outputs"][0]["shape"], serde_json::json!([1, 1, 4, 3]));
+    assert_eq!(v["model"]["nodes"], 1);
+}
+
+#[test]
+fn symbolic_dims_leave_figures_unknown_until_fixed() {
+    let d = tmp();
+    // MatMul [batch, 8] × [8, 4]: MACs = batch·8·4, unknown until batch is fixed.
+    let m = model(
+        vec![node("MatMul", &["x", "w"], &["y"])],
+        vec![vi("x", 1, &[Dm::S("batch"), Dm::N(8)])],
+        vec![vi("y", 1, &[])],
+        vec![f32_init("w", &[8, 4])],
+    );
+    let p = write(d.path(), "sym.onnx", &m);
+    let ps = p.to_str().expect("utf8");
+    let (code, out, _) = run(&["inspect", ps, "--format", "json"]);
+    assert_eq!(code, 0);
+    let v: serde_json::Value = serde_json::from_str(&out).expect("json");
+    assert!(v["model"]["macs"].is_null());
+    assert_eq!(v["model"]["unknown_because"], serde_json::json!(["batch"]));
+    assert_eq!(v["outputs"][0]["shape"], serde_json::json!(["batch", 4]));
+    assert!(v["warnings"].as_array().expect("array").iter().any(|w| w["code"] == "dim-symbolic"));
+    let (code, out, _) = run(&["inspect", ps, "--format", "json", "--dim", "batch=3"]);
+    assert_eq!(code, 0);
+    let v: serde_json::Value = serde_json::from_str(&out).expect("json");
+    assert_eq!(v["model"]["macs"], 3 * 8 * 4);
+    assert_eq!(v["model"]["params"], 32);
+    assert_eq!(v["model"]["weight_bytes"], 128);
+    let (code, out, _) = run(&["inspect", ps, "--format", "json", "--input", "x=5x8"]);
+    assert_eq!(code, 0);
+    let v: serde_json::Value = serde_json::from_str(&out).expect("json");
+    assert_eq!(v["model"]["macs"], 5 * 8 * 4);
+}
+
+#[test]
+fn table_output_names_the_figures() {
+    let p = conformance("test_conv_with_strides_padding.onnx");
+    let (code, out, _) = run(&["inspect", p.to_str().expect("utf8")]);
+    assert_eq!(code, 0);
+    assert!(out.contains("MACs") && out.contains("108") && out.contains("Conv"));
+}
+
+#[test]
+fn unknown_ops_are_reported_not_dropped() {
+    let d = tmp();
+    let mut n = node("FrobnicateTiles", &["x"], &["y"]);
+    n.domain = "org.example.custom".into();
+    let mut m = model(vec![n], vec![vi("x", 1, &[Dm::N(2)])], vec![vi("y", 1, &[Dm::N(2)])], vec![]);
+    m.opset_import.push(onnx::OperatorSetIdProto { domain: "org.example.custom".into(), version: 1 });
+    let p = write(d.path(), "custom.onnx", &m);
+    let (code, out, _) = run(&["inspect", p.to_str().expect("utf8"), "--format", "json"]);
+    assert_eq!(code, 0);
+    let v: serde_json::Value = serde_json::from_str(&out).expect("json");
+    assert_eq!(v["op_counts"][0]["op"], "org.example.custom.FrobnicateTiles");
+    assert!(v["warnings"].as_array().expect("array").iter().any(|w| w["code"] == "op-unknown"));
+    // The declared output shape is the fallback.
+    assert_eq!(v["outputs"][0]["shape"], serde_json::json!([2]));
+}
+
+#[test]
+fn nodes_out_of_order_are_sorted() {
+    let d = tmp();
+    let m = model(
+        vec![node("Relu", &["a"], &["y"]), node("Neg", &["x"], &["a"])],
+        vec![vi("x", 1, &[Dm::N(3)])],
+        vec![vi("y", 1, &[])],
+        vec![],
+    );
+    let p = write(d.path(), "unordered.onnx", &m);
+    let (code, out, _) = run(&["inspect", p.to_str().expect("utf8"), "--format", "json"]);
+    assert_eq!(code, 0);
+    let v: serde_json::Value = serde_json::from_str(&out).expect("json");
+    assert_eq!(v["outputs"][0]["shape"], serde_json::json!([3]));
+}
+
+// ---- bad input ------------------------------------------------------------------------
+
+#[test]
+fn missing_file() {
+    assert_fails_cleanly(&["inspect", "/nonexistent/model.onnx"], "/nonexistent/model.onnx");
+}
+
+#[test]
+fn empty_file() {
+    let d = tmp();
+    let p = d.path().join("empty.onnx");
+    std::fs::write(&p, b"").expect("write");
+    assert_fails_cleanly(&["inspect", p.to_str().expect("utf8")], "empty file");
+}
+
+#[test]
+fn random_bytes() {
+    let d = tmp();
+    let p = d.path().join("noise.onnx");
+    // A fixed pseudo-random sequence (xorshift), so the case is the same every run.
+    let mut x: u64 = 0x9e3779b97f4a7c15;
+    let bytes: Vec<u8> = (0..4096)
+        .map(|_| {
+            x ^= x << 13;
+            x ^= x >> 7;
+            x ^= x << 17;
+            x as u8
+        })
+        .collect();
+    std::fs::write(&p, bytes).expect("write");
+    assert_fails_cleanly(&["inspect", p.to_str().expect("utf8")], "noise.onnx");
+}
+
+#[test]
+fn truncated_model() {
+    let d = tmp();
+    let full = std::fs::read(conformance("test_conv_with_strides_padding.onnx")).expect("read");
+    let p = d.path().join("cut.onnx");
+    std::fs::write(&p, &full[..full.len() * 2 / 3]).expect("write");
+    assert_fails_cleanly(&["inspect", p.to_str().expect("utf8")], "cut.onnx");
+}
+
+#[test]
+fn wrong_wire_type() {
+    let d = tmp();
+    // Field 7 (graph) with wire type 0 (varint) instead of 2 (length-delimited).
+    let p = d.path().join("wire.onnx");
+    std::fs::write(&p, [0x08, 0x08, 0x38, 0x05]).expect("write");
+    assert_fails_cleanly(&["inspect", p.to_str().expect("utf8")], "wire.onnx");
+}
+
+#[test]
+fn cyclic_graph_names_the_nodes() {
+    let d = tmp();
+    let m = model(
+        vec![node("Add", &["x", "b"], &["a"]), node("Relu", &["a"], &["b"])],
+        vec![vi("x", 1, &[Dm::N(3)])],
+        vec![vi("b", 1, &[])],
+        vec![],
+    );
+    let p = write(d.path(), "cycle.onnx", &m);
+    assert_fails_cleanly(&["inspect", p.to_str().expect("utf8")], "cycle through nodes `Add_a`, `Relu_b`");
+}
+
+#[test]
+fn missing_producer() {
+    let d = tmp();
+    let m = model(vec![node("Relu", &["ghost"], &["y"])], vec![vi("x", 1, &[Dm::N(3)])], vec![vi("y", 1, &[])], vec![]);
+    let p = write(d.path(), "ghost.onnx", &m);
+    assert_fails_cleanly(&["inspect", p.to_str().expect("utf8")], "tensor `ghost`");
+}
+
+#[test]
+fn duplicate_producer() {
+    let d = tmp();
+    let m = model(
+        vec![node("Relu", &["x"], &["y"]), node("Neg", &["x"], &["y"])],
+        vec![vi("x", 1, &[Dm::N(3)])],
+        vec![vi("y", 1, &[])],
+        vec![],
+    );
+    let p = write(d.path(), "twice.onnx", &m);
+    assert_fails_cleanly(&["inspect", p.to_str().expect("utf8")], "produced twice");
+}
+
+#[test]
+fn negative_dims() {
+    let d = tmp();
+    let m = model(vec![node("Relu", &["x"], &["y"])], vec![vi("x", 1, &[Dm::N(-7)])], vec![vi("y", 1, &[])], vec![]);
+    let p = write(d.path(), "neg.onnx", &m);
+    assert_fails_cleanly(&["inspect", p.to_str().expect("utf8")], "-7");
+    // -1 means unknown: a warning, not an error.
+    let m = model(vec![node("Relu", &["x"], &["y"])], vec![vi("x", 1, &[Dm::N(-1)])], vec![vi("y", 1, &[])], vec![]);
+    let p = write(d.path(), "minus1.onnx", &m);
+    let (code, out, _) = run(&["inspect", p.to_str().expect("utf8"), "--format", "json"]);
+    assert_eq!(code, 0);
+    assert!(out.contains("dim-unknown"));
+    // A negative initializer dim is an error too.
+    let mut t = f32_init("w", &[2]);
+    t.dims = vec![-2];
+    let m = model(vec![node("Add", &["x", "w"], &["y"])], vec![vi("x", 1, &[Dm::N(2)])], vec![vi("y", 1, &[])], vec![t]);
+    let p = write(d.path(), "negw.onnx", &m);
+    assert_fails_cleanly(&["inspect", p.to_str().expect("utf8")], "negative dim -2");
+}
+
+#[test]
+fn gigantic_dims_do_not_overflow() {
+    let d = tmp();
+    // 2^40 × 2^40 elements overflow u64 byte counts: an error or an unknown figure, no panic.
+    let mut t = f32_init("w", &[1]);
+    t.dims = vec![1 << 40, 1 << 40];
+    t.raw_data = Bytes::new();
+    let m = model(vec![node("Add", &["x", "w"], &["y"])], vec![vi("x", 1, &[Dm::N(1)])], vec![vi("y", 1, &[])], vec![t]);
+    let p = write(d.path(), "huge.onnx", &m);
+    assert_fails_cleanly(&["inspect", p.to_str().expect("utf8")], "overflows");
+    // Huge but representable dims on an input: figures must be checked, not wrapped.
+    let m = model(
+        vec![node("MatMul", &["x", "x"], &["y"])],
+        vec![vi("x", 1, &[Dm::N(1 << 31), Dm::N(1 << 31)])],
+        vec![vi("y", 1, &[])],
+        vec![],
+    );
+    let p = write(d.path(), "huge2.onnx", &m);
+    let (code, out, err) = run(&["inspect", p.to_str().expect("utf8"), "--format", "json"]);
+    assert_eq!(code, 0, "{err}");
+    let v: serde_json::Value = serde_json::from_str(&out).expect("json");
+    assert!(v["model"]["macs"].is_null(), "2^93 MACs cannot be a u64");
+}
+
+fn external_model(location: &str) -> onnx::ModelProto {
+    let t = TensorProto {
+        name: "w".into(),
+        dims: vec![4],
+        data_type: 1,
+        data_location: 1,
+        external_data: vec![StringStringEntryProto { key: "location".into(), value: location.into() }],
+        ..Default::default()
+    };
+    model(vec![node("Add", &["x", "w"], &["y"])], vec![vi("x", 1, &[Dm::N(4)])], vec![vi("y", 1, &[])], vec![t])
+}
+
+#[test]
+fn external_data_outside_the_model_folder_is_refused() {
+    let d = tmp();
+    let inner = d.path().join("m");
+    std::fs::create_dir(&inner).expect("mkdir");
+    std::fs::write(d.path().join("secret.bin"), [0u8; 16]).expect("write");
+    let p = write(&inner, "abs.onnx", &external_model("/etc/passwd"));
+    assert_fails_cleanly(&["inspect", p.to_str().expect("utf8")], "absolute");
+    let p = write(&inner, "dotdot.onnx", &external_model("../secret.bin"));
+    assert_fails_cleanly(&["inspect", p.to_str().expect("utf8")], "leaves the model's folder");
+    std::os::unix::fs::symlink(d.path().join("secret.bin"), inner.join("link.bin")).expect("symlink");
+    let p = write(&inner, "link.onnx", &external_model("link.bin"));
+    assert_fails_cleanly(&["inspect", p.to_str().expect("utf8")], "symbolic link");
+}
+
+#[test]
+fn external_data_inside_the_folder_and_missing_external_data() {
+    let d = tmp();
+    std::fs::write(d.path().join("w.bin"), [0u8; 16]).expect("write");
+    let p = write(d.path(), "ok.onnx", &external_model("w.bin"));
+    let (code, out, err) = run(&["inspect", p.to_str().expect("utf8"), "--format", "json"]);
+    assert_eq!(code, 0, "{err}");
+    let v: serde_json::Value = serde_json::from_str(&out).expect("json");
+    assert_eq!(v["model"]["weight_bytes"], 16);
+    let p = write(d.path(), "gone.onnx", &external_model("nothing-here.bin"));
+    let (code, out, _) = run(&["inspect", p.to_str().expect("utf8"), "--format", "json"]);
+    assert_eq!(code, 0);
+    let v: serde_json::Value = serde_json::from_str(&out).expect("json");
+    assert_eq!(v["model"]["weight_bytes"], 16, "declared dims still count");
+    assert!(out.contains("external-missing"));
+}
+
+/// Encodes `depth` If nodes nested through their then/else branches, as raw protobuf bytes
+/// built from the inside out (no recursion in the test itself).
+fn nested_if_bytes(depth: usize) -> Vec<u8> {
+    let leaf = onnx::GraphProto { name: "leaf".into(), ..Default::default() }.encode_to_vec();
+    let mut graph = leaf.clone();
+    for _ in 0..depth {
+        let attr = |name: &str, g: &[u8]| {
+            let mut a = onnx::AttributeProto { name: name.into(), r#type: 5, ..Default::default() }.encode_to_vec();
+            // AttributeProto.g is field 6, length-delimited.
+            prost::encoding::encode_key(6, prost::encoding::WireType::LengthDelimited, &mut a);
+            prost::encoding::encode_varint(g.len() as u64, &mut a);
+            a.extend_from_slice(g);
+            a
+        };
+        let mut node = onnx::NodeProto { op_type: "If".into(), input: vec!["c".into()], output: vec!["o".into()], ..Default::default() }.encode_to_vec();
+        for a in [attr("then_branch", &graph), attr("else_branch", &leaf)] {
+            prost::encoding::encode_key(5, prost::encoding::WireType::LengthDelimited, &mut node);
+            prost::encoding::encode_varint(a.len() as u64, &mut node);
+            node.extend_from_slice(&a);
+        }
+        let mut g = Vec::new();
+        prost::encoding::encode_key(1, prost::encoding::WireType::LengthDelimited, &mut g);
+        prost::encoding::encode_varint(node.len() as u64, &mut g);
+        g.extend_from_slice(&node);
+        graph = g;
+    }
+    let mut m = onnx::ModelProto { ir_version: 8, ..Default::default() }.encode_to_vec();
+    prost::encoding::encode_key(7, prost::encoding::WireType::LengthDelimited, &mut m);
+    prost::encoding::encode_varint(graph.len() as u64, &mut m);
+    m.extend_from_slice(&graph);
+    m
+}
+
+#[test]
+fn subgraphs_nested_beyond_the_limit_are_refused() {
+    let d = tmp();
+    // 20 levels: within the decoder's message limit, beyond tilecut's documented 16.
+    let p = d.path().join("deep20.onnx");
+    std::fs::write(&p, nested_if_bytes(20)).expect("write");
+    assert_fails_cleanly(&["inspect", p.to_str().expect("utf8")], "nested deeper than 16");
+    // Far deeper: refused by the decoder's own limit, still one line and no stack overflow.
+    // Hand-encoded bytes: AttributeProto {name: "t", type: GRAPH, g: …} inside NodeProto "If".
+    let mut bytes = Vec::new();
+    let mut g: Vec<u8> = Vec::new();
+    for _ in 0..5000 {
+        let mut attr = vec![0x0a, 0x01, b't', 0xa0, 0x01, 0x05];
+        prost::encoding::encode_key(6, prost::encoding::WireType::LengthDelimited, &mut attr);
+        prost::encoding::encode_varint(g.len() as u64, &mut attr);
+        attr.extend_from_slice(&g);
+        let mut node = vec![0x22, 0x02, b'I', b'f'];
+        prost::encoding::encode_key(5, prost::encoding::WireType::LengthDelimited, &mut node);
+        prost::encoding::encode_varint(attr.len() as u64, &mut node);
+        node.extend_from_slice(&attr);
+        let mut next = Vec::new();
+        prost::encoding::encode_key(1, prost::encoding::WireType::LengthDelimited, &mut next);
+        prost::encoding::encode_varint(node.len() as u64, &mut next);
+        next.extend_from_slice(&node);
+        g = next;
+    }
+    prost::encoding::encode_key(7, prost::encoding::WireType::LengthDelimited, &mut bytes);
+    prost::encoding::encode_varint(g.len() as u64, &mut bytes);
+    bytes.extend_from_slice(&g);
+    let p = d.path().join("deep5000.onnx");
+    std::fs::write(&p, bytes).expect("write");
+    assert_fails_cleanly(&["inspect", p.to_str().expect("utf8")], "nested");
+}
+
+#[test]
+fn bad_overrides() {
+    let p = conformance("test_conv_with_strides_padding.onnx");
+    let ps = p.to_str().expect("utf8");
+    assert_fails_cleanly(&["inspect", ps, "--dim", "batch"], "--dim `batch`");
+    assert_fails_cleanly(&["inspect", ps, "--dim", "batch=-3"], "not a non-negative integer");
+    assert_fails_cleanly(&["inspect", ps, "--input", "x=1x-3"], "not a non-negative integer");
+    assert_fails_cleanly(&["inspect", ps, "--input", "nosuch=1x2"], "not an input of the model");
+    // clap's own usage errors also exit 2.
+    let (code, _, _) = run(&["inspect", ps, "--format", "yaml"]);
+    assert_eq!(code, 2);
+}
+
+#[test]
+fn input_file_is_never_modified() {
+    let p = conformance("test_conv_with_strides_padding.onnx");
+    let before = std::fs::read(&p).expect("read");
+    let (code, _, _) = run(&["inspect", p.to_str().expect("utf8"), "--format", "json"]);
+    assert_eq!(code, 0);
+    assert_eq!(before, std::fs::read(&p).expect("read"));
+}
+
+#[test]
+fn output_is_deterministic() {
+    let p = conformance("test_maxpool_2d_ceil.onnx");
+    let a = run(&["inspect", p.to_str().expect("utf8"), "--format", "json"]).1;
+    let b = run(&["inspect", p.to_str().expect("utf8"), "--format", "json"]).1;
+    assert_eq!(a, b);
+}

@@ -15,7 +15,12 @@ pub struct Diagnostic {
 
 impl Diagnostic {
     pub fn new(code: &'static str, message: impl Into<String>) -> Diagnostic {
-        Diagnostic { code, node: None, tensor: None, message: message.into() }
+        Diagnostic {
+            code,
+            node: None,
+            tensor: None,
+            message: message.into(),
+        }
     }
 
     pub fn at_node(mut self, node: &str) -> Diagnostic {

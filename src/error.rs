@@ -15,12 +15,20 @@ pub enum ReadError {
     #[error("{path}: {msg}")]
     Invalid { path: PathBuf, msg: String },
     #[error("{path}: external data of tensor `{tensor}` at `{location}` refused: {why}")]
-    ExternalData { path: PathBuf, tensor: String, location: String, why: String },
+    ExternalData {
+        path: PathBuf,
+        tensor: String,
+        location: String,
+        why: String,
+    },
 }
 
 impl ReadError {
     pub fn invalid(path: &std::path::Path, msg: impl Into<String>) -> ReadError {
-        ReadError::Invalid { path: path.to_path_buf(), msg: msg.into() }
+        ReadError::Invalid {
+            path: path.to_path_buf(),
+            msg: msg.into(),
+        }
     }
 }
 

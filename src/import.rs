@@ -8,8 +8,8 @@ use std::sync::Arc;
 use crate::diag::{codes, Diagnostic};
 use crate::error::{ReadError, SettingError};
 use crate::ir::{
-    Attr, AttrValue, Body, DType, Dim, Fact, Graph, Model, Node, NodeCost, NodeId, Shape, Storage,
-    TensorData, Value, ValueId, ValueKind, ValueType,
+    Attr, AttrValue, Body, DType, Dim, Fact, Graph, Model, Node, NodeCost, NodeId, Shape, Storage, TensorData, Value,
+    ValueId, ValueKind, ValueType,
 };
 use crate::onnx::load::{resolve_external, LoadedModel};
 use crate::onnx::{self, TensorProto};
@@ -34,9 +34,10 @@ impl Overrides {
         let (name, value) = text
             .split_once('=')
             .ok_or_else(|| SettingError(format!("--dim `{text}`: expected NAME=VALUE")))?;
-        let v: u64 = value.trim().parse().map_err(|_| {
-            SettingError(format!("--dim `{text}`: `{value}` is not a non-negative integer"))
-        })?;
+        let v: u64 = value
+            .trim()
+            .parse()
+            .map_err(|_| SettingError(format!("--dim `{text}`: `{value}` is not a non-negative integer")))?;
         if name.trim().is_empty() {
             return Err(SettingError(format!("--dim `{text}`: empty name")));
         }
@@ -72,20 +73,25 @@ impl Overrides {
 
 /// Imports a decoded model. Structural faults are errors; what is merely unknown or odd
 /// becomes a diagnostic.
-pub fn import(
-    loaded: &LoadedModel,
-    overrides: &Overrides,
-) -> Result<(Model, Vec<Diagnostic>), ReadError> {
+pub fn import(loaded: &LoadedModel, overrides: &Overrides) -> Result<(Model, Vec<Diagnostic>), ReadError> {
     let proto = &loaded.proto;
     let mut opsets = BTreeMap::new();
     for o in &proto.opset_import {
-        let d = if o.domain == "ai.onnx" { String::new() } else { o.domain.clone() };
+        let d = if o.domain == "ai.onnx" {
+            String::new()
+        } else {
+            o.domain.clone()
+        };
         opsets.insert(d, o.version);
     }
     let mut cx = Cx {
         path: &loaded.path,
         dir: &loaded.dir,
-        functions: proto.functions.iter().map(|f| ((f.domain.clone(), f.name.clone()), f)).collect(),
+        functions: proto
+            .functions
+            .iter()
+            .map(|f| ((f.domain.clone(), f.name.clone()), f))
+            .collect(),
         overrides,
         diags: Vec::new(),
         used_dims: BTreeSet::new(),
@@ -99,7 +105,10 @@ pub fn import(
             "the model imports no opset; assuming default-domain opset 1 (ONNX IR spec)",
         ));
     }
-    let graph_proto = proto.graph.as_ref().ok_or_else(|| ReadError::invalid(&loaded.path, "no graph"))?;
+    let graph_proto = proto
+        .graph
+        .as_ref()
+        .ok_or_else(|| ReadError::invalid(&loaded.path, "no graph"))?;
     let (graph, free) = import_graph(&mut cx, graph_proto, 0)?;
     if let Some((name, reader)) = free.first() {
         return Err(ReadError::invalid(
@@ -128,7 +137,9 @@ pub fn import(
     let model = Model {
         path: loaded.path.clone(),
         ir_version: proto.ir_version,
-        producer: format!("{} {}", proto.producer_name, proto.producer_version).trim().to_string(),
+        producer: format!("{} {}", proto.producer_name, proto.producer_version)
+            .trim()
+            .to_string(),
         opsets,
         graph,
         functions,
@@ -168,6 +179,9 @@ struct FlatNode {
 
 /// Free names of a graph: (tensor name, first node reading it).
 type FreeNames = Vec<(String, String)>;
+
+/// A node's imported bodies, its attributes, and the outer names the bodies read.
+type BodyParts = (Vec<Body>, Vec<Attr>, FreeNames);
 
 fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Graph, FreeNames), ReadError> {
     if depth > MAX_SUBGRAPH_DEPTH {
@@ -211,29 +225,51 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
         if names.contains_key(&v.name) {
             return Err(cx.err(format!("initializer `{}` is defined twice", v.name)));
         }
-        let id = new_value(&mut values, &v.name, ValueKind::Initializer, Fact::tensor(dtype, Shape::known(&dims)));
-        values[id.index()].data = Some(TensorData { dtype, dims, storage: Storage::Empty });
+        let id = new_value(
+            &mut values,
+            &v.name,
+            ValueKind::Initializer,
+            Fact::tensor(dtype, Shape::known(&dims)),
+        );
+        values[id.index()].data = Some(TensorData {
+            dtype,
+            dims,
+            storage: Storage::Empty,
+        });
         names.insert(v.name.clone(), id);
     }
     let mut inputs = Vec::new();
+    let mut weight_inputs: Vec<&str> = Vec::new();
     for vi in &g.input {
-        let declared = declared_fact(cx, vi, depth == 0)?;
+        let declared = declared_fact(cx, vi, false)?;
         if let Some(&id) = names.get(&vi.name) {
             // Old IR versions list initializers among the inputs: a weight with a default.
             values[id.index()].declared = Some(declared);
-            cx.diags.push(
-                Diagnostic::new(
-                    codes::INITIALIZER_AS_INPUT,
-                    "initializer also listed as a graph input (IR < 4 style); treated as a weight",
-                )
-                .at_tensor(&vi.name),
-            );
+            weight_inputs.push(&vi.name);
             continue;
         }
+        let declared = if depth == 0 {
+            declared_fact(cx, vi, true)?
+        } else {
+            declared
+        };
         let id = new_value(&mut values, &vi.name, ValueKind::Input, declared.clone());
         values[id.index()].declared = Some(declared);
         names.insert(vi.name.clone(), id);
         inputs.push(id);
+    }
+
+    if let Some(first) = weight_inputs.first() {
+        cx.diags.push(
+            Diagnostic::new(
+                codes::INITIALIZER_AS_INPUT,
+                format!(
+                    "{} initializer(s) also listed as graph inputs (IR < 4 style); treated as weights",
+                    weight_inputs.len()
+                ),
+            )
+            .at_tensor(first),
+        );
     }
 
     // Node outputs, duplicate producers refused.
@@ -258,14 +294,17 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     }
 
     // Bodies first: their free names are inputs of the carrying node.
-    let mut bodies_of: Vec<(Vec<Body>, Vec<Attr>, FreeNames)> = Vec::with_capacity(flat.len());
+    let mut bodies_of: Vec<BodyParts> = Vec::with_capacity(flat.len());
     for n in &flat {
         let mut bodies = Vec::new();
         let mut free: FreeNames = Vec::new();
         let mut attrs = Vec::with_capacity(n.proto.attribute.len());
         for a in &n.proto.attribute {
             let value = attr_value(cx, a, depth, &mut bodies, &mut free)?;
-            attrs.push(Attr { name: a.name.clone(), value });
+            attrs.push(Attr {
+                name: a.name.clone(),
+                value,
+            });
         }
         bodies_of.push((bodies, attrs, free));
     }
@@ -283,7 +322,12 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     let mut deps: Vec<Vec<usize>> = vec![Vec::new(); flat.len()];
     let mut captured: Vec<ValueId> = Vec::new();
     for (i, n) in flat.iter().enumerate() {
-        let reads = n.proto.input.iter().filter(|s| !s.is_empty()).chain(bodies_of[i].2.iter().map(|f| &f.0));
+        let reads = n
+            .proto
+            .input
+            .iter()
+            .filter(|s| !s.is_empty())
+            .chain(bodies_of[i].2.iter().map(|f| &f.0));
         for name in reads {
             if let Some(&p) = producer_of.get(name) {
                 deps[i].push(p);
@@ -299,12 +343,16 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     // Build nodes in that order.
     let mut used_names: BTreeSet<String> = BTreeSet::new();
     let mut nodes = Vec::with_capacity(flat.len());
-    let mut bodies_of: Vec<Option<(Vec<Body>, Vec<Attr>, FreeNames)>> = bodies_of.into_iter().map(Some).collect();
+    let mut bodies_of: Vec<Option<BodyParts>> = bodies_of.into_iter().map(Some).collect();
     for &i in &order {
         let n = &flat[i];
         let id = NodeId(nodes.len() as u32);
         let (bodies, attrs, free) = bodies_of[i].take().unwrap_or_default();
-        let mut name = if n.proto.name.is_empty() { generated_name(&n.proto, i) } else { n.proto.name.clone() };
+        let mut name = if n.proto.name.is_empty() {
+            generated_name(&n.proto, i)
+        } else {
+            n.proto.name.clone()
+        };
         if used_names.contains(&name) {
             let mut k = 2;
             while used_names.contains(&format!("{name}~{k}")) {
@@ -392,10 +440,22 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
             }
         }
     }
-    for v in &values {
-        if v.kind == ValueKind::Initializer && v.consumers.is_empty() && !outputs.contains(&names[&v.name]) {
-            cx.diags.push(Diagnostic::new(codes::UNUSED_INITIALIZER, "initializer not used by any node").at_tensor(&v.name));
-        }
+    let unused: Vec<&str> = values
+        .iter()
+        .enumerate()
+        .filter(|(i, v)| {
+            v.kind == ValueKind::Initializer && v.consumers.is_empty() && !outputs.contains(&ValueId(*i as u32))
+        })
+        .map(|(_, v)| v.name.as_str())
+        .collect();
+    if let Some(first) = unused.first() {
+        cx.diags.push(
+            Diagnostic::new(
+                codes::UNUSED_INITIALIZER,
+                format!("{} initializer(s) not used by any node", unused.len()),
+            )
+            .at_tensor(first),
+        );
     }
     let graph = Graph {
         name: g.name.clone(),
@@ -468,8 +528,15 @@ fn topo_order(cx: &Cx, flat: &[FlatNode], deps: &[Vec<usize>]) -> Result<Vec<usi
         .collect();
     cycle.sort();
     let shown: Vec<String> = cycle.iter().take(8).map(|s| format!("`{s}`")).collect();
-    let more = if cycle.len() > 8 { format!(" and {} more", cycle.len() - 8) } else { String::new() };
-    Err(cx.err(format!("the graph has a cycle through nodes {}{more}", shown.join(", "))))
+    let more = if cycle.len() > 8 {
+        format!(" and {} more", cycle.len() - 8)
+    } else {
+        String::new()
+    };
+    Err(cx.err(format!(
+        "the graph has a cycle through nodes {}{more}",
+        shown.join(", ")
+    )))
 }
 
 fn expand_functions(
@@ -482,7 +549,10 @@ fn expand_functions(
     for n in nodes {
         let key = (n.domain.clone(), n.op_type.clone());
         let Some(f) = cx.functions.get(&key).copied() else {
-            out.push(FlatNode { proto: n.clone(), from_function: None });
+            out.push(FlatNode {
+                proto: n.clone(),
+                from_function: None,
+            });
             continue;
         };
         if depth >= MAX_FUNCTION_DEPTH {
@@ -491,7 +561,11 @@ fn expand_functions(
                 qualified(&n.domain, &n.op_type)
             )));
         }
-        let call = if n.name.is_empty() { generated_name(n, out.len()) } else { n.name.clone() };
+        let call = if n.name.is_empty() {
+            generated_name(n, out.len())
+        } else {
+            n.name.clone()
+        };
         let mut rename: HashMap<&str, String> = HashMap::new();
         for (i, formal) in f.input.iter().enumerate() {
             rename.insert(formal, n.input.get(i).cloned().unwrap_or_default());
@@ -510,7 +584,14 @@ fn expand_functions(
             };
             m.input = inner.input.iter().map(map).collect();
             m.output = inner.output.iter().map(map).collect();
-            m.name = format!("{call}/{}", if inner.name.is_empty() { generated_name(inner, 0) } else { inner.name.clone() });
+            m.name = format!(
+                "{call}/{}",
+                if inner.name.is_empty() {
+                    generated_name(inner, 0)
+                } else {
+                    inner.name.clone()
+                }
+            );
             m.attribute = Vec::with_capacity(inner.attribute.len());
             for a in &inner.attribute {
                 if a.ref_attr_name.is_empty() {
@@ -573,7 +654,10 @@ fn attr_value(
                 free.push(x);
             }
         }
-        bodies.push(Body { attr: a.name.clone(), graph });
+        bodies.push(Body {
+            attr: a.name.clone(),
+            graph,
+        });
         Ok::<usize, ReadError>(bodies.len() - 1)
     };
     Ok(match ty {
@@ -590,7 +674,12 @@ fn attr_value(
         },
         6 => AttrValue::Floats(a.floats.clone()),
         7 => AttrValue::Ints(a.ints.clone()),
-        8 => AttrValue::Strings(a.strings.iter().map(|s| String::from_utf8_lossy(s).into_owned()).collect()),
+        8 => AttrValue::Strings(
+            a.strings
+                .iter()
+                .map(|s| String::from_utf8_lossy(s).into_owned())
+                .collect(),
+        ),
         9 => AttrValue::Tensors(a.tensors.iter().map(|t| tensor_data(cx, t)).collect::<Result<_, _>>()?),
         10 => {
             let mut ids = Vec::new();
@@ -605,9 +694,7 @@ fn attr_value(
 
 fn non_negative_dims(cx: &Cx, name: &str, dims: &[i64]) -> Result<Vec<u64>, ReadError> {
     dims.iter()
-        .map(|&d| {
-            u64::try_from(d).map_err(|_| cx.err(format!("tensor `{name}` has negative dim {d}")))
-        })
+        .map(|&d| u64::try_from(d).map_err(|_| cx.err(format!("tensor `{name}` has negative dim {d}"))))
         .collect()
 }
 
@@ -626,7 +713,10 @@ fn tensor_data(cx: &mut Cx, t: &TensorProto) -> Result<TensorData, ReadError> {
             match get(k) {
                 None => Ok(None),
                 Some(s) => s.parse::<u64>().map(Some).map_err(|_| {
-                    cx.err(format!("tensor `{}`: external data {k} `{s}` is not a non-negative integer", t.name))
+                    cx.err(format!(
+                        "tensor `{}`: external data {k} `{s}` is not a non-negative integer",
+                        t.name
+                    ))
                 }),
             }
         };
@@ -647,7 +737,12 @@ fn tensor_data(cx: &mut Cx, t: &TensorProto) -> Result<TensorData, ReadError> {
                 .at_tensor(&t.name),
             );
         }
-        Storage::External { path, offset, length, present }
+        Storage::External {
+            path,
+            offset,
+            length,
+            present,
+        }
     } else if !t.raw_data.is_empty() {
         Storage::Raw(t.raw_data.clone())
     } else if !t.float_data.is_empty() {
@@ -669,7 +764,9 @@ fn tensor_data(cx: &mut Cx, t: &TensorProto) -> Result<TensorData, ReadError> {
 }
 
 fn declared_fact(cx: &mut Cx, vi: &onnx::ValueInfoProto, apply_overrides: bool) -> Result<Fact, ReadError> {
-    let Some(tp) = vi.r#type.as_ref() else { return Ok(Fact::default()) };
+    let Some(tp) = vi.r#type.as_ref() else {
+        return Ok(Fact::default());
+    };
     let mut fact = type_fact(cx, &vi.name, tp)?;
     if apply_overrides {
         if let Some(dims) = cx.overrides.inputs.get(&vi.name) {
@@ -725,16 +822,28 @@ fn type_fact(cx: &Cx, name: &str, tp: &onnx::TypeProto) -> Result<Fact, ReadErro
                 Some(e) => type_fact(cx, name, e)?,
                 None => Fact::default(),
             };
-            Fact { value_type: ValueType::Sequence(Box::new(inner)), dtype: None, shape: Shape::unknown() }
+            Fact {
+                value_type: ValueType::Sequence(Box::new(inner)),
+                dtype: None,
+                shape: Shape::unknown(),
+            }
         }
         Some(T::OptionalType(s)) => {
             let inner = match s.elem_type.as_deref() {
                 Some(e) => type_fact(cx, name, e)?,
                 None => Fact::default(),
             };
-            Fact { value_type: ValueType::Optional(Box::new(inner)), dtype: None, shape: Shape::unknown() }
+            Fact {
+                value_type: ValueType::Optional(Box::new(inner)),
+                dtype: None,
+                shape: Shape::unknown(),
+            }
         }
-        Some(T::MapType(_)) => Fact { value_type: ValueType::Map, dtype: None, shape: Shape::unknown() },
+        Some(T::MapType(_)) => Fact {
+            value_type: ValueType::Map,
+            dtype: None,
+            shape: Shape::unknown(),
+        },
         None => Fact::default(),
     })
 }
@@ -748,7 +857,9 @@ fn shape_of(cx: &Cx, name: &str, s: Option<&onnx::TensorShapeProto>) -> Result<S
             Some(D::DimValue(v)) if *v >= 0 => Dim::Known(*v as u64),
             Some(D::DimValue(-1)) => Dim::Unknown,
             Some(D::DimValue(v)) => {
-                return Err(cx.err(format!("tensor `{name}` declares dim {v}; only -1 (unknown) may be negative")))
+                return Err(cx.err(format!(
+                    "tensor `{name}` declares dim {v}; only -1 (unknown) may be negative"
+                )))
             }
             Some(D::DimParam(p)) if !p.is_empty() => Dim::Sym(Arc::from(p.as_str())),
             _ => Dim::Unknown,

@@ -7,7 +7,7 @@ use std::collections::{BTreeMap, HashMap};
 use crate::diag::{codes, Diagnostic};
 use crate::ir::{ConstValue, DType, Fact, Graph, Model, NodeCost, Shape, Storage, ValueId, ValueKind, ValueType};
 use crate::onnx::load::read_external;
-use crate::ops::{self, CostRule, Ctx};
+use crate::ops::{self, CostRule, Ctx, MacsOps};
 use crate::values::{self, MAX_DECODE_ELEMENTS};
 
 /// Why a main-graph value's shape is not concrete, by value index.
@@ -18,9 +18,20 @@ pub fn infer(model: &mut Model, diags: &mut Vec<Diagnostic>) -> UnknownReasons {
     let opsets = model.opsets.clone();
     let mut unknown_ops: BTreeMap<(String, String), (usize, String)> = BTreeMap::new();
     let mut reasons = UnknownReasons::new();
-    infer_graph(&mut model.graph, &opsets, &HashMap::new(), diags, &mut unknown_ops, Some(&mut reasons));
+    infer_graph(
+        &mut model.graph,
+        &opsets,
+        &HashMap::new(),
+        diags,
+        &mut unknown_ops,
+        Some(&mut reasons),
+    );
     for ((domain, op), (n, first)) in unknown_ops {
-        let q = if domain.is_empty() { op.clone() } else { format!("{domain}.{op}") };
+        let q = if domain.is_empty() {
+            op.clone()
+        } else {
+            format!("{domain}.{op}")
+        };
         diags.push(
             Diagnostic::new(
                 codes::UNKNOWN_OP,
@@ -45,12 +56,21 @@ fn load_const(g: &mut Graph, v: ValueId) {
         return;
     }
     value.konst = match &data.storage {
-        Storage::External { path, offset, length, present: true } => {
-            let (Some(dt), Some(bytes)) = (data.dtype, data.bytes()) else { return };
+        Storage::External {
+            path,
+            offset,
+            length,
+            present: true,
+        } => {
+            let (Some(dt), Some(bytes)) = (data.dtype, data.bytes()) else {
+                return;
+            };
             if length.is_some_and(|l| l != bytes) {
                 return;
             }
-            read_external(path, *offset, bytes).ok().and_then(|b| values::decode_raw_bytes(dt, &b, data.dims.clone()))
+            read_external(path, *offset, bytes)
+                .ok()
+                .and_then(|b| values::decode_raw_bytes(dt, &b, data.dims.clone()))
         }
         _ => values::decode(data),
     };
@@ -104,8 +124,11 @@ fn infer_graph(
             for v in &g.values {
                 scope.insert(v.name.clone(), (v.fact.clone(), v.konst.clone(), v.kind));
             }
-            let input_facts: Vec<Fact> =
-                node.inputs.iter().map(|s| s.map(|v| g.values[v.index()].fact.clone()).unwrap_or_default()).collect();
+            let input_facts: Vec<Fact> = node
+                .inputs
+                .iter()
+                .map(|s| s.map(|v| g.values[v.index()].fact.clone()).unwrap_or_default())
+                .collect();
             let op = node.op_type.clone();
             let num_scan = match node.attr("num_scan_inputs") {
                 Some(crate::ir::AttrValue::Int(n)) => *n as usize,
@@ -115,7 +138,13 @@ fn infer_graph(
             for b in &mut bodies {
                 seed_body_inputs(&mut b.graph, &op, &input_facts, num_scan);
                 infer_graph(&mut b.graph, opsets, &scope, diags, unknown_ops, None);
-                body_outputs.push(b.graph.outputs.iter().map(|&o| b.graph.values[o.index()].fact.clone()).collect());
+                body_outputs.push(
+                    b.graph
+                        .outputs
+                        .iter()
+                        .map(|&o| b.graph.values[o.index()].fact.clone())
+                        .collect(),
+                );
                 body_costs.push(graph_cost(&b.graph));
             }
             g.nodes[ni].bodies = bodies;
@@ -124,8 +153,16 @@ fn infer_graph(
         let node = &g.nodes[ni];
         let ctx = Ctx {
             node,
-            inputs: node.inputs.iter().map(|s| s.map(|v| &g.values[v.index()].fact)).collect(),
-            consts: node.inputs.iter().map(|s| s.and_then(|v| g.values[v.index()].konst.as_ref())).collect(),
+            inputs: node
+                .inputs
+                .iter()
+                .map(|s| s.map(|v| &g.values[v.index()].fact))
+                .collect(),
+            consts: node
+                .inputs
+                .iter()
+                .map(|s| s.and_then(|v| g.values[v.index()].konst.as_ref()))
+                .collect(),
             opset,
             body_outputs,
         };
@@ -135,13 +172,18 @@ fn infer_graph(
                 Err(e) => (Vec::new(), Some(format!("{} could not be inferred: {e}", node.op_type))),
             },
             None => {
-                let e = unknown_ops.entry((node.domain.clone(), node.op_type.clone())).or_insert((0, node.name.clone()));
+                let e = unknown_ops
+                    .entry((node.domain.clone(), node.op_type.clone()))
+                    .or_insert((0, node.name.clone()));
                 e.0 += 1;
                 (Vec::new(), Some(format!("op `{}` is unknown to tilecut", node.op_type)))
             }
         };
         let folded_values = def.and_then(|d| d.fold).and_then(|f| f(&ctx));
-        let all_const_inputs = node.all_inputs().iter().all(|v| is_const_kind(g.values[v.index()].kind) || g.values[v.index()].konst.as_ref().is_some_and(ConstValue::is_numeric));
+        let all_const_inputs = node.all_inputs().iter().all(|v| {
+            is_const_kind(g.values[v.index()].kind)
+                || g.values[v.index()].konst.as_ref().is_some_and(ConstValue::is_numeric)
+        });
         let cost = node_cost(&ctx, def.map(|d| d.cost), &facts, &body_costs);
         if let Some(f) = &failure {
             if def.is_some() {
@@ -212,7 +254,14 @@ fn infer_graph(
             let f = &g.values[i.index()].fact;
             if !f.shape.is_concrete() {
                 let syms = f.shape.symbols();
-                r.insert(i, if syms.is_empty() { "declared with unknown dims".into() } else { format!("declared with symbolic dims: {}", syms.join(", ")) });
+                r.insert(
+                    i,
+                    if syms.is_empty() {
+                        "declared with unknown dims".into()
+                    } else {
+                        format!("declared with symbolic dims: {}", syms.join(", "))
+                    },
+                );
             }
         }
     }
@@ -250,8 +299,16 @@ fn fill_from(fact: &Fact, decl: &Fact) -> Fact {
         ),
         _ => fact.shape.clone(),
     };
-    let value_type = if fact.dtype.is_none() && fact.shape.rank().is_none() { decl.value_type.clone() } else { fact.value_type.clone() };
-    Fact { value_type, dtype, shape }
+    let value_type = if fact.dtype.is_none() && fact.shape.rank().is_none() {
+        decl.value_type.clone()
+    } else {
+        fact.value_type.clone()
+    };
+    Fact {
+        value_type,
+        dtype,
+        shape,
+    }
 }
 
 /// Body graph inputs: Loop (iteration, condition, carried...), Scan (state..., scan slices).
@@ -259,7 +316,10 @@ fn seed_body_inputs(body: &mut Graph, op: &str, inputs: &[Fact], num_scan: usize
     let ids = body.inputs.clone();
     for (k, id) in ids.iter().enumerate() {
         let v = &mut body.values[id.index()];
-        let known = v.declared.as_ref().is_some_and(|d| d.dtype.is_some() && d.shape.is_concrete());
+        let known = v
+            .declared
+            .as_ref()
+            .is_some_and(|d| d.dtype.is_some() && d.shape.is_concrete());
         if known {
             continue;
         }
@@ -292,7 +352,7 @@ fn seed_body_inputs(body: &mut Graph, op: &str, inputs: &[Fact], num_scan: usize
 }
 
 /// Summed (macs, ops) of a graph; None where any node's figure is unknown.
-fn graph_cost(g: &Graph) -> (Option<u64>, Option<u64>) {
+fn graph_cost(g: &Graph) -> MacsOps {
     let mut macs = Some(0u64);
     let mut ops_ = Some(0u64);
     for n in g.nodes.iter().filter(|n| !n.folded) {
@@ -302,22 +362,38 @@ fn graph_cost(g: &Graph) -> (Option<u64>, Option<u64>) {
     (macs, ops_)
 }
 
-fn node_cost(ctx: &Ctx, rule: Option<CostRule>, outs: &[Fact], bodies: &[(Option<u64>, Option<u64>)]) -> NodeCost {
+fn node_cost(ctx: &Ctx, rule: Option<CostRule>, outs: &[Fact], bodies: &[MacsOps]) -> NodeCost {
     let (mut macs, mut ops_) = match rule {
         None => (None, None),
         Some(CostRule::Free) => (Some(0), Some(0)),
-        Some(CostRule::PerOutput(k)) => (Some(0), outs.first().and_then(|f| f.shape.element_count()).and_then(|e| e.checked_mul(k))),
-        Some(CostRule::PerInput(k)) => (Some(0), ctx.fact(0).and_then(|f| f.shape.element_count()).and_then(|e| e.checked_mul(k))),
+        Some(CostRule::PerOutput(k)) => (
+            Some(0),
+            outs.first()
+                .and_then(|f| f.shape.element_count())
+                .and_then(|e| e.checked_mul(k)),
+        ),
+        Some(CostRule::PerInput(k)) => (
+            Some(0),
+            ctx.fact(0)
+                .and_then(|f| f.shape.element_count())
+                .and_then(|e| e.checked_mul(k)),
+        ),
         Some(CostRule::Custom(f)) => f(ctx, outs),
     };
     if !bodies.is_empty() {
         let trips: Option<u64> = match ctx.node.op_type.as_str() {
             "If" => Some(1),
-            "Loop" => ctx.konst(0).and_then(|c| c.as_ints().first().copied()).map(|t| t.max(0) as u64),
-            "Scan" => outs.iter().skip(ctx.node.inputs.len()).find_map(|f| f.shape.dims().and_then(|d| d.first()).and_then(|d| d.known())),
+            "Loop" => ctx
+                .konst(0)
+                .and_then(|c| c.as_ints().first().copied())
+                .map(|t| t.max(0) as u64),
+            "Scan" => outs
+                .iter()
+                .skip(ctx.node.inputs.len())
+                .find_map(|f| f.shape.dims().and_then(|d| d.first()).and_then(|d| d.known())),
             _ => Some(1),
         };
-        let pick = |sel: fn(&(Option<u64>, Option<u64>)) -> Option<u64>| -> Option<u64> {
+        let pick = |sel: fn(&MacsOps) -> Option<u64>| -> Option<u64> {
             if ctx.node.op_type == "If" {
                 if let Some(c) = ctx.konst(0).and_then(|c| c.as_ints().first().copied()) {
                     return bodies.get(if c != 0 { 0 } else { 1 }).and_then(sel);
@@ -325,7 +401,11 @@ fn node_cost(ctx: &Ctx, rule: Option<CostRule>, outs: &[Fact], bodies: &[(Option
                 // Unknown condition: cost the more expensive branch.
                 return bodies.iter().map(sel).try_fold(0u64, |m, x| x.map(|x| m.max(x)));
             }
-            bodies.iter().map(sel).try_fold(0u64, |m, x| x.and_then(|x| m.checked_add(x)))?.checked_mul(trips?)
+            bodies
+                .iter()
+                .map(sel)
+                .try_fold(0u64, |m, x| x.and_then(|x| m.checked_add(x)))?
+                .checked_mul(trips?)
         };
         macs = macs.zip(pick(|b| b.0)).and_then(|(a, b)| a.checked_add(b));
         ops_ = ops_.zip(pick(|b| b.1)).and_then(|(a, b)| a.checked_add(b));
@@ -338,7 +418,11 @@ fn node_cost(ctx: &Ctx, rule: Option<CostRule>, outs: &[Fact], bodies: &[(Option
         needs.sort();
         needs.dedup();
     }
-    NodeCost { macs, ops: ops_, needs_dims: needs }
+    NodeCost {
+        macs,
+        ops: ops_,
+        needs_dims: needs,
+    }
 }
 
 /// True for tensor values (not sequences, maps or optionals).

@@ -1,14 +1,14 @@
 //! tilecut: how much of an ONNX model runs on a tile-array accelerator.
-pub mod ir;
-pub mod onnx;
 pub mod cli;
 pub mod diag;
 pub mod error;
 pub mod import;
 pub mod infer;
+pub mod ir;
+pub mod onnx;
 pub mod ops;
-pub mod values;
 pub mod report;
+pub mod values;
 
 use std::path::Path;
 

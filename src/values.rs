@@ -18,11 +18,17 @@ pub fn decode(data: &TensorData) -> Option<ConstValue> {
     match &data.storage {
         Storage::Raw(b) => decode_raw(dt, b, n as usize).map(|v| with_dims(v, dims)),
         Storage::Fixed32(b) => {
-            let v: Vec<f64> = b.chunks_exact(4).map(|c| f32::from_le_bytes([c[0], c[1], c[2], c[3]]) as f64).collect();
+            let v: Vec<f64> = b
+                .chunks_exact(4)
+                .map(|c| f32::from_le_bytes([c[0], c[1], c[2], c[3]]) as f64)
+                .collect();
             (v.len() == n as usize && dt == DType::F32).then(|| ConstValue::floats(dims, v))
         }
         Storage::Fixed64(b) => {
-            let v: Vec<f64> = b.chunks_exact(8).map(|c| f64::from_le_bytes(c.try_into().unwrap_or([0; 8]))).collect();
+            let v: Vec<f64> = b
+                .chunks_exact(8)
+                .map(|c| f64::from_le_bytes(c.try_into().unwrap_or([0; 8])))
+                .collect();
             (v.len() == n as usize).then(|| ConstValue::floats(dims, v))
         }
         Storage::Varints(b) => {
@@ -32,9 +38,18 @@ pub fn decode(data: &TensorData) -> Option<ConstValue> {
             }
             match dt {
                 // fp16/bf16 travel as their bit patterns in int32_data (ONNX IR spec).
-                DType::F16 => Some(ConstValue::floats(dims, raw.iter().map(|&x| f16_to_f64(x as u16)).collect())),
-                DType::BF16 => Some(ConstValue::floats(dims, raw.iter().map(|&x| bf16_to_f64(x as u16)).collect())),
-                DType::U64 => Some(ConstValue::ints(dims, raw.iter().map(|&x| x.min(i64::MAX as u64) as i64).collect())),
+                DType::F16 => Some(ConstValue::floats(
+                    dims,
+                    raw.iter().map(|&x| f16_to_f64(x as u16)).collect(),
+                )),
+                DType::BF16 => Some(ConstValue::floats(
+                    dims,
+                    raw.iter().map(|&x| bf16_to_f64(x as u16)).collect(),
+                )),
+                DType::U64 => Some(ConstValue::ints(
+                    dims,
+                    raw.iter().map(|&x| x.min(i64::MAX as u64) as i64).collect(),
+                )),
                 d if d.is_integer() || d == DType::Bool => {
                     Some(ConstValue::ints(dims, raw.iter().map(|&x| x as i64).collect()))
                 }
@@ -71,14 +86,34 @@ fn decode_raw(dt: DType, b: &[u8], n: usize) -> Option<Decoded> {
     }
     macro_rules! ints {
         ($t:ty, $w:expr) => {
-            Decoded::Int(b.chunks_exact($w).map(|c| <$t>::from_le_bytes(c.try_into().unwrap_or([0; $w])) as i64).collect())
+            Decoded::Int(
+                b.chunks_exact($w)
+                    .map(|c| <$t>::from_le_bytes(c.try_into().unwrap_or([0; $w])) as i64)
+                    .collect(),
+            )
         };
     }
     Some(match dt {
-        DType::F32 => Decoded::Float(b.chunks_exact(4).map(|c| f32::from_le_bytes([c[0], c[1], c[2], c[3]]) as f64).collect()),
-        DType::F64 => Decoded::Float(b.chunks_exact(8).map(|c| f64::from_le_bytes(c.try_into().unwrap_or([0; 8]))).collect()),
-        DType::F16 => Decoded::Float(b.chunks_exact(2).map(|c| f16_to_f64(u16::from_le_bytes([c[0], c[1]]))).collect()),
-        DType::BF16 => Decoded::Float(b.chunks_exact(2).map(|c| bf16_to_f64(u16::from_le_bytes([c[0], c[1]]))).collect()),
+        DType::F32 => Decoded::Float(
+            b.chunks_exact(4)
+                .map(|c| f32::from_le_bytes([c[0], c[1], c[2], c[3]]) as f64)
+                .collect(),
+        ),
+        DType::F64 => Decoded::Float(
+            b.chunks_exact(8)
+                .map(|c| f64::from_le_bytes(c.try_into().unwrap_or([0; 8])))
+                .collect(),
+        ),
+        DType::F16 => Decoded::Float(
+            b.chunks_exact(2)
+                .map(|c| f16_to_f64(u16::from_le_bytes([c[0], c[1]])))
+                .collect(),
+        ),
+        DType::BF16 => Decoded::Float(
+            b.chunks_exact(2)
+                .map(|c| bf16_to_f64(u16::from_le_bytes([c[0], c[1]])))
+                .collect(),
+        ),
         DType::I8 => Decoded::Int(b.iter().map(|&x| x as i8 as i64).collect()),
         DType::U8 | DType::Bool => Decoded::Int(b.iter().map(|&x| x as i64).collect()),
         DType::I16 => ints!(i16, 2),
@@ -86,7 +121,11 @@ fn decode_raw(dt: DType, b: &[u8], n: usize) -> Option<Decoded> {
         DType::I32 => ints!(i32, 4),
         DType::U32 => ints!(u32, 4),
         DType::I64 => ints!(i64, 8),
-        DType::U64 => Decoded::Int(b.chunks_exact(8).map(|c| u64::from_le_bytes(c.try_into().unwrap_or([0; 8])).min(i64::MAX as u64) as i64).collect()),
+        DType::U64 => Decoded::Int(
+            b.chunks_exact(8)
+                .map(|c| u64::from_le_bytes(c.try_into().unwrap_or([0; 8])).min(i64::MAX as u64) as i64)
+                .collect(),
+        ),
         // 4-bit integers: two per byte, low nibble first (ONNX IR spec, "4 bit integer types").
         DType::I4 | DType::U4 => {
             let signed = dt == DType::I4;

@@ -35,7 +35,16 @@ fn declared_fact(t: &onnx::TypeProto) -> Option<(i32, Vec<Option<i64>>)> {
     use onnx::type_proto::Value as T;
     match &t.value {
         Some(T::TensorType(tt)) => {
-            let dims = tt.shape.as_ref()?.dim.iter().map(|d| match d.value { Some(D::DimValue(v)) => Some(v), _ => None }).collect();
+            let dims = tt
+                .shape
+                .as_ref()?
+                .dim
+                .iter()
+                .map(|d| match d.value {
+                    Some(D::DimValue(v)) => Some(v),
+                    _ => None,
+                })
+                .collect();
             Some((tt.elem_type, dims))
         }
         _ => None,
@@ -49,17 +58,28 @@ enum Outcome {
 }
 
 fn compare(inferred: &Fact, declared: &(i32, Vec<Option<i64>>)) -> Outcome {
-    let Some(dt) = inferred.dtype else { return Outcome::Unknown };
-    let Some(dims) = inferred.shape.dims() else { return Outcome::Unknown };
+    let Some(dt) = inferred.dtype else {
+        return Outcome::Unknown;
+    };
+    let Some(dims) = inferred.shape.dims() else {
+        return Outcome::Unknown;
+    };
     if dims.iter().any(|d| !matches!(d, Dim::Known(_))) || declared.1.iter().any(Option::is_none) {
         // A symbolic or unknown inferred dim is "not known", never counted as agreement.
-        return if dims.len() == declared.1.len() && dt.onnx_code() == declared.0 { Outcome::Unknown } else { Outcome::Disagree(format!("rank/type {dt} {} vs {:?}", inferred.shape, declared)) };
+        return if dims.len() == declared.1.len() && dt.onnx_code() == declared.0 {
+            Outcome::Unknown
+        } else {
+            Outcome::Disagree(format!("rank/type {dt} {} vs {:?}", inferred.shape, declared))
+        };
     }
     let ours: Vec<Option<i64>> = dims.iter().map(|d| d.known().map(|v| v as i64)).collect();
     if dt.onnx_code() == declared.0 && ours == declared.1 {
         Outcome::Agree
     } else {
-        Outcome::Disagree(format!("inferred {dt} {} but declared type {} dims {:?}", inferred.shape, declared.0, declared.1))
+        Outcome::Disagree(format!(
+            "inferred {dt} {} but declared type {} dims {:?}",
+            inferred.shape, declared.0, declared.1
+        ))
     }
 }
 
@@ -75,7 +95,11 @@ fn inference_reproduces_declared_output_shapes_of_conformance_models() {
             continue;
         };
         let encoded = Bytes::from(stripped.encode_to_vec());
-        let loaded = match tilecut::onnx::load::decode(&path, encoded, path.parent().expect("folder").canonicalize().expect("canonical")) {
+        let loaded = match tilecut::onnx::load::decode(
+            &path,
+            encoded,
+            path.parent().expect("folder").canonicalize().expect("canonical"),
+        ) {
             Ok(l) => l,
             Err(e) => {
                 failures.push(format!("{name}: decode failed: {e}"));
@@ -107,7 +131,11 @@ fn inference_reproduces_declared_output_shapes_of_conformance_models() {
     for f in &failures {
         println!("  {f}");
     }
-    assert!(failures.is_empty(), "{} outputs disagree with the ONNX conformance declarations", failures.len());
+    assert!(
+        failures.is_empty(),
+        "{} outputs disagree with the ONNX conformance declarations",
+        failures.len()
+    );
     // A floor, so that a regression that turns known shapes into unknown ones fails too.
     assert!(agree >= 1500, "only {agree} outputs agree");
 }

@@ -49,7 +49,11 @@ fn symbolic_dims_leave_figures_unknown_until_fixed() {
     assert!(v["model"]["macs"].is_null());
     assert_eq!(v["model"]["unknown_because"], serde_json::json!(["batch"]));
     assert_eq!(v["outputs"][0]["shape"], serde_json::json!(["batch", 4]));
-    assert!(v["warnings"].as_array().expect("array").iter().any(|w| w["code"] == "dim-symbolic"));
+    assert!(v["warnings"]
+        .as_array()
+        .expect("array")
+        .iter()
+        .any(|w| w["code"] == "dim-symbolic"));
     let (code, out, _) = run(&["inspect", ps, "--format", "json", "--dim", "batch=3"]);
     assert_eq!(code, 0);
     let v: serde_json::Value = serde_json::from_str(&out).expect("json");
@@ -75,14 +79,26 @@ fn unknown_ops_are_reported_not_dropped() {
     let d = tmp();
     let mut n = node("FrobnicateTiles", &["x"], &["y"]);
     n.domain = "org.example.custom".into();
-    let mut m = model(vec![n], vec![vi("x", 1, &[Dm::N(2)])], vec![vi("y", 1, &[Dm::N(2)])], vec![]);
-    m.opset_import.push(onnx::OperatorSetIdProto { domain: "org.example.custom".into(), version: 1 });
+    let mut m = model(
+        vec![n],
+        vec![vi("x", 1, &[Dm::N(2)])],
+        vec![vi("y", 1, &[Dm::N(2)])],
+        vec![],
+    );
+    m.opset_import.push(onnx::OperatorSetIdProto {
+        domain: "org.example.custom".into(),
+        version: 1,
+    });
     let p = write(d.path(), "custom.onnx", &m);
     let (code, out, _) = run(&["inspect", p.to_str().expect("utf8"), "--format", "json"]);
     assert_eq!(code, 0);
     let v: serde_json::Value = serde_json::from_str(&out).expect("json");
     assert_eq!(v["op_counts"][0]["op"], "org.example.custom.FrobnicateTiles");
-    assert!(v["warnings"].as_array().expect("array").iter().any(|w| w["code"] == "op-unknown"));
+    assert!(v["warnings"]
+        .as_array()
+        .expect("array")
+        .iter()
+        .any(|w| w["code"] == "op-unknown"));
     // The declared output shape is the fallback.
     assert_eq!(v["outputs"][0]["shape"], serde_json::json!([2]));
 }
@@ -164,13 +180,21 @@ fn cyclic_graph_names_the_nodes() {
         vec![],
     );
     let p = write(d.path(), "cycle.onnx", &m);
-    assert_fails_cleanly(&["inspect", p.to_str().expect("utf8")], "cycle through nodes `Add_a`, `Relu_b`");
+    assert_fails_cleanly(
+        &["inspect", p.to_str().expect("utf8")],
+        "cycle through nodes `Add_a`, `Relu_b`",
+    );
 }
 
 #[test]
 fn missing_producer() {
     let d = tmp();
-    let m = model(vec![node("Relu", &["ghost"], &["y"])], vec![vi("x", 1, &[Dm::N(3)])], vec![vi("y", 1, &[])], vec![]);
+    let m = model(
+        vec![node("Relu", &["ghost"], &["y"])],
+        vec![vi("x", 1, &[Dm::N(3)])],
+        vec![vi("y", 1, &[])],
+        vec![],
+    );
     let p = write(d.path(), "ghost.onnx", &m);
     assert_fails_cleanly(&["inspect", p.to_str().expect("utf8")], "tensor `ghost`");
 }
@@ -191,11 +215,21 @@ fn duplicate_producer() {
 #[test]
 fn negative_dims() {
     let d = tmp();
-    let m = model(vec![node("Relu", &["x"], &["y"])], vec![vi("x", 1, &[Dm::N(-7)])], vec![vi("y", 1, &[])], vec![]);
+    let m = model(
+        vec![node("Relu", &["x"], &["y"])],
+        vec![vi("x", 1, &[Dm::N(-7)])],
+        vec![vi("y", 1, &[])],
+        vec![],
+    );
     let p = write(d.path(), "neg.onnx", &m);
     assert_fails_cleanly(&["inspect", p.to_str().expect("utf8")], "-7");
     // -1 means unknown: a warning, not an error.
-    let m = model(vec![node("Relu", &["x"], &["y"])], vec![vi("x", 1, &[Dm::N(-1)])], vec![vi("y", 1, &[])], vec![]);
+    let m = model(
+        vec![node("Relu", &["x"], &["y"])],
+        vec![vi("x", 1, &[Dm::N(-1)])],
+        vec![vi("y", 1, &[])],
+        vec![],
+    );
     let p = write(d.path(), "minus1.onnx", &m);
     let (code, out, _) = run(&["inspect", p.to_str().expect("utf8"), "--format", "json"]);
     assert_eq!(code, 0);
@@ -203,7 +237,12 @@ fn negative_dims() {
     // A negative initializer dim is an error too.
     let mut t = f32_init("w", &[2]);
     t.dims = vec![-2];
-    let m = model(vec![node("Add", &["x", "w"], &["y"])], vec![vi("x", 1, &[Dm::N(2)])], vec![vi("y", 1, &[])], vec![t]);
+    let m = model(
+        vec![node("Add", &["x", "w"], &["y"])],
+        vec![vi("x", 1, &[Dm::N(2)])],
+        vec![vi("y", 1, &[])],
+        vec![t],
+    );
     let p = write(d.path(), "negw.onnx", &m);
     assert_fails_cleanly(&["inspect", p.to_str().expect("utf8")], "negative dim -2");
 }
@@ -215,7 +254,12 @@ fn gigantic_dims_do_not_overflow() {
     let mut t = f32_init("w", &[1]);
     t.dims = vec![1 << 40, 1 << 40];
     t.raw_data = Bytes::new();
-    let m = model(vec![node("Add", &["x", "w"], &["y"])], vec![vi("x", 1, &[Dm::N(1)])], vec![vi("y", 1, &[])], vec![t]);
+    let m = model(
+        vec![node("Add", &["x", "w"], &["y"])],
+        vec![vi("x", 1, &[Dm::N(1)])],
+        vec![vi("y", 1, &[])],
+        vec![t],
+    );
     let p = write(d.path(), "huge.onnx", &m);
     assert_fails_cleanly(&["inspect", p.to_str().expect("utf8")], "overflows");
     // Huge but representable dims on an input: figures must be checked, not wrapped.
@@ -238,10 +282,18 @@ fn external_model(location: &str) -> onnx::ModelProto {
         dims: vec![4],
         data_type: 1,
         data_location: 1,
-        external_data: vec![StringStringEntryProto { key: "location".into(), value: location.into() }],
+        external_data: vec![StringStringEntryProto {
+            key: "location".into(),
+            value: location.into(),
+        }],
         ..Default::default()
     };
-    model(vec![node("Add", &["x", "w"], &["y"])], vec![vi("x", 1, &[Dm::N(4)])], vec![vi("y", 1, &[])], vec![t])
+    model(
+        vec![node("Add", &["x", "w"], &["y"])],
+        vec![vi("x", 1, &[Dm::N(4)])],
+        vec![vi("y", 1, &[])],
+        vec![t],
+    )
 }
 
 #[test]
@@ -279,18 +331,33 @@ fn external_data_inside_the_folder_and_missing_external_data() {
 /// Encodes `depth` If nodes nested through their then/else branches, as raw protobuf bytes
 /// built from the inside out (no recursion in the test itself).
 fn nested_if_bytes(depth: usize) -> Vec<u8> {
-    let leaf = onnx::GraphProto { name: "leaf".into(), ..Default::default() }.encode_to_vec();
+    let leaf = onnx::GraphProto {
+        name: "leaf".into(),
+        ..Default::default()
+    }
+    .encode_to_vec();
     let mut graph = leaf.clone();
     for _ in 0..depth {
         let attr = |name: &str, g: &[u8]| {
-            let mut a = onnx::AttributeProto { name: name.into(), r#type: 5, ..Default::default() }.encode_to_vec();
+            let mut a = onnx::AttributeProto {
+                name: name.into(),
+                r#type: 5,
+                ..Default::default()
+            }
+            .encode_to_vec();
             // AttributeProto.g is field 6, length-delimited.
             prost::encoding::encode_key(6, prost::encoding::WireType::LengthDelimited, &mut a);
             prost::encoding::encode_varint(g.len() as u64, &mut a);
             a.extend_from_slice(g);
             a
         };
-        let mut node = onnx::NodeProto { op_type: "If".into(), input: vec!["c".into()], output: vec!["o".into()], ..Default::default() }.encode_to_vec();
+        let mut node = onnx::NodeProto {
+            op_type: "If".into(),
+            input: vec!["c".into()],
+            output: vec!["o".into()],
+            ..Default::default()
+        }
+        .encode_to_vec();
         for a in [attr("then_branch", &graph), attr("else_branch", &leaf)] {
             prost::encoding::encode_key(5, prost::encoding::WireType::LengthDelimited, &mut node);
             prost::encoding::encode_varint(a.len() as u64, &mut node);
@@ -302,7 +369,11 @@ fn nested_if_bytes(depth: usize) -> Vec<u8> {
         g.extend_from_slice(&node);
         graph = g;
     }
-    let mut m = onnx::ModelProto { ir_version: 8, ..Default::default() }.encode_to_vec();
+    let mut m = onnx::ModelProto {
+        ir_version: 8,
+        ..Default::default()
+    }
+    .encode_to_vec();
     prost::encoding::encode_key(7, prost::encoding::WireType::LengthDelimited, &mut m);
     prost::encoding::encode_varint(graph.len() as u64, &mut m);
     m.extend_from_slice(&graph);

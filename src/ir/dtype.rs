@@ -28,11 +28,13 @@ pub enum DType {
     F8E8M0,
     U2,
     I2,
+    F6E2M3,
+    F6E3M2,
 }
 
 /// (code in the standard, our type, its name in the standard, bits per element).
-/// Codes 1–23 are the ONNX standard's `TensorProto.DataType` (onnx.proto); 24 (FLOAT8E8M0)
-/// and 25/26 (UINT2/INT2) are from memory of IR versions 11/12 and worth re-checking.
+/// Codes are the ONNX standard's `TensorProto.DataType` (onnx.proto), checked against the
+/// `onnx` Python package 1.23 (`TensorProto.DataType.items()`; see tests/python_reference.rs).
 const TABLE: &[(i32, DType, &str, u32)] = &[
     (1, DType::F32, "float32", 32),
     (2, DType::U8, "uint8", 8),
@@ -60,6 +62,8 @@ const TABLE: &[(i32, DType, &str, u32)] = &[
     (24, DType::F8E8M0, "float8e8m0", 8),
     (25, DType::U2, "uint2", 2),
     (26, DType::I2, "int2", 2),
+    (27, DType::F6E2M3, "float6e2m3", 6),
+    (28, DType::F6E3M2, "float6e3m2", 6),
 ];
 
 impl DType {
@@ -106,6 +110,8 @@ impl DType {
                 | DType::F8E5M2FNUZ
                 | DType::F4E2M1
                 | DType::F8E8M0
+                | DType::F6E2M3
+                | DType::F6E3M2
         )
     }
 

@@ -77,13 +77,21 @@ pub struct Fact {
 
 impl Default for Fact {
     fn default() -> Self {
-        Fact { value_type: ValueType::Tensor, dtype: None, shape: Shape::unknown() }
+        Fact {
+            value_type: ValueType::Tensor,
+            dtype: None,
+            shape: Shape::unknown(),
+        }
     }
 }
 
 impl Fact {
     pub fn tensor(dtype: Option<DType>, shape: Shape) -> Fact {
-        Fact { value_type: ValueType::Tensor, dtype, shape }
+        Fact {
+            value_type: ValueType::Tensor,
+            dtype,
+            shape,
+        }
     }
 
     /// Bytes of one instance of the value, if dtype and every dim are known.
@@ -110,7 +118,12 @@ pub enum Storage {
     /// Strings, never decoded for analysis.
     Strings(usize),
     /// A file next to the model, already checked to stay inside the model's folder.
-    External { path: PathBuf, offset: u64, length: Option<u64>, present: bool },
+    External {
+        path: PathBuf,
+        offset: u64,
+        length: Option<u64>,
+        present: bool,
+    },
     /// No payload at all (an empty tensor, or a malformed one reported elsewhere).
     Empty,
 }
@@ -151,11 +164,17 @@ pub struct ConstValue {
 
 impl ConstValue {
     pub fn ints(dims: Vec<u64>, v: Vec<i64>) -> ConstValue {
-        ConstValue { dims, data: ConstData::Int(v) }
+        ConstValue {
+            dims,
+            data: ConstData::Int(v),
+        }
     }
 
     pub fn floats(dims: Vec<u64>, v: Vec<f64>) -> ConstValue {
-        ConstValue { dims, data: ConstData::Float(v) }
+        ConstValue {
+            dims,
+            data: ConstData::Float(v),
+        }
     }
 
     pub fn len(&self) -> usize {
@@ -171,7 +190,10 @@ impl ConstValue {
         match &self.data {
             ConstData::Int(v) => Some(v.clone()),
             ConstData::Float(v) => Some(v.iter().map(|x| *x as i64).collect()),
-            ConstData::Dims(v) => v.iter().map(|d| d.known().and_then(|x| i64::try_from(x).ok())).collect(),
+            ConstData::Dims(v) => v
+                .iter()
+                .map(|d| d.known().and_then(|x| i64::try_from(x).ok()))
+                .collect(),
         }
     }
 
@@ -179,7 +201,11 @@ impl ConstValue {
     pub fn as_dims(&self) -> Vec<Dim> {
         match &self.data {
             ConstData::Dims(v) => v.clone(),
-            _ => self.as_ints().into_iter().map(|x| if x >= 0 { Dim::Known(x as u64) } else { Dim::Unknown }).collect(),
+            _ => self
+                .as_ints()
+                .into_iter()
+                .map(|x| if x >= 0 { Dim::Known(x as u64) } else { Dim::Unknown })
+                .collect(),
         }
     }
 
@@ -210,7 +236,10 @@ impl ConstValue {
         match &self.data {
             ConstData::Int(v) => v.iter().map(|x| *x as f64).collect(),
             ConstData::Float(v) => v.clone(),
-            ConstData::Dims(v) => v.iter().map(|d| d.known().map(|x| x as f64).unwrap_or(f64::NAN)).collect(),
+            ConstData::Dims(v) => v
+                .iter()
+                .map(|d| d.known().map(|x| x as f64).unwrap_or(f64::NAN))
+                .collect(),
         }
     }
 
@@ -340,7 +369,10 @@ impl Graph {
     }
 
     pub fn value_by_name(&self, name: &str) -> Option<ValueId> {
-        self.values.iter().position(|v| v.name == name).map(|i| ValueId(i as u32))
+        self.values
+            .iter()
+            .position(|v| v.name == name)
+            .map(|i| ValueId(i as u32))
     }
 
     pub fn node_ids(&self) -> impl Iterator<Item = NodeId> {

@@ -126,7 +126,10 @@ impl Shape {
 
     /// Element count; `None` if any dim is not known or the product overflows.
     pub fn element_count(&self) -> Option<u64> {
-        self.0.as_ref()?.iter().try_fold(1u64, |acc, d| acc.checked_mul(d.known()?))
+        self.0
+            .as_ref()?
+            .iter()
+            .try_fold(1u64, |acc, d| acc.checked_mul(d.known()?))
     }
 
     /// Symbols that keep this shape from being concrete.

@@ -20,14 +20,19 @@ pub struct LoadedModel {
 /// Maps `path` and decodes it. Nothing of the weights is copied or even touched: the decoder
 /// slices `raw_data` and packed fields out of the mapping.
 pub fn load(path: &Path) -> Result<LoadedModel, ReadError> {
-    let io = |source| ReadError::Io { path: path.to_path_buf(), source };
+    let io = |source| ReadError::Io {
+        path: path.to_path_buf(),
+        source,
+    };
     let file = File::open(path).map_err(io)?;
     let meta = file.metadata().map_err(io)?;
     if meta.is_dir() {
         return Err(ReadError::invalid(path, "is a folder, not a model file"));
     }
     if meta.len() == 0 {
-        return Err(ReadError::Empty { path: path.to_path_buf() });
+        return Err(ReadError::Empty {
+            path: path.to_path_buf(),
+        });
     }
     // SAFETY: the map is read-only; tilecut never writes the input. A file truncated by another
     // process while mapped would fault; that is the usual contract of mapped readers.
@@ -40,15 +45,24 @@ pub fn load(path: &Path) -> Result<LoadedModel, ReadError> {
             msg: "the file decodes but holds no graph".into(),
         });
     }
-    let parent = path.parent().filter(|p| !p.as_os_str().is_empty()).unwrap_or(Path::new("."));
+    let parent = path
+        .parent()
+        .filter(|p| !p.as_os_str().is_empty())
+        .unwrap_or(Path::new("."));
     let dir = parent.canonicalize().map_err(io)?;
-    Ok(LoadedModel { path: path.to_path_buf(), dir, proto })
+    Ok(LoadedModel {
+        path: path.to_path_buf(),
+        dir,
+        proto,
+    })
 }
 
 /// Decodes model bytes already in memory (tests, generated models).
 pub fn decode(path: &Path, bytes: Bytes, dir: PathBuf) -> Result<LoadedModel, ReadError> {
     if bytes.is_empty() {
-        return Err(ReadError::Empty { path: path.to_path_buf() });
+        return Err(ReadError::Empty {
+            path: path.to_path_buf(),
+        });
     }
     let proto = ModelProto::decode(bytes).map_err(|e| decode_error(path, e))?;
     if proto.graph.is_none() {
@@ -57,7 +71,11 @@ pub fn decode(path: &Path, bytes: Bytes, dir: PathBuf) -> Result<LoadedModel, Re
             msg: "the file decodes but holds no graph".into(),
         });
     }
-    Ok(LoadedModel { path: path.to_path_buf(), dir, proto })
+    Ok(LoadedModel {
+        path: path.to_path_buf(),
+        dir,
+        proto,
+    })
 }
 
 fn decode_error(path: &Path, e: prost::DecodeError) -> ReadError {
@@ -68,7 +86,10 @@ fn decode_error(path: &Path, e: prost::DecodeError) -> ReadError {
         // prost's text is already one line: "failed to decode Protobuf message: …".
         text.replace("failed to decode Protobuf message: ", "")
     };
-    ReadError::Decode { path: path.to_path_buf(), msg }
+    ReadError::Decode {
+        path: path.to_path_buf(),
+        msg,
+    }
 }
 
 /// Resolves an external-data `location` inside `dir`. This is a security boundary: absolute

@@ -169,42 +169,21 @@ impl prost::Message for TensorProto {
         match tag {
             field::DIMS => encoding::int64::merge_repeated(wire_type, &mut self.dims, buf, ctx),
             field::DATA_TYPE => encoding::int32::merge(wire_type, &mut self.data_type, buf, ctx),
-            field::SEGMENT => encoding::message::merge(
-                wire_type,
-                self.segment.get_or_insert_with(Segment::default),
-                buf,
-                ctx,
-            ),
-            field::FLOAT_DATA => {
-                merge_packed(Packing::Fixed32, wire_type, &mut self.float_data, buf, ctx)
+            field::SEGMENT => {
+                encoding::message::merge(wire_type, self.segment.get_or_insert_with(Segment::default), buf, ctx)
             }
-            field::INT32_DATA => {
-                merge_packed(Packing::Varint, wire_type, &mut self.int32_data, buf, ctx)
-            }
-            field::STRING_DATA => {
-                encoding::bytes::merge_repeated(wire_type, &mut self.string_data, buf, ctx)
-            }
-            field::INT64_DATA => {
-                merge_packed(Packing::Varint, wire_type, &mut self.int64_data, buf, ctx)
-            }
+            field::FLOAT_DATA => merge_packed(Packing::Fixed32, wire_type, &mut self.float_data, buf, ctx),
+            field::INT32_DATA => merge_packed(Packing::Varint, wire_type, &mut self.int32_data, buf, ctx),
+            field::STRING_DATA => encoding::bytes::merge_repeated(wire_type, &mut self.string_data, buf, ctx),
+            field::INT64_DATA => merge_packed(Packing::Varint, wire_type, &mut self.int64_data, buf, ctx),
             field::NAME => encoding::string::merge(wire_type, &mut self.name, buf, ctx),
             field::RAW_DATA => encoding::bytes::merge(wire_type, &mut self.raw_data, buf, ctx),
-            field::DOUBLE_DATA => {
-                merge_packed(Packing::Fixed64, wire_type, &mut self.double_data, buf, ctx)
-            }
-            field::UINT64_DATA => {
-                merge_packed(Packing::Varint, wire_type, &mut self.uint64_data, buf, ctx)
-            }
+            field::DOUBLE_DATA => merge_packed(Packing::Fixed64, wire_type, &mut self.double_data, buf, ctx),
+            field::UINT64_DATA => merge_packed(Packing::Varint, wire_type, &mut self.uint64_data, buf, ctx),
             field::DOC_STRING => encoding::string::merge(wire_type, &mut self.doc_string, buf, ctx),
-            field::EXTERNAL_DATA => {
-                encoding::message::merge_repeated(wire_type, &mut self.external_data, buf, ctx)
-            }
-            field::DATA_LOCATION => {
-                encoding::int32::merge(wire_type, &mut self.data_location, buf, ctx)
-            }
-            field::METADATA_PROPS => {
-                encoding::message::merge_repeated(wire_type, &mut self.metadata_props, buf, ctx)
-            }
+            field::EXTERNAL_DATA => encoding::message::merge_repeated(wire_type, &mut self.external_data, buf, ctx),
+            field::DATA_LOCATION => encoding::int32::merge(wire_type, &mut self.data_location, buf, ctx),
+            field::METADATA_PROPS => encoding::message::merge_repeated(wire_type, &mut self.metadata_props, buf, ctx),
             _ => encoding::skip_field(wire_type, tag, buf, ctx),
         }
     }
@@ -319,7 +298,10 @@ mod tests {
 
     #[test]
     fn raw_data_is_a_slice_of_the_input_not_a_copy() {
-        let t = TensorProto { raw_data: Bytes::from(vec![7u8; 4096]), ..Default::default() };
+        let t = TensorProto {
+            raw_data: Bytes::from(vec![7u8; 4096]),
+            ..Default::default()
+        };
         let wire = Bytes::from(t.encode_to_vec());
         let decoded = TensorProto::decode(wire.clone()).expect("decodes");
         let start = wire.as_ptr() as usize;
@@ -331,7 +313,10 @@ mod tests {
     fn negative_int32_round_trips() {
         let mut payload = BytesMut::new();
         encoding::encode_varint(-3i64 as u64, &mut payload);
-        let t = TensorProto { int32_data: payload.freeze(), ..Default::default() };
+        let t = TensorProto {
+            int32_data: payload.freeze(),
+            ..Default::default()
+        };
         let d = TensorProto::decode(Bytes::from(t.encode_to_vec())).expect("decodes");
         assert_eq!(d.int32_values(), Some(vec![-3]));
     }

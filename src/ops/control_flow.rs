@@ -10,12 +10,19 @@ use super::{CostRule, Ctx, Inferred, OpDef};
 fn merge(a: &Fact, b: &Fact) -> Fact {
     let dtype = if a.dtype == b.dtype { a.dtype } else { None };
     let shape = match (a.shape.dims(), b.shape.dims()) {
-        (Some(x), Some(y)) if x.len() == y.len() => {
-            Shape::of(x.iter().zip(y).map(|(p, q)| if p == q { p.clone() } else { Dim::Unknown }).collect())
-        }
+        (Some(x), Some(y)) if x.len() == y.len() => Shape::of(
+            x.iter()
+                .zip(y)
+                .map(|(p, q)| if p == q { p.clone() } else { Dim::Unknown })
+                .collect(),
+        ),
         _ => Shape::unknown(),
     };
-    Fact { value_type: a.value_type.clone(), dtype, shape }
+    Fact {
+        value_type: a.value_type.clone(),
+        dtype,
+        shape,
+    }
 }
 
 fn if_(ctx: &Ctx) -> Inferred {
@@ -53,7 +60,11 @@ fn loop_(ctx: &Ctx) -> Inferred {
         if i < carried {
             // The carried value's fact as it enters the loop is the more reliable one.
             let entry = ctx.fact(i + 2).cloned().unwrap_or_default();
-            outs.push(if entry.shape == f.shape { entry } else { merge(&entry, f) });
+            outs.push(if entry.shape == f.shape {
+                entry
+            } else {
+                merge(&entry, f)
+            });
         } else {
             let lead = match trips {
                 Some(t) if ctx.konst(1).is_none_or(|c| c.as_ints().first() != Some(&0)) => Dim::Known(t.max(0) as u64),
@@ -86,7 +97,10 @@ fn scan(ctx: &Ctx) -> Inferred {
         .then(|| ctx.dims(n_state))
         .flatten()
         .and_then(|d| {
-            let axis = ctx.ints("scan_input_axes").and_then(|a| a.first().copied()).unwrap_or(0);
+            let axis = ctx
+                .ints("scan_input_axes")
+                .and_then(|a| a.first().copied())
+                .unwrap_or(0);
             super::util::norm_axis(axis, d.len()).map(|a| d[a].clone())
         })
         .unwrap_or(Dim::Unknown);
@@ -116,7 +130,14 @@ fn scan(ctx: &Ctx) -> Inferred {
 macro_rules! op {
     ($name:literal, $infer:expr) => {
         // Bodies are costed by the driver (If: costlier branch; Loop: × trips); the node itself adds nothing.
-        OpDef { domain: "", op: $name, family: "control_flow", infer: $infer, cost: CostRule::Free, fold: None }
+        OpDef {
+            domain: "",
+            op: $name,
+            family: "control_flow",
+            infer: $infer,
+            cost: CostRule::Free,
+            fold: None,
+        }
     };
 }
 

@@ -4,7 +4,7 @@
 use crate::ir::{DType, Dim, Fact, Shape};
 
 use super::util::{count, tensor};
-use super::{CostRule, Ctx, Inferred, OpDef};
+use super::{CostRule, Ctx, Inferred, MacsOps, OpDef};
 
 /// Which input carries X and W for each conv-like op, and its output type.
 struct ConvIo {
@@ -49,7 +49,9 @@ fn spatial_out(
         "SAME_UPPER" | "SAME_LOWER" => ceil_div(i, s),
         "VALID" => {
             let n = i - ek;
-            if n < 0 { return Err(format!("kernel extent {ek} exceeds input {i}")); }
+            if n < 0 {
+                return Err(format!("kernel extent {ek} exceeds input {i}"));
+            }
             floor_div(n, s) + 1
         }
         _ => {
@@ -83,7 +85,10 @@ struct Window {
 
 fn window(ctx: &Ctx, spatial: usize, kernel: Option<Vec<u64>>) -> Result<Window, String> {
     let kernel = match ctx.ints("kernel_shape") {
-        Some(k) => k.iter().map(|&v| u64::try_from(v).map_err(|_| format!("negative kernel dim {v}"))).collect::<Result<_, _>>()?,
+        Some(k) => k
+            .iter()
+            .map(|&v| u64::try_from(v).map_err(|_| format!("negative kernel dim {v}")))
+            .collect::<Result<_, _>>()?,
         None => kernel.ok_or("kernel shape unknown (no kernel_shape and W's shape is unknown)")?,
     };
     if kernel.len() != spatial {
@@ -91,7 +96,10 @@ fn window(ctx: &Ctx, spatial: usize, kernel: Option<Vec<u64>>) -> Result<Window,
     }
     let pos = |name: &str| -> Result<Vec<u64>, String> {
         match ctx.ints(name) {
-            Some(v) if v.len() == spatial => v.iter().map(|&x| u64::try_from(x).map_err(|_| format!("negative {name}"))).collect(),
+            Some(v) if v.len() == spatial => v
+                .iter()
+                .map(|&x| u64::try_from(x).map_err(|_| format!("negative {name}")))
+                .collect(),
             Some(v) if v.is_empty() => Ok(vec![1; spatial]),
             Some(v) => Err(format!("{name} has {} values for {} spatial dims", v.len(), spatial)),
             None => Ok(vec![1; spatial]),
@@ -107,7 +115,13 @@ fn window(ctx: &Ctx, spatial: usize, kernel: Option<Vec<u64>>) -> Result<Window,
     if auto_pad.is_empty() {
         auto_pad = "NOTSET".into();
     }
-    Ok(Window { kernel, strides: pos("strides")?, dilations: pos("dilations")?, pads: pads.filter(|p| !p.is_empty()), auto_pad })
+    Ok(Window {
+        kernel,
+        strides: pos("strides")?,
+        dilations: pos("dilations")?,
+        pads: pads.filter(|p| !p.is_empty()),
+        auto_pad,
+    })
 }
 
 fn conv_spatial(ctx: &Ctx, x: &[Dim], w: &Window, ceil_mode: bool) -> Result<Vec<Dim>, String> {
@@ -115,7 +129,15 @@ fn conv_spatial(ctx: &Ctx, x: &[Dim], w: &Window, ceil_mode: bool) -> Result<Vec
     (0..spatial)
         .map(|i| {
             let pad = w.pads.as_ref().map(|p| (p[i], p[i + spatial]));
-            spatial_out(&x[2 + i], w.kernel[i], w.strides[i], w.dilations[i], pad, &w.auto_pad, ceil_mode)
+            spatial_out(
+                &x[2 + i],
+                w.kernel[i],
+                w.strides[i],
+                w.dilations[i],
+                pad,
+                &w.auto_pad,
+                ceil_mode,
+            )
         })
         .collect::<Result<_, _>>()
         .map_err(|e: String| format!("{}: {e}", ctx.node.op_type))
@@ -128,9 +150,15 @@ fn conv(ctx: &Ctx) -> Inferred {
         return Err(format!("input of rank {} (need N, C and spatial dims)", x.len()));
     }
     let wdims = io.w.and_then(|i| ctx.dims(i));
-    let kernel = wdims.as_ref().and_then(|w| w.get(2..).map(|k| k.iter().map(Dim::known).collect::<Option<Vec<_>>>())).flatten();
+    let kernel = wdims
+        .as_ref()
+        .and_then(|w| w.get(2..).map(|k| k.iter().map(Dim::known).collect::<Option<Vec<_>>>()))
+        .flatten();
     let win = window(ctx, x.len() - 2, kernel)?;
-    let mut out = vec![x[0].clone(), wdims.as_ref().and_then(|w| w.first().cloned()).unwrap_or(Dim::Unknown)];
+    let mut out = vec![
+        x[0].clone(),
+        wdims.as_ref().and_then(|w| w.first().cloned()).unwrap_or(Dim::Unknown),
+    ];
     out.extend(conv_spatial(ctx, &x, &win, false)?);
     let dtype = match ctx.node.op_type.as_str() {
         "ConvInteger" => Some(DType::I32),
@@ -147,10 +175,18 @@ fn conv_transpose(ctx: &Ctx) -> Inferred {
     }
     let spatial = x.len() - 2;
     let wdims = ctx.dims(1);
-    let kernel = wdims.as_ref().and_then(|w| w.get(2..).map(|k| k.iter().map(Dim::known).collect::<Option<Vec<_>>>())).flatten();
+    let kernel = wdims
+        .as_ref()
+        .and_then(|w| w.get(2..).map(|k| k.iter().map(Dim::known).collect::<Option<Vec<_>>>()))
+        .flatten();
     let win = window(ctx, spatial, kernel)?;
     let group = ctx.int("group", 1).max(1) as u64;
-    let cout = wdims.as_ref().and_then(|w| w.get(1)).and_then(Dim::known).map(|c| Dim::Known(c * group)).unwrap_or(Dim::Unknown);
+    let cout = wdims
+        .as_ref()
+        .and_then(|w| w.get(1))
+        .and_then(Dim::known)
+        .map(|c| Dim::Known(c * group))
+        .unwrap_or(Dim::Unknown);
     let out_pad = ctx.ints("output_padding").unwrap_or_else(|| vec![0; spatial]);
     let mut out = vec![x[0].clone(), cout];
     if let Some(shape) = ctx.ints("output_shape") {
@@ -204,7 +240,7 @@ fn global_pool(ctx: &Ctx) -> Inferred {
     Ok(vec![tensor(ctx.dtype(0), Shape::of(out))])
 }
 
-fn conv_macs(ctx: &Ctx, outs: &[Fact]) -> (Option<u64>, Option<u64>) {
+fn conv_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
     let io = io(&ctx.node.op_type);
     let macs = (|| {
         let y = outs.first()?.shape.concrete()?;
@@ -215,7 +251,7 @@ fn conv_macs(ctx: &Ctx, outs: &[Fact]) -> (Option<u64>, Option<u64>) {
     (macs, Some(0))
 }
 
-fn conv_transpose_macs(ctx: &Ctx, _outs: &[Fact]) -> (Option<u64>, Option<u64>) {
+fn conv_transpose_macs(ctx: &Ctx, _outs: &[Fact]) -> MacsOps {
     let macs = (|| {
         let x = ctx.shape(0).concrete()?;
         let w = ctx.shape(1).concrete()?;
@@ -225,10 +261,15 @@ fn conv_transpose_macs(ctx: &Ctx, _outs: &[Fact]) -> (Option<u64>, Option<u64>) 
     (macs, Some(0))
 }
 
-fn pool_ops(ctx: &Ctx, outs: &[Fact]) -> (Option<u64>, Option<u64>) {
+fn pool_ops(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
     let ops = (|| {
         let y = outs.first()?.shape.element_count()?;
-        let k: u64 = count(&ctx.ints("kernel_shape")?.iter().map(|&v| v.max(0) as u64).collect::<Vec<_>>())?;
+        let k: u64 = count(
+            &ctx.ints("kernel_shape")?
+                .iter()
+                .map(|&v| v.max(0) as u64)
+                .collect::<Vec<_>>(),
+        )?;
         y.checked_mul(k)
     })();
     (Some(0), ops)
@@ -236,7 +277,14 @@ fn pool_ops(ctx: &Ctx, outs: &[Fact]) -> (Option<u64>, Option<u64>) {
 
 macro_rules! op {
     ($name:literal, $infer:expr, $cost:expr) => {
-        OpDef { domain: "", op: $name, family: "conv", infer: $infer, cost: $cost, fold: None }
+        OpDef {
+            domain: "",
+            op: $name,
+            family: "conv",
+            infer: $infer,
+            cost: $cost,
+            fold: None,
+        }
     };
 }
 

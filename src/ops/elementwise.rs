@@ -17,7 +17,10 @@ fn to_bool(ctx: &Ctx) -> Inferred {
 }
 
 fn bcast_inputs(ctx: &Ctx) -> Result<Shape, String> {
-    let shapes: Vec<Shape> = (0..ctx.node.inputs.len()).filter(|&i| ctx.has_input(i)).map(|i| ctx.shape(i)).collect();
+    let shapes: Vec<Shape> = (0..ctx.node.inputs.len())
+        .filter(|&i| ctx.has_input(i))
+        .map(|i| ctx.shape(i))
+        .collect();
     broadcast(&shapes)
 }
 
@@ -57,11 +60,19 @@ fn dropout(ctx: &Ctx) -> Inferred {
 }
 
 fn eye_like(ctx: &Ctx) -> Inferred {
-    let dt = ctx.opt_int("dtype").and_then(|c| DType::from_onnx(c as i32)).or(ctx.dtype(0));
+    let dt = ctx
+        .opt_int("dtype")
+        .and_then(|c| DType::from_onnx(c as i32))
+        .or(ctx.dtype(0));
     Ok(vec![tensor(dt, ctx.shape(0))])
 }
 
-fn fold_with(ctx: &Ctx, int_op: fn(&[i64]) -> Option<i64>, float_op: fn(&[f64]) -> f64, boolean: bool) -> Option<Vec<ConstValue>> {
+fn fold_with(
+    ctx: &Ctx,
+    int_op: fn(&[i64]) -> Option<i64>,
+    float_op: fn(&[f64]) -> f64,
+    boolean: bool,
+) -> Option<Vec<ConstValue>> {
     let c = all_consts(ctx)?;
     Some(vec![fold::elementwise(&c, int_op, float_op, boolean)?])
 }
@@ -79,26 +90,56 @@ fn fold_div(ctx: &Ctx) -> Option<Vec<ConstValue>> {
     fold_with(ctx, |a| fold::trunc_div(a[0], a[1]), |a| a[0] / a[1], false)
 }
 fn fold_equal(ctx: &Ctx) -> Option<Vec<ConstValue>> {
-    fold_with(ctx, |a| Some((a[0] == a[1]) as i64), |a| (a[0] == a[1]) as i64 as f64, true)
+    fold_with(
+        ctx,
+        |a| Some((a[0] == a[1]) as i64),
+        |a| (a[0] == a[1]) as i64 as f64,
+        true,
+    )
 }
 fn fold_less(ctx: &Ctx) -> Option<Vec<ConstValue>> {
-    fold_with(ctx, |a| Some((a[0] < a[1]) as i64), |a| (a[0] < a[1]) as i64 as f64, true)
+    fold_with(
+        ctx,
+        |a| Some((a[0] < a[1]) as i64),
+        |a| (a[0] < a[1]) as i64 as f64,
+        true,
+    )
 }
 fn fold_greater(ctx: &Ctx) -> Option<Vec<ConstValue>> {
-    fold_with(ctx, |a| Some((a[0] > a[1]) as i64), |a| (a[0] > a[1]) as i64 as f64, true)
+    fold_with(
+        ctx,
+        |a| Some((a[0] > a[1]) as i64),
+        |a| (a[0] > a[1]) as i64 as f64,
+        true,
+    )
 }
 fn fold_min(ctx: &Ctx) -> Option<Vec<ConstValue>> {
-    fold_with(ctx, |a| a.iter().copied().min(), |a| a.iter().copied().fold(f64::INFINITY, f64::min), false)
+    fold_with(
+        ctx,
+        |a| a.iter().copied().min(),
+        |a| a.iter().copied().fold(f64::INFINITY, f64::min),
+        false,
+    )
 }
 fn fold_max(ctx: &Ctx) -> Option<Vec<ConstValue>> {
-    fold_with(ctx, |a| a.iter().copied().max(), |a| a.iter().copied().fold(f64::NEG_INFINITY, f64::max), false)
+    fold_with(
+        ctx,
+        |a| a.iter().copied().max(),
+        |a| a.iter().copied().fold(f64::NEG_INFINITY, f64::max),
+        false,
+    )
 }
 fn fold_where(ctx: &Ctx) -> Option<Vec<ConstValue>> {
     let c = all_consts(ctx)?;
     if c.len() != 3 {
         return None;
     }
-    Some(vec![fold::elementwise(&c, |a| Some(if a[0] != 0 { a[1] } else { a[2] }), |a| if a[0] != 0.0 { a[1] } else { a[2] }, false)?])
+    Some(vec![fold::elementwise(
+        &c,
+        |a| Some(if a[0] != 0 { a[1] } else { a[2] }),
+        |a| if a[0] != 0.0 { a[1] } else { a[2] },
+        false,
+    )?])
 }
 fn fold_neg(ctx: &Ctx) -> Option<Vec<ConstValue>> {
     fold_with(ctx, |a| a[0].checked_neg(), |a| -a[0], false)
@@ -122,7 +163,10 @@ fn cast_const(v: &ConstValue, to: DType) -> ConstValue {
     if to.is_float() {
         ConstValue::floats(v.dims.clone(), v.as_floats())
     } else if to == DType::Bool {
-        ConstValue::ints(v.dims.clone(), v.as_floats().iter().map(|x| (*x != 0.0) as i64).collect())
+        ConstValue::ints(
+            v.dims.clone(),
+            v.as_floats().iter().map(|x| (*x != 0.0) as i64).collect(),
+        )
     } else {
         match &v.data {
             ConstData::Float(f) => ConstValue::ints(v.dims.clone(), f.iter().map(|x| x.trunc() as i64).collect()),
@@ -144,10 +188,24 @@ const SOFTMAX_OPS: u64 = 3;
 
 macro_rules! op {
     ($name:literal, $infer:expr, $cost:expr) => {
-        OpDef { domain: "", op: $name, family: "elementwise", infer: $infer, cost: $cost, fold: None }
+        OpDef {
+            domain: "",
+            op: $name,
+            family: "elementwise",
+            infer: $infer,
+            cost: $cost,
+            fold: None,
+        }
     };
     ($name:literal, $infer:expr, $cost:expr, $fold:expr) => {
-        OpDef { domain: "", op: $name, family: "elementwise", infer: $infer, cost: $cost, fold: Some($fold) }
+        OpDef {
+            domain: "",
+            op: $name,
+            family: "elementwise",
+            infer: $infer,
+            cost: $cost,
+            fold: Some($fold),
+        }
     };
 }
 

@@ -74,10 +74,18 @@ pub fn elementwise(
         let mut out = Vec::new();
         for pos in positions(&dims) {
             if all_int {
-                let args: Vec<i64> = values.iter().zip(&ints).map(|(v, d)| d[source_index(&pos, &v.dims)]).collect();
+                let args: Vec<i64> = values
+                    .iter()
+                    .zip(&ints)
+                    .map(|(v, d)| d[source_index(&pos, &v.dims)])
+                    .collect();
                 out.push(int_op(&args)?);
             } else {
-                let args: Vec<f64> = values.iter().zip(&floats).map(|(v, d)| d[source_index(&pos, &v.dims)]).collect();
+                let args: Vec<f64> = values
+                    .iter()
+                    .zip(&floats)
+                    .map(|(v, d)| d[source_index(&pos, &v.dims)])
+                    .collect();
                 out.push(float_op(&args) as i64);
             }
         }
@@ -86,7 +94,11 @@ pub fn elementwise(
         let floats: Vec<Vec<f64>> = values.iter().map(|v| v.as_floats()).collect();
         let out = positions(&dims)
             .map(|pos| {
-                let args: Vec<f64> = values.iter().zip(&floats).map(|(v, d)| d[source_index(&pos, &v.dims)]).collect();
+                let args: Vec<f64> = values
+                    .iter()
+                    .zip(&floats)
+                    .map(|(v, d)| d[source_index(&pos, &v.dims)])
+                    .collect();
                 float_op(&args)
             })
             .collect();
@@ -96,7 +108,10 @@ pub fn elementwise(
 
 /// All inputs present and constant, in slot order.
 pub fn all_consts<'a>(ctx: &Ctx<'a>) -> Option<Vec<&'a ConstValue>> {
-    (0..ctx.node.inputs.len()).filter(|&i| ctx.has_input(i)).map(|i| ctx.konst(i)).collect()
+    (0..ctx.node.inputs.len())
+        .filter(|&i| ctx.has_input(i))
+        .map(|i| ctx.konst(i))
+        .collect()
 }
 
 /// Int division rounding toward negative infinity is not ONNX Div (which truncates like C).
@@ -155,7 +170,9 @@ pub fn slice(data: &ConstValue, ranges: &[(usize, i64, i64, i64)]) -> Option<Con
     if total > MAX_FOLD_ELEMENTS {
         return None;
     }
-    let strides: Vec<u64> = (0..data.dims.len()).map(|i| count(&data.dims[i + 1..]).unwrap_or(0)).collect();
+    let strides: Vec<u64> = (0..data.dims.len())
+        .map(|i| count(&data.dims[i + 1..]).unwrap_or(0))
+        .collect();
     let mut src_idx = Vec::with_capacity(total as usize);
     for pos in positions(&dims) {
         let mut s = 0;

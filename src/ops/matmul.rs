@@ -5,7 +5,7 @@ use std::collections::BTreeMap;
 use crate::ir::{DType, Dim, Fact, Shape};
 
 use super::util::{broadcast, count, tensor};
-use super::{CostRule, Ctx, Inferred, OpDef};
+use super::{CostRule, Ctx, Inferred, MacsOps, OpDef};
 
 /// (A, B) input slots and output dtype of each matmul-like op.
 fn ab(ctx: &Ctx) -> (usize, usize, Option<DType>) {
@@ -35,7 +35,10 @@ pub fn matmul_shape(a: &[Dim], b: &[Dim]) -> Result<Vec<Dim>, String> {
             return Err(format!("inner dims differ: {x} vs {y}"));
         }
     }
-    let batch = broadcast(&[Shape::of(a2[..a2.len() - 2].to_vec()), Shape::of(b2[..b2.len() - 2].to_vec())])?;
+    let batch = broadcast(&[
+        Shape::of(a2[..a2.len() - 2].to_vec()),
+        Shape::of(b2[..b2.len() - 2].to_vec()),
+    ])?;
     let mut out = batch.0.unwrap_or_default();
     if a.len() != 1 {
         out.push(a2[a2.len() - 2].clone());
@@ -54,7 +57,7 @@ fn matmul(ctx: &Ctx) -> Inferred {
     Ok(vec![tensor(dt, Shape::of(matmul_shape(&a, &b)?))])
 }
 
-fn matmul_macs(ctx: &Ctx, outs: &[Fact]) -> (Option<u64>, Option<u64>) {
+fn matmul_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
     let (ia, _, _) = ab(ctx);
     let macs = (|| {
         let y = outs.first()?.shape.element_count()?;
@@ -65,20 +68,38 @@ fn matmul_macs(ctx: &Ctx, outs: &[Fact]) -> (Option<u64>, Option<u64>) {
 }
 
 fn gemm(ctx: &Ctx) -> Inferred {
-    let (Some(a), Some(b)) = (ctx.dims(0), ctx.dims(1)) else { return Err("operand rank unknown".into()) };
+    let (Some(a), Some(b)) = (ctx.dims(0), ctx.dims(1)) else {
+        return Err("operand rank unknown".into());
+    };
     if a.len() != 2 || b.len() != 2 {
-        return Err(format!("Gemm needs 2-D operands, got ranks {} and {}", a.len(), b.len()));
+        return Err(format!(
+            "Gemm needs 2-D operands, got ranks {} and {}",
+            a.len(),
+            b.len()
+        ));
     }
-    let m = if ctx.int("transA", 0) != 0 { a[1].clone() } else { a[0].clone() };
-    let n = if ctx.int("transB", 0) != 0 { b[0].clone() } else { b[1].clone() };
+    let m = if ctx.int("transA", 0) != 0 {
+        a[1].clone()
+    } else {
+        a[0].clone()
+    };
+    let n = if ctx.int("transB", 0) != 0 {
+        b[0].clone()
+    } else {
+        b[1].clone()
+    };
     Ok(vec![tensor(ctx.dtype(0), Shape::of(vec![m, n]))])
 }
 
-fn gemm_macs(ctx: &Ctx, outs: &[Fact]) -> (Option<u64>, Option<u64>) {
+fn gemm_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
     let y = outs.first().and_then(|f| f.shape.element_count());
     let macs = (|| {
         let a = ctx.shape(0).concrete()?;
-        let k = if ctx.int("transA", 0) != 0 { a.first()? } else { a.get(1)? };
+        let k = if ctx.int("transA", 0) != 0 {
+            a.first()?
+        } else {
+            a.get(1)?
+        };
         y?.checked_mul(*k)
     })();
     (macs, y)
@@ -91,7 +112,11 @@ struct Equation {
 }
 
 fn parse_equation(eq: &str, n_inputs: usize) -> Result<Equation, String> {
-    let eq: String = eq.chars().filter(|c| !c.is_whitespace()).collect::<String>().replace("...", ".");
+    let eq: String = eq
+        .chars()
+        .filter(|c| !c.is_whitespace())
+        .collect::<String>()
+        .replace("...", ".");
     let (lhs, rhs) = match eq.split_once("->") {
         Some((l, r)) => (l.to_string(), Some(r.to_string())),
         None => (eq.clone(), None),
@@ -121,8 +146,10 @@ fn parse_equation(eq: &str, n_inputs: usize) -> Result<Equation, String> {
     Ok(Equation { inputs, output })
 }
 
-/// Letter sizes and the broadcast ellipsis dims of an Einsum.
-fn einsum_sizes(ctx: &Ctx) -> Result<(Equation, BTreeMap<char, Dim>, Vec<Dim>), String> {
+/// An equation with each letter's size and the broadcast ellipsis dims.
+type EinsumSizes = (Equation, BTreeMap<char, Dim>, Vec<Dim>);
+
+fn einsum_sizes(ctx: &Ctx) -> Result<EinsumSizes, String> {
     let n = ctx.node.inputs.len();
     let eq = parse_equation(&ctx.string("equation").ok_or("Einsum without equation")?, n)?;
     let mut sizes: BTreeMap<char, Dim> = BTreeMap::new();
@@ -131,7 +158,11 @@ fn einsum_sizes(ctx: &Ctx) -> Result<(Equation, BTreeMap<char, Dim>, Vec<Dim>), 
         let dims = ctx.dims(i).ok_or("operand rank unknown")?;
         let letters = term.iter().filter(|&&c| c != '.').count();
         if dims.len() < letters {
-            return Err(format!("operand {i} has rank {} for term of {} letters", dims.len(), letters));
+            return Err(format!(
+                "operand {i} has rank {} for term of {} letters",
+                dims.len(),
+                letters
+            ));
         }
         let ell_rank = dims.len() - letters;
         let mut pos = 0;
@@ -164,13 +195,18 @@ fn einsum(ctx: &Ctx) -> Inferred {
         if *c == '.' {
             out.extend(ell.iter().cloned());
         } else {
-            out.push(sizes.get(c).cloned().ok_or_else(|| format!("output letter {c} not in any input"))?);
+            out.push(
+                sizes
+                    .get(c)
+                    .cloned()
+                    .ok_or_else(|| format!("output letter {c} not in any input"))?,
+            );
         }
     }
     Ok(vec![tensor(ctx.dtype(0), Shape::of(out))])
 }
 
-fn einsum_macs(ctx: &Ctx, _outs: &[Fact]) -> (Option<u64>, Option<u64>) {
+fn einsum_macs(ctx: &Ctx, _outs: &[Fact]) -> MacsOps {
     let macs = (|| {
         let (_, sizes, ell) = einsum_sizes(ctx).ok()?;
         let mut all: Vec<u64> = sizes.values().map(Dim::known).collect::<Option<_>>()?;
@@ -199,7 +235,9 @@ fn attention(ctx: &Ctx) -> Inferred {
         ),
         (3, 3, 3) => {
             let qh = ctx.opt_int("q_num_heads").ok_or("3-D Attention without q_num_heads")?;
-            let kvh = ctx.opt_int("kv_num_heads").ok_or("3-D Attention without kv_num_heads")?;
+            let kvh = ctx
+                .opt_int("kv_num_heads")
+                .ok_or("3-D Attention without kv_num_heads")?;
             let per = |d: &Dim, h: i64| match d {
                 Dim::Known(x) if h > 0 => Dim::Known(x / h as u64),
                 _ => Dim::Unknown,
@@ -225,10 +263,16 @@ fn attention(ctx: &Ctx) -> Inferred {
     let mut outs = vec![tensor(dt, Shape::of(y))];
     let batch = q[0].clone();
     if ctx.outputs() > 1 {
-        outs.push(tensor(dt, Shape::of(vec![batch.clone(), kv_heads.clone(), total.clone(), head_k])));
+        outs.push(tensor(
+            dt,
+            Shape::of(vec![batch.clone(), kv_heads.clone(), total.clone(), head_k]),
+        ));
     }
     if ctx.outputs() > 2 {
-        outs.push(tensor(dt, Shape::of(vec![batch.clone(), kv_heads, total.clone(), head_v])));
+        outs.push(tensor(
+            dt,
+            Shape::of(vec![batch.clone(), kv_heads, total.clone(), head_v]),
+        ));
     }
     if ctx.outputs() > 3 {
         outs.push(tensor(dt, Shape::of(vec![batch, q_heads, q_len, total])));
@@ -236,7 +280,7 @@ fn attention(ctx: &Ctx) -> Inferred {
     Ok(outs)
 }
 
-fn attention_macs(ctx: &Ctx, outs: &[Fact]) -> (Option<u64>, Option<u64>) {
+fn attention_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
     let macs = (|| {
         let y = outs.first()?.shape.element_count()?;
         let q = ctx.shape(0).concrete()?;
@@ -264,10 +308,13 @@ fn ms_attention(ctx: &Ctx) -> Inferred {
             _ => Dim::Unknown,
         },
     };
-    Ok(vec![tensor(ctx.dtype(0), Shape::of(vec![x[0].clone(), x[1].clone(), v_hidden]))])
+    Ok(vec![tensor(
+        ctx.dtype(0),
+        Shape::of(vec![x[0].clone(), x[1].clone(), v_hidden]),
+    )])
 }
 
-fn ms_attention_macs(ctx: &Ctx, _outs: &[Fact]) -> (Option<u64>, Option<u64>) {
+fn ms_attention_macs(ctx: &Ctx, _outs: &[Fact]) -> MacsOps {
     let macs = (|| {
         let x = ctx.shape(0).concrete()?;
         let w = ctx.shape(1).concrete()?;
@@ -290,7 +337,10 @@ fn mha(ctx: &Ctx) -> Inferred {
         Some(v) if v.len() == 3 => v[2].clone(),
         _ => q[2].clone(),
     };
-    Ok(vec![tensor(ctx.dtype(0), Shape::of(vec![q[0].clone(), q[1].clone(), v_last]))])
+    Ok(vec![tensor(
+        ctx.dtype(0),
+        Shape::of(vec![q[0].clone(), q[1].clone(), v_last]),
+    )])
 }
 
 fn matmul_nbits(ctx: &Ctx) -> Inferred {
@@ -302,13 +352,20 @@ fn matmul_nbits(ctx: &Ctx) -> Inferred {
     Ok(vec![tensor(ctx.dtype(0), Shape::of(out))])
 }
 
-fn matmul_nbits_macs(ctx: &Ctx, outs: &[Fact]) -> (Option<u64>, Option<u64>) {
-    let macs = (|| outs.first()?.shape.element_count()?.checked_mul(ctx.opt_int("K")?.max(0) as u64))();
+fn matmul_nbits_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
+    let macs = (|| {
+        outs.first()?
+            .shape
+            .element_count()?
+            .checked_mul(ctx.opt_int("K")?.max(0) as u64)
+    })();
     (macs, Some(0))
 }
 
 fn fused_matmul(ctx: &Ctx) -> Inferred {
-    let (Some(mut a), Some(mut b)) = (ctx.dims(0), ctx.dims(1)) else { return Err("operand rank unknown".into()) };
+    let (Some(mut a), Some(mut b)) = (ctx.dims(0), ctx.dims(1)) else {
+        return Err("operand rank unknown".into());
+    };
     if ctx.int("transA", 0) != 0 && a.len() >= 2 {
         let n = a.len();
         a.swap(n - 1, n - 2);
@@ -322,7 +379,14 @@ fn fused_matmul(ctx: &Ctx) -> Inferred {
 
 macro_rules! op {
     ($dom:literal, $name:literal, $infer:expr, $cost:expr) => {
-        OpDef { domain: $dom, op: $name, family: "matmul", infer: $infer, cost: $cost, fold: None }
+        OpDef {
+            domain: $dom,
+            op: $name,
+            family: "matmul",
+            infer: $infer,
+            cost: $cost,
+            fold: None,
+        }
     };
 }
 
@@ -333,10 +397,35 @@ pub static OPS: &[OpDef] = &[
     op!("", "Gemm", gemm, CostRule::Custom(gemm_macs)),
     op!("", "Einsum", einsum, CostRule::Custom(einsum_macs)),
     op!("", "Attention", attention, CostRule::Custom(attention_macs)),
-    op!("com.microsoft", "Attention", ms_attention, CostRule::Custom(ms_attention_macs)),
+    op!(
+        "com.microsoft",
+        "Attention",
+        ms_attention,
+        CostRule::Custom(ms_attention_macs)
+    ),
     op!("com.microsoft", "MultiHeadAttention", mha, CostRule::PerOutput(1)),
-    op!("com.microsoft", "FusedMatMul", fused_matmul, CostRule::Custom(matmul_macs)),
-    op!("com.microsoft", "MatMulNBits", matmul_nbits, CostRule::Custom(matmul_nbits_macs)),
-    op!("com.microsoft", "MatMulIntegerToFloat", matmul, CostRule::Custom(matmul_macs)),
-    op!("com.microsoft", "DynamicQuantizeMatMul", matmul, CostRule::Custom(matmul_macs)),
+    op!(
+        "com.microsoft",
+        "FusedMatMul",
+        fused_matmul,
+        CostRule::Custom(matmul_macs)
+    ),
+    op!(
+        "com.microsoft",
+        "MatMulNBits",
+        matmul_nbits,
+        CostRule::Custom(matmul_nbits_macs)
+    ),
+    op!(
+        "com.microsoft",
+        "MatMulIntegerToFloat",
+        matmul,
+        CostRule::Custom(matmul_macs)
+    ),
+    op!(
+        "com.microsoft",
+        "DynamicQuantizeMatMul",
+        matmul,
+        CostRule::Custom(matmul_macs)
+    ),
 ];

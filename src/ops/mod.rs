@@ -42,6 +42,9 @@ pub struct Ctx<'a> {
 /// An inference outcome for one node: the output facts, or why they are unknown.
 pub type Inferred = Result<Vec<Fact>, String>;
 
+/// (MACs, other ops) of one node; `None` where a dim is unknown.
+pub type MacsOps = (Option<u64>, Option<u64>);
+
 /// How an op's arithmetic is counted.
 #[derive(Clone, Copy)]
 pub enum CostRule {
@@ -52,8 +55,11 @@ pub enum CostRule {
     /// `k` ops per element of input 0 (reductions, normalisations).
     PerInput(u64),
     /// Op-specific: returns (macs, ops).
-    Custom(fn(&Ctx, &[Fact]) -> (Option<u64>, Option<u64>)),
+    Custom(fn(&Ctx, &[Fact]) -> MacsOps),
 }
+
+/// Computes a node's output values from small constant inputs, if it can.
+pub type FoldFn = fn(&Ctx) -> Option<Vec<ConstValue>>;
 
 /// Everything known about one op type.
 pub struct OpDef {
@@ -64,7 +70,7 @@ pub struct OpDef {
     pub infer: fn(&Ctx) -> Inferred,
     pub cost: CostRule,
     /// Computes output values when inputs are small constants (shape arithmetic).
-    pub fold: Option<fn(&Ctx) -> Option<Vec<ConstValue>>>,
+    pub fold: Option<FoldFn>,
 }
 
 /// Domains tilecut treats as the standard one.
@@ -78,26 +84,32 @@ pub fn registry() -> &'static [&'static [OpDef]] {
 }
 
 static REGISTRY: &[&[OpDef]] = &[
-        elementwise::OPS,
-        conv::OPS,
-        matmul::OPS,
-        norm::OPS,
-        quant::OPS,
-        recurrent::OPS,
-        reduce::OPS,
-        shape_ops::OPS,
-        control_flow::OPS,
+    elementwise::OPS,
+    conv::OPS,
+    matmul::OPS,
+    norm::OPS,
+    quant::OPS,
+    recurrent::OPS,
+    reduce::OPS,
+    shape_ops::OPS,
+    control_flow::OPS,
 ];
 
 /// Looks an op up by domain and type.
 pub fn lookup(domain: &str, op: &str) -> Option<&'static OpDef> {
     let d = if domain == "ai.onnx" { "" } else { domain };
-    registry().iter().flat_map(|t| t.iter()).find(|o| o.domain == d && o.op == op)
+    registry()
+        .iter()
+        .flat_map(|t| t.iter())
+        .find(|o| o.domain == d && o.op == op)
 }
 
 /// True for ops whose output is random: never folded as constants.
 pub fn is_random(op: &str) -> bool {
-    matches!(op, "RandomNormal" | "RandomUniform" | "RandomNormalLike" | "RandomUniformLike" | "Multinomial" | "Bernoulli")
+    matches!(
+        op,
+        "RandomNormal" | "RandomUniform" | "RandomNormalLike" | "RandomUniformLike" | "Multinomial" | "Bernoulli"
+    )
 }
 
 #[cfg(test)]
@@ -108,7 +120,12 @@ mod tests {
     fn registry_has_no_duplicates_and_every_op_has_a_cost_convention() {
         let mut seen = std::collections::BTreeSet::new();
         for op in registry().iter().flat_map(|t| t.iter()) {
-            assert!(seen.insert((op.domain, op.op)), "duplicate registry entry {}/{}", op.domain, op.op);
+            assert!(
+                seen.insert((op.domain, op.op)),
+                "duplicate registry entry {}/{}",
+                op.domain,
+                op.op
+            );
             assert!(!op.op.is_empty() && !op.family.is_empty());
             // Every entry has a cost rule by construction (the enum has no "unknown").
             let _ = op.cost;

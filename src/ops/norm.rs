@@ -61,7 +61,14 @@ fn skip_norm(ctx: &Ctx) -> Inferred {
 
 macro_rules! op {
     ($dom:literal, $name:literal, $infer:expr, $cost:expr) => {
-        OpDef { domain: $dom, op: $name, family: "norm", infer: $infer, cost: $cost, fold: None }
+        OpDef {
+            domain: $dom,
+            op: $name,
+            family: "norm",
+            infer: $infer,
+            cost: $cost,
+            fold: None,
+        }
     };
 }
 
@@ -79,10 +86,30 @@ pub static OPS: &[OpDef] = &[
     op!("", "LRN", same, CostRule::PerInput(NORM_OPS)),
     op!("", "RotaryEmbedding", same, CostRule::PerOutput(3)),
     op!("com.microsoft", "RotaryEmbedding", same, CostRule::PerOutput(3)),
-    op!("com.microsoft", "SkipLayerNormalization", skip_norm, CostRule::PerInput(NORM_OPS)),
-    op!("com.microsoft", "SkipSimplifiedLayerNormalization", skip_norm, CostRule::PerInput(4)),
-    op!("com.microsoft", "SimplifiedLayerNormalization", layer_norm, CostRule::PerInput(4)),
-    op!("com.microsoft", "LayerNormalization", layer_norm, CostRule::PerInput(NORM_OPS)),
+    op!(
+        "com.microsoft",
+        "SkipLayerNormalization",
+        skip_norm,
+        CostRule::PerInput(NORM_OPS)
+    ),
+    op!(
+        "com.microsoft",
+        "SkipSimplifiedLayerNormalization",
+        skip_norm,
+        CostRule::PerInput(4)
+    ),
+    op!(
+        "com.microsoft",
+        "SimplifiedLayerNormalization",
+        layer_norm,
+        CostRule::PerInput(4)
+    ),
+    op!(
+        "com.microsoft",
+        "LayerNormalization",
+        layer_norm,
+        CostRule::PerInput(NORM_OPS)
+    ),
     op!("com.microsoft", "Gelu", same, CostRule::PerOutput(1)),
     op!("com.microsoft", "FastGelu", same, CostRule::PerOutput(1)),
     op!("com.microsoft", "BiasGelu", same, CostRule::PerOutput(2)),

@@ -40,7 +40,14 @@ fn dynamic_quantize(ctx: &Ctx) -> Inferred {
 
 macro_rules! op {
     ($dom:literal, $name:literal, $infer:expr, $cost:expr) => {
-        OpDef { domain: $dom, op: $name, family: "quant", infer: $infer, cost: $cost, fold: None }
+        OpDef {
+            domain: $dom,
+            op: $name,
+            family: "quant",
+            infer: $infer,
+            cost: $cost,
+            fold: None,
+        }
     };
 }
 

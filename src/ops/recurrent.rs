@@ -4,7 +4,7 @@
 use crate::ir::{Dim, Fact, Shape};
 
 use super::util::tensor;
-use super::{CostRule, Ctx, Inferred, OpDef};
+use super::{CostRule, Ctx, Inferred, MacsOps, OpDef};
 
 fn gates(op: &str) -> u64 {
     match op {
@@ -20,8 +20,16 @@ fn recurrent(ctx: &Ctx) -> Inferred {
         return Err(format!("X of rank {}", x.len()));
     }
     let layout = ctx.int("layout", 0);
-    let (seq, batch) = if layout == 0 { (x[0].clone(), x[1].clone()) } else { (x[1].clone(), x[0].clone()) };
-    let dirs = if ctx.string("direction").as_deref() == Some("bidirectional") { 2 } else { 1 };
+    let (seq, batch) = if layout == 0 {
+        (x[0].clone(), x[1].clone())
+    } else {
+        (x[1].clone(), x[0].clone())
+    };
+    let dirs = if ctx.string("direction").as_deref() == Some("bidirectional") {
+        2
+    } else {
+        1
+    };
     let hidden = match ctx.opt_int("hidden_size") {
         Some(h) => Dim::Known(h.max(0) as u64),
         None => match ctx.dims(2) {
@@ -37,7 +45,11 @@ fn recurrent(ctx: &Ctx) -> Inferred {
     } else {
         vec![batch.clone(), seq, d.clone(), hidden.clone()]
     };
-    let state = if layout == 0 { vec![d, batch, hidden] } else { vec![batch, d, hidden] };
+    let state = if layout == 0 {
+        vec![d, batch, hidden]
+    } else {
+        vec![batch, d, hidden]
+    };
     let mut outs = vec![tensor(dt, Shape::of(y))];
     for _ in 1..ctx.outputs() {
         outs.push(tensor(dt, Shape::of(state.clone())));
@@ -45,7 +57,7 @@ fn recurrent(ctx: &Ctx) -> Inferred {
     Ok(outs)
 }
 
-fn recurrent_macs(ctx: &Ctx, outs: &[Fact]) -> (Option<u64>, Option<u64>) {
+fn recurrent_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
     let macs = (|| {
         let y = outs.first()?.shape.concrete()?;
         let x = ctx.shape(0).concrete()?;
@@ -53,14 +65,28 @@ fn recurrent_macs(ctx: &Ctx, outs: &[Fact]) -> (Option<u64>, Option<u64>) {
         let hidden = *y.last()?;
         // Every output element of every step: gates × (input + hidden) MACs.
         let elems: u64 = y.iter().product();
-        elems.checked_mul(gates(&ctx.node.op_type))?.checked_mul(input.checked_add(hidden)?)
+        elems
+            .checked_mul(gates(&ctx.node.op_type))?
+            .checked_mul(input.checked_add(hidden)?)
     })();
-    (macs, outs.first().and_then(|f| f.shape.element_count()).map(|e| e * gates(&ctx.node.op_type) * 3))
+    (
+        macs,
+        outs.first()
+            .and_then(|f| f.shape.element_count())
+            .map(|e| e * gates(&ctx.node.op_type) * 3),
+    )
 }
 
 macro_rules! op {
     ($name:literal) => {
-        OpDef { domain: "", op: $name, family: "recurrent", infer: recurrent, cost: CostRule::Custom(recurrent_macs), fold: None }
+        OpDef {
+            domain: "",
+            op: $name,
+            family: "recurrent",
+            infer: recurrent,
+            cost: CostRule::Custom(recurrent_macs),
+            fold: None,
+        }
     };
 }
 

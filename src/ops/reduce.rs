@@ -17,13 +17,19 @@ fn axes_input_since(op: &str) -> i64 {
 fn reduce(ctx: &Ctx) -> Inferred {
     let keep = ctx.int("keepdims", 1) != 0;
     let dt = ctx.dtype(0);
-    let Some(dims) = ctx.dims(0) else { return Ok(vec![tensor(dt, Shape::unknown())]) };
+    let Some(dims) = ctx.dims(0) else {
+        return Ok(vec![tensor(dt, Shape::unknown())]);
+    };
     let axes: Option<Vec<i64>> = if ctx.opset >= axes_input_since(&ctx.node.op_type) {
         if ctx.has_input(1) {
             match ctx.const_ints(1) {
                 Some(a) => Some(a),
                 None => {
-                    let shape = if keep { Shape::of_rank(dims.len()) } else { Shape::unknown() };
+                    let shape = if keep {
+                        Shape::of_rank(dims.len())
+                    } else {
+                        Shape::unknown()
+                    };
                     return Ok(vec![tensor(dt, shape)]);
                 }
             }
@@ -56,7 +62,9 @@ fn reduce(ctx: &Ctx) -> Inferred {
 
 fn arg_reduce(ctx: &Ctx) -> Inferred {
     let keep = ctx.int("keepdims", 1) != 0;
-    let Some(dims) = ctx.dims(0) else { return Ok(vec![tensor(Some(DType::I64), Shape::unknown())]) };
+    let Some(dims) = ctx.dims(0) else {
+        return Ok(vec![tensor(Some(DType::I64), Shape::unknown())]);
+    };
     let axis = norm_axis(ctx.int("axis", 0), dims.len()).ok_or("axis out of range")?;
     let mut out = dims;
     if keep {
@@ -69,7 +77,14 @@ fn arg_reduce(ctx: &Ctx) -> Inferred {
 
 macro_rules! op {
     ($name:literal, $infer:expr) => {
-        OpDef { domain: "", op: $name, family: "reduce", infer: $infer, cost: CostRule::PerInput(1), fold: None }
+        OpDef {
+            domain: "",
+            op: $name,
+            family: "reduce",
+            infer: $infer,
+            cost: CostRule::PerInput(1),
+            fold: None,
+        }
     };
 }
 

@@ -21,12 +21,25 @@ fn constant_value(ctx: &Ctx) -> Option<(Option<DType>, Vec<u64>, Option<ConstVal
     for a in &ctx.node.attrs {
         let r = match (a.name.as_str(), &a.value) {
             ("value", AttrValue::Tensor(t)) => (t.dtype, t.dims.clone(), values::decode(t)),
-            ("value_float", AttrValue::Float(f)) => (Some(DType::F32), vec![], Some(ConstValue::floats(vec![], vec![*f as f64]))),
-            ("value_floats", AttrValue::Floats(f)) => {
-                (Some(DType::F32), vec![f.len() as u64], Some(ConstValue::floats(vec![f.len() as u64], f.iter().map(|x| *x as f64).collect())))
-            }
+            ("value_float", AttrValue::Float(f)) => (
+                Some(DType::F32),
+                vec![],
+                Some(ConstValue::floats(vec![], vec![*f as f64])),
+            ),
+            ("value_floats", AttrValue::Floats(f)) => (
+                Some(DType::F32),
+                vec![f.len() as u64],
+                Some(ConstValue::floats(
+                    vec![f.len() as u64],
+                    f.iter().map(|x| *x as f64).collect(),
+                )),
+            ),
             ("value_int", AttrValue::Int(i)) => (Some(DType::I64), vec![], Some(ConstValue::ints(vec![], vec![*i]))),
-            ("value_ints", AttrValue::Ints(v)) => (Some(DType::I64), vec![v.len() as u64], Some(ConstValue::ints(vec![v.len() as u64], v.clone()))),
+            ("value_ints", AttrValue::Ints(v)) => (
+                Some(DType::I64),
+                vec![v.len() as u64],
+                Some(ConstValue::ints(vec![v.len() as u64], v.clone())),
+            ),
             ("value_string", _) => (Some(DType::Str), vec![], None),
             ("value_strings", AttrValue::Strings(v)) => (Some(DType::Str), vec![v.len() as u64], None),
             _ => continue,
@@ -61,7 +74,11 @@ fn constant_of_shape(ctx: &Ctx) -> Inferred {
 }
 
 fn fold_constant_of_shape(ctx: &Ctx) -> Option<Vec<ConstValue>> {
-    let dims: Vec<u64> = ctx.const_ints(0)?.iter().map(|&d| u64::try_from(d).ok()).collect::<Option<_>>()?;
+    let dims: Vec<u64> = ctx
+        .const_ints(0)?
+        .iter()
+        .map(|&d| u64::try_from(d).ok())
+        .collect::<Option<_>>()?;
     let n = count(&dims)?;
     if n > MAX_FOLD_ELEMENTS {
         return None;
@@ -108,7 +125,10 @@ fn fold_shape(ctx: &Ctx) -> Option<Vec<ConstValue>> {
     let dims = vec![part.len() as u64];
     Some(vec![match part.iter().map(Dim::known).collect::<Option<Vec<u64>>>() {
         Some(k) => ConstValue::ints(dims, k.into_iter().map(|x| x as i64).collect()),
-        None => ConstValue { dims, data: ConstData::Dims(part) },
+        None => ConstValue {
+            dims,
+            data: ConstData::Dims(part),
+        },
     }])
 }
 
@@ -117,12 +137,19 @@ fn size(_ctx: &Ctx) -> Inferred {
 }
 
 fn fold_size(ctx: &Ctx) -> Option<Vec<ConstValue>> {
-    Some(vec![ConstValue::ints(vec![], vec![i64::try_from(ctx.shape(0).element_count()?).ok()?])])
+    Some(vec![ConstValue::ints(
+        vec![],
+        vec![i64::try_from(ctx.shape(0).element_count()?).ok()?],
+    )])
 }
 
 fn range_len(ctx: &Ctx) -> Option<u64> {
     let (s, l, d) = (ctx.konst(0)?, ctx.konst(1)?, ctx.konst(2)?);
-    let (s, l, d) = (*s.as_floats().first()?, *l.as_floats().first()?, *d.as_floats().first()?);
+    let (s, l, d) = (
+        *s.as_floats().first()?,
+        *l.as_floats().first()?,
+        *d.as_floats().first()?,
+    );
     if d == 0.0 || !s.is_finite() || !l.is_finite() {
         return None;
     }
@@ -225,12 +252,20 @@ fn reshape(ctx: &Ctx) -> Inferred {
             Some(c) => (c.as_ints(), c.as_dims()),
             None => {
                 let rank = ctx.shape(1).concrete().and_then(|s| s.first().copied());
-                return Ok(vec![tensor(ctx.dtype(0), rank.map(|r| Shape::of_rank(r as usize)).unwrap_or_else(Shape::unknown))]);
+                return Ok(vec![tensor(
+                    ctx.dtype(0),
+                    rank.map(|r| Shape::of_rank(r as usize)).unwrap_or_else(Shape::unknown),
+                )]);
             }
         }
     } else {
         let s = ctx.ints("shape").ok_or("Reshape-1 without shape attribute")?;
-        (s.clone(), s.iter().map(|&x| if x >= 0 { Dim::Known(x as u64) } else { Dim::Unknown }).collect())
+        (
+            s.clone(),
+            s.iter()
+                .map(|&x| if x >= 0 { Dim::Known(x as u64) } else { Dim::Unknown })
+                .collect(),
+        )
     };
     // In a shape value, only the marker is "infer"; symbolic and unknown dims are sizes.
     let literal: Vec<i64> = match ctx.konst(1).map(|c| &c.data) {
@@ -261,7 +296,9 @@ fn fold_reshape(ctx: &Ctx) -> Option<Vec<ConstValue>> {
 }
 
 fn flatten(ctx: &Ctx) -> Inferred {
-    let Some(d) = ctx.dims(0) else { return Ok(vec![tensor(ctx.dtype(0), Shape::of_rank(2))]) };
+    let Some(d) = ctx.dims(0) else {
+        return Ok(vec![tensor(ctx.dtype(0), Shape::of_rank(2))]);
+    };
     // Flatten's axis lies in [-r, r]; a negative one counts from the end (r + axis).
     let (r, a) = (d.len() as i64, ctx.int("axis", 1));
     let axis = if a < 0 { a + r } else { a };
@@ -269,16 +306,28 @@ fn flatten(ctx: &Ctx) -> Inferred {
         return Err(format!("axis {a} out of range for rank {r}"));
     }
     let axis = axis as usize;
-    Ok(vec![tensor(ctx.dtype(0), Shape::of(vec![product(&d[..axis])?, product(&d[axis..])?]))])
+    Ok(vec![tensor(
+        ctx.dtype(0),
+        Shape::of(vec![product(&d[..axis])?, product(&d[axis..])?]),
+    )])
 }
 
 fn transpose(ctx: &Ctx) -> Inferred {
-    let Some(d) = ctx.dims(0) else { return Ok(vec![tensor(ctx.dtype(0), Shape::unknown())]) };
+    let Some(d) = ctx.dims(0) else {
+        return Ok(vec![tensor(ctx.dtype(0), Shape::unknown())]);
+    };
     let perm = ctx.ints("perm").unwrap_or_else(|| (0..d.len() as i64).rev().collect());
     if perm.len() != d.len() {
         return Err(format!("perm has {} entries for rank {}", perm.len(), d.len()));
     }
-    let out = perm.iter().map(|&p| norm_axis(p, d.len()).map(|a| d[a].clone()).ok_or("perm entry out of range")).collect::<Result<_, _>>()?;
+    let out = perm
+        .iter()
+        .map(|&p| {
+            norm_axis(p, d.len())
+                .map(|a| d[a].clone())
+                .ok_or("perm entry out of range")
+        })
+        .collect::<Result<_, _>>()?;
     Ok(vec![tensor(ctx.dtype(0), Shape::of(out))])
 }
 
@@ -296,8 +345,12 @@ fn axes(ctx: &Ctx, since: i64) -> Result<Option<Vec<i64>>, ()> {
 
 fn squeeze(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(0);
-    let Some(d) = ctx.dims(0) else { return Ok(vec![tensor(dt, Shape::unknown())]) };
-    let Ok(axes) = axes(ctx, 13) else { return Ok(vec![tensor(dt, Shape::unknown())]) };
+    let Some(d) = ctx.dims(0) else {
+        return Ok(vec![tensor(dt, Shape::unknown())]);
+    };
+    let Ok(axes) = axes(ctx, 13) else {
+        return Ok(vec![tensor(dt, Shape::unknown())]);
+    };
     let out = match axes {
         Some(a) => {
             let mut drop = vec![false; d.len()];
@@ -324,7 +377,9 @@ fn squeeze(ctx: &Ctx) -> Inferred {
 
 fn unsqueeze(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(0);
-    let Some(d) = ctx.dims(0) else { return Ok(vec![tensor(dt, Shape::unknown())]) };
+    let Some(d) = ctx.dims(0) else {
+        return Ok(vec![tensor(dt, Shape::unknown())]);
+    };
     let a = match axes(ctx, 13) {
         Ok(Some(a)) => a,
         Ok(None) => return Err("Unsqueeze without axes".into()),
@@ -337,7 +392,10 @@ fn unsqueeze(ctx: &Ctx) -> Inferred {
         out[i] = Some(Dim::Known(1));
     }
     let mut it = d.into_iter();
-    let out = out.into_iter().map(|o| o.or_else(|| it.next()).unwrap_or(Dim::Unknown)).collect();
+    let out = out
+        .into_iter()
+        .map(|o| o.or_else(|| it.next()).unwrap_or(Dim::Unknown))
+        .collect();
     Ok(vec![tensor(dt, Shape::of(out))])
 }
 
@@ -358,7 +416,9 @@ fn concat(ctx: &Ctx) -> Inferred {
     let n = ctx.node.inputs.len();
     let shapes: Vec<Option<Vec<Dim>>> = (0..n).filter(|&i| ctx.has_input(i)).map(|i| ctx.dims(i)).collect();
     let dt = (0..n).find_map(|i| ctx.dtype(i));
-    let Some(rank) = shapes.iter().flatten().map(Vec::len).next() else { return Ok(vec![tensor(dt, Shape::unknown())]) };
+    let Some(rank) = shapes.iter().flatten().map(Vec::len).next() else {
+        return Ok(vec![tensor(dt, Shape::unknown())]);
+    };
     let axis = norm_axis(ctx.int("axis", 0), rank).ok_or("axis out of range")?;
     let mut out: Vec<Dim> = vec![Dim::Unknown; rank];
     let mut total = Dim::Known(0);
@@ -395,10 +455,25 @@ fn fold_concat(ctx: &Ctx) -> Option<Vec<ConstValue>> {
         let dims_of = |p: &ConstValue| -> Vec<Dim> {
             match &p.data {
                 ConstData::Dims(d) => d.clone(),
-                _ => p.as_ints().into_iter().map(|x| if x == -1 { Dim::sym(INFER_MARK) } else if x >= 0 { Dim::Known(x as u64) } else { Dim::Unknown }).collect(),
+                _ => p
+                    .as_ints()
+                    .into_iter()
+                    .map(|x| {
+                        if x == -1 {
+                            Dim::sym(INFER_MARK)
+                        } else if x >= 0 {
+                            Dim::Known(x as u64)
+                        } else {
+                            Dim::Unknown
+                        }
+                    })
+                    .collect(),
             }
         };
-        ConstValue { dims, data: ConstData::Dims(parts.iter().flat_map(|p| dims_of(p)).collect()) }
+        ConstValue {
+            dims,
+            data: ConstData::Dims(parts.iter().flat_map(|p| dims_of(p)).collect()),
+        }
     } else if any_float {
         ConstValue::floats(dims, parts.iter().flat_map(|p| p.as_floats()).collect())
     } else {
@@ -409,7 +484,9 @@ fn fold_concat(ctx: &Ctx) -> Option<Vec<ConstValue>> {
 fn split(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(0);
     let n = ctx.outputs();
-    let Some(d) = ctx.dims(0) else { return Ok(vec![tensor(dt, Shape::unknown()); n]) };
+    let Some(d) = ctx.dims(0) else {
+        return Ok(vec![tensor(dt, Shape::unknown()); n]);
+    };
     let axis = norm_axis(ctx.int("axis", 0), d.len()).ok_or("axis out of range")?;
     let sizes: Option<Vec<i64>> = if ctx.opset >= 13 {
         if ctx.has_input(1) {
@@ -436,10 +513,16 @@ fn split(ctx: &Ctx) -> Inferred {
         }
         None => match &d[axis] {
             Dim::Known(total) => {
-                let k = ctx.opt_int("num_outputs").map(|x| x.max(1) as u64).unwrap_or(n as u64).max(1);
+                let k = ctx
+                    .opt_int("num_outputs")
+                    .map(|x| x.max(1) as u64)
+                    .unwrap_or(n as u64)
+                    .max(1);
                 // opset 18: chunks of ceil(total / k), the last one smaller.
                 let chunk = total.div_ceil(k);
-                (0..n as u64).map(|i| Dim::Known(chunk.min(total.saturating_sub(i * chunk)))).collect()
+                (0..n as u64)
+                    .map(|i| Dim::Known(chunk.min(total.saturating_sub(i * chunk))))
+                    .collect()
             }
             _ => vec![Dim::Unknown; n],
         },
@@ -455,17 +538,30 @@ fn split(ctx: &Ctx) -> Inferred {
 }
 
 /// Slice parameters: (starts, ends, axes, steps), from attributes (opset < 10) or inputs.
-fn slice_params(ctx: &Ctx) -> Option<(Vec<i64>, Vec<i64>, Option<Vec<i64>>, Option<Vec<i64>>)> {
+type SliceParams = (Vec<i64>, Vec<i64>, Option<Vec<i64>>, Option<Vec<i64>>);
+
+fn slice_params(ctx: &Ctx) -> Option<SliceParams> {
     if ctx.opset < 10 {
         return Some((ctx.ints("starts")?, ctx.ints("ends")?, ctx.ints("axes"), None));
     }
-    let opt = |i: usize| if ctx.has_input(i) { ctx.const_ints(i).map(Some) } else { Some(None) };
+    let opt = |i: usize| {
+        if ctx.has_input(i) {
+            ctx.const_ints(i).map(Some)
+        } else {
+            Some(None)
+        }
+    };
     Some((ctx.const_ints(1)?, ctx.const_ints(2)?, opt(3)?, opt(4)?))
 }
 
 /// Per-axis (axis, start, end, step) after clamping, per the Slice spec.
-fn slice_ranges(ctx: &Ctx, d: &[Dim]) -> Result<Option<Vec<(usize, Option<(i64, i64, i64)>)>>, String> {
-    let Some((starts, ends, axes, steps)) = slice_params(ctx) else { return Ok(None) };
+/// An axis and its clamped (start, end, step), `None` where the axis size is unknown.
+type AxisRange = (usize, Option<(i64, i64, i64)>);
+
+fn slice_ranges(ctx: &Ctx, d: &[Dim]) -> Result<Option<Vec<AxisRange>>, String> {
+    let Some((starts, ends, axes, steps)) = slice_params(ctx) else {
+        return Ok(None);
+    };
     let axes = axes.unwrap_or_else(|| (0..starts.len() as i64).collect());
     let steps = steps.unwrap_or_else(|| vec![1; starts.len()]);
     if ends.len() != starts.len() || axes.len() != starts.len() || steps.len() != starts.len() {
@@ -485,7 +581,11 @@ fn slice_ranges(ctx: &Ctx, d: &[Dim]) -> Result<Option<Vec<(usize, Option<(i64, 
         let dim = dim as i64;
         let fix = |v: i64| if v < 0 { v.saturating_add(dim) } else { v };
         let (s, e) = (fix(starts[i]), fix(ends[i]));
-        let (s, e) = if step > 0 { (s.clamp(0, dim), e.clamp(0, dim)) } else { (s.clamp(0, dim - 1), e.clamp(-1, dim - 1)) };
+        let (s, e) = if step > 0 {
+            (s.clamp(0, dim), e.clamp(0, dim))
+        } else {
+            (s.clamp(0, dim - 1), e.clamp(-1, dim - 1))
+        };
         out.push((axis, Some((s, e, step))));
     }
     Ok(Some(out))
@@ -493,7 +593,9 @@ fn slice_ranges(ctx: &Ctx, d: &[Dim]) -> Result<Option<Vec<(usize, Option<(i64, 
 
 fn slice(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(0);
-    let Some(d) = ctx.dims(0) else { return Ok(vec![tensor(dt, Shape::unknown())]) };
+    let Some(d) = ctx.dims(0) else {
+        return Ok(vec![tensor(dt, Shape::unknown())]);
+    };
     let Some(ranges) = slice_ranges(ctx, &d)? else {
         // Unknown bounds: the rank stays, the sliced sizes are unknown.
         let mut s = d.clone();
@@ -516,7 +618,11 @@ fn slice(ctx: &Ctx) -> Inferred {
     for (axis, r) in ranges {
         out[axis] = match r {
             Some((s, e, step)) => {
-                let (span, st) = if step > 0 { ((e - s).max(0), step) } else { ((s - e).max(0), -step) };
+                let (span, st) = if step > 0 {
+                    ((e - s).max(0), step)
+                } else {
+                    ((s - e).max(0), -step)
+                };
                 let n = (span + st - 1) / st;
                 Dim::Known(n as u64)
             }
@@ -530,13 +636,18 @@ fn fold_slice(ctx: &Ctx) -> Option<Vec<ConstValue>> {
     let data = ctx.konst(0)?;
     let d: Vec<Dim> = data.dims.iter().map(|&x| Dim::Known(x)).collect();
     let ranges = slice_ranges(ctx, &d).ok()??;
-    let r: Vec<(usize, i64, i64, i64)> = ranges.into_iter().map(|(a, r)| r.map(|(s, e, st)| (a, s, e, st))).collect::<Option<_>>()?;
+    let r: Vec<(usize, i64, i64, i64)> = ranges
+        .into_iter()
+        .map(|(a, r)| r.map(|(s, e, st)| (a, s, e, st)))
+        .collect::<Option<_>>()?;
     Some(vec![fold::slice(data, &r)?])
 }
 
 fn gather(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(0);
-    let (Some(d), Some(idx)) = (ctx.dims(0), ctx.dims(1)) else { return Ok(vec![tensor(dt, Shape::unknown())]) };
+    let (Some(d), Some(idx)) = (ctx.dims(0), ctx.dims(1)) else {
+        return Ok(vec![tensor(dt, Shape::unknown())]);
+    };
     let axis = norm_axis(ctx.int("axis", 0), d.len()).ok_or("axis out of range")?;
     let mut out = d[..axis].to_vec();
     out.extend(idx);
@@ -557,9 +668,13 @@ fn gather_elements(ctx: &Ctx) -> Inferred {
 
 fn gather_nd(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(0);
-    let (Some(d), Some(i)) = (ctx.dims(0), ctx.dims(1)) else { return Ok(vec![tensor(dt, Shape::unknown())]) };
+    let (Some(d), Some(i)) = (ctx.dims(0), ctx.dims(1)) else {
+        return Ok(vec![tensor(dt, Shape::unknown())]);
+    };
     let b = ctx.int("batch_dims", 0).max(0) as usize;
-    let Some(Dim::Known(last)) = i.last().cloned() else { return Ok(vec![tensor(dt, Shape::unknown())]) };
+    let Some(Dim::Known(last)) = i.last().cloned() else {
+        return Ok(vec![tensor(dt, Shape::unknown())]);
+    };
     let last = last as usize;
     if b + last > d.len() {
         return Err("indices address more dims than data has".into());
@@ -573,12 +688,23 @@ fn gather_nd(ctx: &Ctx) -> Inferred {
 
 fn pad(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(0);
-    let Some(d) = ctx.dims(0) else { return Ok(vec![tensor(dt, Shape::unknown())]) };
-    let pads = if ctx.opset >= 11 { ctx.const_ints(1) } else { ctx.ints("pads").or_else(|| ctx.ints("paddings")) };
-    let Some(pads) = pads else { return Ok(vec![tensor(dt, Shape::of_rank(d.len()))]) };
+    let Some(d) = ctx.dims(0) else {
+        return Ok(vec![tensor(dt, Shape::unknown())]);
+    };
+    let pads = if ctx.opset >= 11 {
+        ctx.const_ints(1)
+    } else {
+        ctx.ints("pads").or_else(|| ctx.ints("paddings"))
+    };
+    let Some(pads) = pads else {
+        return Ok(vec![tensor(dt, Shape::of_rank(d.len()))]);
+    };
     let axes: Vec<usize> = if ctx.opset >= 18 && ctx.has_input(3) {
         match ctx.const_ints(3) {
-            Some(a) => a.iter().map(|&x| norm_axis(x, d.len()).ok_or("axis out of range")).collect::<Result<_, _>>()?,
+            Some(a) => a
+                .iter()
+                .map(|&x| norm_axis(x, d.len()).ok_or("axis out of range"))
+                .collect::<Result<_, _>>()?,
             None => return Ok(vec![tensor(dt, Shape::of_rank(d.len()))]),
         }
     } else {
@@ -608,28 +734,41 @@ fn scaled(d: &Dim, s: f64) -> Dim {
 
 fn resize(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(0);
-    let Some(d) = ctx.dims(0) else { return Ok(vec![tensor(dt, Shape::unknown())]) };
+    let Some(d) = ctx.dims(0) else {
+        return Ok(vec![tensor(dt, Shape::unknown())]);
+    };
     let (scale_slot, size_slot) = match (ctx.node.op_type.as_str(), ctx.opset) {
         ("Upsample", _) | (_, ..=10) => (1, None),
         _ => (2, Some(3)),
     };
     let axes: Vec<usize> = match ctx.ints("axes") {
-        Some(a) => a.iter().map(|&x| norm_axis(x, d.len()).ok_or("axis out of range")).collect::<Result<_, _>>()?,
+        Some(a) => a
+            .iter()
+            .map(|&x| norm_axis(x, d.len()).ok_or("axis out of range"))
+            .collect::<Result<_, _>>()?,
         None => (0..d.len()).collect(),
     };
     let unknown = || Ok(vec![tensor(dt, Shape::of_rank(d.len()))]);
     let mut out = d.clone();
     if let Some(sizes) = size_slot.filter(|&i| ctx.has_input(i)).map(|i| ctx.const_ints(i)) {
-        let Some(sizes) = sizes.filter(|s| !s.is_empty()) else { return unknown() };
+        let Some(sizes) = sizes.filter(|s| !s.is_empty()) else {
+            return unknown();
+        };
         if sizes.len() != axes.len() {
             return Err("sizes length differs from the axes".into());
         }
-        let policy = ctx.string("keep_aspect_ratio_policy").unwrap_or_else(|| "stretch".into());
+        let policy = ctx
+            .string("keep_aspect_ratio_policy")
+            .unwrap_or_else(|| "stretch".into());
         if policy != "stretch" {
             let known: Option<Vec<u64>> = axes.iter().map(|&a| d[a].known()).collect();
             let Some(inp) = known else { return unknown() };
             let ratios = sizes.iter().zip(&inp).map(|(&s, &i)| s as f64 / i as f64);
-            let r = if policy == "not_larger" { ratios.fold(f64::INFINITY, f64::min) } else { ratios.fold(0.0, f64::max) };
+            let r = if policy == "not_larger" {
+                ratios.fold(f64::INFINITY, f64::min)
+            } else {
+                ratios.fold(0.0, f64::max)
+            };
             for (k, &a) in axes.iter().enumerate() {
                 out[a] = Dim::Known((inp[k] as f64 * r).round() as u64);
             }
@@ -650,7 +789,9 @@ fn resize(ctx: &Ctx) -> Inferred {
     } else {
         None
     };
-    let Some(scales) = scales.filter(|s| !s.is_empty()) else { return unknown() };
+    let Some(scales) = scales.filter(|s| !s.is_empty()) else {
+        return unknown();
+    };
     if scales.len() != axes.len() {
         return Err("scales length differs from the axes".into());
     }
@@ -662,12 +803,20 @@ fn resize(ctx: &Ctx) -> Inferred {
 
 fn tile(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(0);
-    let Some(d) = ctx.dims(0) else { return Ok(vec![tensor(dt, Shape::unknown())]) };
-    let Some(reps) = ctx.const_ints(1) else { return Ok(vec![tensor(dt, Shape::of_rank(d.len()))]) };
+    let Some(d) = ctx.dims(0) else {
+        return Ok(vec![tensor(dt, Shape::unknown())]);
+    };
+    let Some(reps) = ctx.const_ints(1) else {
+        return Ok(vec![tensor(dt, Shape::of_rank(d.len()))]);
+    };
     if reps.len() != d.len() {
         return Err("repeats length differs from the rank".into());
     }
-    let out = d.iter().zip(&reps).map(|(x, &r)| x.mul(&Dim::Known(r.max(0) as u64)).ok_or("overflow")).collect::<Result<_, _>>()?;
+    let out = d
+        .iter()
+        .zip(&reps)
+        .map(|(x, &r)| x.mul(&Dim::Known(r.max(0) as u64)).ok_or("overflow"))
+        .collect::<Result<_, _>>()?;
     Ok(vec![tensor(dt, Shape::of(out))])
 }
 
@@ -676,7 +825,10 @@ fn expand(ctx: &Ctx) -> Inferred {
     let Some(target) = ctx.konst(1) else {
         return Ok(vec![tensor(dt, Shape::unknown())]);
     };
-    Ok(vec![tensor(dt, broadcast(&[ctx.shape(0), Shape::of(target.as_dims())])?)])
+    Ok(vec![tensor(
+        dt,
+        broadcast(&[ctx.shape(0), Shape::of(target.as_dims())])?,
+    )])
 }
 
 fn fold_expand(ctx: &Ctx) -> Option<Vec<ConstValue>> {
@@ -688,7 +840,12 @@ fn fold_expand(ctx: &Ctx) -> Option<Vec<ConstValue>> {
         return None;
     }
     let zero = ConstValue::ints(zeros_dims.clone(), vec![0; n as usize]);
-    Some(vec![fold::elementwise(&[data, &zero], |a| Some(a[0]), |a| a[0], false)?])
+    Some(vec![fold::elementwise(
+        &[data, &zero],
+        |a| Some(a[0]),
+        |a| a[0],
+        false,
+    )?])
 }
 
 // ---- Data-dependent and selection ops ---------------------------------------------------
@@ -700,30 +857,52 @@ fn data_dependent(ctx: &Ctx, what: &str) -> Dim {
 
 fn top_k(ctx: &Ctx) -> Inferred {
     let Some(d) = ctx.dims(0) else {
-        return Ok(vec![tensor(ctx.dtype(0), Shape::unknown()), tensor(Some(DType::I64), Shape::unknown())]);
+        return Ok(vec![
+            tensor(ctx.dtype(0), Shape::unknown()),
+            tensor(Some(DType::I64), Shape::unknown()),
+        ]);
     };
     let axis = norm_axis(ctx.int("axis", -1), d.len()).ok_or("axis out of range")?;
-    let k = if ctx.opset >= 10 { ctx.const_ints(1).and_then(|k| k.first().copied()) } else { ctx.opt_int("k") };
+    let k = if ctx.opset >= 10 {
+        ctx.const_ints(1).and_then(|k| k.first().copied())
+    } else {
+        ctx.opt_int("k")
+    };
     let mut out = d.clone();
     out[axis] = match k {
         Some(k) => Dim::Known(k.max(0) as u64),
         None => data_dependent(ctx, "k"),
     };
-    Ok(vec![tensor(ctx.dtype(0), Shape::of(out.clone())), tensor(Some(DType::I64), Shape::of(out))])
+    Ok(vec![
+        tensor(ctx.dtype(0), Shape::of(out.clone())),
+        tensor(Some(DType::I64), Shape::of(out)),
+    ])
 }
 
 fn non_max_suppression(ctx: &Ctx) -> Inferred {
-    Ok(vec![tensor(Some(DType::I64), Shape::of(vec![data_dependent(ctx, "selected"), Dim::Known(3)]))])
+    Ok(vec![tensor(
+        Some(DType::I64),
+        Shape::of(vec![data_dependent(ctx, "selected"), Dim::Known(3)]),
+    )])
 }
 
 fn non_zero(ctx: &Ctx) -> Inferred {
-    let rank = ctx.shape(0).rank().map(|r| Dim::Known(r as u64)).unwrap_or(Dim::Unknown);
-    Ok(vec![tensor(Some(DType::I64), Shape::of(vec![rank, data_dependent(ctx, "nonzero")]))])
+    let rank = ctx
+        .shape(0)
+        .rank()
+        .map(|r| Dim::Known(r as u64))
+        .unwrap_or(Dim::Unknown);
+    Ok(vec![tensor(
+        Some(DType::I64),
+        Shape::of(vec![rank, data_dependent(ctx, "nonzero")]),
+    )])
 }
 
 fn compress(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(0);
-    let Some(mut d) = ctx.dims(0) else { return Ok(vec![tensor(dt, Shape::unknown())]) };
+    let Some(mut d) = ctx.dims(0) else {
+        return Ok(vec![tensor(dt, Shape::unknown())]);
+    };
     match ctx.opt_int("axis") {
         Some(a) => {
             let i = norm_axis(a, d.len()).ok_or("axis out of range")?;
@@ -736,31 +915,50 @@ fn compress(ctx: &Ctx) -> Inferred {
 
 fn unique(ctx: &Ctx) -> Inferred {
     let n = data_dependent(ctx, "unique");
-    let mut outs = vec![tensor(ctx.dtype(0), match ctx.opt_int("axis") {
-        None => Shape::of(vec![n.clone()]),
-        Some(a) => match ctx.dims(0) {
-            Some(mut d) => {
-                let i = norm_axis(a, d.len()).ok_or("axis out of range")?;
-                d[i] = n.clone();
-                Shape::of(d)
-            }
-            None => Shape::unknown(),
+    let mut outs = vec![tensor(
+        ctx.dtype(0),
+        match ctx.opt_int("axis") {
+            None => Shape::of(vec![n.clone()]),
+            Some(a) => match ctx.dims(0) {
+                Some(mut d) => {
+                    let i = norm_axis(a, d.len()).ok_or("axis out of range")?;
+                    d[i] = n.clone();
+                    Shape::of(d)
+                }
+                None => Shape::unknown(),
+            },
         },
-    })];
+    )];
     // inverse_indices: one per element, or one per slice along `axis`.
     let len = match ctx.opt_int("axis") {
-        Some(a) => ctx.dims(0).and_then(|d| norm_axis(a, d.len()).map(|i| Shape::of(vec![d[i].clone()]))).unwrap_or_else(|| Shape::of_rank(1)),
-        None => ctx.shape(0).element_count().map(|e| Shape::known(&[e])).unwrap_or_else(|| Shape::of_rank(1)),
+        Some(a) => ctx
+            .dims(0)
+            .and_then(|d| norm_axis(a, d.len()).map(|i| Shape::of(vec![d[i].clone()])))
+            .unwrap_or_else(|| Shape::of_rank(1)),
+        None => ctx
+            .shape(0)
+            .element_count()
+            .map(|e| Shape::known(&[e]))
+            .unwrap_or_else(|| Shape::of_rank(1)),
     };
     for i in 1..ctx.outputs() {
-        outs.push(tensor(Some(DType::I64), if i == 2 { len.clone() } else { Shape::of(vec![n.clone()]) }));
+        outs.push(tensor(
+            Some(DType::I64),
+            if i == 2 {
+                len.clone()
+            } else {
+                Shape::of(vec![n.clone()])
+            },
+        ));
     }
     Ok(outs)
 }
 
 fn depth_to_space(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(0);
-    let Some(d) = ctx.dims(0) else { return Ok(vec![tensor(dt, Shape::of_rank(4))]) };
+    let Some(d) = ctx.dims(0) else {
+        return Ok(vec![tensor(dt, Shape::of_rank(4))]);
+    };
     if d.len() != 4 {
         return Err(format!("input of rank {}", d.len()));
     }
@@ -785,8 +983,14 @@ fn depth_to_space(ctx: &Ctx) -> Inferred {
 
 fn one_hot(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(2);
-    let Some(d) = ctx.dims(0) else { return Ok(vec![tensor(dt, Shape::unknown())]) };
-    let depth = ctx.konst(1).and_then(|c| c.as_floats().first().copied()).map(|x| Dim::Known(x.max(0.0) as u64)).unwrap_or(Dim::Unknown);
+    let Some(d) = ctx.dims(0) else {
+        return Ok(vec![tensor(dt, Shape::unknown())]);
+    };
+    let depth = ctx
+        .konst(1)
+        .and_then(|c| c.as_floats().first().copied())
+        .map(|x| Dim::Known(x.max(0.0) as u64))
+        .unwrap_or(Dim::Unknown);
     let axis = norm_insert_axis(ctx.int("axis", -1), d.len()).ok_or("axis out of range")?;
     let mut out = d;
     out.insert(axis, depth);
@@ -795,10 +999,24 @@ fn one_hot(ctx: &Ctx) -> Inferred {
 
 macro_rules! op {
     ($name:literal, $infer:expr) => {
-        OpDef { domain: "", op: $name, family: "shape_ops", infer: $infer, cost: CostRule::Free, fold: None }
+        OpDef {
+            domain: "",
+            op: $name,
+            family: "shape_ops",
+            infer: $infer,
+            cost: CostRule::Free,
+            fold: None,
+        }
     };
     ($name:literal, $infer:expr, $fold:expr) => {
-        OpDef { domain: "", op: $name, family: "shape_ops", infer: $infer, cost: CostRule::Free, fold: Some($fold) }
+        OpDef {
+            domain: "",
+            op: $name,
+            family: "shape_ops",
+            infer: $infer,
+            cost: CostRule::Free,
+            fold: Some($fold),
+        }
     };
 }
 

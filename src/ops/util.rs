@@ -92,13 +92,16 @@ pub fn norm_insert_axis(value: i64, rank: usize) -> Option<usize> {
 }
 
 pub fn same_as(ctx: &Ctx, i: usize) -> Fact {
-    ctx.fact(i).cloned().map(|mut f| {
-        if f.value_type != crate::ir::ValueType::Tensor {
-            return f;
-        }
-        f.value_type = crate::ir::ValueType::Tensor;
-        f
-    }).unwrap_or_default()
+    ctx.fact(i)
+        .cloned()
+        .map(|mut f| {
+            if f.value_type != crate::ir::ValueType::Tensor {
+                return f;
+            }
+            f.value_type = crate::ir::ValueType::Tensor;
+            f
+        })
+        .unwrap_or_default()
 }
 
 pub fn tensor(dtype: Option<DType>, shape: Shape) -> Fact {
@@ -125,7 +128,9 @@ fn broadcast_dim(a: &Dim, b: &Dim) -> Result<Dim, String> {
 pub fn broadcast(shapes: &[Shape]) -> Result<Shape, String> {
     let mut out: Vec<Dim> = Vec::new();
     for s in shapes {
-        let Some(dims) = s.dims() else { return Ok(Shape::unknown()) };
+        let Some(dims) = s.dims() else {
+            return Ok(Shape::unknown());
+        };
         if dims.len() > out.len() {
             let mut grown = vec![Dim::Known(1); dims.len() - out.len()];
             grown.extend(out);

@@ -118,14 +118,31 @@ fn weights(g: &Graph, acc: &mut (u64, u64)) {
     for v in &g.values {
         let source = match v.kind {
             ValueKind::Initializer => true,
-            ValueKind::Constant => v.producer.is_some_and(|p| matches!(g.node(p).op_type.as_str(), "Constant" | "ConstantOfShape")),
+            ValueKind::Constant => v
+                .producer
+                .is_some_and(|p| matches!(g.node(p).op_type.as_str(), "Constant" | "ConstantOfShape")),
             _ => false,
         };
-        if !source || matches!(v.fact.dtype, Some(DType::I64) | Some(DType::Bool) | Some(DType::Str) | None) {
+        if !source
+            || matches!(
+                v.fact.dtype,
+                Some(DType::I64) | Some(DType::Bool) | Some(DType::Str) | None
+            )
+        {
             continue;
         }
-        let n = v.data.as_ref().and_then(|d| d.element_count()).or_else(|| v.fact.shape.element_count()).unwrap_or(0);
-        let b = v.data.as_ref().and_then(|d| d.bytes()).or_else(|| v.fact.bytes()).unwrap_or(0);
+        let n = v
+            .data
+            .as_ref()
+            .and_then(|d| d.element_count())
+            .or_else(|| v.fact.shape.element_count())
+            .unwrap_or(0);
+        let b = v
+            .data
+            .as_ref()
+            .and_then(|d| d.bytes())
+            .or_else(|| v.fact.bytes())
+            .unwrap_or(0);
         acc.0 = acc.0.saturating_add(n);
         acc.1 = acc.1.saturating_add(b);
     }
@@ -137,7 +154,11 @@ fn weights(g: &Graph, acc: &mut (u64, u64)) {
 }
 
 fn count_body_nodes(g: &Graph) -> usize {
-    g.nodes.iter().flat_map(|n| n.bodies.iter()).map(|b| b.graph.nodes.len() + count_body_nodes(&b.graph)).sum()
+    g.nodes
+        .iter()
+        .flat_map(|n| n.bodies.iter())
+        .map(|b| b.graph.nodes.len() + count_body_nodes(&b.graph))
+        .sum()
 }
 
 /// Builds the report. Pure: same model, same report.
@@ -145,14 +166,22 @@ pub fn build(model: &Model, diags: &[Diagnostic], reasons: &UnknownReasons) -> I
     let g = &model.graph;
     let port = |id: &crate::ir::ValueId| {
         let v = g.value(*id);
-        Port { name: v.name.clone(), dtype: dtype_name(&v.fact), shape: shape_json(&v.fact.shape) }
+        Port {
+            name: v.name.clone(),
+            dtype: dtype_name(&v.fact),
+            shape: shape_json(&v.fact.shape),
+        }
     };
     let mut counts: BTreeMap<String, usize> = BTreeMap::new();
     let mut macs = Some(0u64);
     let mut ops = Some(0u64);
     let mut because: Vec<String> = Vec::new();
     for n in &g.nodes {
-        let label = if n.is_default_domain() { n.op_type.clone() } else { format!("{}.{}", n.domain, n.op_type) };
+        let label = if n.is_default_domain() {
+            n.op_type.clone()
+        } else {
+            format!("{}.{}", n.domain, n.op_type)
+        };
         *counts.entry(label).or_default() += 1;
         if n.folded {
             continue;
@@ -167,7 +196,9 @@ pub fn build(model: &Model, diags: &[Diagnostic], reasons: &UnknownReasons) -> I
     let mut tensors = Vec::with_capacity(g.values.len());
     for v in &g.values {
         let bytes = v.data.as_ref().and_then(|d| d.bytes()).or_else(|| v.fact.bytes());
-        if matches!(v.kind, ValueKind::Input | ValueKind::Activation | ValueKind::Output) && !g.captured.iter().any(|c| g.value(*c).name == v.name) {
+        if matches!(v.kind, ValueKind::Input | ValueKind::Activation | ValueKind::Output)
+            && !g.captured.iter().any(|c| g.value(*c).name == v.name)
+        {
             activation_bytes = activation_bytes.zip(bytes).and_then(|(a, b)| a.checked_add(b));
             if bytes.is_none() {
                 because.extend(v.fact.shape.symbols());
@@ -190,7 +221,11 @@ pub fn build(model: &Model, diags: &[Diagnostic], reasons: &UnknownReasons) -> I
         .iter()
         .map(|(id, why)| {
             let v = g.value(*id);
-            UnknownShape { tensor: v.name.clone(), node: v.producer.map(|p| g.node(p).name.clone()), reason: why.clone() }
+            UnknownShape {
+                tensor: v.name.clone(),
+                node: v.producer.map(|p| g.node(p).name.clone()),
+                reason: why.clone(),
+            }
         })
         .collect();
     let mut warnings = diags.to_vec();
@@ -202,7 +237,14 @@ pub fn build(model: &Model, diags: &[Diagnostic], reasons: &UnknownReasons) -> I
             path: model.path.display().to_string(),
             ir_version: model.ir_version,
             producer: model.producer.clone(),
-            opsets: model.opsets.iter().map(|(d, v)| Opset { domain: if d.is_empty() { "ai.onnx".into() } else { d.clone() }, version: *v }).collect(),
+            opsets: model
+                .opsets
+                .iter()
+                .map(|(d, v)| Opset {
+                    domain: if d.is_empty() { "ai.onnx".into() } else { d.clone() },
+                    version: *v,
+                })
+                .collect(),
             nodes: g.nodes.len(),
             nodes_in_subgraphs: count_body_nodes(g),
             functions: model.functions.clone(),
@@ -281,21 +323,66 @@ pub fn render_table(r: &InspectReport, out: &mut dyn Write) -> std::io::Result<(
     let m = &r.model;
     let opsets: Vec<String> = m.opsets.iter().map(|o| format!("{} {}", o.domain, o.version)).collect();
     let mut kv = vec![
-        KeyValue { key: "file".into(), value: m.path.clone() },
-        KeyValue { key: "ir version".into(), value: m.ir_version.to_string() },
-        KeyValue { key: "opsets".into(), value: opsets.join(", ") },
-        KeyValue { key: "nodes".into(), value: format!("{} (+{} in subgraphs)", grouped(m.nodes as u64), grouped(m.nodes_in_subgraphs as u64)) },
-        KeyValue { key: "parameters".into(), value: grouped(m.params) },
-        KeyValue { key: "weight bytes".into(), value: grouped(m.weight_bytes) },
-        KeyValue { key: "MACs".into(), value: maybe(m.macs) },
-        KeyValue { key: "other ops".into(), value: maybe(m.ops) },
-        KeyValue { key: "activation bytes".into(), value: maybe(m.activation_bytes) },
+        KeyValue {
+            key: "file".into(),
+            value: m.path.clone(),
+        },
+        KeyValue {
+            key: "ir version".into(),
+            value: m.ir_version.to_string(),
+        },
+        KeyValue {
+            key: "opsets".into(),
+            value: opsets.join(", "),
+        },
+        KeyValue {
+            key: "nodes".into(),
+            value: format!(
+                "{} (+{} in subgraphs)",
+                grouped(m.nodes as u64),
+                grouped(m.nodes_in_subgraphs as u64)
+            ),
+        },
+        KeyValue {
+            key: "parameters".into(),
+            value: grouped(m.params),
+        },
+        KeyValue {
+            key: "weight bytes".into(),
+            value: grouped(m.weight_bytes),
+        },
+        KeyValue {
+            key: "MACs".into(),
+            value: maybe(m.macs),
+        },
+        KeyValue {
+            key: "other ops".into(),
+            value: maybe(m.ops),
+        },
+        KeyValue {
+            key: "activation bytes".into(),
+            value: maybe(m.activation_bytes),
+        },
     ];
     if !m.producer.is_empty() {
-        kv.insert(1, KeyValue { key: "producer".into(), value: m.producer.clone() });
+        kv.insert(
+            1,
+            KeyValue {
+                key: "producer".into(),
+                value: m.producer.clone(),
+            },
+        );
     }
     if !m.unknown_because.is_empty() {
-        kv.push(KeyValue { key: "unknown until fixed".into(), value: m.unknown_because.iter().map(|d| format!("--dim {d}=N")).collect::<Vec<_>>().join(" ") });
+        kv.push(KeyValue {
+            key: "unknown until fixed".into(),
+            value: m
+                .unknown_because
+                .iter()
+                .map(|d| format!("--dim {d}=N"))
+                .collect::<Vec<_>>()
+                .join(" "),
+        });
     }
     writeln!(out, "{}", Table::new(kv).with(Style::sharp()))?;
     let ports: Vec<PortRow> = r
@@ -303,10 +390,22 @@ pub fn render_table(r: &InspectReport, out: &mut dyn Write) -> std::io::Result<(
         .iter()
         .map(|p| ("input", p))
         .chain(r.outputs.iter().map(|p| ("output", p)))
-        .map(|(side, p)| PortRow { side, name: p.name.clone(), dtype: p.dtype.clone().unwrap_or_else(|| "?".into()), shape: shape_text(&p.shape) })
+        .map(|(side, p)| PortRow {
+            side,
+            name: p.name.clone(),
+            dtype: p.dtype.clone().unwrap_or_else(|| "?".into()),
+            shape: shape_text(&p.shape),
+        })
         .collect();
     writeln!(out, "{}", Table::new(ports).with(Style::sharp()))?;
-    let mut ops: Vec<OpRow> = r.op_counts.iter().map(|o| OpRow { op: o.op.clone(), nodes: o.count }).collect();
+    let mut ops: Vec<OpRow> = r
+        .op_counts
+        .iter()
+        .map(|o| OpRow {
+            op: o.op.clone(),
+            nodes: o.count,
+        })
+        .collect();
     ops.sort_by(|a, b| b.nodes.cmp(&a.nodes).then_with(|| a.op.cmp(&b.op)));
     writeln!(out, "{}", Table::new(ops).with(Style::sharp()))?;
     if !r.unknown_shapes.is_empty() {
@@ -314,12 +413,20 @@ pub fn render_table(r: &InspectReport, out: &mut dyn Write) -> std::io::Result<(
             .unknown_shapes
             .iter()
             .take(TABLE_ROW_LIMIT)
-            .map(|u| UnknownRow { tensor: u.tensor.clone(), node: u.node.clone().unwrap_or_else(|| "(graph input)".into()), reason: u.reason.clone() })
+            .map(|u| UnknownRow {
+                tensor: u.tensor.clone(),
+                node: u.node.clone().unwrap_or_else(|| "(graph input)".into()),
+                reason: u.reason.clone(),
+            })
             .collect();
         writeln!(out, "tensors with unknown shapes: {}", r.unknown_shapes.len())?;
         writeln!(out, "{}", Table::new(rows).with(Style::sharp()))?;
         if r.unknown_shapes.len() > TABLE_ROW_LIMIT {
-            writeln!(out, "… {} more (see --format json)", r.unknown_shapes.len() - TABLE_ROW_LIMIT)?;
+            writeln!(
+                out,
+                "… {} more (see --format json)",
+                r.unknown_shapes.len() - TABLE_ROW_LIMIT
+            )?;
         }
     }
     if !r.warnings.is_empty() {
@@ -334,7 +441,11 @@ pub fn render_table(r: &InspectReport, out: &mut dyn Write) -> std::io::Result<(
             writeln!(out, "  {}: {}{}", w.code, w.message, at)?;
         }
         if r.warnings.len() > TABLE_ROW_LIMIT {
-            writeln!(out, "  … {} more (see --format json)", r.warnings.len() - TABLE_ROW_LIMIT)?;
+            writeln!(
+                out,
+                "  … {} more (see --format json)",
+                r.warnings.len() - TABLE_ROW_LIMIT
+            )?;
         }
     }
     Ok(())

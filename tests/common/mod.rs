@@ -34,7 +34,10 @@ pub fn vi(name: &str, elem: i32, dims: &[Dm]) -> onnx::ValueInfoProto {
     onnx::ValueInfoProto {
         name: name.into(),
         r#type: Some(onnx::TypeProto {
-            value: Some(type_proto::Value::TensorType(type_proto::Tensor { elem_type: elem, shape: Some(onnx::TensorShapeProto { dim }) })),
+            value: Some(type_proto::Value::TensorType(type_proto::Tensor {
+                elem_type: elem,
+                shape: Some(onnx::TensorShapeProto { dim }),
+            })),
             denotation: String::new(),
         }),
         ..Default::default()
@@ -51,11 +54,26 @@ pub fn node(op: &str, inputs: &[&str], outputs: &[&str]) -> onnx::NodeProto {
     }
 }
 
-pub fn model(nodes: Vec<onnx::NodeProto>, inputs: Vec<onnx::ValueInfoProto>, outputs: Vec<onnx::ValueInfoProto>, inits: Vec<TensorProto>) -> ModelProto {
+pub fn model(
+    nodes: Vec<onnx::NodeProto>,
+    inputs: Vec<onnx::ValueInfoProto>,
+    outputs: Vec<onnx::ValueInfoProto>,
+    inits: Vec<TensorProto>,
+) -> ModelProto {
     ModelProto {
         ir_version: 8,
-        opset_import: vec![onnx::OperatorSetIdProto { domain: String::new(), version: 17 }],
-        graph: Some(onnx::GraphProto { node: nodes, name: "g".into(), input: inputs, output: outputs, initializer: inits, ..Default::default() }),
+        opset_import: vec![onnx::OperatorSetIdProto {
+            domain: String::new(),
+            version: 17,
+        }],
+        graph: Some(onnx::GraphProto {
+            node: nodes,
+            name: "g".into(),
+            input: inputs,
+            output: outputs,
+            initializer: inits,
+            ..Default::default()
+        }),
         ..Default::default()
     }
 }
@@ -80,7 +98,11 @@ pub fn write(dir: &Path, name: &str, m: &ModelProto) -> PathBuf {
 /// Runs tilecut and returns (exit code, stdout, stderr).
 pub fn run(args: &[&str]) -> (i32, String, String) {
     let out = bin().args(args).output().expect("tilecut runs");
-    (out.status.code().unwrap_or(-1), String::from_utf8_lossy(&out.stdout).into_owned(), String::from_utf8_lossy(&out.stderr).into_owned())
+    (
+        out.status.code().unwrap_or(-1),
+        String::from_utf8_lossy(&out.stdout).into_owned(),
+        String::from_utf8_lossy(&out.stderr).into_owned(),
+    )
 }
 
 /// Asserts a clean failure: exit 2, one line on stderr naming `needle`, nothing on stdout.
@@ -91,4 +113,37 @@ pub fn assert_fails_cleanly(args: &[&str], needle: &str) {
     assert_eq!(err.trim_end().lines().count(), 1, "one-line error expected, got {err}");
     assert!(!err.contains("panicked"), "panic: {err}");
     assert!(err.contains(needle), "error should mention `{needle}`: {err}");
+}
+
+/// Whether Python's `onnx` package can be used. Under `CI=true` its absence is a failure,
+/// elsewhere the caller skips and says so.
+pub fn python_onnx(test: &str) -> bool {
+    let ok = Command::new("python3")
+        .args(["-c", "import onnx, numpy"])
+        .output()
+        .map(|o| o.status.success())
+        .unwrap_or(false);
+    if !ok {
+        if std::env::var("CI").is_ok_and(|v| v == "true") {
+            panic!("{test}: python3 with the `onnx` package is required under CI=true (.ci/run installs it)");
+        }
+        println!("SKIPPED {test}: python3 with the `onnx` package is not installed (pip install onnx numpy)");
+    }
+    ok
+}
+
+/// Runs a Python script with arguments and returns its stdout.
+pub fn python(script: &str, args: &[&str]) -> String {
+    let out = Command::new("python3")
+        .arg("-c")
+        .arg(script)
+        .args(args)
+        .output()
+        .expect("python3 runs");
+    assert!(
+        out.status.success(),
+        "python failed: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    String::from_utf8_lossy(&out.stdout).into_owned()
 }

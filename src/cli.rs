@@ -21,6 +21,18 @@ pub enum Command {
     /// Read a model: opsets, inputs and outputs, op counts, parameters, MACs, activation
     /// bytes, tensors whose shapes stay unknown, and warnings.
     Inspect(InspectArgs),
+    /// Developer tools: regenerate the sample models, generate benchmark models.
+    #[command(hide = true, subcommand)]
+    Dev(DevCommand),
+}
+
+#[derive(Subcommand, Debug)]
+pub enum DevCommand {
+    /// Write every sample model into DIR (byte-for-byte reproducible).
+    Samples {
+        /// Output folder (created if missing).
+        dir: PathBuf,
+    },
 }
 
 /// Options shared by every command that reads a model.

@@ -8,6 +8,7 @@ pub mod ir;
 pub mod onnx;
 pub mod ops;
 pub mod report;
+pub mod samples;
 pub mod values;
 
 use std::path::Path;

@@ -4,8 +4,10 @@
 use std::io::Write;
 use std::process::ExitCode;
 
+use anyhow::Context;
 use clap::Parser;
-use tilecut::cli::{Cli, Command};
+use tilecut::cli::{Cli, Command, DevCommand};
+use tilecut::onnx::builder::write_atomic;
 use tilecut::report::{inspect, Format};
 
 /// Exit statuses, documented in the README: 0 ok, 1 policy violated, 2 could not run.
@@ -44,6 +46,16 @@ fn run(cli: Cli) -> anyhow::Result<u8> {
                 Format::Table => inspect::render_table(&report, &mut buf)?,
             }
             std::io::stdout().lock().write_all(&buf)?;
+            Ok(0)
+        }
+        Command::Dev(DevCommand::Samples { dir }) => {
+            std::fs::create_dir_all(&dir).with_context(|| format!("{}: cannot create folder", dir.display()))?;
+            for (name, model) in tilecut::samples::all().map_err(|e| anyhow::anyhow!("building samples: {e}"))? {
+                let path = dir.join(name);
+                write_atomic(&path, &prost::Message::encode_to_vec(&model))
+                    .with_context(|| format!("{}: cannot write", path.display()))?;
+                eprintln!("wrote {}", path.display());
+            }
             Ok(0)
         }
     }

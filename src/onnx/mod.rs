@@ -1,7 +1,9 @@
 //! The ONNX wire format: generated message types, the hand-written `TensorProto`, and loading
 //! a model file by memory map. The only module that names protobuf types.
 
+pub mod builder;
 pub mod load;
+pub mod qdq;
 pub mod tensor;
 
 #[allow(clippy::all, missing_docs)]

@@ -112,10 +112,25 @@ fn dtype_name(f: &Fact) -> Option<String> {
     }
 }
 
-/// Weights: stored initializers and generated constants (Constant, ConstantOfShape) that are
-/// not integer shape/index data. Counted once, in every graph, bodies included.
+/// True if every use of `v` is as the scale or zero point of a (De)QuantizeLinear.
+fn only_quant_params(g: &Graph, v: crate::ir::ValueId) -> bool {
+    let uses = g.value(v).consumers.iter().map(|&c| g.node(c));
+    let mut any = false;
+    for n in uses {
+        any = true;
+        let is_q = matches!(n.op_type.as_str(), "QuantizeLinear" | "DequantizeLinear");
+        if !is_q || n.inputs.first() == Some(&Some(v)) {
+            return false;
+        }
+    }
+    any
+}
+
+/// Weights (params, bytes): stored initializers and generated constants (Constant,
+/// ConstantOfShape) that are not integer shape/index data. Quantization scales and zero
+/// points count as weight bytes but not as parameters. Every graph, bodies included.
 fn weights(g: &Graph, acc: &mut (u64, u64)) {
-    for v in &g.values {
+    for (i, v) in g.values.iter().enumerate() {
         let source = match v.kind {
             ValueKind::Initializer => true,
             ValueKind::Constant => v
@@ -143,7 +158,9 @@ fn weights(g: &Graph, acc: &mut (u64, u64)) {
             .and_then(|d| d.bytes())
             .or_else(|| v.fact.bytes())
             .unwrap_or(0);
-        acc.0 = acc.0.saturating_add(n);
+        if !only_quant_params(g, crate::ir::ValueId(i as u32)) {
+            acc.0 = acc.0.saturating_add(n);
+        }
         acc.1 = acc.1.saturating_add(b);
     }
     for n in &g.nodes {

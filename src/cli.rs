@@ -33,6 +33,15 @@ pub enum DevCommand {
         /// Output folder (created if missing).
         dir: PathBuf,
     },
+    /// Write the benchmark models into DIR: stacks of 10k/30k/100k/200k nodes and ~1 GB of
+    /// weights inline and external (several GB of disk).
+    BenchModels {
+        /// Output folder (created if missing).
+        dir: PathBuf,
+        /// Only the node stacks, not the heavy-weight models.
+        #[arg(long)]
+        stacks_only: bool,
+    },
 }
 
 /// Options shared by every command that reads a model.

@@ -7,6 +7,7 @@ use std::sync::Arc;
 
 use crate::diag::{codes, Diagnostic};
 use crate::error::{ReadError, SettingError};
+use crate::fastmap::{FastMap, FastSet};
 use crate::ir::{
     Attr, AttrValue, Body, DType, Dim, Fact, Graph, Model, Node, NodeCost, NodeId, Shape, Storage, TensorData, Value,
     ValueId, ValueKind, ValueType,
@@ -171,9 +172,10 @@ impl Cx<'_> {
     }
 }
 
-/// A node after function expansion, still in wire form.
-struct FlatNode {
-    proto: onnx::NodeProto,
+/// A node after function expansion, still in wire form (borrowed unless a function call
+/// rewrote it).
+struct FlatNode<'a> {
+    proto: std::borrow::Cow<'a, onnx::NodeProto>,
     from_function: Option<String>,
 }
 
@@ -193,7 +195,7 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     let flat = expand_functions(cx, &g.node, 0, "")?;
 
     let mut values: Vec<Value> = Vec::new();
-    let mut names: HashMap<String, ValueId> = HashMap::new();
+    let mut names: FastMap<String, ValueId> = FastMap::default();
     let new_value = |values: &mut Vec<Value>, name: &str, kind: ValueKind, fact: Fact| {
         values.push(Value {
             name: name.to_string(),
@@ -273,7 +275,7 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     }
 
     // Node outputs, duplicate producers refused.
-    let mut producer_of: HashMap<String, usize> = HashMap::new();
+    let mut producer_of: FastMap<String, usize> = FastMap::default();
     for (i, n) in flat.iter().enumerate() {
         for o in n.proto.output.iter().filter(|o| !o.is_empty()) {
             if let Some(&other) = producer_of.get(o) {
@@ -311,7 +313,7 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
 
     // Dependencies between nodes, for the topological sort.
     let mut graph_free: FreeNames = Vec::new();
-    let placeholder = |values: &mut Vec<Value>, names: &mut HashMap<String, ValueId>, name: &str| {
+    let placeholder = |values: &mut Vec<Value>, names: &mut FastMap<String, ValueId>, name: &str| {
         if let Some(&id) = names.get(name) {
             return id;
         }
@@ -341,7 +343,7 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     let order = topo_order(cx, &flat, &deps)?;
 
     // Build nodes in that order.
-    let mut used_names: BTreeSet<String> = BTreeSet::new();
+    let mut used_names: FastSet<String> = FastSet::default();
     let mut nodes = Vec::with_capacity(flat.len());
     let mut bodies_of: Vec<Option<BodyParts>> = bodies_of.into_iter().map(Some).collect();
     for &i in &order {
@@ -539,18 +541,22 @@ fn topo_order(cx: &Cx, flat: &[FlatNode], deps: &[Vec<usize>]) -> Result<Vec<usi
     )))
 }
 
-fn expand_functions(
+fn expand_functions<'a>(
     cx: &mut Cx,
-    nodes: &[onnx::NodeProto],
+    nodes: &'a [onnx::NodeProto],
     depth: usize,
     stack: &str,
-) -> Result<Vec<FlatNode>, ReadError> {
+) -> Result<Vec<FlatNode<'a>>, ReadError> {
     let mut out = Vec::with_capacity(nodes.len());
     for n in nodes {
-        let key = (n.domain.clone(), n.op_type.clone());
-        let Some(f) = cx.functions.get(&key).copied() else {
+        let called = if cx.functions.is_empty() {
+            None
+        } else {
+            cx.functions.get(&(n.domain.clone(), n.op_type.clone())).copied()
+        };
+        let Some(f) = called else {
             out.push(FlatNode {
-                proto: n.clone(),
+                proto: std::borrow::Cow::Borrowed(n),
                 from_function: None,
             });
             continue;
@@ -610,9 +616,12 @@ fn expand_functions(
         }
         let label = qualified(&n.domain, &n.op_type);
         let inner_stack = format!("{stack}{label}>");
-        for mut flat in expand_functions(cx, &body, depth + 1, &inner_stack)? {
-            flat.from_function.get_or_insert_with(|| call.clone());
-            out.push(flat);
+        for flat in expand_functions(cx, &body, depth + 1, &inner_stack)? {
+            let from = flat.from_function.unwrap_or_else(|| call.clone());
+            out.push(FlatNode {
+                proto: std::borrow::Cow::Owned(flat.proto.into_owned()),
+                from_function: Some(from),
+            });
         }
     }
     Ok(out)

@@ -1,7 +1,9 @@
 //! tilecut: how much of an ONNX model runs on a tile-array accelerator.
+pub mod benchgen;
 pub mod cli;
 pub mod diag;
 pub mod error;
+pub mod fastmap;
 pub mod import;
 pub mod infer;
 pub mod ir;
@@ -27,6 +29,8 @@ pub struct Analyzed {
 pub fn read_model(path: &Path, overrides: &Overrides) -> Result<Analyzed, ReadError> {
     let loaded = onnx::load::load(path)?;
     let (mut model, mut diags) = import::import(&loaded, overrides)?;
+    // The wire-format tree is not needed past import; freeing it lets inference reuse the memory.
+    drop(loaded);
     let unknown = infer::infer(&mut model, &mut diags);
     Ok(Analyzed { model, diags, unknown })
 }

@@ -14,6 +14,10 @@ use tilecut::report::{inspect, Format};
 const EXIT_COULD_NOT_RUN: u8 = 2;
 
 fn main() -> ExitCode {
+    // Large OS pages for the allocator's arenas: on virtual machines a page fault costs
+    // microseconds, and the IR of a 100k-node model touches hundreds of MB.
+    // SAFETY: setting an allocator option is a plain store, valid at any time.
+    unsafe { libmimalloc_sys::mi_option_set(libmimalloc_sys::mi_option_large_os_pages, 1) };
     let cli = Cli::parse();
     match run(cli) {
         Ok(code) => ExitCode::from(code),
@@ -58,5 +62,27 @@ fn run(cli: Cli) -> anyhow::Result<u8> {
             }
             Ok(0)
         }
+        Command::Dev(DevCommand::BenchModels { dir, stacks_only }) => {
+            std::fs::create_dir_all(&dir).with_context(|| format!("{}: cannot create folder", dir.display()))?;
+            for n in [10_000usize, 30_000, 50_000, 100_000, 200_000] {
+                let path = dir.join(format!("stack_{}k.onnx", n / 1000));
+                write_atomic(&path, &tilecut::benchgen::stack(n).encode())
+                    .with_context(|| format!("{}: cannot write", path.display()))?;
+                eprintln!("wrote {}", path.display());
+            }
+            if !stacks_only {
+                for (stem, external) in [("heavy_1g_inline", false), ("heavy_1g_external", true)] {
+                    tilecut::benchgen::heavy(1 << 30, &dir, stem, external)
+                        .with_context(|| format!("{}: cannot write {stem}", dir.display()))?;
+                    eprintln!("wrote {}", dir.join(stem).display());
+                }
+            }
+            Ok(0)
+        }
     }
 }
+
+// The reader allocates many small strings and vectors; mimalloc keeps that linear in the
+// node count where the system allocator's consolidation does not (benches/README numbers).
+#[global_allocator]
+static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;

@@ -95,13 +95,19 @@ static REGISTRY: &[&[OpDef]] = &[
     control_flow::OPS,
 ];
 
-/// Looks an op up by domain and type.
+/// Looks an op up by domain and type (a hash index over the registry, built once).
 pub fn lookup(domain: &str, op: &str) -> Option<&'static OpDef> {
+    type Index = std::collections::HashMap<(&'static str, &'static str), &'static OpDef>;
+    static INDEX: std::sync::OnceLock<Index> = std::sync::OnceLock::new();
+    let index = INDEX.get_or_init(|| {
+        registry()
+            .iter()
+            .flat_map(|t| t.iter())
+            .map(|o| ((o.domain, o.op), o))
+            .collect()
+    });
     let d = if domain == "ai.onnx" { "" } else { domain };
-    registry()
-        .iter()
-        .flat_map(|t| t.iter())
-        .find(|o| o.domain == d && o.op == op)
+    index.get(&(d, op)).copied()
 }
 
 /// True for ops whose output is random: never folded as constants.

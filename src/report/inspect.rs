@@ -63,7 +63,7 @@ pub struct ModelSummary {
 pub struct Port {
     pub name: String,
     pub dtype: Option<String>,
-    pub shape: Option<Vec<serde_json::Value>>,
+    pub shape: Option<JsonShape>,
 }
 
 #[derive(Serialize, Debug, Clone)]
@@ -76,7 +76,7 @@ pub struct OpCount {
 pub struct TensorRow {
     pub name: String,
     pub dtype: Option<String>,
-    pub shape: Option<Vec<serde_json::Value>>,
+    pub shape: Option<JsonShape>,
     pub kind: &'static str,
     pub producer: Option<String>,
     pub bytes: Option<u64>,
@@ -89,17 +89,27 @@ pub struct UnknownShape {
     pub reason: String,
 }
 
-/// Shape as JSON: integers, strings for symbols, null for unknown dims.
-pub fn shape_json(s: &Shape) -> Option<Vec<serde_json::Value>> {
-    s.dims().map(|d| {
-        d.iter()
-            .map(|x| match x {
-                Dim::Known(v) => serde_json::Value::from(*v),
-                Dim::Sym(s) => serde_json::Value::from(s.to_string()),
-                Dim::Unknown => serde_json::Value::Null,
-            })
-            .collect()
-    })
+/// A shape as JSON: integers, strings for symbols, null for unknown dims.
+#[derive(Debug, Clone, PartialEq)]
+pub struct JsonShape(pub Vec<Dim>);
+
+impl Serialize for JsonShape {
+    fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+        use serde::ser::SerializeSeq;
+        let mut seq = s.serialize_seq(Some(self.0.len()))?;
+        for d in &self.0 {
+            match d {
+                Dim::Known(v) => seq.serialize_element(v)?,
+                Dim::Sym(x) => seq.serialize_element(&**x)?,
+                Dim::Unknown => seq.serialize_element(&None::<u64>)?,
+            }
+        }
+        seq.end()
+    }
+}
+
+pub fn shape_json(s: &Shape) -> Option<JsonShape> {
+    s.dims().map(|d| JsonShape(d.to_vec()))
 }
 
 fn dtype_name(f: &Fact) -> Option<String> {
@@ -286,20 +296,10 @@ pub fn render_json(r: &InspectReport, out: &mut dyn Write) -> std::io::Result<()
     writeln!(out)
 }
 
-fn shape_text(s: &Option<Vec<serde_json::Value>>) -> String {
+fn shape_text(s: &Option<JsonShape>) -> String {
     match s {
         None => "?".into(),
-        Some(d) => {
-            let parts: Vec<String> = d
-                .iter()
-                .map(|x| match x {
-                    serde_json::Value::Null => "?".into(),
-                    serde_json::Value::String(s) => s.clone(),
-                    other => other.to_string(),
-                })
-                .collect();
-            format!("[{}]", parts.join(", "))
-        }
+        Some(d) => format!("[{}]", d.0.iter().map(|x| x.to_string()).collect::<Vec<_>>().join(", ")),
     }
 }
 

@@ -1,0 +1,59 @@
+#!/usr/bin/env bash
+# Side-by-side timing of `tilecut inspect` against the `onnx` Python package
+# (onnx.load(..., load_external_data=False) + onnx.shape_inference.infer_shapes) and
+# tract-onnx's load + type analysis, on generated models. Prints medians of N runs (whole
+# processes), peak RSS, and ratios. Usage: bash bench/run.sh [DIR] [RUNS]
+set -euo pipefail
+cd "$(dirname "$0")/.."
+dir="${1:-bench-models}"
+runs="${2:-5}"
+cargo build --release --quiet
+bin=target/release/tilecut
+if [ ! -f "$dir/stack_100k.onnx" ]; then
+  "$bin" dev bench-models "$dir"
+fi
+py_pair='import sys, onnx
+from onnx import shape_inference
+m = onnx.load(sys.argv[1], load_external_data=False)
+shape_inference.infer_shapes(m)'
+py_inproc='import sys, time, onnx
+from onnx import shape_inference
+t = time.perf_counter()
+m = onnx.load(sys.argv[1], load_external_data=False)
+shape_inference.infer_shapes(m)
+print(time.perf_counter() - t)'
+
+# median seconds and max RSS (KB) of a command over $runs runs
+measure() {
+  local times=() rss=0 out tmp
+  tmp=$(mktemp)
+  for _ in $(seq "$runs"); do
+    /usr/bin/time -o "$tmp" -f "%e %M" "$@" > /dev/null 2>&1 || true
+    out=$(tail -1 "$tmp")
+    times+=("${out% *}")
+    local r="${out#* }"
+    [ "$r" -gt "$rss" ] && rss=$r
+  done
+  rm -f "$tmp"
+  local med
+  med=$(printf '%s\n' "${times[@]}" | sort -g | awk '{a[NR]=$1} END {print a[int((NR+1)/2)]}')
+  echo "$med $rss"
+}
+
+printf '%-20s %10s %9s %10s %9s %10s %8s\n' model tilecut_s rss_MB onnx_py_s rss_MB in-proc_s ratio
+for m in stack_10k stack_30k stack_100k stack_200k heavy_1g_inline heavy_1g_external; do
+  f="$dir/$m.onnx"
+  [ -f "$f" ] || continue
+  read -r ts tr < <(measure "$bin" inspect "$f" --format json)
+  if python3 -c 'import onnx' 2>/dev/null; then
+    read -r ps pr < <(measure python3 -c "$py_pair" "$f")
+    ip=$(python3 -c "$py_inproc" "$f" 2>/dev/null || echo nan)
+    ratio=$(awk -v a="$ps" -v b="$ts" 'BEGIN { if (b > 0) printf "%.1fx", a / b; else print "inf" }')
+  else
+    ps=nan; pr=0; ip=nan; ratio=n/a
+  fi
+  printf '%-20s %10s %9d %10s %9d %10.3f %8s\n' "$m" "$ts" $((tr / 1024)) "$ps" $((pr / 1024)) "$ip" "$ratio"
+done
+echo
+echo "per-stage medians inside tilecut (cargo bench --bench stages):"
+cargo bench --quiet --bench stages -- "$dir" 2>/dev/null | tail -n +1

@@ -1,0 +1,60 @@
+//! Per-stage timings of the reader on generated models (`tilecut dev bench-models DIR`).
+//! Run: `cargo bench --bench stages -- DIR`. Prints medians of 5 runs per stage.
+
+use std::path::PathBuf;
+use std::time::Instant;
+
+fn median(mut v: Vec<f64>) -> f64 {
+    v.sort_by(|a, b| a.total_cmp(b));
+    v[v.len() / 2]
+}
+
+fn main() {
+    let dir = std::env::args()
+        .skip(1)
+        .find(|a| !a.starts_with('-'))
+        .map(PathBuf::from)
+        .unwrap_or_else(|| PathBuf::from("bench-models"));
+    println!(
+        "{:<22} {:>9} {:>9} {:>9} {:>9} {:>9}",
+        "model", "load ms", "import", "infer", "report", "json"
+    );
+    for name in [
+        "stack_10k",
+        "stack_30k",
+        "stack_50k",
+        "stack_100k",
+        "stack_200k",
+        "heavy_1g_inline",
+        "heavy_1g_external",
+    ] {
+        let path = dir.join(format!("{name}.onnx"));
+        if !path.exists() {
+            continue;
+        }
+        let mut t = vec![Vec::new(); 5];
+        for _ in 0..5 {
+            let s = Instant::now();
+            let loaded = tilecut::onnx::load::load(&path).expect("load");
+            t[0].push(s.elapsed().as_secs_f64() * 1e3);
+            let s = Instant::now();
+            let (mut model, mut diags) = tilecut::import::import(&loaded, &Default::default()).expect("import");
+            t[1].push(s.elapsed().as_secs_f64() * 1e3);
+            let s = Instant::now();
+            let unknown = tilecut::infer::infer(&mut model, &mut diags);
+            t[2].push(s.elapsed().as_secs_f64() * 1e3);
+            let s = Instant::now();
+            let report = tilecut::report::inspect::build(&model, &diags, &unknown);
+            t[3].push(s.elapsed().as_secs_f64() * 1e3);
+            let s = Instant::now();
+            let mut out = Vec::new();
+            tilecut::report::inspect::render_json(&report, &mut out).expect("json");
+            t[4].push(s.elapsed().as_secs_f64() * 1e3);
+        }
+        let m: Vec<f64> = t.into_iter().map(median).collect();
+        println!(
+            "{:<22} {:>9.1} {:>9.1} {:>9.1} {:>9.1} {:>9.1}",
+            name, m[0], m[1], m[2], m[3], m[4]
+        );
+    }
+}

@@ -21,6 +21,14 @@ pub enum Command {
     /// Read a model: opsets, inputs and outputs, op counts, parameters, MACs, activation
     /// bytes, tensors whose shapes stay unknown, and warnings.
     Inspect(InspectArgs),
+    /// Judge every node against a target, find the CPU/accelerator cut, and estimate
+    /// transfers, partitions and latency (estimates, from the cost model in the README).
+    Analyze(AnalyzeArgs),
+    /// List the built-in target profiles, or print one as a starting template.
+    Targets(TargetsArgs),
+    /// Explain one node's verdict (or the node producing a tensor): bundle, types, shapes,
+    /// and every rule consulted.
+    Explain(ExplainArgs),
     /// Developer tools: regenerate the sample models, generate benchmark models.
     #[command(hide = true, subcommand)]
     Dev(DevCommand),
@@ -77,4 +85,57 @@ pub struct InspectArgs {
     /// Output format.
     #[arg(long, value_enum, default_value_t = Format::Table)]
     pub format: Format,
+}
+
+/// The target option shared by every command that judges a model.
+#[derive(Args, Debug, Clone)]
+pub struct TargetArgs {
+    /// A built-in target name (see `tilecut targets`) or a profile file.
+    #[arg(long, default_value = "compact-array")]
+    pub target: String,
+}
+
+#[derive(Args, Debug)]
+pub struct AnalyzeArgs {
+    #[command(flatten)]
+    pub model: ModelArgs,
+    #[command(flatten)]
+    pub target: TargetArgs,
+    /// Output format.
+    #[arg(long, value_enum, default_value_t = Format::Table)]
+    pub format: Format,
+    /// How to choose what runs on the accelerator.
+    #[arg(long, value_enum, default_value_t = crate::cut::Strategy::Mincut)]
+    pub strategy: crate::cut::Strategy,
+    /// Keep matching nodes on the CPU: a node name, an op type, or a `*` pattern (repeatable).
+    #[arg(long = "pin-cpu", value_name = "PATTERN")]
+    pub pin_cpu: Vec<String>,
+    /// Force matching nodes onto the accelerator (repeatable); impossible pins are errors.
+    #[arg(long = "pin-accel", value_name = "PATTERN")]
+    pub pin_accel: Vec<String>,
+}
+
+#[derive(Args, Debug)]
+pub struct TargetsArgs {
+    #[command(subcommand)]
+    pub action: Option<TargetsAction>,
+}
+
+#[derive(Subcommand, Debug)]
+pub enum TargetsAction {
+    /// Print a built-in profile (a commented template to copy and edit).
+    Show {
+        /// Built-in target name.
+        name: String,
+    },
+}
+
+#[derive(Args, Debug)]
+pub struct ExplainArgs {
+    #[command(flatten)]
+    pub model: ModelArgs,
+    /// A node name, or a tensor name (its producer is explained).
+    pub node: String,
+    #[command(flatten)]
+    pub target: TargetArgs,
 }

@@ -1,6 +1,7 @@
 //! tilecut: how much of an ONNX model runs on a tile-array accelerator.
 pub mod benchgen;
 pub mod cli;
+pub mod cut;
 pub mod diag;
 pub mod error;
 pub mod fastmap;
@@ -9,8 +10,11 @@ pub mod infer;
 pub mod ir;
 pub mod onnx;
 pub mod ops;
+pub mod quant;
 pub mod report;
+pub mod rules;
 pub mod samples;
+pub mod target;
 pub mod values;
 
 use std::path::Path;
@@ -39,4 +43,86 @@ pub fn read_model(path: &Path, overrides: &Overrides) -> Result<Analyzed, ReadEr
 pub fn inspect(path: &Path, overrides: &Overrides) -> Result<report::inspect::InspectReport, ReadError> {
     let a = read_model(path, overrides)?;
     Ok(report::inspect::build(&a.model, &a.diags, &a.unknown))
+}
+
+/// Why `analyze` could not run: a model, a profile or a pin problem.
+#[derive(Debug, thiserror::Error)]
+pub enum AnalyzeError {
+    #[error(transparent)]
+    Read(#[from] ReadError),
+    #[error(transparent)]
+    Profile(#[from] target::ProfileError),
+    #[error(transparent)]
+    Pin(#[from] cut::PinError),
+}
+
+/// Options of `analyze` beyond the model's.
+#[derive(Clone, Debug)]
+pub struct AnalyzeOptions {
+    pub strategy: cut::Strategy,
+    pub pins: cut::Pins,
+}
+
+impl Default for AnalyzeOptions {
+    fn default() -> Self {
+        AnalyzeOptions {
+            strategy: cut::Strategy::Mincut,
+            pins: cut::Pins::default(),
+        }
+    }
+}
+
+/// Every stage of `analyze`, kept for callers that look inside (tests, `explain`).
+pub struct Analysis {
+    pub read: Analyzed,
+    pub target: target::Target,
+    pub verdicts: Vec<rules::Verdict>,
+    pub costs: cut::Costs,
+    pub plan: cut::Plan,
+    pub greedy: cut::Plan,
+    pub cpu_only: cut::Plan,
+}
+
+/// read → judge → cost → cut (all three strategies).
+pub fn analyze_stages(
+    path: &Path,
+    overrides: &Overrides,
+    target: target::Target,
+    opts: &AnalyzeOptions,
+) -> Result<Analysis, AnalyzeError> {
+    let read = read_model(path, overrides)?;
+    let g = &read.model.graph;
+    let verdicts = rules::judge(g, &read.model.opsets, &target);
+    let costs = cut::cost::costs(g, &verdicts, &target);
+    let plan = cut::plan(g, &verdicts, &costs, opts.strategy, &opts.pins)?;
+    let greedy = cut::plan(g, &verdicts, &costs, cut::Strategy::Greedy, &opts.pins)?;
+    let cpu_only = cut::plan(g, &verdicts, &costs, cut::Strategy::Cpu, &opts.pins)?;
+    Ok(Analysis {
+        read,
+        target,
+        verdicts,
+        costs,
+        plan,
+        greedy,
+        cpu_only,
+    })
+}
+
+impl Analysis {
+    pub fn report(&self) -> report::analyze::AnalyzeReport {
+        let ins = report::inspect::build(&self.read.model, &self.read.diags, &self.read.unknown);
+        let mut warnings = self.read.diags.clone();
+        warnings.extend(self.target.warnings.iter().cloned());
+        report::analyze::build(&report::analyze::Inputs {
+            model: &self.read.model,
+            target: &self.target,
+            verdicts: &self.verdicts,
+            costs: &self.costs,
+            plan: &self.plan,
+            greedy: &self.greedy,
+            cpu_only: &self.cpu_only,
+            params: ins.model.params,
+            warnings,
+        })
+    }
 }

@@ -6,9 +6,9 @@ use std::process::ExitCode;
 
 use anyhow::Context;
 use clap::Parser;
-use tilecut::cli::{Cli, Command, DevCommand};
+use tilecut::cli::{Cli, Command, DevCommand, TargetsAction};
 use tilecut::onnx::builder::write_atomic;
-use tilecut::report::{inspect, Format};
+use tilecut::report::{analyze, inspect, Format};
 
 /// Exit statuses, documented in the README: 0 ok, 1 policy violated, 2 could not run.
 const EXIT_COULD_NOT_RUN: u8 = 2;
@@ -48,7 +48,73 @@ fn run(cli: Cli) -> anyhow::Result<u8> {
             match args.format {
                 Format::Json => inspect::render_json(&report, &mut buf)?,
                 Format::Table => inspect::render_table(&report, &mut buf)?,
+                Format::Markdown => inspect::render_markdown(&report, &mut buf)?,
             }
+            std::io::stdout().lock().write_all(&buf)?;
+            Ok(0)
+        }
+        Command::Analyze(args) => {
+            let overrides = args.model.overrides()?;
+            let target = tilecut::target::load(&args.target.target)?;
+            let opts = tilecut::AnalyzeOptions {
+                strategy: args.strategy,
+                pins: tilecut::cut::Pins {
+                    cpu: args.pin_cpu.clone(),
+                    accel: args.pin_accel.clone(),
+                },
+            };
+            let analysis = tilecut::analyze_stages(&args.model.model, &overrides, target, &opts)?;
+            let report = analysis.report();
+            let mut buf = Vec::new();
+            match args.format {
+                Format::Json => analyze::render_json(&report, &mut buf)?,
+                Format::Table => analyze::render_table(&report, &mut buf)?,
+                Format::Markdown => analyze::render_markdown(&report, &mut buf)?,
+            }
+            std::io::stdout().lock().write_all(&buf)?;
+            Ok(0)
+        }
+        Command::Targets(args) => {
+            let mut out = String::new();
+            match args.action {
+                None => {
+                    for (name, text) in tilecut::target::BUILTIN {
+                        let t = tilecut::target::parse(text, name)?;
+                        out.push_str(&format!(
+                            "{:<16} {:>2} columns × {} rows, {:>5.1} TOPS int8  {}\n",
+                            name,
+                            t.file.array.columns,
+                            t.file.array.compute_rows,
+                            t.tops("int8").unwrap_or(0.0),
+                            t.file.description
+                        ));
+                    }
+                }
+                Some(TargetsAction::Show { name }) => {
+                    let text = tilecut::target::BUILTIN
+                        .iter()
+                        .find(|(n, _)| *n == name)
+                        .map(|(_, t)| *t)
+                        .ok_or_else(|| anyhow::anyhow!("no built-in target `{name}` (see `tilecut targets`)"))?;
+                    out.push_str(text);
+                }
+            }
+            std::io::stdout().lock().write_all(out.as_bytes())?;
+            Ok(0)
+        }
+        Command::Explain(args) => {
+            let overrides = args.model.overrides()?;
+            let target = tilecut::target::load(&args.target.target)?;
+            let analysis = tilecut::analyze_stages(&args.model.model, &overrides, target, &Default::default())?;
+            let id = tilecut::report::explain::find(&analysis, &args.node).ok_or_else(|| {
+                anyhow::anyhow!(
+                    "{}: no node or tensor named `{}`",
+                    args.model.model.display(),
+                    args.node
+                )
+            })?;
+            let mut buf = Vec::new();
+            tilecut::report::explain::render(&analysis, id, &mut buf)?;
             std::io::stdout().lock().write_all(&buf)?;
             Ok(0)
         }

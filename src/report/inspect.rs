@@ -467,3 +467,21 @@ pub fn render_table(r: &InspectReport, out: &mut dyn Write) -> std::io::Result<(
     }
     Ok(())
 }
+
+pub fn render_markdown(r: &InspectReport, out: &mut dyn Write) -> std::io::Result<()> {
+    let m = &r.model;
+    writeln!(out, "### tilecut inspect: `{}`\n", m.path)?;
+    writeln!(out, "| figure | value |\n|---|---|")?;
+    writeln!(
+        out,
+        "| nodes | {} (+{} in subgraphs) |",
+        grouped(m.nodes as u64),
+        grouped(m.nodes_in_subgraphs as u64)
+    )?;
+    writeln!(out, "| parameters | {} |", grouped(m.params))?;
+    writeln!(out, "| weight bytes | {} |", grouped(m.weight_bytes))?;
+    writeln!(out, "| MACs | {} |", maybe(m.macs))?;
+    writeln!(out, "| activation bytes | {} |", maybe(m.activation_bytes))?;
+    writeln!(out, "| tensors with unknown shapes | {} |", r.unknown_shapes.len())?;
+    writeln!(out, "| warnings | {} |", r.warnings.len())
+}

@@ -1,6 +1,8 @@
 //! Reports: one view model per command, the only serializable trees, and one renderer per
 //! format. Only this module (and `main` for errors) writes to stdout.
 
+pub mod analyze;
+pub mod explain;
 pub mod inspect;
 
 /// Output formats of the reading commands.
@@ -8,6 +10,7 @@ pub mod inspect;
 pub enum Format {
     Table,
     Json,
+    Markdown,
 }
 
 /// Formats a count with thousands separators, for tables.

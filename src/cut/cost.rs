@@ -1,0 +1,128 @@
+//! The cost model: per-node time on each side (a roofline estimate), per-tensor transfer
+//! cost, per-partition dispatch cost, all in integer picoseconds so sums are exact.
+//!
+//! Assumptions (also in the README): CPU time = max(work ÷ the CPU's rate for the node's
+//! type, bytes read and written ÷ CPU memory bandwidth); accelerator time = work ÷ (all
+//! compute tiles × their per-type rate) for compute ops, bytes ÷ (columns × I/O-tile
+//! bandwidth) for data movement; work = 2 × MACs + other ops; a float op run as bf16 also
+//! pays its float bytes ÷ the conversion rate. Transfer = latency + bytes ÷ host bandwidth +
+//! layout conversion. Weights are loaded once and never counted per inference.
+
+use crate::ir::{DType, Graph, NodeId, ValueKind};
+use crate::quant;
+use crate::rules::{Candidate, Verdict};
+use crate::target::{type_name, Target};
+
+pub const PS_PER_S: f64 = 1e12;
+
+fn ps(seconds: f64) -> u64 {
+    if seconds.is_finite() && seconds > 0.0 {
+        (seconds * PS_PER_S).round().min(u64::MAX as f64 / 8.0) as u64
+    } else {
+        0
+    }
+}
+
+/// Costs of every node and value of the main graph.
+#[derive(Clone, Debug)]
+pub struct Costs {
+    pub cpu_ps: Vec<u64>,
+    /// None where the node cannot run on the accelerator.
+    pub accel_ps: Vec<Option<u64>>,
+    /// Per value: what crossing the CPU/accelerator boundary costs once.
+    pub transfer_ps: Vec<u64>,
+    /// Per value: bytes of one instance (None if unknown).
+    pub bytes: Vec<Option<u64>>,
+    pub dispatch_ps: u64,
+    /// Nodes whose work is unknown (symbolic dims): costed as zero work.
+    pub unknown_work: Vec<NodeId>,
+}
+
+/// The data type whose rate applies to a node: its effective activation type.
+fn node_type(g: &Graph, id: NodeId) -> Option<DType> {
+    let e = quant::effective(g, id);
+    e.inputs
+        .first()
+        .copied()
+        .flatten()
+        .or_else(|| e.outputs.first().copied().flatten())
+}
+
+pub fn costs(g: &Graph, verdicts: &[Verdict], target: &Target) -> Costs {
+    let f = &target.file;
+    let bytes: Vec<Option<u64>> = g.values.iter().map(|v| v.fact.bytes()).collect();
+    let transfer_ps: Vec<u64> = bytes
+        .iter()
+        .map(|b| {
+            ps(f.host.transfer_latency_s
+                + b.unwrap_or(0) as f64 / f.host.bandwidth_bytes_per_s
+                + f.host.layout_conversion_s)
+        })
+        .collect();
+    let mut cpu_ps = Vec::with_capacity(g.nodes.len());
+    let mut accel_ps = Vec::with_capacity(g.nodes.len());
+    let mut unknown_work = Vec::new();
+    let array_io = f.array.columns as f64 * f.array.io_tile.bandwidth_bytes_per_s;
+    for (i, n) in g.nodes.iter().enumerate() {
+        let id = NodeId(i as u32);
+        if n.folded {
+            cpu_ps.push(0);
+            accel_ps.push(Some(0));
+            continue;
+        }
+        let work = match (n.cost.macs, n.cost.ops) {
+            (Some(m), Some(o)) => (2 * m).saturating_add(o) as f64,
+            _ => {
+                unknown_work.push(id);
+                0.0
+            }
+        };
+        // Per-inference bytes: activations in and out (weights are resident).
+        let moved: u64 = n
+            .all_inputs()
+            .iter()
+            .chain(n.outputs.iter().flatten())
+            .filter(|v| !matches!(g.value(**v).kind, ValueKind::Initializer | ValueKind::Constant))
+            .filter_map(|v| bytes[v.index()])
+            .sum();
+        let dt = node_type(g, id);
+        let tname = dt.map(type_name).unwrap_or("fp32");
+        let cpu = (work / target.cpu_ops_per_s(tname)).max(moved as f64 / f.cpu.memory_bandwidth_bytes_per_s);
+        cpu_ps.push(ps(cpu));
+        let v = &verdicts[i];
+        let accel = match v.candidate {
+            Candidate::Cpu => None,
+            Candidate::Const => Some(0),
+            Candidate::Accel => {
+                let is_move = work == 0.0 && n.cost.macs == Some(0);
+                if is_move {
+                    Some(ps(moved as f64 / array_io))
+                } else {
+                    let is_float = dt.is_some_and(DType::is_float)
+                        && !matches!(n.op_type.as_str(), "QuantizeLinear" | "DequantizeLinear");
+                    let rate_type = if is_float { "bf16" } else { tname };
+                    let rate = target
+                        .tile_macs_per_s(rate_type)
+                        .or_else(|| target.tile_macs_per_s("int8"))
+                        .unwrap_or(1.0)
+                        * 2.0
+                        * target.compute_tiles() as f64;
+                    let mut t = work / rate;
+                    if is_float && target.floats_as_bf16() {
+                        t += moved as f64 / f.float.conversion_bytes_per_s;
+                    }
+                    Some(ps(t))
+                }
+            }
+        };
+        accel_ps.push(accel);
+    }
+    Costs {
+        cpu_ps,
+        accel_ps,
+        transfer_ps,
+        bytes,
+        dispatch_ps: ps(f.host.dispatch_overhead_s),
+        unknown_work,
+    }
+}

@@ -1,0 +1,590 @@
+//! The cut-finder: which capable nodes go to the accelerator and where the cuts fall.
+//!
+//! 1. Exact stage: the two-terminal assignment as a minimum s–t cut (Stone 1977, "Multiprocessor
+//!    Scheduling with the Aid of Network Flow Algorithms", IEEE TSE), each multi-consumer tensor
+//!    a hyperedge through two auxiliary vertices so its transfer is paid once (`network`).
+//! 2. Partitions: a side-preferring topological order cut into same-side segments (each
+//!    segment of a topological order is convex, and segments form a chain, so the quotient
+//!    graph is acyclic), then split into connected components (components of a convex set are
+//!    convex and independent of each other).
+//! 3. Dispatch refinement (a heuristic): an accelerator partition whose removal lowers the full
+//!    objective (dispatches and accelerator-to-accelerator traffic included) is pinned to the
+//!    CPU and the cut re-solved. Every accepted step lowers a non-negative integer objective, so
+//!    the loop terminates. The result is never worse than `greedy` or `cpu`: the best of the
+//!    three is kept.
+
+pub mod cost;
+pub mod flow;
+
+use std::collections::{BTreeSet, BinaryHeap};
+
+use crate::ir::{Graph, NodeId, ValueId, ValueKind};
+use crate::rules::{Candidate, Verdict};
+pub use cost::Costs;
+use flow::{Network, INF};
+
+#[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord, serde::Serialize, clap::ValueEnum)]
+#[serde(rename_all = "lowercase")]
+pub enum Strategy {
+    /// Exact min-cut, then dispatch refinement (the default).
+    Mincut,
+    /// Every capable node offloaded.
+    Greedy,
+    /// Nothing offloaded.
+    Cpu,
+}
+
+#[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord, serde::Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Side {
+    Cpu,
+    Accel,
+    Const,
+}
+
+/// A pin that cannot be honoured.
+#[derive(Debug, thiserror::Error)]
+#[error("{0}")]
+pub struct PinError(pub String);
+
+/// `--pin-cpu` / `--pin-accel` patterns: a node name, an op type, or a glob with `*`.
+#[derive(Clone, Debug, Default)]
+pub struct Pins {
+    pub cpu: Vec<String>,
+    pub accel: Vec<String>,
+}
+
+fn glob(pattern: &str, text: &str) -> bool {
+    let parts: Vec<&str> = pattern.split('*').collect();
+    if parts.len() == 1 {
+        return pattern == text;
+    }
+    let mut rest = text;
+    for (i, p) in parts.iter().enumerate() {
+        if i == 0 {
+            match rest.strip_prefix(p) {
+                Some(r) => rest = r,
+                None => return false,
+            }
+        } else if i == parts.len() - 1 {
+            return rest.ends_with(p);
+        } else {
+            match rest.find(p) {
+                Some(k) => rest = &rest[k + p.len()..],
+                None => return false,
+            }
+        }
+    }
+    true
+}
+
+fn pin_matches(pat: &str, g: &Graph, id: NodeId) -> bool {
+    let n = g.node(id);
+    glob(pat, &n.name) || n.op_type == pat
+}
+
+#[derive(Clone, Debug)]
+pub struct Partition {
+    pub id: usize,
+    pub side: Side,
+    pub nodes: Vec<NodeId>,
+}
+
+#[derive(Clone, Debug, PartialEq, Eq, PartialOrd, Ord, serde::Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Direction {
+    ToAccel,
+    ToCpu,
+    AccelToAccel,
+}
+
+#[derive(Clone, Debug)]
+pub struct CutPoint {
+    pub value: ValueId,
+    pub producer: Option<NodeId>,
+    /// Consumers on the receiving side (empty for a graph output leaving the array).
+    pub consumers: Vec<NodeId>,
+    /// None: a graph input (host memory).
+    pub from_partition: Option<usize>,
+    /// Receiving partitions; empty: a graph output (host memory).
+    pub to_partitions: Vec<usize>,
+    pub direction: Direction,
+    pub cost_ps: u64,
+}
+
+#[derive(Clone, Debug)]
+pub struct Plan {
+    pub strategy: Strategy,
+    pub side: Vec<Side>,
+    pub partitions: Vec<Partition>,
+    pub partition_of: Vec<Option<usize>>,
+    pub cut_points: Vec<CutPoint>,
+    /// The exact min-cut value (before dispatch refinement); for greedy/cpu, their serial cost
+    /// without dispatches.
+    pub mincut_ps: u64,
+    /// Σ node costs on their side + Σ cut-point costs + dispatches.
+    pub objective_ps: u64,
+    /// Refinement steps that pinned a partition to the CPU.
+    pub refinements: usize,
+}
+
+/// What the partitioner needs: which values are per-inference activations.
+fn is_activation(g: &Graph, v: ValueId) -> bool {
+    matches!(
+        g.value(v).kind,
+        ValueKind::Input | ValueKind::Activation | ValueKind::Output
+    )
+}
+
+/// Builds Stone's network: s = CPU, t = accelerator. Returns (network, s, t).
+pub fn network(g: &Graph, costs: &Costs, forced_cpu: &[bool], forced_accel: &[bool]) -> (Network, usize, usize) {
+    let n = g.nodes.len();
+    let mut net = Network::new(n + 2);
+    let (s, t) = (n, n + 1);
+    for i in 0..n {
+        if g.nodes[i].folded {
+            continue;
+        }
+        let accel = if forced_cpu[i] {
+            INF
+        } else {
+            costs.accel_ps[i].unwrap_or(INF)
+        };
+        let cpu = if forced_accel[i] { INF } else { costs.cpu_ps[i] };
+        net.add_edge(s, i, accel);
+        net.add_edge(i, t, cpu);
+    }
+    for (vi, v) in g.values.iter().enumerate() {
+        let vid = ValueId(vi as u32);
+        if !is_activation(g, vid) {
+            continue;
+        }
+        let producer = match v.producer {
+            Some(p) if g.node(p).folded => continue,
+            Some(p) => p.index(),
+            None => s,
+        };
+        let mut consumers: Vec<usize> = v
+            .consumers
+            .iter()
+            .filter(|c| !g.node(**c).folded)
+            .map(|c| c.index())
+            .collect();
+        if g.outputs.contains(&vid) {
+            consumers.push(s);
+        }
+        consumers.sort_unstable();
+        consumers.dedup();
+        if consumers.is_empty() || (producer == s && consumers.iter().all(|&c| c == s)) {
+            continue;
+        }
+        let cost = costs.transfer_ps[vi];
+        let a = net.add_vertex();
+        let b = net.add_vertex();
+        net.add_edge(producer, a, cost);
+        net.add_edge(b, producer, cost);
+        for &c in &consumers {
+            net.add_edge(a, c, INF);
+            net.add_edge(c, b, INF);
+        }
+    }
+    (net, s, t)
+}
+
+/// Serial cost of an assignment without dispatches: what the min cut minimises.
+pub fn serial_cost(g: &Graph, costs: &Costs, side: &[Side]) -> u64 {
+    let mut total: u64 = 0;
+    for (i, s) in side.iter().enumerate() {
+        total = total.saturating_add(match s {
+            Side::Cpu => costs.cpu_ps[i],
+            Side::Accel => costs.accel_ps[i].unwrap_or(INF),
+            Side::Const => 0,
+        });
+    }
+    for (vi, v) in g.values.iter().enumerate() {
+        let vid = ValueId(vi as u32);
+        if !is_activation(g, vid) {
+            continue;
+        }
+        let ps = match v.producer {
+            Some(p) => side[p.index()],
+            None => Side::Cpu,
+        };
+        if ps == Side::Const {
+            continue;
+        }
+        let mut other = v.consumers.iter().any(|c| {
+            let cs = side[c.index()];
+            cs != Side::Const && cs != ps
+        });
+        if g.outputs.contains(&vid) && ps == Side::Accel {
+            other = true;
+        }
+        if other {
+            total = total.saturating_add(costs.transfer_ps[vi]);
+        }
+    }
+    total
+}
+
+/// Cuts nodes into convex, connected partitions with an acyclic quotient (see module docs).
+pub fn partitions(g: &Graph, side: &[Side]) -> (Vec<Partition>, Vec<Option<usize>>) {
+    let n = g.nodes.len();
+    let mut indeg = vec![0usize; n];
+    let mut succ: Vec<Vec<usize>> = vec![Vec::new(); n];
+    for (i, node) in g.nodes.iter().enumerate() {
+        let mut preds: Vec<usize> = node
+            .all_inputs()
+            .iter()
+            .filter_map(|v| g.value(*v).producer)
+            .map(|p| p.index())
+            .collect();
+        preds.sort_unstable();
+        preds.dedup();
+        for p in preds {
+            indeg[i] += 1;
+            succ[p].push(i);
+        }
+    }
+    // Ready queues per side; constants are emitted as soon as ready and belong to no partition.
+    let mut ready: [BinaryHeap<std::cmp::Reverse<usize>>; 3] =
+        [BinaryHeap::new(), BinaryHeap::new(), BinaryHeap::new()];
+    let slot = |s: Side| match s {
+        Side::Cpu => 0,
+        Side::Accel => 1,
+        Side::Const => 2,
+    };
+    for i in 0..n {
+        if indeg[i] == 0 {
+            ready[slot(side[i])].push(std::cmp::Reverse(i));
+        }
+    }
+    let mut segments: Vec<(Side, Vec<usize>)> = Vec::new();
+    let mut current = Side::Cpu;
+    let mut emitted = 0;
+    while emitted < n {
+        let pick = if let Some(std::cmp::Reverse(i)) = ready[2].pop() {
+            Some(i)
+        } else if let Some(std::cmp::Reverse(i)) = ready[slot(current)].pop() {
+            Some(i)
+        } else {
+            current = if current == Side::Cpu { Side::Accel } else { Side::Cpu };
+            ready[slot(current)].pop().map(|r| r.0)
+        };
+        let Some(i) = pick else { break };
+        emitted += 1;
+        if side[i] != Side::Const {
+            match segments.last_mut() {
+                Some((s, nodes)) if *s == side[i] => nodes.push(i),
+                _ => segments.push((side[i], vec![i])),
+            }
+        }
+        for &u in &succ[i] {
+            indeg[u] -= 1;
+            if indeg[u] == 0 {
+                ready[slot(side[u])].push(std::cmp::Reverse(u));
+            }
+        }
+    }
+    // Split each segment into connected components (undirected, inside the segment).
+    let mut parts = Vec::new();
+    let mut partition_of = vec![None; n];
+    let mut seg_of = vec![usize::MAX; n];
+    for (k, (_, nodes)) in segments.iter().enumerate() {
+        for &i in nodes {
+            seg_of[i] = k;
+        }
+    }
+    for (k, (s, nodes)) in segments.iter().enumerate() {
+        let mut seen: BTreeSet<usize> = BTreeSet::new();
+        for &start in nodes {
+            if seen.contains(&start) {
+                continue;
+            }
+            let mut comp = vec![start];
+            seen.insert(start);
+            let mut stack = vec![start];
+            while let Some(u) = stack.pop() {
+                let node = &g.nodes[u];
+                let preds = node
+                    .all_inputs()
+                    .into_iter()
+                    .filter_map(|v| g.value(v).producer)
+                    .map(|p| p.index());
+                let nexts = succ[u].iter().copied();
+                for w in preds.chain(nexts).collect::<Vec<_>>() {
+                    if seg_of[w] == k && seen.insert(w) {
+                        comp.push(w);
+                        stack.push(w);
+                    }
+                }
+            }
+            comp.sort_unstable();
+            let id = parts.len();
+            for &c in &comp {
+                partition_of[c] = Some(id);
+            }
+            parts.push(Partition {
+                id,
+                side: *s,
+                nodes: comp.into_iter().map(|c| NodeId(c as u32)).collect(),
+            });
+        }
+    }
+    (parts, partition_of)
+}
+
+/// Cut points of a partitioned assignment.
+pub fn cut_points(g: &Graph, costs: &Costs, side: &[Side], partition_of: &[Option<usize>]) -> Vec<CutPoint> {
+    let mut out = Vec::new();
+    for (vi, v) in g.values.iter().enumerate() {
+        let vid = ValueId(vi as u32);
+        if !is_activation(g, vid) {
+            continue;
+        }
+        let (ps, pp) = match v.producer {
+            Some(p) => (side[p.index()], partition_of[p.index()]),
+            None => (Side::Cpu, None),
+        };
+        if ps == Side::Const {
+            continue;
+        }
+        let is_output = g.outputs.contains(&vid);
+        let live: Vec<NodeId> = v
+            .consumers
+            .iter()
+            .copied()
+            .filter(|c| side[c.index()] != Side::Const)
+            .collect();
+        let crossing: Vec<NodeId> = live.iter().copied().filter(|c| side[c.index()] != ps).collect();
+        let mut to: Vec<usize> = crossing.iter().filter_map(|c| partition_of[c.index()]).collect();
+        to.sort_unstable();
+        to.dedup();
+        if !crossing.is_empty() || (is_output && ps == Side::Accel) {
+            out.push(CutPoint {
+                value: vid,
+                producer: v.producer,
+                consumers: crossing,
+                from_partition: pp,
+                to_partitions: to,
+                direction: if ps == Side::Accel {
+                    Direction::ToCpu
+                } else {
+                    Direction::ToAccel
+                },
+                cost_ps: costs.transfer_ps[vi],
+            });
+        }
+        // Accelerator to a different accelerator partition: through system memory, out and in.
+        if ps == Side::Accel {
+            let mut other: Vec<usize> = live
+                .iter()
+                .filter(|c| side[c.index()] == Side::Accel)
+                .filter_map(|c| partition_of[c.index()])
+                .filter(|&q| Some(q) != pp)
+                .collect();
+            other.sort_unstable();
+            other.dedup();
+            if !other.is_empty() {
+                let consumers: Vec<NodeId> = live
+                    .iter()
+                    .copied()
+                    .filter(|c| side[c.index()] == Side::Accel && partition_of[c.index()] != pp)
+                    .collect();
+                out.push(CutPoint {
+                    value: vid,
+                    producer: v.producer,
+                    consumers,
+                    from_partition: pp,
+                    to_partitions: other,
+                    direction: Direction::AccelToAccel,
+                    cost_ps: costs.transfer_ps[vi].saturating_mul(2),
+                });
+            }
+        }
+    }
+    out
+}
+
+fn finish(g: &Graph, costs: &Costs, strategy: Strategy, side: Vec<Side>, mincut_ps: u64, refinements: usize) -> Plan {
+    let (parts, partition_of) = partitions(g, &side);
+    let cps = cut_points(g, costs, &side, &partition_of);
+    let nodes: u64 = side
+        .iter()
+        .enumerate()
+        .map(|(i, s)| match s {
+            Side::Cpu => costs.cpu_ps[i],
+            Side::Accel => costs.accel_ps[i].unwrap_or(0),
+            Side::Const => 0,
+        })
+        .sum();
+    let transfers: u64 = cps.iter().map(|c| c.cost_ps).sum();
+    let dispatches = parts.iter().filter(|p| p.side == Side::Accel).count() as u64 * costs.dispatch_ps;
+    Plan {
+        strategy,
+        side,
+        partitions: parts,
+        partition_of,
+        cut_points: cps,
+        mincut_ps,
+        objective_ps: nodes.saturating_add(transfers).saturating_add(dispatches),
+        refinements,
+    }
+}
+
+fn resolve_pins(g: &Graph, verdicts: &[Verdict], pins: &Pins) -> Result<(Vec<bool>, Vec<bool>), PinError> {
+    let n = g.nodes.len();
+    let mut cpu = vec![false; n];
+    let mut accel = vec![false; n];
+    for pat in &pins.cpu {
+        let hits: Vec<NodeId> = g.node_ids().filter(|&i| pin_matches(pat, g, i)).collect();
+        if hits.is_empty() {
+            return Err(PinError(format!("--pin-cpu `{pat}` matches no node name or op type")));
+        }
+        for i in hits {
+            cpu[i.index()] = true;
+        }
+    }
+    for pat in &pins.accel {
+        let hits: Vec<NodeId> = g.node_ids().filter(|&i| pin_matches(pat, g, i)).collect();
+        if hits.is_empty() {
+            return Err(PinError(format!("--pin-accel `{pat}` matches no node name or op type")));
+        }
+        for i in hits {
+            match verdicts[i.index()].candidate {
+                Candidate::Accel => accel[i.index()] = true,
+                Candidate::Const => {}
+                Candidate::Cpu => {
+                    let why = verdicts[i.index()]
+                        .reasons
+                        .iter()
+                        .find(|r| r.blocking)
+                        .map(|r| r.message.clone())
+                        .unwrap_or_default();
+                    return Err(PinError(format!(
+                        "cannot pin node `{}` to the accelerator: {why}",
+                        g.node(i).name
+                    )));
+                }
+            }
+            if cpu[i.index()] {
+                return Err(PinError(format!(
+                    "node `{}` is pinned to both the CPU and the accelerator",
+                    g.node(i).name
+                )));
+            }
+        }
+    }
+    Ok((cpu, accel))
+}
+
+fn solve(g: &Graph, costs: &Costs, forced_cpu: &[bool], forced_accel: &[bool]) -> (Vec<Side>, u64) {
+    let (net, s, t) = network(g, costs, forced_cpu, forced_accel);
+    let cut = flow::min_cut(&net, s, t);
+    let side = (0..g.nodes.len())
+        .map(|i| {
+            if g.nodes[i].folded {
+                Side::Const
+            } else if cut.source_side[i] {
+                Side::Cpu
+            } else {
+                Side::Accel
+            }
+        })
+        .collect();
+    (side, cut.value)
+}
+
+/// Most partitions the refinement tries to drop; beyond it the plan keeps what it has.
+pub const MAX_REFINEMENT_TRIES: usize = 256;
+
+/// Plans the cut with `strategy`.
+pub fn plan(g: &Graph, verdicts: &[Verdict], costs: &Costs, strategy: Strategy, pins: &Pins) -> Result<Plan, PinError> {
+    let (pin_cpu, pin_accel) = resolve_pins(g, verdicts, pins)?;
+    let n = g.nodes.len();
+    let fixed = |want: fn(Candidate) -> bool| -> Vec<Side> {
+        (0..n)
+            .map(|i| {
+                if g.nodes[i].folded {
+                    Side::Const
+                } else if pin_accel[i] || (!pin_cpu[i] && want(verdicts[i].candidate)) {
+                    Side::Accel
+                } else {
+                    Side::Cpu
+                }
+            })
+            .collect()
+    };
+    match strategy {
+        Strategy::Cpu => {
+            let side = fixed(|_| false);
+            let serial = serial_cost(g, costs, &side);
+            Ok(finish(g, costs, strategy, side, serial, 0))
+        }
+        Strategy::Greedy => {
+            let side = fixed(|c| c == Candidate::Accel);
+            let serial = serial_cost(g, costs, &side);
+            Ok(finish(g, costs, strategy, side, serial, 0))
+        }
+        Strategy::Mincut => {
+            let (side, value) = solve(g, costs, &pin_cpu, &pin_accel);
+            let mut best = finish(g, costs, strategy, side, value, 0);
+            let mut forced = pin_cpu.clone();
+            let mut tries = 0;
+            let mut rejected: BTreeSet<Vec<NodeId>> = BTreeSet::new();
+            'outer: loop {
+                // Cheapest-looking partitions first: fewest nodes is a fair proxy for gain.
+                let mut cands: Vec<&Partition> = best
+                    .partitions
+                    .iter()
+                    .filter(|p| p.side == Side::Accel && !rejected.contains(&p.nodes))
+                    .collect();
+                cands.sort_by_key(|p| (p.nodes.len(), p.id));
+                for p in cands {
+                    if tries >= MAX_REFINEMENT_TRIES || p.nodes.iter().any(|i| pin_accel[i.index()]) {
+                        continue;
+                    }
+                    tries += 1;
+                    let mut f = forced.clone();
+                    for i in &p.nodes {
+                        f[i.index()] = true;
+                    }
+                    let (side, _) = solve(g, costs, &f, &pin_accel);
+                    let trial = finish(g, costs, strategy, side, value, best.refinements + 1);
+                    if trial.objective_ps < best.objective_ps {
+                        forced = f;
+                        best = trial;
+                        continue 'outer;
+                    }
+                    rejected.insert(p.nodes.clone());
+                }
+                break;
+            }
+            // Never worse than the simple strategies.
+            for alt in [Strategy::Greedy, Strategy::Cpu] {
+                let mut other = plan(g, verdicts, costs, alt, pins)?;
+                if other.objective_ps < best.objective_ps {
+                    other.strategy = Strategy::Mincut;
+                    other.mincut_ps = value;
+                    best = other;
+                }
+            }
+            best.mincut_ps = value;
+            Ok(best)
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::glob;
+
+    #[test]
+    fn glob_patterns() {
+        assert!(glob("conv*", "conv_12"));
+        assert!(glob("*_head", "box_head"));
+        assert!(glob("a*b*c", "axxbyyc"));
+        assert!(!glob("a*b", "ac"));
+        assert!(glob("exact", "exact"));
+    }
+}

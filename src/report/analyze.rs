@@ -1,0 +1,682 @@
+//! `tilecut analyze`: verdicts, the cut, and the cost estimate, as one view model.
+//!
+//! JSON shape (schema `schemas/analyze.schema.json`, version `ANALYZE_SCHEMA_VERSION`):
+//! `schema_version`, `estimate_note`, `model` {path, nodes, params, macs}, `target` {name,
+//! source, columns, compute_tiles, tops_int8}, `strategy`, `tensors[]` {name, dtype, shape,
+//! bytes, transfer_us}, `nodes[]` {name, op, outputs, placement (cpu|accel|const), partition,
+//! macs, cpu_us, accel_us (null where CPU-only), rule, signature, bundle, reasons[] {code,
+//! message, rule, blocking}}, `partitions[]` {id, side, nodes, macs, weight_bytes, inputs,
+//! outputs, columns, tiles, dispatch_us, est_latency_us}, `cut_points[]` {tensor, producer,
+//! consumers, from_partition, to_partition, to_partitions, direction, dtype, shape, bytes,
+//! transfer_us}, `summary` {coverage_macs, coverage_nodes, accel_partitions, boundary_bytes,
+//! transfers, objective_us, mincut_us, est_latency_us, cpu_only_latency_us, greedy_us,
+//! unknown_cost_nodes}, `op_summary[]` {op, accel, cpu, const}, `blockers[]` {code, nodes,
+//! macs, example}, `warnings[]`.
+//! Times are microseconds derived from integer picoseconds (six decimals are exact).
+
+use std::collections::BTreeMap;
+use std::io::Write;
+
+use serde::Serialize;
+use tabled::settings::Style;
+use tabled::{Table, Tabled};
+
+use crate::cut::{Direction, Plan, Side};
+use crate::diag::Diagnostic;
+use crate::ir::{Graph, Model, ValueKind};
+use crate::rules::{Candidate, Reason, Verdict};
+use crate::target::Target;
+
+use super::inspect::{shape_json, JsonShape};
+use super::{grouped, maybe};
+
+pub const ANALYZE_SCHEMA_VERSION: u32 = 1;
+
+pub const ESTIMATE_NOTE: &str =
+    "Latency and column figures are estimates from tilecut's cost model (README, \"Cost model\"), not measurements.";
+
+#[derive(Serialize, Debug, Clone)]
+pub struct AnalyzeReport {
+    pub schema_version: u32,
+    pub estimate_note: &'static str,
+    pub model: ModelRef,
+    pub target: TargetRef,
+    pub strategy: crate::cut::Strategy,
+    pub tensors: Vec<TensorCost>,
+    pub nodes: Vec<NodeRow>,
+    pub partitions: Vec<PartitionRow>,
+    pub cut_points: Vec<CutRow>,
+    pub summary: Summary,
+    pub strategies: Vec<StrategyRow>,
+    pub op_summary: Vec<OpRow>,
+    pub blockers: Vec<Blocker>,
+    pub warnings: Vec<Diagnostic>,
+}
+
+#[derive(Serialize, Debug, Clone)]
+pub struct ModelRef {
+    pub path: String,
+    pub nodes: usize,
+    pub params: u64,
+    pub macs: Option<u64>,
+}
+
+#[derive(Serialize, Debug, Clone)]
+pub struct TargetRef {
+    pub name: String,
+    pub source: String,
+    pub columns: u32,
+    pub compute_tiles: u64,
+    pub tops_int8: Option<f64>,
+}
+
+#[derive(Serialize, Debug, Clone)]
+pub struct TensorCost {
+    pub name: String,
+    pub dtype: Option<String>,
+    pub shape: Option<JsonShape>,
+    pub bytes: Option<u64>,
+    pub transfer_us: f64,
+}
+
+#[derive(Serialize, Debug, Clone)]
+pub struct NodeRow {
+    pub name: String,
+    pub op: String,
+    pub outputs: Vec<String>,
+    pub placement: Side,
+    pub partition: Option<usize>,
+    pub macs: Option<u64>,
+    pub cpu_us: f64,
+    pub accel_us: Option<f64>,
+    pub rule: Option<String>,
+    pub signature: String,
+    pub bundle: Vec<String>,
+    pub reasons: Vec<Reason>,
+}
+
+#[derive(Serialize, Debug, Clone)]
+pub struct PartitionRow {
+    pub id: usize,
+    pub side: Side,
+    pub nodes: Vec<String>,
+    pub macs: u64,
+    pub weight_bytes: u64,
+    pub inputs: Vec<String>,
+    pub outputs: Vec<String>,
+    /// Estimated columns and compute tiles the partition needs (accelerator partitions).
+    pub columns: Option<u64>,
+    pub tiles: Option<u64>,
+    pub dispatch_us: f64,
+    pub est_latency_us: f64,
+}
+
+#[derive(Serialize, Debug, Clone)]
+pub struct CutRow {
+    pub tensor: String,
+    pub producer: Option<String>,
+    pub consumers: Vec<String>,
+    pub from_partition: Option<usize>,
+    pub to_partition: Option<usize>,
+    pub to_partitions: Vec<usize>,
+    pub direction: Direction,
+    pub dtype: Option<String>,
+    pub shape: Option<JsonShape>,
+    pub bytes: Option<u64>,
+    pub transfer_us: f64,
+}
+
+#[derive(Serialize, Debug, Clone)]
+pub struct Summary {
+    pub coverage_macs: Option<f64>,
+    pub coverage_nodes: f64,
+    pub accel_partitions: usize,
+    pub boundary_bytes: u64,
+    pub transfers: usize,
+    pub objective_us: f64,
+    pub mincut_us: f64,
+    pub est_latency_us: f64,
+    pub cpu_only_latency_us: f64,
+    pub greedy_us: f64,
+    /// Nodes whose work depends on unknown dims (costed as zero work): fix them with --dim.
+    pub unknown_cost_nodes: usize,
+}
+
+#[derive(Serialize, Debug, Clone)]
+pub struct StrategyRow {
+    pub strategy: crate::cut::Strategy,
+    pub objective_us: f64,
+    pub accel_partitions: usize,
+}
+
+#[derive(Serialize, Debug, Clone)]
+pub struct OpRow {
+    pub op: String,
+    pub accel: usize,
+    pub cpu: usize,
+    #[serde(rename = "const")]
+    pub konst: usize,
+}
+
+#[derive(Serialize, Debug, Clone)]
+pub struct Blocker {
+    pub code: String,
+    pub nodes: usize,
+    /// MACs this reason keeps off the accelerator.
+    pub macs: u64,
+    pub example: String,
+}
+
+pub fn us(ps: u64) -> f64 {
+    ps as f64 / 1e6
+}
+
+/// Everything `build` needs.
+pub struct Inputs<'a> {
+    pub model: &'a Model,
+    pub target: &'a Target,
+    pub verdicts: &'a [Verdict],
+    pub costs: &'a crate::cut::Costs,
+    pub plan: &'a Plan,
+    pub greedy: &'a Plan,
+    pub cpu_only: &'a Plan,
+    pub params: u64,
+    pub warnings: Vec<Diagnostic>,
+}
+
+fn partition_weight_bytes(g: &Graph, nodes: &[crate::ir::NodeId]) -> u64 {
+    let mut seen = std::collections::BTreeSet::new();
+    let mut total = 0u64;
+    for n in nodes {
+        for v in g.node(*n).all_inputs() {
+            let val = g.value(v);
+            let weight = matches!(val.kind, ValueKind::Initializer | ValueKind::Constant);
+            if weight && seen.insert(v) {
+                total = total.saturating_add(
+                    val.data
+                        .as_ref()
+                        .and_then(|d| d.bytes())
+                        .or_else(|| val.fact.bytes())
+                        .unwrap_or(0),
+                );
+            }
+        }
+    }
+    total
+}
+
+pub fn build(i: &Inputs) -> AnalyzeReport {
+    let g = &i.model.graph;
+    let plan = i.plan;
+    let tensors = g
+        .values
+        .iter()
+        .enumerate()
+        .filter(|(_, v)| matches!(v.kind, ValueKind::Input | ValueKind::Activation | ValueKind::Output))
+        .map(|(k, v)| TensorCost {
+            name: v.name.clone(),
+            dtype: v.fact.dtype.map(|d| d.name().to_string()),
+            shape: shape_json(&v.fact.shape),
+            bytes: i.costs.bytes[k],
+            transfer_us: us(i.costs.transfer_ps[k]),
+        })
+        .collect();
+    let mut nodes = Vec::with_capacity(g.nodes.len());
+    let mut ops: BTreeMap<String, (usize, usize, usize)> = BTreeMap::new();
+    let (mut total_macs, mut accel_macs, mut macs_known) = (0u64, 0u64, true);
+    let (mut live, mut accel_nodes) = (0usize, 0usize);
+    let mut blockers: BTreeMap<&'static str, (usize, u64, String)> = BTreeMap::new();
+    for (k, n) in g.nodes.iter().enumerate() {
+        let v = &i.verdicts[k];
+        let side = plan.side[k];
+        let label = if n.is_default_domain() {
+            n.op_type.clone()
+        } else {
+            format!("{}.{}", n.domain, n.op_type)
+        };
+        let e = ops.entry(label).or_default();
+        match side {
+            Side::Accel => e.0 += 1,
+            Side::Cpu => e.1 += 1,
+            Side::Const => e.2 += 1,
+        }
+        if side != Side::Const {
+            live += 1;
+            match n.cost.macs {
+                Some(m) => total_macs = total_macs.saturating_add(m),
+                None => macs_known = false,
+            }
+            if side == Side::Accel {
+                accel_nodes += 1;
+                accel_macs = accel_macs.saturating_add(n.cost.macs.unwrap_or(0));
+            }
+        }
+        if v.candidate == Candidate::Cpu {
+            for r in v.reasons.iter().filter(|r| r.blocking) {
+                let b = blockers.entry(r.code).or_insert((0, 0, r.message.clone()));
+                b.0 += 1;
+                b.1 = b.1.saturating_add(n.cost.macs.unwrap_or(0));
+            }
+        }
+        nodes.push(NodeRow {
+            name: n.name.clone(),
+            op: n.op_type.clone(),
+            outputs: n.outputs.iter().flatten().map(|o| g.value(*o).name.clone()).collect(),
+            placement: side,
+            partition: plan.partition_of[k],
+            macs: n.cost.macs,
+            cpu_us: us(i.costs.cpu_ps[k]),
+            accel_us: i.costs.accel_ps[k].map(us),
+            rule: v.rule.clone(),
+            signature: v.signature.clone(),
+            bundle: v.bundle.clone(),
+            reasons: v.reasons.clone(),
+        });
+    }
+    let t = i.target;
+    let rows = t.file.array.compute_rows as u64;
+    let partitions = plan
+        .partitions
+        .iter()
+        .map(|p| {
+            let members: std::collections::BTreeSet<usize> = p.nodes.iter().map(|n| n.index()).collect();
+            let mut ins = Vec::new();
+            let mut outs = Vec::new();
+            for n in &p.nodes {
+                for v in g.node(*n).all_inputs() {
+                    let val = g.value(v);
+                    if !matches!(val.kind, ValueKind::Initializer | ValueKind::Constant)
+                        && val.producer.is_none_or(|q| !members.contains(&q.index()))
+                        && !ins.contains(&val.name)
+                    {
+                        ins.push(val.name.clone());
+                    }
+                }
+                for v in g.node(*n).outputs.iter().flatten() {
+                    let val = g.value(*v);
+                    if (val.consumers.iter().any(|c| !members.contains(&c.index())) || g.outputs.contains(v))
+                        && !outs.contains(&val.name)
+                    {
+                        outs.push(val.name.clone());
+                    }
+                }
+            }
+            let macs: u64 = p.nodes.iter().map(|n| g.node(*n).cost.macs.unwrap_or(0)).sum();
+            let wb = partition_weight_bytes(g, &p.nodes);
+            let node_ps: u64 = p
+                .nodes
+                .iter()
+                .map(|n| {
+                    if p.side == Side::Accel {
+                        i.costs.accel_ps[n.index()].unwrap_or(0)
+                    } else {
+                        i.costs.cpu_ps[n.index()]
+                    }
+                })
+                .sum();
+            let (columns, tiles, dispatch) = if p.side == Side::Accel {
+                // First estimate: enough tiles to hold the resident weights, at least one.
+                let tiles = wb
+                    .div_ceil(t.file.array.compute_tile.local_memory_bytes)
+                    .clamp(1, t.compute_tiles());
+                (Some(tiles.div_ceil(rows)), Some(tiles), i.costs.dispatch_ps)
+            } else {
+                (None, None, 0)
+            };
+            PartitionRow {
+                id: p.id,
+                side: p.side,
+                nodes: p.nodes.iter().map(|n| g.node(*n).name.clone()).collect(),
+                macs,
+                weight_bytes: wb,
+                inputs: ins,
+                outputs: outs,
+                columns,
+                tiles,
+                dispatch_us: us(dispatch),
+                est_latency_us: us(node_ps.saturating_add(dispatch)),
+            }
+        })
+        .collect();
+    let cut_points: Vec<CutRow> = plan
+        .cut_points
+        .iter()
+        .map(|c| {
+            let v = g.value(c.value);
+            CutRow {
+                tensor: v.name.clone(),
+                producer: c.producer.map(|p| g.node(p).name.clone()),
+                consumers: c.consumers.iter().map(|n| g.node(*n).name.clone()).collect(),
+                from_partition: c.from_partition,
+                to_partition: c.to_partitions.first().copied(),
+                to_partitions: c.to_partitions.clone(),
+                direction: c.direction.clone(),
+                dtype: v.fact.dtype.map(|d| d.name().to_string()),
+                shape: shape_json(&v.fact.shape),
+                bytes: i.costs.bytes[c.value.index()],
+                transfer_us: us(c.cost_ps),
+            }
+        })
+        .collect();
+    let boundary_bytes: u64 = cut_points.iter().map(|c| c.bytes.unwrap_or(0)).sum();
+    let accel_partitions = plan.partitions.iter().filter(|p| p.side == Side::Accel).count();
+    let mut blockers: Vec<Blocker> = blockers
+        .into_iter()
+        .map(|(code, (n, m, ex))| Blocker {
+            code: code.to_string(),
+            nodes: n,
+            macs: m,
+            example: ex,
+        })
+        .collect();
+    blockers.sort_by(|a, b| {
+        b.macs
+            .cmp(&a.macs)
+            .then(b.nodes.cmp(&a.nodes))
+            .then(a.code.cmp(&b.code))
+    });
+    let strategies = [i.plan, i.greedy, i.cpu_only]
+        .iter()
+        .map(|p| StrategyRow {
+            strategy: p.strategy,
+            objective_us: us(p.objective_ps),
+            accel_partitions: p.partitions.iter().filter(|q| q.side == Side::Accel).count(),
+        })
+        .collect();
+    let mut warnings = i.warnings.clone();
+    warnings.sort();
+    warnings.dedup();
+    AnalyzeReport {
+        schema_version: ANALYZE_SCHEMA_VERSION,
+        estimate_note: ESTIMATE_NOTE,
+        model: ModelRef {
+            path: i.model.path.display().to_string(),
+            nodes: g.nodes.len(),
+            params: i.params,
+            macs: macs_known.then_some(total_macs),
+        },
+        target: TargetRef {
+            name: t.name().to_string(),
+            source: t.source.clone(),
+            columns: t.file.array.columns,
+            compute_tiles: t.compute_tiles(),
+            tops_int8: t.tops("int8"),
+        },
+        strategy: plan.strategy,
+        tensors,
+        nodes,
+        partitions,
+        summary: Summary {
+            coverage_macs: (macs_known && total_macs > 0).then(|| accel_macs as f64 / total_macs as f64),
+            coverage_nodes: if live > 0 {
+                accel_nodes as f64 / live as f64
+            } else {
+                0.0
+            },
+            accel_partitions,
+            boundary_bytes,
+            transfers: cut_points.len(),
+            objective_us: us(plan.objective_ps),
+            mincut_us: us(plan.mincut_ps),
+            est_latency_us: us(plan.objective_ps),
+            cpu_only_latency_us: us(i.cpu_only.objective_ps),
+            greedy_us: us(i.greedy.objective_ps),
+            unknown_cost_nodes: i.costs.unknown_work.len(),
+        },
+        cut_points,
+        strategies,
+        op_summary: ops
+            .into_iter()
+            .map(|(op, (a, c, k))| OpRow {
+                op,
+                accel: a,
+                cpu: c,
+                konst: k,
+            })
+            .collect(),
+        blockers,
+        warnings,
+    }
+}
+
+pub fn render_json(r: &AnalyzeReport, out: &mut dyn Write) -> std::io::Result<()> {
+    serde_json::to_writer_pretty(&mut *out, r)?;
+    writeln!(out)
+}
+
+fn pct(x: Option<f64>) -> String {
+    x.map(|v| format!("{:.1} %", v * 100.0))
+        .unwrap_or_else(|| "unknown".into())
+}
+
+#[derive(Tabled)]
+struct Kv {
+    #[tabled(rename = "analysis")]
+    k: String,
+    #[tabled(rename = "")]
+    v: String,
+}
+
+#[derive(Tabled)]
+struct PartRow {
+    id: usize,
+    side: String,
+    nodes: usize,
+    #[tabled(rename = "MACs")]
+    macs: String,
+    #[tabled(rename = "weights B")]
+    weights: String,
+    #[tabled(rename = "cols/tiles")]
+    cols: String,
+    #[tabled(rename = "est. µs")]
+    latency: String,
+}
+
+#[derive(Tabled)]
+struct CutTable {
+    tensor: String,
+    direction: String,
+    #[tabled(rename = "from→to")]
+    route: String,
+    bytes: String,
+    #[tabled(rename = "µs")]
+    cost: String,
+}
+
+#[derive(Tabled)]
+struct BlockerRow {
+    reason: String,
+    nodes: usize,
+    #[tabled(rename = "MACs kept off")]
+    macs: String,
+    example: String,
+}
+
+#[derive(Tabled)]
+struct OpTable {
+    op: String,
+    accel: usize,
+    cpu: usize,
+    #[tabled(rename = "const")]
+    konst: usize,
+}
+
+fn side_name(s: Side) -> &'static str {
+    match s {
+        Side::Accel => "accel",
+        Side::Cpu => "cpu",
+        Side::Const => "const",
+    }
+}
+
+fn route(c: &CutRow) -> String {
+    let from = c
+        .from_partition
+        .map(|p| format!("P{p}"))
+        .unwrap_or_else(|| "host".into());
+    let to = if c.to_partitions.is_empty() {
+        "host".to_string()
+    } else {
+        c.to_partitions
+            .iter()
+            .map(|p| format!("P{p}"))
+            .collect::<Vec<_>>()
+            .join(",")
+    };
+    format!("{from}→{to}")
+}
+
+/// Rows a table section shows before it says how many it left out.
+const ROWS: usize = 20;
+
+pub fn render_table(r: &AnalyzeReport, out: &mut dyn Write) -> std::io::Result<()> {
+    let s = &r.summary;
+    let kv = vec![
+        Kv {
+            k: "model".into(),
+            v: format!("{} ({} nodes)", r.model.path, r.model.nodes),
+        },
+        Kv {
+            k: "target".into(),
+            v: format!(
+                "{} ({} columns, {} compute tiles)",
+                r.target.name, r.target.columns, r.target.compute_tiles
+            ),
+        },
+        Kv {
+            k: "coverage by MACs".into(),
+            v: pct(s.coverage_macs),
+        },
+        Kv {
+            k: "coverage by nodes".into(),
+            v: pct(Some(s.coverage_nodes)),
+        },
+        Kv {
+            k: "accelerator partitions".into(),
+            v: s.accel_partitions.to_string(),
+        },
+        Kv {
+            k: "boundary crossings".into(),
+            v: format!("{} ({} bytes per inference)", s.transfers, grouped(s.boundary_bytes)),
+        },
+        Kv {
+            k: "est. latency (min-cut plan)".into(),
+            v: format!("{:.1} µs", s.est_latency_us),
+        },
+        Kv {
+            k: "est. latency, greedy offload".into(),
+            v: format!("{:.1} µs", s.greedy_us),
+        },
+        Kv {
+            k: "est. latency, CPU only".into(),
+            v: format!("{:.1} µs", s.cpu_only_latency_us),
+        },
+    ];
+    writeln!(out, "{}", Table::new(kv).with(Style::sharp()))?;
+    let parts: Vec<PartRow> = r
+        .partitions
+        .iter()
+        .map(|p| PartRow {
+            id: p.id,
+            side: side_name(p.side).into(),
+            nodes: p.nodes.len(),
+            macs: grouped(p.macs),
+            weights: grouped(p.weight_bytes),
+            cols: match (p.columns, p.tiles) {
+                (Some(c), Some(t)) => format!("{c}/{t}"),
+                _ => "-".into(),
+            },
+            latency: format!("{:.1}", p.est_latency_us),
+        })
+        .collect();
+    writeln!(out, "partitions in execution order:")?;
+    writeln!(out, "{}", Table::new(parts).with(Style::sharp()))?;
+    if !r.cut_points.is_empty() {
+        let cuts: Vec<CutTable> = r
+            .cut_points
+            .iter()
+            .take(ROWS)
+            .map(|c| CutTable {
+                tensor: c.tensor.clone(),
+                direction: format!("{:?}", c.direction).to_lowercase(),
+                route: route(c),
+                bytes: maybe(c.bytes),
+                cost: format!("{:.2}", c.transfer_us),
+            })
+            .collect();
+        writeln!(out, "cut points:")?;
+        writeln!(out, "{}", Table::new(cuts).with(Style::sharp()))?;
+        if r.cut_points.len() > ROWS {
+            writeln!(
+                out,
+                "… {} more cut points (see --format json)",
+                r.cut_points.len() - ROWS
+            )?;
+        }
+    }
+    let ops: Vec<OpTable> = r
+        .op_summary
+        .iter()
+        .map(|o| OpTable {
+            op: o.op.clone(),
+            accel: o.accel,
+            cpu: o.cpu,
+            konst: o.konst,
+        })
+        .collect();
+    writeln!(out, "{}", Table::new(ops).with(Style::sharp()))?;
+    if !r.blockers.is_empty() {
+        let rows: Vec<BlockerRow> = r
+            .blockers
+            .iter()
+            .take(ROWS)
+            .map(|b| BlockerRow {
+                reason: b.code.clone(),
+                nodes: b.nodes,
+                macs: grouped(b.macs),
+                example: b.example.clone(),
+            })
+            .collect();
+        writeln!(out, "what keeps work on the CPU (fix these first):")?;
+        writeln!(out, "{}", Table::new(rows).with(Style::sharp()))?;
+    }
+    for w in &r.warnings {
+        writeln!(out, "warning: {}: {}", w.code, w.message)?;
+    }
+    writeln!(out, "{}", r.estimate_note)
+}
+
+pub fn render_markdown(r: &AnalyzeReport, out: &mut dyn Write) -> std::io::Result<()> {
+    let s = &r.summary;
+    writeln!(out, "### tilecut: `{}` on `{}`\n", r.model.path, r.target.name)?;
+    writeln!(out, "| figure | value |\n|---|---|")?;
+    writeln!(out, "| coverage by MACs | {} |", pct(s.coverage_macs))?;
+    writeln!(out, "| coverage by nodes | {} |", pct(Some(s.coverage_nodes)))?;
+    writeln!(out, "| accelerator partitions | {} |", s.accel_partitions)?;
+    writeln!(
+        out,
+        "| boundary crossings | {} ({} bytes per inference) |",
+        s.transfers,
+        grouped(s.boundary_bytes)
+    )?;
+    writeln!(
+        out,
+        "| est. latency (min-cut / greedy / CPU only) | {:.1} / {:.1} / {:.1} µs |",
+        s.est_latency_us, s.greedy_us, s.cpu_only_latency_us
+    )?;
+    if !r.blockers.is_empty() {
+        writeln!(out, "\n**What keeps work on the CPU**\n")?;
+        writeln!(out, "| reason | nodes | MACs kept off | example |\n|---|---|---|---|")?;
+        for b in r.blockers.iter().take(ROWS) {
+            writeln!(
+                out,
+                "| `{}` | {} | {} | {} |",
+                b.code,
+                b.nodes,
+                grouped(b.macs),
+                b.example.replace('|', "\\|")
+            )?;
+        }
+    }
+    writeln!(out, "\n_{}_", r.estimate_note)
+}

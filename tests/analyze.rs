@@ -1,0 +1,349 @@
+//! `tilecut analyze` end to end: the audit identity of the objective, partition invariants on
+//! every sample and conformance model, hand-computed figures, formats agreeing, pins, and
+//! determinism.
+
+mod common;
+
+use std::path::{Path, PathBuf};
+
+use common::*;
+use tilecut::cut::Side;
+use tilecut::rules::Candidate;
+
+fn sample(name: &str) -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).join("sample-models").join(name)
+}
+
+fn json(args: &[&str]) -> serde_json::Value {
+    let (code, out, err) = run(args);
+    assert_eq!(code, 0, "{args:?}: {err}");
+    serde_json::from_str(&out).expect("json")
+}
+
+/// Microseconds with six decimals back to exact integer picoseconds.
+fn ps(v: &serde_json::Value) -> i64 {
+    (v.as_f64().unwrap_or(0.0) * 1e6).round() as i64
+}
+
+#[test]
+fn objective_is_exactly_the_sum_of_the_reported_costs() {
+    for (_, name) in samples() {
+        for target in ["compact-array", "wide-array"] {
+            let r = json(&[
+                "analyze",
+                sample(&name).to_str().expect("utf8"),
+                "--target",
+                target,
+                "--format",
+                "json",
+                "--dim",
+                "batch=1",
+                "--dim",
+                "frames=20",
+            ]);
+            let mut total: i64 = 0;
+            for n in r["nodes"].as_array().expect("nodes") {
+                total += match n["placement"].as_str() {
+                    Some("accel") => ps(&n["accel_us"]),
+                    Some("cpu") => ps(&n["cpu_us"]),
+                    _ => 0,
+                };
+            }
+            for c in r["cut_points"].as_array().expect("cuts") {
+                total += ps(&c["transfer_us"]);
+            }
+            for p in r["partitions"].as_array().expect("parts") {
+                total += ps(&p["dispatch_us"]);
+            }
+            assert_eq!(total, ps(&r["summary"]["objective_us"]), "{name} on {target}");
+            let s = &r["summary"];
+            assert!(
+                ps(&s["objective_us"]) <= ps(&s["greedy_us"]),
+                "{name} on {target}: worse than greedy"
+            );
+            assert!(
+                ps(&s["objective_us"]) <= ps(&s["cpu_only_latency_us"]),
+                "{name} on {target}: worse than CPU only"
+            );
+            let bytes: u64 = r["cut_points"]
+                .as_array()
+                .expect("cuts")
+                .iter()
+                .map(|c| c["bytes"].as_u64().unwrap_or(0))
+                .sum();
+            assert_eq!(bytes, s["boundary_bytes"].as_u64().expect("bytes"));
+        }
+    }
+}
+
+fn samples() -> Vec<(usize, String)> {
+    tilecut::samples::all()
+        .expect("samples")
+        .into_iter()
+        .enumerate()
+        .map(|(i, (n, _))| (i, n.to_string()))
+        .collect()
+}
+
+fn check_plan(a: &tilecut::Analysis, label: &str) {
+    let g = &a.read.model.graph;
+    for plan in [&a.plan, &a.greedy, &a.cpu_only] {
+        let n = g.nodes.len();
+        let mut count = vec![0usize; n];
+        for p in &plan.partitions {
+            for node in &p.nodes {
+                count[node.index()] += 1;
+                assert_eq!(plan.side[node.index()], p.side);
+            }
+        }
+        for i in 0..n {
+            let expect = usize::from(plan.side[i] != Side::Const);
+            assert_eq!(
+                count[i], expect,
+                "{label}: node {} in {} partitions",
+                g.nodes[i].name, count[i]
+            );
+            if plan.side[i] == Side::Accel {
+                assert_eq!(
+                    a.verdicts[i].candidate,
+                    Candidate::Accel,
+                    "{label}: CPU-only node {} offloaded",
+                    g.nodes[i].name
+                );
+            }
+        }
+        // Partitions are numbered in execution order and every edge runs forward, so the
+        // quotient is acyclic and no path can leave a partition and re-enter it.
+        for (i, node) in g.nodes.iter().enumerate() {
+            for v in node.all_inputs() {
+                if let Some(p) = g.value(v).producer {
+                    if let (Some(x), Some(y)) = (plan.partition_of[p.index()], plan.partition_of[i]) {
+                        assert!(x <= y, "{label}: edge from partition {x} back to {y}");
+                    }
+                }
+            }
+        }
+    }
+}
+
+#[test]
+fn partition_invariants_on_every_sample_and_conformance_model() {
+    let mut checked = 0;
+    for (_, name) in samples() {
+        for t in ["compact-array", "wide-array"] {
+            let a = tilecut::analyze_stages(
+                &sample(&name),
+                &Default::default(),
+                tilecut::target::load(t).expect("t"),
+                &Default::default(),
+            )
+            .expect("analyzes");
+            check_plan(&a, &name);
+            checked += 1;
+        }
+    }
+    let dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/onnx-node");
+    let mut files: Vec<PathBuf> = std::fs::read_dir(&dir)
+        .expect("dir")
+        .map(|e| e.expect("entry").path())
+        .filter(|p| p.extension().is_some_and(|e| e == "onnx"))
+        .collect();
+    files.sort();
+    let target = tilecut::target::load("wide-array").expect("t");
+    for f in files {
+        // Every conformance model the reader accepts must also analyze.
+        if tilecut::read_model(&f, &Default::default()).is_err() {
+            continue;
+        }
+        let a = tilecut::analyze_stages(&f, &Default::default(), target.clone(), &Default::default())
+            .unwrap_or_else(|e| panic!("{}: {e}", f.display()));
+        check_plan(&a, &f.display().to_string());
+        checked += 1;
+    }
+    println!("partition invariants hold on {checked} model/target pairs");
+    assert!(checked > 1500);
+}
+
+#[test]
+fn hand_computed_figures_for_two_samples() {
+    // Fruit grader, int8 QDQ, compact-array. MACs by the documented convention:
+    //   conv 3→16 k3 s2 on 64×64 → 32×32: 16·32·32·(3·3·3) = 442,368
+    //   depthwise 16 k3 on 32×32:           16·32·32·(1·3·3) = 147,456
+    //   pointwise 16→16 on 32×32:           16·32·32·16      = 262,144
+    //   conv 16→32 k3 s2 on 16×16 → 8×8:   32·8·8·(16·3·3)  = 294,912
+    //   Gemm 32→5:                          5·32             =     160
+    //   total 1,147,040, all on the one accelerator partition.
+    // Boundary: the quantized image int8 [1,3,64,64] = 12,288 bytes in, the quantized logits
+    // int8 [1,5] = 5 bytes out: 12,293 bytes, 2 transfers. Resident weights of 22,810 bytes fit
+    // one 64 KiB tile: 1 tile, 1 column.
+    let r = json(&[
+        "analyze",
+        sample("fruit_grader_qdq_int8.onnx").to_str().expect("utf8"),
+        "--format",
+        "json",
+    ]);
+    assert_eq!(r["model"]["macs"], 1_147_040);
+    assert_eq!(r["summary"]["boundary_bytes"], 12_293);
+    assert_eq!(r["summary"]["transfers"], 2);
+    assert_eq!(r["summary"]["accel_partitions"], 1);
+    assert_eq!(r["summary"]["coverage_macs"], 1.0);
+    let accel: Vec<&serde_json::Value> = r["partitions"]
+        .as_array()
+        .expect("parts")
+        .iter()
+        .filter(|p| p["side"] == "accel")
+        .collect();
+    assert_eq!(accel[0]["macs"], 1_147_040);
+    assert_eq!(
+        (accel[0]["columns"].as_u64(), accel[0]["tiles"].as_u64()),
+        (Some(1), Some(1))
+    );
+    // Vibration monitor, int16 activations, compact-array:
+    //   conv 3→16 k7 s2 on 1024 → 512:  16·512·(3·7)  = 172,032
+    //   conv 16→32 k5 s2 → 256:         32·256·(16·5) = 655,360
+    //   conv 32→32 k3 → 256:            32·256·(32·3) = 786,432
+    //   Gemm 32→4:                      4·32          =     128   → 1,613,952 MACs.
+    // Boundary: the float input [1,3,1024] = 12,288 bytes (quantized on the array) and the
+    // float output [1,4] = 16 bytes: 12,304 bytes.
+    let r = json(&[
+        "analyze",
+        sample("vibration_monitor_a16w8.onnx").to_str().expect("utf8"),
+        "--format",
+        "json",
+    ]);
+    assert_eq!(r["model"]["macs"], 1_613_952);
+    assert_eq!(r["summary"]["boundary_bytes"], 12_304);
+    assert_eq!(r["summary"]["accel_partitions"], 1);
+}
+
+#[test]
+fn formats_agree() {
+    let m = sample("parcel_label_detector_qdq.onnx");
+    let ms = m.to_str().expect("utf8");
+    let r = json(&["analyze", ms, "--format", "json"]);
+    let (_, table, _) = run(&["analyze", ms]);
+    let (_, md, _) = run(&["analyze", ms, "--format", "markdown"]);
+    let s = &r["summary"];
+    let cov = format!("{:.1} %", s["coverage_macs"].as_f64().expect("cov") * 100.0);
+    let bytes = tilecut::report::grouped(s["boundary_bytes"].as_u64().expect("b"));
+    let lat = format!("{:.1}", s["est_latency_us"].as_f64().expect("lat"));
+    for text in [&table, &md] {
+        assert!(text.contains(&cov), "coverage {cov} missing");
+        assert!(text.contains(&bytes), "bytes {bytes} missing");
+        assert!(text.contains(&lat), "latency {lat} missing");
+        assert!(text.contains("estimates"), "the estimate note is missing");
+    }
+}
+
+#[test]
+fn pins_are_honoured_or_refused_with_the_reason() {
+    let m = sample("fruit_grader_qdq_int8.onnx");
+    let ms = m.to_str().expect("utf8");
+    let r = json(&["analyze", ms, "--format", "json", "--pin-cpu", "Conv"]);
+    for n in r["nodes"]
+        .as_array()
+        .expect("nodes")
+        .iter()
+        .filter(|n| n["op"] == "Conv")
+    {
+        assert_eq!(n["placement"], "cpu");
+    }
+    let r = json(&["analyze", ms, "--format", "json", "--pin-cpu", "conv_1*"]);
+    assert!(r["nodes"]
+        .as_array()
+        .expect("nodes")
+        .iter()
+        .filter(|n| n["name"].as_str().is_some_and(|s| s.starts_with("conv_1")))
+        .all(|n| n["placement"] == "cpu"));
+    assert_fails_cleanly(&["analyze", ms, "--pin-accel", "Softmax"], "cannot pin node");
+    assert_fails_cleanly(&["analyze", ms, "--pin-cpu", "NoSuchOp"], "matches no node");
+    // Pinning a capable node onto the accelerator keeps it there even where the cut would not.
+    let r = json(&[
+        "analyze",
+        sample("fruit_grader_f32.onnx").to_str().expect("utf8"),
+        "--target",
+        "wide-array",
+        "--format",
+        "json",
+        "--pin-accel",
+        "conv_4",
+    ]);
+    assert!(r["nodes"]
+        .as_array()
+        .expect("nodes")
+        .iter()
+        .any(|n| n["name"] == "conv_4" && n["placement"] == "accel"));
+}
+
+#[test]
+fn strategies_are_reported_side_by_side() {
+    let r = json(&[
+        "analyze",
+        sample("parcel_label_detector_qdq.onnx").to_str().expect("utf8"),
+        "--format",
+        "json",
+    ]);
+    let names: Vec<&str> = r["strategies"]
+        .as_array()
+        .expect("s")
+        .iter()
+        .map(|s| s["strategy"].as_str().expect("name"))
+        .collect();
+    assert_eq!(names, ["mincut", "greedy", "cpu"]);
+    let r = json(&[
+        "analyze",
+        sample("parcel_label_detector_qdq.onnx").to_str().expect("utf8"),
+        "--format",
+        "json",
+        "--strategy",
+        "cpu",
+    ]);
+    assert_eq!(r["summary"]["accel_partitions"], 0);
+}
+
+#[test]
+fn output_is_deterministic_and_independent_of_file_node_order() {
+    let m = sample("parcel_label_detector_qdq.onnx");
+    let a = run(&["analyze", m.to_str().expect("utf8"), "--format", "json"]).1;
+    let b = run(&["analyze", m.to_str().expect("utf8"), "--format", "json"]).1;
+    assert_eq!(a, b);
+    // Reverse the node order in the file: same cost, same partition structure.
+    let bytes = std::fs::read(&m).expect("read");
+    let mut proto = <tilecut::onnx::ModelProto as prost::Message>::decode(bytes::Bytes::from(bytes)).expect("decode");
+    proto.graph.as_mut().expect("graph").node.reverse();
+    let d = tempfile::tempdir().expect("tmp");
+    let p = d.path().join("reversed.onnx");
+    std::fs::write(&p, prost::Message::encode_to_vec(&proto)).expect("write");
+    let x: serde_json::Value = serde_json::from_str(&a).expect("json");
+    let y = json(&["analyze", p.to_str().expect("utf8"), "--format", "json"]);
+    assert_eq!(x["summary"]["objective_us"], y["summary"]["objective_us"]);
+    assert_eq!(x["summary"]["boundary_bytes"], y["summary"]["boundary_bytes"]);
+    let parts = |r: &serde_json::Value| {
+        let mut v: Vec<(String, Vec<String>)> = r["partitions"]
+            .as_array()
+            .expect("p")
+            .iter()
+            .map(|p| {
+                let mut n: Vec<String> = p["nodes"]
+                    .as_array()
+                    .expect("n")
+                    .iter()
+                    .map(|s| s.as_str().unwrap_or("").to_string())
+                    .collect();
+                n.sort();
+                (p["side"].as_str().unwrap_or("").to_string(), n)
+            })
+            .collect();
+        v.sort();
+        v
+    };
+    assert_eq!(parts(&x), parts(&y));
+}
+
+#[test]
+fn bad_analyze_arguments() {
+    let m = sample("fruit_grader_qdq_int8.onnx");
+    let (code, _, _) = run(&["analyze", m.to_str().expect("utf8"), "--strategy", "magic"]);
+    assert_eq!(code, 2);
+    assert_fails_cleanly(&["analyze", "/nonexistent.onnx"], "/nonexistent.onnx");
+}

@@ -1,0 +1,293 @@
+//! Target profiles and the rule table: profile arithmetic, verdicts on every quantizer variant
+//! (expected by hand), QDQ recognition per the ONNX operator spec, and bad profiles.
+
+mod common;
+
+use std::path::{Path, PathBuf};
+
+use common::*;
+use tilecut::rules::Candidate;
+
+fn sample(name: &str) -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).join("sample-models").join(name)
+}
+
+/// A profile written for this test: the check values of one laptop-class design, marked as
+/// common practice for that design (not universal): 20 compute tiles at 0.5 TOPS int8 each,
+/// 2 input and 2 output streams per compute tile, 12 DMA channels per buffer tile, 4 per I/O
+/// tile, and a compute tile that addresses its own and 3 neighbouring data memories.
+const CHECK_PROFILE: &str = r#"
+version = 1
+name = "check-design"
+[array]
+columns = 5
+compute_rows = 4
+clock_hz = 1.0e9
+[array.compute_tile]
+local_memory_bytes = 65536
+neighbour_memories = 3
+stream_inputs = 2
+stream_outputs = 2
+macs_per_cycle = { int8 = 250 }
+[array.buffer_tile]
+capacity_bytes = 524288
+dma_channels = 12
+addressing_dims = 4
+[array.io_tile]
+dma_channels = 4
+bandwidth_bytes_per_s = 4.0e9
+[host]
+bandwidth_bytes_per_s = 10.0e9
+transfer_latency_s = 1e-5
+dispatch_overhead_s = 5e-5
+[cpu]
+ops_per_s = { fp32 = 5.0e10 }
+memory_bandwidth_bytes_per_s = 2.0e10
+"#;
+
+#[test]
+fn profile_arithmetic_reproduces_the_design_totals() {
+    let t = tilecut::target::parse(CHECK_PROFILE, "check.toml").expect("valid");
+    assert_eq!(t.compute_tiles(), 20);
+    // 2 ops per MAC × 250 MACs/cycle × 1 GHz = 0.5 TOPS per tile; × 20 tiles = 10 TOPS.
+    assert!((t.tops("int8").expect("rate") - 10.0).abs() < 1e-9);
+    let a = &t.file.array;
+    assert_eq!((a.compute_tile.stream_inputs, a.compute_tile.stream_outputs), (2, 2));
+    assert_eq!(a.buffer_tile.dma_channels, 12);
+    assert_eq!(a.io_tile.dma_channels, 4);
+    assert_eq!(t.addressable_bytes_per_tile(), 4 * a.compute_tile.local_memory_bytes);
+}
+
+fn verdicts(model: &str, target: &str, dims: &[&str]) -> tilecut::Analysis {
+    let mut o = tilecut::Overrides::default();
+    for d in dims {
+        o.add_dim(d).expect("dim");
+    }
+    let t = tilecut::target::load(target).expect("target");
+    tilecut::analyze_stages(&sample(model), &o, t, &Default::default()).expect("analyzes")
+}
+
+/// (candidate, codes of blocking reasons) of every node of op type `op`.
+fn of_op(a: &tilecut::Analysis, op: &str) -> Vec<(Candidate, Vec<&'static str>)> {
+    let g = &a.read.model.graph;
+    g.node_ids()
+        .filter(|&i| g.node(i).op_type == op)
+        .map(|i| {
+            let v = &a.verdicts[i.index()];
+            (
+                v.candidate,
+                v.reasons.iter().filter(|r| r.blocking).map(|r| r.code).collect(),
+            )
+        })
+        .collect()
+}
+
+fn all_accel(v: &[(Candidate, Vec<&'static str>)]) -> bool {
+    !v.is_empty() && v.iter().all(|(c, _)| *c == Candidate::Accel)
+}
+
+fn all_blocked_by(v: &[(Candidate, Vec<&'static str>)], code: &str) -> bool {
+    !v.is_empty() && v.iter().all(|(c, r)| *c == Candidate::Cpu && r.contains(&code))
+}
+
+#[test]
+fn expected_verdicts_per_quantizer_variant_and_target() {
+    // Written by hand from the profiles: compact-array runs int8/uint8/int16 activations with
+    // symmetric int8 weights (any granularity), no blocked weights, float on the CPU;
+    // wide-array adds int4 blocked weights and runs float as bf16.
+    let conv = |m: &str, t: &str| of_op(&verdicts(m, t, &[]), "Conv");
+    assert!(
+        all_accel(&conv("fruit_grader_qdq_int8.onnx", "compact-array")),
+        "per-channel int8"
+    );
+    assert!(
+        all_accel(&conv("fruit_grader_qdq_per_tensor.onnx", "compact-array")),
+        "per-tensor int8"
+    );
+    assert!(all_blocked_by(
+        &conv("fruit_grader_qdq_asymmetric_u8.onnx", "compact-array"),
+        "weight-asymmetric"
+    ));
+    assert!(all_blocked_by(
+        &conv("fruit_grader_qdq_int4_blocked.onnx", "compact-array"),
+        "weight-blocked"
+    ));
+    assert!(
+        all_accel(&conv("fruit_grader_qdq_int4_blocked.onnx", "wide-array")),
+        "int4 blocked on wide"
+    );
+    assert!(
+        all_accel(&conv("vibration_monitor_a16w8.onnx", "compact-array")),
+        "int16 × int8"
+    );
+    assert!(all_blocked_by(
+        &conv("fruit_grader_f32.onnx", "compact-array"),
+        "float-on-cpu"
+    ));
+    assert!(all_accel(&conv("fruit_grader_f32.onnx", "wide-array")), "float as bf16");
+    // Softmax has no rule on compact-array.
+    assert!(all_blocked_by(
+        &of_op(&verdicts("fruit_grader_qdq_int8.onnx", "compact-array", &[]), "Softmax"),
+        "no-rule"
+    ));
+    // The detector's post-processing stays on the CPU; its backbone convolutions do not.
+    let det = verdicts("parcel_label_detector_qdq.onnx", "compact-array", &[]);
+    assert!(all_blocked_by(&of_op(&det, "NonMaxSuppression"), "no-rule"));
+    assert!(all_blocked_by(&of_op(&det, "TopK"), "no-rule"));
+    assert!(all_accel(&of_op(&det, "Conv")));
+    // Data-dependent shapes keep the Gather of selected boxes off the wide array.
+    let det_wide = verdicts("parcel_label_detector_qdq.onnx", "wide-array", &[]);
+    assert!(of_op(&det_wide, "Gather")
+        .iter()
+        .any(|(c, r)| *c == Candidate::Cpu && r.contains(&"shape-dynamic")));
+    // Symbolic dims block until fixed.
+    assert!(all_blocked_by(
+        &of_op(&verdicts("command_word_encoder_f32.onnx", "wide-array", &[]), "MatMul"),
+        "shape-dynamic"
+    ));
+    let fixed = verdicts("command_word_encoder_f32.onnx", "wide-array", &["batch=1", "frames=50"]);
+    assert!(all_accel(&of_op(&fixed, "MatMul")), "{:?}", of_op(&fixed, "MatMul"));
+    // Subgraph-carrying ops stay on the CPU.
+    assert!(all_blocked_by(
+        &of_op(&verdicts("night_mode_switch_if.onnx", "wide-array", &[]), "If"),
+        "control-flow"
+    ));
+    assert!(all_blocked_by(
+        &of_op(&verdicts("running_average_loop.onnx", "wide-array", &[]), "Loop"),
+        "control-flow"
+    ));
+}
+
+#[test]
+fn qdq_parameters_are_recognised_per_the_operator_spec() {
+    // ONNX operator spec, DequantizeLinear: a 1-D scale with `axis` is per-axis; a scale of
+    // the input's rank with `block_size` is blocked quantization (opset 21).
+    let a = verdicts("fruit_grader_qdq_int8.onnx", "compact-array", &[]);
+    let g = &a.read.model.graph;
+    let conv = g.node_ids().find(|&i| g.node(i).op_type == "Conv").expect("a conv");
+    let e = tilecut::quant::effective(g, conv);
+    let w = e.input_quant[1].as_ref().expect("weight quantized");
+    assert_eq!((w.granularity(), w.axis, w.scales), ("per-channel", Some(0), 16));
+    assert_eq!(w.nonzero_zero_points(), Some((0, 16)));
+    assert_eq!(e.input_quant[0].as_ref().map(|q| q.granularity()), Some("per-tensor"));
+    let b = verdicts("fruit_grader_qdq_int4_blocked.onnx", "wide-array", &[]);
+    let g = &b.read.model.graph;
+    let conv = g.node_ids().find(|&i| g.node(i).op_type == "Conv").expect("a conv");
+    let w = tilecut::quant::effective(g, conv).input_quant[1]
+        .clone()
+        .expect("weight quantized");
+    assert_eq!(
+        (w.granularity(), w.block_size, w.dtype),
+        ("blocked", Some(8), tilecut::ir::DType::I4)
+    );
+}
+
+fn bad_profile(text: &str, needle: &str) {
+    let d = tempfile::tempdir().expect("tmp");
+    let p = d.path().join("bad.toml");
+    std::fs::write(&p, text).expect("write");
+    let model = sample("fruit_grader_qdq_int8.onnx");
+    assert_fails_cleanly(
+        &[
+            "analyze",
+            model.to_str().expect("utf8"),
+            "--target",
+            p.to_str().expect("utf8"),
+        ],
+        needle,
+    );
+    assert!(common::run(&[
+        "analyze",
+        model.to_str().expect("utf8"),
+        "--target",
+        p.to_str().expect("utf8")
+    ])
+    .2
+    .contains("bad.toml"));
+}
+
+#[test]
+fn bad_profiles_are_clear_errors() {
+    bad_profile(&CHECK_PROFILE.replace("columns = 5", "columns = 5\ncolour = 3"), "line");
+    bad_profile(
+        &CHECK_PROFILE.replace("columns = 5", "columns = \"five\""),
+        "line 5, column 11",
+    );
+    bad_profile(&CHECK_PROFILE.replace("columns = 5", "columns = 0"), "array.columns");
+    bad_profile(
+        &CHECK_PROFILE.replace("{ int8 = 250 }", "{ int9 = 250 }"),
+        "unknown data type `int9`",
+    );
+    bad_profile(&CHECK_PROFILE.replace("version = 1", "version = 7"), "version");
+    bad_profile(
+        &CHECK_PROFILE.replace("bandwidth_bytes_per_s = 10.0e9", "bandwidth_bytes_per_s = -1.0"),
+        "host.bandwidth_bytes_per_s",
+    );
+    let rule = |body: &str| format!("{CHECK_PROFILE}\n[[rule]]\n{body}\n");
+    bad_profile(
+        &rule("id = \"a\"\nwhy = \"x\"\nops = [\"Conv\"]\ntypes = [{ act = \"int7\" }]"),
+        "int7",
+    );
+    bad_profile(
+        &rule("id = \"a\"\nwhy = \"x\"\nops = [\"Conv\"]\nopsets = [20, 10]"),
+        "opsets",
+    );
+    bad_profile(
+        &rule("id = \"a\"\nwhy = \"x\"\nops = [\"Conv\"]\nweight_granularity = \"per-tensor\"\nweight_axis = 0"),
+        "contradicts",
+    );
+    bad_profile(
+        &format!(
+            "{}\n[[rule]]\nid = \"a\"\nwhy = \"y\"\nops = [\"Relu\"]",
+            rule("id = \"a\"\nwhy = \"x\"\nops = [\"Conv\"]")
+        ),
+        "used twice",
+    );
+    bad_profile(&rule("id = \"a\"\nwhy = \"\"\nops = [\"Conv\"]"), "why");
+    bad_profile("this is = not toml [", "bad.toml");
+    assert_fails_cleanly(
+        &[
+            "analyze",
+            sample("fruit_grader_f32.onnx").to_str().expect("utf8"),
+            "--target",
+            "no-such-target",
+        ],
+        "no such built-in target",
+    );
+}
+
+#[test]
+fn unknown_ops_in_rules_warn() {
+    let text = format!("{CHECK_PROFILE}\n[[rule]]\nid = \"a\"\nwhy = \"x\"\nops = [\"FlyingConv\"]\n");
+    let t = tilecut::target::parse(&text, "warn.toml").expect("valid with a warning");
+    assert!(t.warnings.iter().any(|w| w.message.contains("FlyingConv")));
+}
+
+#[test]
+fn targets_lists_and_shows_builtins() {
+    let (code, out, _) = run(&["targets"]);
+    assert_eq!(code, 0);
+    assert!(out.contains("compact-array") && out.contains("wide-array") && out.contains("TOPS"));
+    let (code, out, _) = run(&["targets", "show", "compact-array"]);
+    assert_eq!(code, 0);
+    assert!(out.contains("ILLUSTRATIVE") && out.contains("[[rule]]"));
+    // The printed template is itself a valid profile.
+    tilecut::target::parse(&out, "shown.toml").expect("template parses");
+    assert_fails_cleanly(&["targets", "show", "nope"], "no built-in target `nope`");
+}
+
+#[test]
+fn explain_prints_verdict_bundle_and_rules() {
+    let m = sample("fruit_grader_qdq_asymmetric_u8.onnx");
+    let (code, out, err) = run(&["explain", m.to_str().expect("utf8"), "conv_4"]);
+    assert_eq!(code, 0, "{err}");
+    assert!(out.contains("weight-asymmetric") && out.contains("conv-int") && out.contains("bundle"));
+    // A tensor name explains its producer.
+    let (code, out, _) = run(&["explain", m.to_str().expect("utf8"), "conv_3"]);
+    assert_eq!(code, 0);
+    assert!(out.contains("node       conv_4"));
+    assert_fails_cleanly(
+        &["explain", m.to_str().expect("utf8"), "nothing"],
+        "no node or tensor named `nothing`",
+    );
+}

@@ -96,13 +96,9 @@ fn check_plan(a: &tilecut::Analysis, label: &str) {
                 assert_eq!(plan.side[node.index()], p.side);
             }
         }
-        for i in 0..n {
+        for (i, &c) in count.iter().enumerate() {
             let expect = usize::from(plan.side[i] != Side::Const);
-            assert_eq!(
-                count[i], expect,
-                "{label}: node {} in {} partitions",
-                g.nodes[i].name, count[i]
-            );
+            assert_eq!(c, expect, "{label}: node {} in {c} partitions", g.nodes[i].name);
             if plan.side[i] == Side::Accel {
                 assert_eq!(
                     a.verdicts[i].candidate,

@@ -16,9 +16,12 @@ fn main() {
         .map(PathBuf::from)
         .unwrap_or_else(|| PathBuf::from("bench-models"));
     println!(
-        "{:<22} {:>9} {:>9} {:>9} {:>9} {:>9}",
-        "model", "load ms", "import", "infer", "report", "json"
+        "{:<22} {:>9} {:>9} {:>9} {:>9} {:>9} {:>9} {:>9} {:>12}",
+        "model", "load ms", "import", "infer", "report", "json", "judge", "cut", "cut/10k nodes"
     );
+    let target = tilecut::target::load("wide-array").expect("built-in target");
+    let mut overrides = tilecut::Overrides::default();
+    overrides.add_dim("batch=1").expect("valid");
     for name in [
         "stack_10k",
         "stack_30k",
@@ -32,13 +35,14 @@ fn main() {
         if !path.exists() {
             continue;
         }
-        let mut t = vec![Vec::new(); 5];
+        let mut t = vec![Vec::new(); 7];
+        let mut nodes = 0usize;
         for _ in 0..5 {
             let s = Instant::now();
             let loaded = tilecut::onnx::load::load(&path).expect("load");
             t[0].push(s.elapsed().as_secs_f64() * 1e3);
             let s = Instant::now();
-            let (mut model, mut diags) = tilecut::import::import(&loaded, &Default::default()).expect("import");
+            let (mut model, mut diags) = tilecut::import::import(&loaded, &overrides).expect("import");
             t[1].push(s.elapsed().as_secs_f64() * 1e3);
             let s = Instant::now();
             let unknown = tilecut::infer::infer(&mut model, &mut diags);
@@ -50,11 +54,28 @@ fn main() {
             let mut out = Vec::new();
             tilecut::report::inspect::render_json(&report, &mut out).expect("json");
             t[4].push(s.elapsed().as_secs_f64() * 1e3);
+            let s = Instant::now();
+            let verdicts = tilecut::rules::judge(&model.graph, &model.opsets, &target);
+            t[5].push(s.elapsed().as_secs_f64() * 1e3);
+            let s = Instant::now();
+            let costs = tilecut::cut::cost::costs(&model.graph, &verdicts, &target);
+            let plan = tilecut::cut::plan(
+                &model.graph,
+                &verdicts,
+                &costs,
+                tilecut::cut::Strategy::Mincut,
+                &Default::default(),
+            )
+            .expect("plan");
+            t[6].push(s.elapsed().as_secs_f64() * 1e3);
+            nodes = model.graph.nodes.len();
+            std::hint::black_box(plan);
         }
         let m: Vec<f64> = t.into_iter().map(median).collect();
+        let per10k = if nodes > 0 { m[6] * 10_000.0 / nodes as f64 } else { 0.0 };
         println!(
-            "{:<22} {:>9.1} {:>9.1} {:>9.1} {:>9.1} {:>9.1}",
-            name, m[0], m[1], m[2], m[3], m[4]
+            "{:<22} {:>9.1} {:>9.1} {:>9.1} {:>9.1} {:>9.1} {:>9.1} {:>9.1} {:>12.1}",
+            name, m[0], m[1], m[2], m[3], m[4], m[5], m[6], per10k
         );
     }
 }

@@ -63,6 +63,9 @@ pub struct ModelArgs {
     /// Fix an input's shape, e.g. `--input image=1x3x224x224` (repeatable).
     #[arg(long = "input", value_name = "NAME=SHAPE")]
     pub inputs: Vec<String>,
+    /// Trip count of a Loop node whose count is not a constant, e.g. `--loop-trips decode=32`.
+    #[arg(long = "loop-trips", value_name = "NODE=N")]
+    pub loop_trips: Vec<String>,
 }
 
 impl ModelArgs {
@@ -73,6 +76,9 @@ impl ModelArgs {
         }
         for i in &self.inputs {
             o.add_input(i)?;
+        }
+        for t in &self.loop_trips {
+            o.add_loop_trips(t)?;
         }
         Ok(o)
     }

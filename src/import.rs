@@ -27,6 +27,8 @@ pub const MAX_FUNCTION_DEPTH: usize = 8;
 pub struct Overrides {
     pub dims: BTreeMap<String, u64>,
     pub inputs: BTreeMap<String, Vec<Dim>>,
+    /// `--loop-trips NODE=N`: trip counts for Loop nodes whose count is not a constant.
+    pub loop_trips: BTreeMap<String, u64>,
 }
 
 impl Overrides {
@@ -43,6 +45,20 @@ impl Overrides {
             return Err(SettingError(format!("--dim `{text}`: empty name")));
         }
         self.dims.insert(name.trim().to_string(), v);
+        Ok(())
+    }
+
+    /// Parses `NODE=N` for `--loop-trips`.
+    pub fn add_loop_trips(&mut self, text: &str) -> Result<(), SettingError> {
+        let (name, value) = text
+            .split_once('=')
+            .ok_or_else(|| SettingError(format!("--loop-trips `{text}`: expected NODE=N")))?;
+        let v: u64 = value.trim().parse().map_err(|_| {
+            SettingError(format!(
+                "--loop-trips `{text}`: `{value}` is not a non-negative integer"
+            ))
+        })?;
+        self.loop_trips.insert(name.trim().to_string(), v);
         Ok(())
     }
 
@@ -133,6 +149,26 @@ pub fn import(loaded: &LoadedModel, overrides: &Overrides) -> Result<(Model, Vec
             ));
         }
     }
+    fn loop_names(g: &Graph, out: &mut BTreeSet<String>) {
+        for n in &g.nodes {
+            if n.op_type == "Loop" {
+                out.insert(n.name.clone());
+            }
+            for b in &n.bodies {
+                loop_names(&b.graph, out);
+            }
+        }
+    }
+    let mut loops = BTreeSet::new();
+    loop_names(&graph, &mut loops);
+    for name in overrides.loop_trips.keys() {
+        if !loops.contains(name) {
+            return Err(ReadError::invalid(
+                &loaded.path,
+                format!("--loop-trips names `{name}`, which is not a Loop node of the model"),
+            ));
+        }
+    }
     let mut functions: Vec<String> = proto.functions.iter().map(|f| qualified(&f.domain, &f.name)).collect();
     functions.sort();
     let model = Model {
@@ -144,6 +180,7 @@ pub fn import(loaded: &LoadedModel, overrides: &Overrides) -> Result<(Model, Vec
         opsets,
         graph,
         functions,
+        loop_trips: overrides.loop_trips.clone(),
     };
     Ok((model, cx.diags))
 }

@@ -16,11 +16,13 @@ pub type UnknownReasons = BTreeMap<ValueId, String>;
 /// Infers facts and costs for the whole model in place.
 pub fn infer(model: &mut Model, diags: &mut Vec<Diagnostic>) -> UnknownReasons {
     let opsets = model.opsets.clone();
+    let trips = model.loop_trips.clone();
     let mut unknown_ops: BTreeMap<(String, String), (usize, String)> = BTreeMap::new();
     let mut reasons = UnknownReasons::new();
     infer_graph(
         &mut model.graph,
         &opsets,
+        &trips,
         &HashMap::new(),
         diags,
         &mut unknown_ops,
@@ -83,6 +85,7 @@ fn is_const_kind(k: ValueKind) -> bool {
 fn infer_graph(
     g: &mut Graph,
     opsets: &BTreeMap<String, i64>,
+    trips: &BTreeMap<String, u64>,
     outer: &OuterFacts,
     diags: &mut Vec<Diagnostic>,
     unknown_ops: &mut BTreeMap<(String, String), (usize, String)>,
@@ -137,7 +140,7 @@ fn infer_graph(
             let mut bodies = std::mem::take(&mut g.nodes[ni].bodies);
             for b in &mut bodies {
                 seed_body_inputs(&mut b.graph, &op, &input_facts, num_scan);
-                infer_graph(&mut b.graph, opsets, &scope, diags, unknown_ops, None);
+                infer_graph(&mut b.graph, opsets, trips, &scope, diags, unknown_ops, None);
                 body_outputs.push(
                     b.graph
                         .outputs
@@ -165,6 +168,7 @@ fn infer_graph(
                 .collect(),
             opset,
             body_outputs,
+            loop_trips: trips.get(&node.name).copied(),
         };
         let (facts, failure): (Vec<Fact>, Option<String>) = match def {
             Some(d) => match (d.infer)(&ctx) {
@@ -386,7 +390,8 @@ fn node_cost(ctx: &Ctx, rule: Option<CostRule>, outs: &[Fact], bodies: &[MacsOps
             "Loop" => ctx
                 .konst(0)
                 .and_then(|c| c.as_ints().first().copied())
-                .map(|t| t.max(0) as u64),
+                .map(|t| t.max(0) as u64)
+                .or(ctx.loop_trips),
             "Scan" => outs
                 .iter()
                 .skip(ctx.node.inputs.len())
@@ -411,6 +416,13 @@ fn node_cost(ctx: &Ctx, rule: Option<CostRule>, outs: &[Fact], bodies: &[MacsOps
         ops_ = ops_.zip(pick(|b| b.1)).and_then(|(a, b)| a.checked_add(b));
     }
     let mut needs = Vec::new();
+    if ctx.node.op_type == "Loop"
+        && (macs.is_none() || ops_.is_none())
+        && ctx.konst(0).is_none()
+        && ctx.loop_trips.is_none()
+    {
+        needs.push(format!("trips@{}", ctx.node.name));
+    }
     if macs.is_none() || ops_.is_none() {
         for f in ctx.inputs.iter().flatten().copied().chain(outs.iter()) {
             needs.extend(f.shape.symbols());

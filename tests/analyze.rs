@@ -343,3 +343,61 @@ fn bad_analyze_arguments() {
     assert_eq!(code, 2);
     assert_fails_cleanly(&["analyze", "/nonexistent.onnx"], "/nonexistent.onnx");
 }
+
+#[test]
+fn sample_min_cuts_agree_with_petgraph_on_the_same_network() {
+    // The network built from the reported costs, solved by petgraph's Ford–Fulkerson (a
+    // general-purpose reference library), gives the same min-cut value as tilecut's Dinic.
+    for (_, name) in samples() {
+        let a = tilecut::analyze_stages(
+            &sample(&name),
+            &Default::default(),
+            tilecut::target::load("compact-array").expect("t"),
+            &Default::default(),
+        )
+        .expect("analyzes");
+        let g = &a.read.model.graph;
+        let none = vec![false; g.nodes.len()];
+        let (net, s, t) = tilecut::cut::network(g, &a.costs, &none, &none);
+        let mut pg = petgraph::Graph::<(), u64>::new();
+        let idx: Vec<_> = (0..net.vertices()).map(|_| pg.add_node(())).collect();
+        for &(u, v, c) in net.edges() {
+            pg.add_edge(idx[u as usize], idx[v as usize], c);
+        }
+        let (value, _) = petgraph::algo::ford_fulkerson(&pg, idx[s], idx[t]);
+        assert_eq!(value, a.plan.mincut_ps, "{name}");
+    }
+}
+
+#[test]
+fn renaming_nodes_leaves_cost_and_structure_unchanged() {
+    let m = sample("fruit_grader_qdq_int8.onnx");
+    let bytes = std::fs::read(&m).expect("read");
+    let mut proto = <tilecut::onnx::ModelProto as prost::Message>::decode(bytes::Bytes::from(bytes)).expect("decode");
+    for (i, n) in proto.graph.as_mut().expect("graph").node.iter_mut().enumerate() {
+        n.name = format!("renamed_{}", 1000 - i);
+    }
+    let d = tempfile::tempdir().expect("tmp");
+    let p = d.path().join("renamed.onnx");
+    std::fs::write(&p, prost::Message::encode_to_vec(&proto)).expect("write");
+    let x = json(&["analyze", m.to_str().expect("utf8"), "--format", "json"]);
+    let y = json(&["analyze", p.to_str().expect("utf8"), "--format", "json"]);
+    for k in [
+        "objective_us",
+        "mincut_us",
+        "boundary_bytes",
+        "accel_partitions",
+        "transfers",
+    ] {
+        assert_eq!(x["summary"][k], y["summary"][k], "{k}");
+    }
+    let sizes = |r: &serde_json::Value| {
+        r["partitions"]
+            .as_array()
+            .expect("p")
+            .iter()
+            .map(|p| (p["side"].clone(), p["nodes"].as_array().map(|n| n.len())))
+            .collect::<Vec<_>>()
+    };
+    assert_eq!(sizes(&x), sizes(&y));
+}

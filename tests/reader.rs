@@ -443,3 +443,44 @@ fn output_is_deterministic() {
     let b = run(&["inspect", p.to_str().expect("utf8"), "--format", "json"]).1;
     assert_eq!(a, b);
 }
+
+#[test]
+fn loop_trip_counts_come_from_the_model_or_the_user() {
+    use tilecut::ir::DType;
+    use tilecut::onnx::builder::{attr, f32_tensor, GraphBuilder, ModelBuilder};
+    let d = tmp();
+    // A Loop whose trip count M is a graph input: its cost is unknown until --loop-trips.
+    let mut m = ModelBuilder::new("loop", 17);
+    m.graph.input("m", DType::I64, &[]);
+    m.graph.input("cond", DType::Bool, &[]);
+    m.graph.input("x", DType::F32, &[1.into(), 8.into()]);
+    m.graph.initializer(f32_tensor("w", &[8, 8], &[0.5; 64]));
+    let mut body = GraphBuilder::new("step");
+    body.input("i", DType::I64, &[]);
+    body.input("c", DType::Bool, &[]);
+    body.input("s", DType::F32, &[1.into(), 8.into()]);
+    body.node("Identity", &["c"], &["c_out"]);
+    body.node("MatMul", &["s", "w"], &["s_out"]);
+    body.output("c_out", DType::Bool, &[]);
+    body.output("s_out", DType::F32, &[1.into(), 8.into()]);
+    m.graph
+        .node("Loop", &["m", "cond", "x"], &["y"])
+        .attribute
+        .push(attr::graph("body", body.graph));
+    m.graph.output("y", DType::F32, &[1.into(), 8.into()]);
+    let p = d.path().join("loop.onnx");
+    std::fs::write(&p, m.encode()).expect("write");
+    let ps = p.to_str().expect("utf8");
+    let v: serde_json::Value = serde_json::from_str(&run(&["inspect", ps, "--format", "json"]).1).expect("json");
+    assert!(v["model"]["macs"].is_null());
+    assert_eq!(v["model"]["unknown_because"], serde_json::json!(["trips@loop_1"]));
+    let v: serde_json::Value =
+        serde_json::from_str(&run(&["inspect", ps, "--format", "json", "--loop-trips", "loop_1=3"]).1).expect("json");
+    // 3 trips × MatMul [1,8]×[8,8] = 3 · 64 MACs.
+    assert_eq!(v["model"]["macs"], 192);
+    assert_fails_cleanly(&["inspect", ps, "--loop-trips", "nothing=3"], "not a Loop node");
+    assert_fails_cleanly(
+        &["inspect", ps, "--loop-trips", "loop_1=x"],
+        "not a non-negative integer",
+    );
+}

@@ -404,6 +404,8 @@ pub struct Model {
     pub opsets: BTreeMap<String, i64>,
     pub graph: Graph,
     pub functions: Vec<String>,
+    /// Trip counts given by the user for Loop nodes, by node name.
+    pub loop_trips: BTreeMap<String, u64>,
 }
 
 impl Model {

@@ -49,7 +49,10 @@ fn if_(ctx: &Ctx) -> Inferred {
 fn loop_(ctx: &Ctx) -> Inferred {
     let body = ctx.body_outputs.first().ok_or("Loop without body")?;
     let carried = ctx.node.inputs.len().saturating_sub(2);
-    let trips = ctx.konst(0).and_then(|c| c.as_ints().first().copied());
+    let trips = ctx
+        .konst(0)
+        .and_then(|c| c.as_ints().first().copied())
+        .or(ctx.loop_trips.map(|t| t as i64));
     let mut outs = Vec::with_capacity(ctx.outputs());
     for i in 0..ctx.outputs() {
         // Body outputs: cond, carried..., scan outputs...

@@ -37,6 +37,8 @@ pub struct Ctx<'a> {
     pub opset: i64,
     /// Facts inferred for each body's outputs (If/Loop/Scan), in body order.
     pub body_outputs: Vec<Vec<Fact>>,
+    /// A Loop's trip count from `--loop-trips`, when its `M` input is not a constant.
+    pub loop_trips: Option<u64>,
 }
 
 /// An inference outcome for one node: the output facts, or why they are unknown.

@@ -10,6 +10,7 @@ pub mod infer;
 pub mod ir;
 pub mod onnx;
 pub mod ops;
+pub mod policy;
 pub mod quant;
 pub mod report;
 pub mod rules;

@@ -404,11 +404,15 @@ fn renaming_nodes_leaves_cost_and_structure_unchanged() {
 
 #[test]
 fn analyze_json_matches_the_committed_schema() {
-    let schema: serde_json::Value = serde_json::from_str(include_str!("../schemas/analyze.schema.json")).expect("schema parses");
+    let schema: serde_json::Value =
+        serde_json::from_str(include_str!("../schemas/analyze.schema.json")).expect("schema parses");
     let validator = jsonschema::validator_for(&schema).expect("schema compiles");
     for (_, name) in samples() {
         let r = json(&["analyze", sample(&name).to_str().expect("utf8"), "--format", "json"]);
-        let errors: Vec<String> = validator.iter_errors(&r).map(|e| format!("{} at {}", e, e.instance_path)).collect();
+        let errors: Vec<String> = validator
+            .iter_errors(&r)
+            .map(|e| format!("{} at {}", e, e.instance_path))
+            .collect();
         assert!(errors.is_empty(), "{name}: {errors:?}");
     }
 }

@@ -26,6 +26,12 @@ pub enum Command {
     Analyze(AnalyzeArgs),
     /// List the built-in target profiles, or print one as a starting template.
     Targets(TargetsArgs),
+    /// Gate merges on offload coverage: check models against a policy file. Exit 0 when all
+    /// limits hold, 1 when one is violated, 2 when a model or the policy could not be used.
+    Check(CheckArgs),
+    /// Compare two models or two saved `analyze --format json` reports: placement changes,
+    /// partitions, and every summary figure.
+    Diff(DiffArgs),
     /// Explain one node's verdict (or the node producing a tensor): bundle, types, shapes,
     /// and every rule consulted.
     Explain(ExplainArgs),
@@ -144,4 +150,75 @@ pub struct ExplainArgs {
     pub node: String,
     #[command(flatten)]
     pub target: TargetArgs,
+}
+
+#[derive(Args, Debug)]
+pub struct CheckArgs {
+    /// Models to check.
+    #[arg(required_unless_present = "init")]
+    pub models: Vec<PathBuf>,
+    /// The policy file (TOML; `--init` prints a commented template).
+    #[arg(long, required_unless_present = "init")]
+    pub policy: Option<PathBuf>,
+    /// Print a commented policy template and exit.
+    #[arg(long)]
+    pub init: bool,
+    /// Target for every model (overrides the policy's).
+    #[arg(long)]
+    pub target: Option<String>,
+    /// Fix a symbolic dimension (overrides the policy's dims).
+    #[arg(long = "dim", value_name = "NAME=VALUE")]
+    pub dims: Vec<String>,
+    #[arg(long)]
+    pub min_coverage_macs: Option<f64>,
+    #[arg(long)]
+    pub min_coverage_nodes: Option<f64>,
+    #[arg(long)]
+    pub max_accel_partitions: Option<u64>,
+    #[arg(long)]
+    pub max_boundary_bytes: Option<u64>,
+    #[arg(long)]
+    pub max_transfers: Option<u64>,
+    #[arg(long)]
+    pub max_latency_us: Option<f64>,
+    /// Write the current figures as a baseline file.
+    #[arg(long, value_name = "FILE")]
+    pub save_baseline: Option<PathBuf>,
+    /// Fail on regressions against this baseline (tolerances from the policy).
+    #[arg(long, value_name = "FILE")]
+    pub baseline: Option<PathBuf>,
+    /// Append a Markdown summary to this file (for CI job summaries).
+    #[arg(long, value_name = "PATH")]
+    pub summary_file: Option<PathBuf>,
+    /// Write JUnit XML here.
+    #[arg(long, value_name = "FILE")]
+    pub junit: Option<PathBuf>,
+    /// Write SARIF 2.1.0 here.
+    #[arg(long, value_name = "FILE")]
+    pub sarif: Option<PathBuf>,
+    /// Output format on stdout.
+    #[arg(long, value_enum, default_value_t = Format::Table)]
+    pub format: Format,
+}
+
+#[derive(Args, Debug)]
+pub struct DiffArgs {
+    /// The old model or saved JSON report.
+    pub old: PathBuf,
+    /// The new model or saved JSON report.
+    pub new: PathBuf,
+    #[command(flatten)]
+    pub target: TargetArgs,
+    /// Fix a symbolic dimension of both models.
+    #[arg(long = "dim", value_name = "NAME=VALUE")]
+    pub dims: Vec<String>,
+    /// Exit 1 when the policy's regression rules are broken (needs --policy).
+    #[arg(long, requires = "policy")]
+    pub fail_on_regression: bool,
+    /// Policy whose [regression] rules apply.
+    #[arg(long)]
+    pub policy: Option<PathBuf>,
+    /// Output format.
+    #[arg(long, value_enum, default_value_t = Format::Table)]
+    pub format: Format,
 }

@@ -32,6 +32,161 @@ fn main() -> ExitCode {
     }
 }
 
+fn read_text(path: &std::path::Path) -> anyhow::Result<String> {
+    std::fs::read_to_string(path).with_context(|| format!("{}: cannot read", path.display()))
+}
+
+fn run_check(args: tilecut::cli::CheckArgs) -> anyhow::Result<u8> {
+    use tilecut::report::check;
+    if args.init {
+        std::io::stdout()
+            .lock()
+            .write_all(tilecut::policy::TEMPLATE.as_bytes())?;
+        return Ok(0);
+    }
+    let policy_path = args
+        .policy
+        .clone()
+        .ok_or_else(|| anyhow::anyhow!("--policy FILE is required"))?;
+    let policy = tilecut::policy::parse(&read_text(&policy_path)?, &policy_path.display().to_string())?;
+    let mut cli = tilecut::policy::Limits {
+        target: args.target.clone(),
+        min_coverage_macs: args.min_coverage_macs,
+        min_coverage_nodes: args.min_coverage_nodes,
+        max_accel_partitions: args.max_accel_partitions,
+        max_boundary_bytes: args.max_boundary_bytes,
+        max_transfers: args.max_transfers,
+        max_latency_us: args.max_latency_us,
+        ..Default::default()
+    };
+    for (k, v) in [
+        ("--min-coverage-macs", args.min_coverage_macs),
+        ("--min-coverage-nodes", args.min_coverage_nodes),
+    ] {
+        if v.is_some_and(|x| !(0.0..=1.0).contains(&x)) {
+            anyhow::bail!("{k}: coverage is a fraction from 0 to 1");
+        }
+    }
+    if !args.dims.is_empty() {
+        let mut o = tilecut::Overrides::default();
+        for d in &args.dims {
+            o.add_dim(d)?;
+        }
+        let mut dims = policy.defaults.dims.clone().unwrap_or_default();
+        dims.extend(o.dims);
+        cli.dims = Some(dims);
+    }
+    if let Some(t) = &args.target {
+        tilecut::target::load(t)?;
+    }
+    let baseline = match &args.baseline {
+        None => None,
+        Some(p) => Some(
+            serde_json::from_str::<tilecut::policy::Baseline>(&read_text(p)?)
+                .map_err(|e| anyhow::anyhow!("{}: not a tilecut baseline: {e}", p.display()))?,
+        ),
+    };
+    let req = tilecut::gate::CheckRequest {
+        models: &args.models,
+        policy: &policy,
+        policy_name: policy_path.display().to_string(),
+        cli,
+        baseline,
+    };
+    let (report, measured) = tilecut::gate::check(&req);
+    let mut buf = Vec::new();
+    match args.format {
+        Format::Json => check::render_json(&report, &mut buf)?,
+        Format::Table => check::render_table(&report, &mut buf)?,
+        Format::Markdown => check::render_markdown(&report, &mut buf)?,
+    }
+    if let Some(p) = &args.junit {
+        let mut x = Vec::new();
+        check::render_junit(&report, &mut x)?;
+        write_atomic(p, &x).with_context(|| format!("{}: cannot write", p.display()))?;
+    }
+    if let Some(p) = &args.sarif {
+        let mut x = Vec::new();
+        check::render_sarif(&report, &mut x)?;
+        write_atomic(p, &x).with_context(|| format!("{}: cannot write", p.display()))?;
+    }
+    if let Some(p) = &args.save_baseline {
+        let x = serde_json::to_vec_pretty(&measured)?;
+        write_atomic(p, &x).with_context(|| format!("{}: cannot write", p.display()))?;
+    }
+    if let Some(p) = &args.summary_file {
+        let mut x = Vec::new();
+        check::render_markdown(&report, &mut x)?;
+        let mut f = std::fs::OpenOptions::new()
+            .create(true)
+            .append(true)
+            .open(p)
+            .with_context(|| format!("{}: cannot open for appending", p.display()))?;
+        f.write_all(&x)
+            .with_context(|| format!("{}: cannot write", p.display()))?;
+    }
+    std::io::stdout().lock().write_all(&buf)?;
+    for f in &report.failures {
+        eprintln!("tilecut: error: {}", f.error);
+    }
+    Ok(report.exit_code())
+}
+
+fn run_diff(args: tilecut::cli::DiffArgs) -> anyhow::Result<u8> {
+    let mut o = tilecut::Overrides::default();
+    for d in &args.dims {
+        o.add_dim(d)?;
+    }
+    let policy = match &args.policy {
+        Some(p) => Some(tilecut::policy::parse(&read_text(p)?, &p.display().to_string())?),
+        None => None,
+    };
+    let old = tilecut::gate::diff_side(&args.old, &args.target.target, &o).map_err(|e| anyhow::anyhow!(e))?;
+    let new = tilecut::gate::diff_side(&args.new, &args.target.target, &o).map_err(|e| anyhow::anyhow!(e))?;
+    let d = tilecut::gate::diff(&old, &new, policy.as_ref().map(|p| &p.regression));
+    let mut buf = Vec::new();
+    match args.format {
+        Format::Json => {
+            serde_json::to_writer_pretty(&mut buf, &d)?;
+            buf.push(b'\n');
+        }
+        _ => {
+            use std::fmt::Write as _;
+            let mut s = String::new();
+            let _ = writeln!(s, "{} → {}", d.old, d.new);
+            for c in &d.placement_changes {
+                let side = |x: Option<tilecut::cut::Side>| {
+                    x.map(|v| format!("{v:?}").to_lowercase())
+                        .unwrap_or_else(|| "absent".into())
+                };
+                let _ = writeln!(
+                    s,
+                    "  {}: {} → {}{}",
+                    c.node,
+                    side(c.old),
+                    side(c.new),
+                    c.why.as_ref().map(|w| format!(" ({w})")).unwrap_or_default()
+                );
+            }
+            let _ = writeln!(s, "  accelerator partitions {:+}", d.partitions_added);
+            for f in &d.figures {
+                let _ = writeln!(
+                    s,
+                    "  {:<16} {:>14.4} → {:>14.4} ({:+.4})",
+                    f.figure, f.old, f.new, f.delta
+                );
+            }
+            for r in d.regressions.iter().filter(|r| !r.passed) {
+                let _ = writeln!(s, "  REGRESSION {}: {}", r.rule, r.message);
+            }
+            buf.extend_from_slice(s.as_bytes());
+        }
+    }
+    std::io::stdout().lock().write_all(&buf)?;
+    let regressed = d.regressions.iter().any(|r| !r.passed);
+    Ok(if args.fail_on_regression && regressed { 1 } else { 0 })
+}
+
 fn is_broken_pipe(e: &anyhow::Error) -> bool {
     e.chain().any(|c| {
         c.downcast_ref::<std::io::Error>()
@@ -102,6 +257,8 @@ fn run(cli: Cli) -> anyhow::Result<u8> {
             std::io::stdout().lock().write_all(out.as_bytes())?;
             Ok(0)
         }
+        Command::Check(args) => run_check(args),
+        Command::Diff(args) => run_diff(args),
         Command::Explain(args) => {
             let overrides = args.model.overrides()?;
             let target = tilecut::target::load(&args.target.target)?;

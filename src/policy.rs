@@ -388,7 +388,10 @@ pub fn evaluate(r: &AnalyzeReport, e: &Effective) -> Vec<Outcome> {
                         .find(|n| n.name == off[0])
                         .and_then(|n| n.reasons.iter().find(|x| x.blocking))
                         .map(|x| format!(": {}", x.message))
-                        .unwrap_or_default();
+                        .unwrap_or_else(|| {
+                            ": the target can run it, but the cut keeps it on the CPU (cheaper there by the cost model)"
+                                .into()
+                        });
                     format!("{} {op} node(s) stay on the CPU, e.g. `{}`{why}", off.len(), off[0])
                 },
             );

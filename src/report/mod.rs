@@ -2,6 +2,7 @@
 //! format. Only this module (and `main` for errors) writes to stdout.
 
 pub mod analyze;
+pub mod check;
 pub mod explain;
 pub mod inspect;
 

@@ -125,6 +125,15 @@ pub struct AnalyzeArgs {
     /// Force matching nodes onto the accelerator (repeatable); impossible pins are errors.
     #[arg(long = "pin-accel", value_name = "PATTERN")]
     pub pin_accel: Vec<String>,
+    /// Cap the array budget at N columns, to see what fits in fewer columns and at what cost.
+    #[arg(long, value_name = "N", value_parser = clap::value_parser!(u32).range(1..))]
+    pub columns: Option<u32>,
+    /// Also write a Graphviz DOT file of the partitioned graph (one cluster per partition).
+    #[arg(long, value_name = "FILE")]
+    pub dot: Option<PathBuf>,
+    /// Also write a self-contained HTML page with the lanes, the array grid and the figures.
+    #[arg(long, value_name = "FILE")]
+    pub html: Option<PathBuf>,
 }
 
 #[derive(Args, Debug)]

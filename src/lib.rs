@@ -9,6 +9,7 @@ pub mod gate;
 pub mod import;
 pub mod infer;
 pub mod ir;
+pub mod map;
 pub mod onnx;
 pub mod ops;
 pub mod policy;
@@ -63,6 +64,8 @@ pub enum AnalyzeError {
 pub struct AnalyzeOptions {
     pub strategy: cut::Strategy,
     pub pins: cut::Pins,
+    /// `--columns N`: the column budget for the mapping.
+    pub columns: Option<u32>,
 }
 
 impl Default for AnalyzeOptions {
@@ -70,6 +73,7 @@ impl Default for AnalyzeOptions {
         AnalyzeOptions {
             strategy: cut::Strategy::Mincut,
             pins: cut::Pins::default(),
+            columns: None,
         }
     }
 }
@@ -83,6 +87,7 @@ pub struct Analysis {
     pub plan: cut::Plan,
     pub greedy: cut::Plan,
     pub cpu_only: cut::Plan,
+    pub array: map::ArrayUse,
 }
 
 /// read → judge → cost → cut (all three strategies).
@@ -99,6 +104,7 @@ pub fn analyze_stages(
     let plan = cut::plan(g, &verdicts, &costs, opts.strategy, &opts.pins)?;
     let greedy = cut::plan(g, &verdicts, &costs, cut::Strategy::Greedy, &opts.pins)?;
     let cpu_only = cut::plan(g, &verdicts, &costs, cut::Strategy::Cpu, &opts.pins)?;
+    let array = map::map(g, &costs, &plan, &target, opts.columns);
     Ok(Analysis {
         read,
         target,
@@ -107,6 +113,7 @@ pub fn analyze_stages(
         plan,
         greedy,
         cpu_only,
+        array,
     })
 }
 
@@ -123,6 +130,7 @@ impl Analysis {
             plan: &self.plan,
             greedy: &self.greedy,
             cpu_only: &self.cpu_only,
+            array: &self.array,
             params: ins.model.params,
             warnings,
         })

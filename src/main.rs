@@ -217,9 +217,20 @@ fn run(cli: Cli) -> anyhow::Result<u8> {
                     cpu: args.pin_cpu.clone(),
                     accel: args.pin_accel.clone(),
                 },
+                columns: args.columns,
             };
             let analysis = tilecut::analyze_stages(&args.model.model, &overrides, target, &opts)?;
             let report = analysis.report();
+            if let Some(p) = &args.dot {
+                let mut x = Vec::new();
+                tilecut::report::visual::render_dot(&analysis, &mut x)?;
+                write_atomic(p, &x).with_context(|| format!("{}: cannot write", p.display()))?;
+            }
+            if let Some(p) = &args.html {
+                let mut x = Vec::new();
+                tilecut::report::visual::render_html(&analysis, &mut x)?;
+                write_atomic(p, &x).with_context(|| format!("{}: cannot write", p.display()))?;
+            }
             let mut buf = Vec::new();
             match args.format {
                 Format::Json => analyze::render_json(&report, &mut buf)?,

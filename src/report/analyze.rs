@@ -109,6 +109,23 @@ pub struct PartitionRow {
     pub tiles: Option<u64>,
     pub dispatch_us: f64,
     pub est_latency_us: f64,
+    /// How an accelerator partition occupies the array (null for CPU partitions).
+    pub mapping: Option<MappingRow>,
+}
+
+#[derive(Serialize, Debug, Clone)]
+pub struct MappingRow {
+    pub stages: usize,
+    pub bound: crate::map::Bound,
+    pub local_bytes: u64,
+    pub buffer_bytes: u64,
+    pub streamed_bytes: u64,
+    pub skip_buffer_bytes: u64,
+    pub routed_streams: u64,
+    pub dma_channels_needed: u64,
+    pub pipeline_latency_us: f64,
+    pub throughput_per_s: f64,
+    pub fits: bool,
 }
 
 #[derive(Serialize, Debug, Clone)]
@@ -140,6 +157,13 @@ pub struct Summary {
     pub greedy_us: f64,
     /// Nodes whose work depends on unknown dims (costed as zero work): fix them with --dim.
     pub unknown_cost_nodes: usize,
+    /// Columns the accelerator partitions need, of the budget, and how many stay free.
+    pub columns_budget: u64,
+    pub columns_used: u64,
+    pub columns_free: u64,
+    /// Whether all accelerator partitions fit on the array at once (else swapped per inference).
+    pub resident: bool,
+    pub reconfigure_us: f64,
 }
 
 #[derive(Serialize, Debug, Clone)]
@@ -180,6 +204,7 @@ pub struct Inputs<'a> {
     pub plan: &'a Plan,
     pub greedy: &'a Plan,
     pub cpu_only: &'a Plan,
+    pub array: &'a crate::map::ArrayUse,
     pub params: u64,
     pub warnings: Vec<Diagnostic>,
 }
@@ -203,6 +228,20 @@ fn partition_weight_bytes(g: &Graph, nodes: &[crate::ir::NodeId]) -> u64 {
         }
     }
     total
+}
+
+/// The latency estimate after mapping: the serial objective with each accelerator partition's
+/// node times replaced by its pipeline latency, plus reconfiguration when not resident.
+fn est_latency_us(i: &Inputs) -> f64 {
+    let plan = i.plan;
+    let mut ps = plan.objective_ps;
+    for p in plan.partitions.iter().filter(|p| p.side == Side::Accel) {
+        let serial: u64 = p.nodes.iter().map(|n| i.costs.accel_ps[n.index()].unwrap_or(0)).sum();
+        if let Some(m) = i.array.mappings.iter().find(|m| m.partition == p.id) {
+            ps = ps.saturating_sub(serial).saturating_add(m.latency_ps);
+        }
+    }
+    us(ps.saturating_add(i.array.reconfigure_ps))
 }
 
 pub fn build(i: &Inputs) -> AnalyzeReport {
@@ -274,7 +313,6 @@ pub fn build(i: &Inputs) -> AnalyzeReport {
         });
     }
     let t = i.target;
-    let rows = t.file.array.compute_rows as u64;
     let partitions = plan
         .partitions
         .iter()
@@ -314,14 +352,14 @@ pub fn build(i: &Inputs) -> AnalyzeReport {
                     }
                 })
                 .sum();
-            let (columns, tiles, dispatch) = if p.side == Side::Accel {
-                // First estimate: enough tiles to hold the resident weights, at least one.
-                let tiles = wb
-                    .div_ceil(t.file.array.compute_tile.local_memory_bytes)
-                    .clamp(1, t.compute_tiles());
-                (Some(tiles.div_ceil(rows)), Some(tiles), i.costs.dispatch_ps)
-            } else {
-                (None, None, 0)
+            let m = i.array.mappings.iter().find(|m| m.partition == p.id);
+            let (columns, tiles, dispatch) = match m {
+                Some(m) if p.side == Side::Accel => (Some(m.columns), Some(m.tiles), i.costs.dispatch_ps),
+                _ => (None, None, 0),
+            };
+            let node_ps = match m {
+                Some(m) if p.side == Side::Accel => m.latency_ps,
+                _ => node_ps,
             };
             PartitionRow {
                 id: p.id,
@@ -335,6 +373,19 @@ pub fn build(i: &Inputs) -> AnalyzeReport {
                 tiles,
                 dispatch_us: us(dispatch),
                 est_latency_us: us(node_ps.saturating_add(dispatch)),
+                mapping: m.filter(|_| p.side == Side::Accel).map(|m| MappingRow {
+                    stages: m.stages.len(),
+                    bound: m.bound,
+                    local_bytes: m.local_bytes,
+                    buffer_bytes: m.buffer_bytes,
+                    streamed_bytes: m.streamed_bytes,
+                    skip_buffer_bytes: m.skip_buffer_bytes,
+                    routed_streams: m.routed_streams,
+                    dma_channels_needed: m.dma_channels_needed,
+                    pipeline_latency_us: us(m.latency_ps),
+                    throughput_per_s: m.throughput_per_s,
+                    fits: m.fits,
+                }),
             }
         })
         .collect();
@@ -418,10 +469,15 @@ pub fn build(i: &Inputs) -> AnalyzeReport {
             transfers: cut_points.len(),
             objective_us: us(plan.objective_ps),
             mincut_us: us(plan.mincut_ps),
-            est_latency_us: us(plan.objective_ps),
+            est_latency_us: est_latency_us(i),
             cpu_only_latency_us: us(i.cpu_only.objective_ps),
             greedy_us: us(i.greedy.objective_ps),
             unknown_cost_nodes: i.costs.unknown_work.len(),
+            columns_budget: i.array.columns_budget,
+            columns_used: i.array.columns_used,
+            columns_free: i.array.columns_free,
+            resident: i.array.resident,
+            reconfigure_us: us(i.array.reconfigure_ps),
         },
         cut_points,
         strategies,

@@ -5,6 +5,7 @@ pub mod analyze;
 pub mod check;
 pub mod explain;
 pub mod inspect;
+pub mod visual;
 
 /// Output formats of the reading commands.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, clap::ValueEnum)]

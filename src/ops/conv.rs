@@ -246,7 +246,7 @@ fn conv_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
         let y = outs.first()?.shape.concrete()?;
         let w = ctx.shape(io.w?).concrete()?;
         // W is [Cout, Cin/group, k...]: every output element takes Cin/group·∏k MACs.
-        count(&y)?.checked_mul(count(&w[1..])?)
+        count(&y)?.checked_mul(count(w.get(1..)?)?)
     })();
     (macs, Some(0))
 }
@@ -256,7 +256,7 @@ fn conv_transpose_macs(ctx: &Ctx, _outs: &[Fact]) -> MacsOps {
         let x = ctx.shape(0).concrete()?;
         let w = ctx.shape(1).concrete()?;
         // W is [Cin, Cout/group, k...]: every input element scatters into Cout/group·∏k outputs.
-        count(&x)?.checked_mul(count(&w[1..])?)
+        count(&x)?.checked_mul(count(w.get(1..)?)?)
     })();
     (macs, Some(0))
 }

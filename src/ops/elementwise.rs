@@ -69,29 +69,34 @@ fn eye_like(ctx: &Ctx) -> Inferred {
 
 fn fold_with(
     ctx: &Ctx,
+    arity: std::ops::RangeInclusive<usize>,
     int_op: fn(&[i64]) -> Option<i64>,
     float_op: fn(&[f64]) -> f64,
     boolean: bool,
 ) -> Option<Vec<ConstValue>> {
     let c = all_consts(ctx)?;
+    if !arity.contains(&c.len()) {
+        return None;
+    }
     Some(vec![fold::elementwise(&c, int_op, float_op, boolean)?])
 }
 
 fn fold_add(ctx: &Ctx) -> Option<Vec<ConstValue>> {
-    fold_with(ctx, |a| a[0].checked_add(a[1]), |a| a[0] + a[1], false)
+    fold_with(ctx, 2..=2, |a| a[0].checked_add(a[1]), |a| a[0] + a[1], false)
 }
 fn fold_sub(ctx: &Ctx) -> Option<Vec<ConstValue>> {
-    fold_with(ctx, |a| a[0].checked_sub(a[1]), |a| a[0] - a[1], false)
+    fold_with(ctx, 2..=2, |a| a[0].checked_sub(a[1]), |a| a[0] - a[1], false)
 }
 fn fold_mul(ctx: &Ctx) -> Option<Vec<ConstValue>> {
-    fold_with(ctx, |a| a[0].checked_mul(a[1]), |a| a[0] * a[1], false)
+    fold_with(ctx, 2..=2, |a| a[0].checked_mul(a[1]), |a| a[0] * a[1], false)
 }
 fn fold_div(ctx: &Ctx) -> Option<Vec<ConstValue>> {
-    fold_with(ctx, |a| fold::trunc_div(a[0], a[1]), |a| a[0] / a[1], false)
+    fold_with(ctx, 2..=2, |a| fold::trunc_div(a[0], a[1]), |a| a[0] / a[1], false)
 }
 fn fold_equal(ctx: &Ctx) -> Option<Vec<ConstValue>> {
     fold_with(
         ctx,
+        2..=2,
         |a| Some((a[0] == a[1]) as i64),
         |a| (a[0] == a[1]) as i64 as f64,
         true,
@@ -100,6 +105,7 @@ fn fold_equal(ctx: &Ctx) -> Option<Vec<ConstValue>> {
 fn fold_less(ctx: &Ctx) -> Option<Vec<ConstValue>> {
     fold_with(
         ctx,
+        2..=2,
         |a| Some((a[0] < a[1]) as i64),
         |a| (a[0] < a[1]) as i64 as f64,
         true,
@@ -108,6 +114,7 @@ fn fold_less(ctx: &Ctx) -> Option<Vec<ConstValue>> {
 fn fold_greater(ctx: &Ctx) -> Option<Vec<ConstValue>> {
     fold_with(
         ctx,
+        2..=2,
         |a| Some((a[0] > a[1]) as i64),
         |a| (a[0] > a[1]) as i64 as f64,
         true,
@@ -116,6 +123,7 @@ fn fold_greater(ctx: &Ctx) -> Option<Vec<ConstValue>> {
 fn fold_min(ctx: &Ctx) -> Option<Vec<ConstValue>> {
     fold_with(
         ctx,
+        1..=usize::MAX,
         |a| a.iter().copied().min(),
         |a| a.iter().copied().fold(f64::INFINITY, f64::min),
         false,
@@ -124,6 +132,7 @@ fn fold_min(ctx: &Ctx) -> Option<Vec<ConstValue>> {
 fn fold_max(ctx: &Ctx) -> Option<Vec<ConstValue>> {
     fold_with(
         ctx,
+        1..=usize::MAX,
         |a| a.iter().copied().max(),
         |a| a.iter().copied().fold(f64::NEG_INFINITY, f64::max),
         false,
@@ -142,10 +151,10 @@ fn fold_where(ctx: &Ctx) -> Option<Vec<ConstValue>> {
     )?])
 }
 fn fold_neg(ctx: &Ctx) -> Option<Vec<ConstValue>> {
-    fold_with(ctx, |a| a[0].checked_neg(), |a| -a[0], false)
+    fold_with(ctx, 1..=1, |a| a[0].checked_neg(), |a| -a[0], false)
 }
 fn fold_abs(ctx: &Ctx) -> Option<Vec<ConstValue>> {
-    fold_with(ctx, |a| a[0].checked_abs(), |a| a[0].abs(), false)
+    fold_with(ctx, 1..=1, |a| a[0].checked_abs(), |a| a[0].abs(), false)
 }
 fn fold_identity(ctx: &Ctx) -> Option<Vec<ConstValue>> {
     Some(vec![ctx.konst(0)?.clone()])

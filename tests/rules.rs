@@ -291,3 +291,42 @@ fn explain_prints_verdict_bundle_and_rules() {
         "no node or tensor named `nothing`",
     );
 }
+
+#[test]
+fn quantized_samples_use_types_their_opset_allows() {
+    // ONNX operator spec, QuantizeLinear/DequantizeLinear: `axis` (per-axis) since opset 13;
+    // int16/uint16 and int4/uint4 types and `block_size` (blocked) since opset 21; int8/uint8
+    // since opset 10. Each quantized sample must import an opset that allows what it uses.
+    for (file, needs) in [
+        ("fruit_grader_qdq_int8.onnx", 13),
+        ("fruit_grader_qdq_per_tensor.onnx", 10),
+        ("fruit_grader_qdq_asymmetric_u8.onnx", 10),
+        ("fruit_grader_qdq_int4_blocked.onnx", 21),
+        ("vibration_monitor_a16w8.onnx", 21),
+        ("parcel_label_detector_qdq.onnx", 13),
+    ] {
+        let a = tilecut::read_model(&sample(file), &Default::default()).expect("reads");
+        assert!(
+            a.model.default_opset() >= needs,
+            "{file}: opset {} < {needs}",
+            a.model.default_opset()
+        );
+        let g = &a.model.graph;
+        let uses: Vec<tilecut::ir::DType> = g
+            .nodes
+            .iter()
+            .filter(|n| n.op_type == "DequantizeLinear")
+            .filter_map(|n| n.inputs[0].and_then(|v| g.value(v).fact.dtype))
+            .collect();
+        assert!(!uses.is_empty(), "{file} has DequantizeLinear nodes");
+        for d in uses {
+            use tilecut::ir::DType::*;
+            let since = match d {
+                I16 | U16 | I4 | U4 => 21,
+                I8 | U8 | I32 => 10,
+                other => panic!("{file}: unexpected quantized type {other}"),
+            };
+            assert!(a.model.default_opset() >= since, "{file}: {d} needs opset {since}");
+        }
+    }
+}

@@ -330,3 +330,68 @@ fn quantized_samples_use_types_their_opset_allows() {
         }
     }
 }
+
+#[test]
+fn weight_only_quantization_and_quantized_graph_inputs() {
+    use prost::Message;
+    use tilecut::ir::DType;
+    use tilecut::onnx::builder::{f32_tensor, int_tensor, ModelBuilder};
+    let d = tempfile::tempdir().expect("tmp");
+    let weights = |m: &mut ModelBuilder| {
+        m.graph.initializer(int_tensor("w_q", DType::I8, &[8, 8], &[3; 64]));
+        m.graph.initializer(f32_tensor("w_s", &[], &[0.05]));
+        m.graph.initializer(int_tensor("w_z", DType::I8, &[], &[0]));
+        m.graph.node("DequantizeLinear", &["w_q", "w_s", "w_z"], &["w"]);
+    };
+    // Weight-only: float activations times dequantized int8 weights stay float on compact-array.
+    let mut m = ModelBuilder::new("weight_only", 17);
+    m.graph.input("x", DType::F32, &[1.into(), 8.into()]);
+    weights(&mut m);
+    m.graph.node("MatMul", &["x", "w"], &["y"]);
+    m.graph.output("y", DType::F32, &[1.into(), 8.into()]);
+    let p = d.path().join("weight_only.onnx");
+    std::fs::write(&p, m.build().encode_to_vec()).expect("write");
+    let a = tilecut::analyze_stages(
+        &p,
+        &Default::default(),
+        tilecut::target::load("compact-array").expect("t"),
+        &Default::default(),
+    )
+    .expect("ok");
+    let g = &a.read.model.graph;
+    let mm = g.node_ids().find(|&i| g.node(i).op_type == "MatMul").expect("matmul");
+    let v = &a.verdicts[mm.index()];
+    assert_eq!(v.signature, "fp32 × int8 → fp32");
+    assert_eq!(v.candidate, Candidate::Cpu);
+    assert!(v.reasons.iter().any(|r| r.code == "float-on-cpu"));
+    // A quantized (int8) graph input and output: the MatMul bundle is int8 × int8 → int8.
+    let mut m = ModelBuilder::new("int8_io", 17);
+    m.graph.input("xq", DType::I8, &[1.into(), 8.into()]);
+    m.graph.initializer(f32_tensor("x_s", &[], &[0.1]));
+    m.graph.initializer(int_tensor("x_z", DType::I8, &[], &[0]));
+    m.graph.node("DequantizeLinear", &["xq", "x_s", "x_z"], &["x"]);
+    weights(&mut m);
+    m.graph.node("MatMul", &["x", "w"], &["y"]);
+    m.graph.node("QuantizeLinear", &["y", "x_s", "x_z"], &["yq"]);
+    m.graph.output("yq", DType::I8, &[1.into(), 8.into()]);
+    let p = d.path().join("int8_io.onnx");
+    std::fs::write(&p, m.build().encode_to_vec()).expect("write");
+    let a = tilecut::analyze_stages(
+        &p,
+        &Default::default(),
+        tilecut::target::load("compact-array").expect("t"),
+        &Default::default(),
+    )
+    .expect("ok");
+    let g = &a.read.model.graph;
+    let mm = g.node_ids().find(|&i| g.node(i).op_type == "MatMul").expect("matmul");
+    let v = &a.verdicts[mm.index()];
+    assert_eq!(v.signature, "int8 × int8 → int8");
+    assert_eq!(v.candidate, Candidate::Accel, "{:?}", v.reasons);
+    assert_eq!(
+        v.bundle.len(),
+        3,
+        "input DQ, weight DQ and output Q fold into the bundle: {:?}",
+        v.bundle
+    );
+}

@@ -32,6 +32,11 @@ pub enum Command {
     /// Compare two models or two saved `analyze --format json` reports: placement changes,
     /// partitions, and every summary figure.
     Diff(DiffArgs),
+    /// Export each partition of the cut as a standalone ONNX model, plus a manifest.
+    Split(SplitArgs),
+    /// Run the original model and the chained pieces of a split on the same seeded random
+    /// inputs and compare every output. Exit 0 equal, 1 mismatch, 2 could not run.
+    Verify(VerifyArgs),
     /// Explain one node's verdict (or the node producing a tensor): bundle, types, shapes,
     /// and every rule consulted.
     Explain(ExplainArgs),
@@ -227,6 +232,50 @@ pub struct DiffArgs {
     /// Policy whose [regression] rules apply.
     #[arg(long)]
     pub policy: Option<PathBuf>,
+    /// Output format.
+    #[arg(long, value_enum, default_value_t = Format::Table)]
+    pub format: Format,
+}
+
+#[derive(Args, Debug)]
+pub struct SplitArgs {
+    #[command(flatten)]
+    pub model: ModelArgs,
+    #[command(flatten)]
+    pub target: TargetArgs,
+    /// Output folder (refused if it exists and is not empty, unless --force).
+    #[arg(long)]
+    pub out: PathBuf,
+    /// Replace an existing non-empty output folder.
+    #[arg(long)]
+    pub force: bool,
+    /// Cut at these tensors instead of the cut-finder's boundaries (repeatable).
+    #[arg(long = "cut-at", value_name = "TENSOR")]
+    pub cut_at: Vec<String>,
+    /// How to choose what runs on the accelerator.
+    #[arg(long, value_enum, default_value_t = crate::cut::Strategy::Mincut)]
+    pub strategy: crate::cut::Strategy,
+    #[arg(long = "pin-cpu", value_name = "PATTERN")]
+    pub pin_cpu: Vec<String>,
+    #[arg(long = "pin-accel", value_name = "PATTERN")]
+    pub pin_accel: Vec<String>,
+}
+
+#[derive(Args, Debug)]
+pub struct VerifyArgs {
+    #[command(flatten)]
+    pub model: ModelArgs,
+    /// The folder `tilecut split` wrote.
+    pub dir: PathBuf,
+    /// Which engine runs the models.
+    #[arg(long, value_enum, default_value_t = crate::verify::Engine::Tract)]
+    pub engine: crate::verify::Engine,
+    /// Relative tolerance for float outputs.
+    #[arg(long, default_value_t = 1e-5)]
+    pub rtol: f64,
+    /// Tolerance in quantization steps for integer outputs.
+    #[arg(long, default_value_t = 1.0)]
+    pub steps: f64,
     /// Output format.
     #[arg(long, value_enum, default_value_t = Format::Table)]
     pub format: Format,

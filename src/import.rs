@@ -214,6 +214,8 @@ impl Cx<'_> {
 struct FlatNode<'a> {
     proto: std::borrow::Cow<'a, onnx::NodeProto>,
     from_function: Option<String>,
+    /// Index of the node in the graph's own node list (the call node, for expanded nodes).
+    source: usize,
 }
 
 /// Free names of a graph: (tensor name, first node reading it).
@@ -447,6 +449,7 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
             bodies,
             captures: caps,
             from_function: n.from_function.clone(),
+            source_index: n.source,
             cost: NodeCost::default(),
             folded: false,
         });
@@ -585,7 +588,7 @@ fn expand_functions<'a>(
     stack: &str,
 ) -> Result<Vec<FlatNode<'a>>, ReadError> {
     let mut out = Vec::with_capacity(nodes.len());
-    for n in nodes {
+    for (source, n) in nodes.iter().enumerate() {
         let called = if cx.functions.is_empty() {
             None
         } else {
@@ -595,6 +598,7 @@ fn expand_functions<'a>(
             out.push(FlatNode {
                 proto: std::borrow::Cow::Borrowed(n),
                 from_function: None,
+                source,
             });
             continue;
         };
@@ -658,6 +662,7 @@ fn expand_functions<'a>(
             out.push(FlatNode {
                 proto: std::borrow::Cow::Owned(flat.proto.into_owned()),
                 from_function: Some(from),
+                source,
             });
         }
     }

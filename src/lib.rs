@@ -19,6 +19,7 @@ pub mod rules;
 pub mod samples;
 pub mod target;
 pub mod values;
+pub mod verify;
 
 use std::path::Path;
 

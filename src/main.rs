@@ -269,6 +269,91 @@ fn run(cli: Cli) -> anyhow::Result<u8> {
             Ok(0)
         }
         Command::Check(args) => run_check(args),
+        Command::Split(args) => {
+            let overrides = args.model.overrides()?;
+            let target = tilecut::target::load(&args.target.target)?;
+            let opts = tilecut::AnalyzeOptions {
+                strategy: args.strategy,
+                pins: tilecut::cut::Pins {
+                    cpu: args.pin_cpu.clone(),
+                    accel: args.pin_accel.clone(),
+                },
+                columns: None,
+            };
+            let analysis = tilecut::analyze_stages(&args.model.model, &overrides, target, &opts)?;
+            let plan = if args.cut_at.is_empty() {
+                analysis.plan.clone()
+            } else {
+                tilecut::cut::plan_at(&analysis.read.model.graph, &analysis.plan, &args.cut_at)?
+            };
+            let loaded = tilecut::onnx::load::load(&args.model.model)?;
+            let (files, manifest) = tilecut::onnx::split::build(&loaded, &analysis.read.model.graph, &plan)?;
+            tilecut::onnx::split::write(
+                &args.out,
+                &files,
+                &manifest,
+                args.force,
+                &mut tilecut::onnx::split::FileSink,
+            )?;
+            let mut out = String::new();
+            for p in &manifest.pieces {
+                out.push_str(&format!(
+                    "{}  {:?}  {} inputs, {} outputs\n",
+                    p.file,
+                    p.side,
+                    p.inputs.len(),
+                    p.outputs.len()
+                ));
+            }
+            out.push_str(&format!(
+                "wrote {} pieces and manifest.json to {}\n",
+                manifest.pieces.len(),
+                args.out.display()
+            ));
+            std::io::stdout().lock().write_all(out.as_bytes())?;
+            Ok(0)
+        }
+        Command::Verify(args) => {
+            let overrides = args.model.overrides()?;
+            let tol = tilecut::verify::Tolerance {
+                relative: args.rtol,
+                steps: args.steps,
+            };
+            let report = match args.engine {
+                tilecut::verify::Engine::Tract => {
+                    tilecut::verify::verify_tract(&args.model.model, &args.dir, &overrides, tol)?
+                }
+                tilecut::verify::Engine::PythonReference => {
+                    tilecut::verify::verify_python(&args.model.model, &args.dir, &overrides, tol)?
+                }
+            };
+            let mut buf = Vec::new();
+            match args.format {
+                Format::Json => {
+                    serde_json::to_writer_pretty(&mut buf, &report)?;
+                    buf.push(b'\n');
+                }
+                _ => {
+                    for o in &report.outputs {
+                        buf.extend_from_slice(
+                            format!(
+                                "{} {} ({}, {} elements): max error {:.3e}, tolerance {:.3e} [{:?}]\n",
+                                if o.equal { "equal   " } else { "MISMATCH" },
+                                o.output,
+                                o.dtype,
+                                o.elements,
+                                o.max_error,
+                                o.tolerance,
+                                report.engine
+                            )
+                            .as_bytes(),
+                        );
+                    }
+                }
+            }
+            std::io::stdout().lock().write_all(&buf)?;
+            Ok(if report.passed { 0 } else { 1 })
+        }
         Command::Diff(args) => run_diff(args),
         Command::Explain(args) => {
             let overrides = args.model.overrides()?;

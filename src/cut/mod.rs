@@ -575,6 +575,83 @@ pub fn plan(g: &Graph, verdicts: &[Verdict], costs: &Costs, strategy: Strategy, 
     }
 }
 
+/// A plan whose boundaries are the user's `--cut-at` tensors: a node's level is the largest
+/// number of cut tensors on a path to it, levels only grow along edges, so grouping nodes by
+/// level (then by connected component) gives convex partitions in a fixed order.
+pub fn plan_at(g: &Graph, base: &Plan, tensors: &[String]) -> Result<Plan, PinError> {
+    let mut cut: BTreeSet<ValueId> = BTreeSet::new();
+    for t in tensors {
+        let v = g
+            .value_by_name(t)
+            .ok_or_else(|| PinError(format!("--cut-at `{t}`: no such tensor")))?;
+        if g.value(v).producer.is_none() {
+            return Err(PinError(format!(
+                "--cut-at `{t}`: a graph input or weight cannot be a cut point"
+            )));
+        }
+        cut.insert(v);
+    }
+    let n = g.nodes.len();
+    let mut level = vec![0usize; n];
+    for i in 0..n {
+        for v in g.nodes[i].all_inputs() {
+            if let Some(p) = g.value(v).producer {
+                let l = level[p.index()] + usize::from(cut.contains(&v));
+                level[i] = level[i].max(l);
+            }
+        }
+    }
+    // Reuse the partitioner by giving alternate levels alternate sides, then relabel: the
+    // partitioner only needs "same side" to mean "same level".
+    let max_level = level.iter().copied().max().unwrap_or(0);
+    let mut parts = Vec::new();
+    let mut partition_of = vec![None; n];
+    for l in 0..=max_level {
+        let side: Vec<Side> = (0..n)
+            .map(|i| {
+                if base.side[i] == Side::Const {
+                    Side::Const
+                } else if level[i] == l {
+                    Side::Accel
+                } else {
+                    Side::Cpu
+                }
+            })
+            .collect();
+        let (ps, _) = partitions(g, &side);
+        for p in ps.into_iter().filter(|p| p.side == Side::Accel) {
+            let id = parts.len();
+            for node in &p.nodes {
+                partition_of[node.index()] = Some(id);
+            }
+            parts.push(Partition {
+                id,
+                side: Side::Cpu,
+                nodes: p.nodes,
+            });
+        }
+    }
+    let side: Vec<Side> = (0..n)
+        .map(|i| {
+            if base.side[i] == Side::Const {
+                Side::Const
+            } else {
+                Side::Cpu
+            }
+        })
+        .collect();
+    Ok(Plan {
+        strategy: base.strategy,
+        side,
+        partitions: parts,
+        partition_of,
+        cut_points: Vec::new(),
+        mincut_ps: base.mincut_ps,
+        objective_ps: base.objective_ps,
+        refinements: 0,
+    })
+}
+
 #[cfg(test)]
 mod tests {
     use super::glob;

@@ -321,6 +321,8 @@ pub struct Node {
     pub captures: Vec<ValueId>,
     /// The model-local function call this node was expanded from, if any.
     pub from_function: Option<String>,
+    /// Index of the file's node this one comes from (the call node, for expanded functions).
+    pub source_index: usize,
     pub cost: NodeCost,
     /// Set when every input is constant and the node was folded (weight-like).
     pub folded: bool,

@@ -56,6 +56,40 @@ pub fn value_info(name: &str, dtype: DType, dims: &[DimSpec]) -> ValueInfoProto 
     }
 }
 
+/// A `ValueInfoProto` from an inferred fact: known dims as values, symbols as params, unknown
+/// dims (and unknown ranks) left open.
+pub fn value_info_fact(name: &str, fact: &crate::ir::Fact) -> ValueInfoProto {
+    let shape = fact.shape.dims().map(|d| TensorShapeProto {
+        dim: d
+            .iter()
+            .map(|x| tensor_shape_proto::Dimension {
+                value: match x {
+                    crate::ir::Dim::Known(v) => Some(tensor_shape_proto::dimension::Value::DimValue(*v as i64)),
+                    // Only plain names go out as dim_param; tilecut's derived and data-dependent
+                    // symbols (`a*b`, `k@node`) are ours alone and stay open.
+                    crate::ir::Dim::Sym(s) if s.chars().all(|c| c.is_alphanumeric() || c == '_') => {
+                        Some(tensor_shape_proto::dimension::Value::DimParam(s.to_string()))
+                    }
+                    crate::ir::Dim::Sym(_) => None,
+                    crate::ir::Dim::Unknown => None,
+                },
+                denotation: String::new(),
+            })
+            .collect(),
+    });
+    ValueInfoProto {
+        name: name.into(),
+        r#type: Some(TypeProto {
+            value: Some(type_proto::Value::TensorType(type_proto::Tensor {
+                elem_type: fact.dtype.map(DType::onnx_code).unwrap_or(0),
+                shape,
+            })),
+            denotation: String::new(),
+        }),
+        ..Default::default()
+    }
+}
+
 /// A tensor whose payload is `raw` (little-endian, sub-byte types packed low nibble first).
 pub fn raw_tensor(name: &str, dtype: DType, dims: &[i64], raw: Vec<u8>) -> TensorProto {
     TensorProto {

@@ -4,6 +4,7 @@
 pub mod builder;
 pub mod load;
 pub mod qdq;
+pub mod split;
 pub mod tensor;
 
 #[allow(clippy::all, missing_docs)]

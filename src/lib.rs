@@ -18,6 +18,7 @@ pub mod report;
 pub mod rules;
 pub mod samples;
 pub mod target;
+pub mod text;
 pub mod values;
 pub mod verify;
 

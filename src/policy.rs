@@ -73,30 +73,12 @@ pub struct PolicyError {
 
 pub const TEMPLATE: &str = include_str!("policy_template.toml");
 
-fn line_col(text: &str, offset: usize) -> (usize, usize) {
-    let before = &text[..offset.min(text.len())];
-    (
-        before.matches('\n').count() + 1,
-        before.len() - before.rfind('\n').map(|i| i + 1).unwrap_or(0) + 1,
-    )
-}
-
 pub fn parse(text: &str, source_name: &str) -> Result<PolicyFile, PolicyError> {
     let err = |message: String| PolicyError {
         source_name: source_name.to_string(),
         message,
     };
-    let p: PolicyFile = toml::from_str(text).map_err(|e| {
-        let msg = e.message().replace('\n', " ");
-        match e.span() {
-            Some(span) => {
-                let (l, c) = line_col(text, span.start);
-                let key = text[span.clone()].lines().next().unwrap_or("").trim().to_string();
-                err(format!("line {l}, column {c} (`{key}`): {msg}"))
-            }
-            None => err(msg),
-        }
-    })?;
+    let p: PolicyFile = toml::from_str(text).map_err(|e| err(crate::text::toml_error(text, &e)))?;
     if p.version != POLICY_VERSION {
         return Err(err(format!(
             "key `version`: this tilecut reads policy version {POLICY_VERSION}, the file has {}",
@@ -145,28 +127,13 @@ pub fn parse(text: &str, source_name: &str) -> Result<PolicyFile, PolicyError> {
     Ok(p)
 }
 
-fn glob(pattern: &str, text: &str) -> bool {
-    if !pattern.contains('*') {
-        return text == pattern || text.ends_with(&format!("/{pattern}"));
+/// A `[[model]] path`: a `*` pattern, or a path or file name matched as a path suffix.
+fn path_matches(pattern: &str, text: &str) -> bool {
+    if pattern.contains('*') {
+        crate::text::glob(pattern, text)
+    } else {
+        text == pattern || text.ends_with(&format!("/{pattern}"))
     }
-    let parts: Vec<&str> = pattern.split('*').collect();
-    let mut rest = text;
-    for (i, p) in parts.iter().enumerate() {
-        if i == 0 {
-            match rest.strip_prefix(p) {
-                Some(r) => rest = r,
-                None => return false,
-            }
-        } else if i == parts.len() - 1 {
-            return rest.ends_with(p);
-        } else {
-            match rest.find(p) {
-                Some(k) => rest = &rest[k + p.len()..],
-                None => return false,
-            }
-        }
-    }
-    true
 }
 
 /// Where a limit came from, for the report.
@@ -205,7 +172,7 @@ pub fn effective(p: &PolicyFile, model_path: &str, cli: &Limits) -> Effective {
         .chain(
             p.models
                 .iter()
-                .filter(|m| glob(&m.path, model_path))
+                .filter(|m| path_matches(&m.path, model_path))
                 .map(|m| (&m.limits, Source::Model)),
         )
         .chain(std::iter::once((cli, Source::CommandLine)))

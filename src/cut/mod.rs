@@ -54,33 +54,9 @@ pub struct Pins {
     pub accel: Vec<String>,
 }
 
-fn glob(pattern: &str, text: &str) -> bool {
-    let parts: Vec<&str> = pattern.split('*').collect();
-    if parts.len() == 1 {
-        return pattern == text;
-    }
-    let mut rest = text;
-    for (i, p) in parts.iter().enumerate() {
-        if i == 0 {
-            match rest.strip_prefix(p) {
-                Some(r) => rest = r,
-                None => return false,
-            }
-        } else if i == parts.len() - 1 {
-            return rest.ends_with(p);
-        } else {
-            match rest.find(p) {
-                Some(k) => rest = &rest[k + p.len()..],
-                None => return false,
-            }
-        }
-    }
-    true
-}
-
 fn pin_matches(pat: &str, g: &Graph, id: NodeId) -> bool {
     let n = g.node(id);
-    glob(pat, &n.name) || n.op_type == pat
+    crate::text::glob(pat, &n.name) || n.op_type == pat
 }
 
 #[derive(Clone, Debug)]
@@ -650,18 +626,4 @@ pub fn plan_at(g: &Graph, base: &Plan, tensors: &[String]) -> Result<Plan, PinEr
         objective_ps: base.objective_ps,
         refinements: 0,
     })
-}
-
-#[cfg(test)]
-mod tests {
-    use super::glob;
-
-    #[test]
-    fn glob_patterns() {
-        assert!(glob("conv*", "conv_12"));
-        assert!(glob("*_head", "box_head"));
-        assert!(glob("a*b*c", "axxbyyc"));
-        assert!(!glob("a*b", "ac"));
-        assert!(glob("exact", "exact"));
-    }
 }

@@ -83,30 +83,13 @@ pub fn load(spec: &str) -> Result<Target, ProfileError> {
     parse(&text, spec)
 }
 
-fn line_of(text: &str, offset: usize) -> (usize, usize) {
-    let before = &text[..offset.min(text.len())];
-    let line = before.matches('\n').count() + 1;
-    let col = before.len() - before.rfind('\n').map(|i| i + 1).unwrap_or(0) + 1;
-    (line, col)
-}
-
 /// Parses and validates profile text; `source_name` names it in errors.
 pub fn parse(text: &str, source_name: &str) -> Result<Target, ProfileError> {
     let err = |message: String| ProfileError {
         source_name: source_name.to_string(),
         message,
     };
-    let file: ProfileFile = toml::from_str(text).map_err(|e| {
-        let msg = e.message().replace('\n', " ");
-        match e.span() {
-            Some(span) => {
-                let (line, col) = line_of(text, span.start);
-                let key = text[span.clone()].lines().next().unwrap_or("").trim().to_string();
-                err(format!("line {line}, column {col} (`{key}`): {msg}"))
-            }
-            None => err(msg),
-        }
-    })?;
+    let file: ProfileFile = toml::from_str(text).map_err(|e| err(crate::text::toml_error(text, &e)))?;
     validate(file, source_name)
 }
 

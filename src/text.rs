@@ -1,0 +1,60 @@
+//! Small text helpers shared by the TOML file readers and the pattern options.
+
+/// A TOML parse error as one line: position, the text at it, and the parser's message.
+pub fn toml_error(text: &str, e: &toml::de::Error) -> String {
+    let msg = e.message().replace('\n', " ");
+    match e.span() {
+        Some(span) => {
+            let before = &text[..span.start.min(text.len())];
+            let line = before.matches('\n').count() + 1;
+            let col = before.len() - before.rfind('\n').map(|i| i + 1).unwrap_or(0) + 1;
+            let key = text
+                .get(span)
+                .and_then(|s| s.lines().next())
+                .unwrap_or("")
+                .trim()
+                .to_string();
+            format!("line {line}, column {col} (`{key}`): {msg}")
+        }
+        None => msg,
+    }
+}
+
+/// `*` wildcard match over the whole text (no other metacharacters).
+pub fn glob(pattern: &str, text: &str) -> bool {
+    let parts: Vec<&str> = pattern.split('*').collect();
+    if parts.len() == 1 {
+        return pattern == text;
+    }
+    let mut rest = text;
+    for (i, p) in parts.iter().enumerate() {
+        if i == 0 {
+            match rest.strip_prefix(p) {
+                Some(r) => rest = r,
+                None => return false,
+            }
+        } else if i == parts.len() - 1 {
+            return rest.ends_with(p);
+        } else {
+            match rest.find(p) {
+                Some(k) => rest = &rest[k + p.len()..],
+                None => return false,
+            }
+        }
+    }
+    true
+}
+
+#[cfg(test)]
+mod tests {
+    use super::glob;
+
+    #[test]
+    fn glob_patterns() {
+        assert!(glob("conv*", "conv_12"));
+        assert!(glob("*_head", "box_head"));
+        assert!(glob("a*b*c", "axxbyyc"));
+        assert!(!glob("a*b", "ac"));
+        assert!(glob("exact", "exact"));
+    }
+}

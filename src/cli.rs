@@ -121,15 +121,8 @@ pub struct AnalyzeArgs {
     /// Output format.
     #[arg(long, value_enum, default_value_t = Format::Table)]
     pub format: Format,
-    /// How to choose what runs on the accelerator.
-    #[arg(long, value_enum, default_value_t = crate::cut::Strategy::Mincut)]
-    pub strategy: crate::cut::Strategy,
-    /// Keep matching nodes on the CPU: a node name, an op type, or a `*` pattern (repeatable).
-    #[arg(long = "pin-cpu", value_name = "PATTERN")]
-    pub pin_cpu: Vec<String>,
-    /// Force matching nodes onto the accelerator (repeatable); impossible pins are errors.
-    #[arg(long = "pin-accel", value_name = "PATTERN")]
-    pub pin_accel: Vec<String>,
+    #[command(flatten)]
+    pub cut: CutArgs,
     /// Cap the array budget at N columns, to see what fits in fewer columns and at what cost.
     #[arg(long, value_name = "N", value_parser = clap::value_parser!(u32).range(1..))]
     pub columns: Option<u32>,
@@ -252,13 +245,8 @@ pub struct SplitArgs {
     /// Cut at these tensors instead of the cut-finder's boundaries (repeatable).
     #[arg(long = "cut-at", value_name = "TENSOR")]
     pub cut_at: Vec<String>,
-    /// How to choose what runs on the accelerator.
-    #[arg(long, value_enum, default_value_t = crate::cut::Strategy::Mincut)]
-    pub strategy: crate::cut::Strategy,
-    #[arg(long = "pin-cpu", value_name = "PATTERN")]
-    pub pin_cpu: Vec<String>,
-    #[arg(long = "pin-accel", value_name = "PATTERN")]
-    pub pin_accel: Vec<String>,
+    #[command(flatten)]
+    pub cut: CutArgs,
 }
 
 #[derive(Args, Debug)]
@@ -279,4 +267,31 @@ pub struct VerifyArgs {
     /// Output format.
     #[arg(long, value_enum, default_value_t = Format::Table)]
     pub format: Format,
+}
+
+/// The cut options shared by `analyze` and `split`.
+#[derive(Args, Debug, Clone)]
+pub struct CutArgs {
+    /// How to choose what runs on the accelerator.
+    #[arg(long, value_enum, default_value_t = crate::cut::Strategy::Mincut)]
+    pub strategy: crate::cut::Strategy,
+    /// Keep matching nodes on the CPU: a node name, an op type, or a `*` pattern (repeatable).
+    #[arg(long = "pin-cpu", value_name = "PATTERN")]
+    pub pin_cpu: Vec<String>,
+    /// Force matching nodes onto the accelerator (repeatable); impossible pins are errors.
+    #[arg(long = "pin-accel", value_name = "PATTERN")]
+    pub pin_accel: Vec<String>,
+}
+
+impl CutArgs {
+    pub fn options(&self, columns: Option<u32>) -> crate::AnalyzeOptions {
+        crate::AnalyzeOptions {
+            strategy: self.strategy,
+            pins: crate::cut::Pins {
+                cpu: self.pin_cpu.clone(),
+                accel: self.pin_accel.clone(),
+            },
+            columns,
+        }
+    }
 }

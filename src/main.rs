@@ -211,14 +211,7 @@ fn run(cli: Cli) -> anyhow::Result<u8> {
         Command::Analyze(args) => {
             let overrides = args.model.overrides()?;
             let target = tilecut::target::load(&args.target.target)?;
-            let opts = tilecut::AnalyzeOptions {
-                strategy: args.strategy,
-                pins: tilecut::cut::Pins {
-                    cpu: args.pin_cpu.clone(),
-                    accel: args.pin_accel.clone(),
-                },
-                columns: args.columns,
-            };
+            let opts = args.cut.options(args.columns);
             let analysis = tilecut::analyze_stages(&args.model.model, &overrides, target, &opts)?;
             let report = analysis.report();
             if let Some(p) = &args.dot {
@@ -272,14 +265,7 @@ fn run(cli: Cli) -> anyhow::Result<u8> {
         Command::Split(args) => {
             let overrides = args.model.overrides()?;
             let target = tilecut::target::load(&args.target.target)?;
-            let opts = tilecut::AnalyzeOptions {
-                strategy: args.strategy,
-                pins: tilecut::cut::Pins {
-                    cpu: args.pin_cpu.clone(),
-                    accel: args.pin_accel.clone(),
-                },
-                columns: None,
-            };
+            let opts = args.cut.options(None);
             let analysis = tilecut::analyze_stages(&args.model.model, &overrides, target, &opts)?;
             let plan = if args.cut_at.is_empty() {
                 analysis.plan.clone()

@@ -12,6 +12,9 @@ use crate::report::Format;
 #[derive(Parser, Debug)]
 #[command(name = "tilecut", version, about)]
 pub struct Cli {
+    /// No progress line and no notes on stderr; errors are still printed.
+    #[arg(long, short, global = true)]
+    pub quiet: bool,
     #[command(subcommand)]
     pub command: Command,
 }
@@ -37,6 +40,10 @@ pub enum Command {
     /// Run the original model and the chained pieces of a split on the same seeded random
     /// inputs and compare every output. Exit 0 equal, 1 mismatch, 2 could not run.
     Verify(VerifyArgs),
+    /// Survey a collection of models (files and folders, searched for *.onnx): which
+    /// blocker, once lifted, would gain the most. Each lift re-runs only the stages it
+    /// affects. Exit 0, or 1 with --strict when some file could not be surveyed.
+    Survey(SurveyArgs),
     /// Explain one node's verdict (or the node producing a tensor): bundle, types, shapes,
     /// and every rule consulted.
     Explain(ExplainArgs),
@@ -123,6 +130,8 @@ pub struct AnalyzeArgs {
     pub format: Format,
     #[command(flatten)]
     pub cut: CutArgs,
+    #[command(flatten)]
+    pub what_if: WhatIfArgs,
     /// Cap the array budget at N columns, to see what fits in fewer columns and at what cost.
     #[arg(long, value_name = "N", value_parser = clap::value_parser!(u32).range(1..))]
     pub columns: Option<u32>,
@@ -147,6 +156,42 @@ pub enum TargetsAction {
         /// Built-in target name.
         name: String,
     },
+}
+
+/// Output formats of `survey`.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, clap::ValueEnum)]
+pub enum SurveyFormat {
+    Table,
+    Json,
+    Markdown,
+    Csv,
+}
+
+#[derive(Args, Debug)]
+pub struct SurveyArgs {
+    /// Model files and folders (folders are searched recursively for *.onnx).
+    #[arg(required = true)]
+    pub paths: Vec<PathBuf>,
+    #[command(flatten)]
+    pub target: TargetArgs,
+    /// Fix a symbolic dimension in every model, e.g. `--dim batch=1` (repeatable).
+    #[arg(long = "dim", value_name = "NAME=VALUE")]
+    pub dims: Vec<String>,
+    /// The value a symbolic dim takes when its blocker is lifted.
+    #[arg(long, value_name = "N", default_value_t = 1, value_parser = clap::value_parser!(u64).range(1..))]
+    pub lift_dims_to: u64,
+    /// The value one named dim takes when lifted, e.g. `--lift-dim frames=98` (repeatable).
+    #[arg(long = "lift-dim", value_name = "NAME=N")]
+    pub lift_dim: Vec<String>,
+    /// Models analyzed in parallel (default: the machine's cores); each holds one model in memory.
+    #[arg(long, value_name = "N", value_parser = clap::value_parser!(u64).range(1..1025))]
+    pub jobs: Option<u64>,
+    /// Exit 1 when some file could not be surveyed.
+    #[arg(long)]
+    pub strict: bool,
+    /// Output format.
+    #[arg(long, value_enum, default_value_t = SurveyFormat::Table)]
+    pub format: SurveyFormat,
 }
 
 #[derive(Args, Debug)]
@@ -188,6 +233,8 @@ pub struct CheckArgs {
     pub max_transfers: Option<u64>,
     #[arg(long)]
     pub max_latency_us: Option<f64>,
+    #[command(flatten)]
+    pub what_if: WhatIfArgs,
     /// Write the current figures as a baseline file.
     #[arg(long, value_name = "FILE")]
     pub save_baseline: Option<PathBuf>,
@@ -269,6 +316,38 @@ pub struct VerifyArgs {
     pub format: Format,
 }
 
+/// What-if assumptions shared by `analyze` and `check`: figures under them are computed
+/// beside the real ones.
+#[derive(Args, Debug, Clone, Default)]
+pub struct WhatIfArgs {
+    /// What-if: treat these op types as supported by the target under its own data types,
+    /// e.g. `--assume-supported Softmax,TopK` (repeatable; `domain.Op` for other domains).
+    #[arg(long = "assume-supported", value_name = "OP[,OP...]")]
+    pub assume_supported: Vec<String>,
+    /// What-if: judge float compute ops as if quantized to the first integer type signature
+    /// of the target's rule for them.
+    #[arg(long = "assume-quantized")]
+    pub assume_quantized: bool,
+    /// What-if: these reason codes no longer block, e.g. `--assume-waived kernel-too-large`
+    /// (repeatable; quantization-scheme, attribute, shape-limit and type codes).
+    #[arg(long = "assume-waived", value_name = "CODE[,CODE...]")]
+    pub assume_waived: Vec<String>,
+}
+
+impl WhatIfArgs {
+    pub fn what_if(&self) -> Result<crate::WhatIf, crate::error::SettingError> {
+        let mut w = crate::WhatIf::default();
+        for s in &self.assume_supported {
+            w.add_supported(s)?;
+        }
+        for c in &self.assume_waived {
+            w.add_waived(c)?;
+        }
+        w.judge.quantized = self.assume_quantized;
+        Ok(w)
+    }
+}
+
 /// The cut options shared by `analyze` and `split`.
 #[derive(Args, Debug, Clone)]
 pub struct CutArgs {
@@ -284,7 +363,7 @@ pub struct CutArgs {
 }
 
 impl CutArgs {
-    pub fn options(&self, columns: Option<u32>) -> crate::AnalyzeOptions {
+    pub fn options(&self, columns: Option<u32>, what_if: crate::WhatIf) -> crate::AnalyzeOptions {
         crate::AnalyzeOptions {
             strategy: self.strategy,
             pins: crate::cut::Pins {
@@ -292,6 +371,7 @@ impl CutArgs {
                 accel: self.pin_accel.clone(),
             },
             columns,
+            what_if,
         }
     }
 }

@@ -7,7 +7,8 @@ use std::path::{Path, PathBuf};
 use serde::Serialize;
 
 use crate::cut::Side;
-use crate::policy::{self, Baseline, BaselineEntry, Limits, PolicyFile};
+use crate::policy::{self, Baseline, BaselineEntry, Limits, PolicyFile, RealOutcome};
+use crate::report::analyze::AnalyzeReport;
 use crate::report::check::{CheckReport, Failure, CHECK_SCHEMA_VERSION};
 
 /// Everything `check` needs besides the policy.
@@ -17,6 +18,9 @@ pub struct CheckRequest<'a> {
     pub policy_name: String,
     pub cli: Limits,
     pub baseline: Option<Baseline>,
+    /// With assumptions, the policy is evaluated on the figures under them; each outcome
+    /// also carries the real measurement.
+    pub what_if: crate::WhatIf,
 }
 
 /// Runs the check; returns the report and the baseline of what was measured.
@@ -27,20 +31,36 @@ pub fn check(req: &CheckRequest) -> (CheckReport, Baseline) {
     for path in req.models {
         let shown = path.display().to_string();
         let eff = policy::effective(req.policy, &shown, &req.cli);
-        let run = || -> Result<crate::report::analyze::AnalyzeReport, String> {
+        let run = || -> Result<(AnalyzeReport, Option<AnalyzeReport>), String> {
             let target_name = eff.limits.target.clone().unwrap_or_else(|| "compact-array".into());
             let target = crate::target::load(&target_name).map_err(|e| e.to_string())?;
             let mut overrides = crate::Overrides::default();
             for (k, v) in eff.limits.dims.clone().unwrap_or_default() {
                 overrides.dims.insert(k, v);
             }
-            let a = crate::analyze_stages(path, &overrides, target, &Default::default()).map_err(|e| e.to_string())?;
-            Ok(a.report())
+            let opts = crate::AnalyzeOptions {
+                what_if: req.what_if.clone(),
+                ..Default::default()
+            };
+            let a = crate::analyze_stages(path, &overrides, target, &opts).map_err(|e| e.to_string())?;
+            Ok((a.report(), a.assumed_report()))
         };
         match run() {
-            Ok(report) => {
-                outcomes.extend(policy::evaluate(&report, &eff));
-                let entry = policy::baseline_entry(&report);
+            Ok((real, assumed)) => {
+                let mut found = policy::evaluate(&real, &eff);
+                if let Some(assumed) = &assumed {
+                    let mut under = policy::evaluate(assumed, &eff);
+                    for (u, r) in under.iter_mut().zip(&found) {
+                        u.real = Some(RealOutcome {
+                            passed: r.passed,
+                            measured: r.measured.clone(),
+                        });
+                    }
+                    found = under;
+                }
+                outcomes.extend(found);
+                // Baselines and regressions keep to what was measured, never to assumptions.
+                let entry = policy::baseline_entry(&real);
                 if let Some(b) = &req.baseline {
                     if let Some(old) = b.models.iter().find(|m| m.path == entry.path) {
                         outcomes.extend(policy::regressions(old, &entry, &req.policy.regression));
@@ -56,6 +76,7 @@ pub fn check(req: &CheckRequest) -> (CheckReport, Baseline) {
         CheckReport {
             schema_version: CHECK_SCHEMA_VERSION,
             policy: req.policy_name.clone(),
+            assumptions: req.what_if.describe(),
             outcomes,
             failures,
             passed,
@@ -117,7 +138,7 @@ fn from_report(v: &serde_json::Value, source: &str) -> Result<DiffSide, String> 
         accel_partitions: s["accel_partitions"].as_u64().unwrap_or(0) as usize,
         boundary_bytes: s["boundary_bytes"].as_u64().unwrap_or(0),
         transfers: s["transfers"].as_u64().unwrap_or(0) as usize,
-        est_latency_us: s["est_latency_us"].as_f64().unwrap_or(0.0),
+        est_latency_us: s["est_latency_us"].as_f64(),
         placements: placements.iter().map(|(k, (s, _))| (k.clone(), *s)).collect(),
     };
     Ok(DiffSide {

@@ -17,6 +17,7 @@ pub mod quant;
 pub mod report;
 pub mod rules;
 pub mod samples;
+pub mod survey;
 pub mod target;
 pub mod text;
 pub mod values;
@@ -44,6 +45,14 @@ pub fn read_model(path: &Path, overrides: &Overrides) -> Result<Analyzed, ReadEr
     Ok(Analyzed { model, diags, unknown })
 }
 
+/// Imports and infers a model already loaded: "shapes onward" for callers that keep the
+/// decoded file (the survey fixes one dim after another without reading the file again).
+pub fn read_loaded(loaded: &onnx::load::LoadedModel, overrides: &Overrides) -> Result<Analyzed, ReadError> {
+    let (mut model, mut diags) = import::import(loaded, overrides)?;
+    let unknown = infer::infer(&mut model, &mut diags);
+    Ok(Analyzed { model, diags, unknown })
+}
+
 /// `tilecut inspect` as a library call.
 pub fn inspect(path: &Path, overrides: &Overrides) -> Result<report::inspect::InspectReport, ReadError> {
     let a = read_model(path, overrides)?;
@@ -61,6 +70,66 @@ pub enum AnalyzeError {
     Pin(#[from] cut::PinError),
 }
 
+/// What-if settings: `--assume-supported`, `--assume-quantized`, `--assume-waived`.
+#[derive(Clone, Debug, Default, PartialEq, Eq)]
+pub struct WhatIf {
+    /// Op types (`Op` or `domain.Op`) treated as capable under the target's types.
+    pub supported_ops: Vec<String>,
+    /// Assumptions the judge honours (quantization, waived reason codes).
+    pub judge: rules::Assumptions,
+}
+
+impl WhatIf {
+    pub fn is_empty(&self) -> bool {
+        self.supported_ops.is_empty() && self.judge.is_empty()
+    }
+
+    /// The assumptions in words, for reports: `assume-supported Softmax`, ….
+    pub fn describe(&self) -> Vec<String> {
+        let mut out: Vec<String> = self
+            .supported_ops
+            .iter()
+            .map(|o| format!("assume-supported {o}"))
+            .collect();
+        if self.judge.quantized {
+            out.push("assume-quantized".into());
+        }
+        out.extend(self.judge.waived.iter().map(|c| format!("assume-waived {c}")));
+        out
+    }
+
+    /// Parses `--assume-waived` codes (comma lists allowed), refusing codes that cannot be
+    /// waived.
+    pub fn add_waived(&mut self, text: &str) -> Result<(), error::SettingError> {
+        for code in text.split(',').map(str::trim).filter(|c| !c.is_empty()) {
+            let known = rules::reason::WAIVABLE.iter().find(|c| **c == code).ok_or_else(|| {
+                error::SettingError(format!(
+                    "--assume-waived `{code}`: not a reason code that can be waived (one of: {})",
+                    rules::reason::WAIVABLE.join(", ")
+                ))
+            })?;
+            self.judge.waived.insert(known);
+        }
+        Ok(())
+    }
+
+    /// Parses `--assume-supported` op lists (comma lists allowed).
+    pub fn add_supported(&mut self, text: &str) -> Result<(), error::SettingError> {
+        for op in text.split(',').map(str::trim) {
+            let (_, name) = target::split_op(op);
+            if name.is_empty() || !name.chars().all(|c| c.is_ascii_alphanumeric() || c == '_') {
+                return Err(error::SettingError(format!(
+                    "--assume-supported `{op}`: expected an op type such as Softmax or com.example.MyOp"
+                )));
+            }
+            if !self.supported_ops.iter().any(|o| o == op) {
+                self.supported_ops.push(op.to_string());
+            }
+        }
+        Ok(())
+    }
+}
+
 /// Options of `analyze` beyond the model's.
 #[derive(Clone, Debug)]
 pub struct AnalyzeOptions {
@@ -68,6 +137,8 @@ pub struct AnalyzeOptions {
     pub pins: cut::Pins,
     /// `--columns N`: the column budget for the mapping.
     pub columns: Option<u32>,
+    /// Figures under these assumptions are computed beside the real ones.
+    pub what_if: WhatIf,
 }
 
 impl Default for AnalyzeOptions {
@@ -76,8 +147,70 @@ impl Default for AnalyzeOptions {
             strategy: cut::Strategy::Mincut,
             pins: cut::Pins::default(),
             columns: None,
+            what_if: WhatIf::default(),
         }
     }
+}
+
+/// Every stage after reading, for one target and one set of assumptions.
+#[derive(Clone)]
+pub struct Stages {
+    pub target: target::Target,
+    pub verdicts: Vec<rules::Verdict>,
+    pub costs: cut::Costs,
+    pub plan: cut::Plan,
+    pub greedy: cut::Plan,
+    pub cpu_only: cut::Plan,
+    pub array: map::ArrayUse,
+}
+
+impl Stages {
+    /// The summary figures of these stages over `read` (the model they were computed on).
+    pub fn summary(&self, read: &Analyzed) -> report::analyze::Summary {
+        report::analyze::summary(&report::analyze::Inputs {
+            model: &read.model,
+            target: &self.target,
+            verdicts: &self.verdicts,
+            costs: &self.costs,
+            plan: &self.plan,
+            greedy: &self.greedy,
+            cpu_only: &self.cpu_only,
+            array: &self.array,
+            params: 0,
+            warnings: Vec::new(),
+        })
+    }
+}
+
+/// judge → cost → cut (all three strategies) → map, over a model already read.
+pub fn run_stages(read: &Analyzed, target: target::Target, opts: &AnalyzeOptions) -> Result<Stages, cut::PinError> {
+    let verdicts = rules::judge_with(&read.model.graph, &read.model.opsets, &target, &opts.what_if.judge);
+    stages_from_verdicts(read, target, verdicts, opts)
+}
+
+/// cost → cut → map, from verdicts already given (the survey re-judges only what a lifted
+/// blocker touches).
+pub fn stages_from_verdicts(
+    read: &Analyzed,
+    target: target::Target,
+    verdicts: Vec<rules::Verdict>,
+    opts: &AnalyzeOptions,
+) -> Result<Stages, cut::PinError> {
+    let g = &read.model.graph;
+    let costs = cut::cost::costs(g, &verdicts, &target);
+    let plan = cut::plan(g, &verdicts, &costs, opts.strategy, &opts.pins)?;
+    let greedy = cut::plan(g, &verdicts, &costs, cut::Strategy::Greedy, &opts.pins)?;
+    let cpu_only = cut::plan(g, &verdicts, &costs, cut::Strategy::Cpu, &opts.pins)?;
+    let array = map::map(g, &costs, &plan, &target, opts.columns);
+    Ok(Stages {
+        target,
+        verdicts,
+        costs,
+        plan,
+        greedy,
+        cpu_only,
+        array,
+    })
 }
 
 /// Every stage of `analyze`, kept for callers that look inside (tests, `explain`).
@@ -90,9 +223,12 @@ pub struct Analysis {
     pub greedy: cut::Plan,
     pub cpu_only: cut::Plan,
     pub array: map::ArrayUse,
+    /// The same stages under the what-if assumptions, when some were given.
+    pub what_if: Option<(WhatIf, Box<Stages>)>,
 }
 
-/// read → judge → cost → cut (all three strategies).
+/// read → judge → cost → cut (all three strategies) → map; again under the what-if
+/// assumptions when `opts` has some.
 pub fn analyze_stages(
     path: &Path,
     overrides: &Overrides,
@@ -100,13 +236,30 @@ pub fn analyze_stages(
     opts: &AnalyzeOptions,
 ) -> Result<Analysis, AnalyzeError> {
     let read = read_model(path, overrides)?;
-    let g = &read.model.graph;
-    let verdicts = rules::judge(g, &read.model.opsets, &target);
-    let costs = cut::cost::costs(g, &verdicts, &target);
-    let plan = cut::plan(g, &verdicts, &costs, opts.strategy, &opts.pins)?;
-    let greedy = cut::plan(g, &verdicts, &costs, cut::Strategy::Greedy, &opts.pins)?;
-    let cpu_only = cut::plan(g, &verdicts, &costs, cut::Strategy::Cpu, &opts.pins)?;
-    let array = map::map(g, &costs, &plan, &target, opts.columns);
+    analyze_read(read, target, opts)
+}
+
+/// `analyze_stages` over a model already read.
+pub fn analyze_read(read: Analyzed, target: target::Target, opts: &AnalyzeOptions) -> Result<Analysis, AnalyzeError> {
+    let what_if = if opts.what_if.is_empty() {
+        None
+    } else {
+        let assumed = target.with_assumed_ops(&opts.what_if.supported_ops);
+        Some((opts.what_if.clone(), Box::new(run_stages(&read, assumed, opts)?)))
+    };
+    let real = AnalyzeOptions {
+        what_if: WhatIf::default(),
+        ..opts.clone()
+    };
+    let Stages {
+        target,
+        verdicts,
+        costs,
+        plan,
+        greedy,
+        cpu_only,
+        array,
+    } = run_stages(&read, target, &real)?;
     Ok(Analysis {
         read,
         target,
@@ -116,16 +269,51 @@ pub fn analyze_stages(
         greedy,
         cpu_only,
         array,
+        what_if,
     })
 }
 
 impl Analysis {
-    pub fn report(&self) -> report::analyze::AnalyzeReport {
-        let ins = report::inspect::build(&self.read.model, &self.read.diags, &self.read.unknown);
+    fn inputs<'a>(&'a self, s: StagesRef<'a>, params: u64) -> report::analyze::Inputs<'a> {
         let mut warnings = self.read.diags.clone();
-        warnings.extend(self.target.warnings.iter().cloned());
-        report::analyze::build(&report::analyze::Inputs {
+        warnings.extend(s.target.warnings.iter().cloned());
+        report::analyze::Inputs {
             model: &self.read.model,
+            target: s.target,
+            verdicts: s.verdicts,
+            costs: s.costs,
+            plan: s.plan,
+            greedy: s.greedy,
+            cpu_only: s.cpu_only,
+            array: s.array,
+            params,
+            warnings,
+        }
+    }
+
+    pub fn report(&self) -> report::analyze::AnalyzeReport {
+        let params = self.params();
+        let mut r = report::analyze::build(&self.inputs(self.real(), params));
+        if let Some((w, s)) = &self.what_if {
+            let assumed = report::analyze::build(&self.inputs(StagesRef::of(s), params));
+            r.what_if = Some(report::analyze::what_if(&r, &assumed, w));
+        }
+        r
+    }
+
+    /// The whole report under the what-if assumptions (None without assumptions): what
+    /// `check --assume-*` evaluates the policy on.
+    pub fn assumed_report(&self) -> Option<report::analyze::AnalyzeReport> {
+        let (_, s) = self.what_if.as_ref()?;
+        Some(report::analyze::build(&self.inputs(StagesRef::of(s), self.params())))
+    }
+
+    fn params(&self) -> u64 {
+        report::inspect::params_and_weight_bytes(&self.read.model.graph).0
+    }
+
+    fn real(&self) -> StagesRef<'_> {
+        StagesRef {
             target: &self.target,
             verdicts: &self.verdicts,
             costs: &self.costs,
@@ -133,8 +321,32 @@ impl Analysis {
             greedy: &self.greedy,
             cpu_only: &self.cpu_only,
             array: &self.array,
-            params: ins.model.params,
-            warnings,
-        })
+        }
+    }
+}
+
+/// Borrowed stages, so the real analysis and a what-if scenario share one report path.
+#[derive(Clone, Copy)]
+struct StagesRef<'a> {
+    target: &'a target::Target,
+    verdicts: &'a [rules::Verdict],
+    costs: &'a cut::Costs,
+    plan: &'a cut::Plan,
+    greedy: &'a cut::Plan,
+    cpu_only: &'a cut::Plan,
+    array: &'a map::ArrayUse,
+}
+
+impl<'a> StagesRef<'a> {
+    fn of(s: &'a Stages) -> StagesRef<'a> {
+        StagesRef {
+            target: &s.target,
+            verdicts: &s.verdicts,
+            costs: &s.costs,
+            plan: &s.plan,
+            greedy: &s.greedy,
+            cpu_only: &s.cpu_only,
+            array: &s.array,
+        }
     }
 }

@@ -18,7 +18,10 @@ fn main() -> ExitCode {
     // microseconds, and the IR of a 100k-node model touches hundreds of MB.
     // SAFETY: setting an allocator option is a plain store, valid at any time.
     unsafe { libmimalloc_sys::mi_option_set(libmimalloc_sys::mi_option_large_os_pages, 1) };
-    let cli = Cli::parse();
+    let cli = match Cli::try_parse() {
+        Ok(c) => c,
+        Err(e) => return usage_error(e),
+    };
     match run(cli) {
         Ok(code) => ExitCode::from(code),
         Err(e) => {
@@ -30,6 +33,35 @@ fn main() -> ExitCode {
             ExitCode::from(EXIT_COULD_NOT_RUN)
         }
     }
+}
+
+/// Help and version print as clap renders them; a bad argument is one line, exit 2.
+fn usage_error(e: clap::Error) -> ExitCode {
+    use clap::error::ErrorKind;
+    if matches!(
+        e.kind(),
+        ErrorKind::DisplayHelp | ErrorKind::DisplayVersion | ErrorKind::DisplayHelpOnMissingArgumentOrSubcommand
+    ) {
+        let _ = e.print();
+        return if e.kind() == ErrorKind::DisplayHelpOnMissingArgumentOrSubcommand {
+            ExitCode::from(EXIT_COULD_NOT_RUN)
+        } else {
+            ExitCode::SUCCESS
+        };
+    }
+    // clap's message spans lines (missing arguments are listed below it); keep what comes
+    // before the usage, without tips, on one line.
+    let text = e.render().to_string();
+    let parts: Vec<&str> = text
+        .lines()
+        .map(str::trim)
+        .take_while(|l| !l.starts_with("Usage:"))
+        .filter(|l| !l.is_empty() && !l.starts_with("tip:") && !l.starts_with("For more information"))
+        .collect();
+    let line = parts.join(" ");
+    let line = line.trim_start_matches("error: ");
+    eprintln!("tilecut: error: {line} (see --help)");
+    ExitCode::from(EXIT_COULD_NOT_RUN)
 }
 
 fn read_text(path: &std::path::Path) -> anyhow::Result<String> {
@@ -92,6 +124,7 @@ fn run_check(args: tilecut::cli::CheckArgs) -> anyhow::Result<u8> {
         policy_name: policy_path.display().to_string(),
         cli,
         baseline,
+        what_if: args.what_if.what_if()?,
     };
     let (report, measured) = tilecut::gate::check(&req);
     let mut buf = Vec::new();
@@ -194,7 +227,71 @@ fn is_broken_pipe(e: &anyhow::Error) -> bool {
     })
 }
 
+fn run_survey(args: tilecut::cli::SurveyArgs, quiet: bool) -> anyhow::Result<u8> {
+    use tilecut::cli::SurveyFormat;
+    use tilecut::report::survey;
+    let mut overrides = tilecut::Overrides::default();
+    for d in &args.dims {
+        overrides.add_dim(d)?;
+    }
+    let target = tilecut::target::load(&args.target.target)?;
+    let jobs = match args.jobs {
+        Some(n) => n as usize,
+        None => std::thread::available_parallelism().map_or(1, |n| n.get()),
+    };
+    let mut dim_lifts = tilecut::survey::DimLifts {
+        default: args.lift_dims_to,
+        ..Default::default()
+    };
+    for d in &args.lift_dim {
+        let mut o = tilecut::Overrides::default();
+        o.add_dim(d)
+            .map_err(|e| anyhow::anyhow!(e.0.replace("--dim", "--lift-dim")))?;
+        for (k, v) in o.dims {
+            if v == 0 {
+                anyhow::bail!("--lift-dim `{d}`: a lifted dim must be at least 1");
+            }
+            dim_lifts.by_name.insert(k, v);
+        }
+    }
+    let req = tilecut::survey::Request {
+        paths: &args.paths,
+        target: &target,
+        overrides: &overrides,
+        jobs,
+        dim_lifts,
+    };
+    let bar = std::sync::Mutex::new(tilecut::report::term::Progress::new("surveying", quiet));
+    let report = tilecut::survey::survey(&req, &|done, total| {
+        if let Ok(mut b) = bar.lock() {
+            b.update(done, total, "models");
+        }
+    })?;
+    if let Ok(mut b) = bar.lock() {
+        b.finish();
+    }
+    let mut buf = Vec::new();
+    match args.format {
+        SurveyFormat::Json => survey::render_json(&report, &mut buf)?,
+        SurveyFormat::Table => survey::render_table(&report, &mut buf, tilecut::report::term::Paint::for_stdout())?,
+        SurveyFormat::Markdown => survey::render_markdown(&report, &mut buf)?,
+        SurveyFormat::Csv => survey::render_csv(&report, &mut buf)?,
+    }
+    std::io::stdout().lock().write_all(&buf)?;
+    if !quiet {
+        for f in &report.failures {
+            eprintln!("tilecut: warning: {}: could not survey: {}", f.path, f.error);
+        }
+    }
+    Ok(if args.strict && !report.failures.is_empty() {
+        1
+    } else {
+        0
+    })
+}
+
 fn run(cli: Cli) -> anyhow::Result<u8> {
+    let quiet = cli.quiet;
     match cli.command {
         Command::Inspect(args) => {
             let overrides = args.model.overrides()?;
@@ -211,7 +308,7 @@ fn run(cli: Cli) -> anyhow::Result<u8> {
         Command::Analyze(args) => {
             let overrides = args.model.overrides()?;
             let target = tilecut::target::load(&args.target.target)?;
-            let opts = args.cut.options(args.columns);
+            let opts = args.cut.options(args.columns, args.what_if.what_if()?);
             let analysis = tilecut::analyze_stages(&args.model.model, &overrides, target, &opts)?;
             let report = analysis.report();
             if let Some(p) = &args.dot {
@@ -265,7 +362,7 @@ fn run(cli: Cli) -> anyhow::Result<u8> {
         Command::Split(args) => {
             let overrides = args.model.overrides()?;
             let target = tilecut::target::load(&args.target.target)?;
-            let opts = args.cut.options(None);
+            let opts = args.cut.options(None, Default::default());
             let analysis = tilecut::analyze_stages(&args.model.model, &overrides, target, &opts)?;
             let plan = if args.cut_at.is_empty() {
                 analysis.plan.clone()
@@ -341,6 +438,7 @@ fn run(cli: Cli) -> anyhow::Result<u8> {
             Ok(if report.passed { 0 } else { 1 })
         }
         Command::Diff(args) => run_diff(args),
+        Command::Survey(args) => run_survey(args, quiet),
         Command::Explain(args) => {
             let overrides = args.model.overrides()?;
             let target = tilecut::target::load(&args.target.target)?;

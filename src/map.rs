@@ -74,26 +74,6 @@ pub struct ArrayUse {
     pub reconfigure_ps: u64,
 }
 
-fn weight_bytes(g: &Graph, nodes: &[NodeId]) -> u64 {
-    let mut seen = std::collections::BTreeSet::new();
-    let mut total = 0u64;
-    for n in nodes {
-        for v in g.node(*n).all_inputs() {
-            let val = g.value(v);
-            if matches!(val.kind, ValueKind::Initializer | ValueKind::Constant) && seen.insert(v) {
-                total = total.saturating_add(
-                    val.data
-                        .as_ref()
-                        .and_then(|d| d.bytes())
-                        .or_else(|| val.fact.bytes())
-                        .unwrap_or(0),
-                );
-            }
-        }
-    }
-    total
-}
-
 /// Tiles each stage needs at bottleneck `b` (ps), or None if over `budget`.
 fn tiles_at(work: &[u64], min_tiles: &[u64], b: u64, budget: u64) -> Option<Vec<u64>> {
     let mut out = Vec::with_capacity(work.len());
@@ -131,7 +111,10 @@ fn map_partition(g: &Graph, costs: &Costs, t: &Target, id: usize, nodes: &[NodeI
                 .sum()
         })
         .collect();
-    let wbytes: Vec<u64> = groups.iter().map(|s| weight_bytes(g, s)).collect();
+    let wbytes: Vec<u64> = groups
+        .iter()
+        .map(|s| crate::cut::cost::weight_bytes(g, costs, s))
+        .collect();
     let local = f.compute_tile.local_memory_bytes.max(1);
     let mem_tiles: Vec<u64> = wbytes.iter().map(|b| b.div_ceil(local)).collect();
     let total_weights: u64 = wbytes.iter().sum();
@@ -189,7 +172,12 @@ fn map_partition(g: &Graph, costs: &Costs, t: &Target, id: usize, nodes: &[NodeI
         bound = Bound::IoBandwidth;
     }
     // Skip connections: tensors consumed by a stage other than the next are buffered (double).
-    let stage_of = |n: NodeId| groups.iter().position(|s| s.contains(&n));
+    let stage_index: std::collections::HashMap<NodeId, usize> = groups
+        .iter()
+        .enumerate()
+        .flat_map(|(k, s)| s.iter().map(move |n| (*n, k)))
+        .collect();
+    let stage_of = |n: NodeId| stage_index.get(&n).copied();
     let mut skip = 0u64;
     let mut routed = 0u64;
     for (k, s) in groups.iter().enumerate() {

@@ -48,6 +48,54 @@ pub mod reason {
     pub const UNKNOWN_TYPES: &str = "types-unknown";
     pub const MOVEMENT: &str = "moved-by-dma";
     pub const ACCEPTED: &str = "accepted";
+    pub const ASSUMED_QUANTIZED: &str = "assumed-quantized";
+
+    /// Codes a what-if may waive: quantization schemes, attribute and shape limits, types.
+    /// `no-rule` is lifted by assuming the op supported, `shape-dynamic` by fixing the dim,
+    /// `float-on-cpu` by assuming quantization; control flow and unknown types cannot be.
+    pub const WAIVABLE: &[&str] = &[
+        OPSET,
+        TYPES,
+        WEIGHT_GRANULARITY,
+        WEIGHT_AXIS,
+        WEIGHT_ASYMMETRIC,
+        WEIGHT_BLOCKED,
+        ACT_PER_AXIS,
+        SCALE_POW2,
+        DYNAMIC_QUANT,
+        KERNEL,
+        STRIDE,
+        DILATION,
+        GROUP,
+        ATTR,
+        RANK,
+        DIM,
+    ];
+}
+
+/// What-if assumptions the judge honours (op support is assumed through the target instead:
+/// `Target::with_assumed_ops`).
+#[derive(Clone, Debug, Default, PartialEq, Eq)]
+pub struct Assumptions {
+    /// Float compute ops are judged as if quantized to the first integer signature of the
+    /// target's rule for them.
+    pub quantized: bool,
+    /// Reason codes (from `reason::WAIVABLE`) that no longer block.
+    pub waived: std::collections::BTreeSet<&'static str>,
+}
+
+impl Assumptions {
+    pub fn is_empty(&self) -> bool {
+        !self.quantized && self.waived.is_empty()
+    }
+}
+
+/// The types a node is assumed to run on under `--assume-quantized`.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct QuantizedAs {
+    pub act: DType,
+    pub weight: Option<DType>,
+    pub out: DType,
 }
 
 /// One reason: what was found, what to change, and which profile entry decided it.
@@ -70,6 +118,9 @@ pub struct Verdict {
     pub signature: String,
     /// Names of the Q/DQ nodes folded into this node's bundle.
     pub bundle: Vec<String>,
+    /// Set when the verdict assumes the node quantized (`--assume-quantized`).
+    #[serde(skip)]
+    pub quantized_as: Option<QuantizedAs>,
 }
 
 fn block(code: &'static str, rule: &str, message: String) -> Reason {
@@ -121,10 +172,38 @@ fn signature(node: &Node, e: &Effective) -> String {
 
 /// Judges every node of the main graph.
 pub fn judge(g: &Graph, opsets: &std::collections::BTreeMap<String, i64>, target: &Target) -> Vec<Verdict> {
-    g.node_ids().map(|id| judge_node(g, id, opsets, target)).collect()
+    judge_with(g, opsets, target, &Assumptions::default())
 }
 
-pub fn judge_node(g: &Graph, id: NodeId, opsets: &std::collections::BTreeMap<String, i64>, target: &Target) -> Verdict {
+/// Judges every node under what-if assumptions.
+pub fn judge_with(
+    g: &Graph,
+    opsets: &std::collections::BTreeMap<String, i64>,
+    target: &Target,
+    assume: &Assumptions,
+) -> Vec<Verdict> {
+    g.node_ids()
+        .map(|id| judge_node(g, id, opsets, target, assume))
+        .collect()
+}
+
+/// Turns blocking reasons whose code is waived into notes that say so.
+fn waive(reasons: &mut [Reason], assume: &Assumptions) {
+    for r in reasons.iter_mut() {
+        if r.blocking && assume.waived.contains(r.code) {
+            r.blocking = false;
+            r.message = format!("{} (waived by the what-if: --assume-waived {})", r.message, r.code);
+        }
+    }
+}
+
+pub fn judge_node(
+    g: &Graph,
+    id: NodeId,
+    opsets: &std::collections::BTreeMap<String, i64>,
+    target: &Target,
+    assume: &Assumptions,
+) -> Verdict {
     let node = g.node(id);
     let e = quant::effective(g, id);
     let sig = signature(node, &e);
@@ -136,6 +215,7 @@ pub fn judge_node(g: &Graph, id: NodeId, opsets: &std::collections::BTreeMap<Str
             reasons: Vec::new(),
             signature: sig,
             bundle,
+            quantized_as: None,
         };
     }
     let cpu = |reasons: Vec<Reason>, rule: Option<String>| Verdict {
@@ -144,6 +224,7 @@ pub fn judge_node(g: &Graph, id: NodeId, opsets: &std::collections::BTreeMap<Str
         reasons,
         signature: sig.clone(),
         bundle: e.bundle.iter().map(|b| g.node(*b).name.clone()).collect(),
+        quantized_as: None,
     };
     if !node.bodies.is_empty() {
         return cpu(
@@ -167,7 +248,8 @@ pub fn judge_node(g: &Graph, id: NodeId, opsets: &std::collections::BTreeMap<Str
         .iter()
         .find(|m| m.ops.iter().any(|o| o == &node.op_type) && node.is_default_domain())
     {
-        let reasons = check_movement(g, node, m);
+        let mut reasons = check_movement(g, node, m);
+        waive(&mut reasons, assume);
         let ok = reasons.iter().all(|r| !r.blocking);
         let mut v = cpu(reasons, Some(m.id.clone()));
         if ok {
@@ -199,7 +281,8 @@ pub fn judge_node(g: &Graph, id: NodeId, opsets: &std::collections::BTreeMap<Str
     }
     let mut best: Option<(usize, &RuleSpec, Vec<Reason>)> = None;
     for r in rules {
-        let reasons = check_rule(g, node, &e, r, opset, target);
+        let (mut reasons, quantized_as) = check_rule(g, node, &e, r, opset, target, assume);
+        waive(&mut reasons, assume);
         let blocking = reasons.iter().filter(|x| x.blocking).count();
         if blocking == 0 {
             let mut reasons = reasons;
@@ -216,6 +299,7 @@ pub fn judge_node(g: &Graph, id: NodeId, opsets: &std::collections::BTreeMap<Str
                 reasons,
                 signature: sig.clone(),
                 bundle: e.bundle.iter().map(|b| g.node(*b).name.clone()).collect(),
+                quantized_as,
             };
         }
         if best.as_ref().is_none_or(|(b, _, _)| blocking < *b) {
@@ -317,8 +401,31 @@ fn attr_ints(node: &Node, name: &str) -> Option<Vec<i64>> {
     }
 }
 
-fn check_rule(g: &Graph, node: &Node, e: &Effective, r: &RuleSpec, opset: i64, target: &Target) -> Vec<Reason> {
+/// The first integer type signature of a rule, for `--assume-quantized`.
+fn first_integer_signature(r: &RuleSpec, weighted: bool) -> Option<QuantizedAs> {
+    r.types.iter().find_map(|t| {
+        let act = type_of(&t.act)?;
+        let out = t.out.as_deref().map_or(Some(act), type_of)?;
+        let weight = match (&t.weight, weighted) {
+            (Some(w), true) => Some(type_of(w)?),
+            _ => None,
+        };
+        let integer = |d: DType| !d.is_float();
+        (integer(act) && integer(out) && weight.is_none_or(integer)).then_some(QuantizedAs { act, weight, out })
+    })
+}
+
+fn check_rule(
+    g: &Graph,
+    node: &Node,
+    e: &Effective,
+    r: &RuleSpec,
+    opset: i64,
+    target: &Target,
+    assume: &Assumptions,
+) -> (Vec<Reason>, Option<QuantizedAs>) {
     let mut out = Vec::new();
+    let mut quantized_as = None;
     if let Some([lo, hi]) = r.opsets {
         if opset < lo || opset > hi {
             out.push(block(
@@ -374,7 +481,26 @@ fn check_rule(g: &Graph, node: &Node, e: &Effective, r: &RuleSpec, opset: i64, t
         other => other,
     };
     let is_float = act.is_some_and(DType::is_float) && outp.is_some_and(DType::is_float);
-    let (ma, mw, mo) = if is_float {
+    let assumed = if is_float && assume.quantized {
+        first_integer_signature(r, has_weight(&node.op_type))
+    } else {
+        None
+    };
+    let (ma, mw, mo) = if let Some(q) = assumed {
+        quantized_as = Some(q);
+        out.push(note(
+            reason::ASSUMED_QUANTIZED,
+            &r.id,
+            format!(
+                "judged as if quantized to {} (what-if: --assume-quantized)",
+                match q.weight {
+                    Some(w) => format!("{} × {} → {}", type_name(q.act), type_name(w), type_name(q.out)),
+                    None => format!("{} → {}", type_name(q.act), type_name(q.out)),
+                }
+            ),
+        ));
+        (Some(q.act), q.weight, Some(q.out))
+    } else if is_float {
         (as_bf16(act), as_bf16(weight), as_bf16(outp))
     } else {
         (act, weight, outp)
@@ -403,7 +529,7 @@ fn check_rule(g: &Graph, node: &Node, e: &Effective, r: &RuleSpec, opset: i64, t
                     })
                     .collect();
                 let sig = signature(node, e);
-                if is_float && !target.floats_as_bf16() {
+                if is_float && !target.floats_as_bf16() && assumed.is_none() {
                     out.push(block(
                         reason::FLOAT_ON_CPU,
                         &r.id,
@@ -420,7 +546,7 @@ fn check_rule(g: &Graph, node: &Node, e: &Effective, r: &RuleSpec, opset: i64, t
                         format!("{sig} is not among the rule's signatures ({})", allowed.join(", ")),
                     ));
                 }
-            } else if is_float && target.floats_as_bf16() && act != Some(DType::BF16) {
+            } else if is_float && assumed.is_none() && target.floats_as_bf16() && act != Some(DType::BF16) {
                 out.push(note(
                     reason::FLOAT_AS_BF16,
                     &r.id,
@@ -652,5 +778,5 @@ fn check_rule(g: &Graph, node: &Node, e: &Effective, r: &RuleSpec, opset: i64, t
             ));
         }
     }
-    out
+    (out, quantized_as)
 }

@@ -408,11 +408,28 @@ fn analyze_json_matches_the_committed_schema() {
         serde_json::from_str(include_str!("../schemas/analyze.schema.json")).expect("schema parses");
     let validator = jsonschema::validator_for(&schema).expect("schema compiles");
     for (_, name) in samples() {
-        let r = json(&["analyze", sample(&name).to_str().expect("utf8"), "--format", "json"]);
-        let errors: Vec<String> = validator
-            .iter_errors(&r)
-            .map(|e| format!("{} at {}", e, e.instance_path))
-            .collect();
-        assert!(errors.is_empty(), "{name}: {errors:?}");
+        let path = sample(&name);
+        let path = path.to_str().expect("utf8");
+        // Plain, and with every what-if assumption (the `what_if` section filled in).
+        for extra in [
+            &[][..],
+            &[
+                "--assume-supported",
+                "Softmax,TopK",
+                "--assume-quantized",
+                "--assume-waived",
+                "weight-asymmetric",
+            ][..],
+        ] {
+            let mut args = vec!["analyze", path, "--format", "json"];
+            args.extend_from_slice(extra);
+            let r = json(&args);
+            assert_eq!(r["what_if"].is_null(), extra.is_empty(), "{name}");
+            let errors: Vec<String> = validator
+                .iter_errors(&r)
+                .map(|e| format!("{} at {}", e, e.instance_path))
+                .collect();
+            assert!(errors.is_empty(), "{name} {extra:?}: {errors:?}");
+        }
     }
 }

@@ -38,8 +38,12 @@ pub struct Costs {
     pub unknown_work: Vec<NodeId>,
 }
 
-/// The data type whose rate applies to a node: its effective activation type.
-fn node_type(g: &Graph, id: NodeId) -> Option<DType> {
+/// The data type whose rate applies to a node: its effective activation type (the assumed one
+/// under `--assume-quantized`).
+fn node_type(g: &Graph, id: NodeId, v: &Verdict) -> Option<DType> {
+    if let Some(q) = v.quantized_as {
+        return Some(q.act);
+    }
     let e = quant::effective(g, id);
     e.inputs
         .first()
@@ -48,9 +52,62 @@ fn node_type(g: &Graph, id: NodeId) -> Option<DType> {
         .or_else(|| e.outputs.first().copied().flatten())
 }
 
+/// Bytes of one instance of every value; under `--assume-quantized`, float tensors that an
+/// assumed-quantized node writes, reads as weights, or alone consumes take the assumed type's
+/// size (a quantized model would store and move them so).
+pub fn value_bytes(g: &Graph, verdicts: &[Verdict]) -> Vec<Option<u64>> {
+    let mut bytes: Vec<Option<u64>> = g.values.iter().map(|v| v.fact.bytes()).collect();
+    if verdicts.iter().all(|v| v.quantized_as.is_none()) {
+        return bytes;
+    }
+    let resize = |bytes: &mut Vec<Option<u64>>, v: crate::ir::ValueId, to: DType| {
+        let val = g.value(v);
+        if val.fact.dtype.is_some_and(DType::is_float) {
+            bytes[v.index()] = val.fact.shape.element_count().and_then(|n| to.bytes_for(n));
+        }
+    };
+    for (i, n) in g.nodes.iter().enumerate() {
+        let Some(q) = verdicts[i].quantized_as else { continue };
+        for o in n.outputs.iter().flatten() {
+            resize(&mut bytes, *o, q.out);
+        }
+        for v in n.inputs.iter().flatten() {
+            let val = g.value(*v);
+            if matches!(val.kind, ValueKind::Initializer | ValueKind::Constant) {
+                if let Some(w) = q.weight {
+                    resize(&mut bytes, *v, w);
+                }
+            } else if val
+                .consumers
+                .iter()
+                .all(|c| g.node(*c).folded || verdicts[c.index()].quantized_as.is_some())
+            {
+                resize(&mut bytes, *v, q.act);
+            }
+        }
+    }
+    bytes
+}
+
+/// Bytes of the weights (initializers and constants) `nodes` read, each counted once.
+pub fn weight_bytes(g: &Graph, costs: &Costs, nodes: &[NodeId]) -> u64 {
+    let mut seen = std::collections::BTreeSet::new();
+    let mut total = 0u64;
+    for n in nodes {
+        for v in g.node(*n).all_inputs() {
+            let val = g.value(v);
+            if matches!(val.kind, ValueKind::Initializer | ValueKind::Constant) && seen.insert(v) {
+                let b = costs.bytes[v.index()].or_else(|| val.data.as_ref().and_then(|d| d.bytes()));
+                total = total.saturating_add(b.unwrap_or(0));
+            }
+        }
+    }
+    total
+}
+
 pub fn costs(g: &Graph, verdicts: &[Verdict], target: &Target) -> Costs {
     let f = &target.file;
-    let bytes: Vec<Option<u64>> = g.values.iter().map(|v| v.fact.bytes()).collect();
+    let bytes = value_bytes(g, verdicts);
     let transfer_ps: Vec<u64> = bytes
         .iter()
         .map(|b| {
@@ -85,7 +142,7 @@ pub fn costs(g: &Graph, verdicts: &[Verdict], target: &Target) -> Costs {
             .filter(|v| !matches!(g.value(**v).kind, ValueKind::Initializer | ValueKind::Constant))
             .filter_map(|v| bytes[v.index()])
             .sum();
-        let dt = node_type(g, id);
+        let dt = node_type(g, id, &verdicts[i]);
         let tname = dt.map(type_name).unwrap_or("fp32");
         let cpu = (work / target.cpu_ops_per_s(tname)).max(moved as f64 / f.cpu.memory_bandwidth_bytes_per_s);
         cpu_ps.push(ps(cpu));

@@ -9,9 +9,13 @@
 //! outputs, columns, tiles, dispatch_us, est_latency_us}, `cut_points[]` {tensor, producer,
 //! consumers, from_partition, to_partition, to_partitions, direction, dtype, shape, bytes,
 //! transfer_us}, `summary` {coverage_macs, coverage_nodes, accel_partitions, boundary_bytes,
-//! transfers, objective_us, mincut_us, est_latency_us, cpu_only_latency_us, greedy_us,
-//! unknown_cost_nodes}, `op_summary[]` {op, accel, cpu, const}, `blockers[]` {code, nodes,
-//! macs, example}, `warnings[]`.
+//! transfers, objective_us, mincut_us, est_latency_us, cpu_only_latency_us, greedy_us (these
+//! three null while some node's work depends on an unknown dim), unknown_cost_nodes,
+//! needs_dims, columns_budget, columns_used, columns_free, resident, reconfigure_us},
+//! `op_summary[]` {op, accel, cpu, const}, `blockers[]` {code, nodes, macs, example},
+//! `what_if` (null unless `--assume-*` was given) {assumptions[], summary, delta
+//! {coverage_macs, coverage_nodes, accel_partitions, transfers, boundary_bytes,
+//! est_latency_us}, moved_to_accel[], moved_to_cpu[]}, `warnings[]`.
 //! Times are microseconds derived from integer picoseconds (six decimals are exact).
 
 use std::collections::BTreeMap;
@@ -23,14 +27,14 @@ use tabled::{Table, Tabled};
 
 use crate::cut::{Direction, Plan, Side};
 use crate::diag::Diagnostic;
-use crate::ir::{Graph, Model, ValueKind};
+use crate::ir::{Model, ValueKind};
 use crate::rules::{Candidate, Reason, Verdict};
 use crate::target::Target;
 
 use super::inspect::{shape_json, JsonShape};
 use super::{grouped, maybe};
 
-pub const ANALYZE_SCHEMA_VERSION: u32 = 1;
+pub const ANALYZE_SCHEMA_VERSION: u32 = 2;
 
 pub const ESTIMATE_NOTE: &str =
     "Latency and column figures are estimates from tilecut's cost model (README, \"Cost model\"), not measurements.";
@@ -50,7 +54,65 @@ pub struct AnalyzeReport {
     pub strategies: Vec<StrategyRow>,
     pub op_summary: Vec<OpRow>,
     pub blockers: Vec<Blocker>,
+    /// The figures under `--assume-*` assumptions, beside the real ones above.
+    pub what_if: Option<WhatIfReport>,
     pub warnings: Vec<Diagnostic>,
+}
+
+/// A what-if scenario next to the real analysis.
+#[derive(Serialize, Debug, Clone)]
+pub struct WhatIfReport {
+    /// The assumptions in words (`assume-supported Softmax`, `assume-quantized`, …).
+    pub assumptions: Vec<String>,
+    pub summary: Summary,
+    /// Assumed minus real, per figure (null where either side is unknown).
+    pub delta: Delta,
+    /// Nodes that run on the accelerator only under the assumptions, and the reverse.
+    pub moved_to_accel: Vec<String>,
+    pub moved_to_cpu: Vec<String>,
+}
+
+#[derive(Serialize, Debug, Clone, PartialEq)]
+pub struct Delta {
+    pub coverage_macs: Option<f64>,
+    pub coverage_nodes: f64,
+    pub accel_partitions: i64,
+    pub transfers: i64,
+    pub boundary_bytes: i64,
+    pub est_latency_us: Option<f64>,
+}
+
+/// Assumed minus real.
+pub fn delta(real: &Summary, assumed: &Summary) -> Delta {
+    let both = |a: Option<f64>, b: Option<f64>| Some(b? - a?);
+    Delta {
+        coverage_macs: both(real.coverage_macs, assumed.coverage_macs),
+        coverage_nodes: assumed.coverage_nodes - real.coverage_nodes,
+        accel_partitions: assumed.accel_partitions as i64 - real.accel_partitions as i64,
+        transfers: assumed.transfers as i64 - real.transfers as i64,
+        boundary_bytes: assumed.boundary_bytes as i64 - real.boundary_bytes as i64,
+        est_latency_us: both(real.est_latency_us, assumed.est_latency_us),
+    }
+}
+
+/// The what-if section from the real report and the report under the assumptions.
+pub fn what_if(real: &AnalyzeReport, assumed: &AnalyzeReport, w: &crate::WhatIf) -> WhatIfReport {
+    let mut to_accel = Vec::new();
+    let mut to_cpu = Vec::new();
+    for (r, a) in real.nodes.iter().zip(&assumed.nodes) {
+        match (r.placement, a.placement) {
+            (Side::Cpu, Side::Accel) => to_accel.push(r.name.clone()),
+            (Side::Accel, Side::Cpu) => to_cpu.push(r.name.clone()),
+            _ => {}
+        }
+    }
+    WhatIfReport {
+        assumptions: w.describe(),
+        summary: assumed.summary.clone(),
+        delta: delta(&real.summary, &assumed.summary),
+        moved_to_accel: to_accel,
+        moved_to_cpu: to_cpu,
+    }
 }
 
 #[derive(Serialize, Debug, Clone)]
@@ -145,6 +207,10 @@ pub struct CutRow {
 
 #[derive(Serialize, Debug, Clone)]
 pub struct Summary {
+    /// MACs of every node that runs per inference (null when some are unknown), and of those
+    /// placed on the accelerator.
+    pub macs: Option<u64>,
+    pub accel_macs: u64,
     pub coverage_macs: Option<f64>,
     pub coverage_nodes: f64,
     pub accel_partitions: usize,
@@ -152,11 +218,14 @@ pub struct Summary {
     pub transfers: usize,
     pub objective_us: f64,
     pub mincut_us: f64,
-    pub est_latency_us: f64,
-    pub cpu_only_latency_us: f64,
-    pub greedy_us: f64,
+    /// Estimated latencies; None (null) while some node's work depends on an unknown dim.
+    pub est_latency_us: Option<f64>,
+    pub cpu_only_latency_us: Option<f64>,
+    pub greedy_us: Option<f64>,
     /// Nodes whose work depends on unknown dims (costed as zero work): fix them with --dim.
     pub unknown_cost_nodes: usize,
+    /// The symbolic dims that would make the unknown figures known.
+    pub needs_dims: Vec<String>,
     /// Columns the accelerator partitions need, of the budget, and how many stay free.
     pub columns_budget: u64,
     pub columns_used: u64,
@@ -209,27 +278,6 @@ pub struct Inputs<'a> {
     pub warnings: Vec<Diagnostic>,
 }
 
-fn partition_weight_bytes(g: &Graph, nodes: &[crate::ir::NodeId]) -> u64 {
-    let mut seen = std::collections::BTreeSet::new();
-    let mut total = 0u64;
-    for n in nodes {
-        for v in g.node(*n).all_inputs() {
-            let val = g.value(v);
-            let weight = matches!(val.kind, ValueKind::Initializer | ValueKind::Constant);
-            if weight && seen.insert(v) {
-                total = total.saturating_add(
-                    val.data
-                        .as_ref()
-                        .and_then(|d| d.bytes())
-                        .or_else(|| val.fact.bytes())
-                        .unwrap_or(0),
-                );
-            }
-        }
-    }
-    total
-}
-
 /// The latency estimate after mapping: the serial objective with each accelerator partition's
 /// node times replaced by its pipeline latency, plus reconfiguration when not resident.
 fn est_latency_us(i: &Inputs) -> f64 {
@@ -242,6 +290,68 @@ fn est_latency_us(i: &Inputs) -> f64 {
         }
     }
     us(ps.saturating_add(i.array.reconfigure_ps))
+}
+
+/// The summary figures alone: what `build` reports, and what the survey compares scenarios by.
+pub fn summary(i: &Inputs) -> Summary {
+    let g = &i.model.graph;
+    let plan = i.plan;
+    let (mut total_macs, mut accel_macs, mut macs_known) = (0u64, 0u64, true);
+    let (mut live, mut accel_nodes) = (0usize, 0usize);
+    for (k, n) in g.nodes.iter().enumerate() {
+        let side = plan.side[k];
+        if side == Side::Const {
+            continue;
+        }
+        live += 1;
+        match n.cost.macs {
+            Some(m) => total_macs = total_macs.saturating_add(m),
+            None => macs_known = false,
+        }
+        if side == Side::Accel {
+            accel_nodes += 1;
+            accel_macs = accel_macs.saturating_add(n.cost.macs.unwrap_or(0));
+        }
+    }
+    let boundary_bytes: u64 = plan
+        .cut_points
+        .iter()
+        .map(|c| i.costs.bytes[c.value.index()].unwrap_or(0))
+        .sum();
+    let known = i.costs.unknown_work.is_empty();
+    let mut needs_dims: Vec<String> = i
+        .costs
+        .unknown_work
+        .iter()
+        .flat_map(|n| g.node(*n).cost.needs_dims.iter().cloned())
+        .collect();
+    needs_dims.sort();
+    needs_dims.dedup();
+    Summary {
+        macs: macs_known.then_some(total_macs),
+        accel_macs,
+        coverage_macs: (macs_known && total_macs > 0).then(|| accel_macs as f64 / total_macs as f64),
+        coverage_nodes: if live > 0 {
+            accel_nodes as f64 / live as f64
+        } else {
+            0.0
+        },
+        accel_partitions: plan.partitions.iter().filter(|p| p.side == Side::Accel).count(),
+        boundary_bytes,
+        transfers: plan.cut_points.len(),
+        objective_us: us(plan.objective_ps),
+        mincut_us: us(plan.mincut_ps),
+        est_latency_us: known.then(|| est_latency_us(i)),
+        cpu_only_latency_us: known.then(|| us(i.cpu_only.objective_ps)),
+        greedy_us: known.then(|| us(i.greedy.objective_ps)),
+        unknown_cost_nodes: i.costs.unknown_work.len(),
+        needs_dims,
+        columns_budget: i.array.columns_budget,
+        columns_used: i.array.columns_used,
+        columns_free: i.array.columns_free,
+        resident: i.array.resident,
+        reconfigure_us: us(i.array.reconfigure_ps),
+    }
 }
 
 pub fn build(i: &Inputs) -> AnalyzeReport {
@@ -262,8 +372,6 @@ pub fn build(i: &Inputs) -> AnalyzeReport {
         .collect();
     let mut nodes = Vec::with_capacity(g.nodes.len());
     let mut ops: BTreeMap<String, (usize, usize, usize)> = BTreeMap::new();
-    let (mut total_macs, mut accel_macs, mut macs_known) = (0u64, 0u64, true);
-    let (mut live, mut accel_nodes) = (0usize, 0usize);
     let mut blockers: BTreeMap<&'static str, (usize, u64, String)> = BTreeMap::new();
     for (k, n) in g.nodes.iter().enumerate() {
         let v = &i.verdicts[k];
@@ -278,17 +386,6 @@ pub fn build(i: &Inputs) -> AnalyzeReport {
             Side::Accel => e.0 += 1,
             Side::Cpu => e.1 += 1,
             Side::Const => e.2 += 1,
-        }
-        if side != Side::Const {
-            live += 1;
-            match n.cost.macs {
-                Some(m) => total_macs = total_macs.saturating_add(m),
-                None => macs_known = false,
-            }
-            if side == Side::Accel {
-                accel_nodes += 1;
-                accel_macs = accel_macs.saturating_add(n.cost.macs.unwrap_or(0));
-            }
         }
         if v.candidate == Candidate::Cpu {
             for r in v.reasons.iter().filter(|r| r.blocking) {
@@ -340,7 +437,7 @@ pub fn build(i: &Inputs) -> AnalyzeReport {
                 }
             }
             let macs: u64 = p.nodes.iter().map(|n| g.node(*n).cost.macs.unwrap_or(0)).sum();
-            let wb = partition_weight_bytes(g, &p.nodes);
+            let wb = crate::cut::cost::weight_bytes(g, i.costs, &p.nodes);
             let node_ps: u64 = p
                 .nodes
                 .iter()
@@ -409,8 +506,6 @@ pub fn build(i: &Inputs) -> AnalyzeReport {
             }
         })
         .collect();
-    let boundary_bytes: u64 = cut_points.iter().map(|c| c.bytes.unwrap_or(0)).sum();
-    let accel_partitions = plan.partitions.iter().filter(|p| p.side == Side::Accel).count();
     let mut blockers: Vec<Blocker> = blockers
         .into_iter()
         .map(|(code, (n, m, ex))| Blocker {
@@ -437,6 +532,7 @@ pub fn build(i: &Inputs) -> AnalyzeReport {
     let mut warnings = i.warnings.clone();
     warnings.sort();
     warnings.dedup();
+    let summary = summary(i);
     AnalyzeReport {
         schema_version: ANALYZE_SCHEMA_VERSION,
         estimate_note: ESTIMATE_NOTE,
@@ -444,7 +540,7 @@ pub fn build(i: &Inputs) -> AnalyzeReport {
             path: i.model.path.display().to_string(),
             nodes: g.nodes.len(),
             params: i.params,
-            macs: macs_known.then_some(total_macs),
+            macs: summary.macs,
         },
         target: TargetRef {
             name: t.name().to_string(),
@@ -457,28 +553,7 @@ pub fn build(i: &Inputs) -> AnalyzeReport {
         tensors,
         nodes,
         partitions,
-        summary: Summary {
-            coverage_macs: (macs_known && total_macs > 0).then(|| accel_macs as f64 / total_macs as f64),
-            coverage_nodes: if live > 0 {
-                accel_nodes as f64 / live as f64
-            } else {
-                0.0
-            },
-            accel_partitions,
-            boundary_bytes,
-            transfers: cut_points.len(),
-            objective_us: us(plan.objective_ps),
-            mincut_us: us(plan.mincut_ps),
-            est_latency_us: est_latency_us(i),
-            cpu_only_latency_us: us(i.cpu_only.objective_ps),
-            greedy_us: us(i.greedy.objective_ps),
-            unknown_cost_nodes: i.costs.unknown_work.len(),
-            columns_budget: i.array.columns_budget,
-            columns_used: i.array.columns_used,
-            columns_free: i.array.columns_free,
-            resident: i.array.resident,
-            reconfigure_us: us(i.array.reconfigure_ps),
-        },
+        summary,
         cut_points,
         strategies,
         op_summary: ops
@@ -491,6 +566,7 @@ pub fn build(i: &Inputs) -> AnalyzeReport {
             })
             .collect(),
         blockers,
+        what_if: None,
         warnings,
     }
 }
@@ -498,6 +574,84 @@ pub fn build(i: &Inputs) -> AnalyzeReport {
 pub fn render_json(r: &AnalyzeReport, out: &mut dyn Write) -> std::io::Result<()> {
     serde_json::to_writer_pretty(&mut *out, r)?;
     writeln!(out)
+}
+
+/// A latency for tables: µs, or why it is unknown.
+fn micros(x: Option<f64>, needs: &[String]) -> String {
+    match x {
+        Some(v) => format!("{v:.1} µs"),
+        None if needs.is_empty() => "unknown (some shapes are unknown)".into(),
+        None => format!(
+            "unknown (fix {})",
+            needs
+                .iter()
+                .map(|d| format!("--dim {d}=N"))
+                .collect::<Vec<_>>()
+                .join(" ")
+        ),
+    }
+}
+
+fn signed_pct(x: Option<f64>) -> String {
+    x.map(|v| format!("{:+.1} pt", v * 100.0))
+        .unwrap_or_else(|| "unknown".into())
+}
+
+fn signed_us(x: Option<f64>) -> String {
+    x.map(|v| format!("{v:+.1} µs")).unwrap_or_else(|| "unknown".into())
+}
+
+/// Rows of the what-if comparison: (figure, real, assumed, change).
+fn what_if_rows(s: &Summary, w: &WhatIfReport) -> Vec<[String; 4]> {
+    let a = &w.summary;
+    let d = &w.delta;
+    vec![
+        [
+            "coverage by MACs".into(),
+            pct(s.coverage_macs),
+            pct(a.coverage_macs),
+            signed_pct(d.coverage_macs),
+        ],
+        [
+            "coverage by nodes".into(),
+            pct(Some(s.coverage_nodes)),
+            pct(Some(a.coverage_nodes)),
+            signed_pct(Some(d.coverage_nodes)),
+        ],
+        [
+            "accelerator partitions".into(),
+            s.accel_partitions.to_string(),
+            a.accel_partitions.to_string(),
+            format!("{:+}", d.accel_partitions),
+        ],
+        [
+            "boundary crossings".into(),
+            s.transfers.to_string(),
+            a.transfers.to_string(),
+            format!("{:+}", d.transfers),
+        ],
+        [
+            "boundary bytes".into(),
+            grouped(s.boundary_bytes),
+            grouped(a.boundary_bytes),
+            format!("{:+}", d.boundary_bytes),
+        ],
+        [
+            "est. latency".into(),
+            micros(s.est_latency_us, &s.needs_dims),
+            micros(a.est_latency_us, &a.needs_dims),
+            signed_us(d.est_latency_us),
+        ],
+    ]
+}
+
+#[derive(Tabled)]
+struct WhatIfTable {
+    figure: String,
+    real: String,
+    #[tabled(rename = "under the assumptions")]
+    assumed: String,
+    change: String,
 }
 
 fn pct(x: Option<f64>) -> String {
@@ -617,15 +771,15 @@ pub fn render_table(r: &AnalyzeReport, out: &mut dyn Write) -> std::io::Result<(
         },
         Kv {
             k: "est. latency (min-cut plan)".into(),
-            v: format!("{:.1} µs", s.est_latency_us),
+            v: micros(s.est_latency_us, &s.needs_dims),
         },
         Kv {
             k: "est. latency, greedy offload".into(),
-            v: format!("{:.1} µs", s.greedy_us),
+            v: micros(s.greedy_us, &s.needs_dims),
         },
         Kv {
             k: "est. latency, CPU only".into(),
-            v: format!("{:.1} µs", s.cpu_only_latency_us),
+            v: micros(s.cpu_only_latency_us, &s.needs_dims),
         },
     ];
     writeln!(out, "{}", Table::new(kv).with(Style::sharp()))?;
@@ -696,10 +850,40 @@ pub fn render_table(r: &AnalyzeReport, out: &mut dyn Write) -> std::io::Result<(
         writeln!(out, "what keeps work on the CPU (fix these first):")?;
         writeln!(out, "{}", Table::new(rows).with(Style::sharp()))?;
     }
+    if let Some(w) = &r.what_if {
+        writeln!(out, "what-if ({}):", w.assumptions.join(", "))?;
+        let rows: Vec<WhatIfTable> = what_if_rows(s, w)
+            .into_iter()
+            .map(|[figure, real, assumed, change]| WhatIfTable {
+                figure,
+                real,
+                assumed,
+                change,
+            })
+            .collect();
+        writeln!(out, "{}", Table::new(rows).with(Style::sharp()))?;
+        if !w.moved_to_accel.is_empty() {
+            writeln!(
+                out,
+                "moved to the accelerator under the assumptions: {}",
+                shortlist(&w.moved_to_accel)
+            )?;
+        }
+    }
     for w in &r.warnings {
         writeln!(out, "warning: {}: {}", w.code, w.message)?;
     }
     writeln!(out, "{}", r.estimate_note)
+}
+
+/// The first few names and how many more.
+fn shortlist(names: &[String]) -> String {
+    let shown: Vec<&str> = names.iter().take(8).map(String::as_str).collect();
+    if names.len() > shown.len() {
+        format!("{} and {} more", shown.join(", "), names.len() - shown.len())
+    } else {
+        shown.join(", ")
+    }
 }
 
 pub fn render_markdown(r: &AnalyzeReport, out: &mut dyn Write) -> std::io::Result<()> {
@@ -717,8 +901,10 @@ pub fn render_markdown(r: &AnalyzeReport, out: &mut dyn Write) -> std::io::Resul
     )?;
     writeln!(
         out,
-        "| est. latency (min-cut / greedy / CPU only) | {:.1} / {:.1} / {:.1} µs |",
-        s.est_latency_us, s.greedy_us, s.cpu_only_latency_us
+        "| est. latency (min-cut / greedy / CPU only) | {} / {} / {} |",
+        micros(s.est_latency_us, &s.needs_dims),
+        micros(s.greedy_us, &s.needs_dims),
+        micros(s.cpu_only_latency_us, &s.needs_dims)
     )?;
     if !r.blockers.is_empty() {
         writeln!(out, "\n**What keeps work on the CPU**\n")?;
@@ -732,6 +918,16 @@ pub fn render_markdown(r: &AnalyzeReport, out: &mut dyn Write) -> std::io::Resul
                 grouped(b.macs),
                 b.example.replace('|', "\\|")
             )?;
+        }
+    }
+    if let Some(w) = &r.what_if {
+        writeln!(out, "\n**What-if: {}**\n", w.assumptions.join(", "))?;
+        writeln!(
+            out,
+            "| figure | real | under the assumptions | change |\n|---|---|---|---|"
+        )?;
+        for [f, a, b, c] in what_if_rows(s, w) {
+            writeln!(out, "| {f} | {a} | {b} | {c} |")?;
         }
     }
     writeln!(out, "\n_{}_", r.estimate_note)

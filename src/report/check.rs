@@ -21,6 +21,8 @@ pub struct Failure {
 pub struct CheckReport {
     pub schema_version: u32,
     pub policy: String,
+    /// What-if assumptions the outcomes were evaluated under (empty: the real figures).
+    pub assumptions: Vec<String>,
     pub outcomes: Vec<Outcome>,
     pub failures: Vec<Failure>,
     pub passed: bool,
@@ -53,17 +55,29 @@ fn source(o: &Outcome) -> &'static str {
     }
 }
 
+/// "; real: pass 12.3 %" for outcomes evaluated under assumptions.
+fn real_note(o: &Outcome) -> String {
+    o.real
+        .as_ref()
+        .map(|r| format!("; real: {} {}", if r.passed { "pass" } else { "FAIL" }, r.measured))
+        .unwrap_or_default()
+}
+
 pub fn render_table(r: &CheckReport, out: &mut dyn Write) -> std::io::Result<()> {
+    if !r.assumptions.is_empty() {
+        writeln!(out, "what-if: evaluated under {}", r.assumptions.join(", "))?;
+    }
     for o in &r.outcomes {
         writeln!(
             out,
-            "{} {} {}: {} (limit {}, from {})",
+            "{} {} {}: {} (limit {}, from {}{})",
             if o.passed { "pass" } else { "FAIL" },
             o.model,
             o.rule,
             o.message,
             o.limit,
-            source(o)
+            source(o),
+            real_note(o)
         )?;
     }
     for f in &r.failures {
@@ -90,14 +104,31 @@ pub fn render_markdown(r: &CheckReport, out: &mut dyn Write) -> std::io::Result<
         r.failures.len(),
         r.policy
     )?;
-    writeln!(
-        out,
-        "| | model | rule | measured | limit | from |\n|---|---|---|---|---|---|"
-    )?;
-    for o in &r.outcomes {
+    if !r.assumptions.is_empty() {
         writeln!(
             out,
-            "| {} | `{}` | `{}` | {} | {} | {} |",
+            "What-if: measured under {}; the real figure is in the last column.\n",
+            r.assumptions.join(", ")
+        )?;
+        writeln!(
+            out,
+            "| | model | rule | measured | limit | from | real |\n|---|---|---|---|---|---|---|"
+        )?;
+    } else {
+        writeln!(
+            out,
+            "| | model | rule | measured | limit | from |\n|---|---|---|---|---|---|"
+        )?;
+    }
+    for o in &r.outcomes {
+        let real = o
+            .real
+            .as_ref()
+            .map(|x| format!(" {} {} |", if x.passed { "✅" } else { "❌" }, x.measured))
+            .unwrap_or_default();
+        writeln!(
+            out,
+            "| {} | `{}` | `{}` | {} | {} | {} |{real}",
             if o.passed { "✅" } else { "❌" },
             o.model,
             o.rule,

@@ -139,6 +139,13 @@ fn only_quant_params(g: &Graph, v: crate::ir::ValueId) -> bool {
 /// Weights (params, bytes): stored initializers and generated constants (Constant,
 /// ConstantOfShape) that are not integer shape/index data. Quantization scales and zero
 /// points count as weight bytes but not as parameters. Every graph, bodies included.
+/// (parameters, weight bytes) of a graph and its bodies (conventions in the README).
+pub fn params_and_weight_bytes(g: &Graph) -> (u64, u64) {
+    let mut w = (0, 0);
+    weights(g, &mut w);
+    w
+}
+
 fn weights(g: &Graph, acc: &mut (u64, u64)) {
     for (i, v) in g.values.iter().enumerate() {
         let source = match v.kind {
@@ -242,8 +249,7 @@ pub fn build(model: &Model, diags: &[Diagnostic], reasons: &UnknownReasons) -> I
     }
     because.sort();
     because.dedup();
-    let mut w = (0, 0);
-    weights(g, &mut w);
+    let w = params_and_weight_bytes(g);
     let unknown_shapes = reasons
         .iter()
         .map(|(id, why)| {

@@ -5,6 +5,8 @@ pub mod analyze;
 pub mod check;
 pub mod explain;
 pub mod inspect;
+pub mod survey;
+pub mod term;
 pub mod visual;
 
 /// Output formats of the reading commands.

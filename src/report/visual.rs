@@ -232,8 +232,8 @@ table {{ border-collapse: collapse; width: 100%; background: #fff; }} td, th {{ 
 <div class="figure">coverage by nodes<b>{covn:.1} %</b></div>
 <div class="figure">accelerator partitions<b>{parts_n}</b></div>
 <div class="figure">boundary bytes / inference<b>{bytes}</b></div>
-<div class="figure">est. latency<b>{lat:.1} µs</b></div>
-<div class="figure">CPU only (est.)<b>{cpu:.1} µs</b></div>
+<div class="figure">est. latency<b>{lat}</b></div>
+<div class="figure">CPU only (est.)<b>{cpu}</b></div>
 <div class="figure">columns free<b>{free} of {budget}</b></div>
 </div>
 <h2>Execution order</h2>
@@ -259,8 +259,12 @@ table {{ border-collapse: collapse; width: 100%; background: #fff; }} td, th {{ 
         covn = s.coverage_nodes * 100.0,
         parts_n = s.accel_partitions,
         bytes = crate::report::grouped(s.boundary_bytes),
-        lat = s.est_latency_us,
-        cpu = s.cpu_only_latency_us,
+        lat = s
+            .est_latency_us
+            .map_or_else(|| "unknown (fix dims)".to_string(), |v| format!("{v:.1} µs")),
+        cpu = s
+            .cpu_only_latency_us
+            .map_or_else(|| "unknown (fix dims)".to_string(), |v| format!("{v:.1} µs")),
         free = s.columns_free,
         budget = s.columns_budget,
         svg = svg,

@@ -358,6 +358,73 @@ impl Target {
     pub fn floats_as_bf16(&self) -> bool {
         self.file.float.mode == "bf16"
     }
+
+    /// The what-if `--assume-supported`: this target plus one rule accepting `ops` (each `Op`
+    /// or `domain.Op`) under the target's own data types, i.e. every distinct type signature
+    /// its rules list, with static shapes and no other limit. Ops keep their real rules too;
+    /// a node passes if any rule accepts it.
+    pub fn with_assumed_ops(&self, ops: &[String]) -> Target {
+        let mut t = self.clone();
+        if ops.is_empty() {
+            return t;
+        }
+        let mut types: Vec<schema::TypeSig> = Vec::new();
+        for r in &self.file.rules {
+            for sig in &r.types {
+                let same = |x: &schema::TypeSig| x.act == sig.act && x.weight == sig.weight && x.out == sig.out;
+                if !types.iter().any(same) {
+                    types.push(sig.clone());
+                }
+            }
+        }
+        let mut by_domain: std::collections::BTreeMap<String, Vec<String>> = Default::default();
+        for op in ops {
+            let (domain, name) = split_op(op);
+            by_domain.entry(domain.to_string()).or_default().push(name.to_string());
+        }
+        for (domain, names) in by_domain {
+            t.file.rules.push(schema::RuleSpec {
+                id: if domain.is_empty() {
+                    ASSUMED_RULE.to_string()
+                } else {
+                    format!("{ASSUMED_RULE}:{domain}")
+                },
+                why: "what-if: --assume-supported treats these ops as capable under the target's types".into(),
+                ops: names,
+                domain,
+                opsets: None,
+                types: types.clone(),
+                weight_granularity: None,
+                weight_axis: None,
+                symmetric_weights: false,
+                per_tensor_activations: false,
+                pow2_scales: false,
+                blocked_weights: true,
+                kernel_max: None,
+                stride_max: None,
+                dilation_max: None,
+                groups: None,
+                attrs: Vec::new(),
+                static_shapes: true,
+                max_rank: None,
+                max_dim: None,
+                channel_align: None,
+            });
+        }
+        t
+    }
+}
+
+/// The id of the rule `Target::with_assumed_ops` adds.
+pub const ASSUMED_RULE: &str = "assumed-supported";
+
+/// `domain.Op` → (domain, Op); a bare `Op` is in the default domain.
+pub fn split_op(spec: &str) -> (&str, &str) {
+    match spec.rsplit_once('.') {
+        Some((d, o)) if d != "ai.onnx" => (d, o),
+        Some((_, o)) => ("", o),
+        None => ("", spec),
+    }
 }
 
 #[cfg(test)]

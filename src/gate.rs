@@ -24,11 +24,12 @@ pub struct CheckRequest<'a> {
 }
 
 /// Runs the check; returns the report and the baseline of what was measured.
-pub fn check(req: &CheckRequest) -> (CheckReport, Baseline) {
+pub fn check(req: &CheckRequest, progress: &(dyn Fn(usize, usize) + Sync)) -> (CheckReport, Baseline) {
     let mut outcomes = Vec::new();
     let mut failures = Vec::new();
     let mut entries = Vec::new();
-    for path in req.models {
+    for (done, path) in req.models.iter().enumerate() {
+        progress(done, req.models.len());
         let shown = path.display().to_string();
         let eff = policy::effective(req.policy, &shown, &req.cli);
         let run = || -> Result<(AnalyzeReport, Option<AnalyzeReport>), String> {

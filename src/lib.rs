@@ -17,6 +17,7 @@ pub mod quant;
 pub mod report;
 pub mod rules;
 pub mod samples;
+pub mod suggest;
 pub mod survey;
 pub mod target;
 pub mod text;
@@ -198,9 +199,11 @@ pub fn stages_from_verdicts(
 ) -> Result<Stages, cut::PinError> {
     let g = &read.model.graph;
     let costs = cut::cost::costs(g, &verdicts, &target);
-    let plan = cut::plan(g, &verdicts, &costs, opts.strategy, &opts.pins)?;
-    let greedy = cut::plan(g, &verdicts, &costs, cut::Strategy::Greedy, &opts.pins)?;
-    let cpu_only = cut::plan(g, &verdicts, &costs, cut::Strategy::Cpu, &opts.pins)?;
+    let cut::Plans {
+        chosen: plan,
+        greedy,
+        cpu: cpu_only,
+    } = cut::plans(g, &verdicts, &costs, opts.strategy, &opts.pins)?;
     let array = map::map(g, &costs, &plan, &target, opts.columns);
     Ok(Stages {
         target,
@@ -235,7 +238,20 @@ pub fn analyze_stages(
     target: target::Target,
     opts: &AnalyzeOptions,
 ) -> Result<Analysis, AnalyzeError> {
+    analyze_stages_observed(path, overrides, target, opts, &mut |_| {})
+}
+
+/// `analyze_stages`, telling `observe` which stage starts (for a progress line).
+pub fn analyze_stages_observed(
+    path: &Path,
+    overrides: &Overrides,
+    target: target::Target,
+    opts: &AnalyzeOptions,
+    observe: &mut dyn FnMut(&'static str),
+) -> Result<Analysis, AnalyzeError> {
+    observe("reading the model");
     let read = read_model(path, overrides)?;
+    observe("judging, cutting, mapping");
     analyze_read(read, target, opts)
 }
 

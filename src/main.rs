@@ -68,7 +68,7 @@ fn read_text(path: &std::path::Path) -> anyhow::Result<String> {
     std::fs::read_to_string(path).with_context(|| format!("{}: cannot read", path.display()))
 }
 
-fn run_check(args: tilecut::cli::CheckArgs) -> anyhow::Result<u8> {
+fn run_check(args: tilecut::cli::CheckArgs, quiet: bool) -> anyhow::Result<u8> {
     use tilecut::report::check;
     if args.init {
         std::io::stdout()
@@ -126,11 +126,19 @@ fn run_check(args: tilecut::cli::CheckArgs) -> anyhow::Result<u8> {
         baseline,
         what_if: args.what_if.what_if()?,
     };
-    let (report, measured) = tilecut::gate::check(&req);
+    let bar = std::sync::Mutex::new(tilecut::report::term::Progress::new("checking", quiet));
+    let (report, measured) = tilecut::gate::check(&req, &|done, total| {
+        if let Ok(mut b) = bar.lock() {
+            b.update(done, total, "models");
+        }
+    });
+    if let Ok(mut b) = bar.lock() {
+        b.finish();
+    }
     let mut buf = Vec::new();
     match args.format {
         Format::Json => check::render_json(&report, &mut buf)?,
-        Format::Table => check::render_table(&report, &mut buf)?,
+        Format::Table => check::render_table(&report, &mut buf, tilecut::report::term::Paint::for_stdout())?,
         Format::Markdown => check::render_markdown(&report, &mut buf)?,
     }
     if let Some(p) = &args.junit {
@@ -309,7 +317,12 @@ fn run(cli: Cli) -> anyhow::Result<u8> {
             let overrides = args.model.overrides()?;
             let target = tilecut::target::load(&args.target.target)?;
             let opts = args.cut.options(args.columns, args.what_if.what_if()?);
-            let analysis = tilecut::analyze_stages(&args.model.model, &overrides, target, &opts)?;
+            let mut bar = tilecut::report::term::Progress::new("analyze", quiet);
+            let analysis =
+                tilecut::analyze_stages_observed(&args.model.model, &overrides, target, &opts, &mut |stage| {
+                    bar.update(0, 0, stage)
+                })?;
+            bar.update(0, 0, "writing the report");
             let report = analysis.report();
             if let Some(p) = &args.dot {
                 let mut x = Vec::new();
@@ -324,7 +337,7 @@ fn run(cli: Cli) -> anyhow::Result<u8> {
             let mut buf = Vec::new();
             match args.format {
                 Format::Json => analyze::render_json(&report, &mut buf)?,
-                Format::Table => analyze::render_table(&report, &mut buf)?,
+                Format::Table => analyze::render_table(&report, &mut buf, tilecut::report::term::Paint::for_stdout())?,
                 Format::Markdown => analyze::render_markdown(&report, &mut buf)?,
             }
             std::io::stdout().lock().write_all(&buf)?;
@@ -358,7 +371,7 @@ fn run(cli: Cli) -> anyhow::Result<u8> {
             std::io::stdout().lock().write_all(out.as_bytes())?;
             Ok(0)
         }
-        Command::Check(args) => run_check(args),
+        Command::Check(args) => run_check(args, quiet),
         Command::Split(args) => {
             let overrides = args.model.overrides()?;
             let target = tilecut::target::load(&args.target.target)?;

@@ -433,3 +433,102 @@ fn analyze_json_matches_the_committed_schema() {
         }
     }
 }
+
+/// "Fix this first": CPU-bound nodes, costliest first, each with a suggestion that names only
+/// ops the target has rules for and that fits the node (checked by hand below against the
+/// ONNX operator specification's definitions of the ops involved).
+#[test]
+fn fix_first_ranks_cpu_bound_work_with_suggestions_that_fit() {
+    for (_, name) in samples() {
+        for target in ["compact-array", "wide-array"] {
+            let r = json(&[
+                "analyze",
+                sample(&name).to_str().expect("utf8"),
+                "--target",
+                target,
+                "--format",
+                "json",
+            ]);
+            let rows = r["fix_first"].as_array().expect("fix_first");
+            let mut last = f64::INFINITY;
+            for f in rows {
+                assert!(
+                    f["suggestion"].as_str().is_some_and(|s| !s.is_empty()),
+                    "{name} {target}: no suggestion for {f}"
+                );
+                let cpu = f["cpu_us"].as_f64().unwrap_or(0.0);
+                assert!(cpu <= last + 1e-9, "{name} {target}: not costliest first");
+                last = cpu;
+                // Every listed node really is on the CPU with that first blocking reason.
+                for n in f["nodes"].as_array().expect("nodes") {
+                    let node = r["nodes"]
+                        .as_array()
+                        .expect("nodes")
+                        .iter()
+                        .find(|x| &x["name"] == n)
+                        .expect("listed node exists");
+                    assert_eq!(node["placement"], "cpu");
+                    let first = node["reasons"]
+                        .as_array()
+                        .expect("reasons")
+                        .iter()
+                        .find(|x| x["blocking"] == true)
+                        .expect("blocked");
+                    assert_eq!(first["code"], f["code"]);
+                }
+            }
+        }
+    }
+    let suggestion = |model: &str, target: &str, node: &str| -> String {
+        let r = json(&[
+            "analyze",
+            sample(model).to_str().expect("utf8"),
+            "--target",
+            target,
+            "--format",
+            "json",
+        ]);
+        r["fix_first"]
+            .as_array()
+            .expect("rows")
+            .iter()
+            .find(|f| f["nodes"].as_array().expect("n").iter().any(|n| n == node))
+            .and_then(|f| f["suggestion"].as_str())
+            .unwrap_or_else(|| panic!("{node} not in fix_first"))
+            .to_string()
+    };
+    // gather_41 reads a constant column index: a Gather of a constant index is a Slice (ONNX
+    // Gather spec) and compact-array has rules for Slice and Reshape.
+    let s = suggestion("parcel_label_detector_qdq.onnx", "compact-array", "gather_41");
+    assert!(s.contains("Slice"), "{s}");
+    // gather_48's indices come from NonMaxSuppression at run time: no Slice for it.
+    let s = suggestion("parcel_label_detector_qdq.onnx", "compact-array", "gather_48");
+    assert!(!s.contains("Slice") && s.contains("--assume-supported Gather"), "{s}");
+    // Gelu ≈ x·Sigmoid(1.702x): compact-array has Mul and Sigmoid rules; an approximation.
+    let s = suggestion("command_word_encoder_f32.onnx", "compact-array", "gelu_47");
+    assert!(s.contains("Sigmoid") && s.contains("approximation"), "{s}");
+    // The encoder's ReduceMean averages over frames (axis 1 of [batch, frames, 64]), not over
+    // spatial axes, so it is not a GlobalAveragePool.
+    let r = json(&[
+        "analyze",
+        sample("command_word_encoder_f32.onnx").to_str().expect("utf8"),
+        "--format",
+        "json",
+    ]);
+    let reduce = r["fix_first"]
+        .as_array()
+        .expect("rows")
+        .iter()
+        .find(|f| f["op"] == "ReduceMean")
+        .expect("ReduceMean row");
+    assert!(!reduce["suggestion"].as_str().expect("s").contains("GlobalAveragePool"));
+    // Float convolutions: quantize to the first integer signature of compact-array's conv rule.
+    let s = suggestion("fruit_grader_f32.onnx", "compact-array", "conv_4");
+    assert!(
+        s.contains("int8 × int8 → int8") && s.contains("--assume-quantized"),
+        "{s}"
+    );
+    // Symbolic dims: name them.
+    let s = suggestion("command_word_encoder_f32.onnx", "wide-array", "gelu_47");
+    assert!(s.contains("--dim batch=N") && s.contains("--dim frames=N"), "{s}");
+}

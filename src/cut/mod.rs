@@ -476,6 +476,24 @@ pub const MAX_REFINEMENT_TRIES: usize = 256;
 
 /// Plans the cut with `strategy`.
 pub fn plan(g: &Graph, verdicts: &[Verdict], costs: &Costs, strategy: Strategy, pins: &Pins) -> Result<Plan, PinError> {
+    Ok(plans(g, verdicts, costs, strategy, pins)?.chosen)
+}
+
+/// The plan of the chosen strategy with the two simple strategies beside it, each computed
+/// once (the min-cut plan is never worse than either, so it needs them anyway).
+pub struct Plans {
+    pub chosen: Plan,
+    pub greedy: Plan,
+    pub cpu: Plan,
+}
+
+pub fn plans(
+    g: &Graph,
+    verdicts: &[Verdict],
+    costs: &Costs,
+    strategy: Strategy,
+    pins: &Pins,
+) -> Result<Plans, PinError> {
     let (pin_cpu, pin_accel) = resolve_pins(g, verdicts, pins)?;
     let n = g.nodes.len();
     let fixed = |want: fn(Candidate) -> bool| -> Vec<Side> {
@@ -491,17 +509,15 @@ pub fn plan(g: &Graph, verdicts: &[Verdict], costs: &Costs, strategy: Strategy, 
             })
             .collect()
     };
-    match strategy {
-        Strategy::Cpu => {
-            let side = fixed(|_| false);
-            let serial = serial_cost(g, costs, &side);
-            Ok(finish(g, costs, strategy, side, serial, 0))
-        }
-        Strategy::Greedy => {
-            let side = fixed(|c| c == Candidate::Accel);
-            let serial = serial_cost(g, costs, &side);
-            Ok(finish(g, costs, strategy, side, serial, 0))
-        }
+    let simple = |s: Strategy, side: Vec<Side>| {
+        let serial = serial_cost(g, costs, &side);
+        finish(g, costs, s, side, serial, 0)
+    };
+    let cpu = simple(Strategy::Cpu, fixed(|_| false));
+    let greedy = simple(Strategy::Greedy, fixed(|c| c == Candidate::Accel));
+    let chosen = match strategy {
+        Strategy::Cpu => cpu.clone(),
+        Strategy::Greedy => greedy.clone(),
         Strategy::Mincut => {
             let (side, value) = solve(g, costs, &pin_cpu, &pin_accel);
             let mut best = finish(g, costs, strategy, side, value, 0);
@@ -537,18 +553,18 @@ pub fn plan(g: &Graph, verdicts: &[Verdict], costs: &Costs, strategy: Strategy, 
                 break;
             }
             // Never worse than the simple strategies.
-            for alt in [Strategy::Greedy, Strategy::Cpu] {
-                let mut other = plan(g, verdicts, costs, alt, pins)?;
+            for other in [&greedy, &cpu] {
                 if other.objective_ps < best.objective_ps {
-                    other.strategy = Strategy::Mincut;
-                    other.mincut_ps = value;
-                    best = other;
+                    let mut o = other.clone();
+                    o.strategy = Strategy::Mincut;
+                    best = o;
                 }
             }
             best.mincut_ps = value;
-            Ok(best)
+            best
         }
-    }
+    };
+    Ok(Plans { chosen, greedy, cpu })
 }
 
 /// A plan whose boundaries are the user's `--cut-at` tensors: a node's level is the largest

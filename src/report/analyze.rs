@@ -32,6 +32,7 @@ use crate::rules::{Candidate, Reason, Verdict};
 use crate::target::Target;
 
 use super::inspect::{shape_json, JsonShape};
+use super::term::{Paint, Tone};
 use super::{grouped, maybe};
 
 pub const ANALYZE_SCHEMA_VERSION: u32 = 2;
@@ -54,6 +55,9 @@ pub struct AnalyzeReport {
     pub strategies: Vec<StrategyRow>,
     pub op_summary: Vec<OpRow>,
     pub blockers: Vec<Blocker>,
+    /// CPU-bound nodes grouped by op and first blocking reason, the costliest first, each
+    /// with a concrete suggestion.
+    pub fix_first: Vec<FixRow>,
     /// The figures under `--assume-*` assumptions, beside the real ones above.
     pub what_if: Option<WhatIfReport>,
     pub warnings: Vec<Diagnostic>,
@@ -258,6 +262,76 @@ pub struct Blocker {
     /// MACs this reason keeps off the accelerator.
     pub macs: u64,
     pub example: String,
+}
+
+/// One "fix this first" entry: nodes of one op kept on the CPU by the same first reason.
+#[derive(Serialize, Debug, Clone)]
+pub struct FixRow {
+    pub op: String,
+    pub code: String,
+    pub nodes: Vec<String>,
+    /// Their estimated time on the CPU per inference (what keeping them there costs); null
+    /// when some of them depend on unknown dims.
+    pub cpu_us: Option<f64>,
+    pub macs: u64,
+    /// The first node's blocking reason.
+    pub reason: String,
+    pub suggestion: Option<String>,
+}
+
+fn fix_first(i: &Inputs) -> Vec<FixRow> {
+    let g = &i.model.graph;
+    // Grouped by op, first reason and suggestion: nodes of one op may need different changes.
+    type Key = (String, &'static str, Option<String>);
+    type Group = (Vec<String>, u64, u64, String, bool);
+    let mut groups: BTreeMap<Key, Group> = BTreeMap::new();
+    for (k, n) in g.nodes.iter().enumerate() {
+        let v = &i.verdicts[k];
+        if v.candidate != Candidate::Cpu || i.plan.side[k] != Side::Cpu {
+            continue;
+        }
+        let Some(first) = v.reasons.iter().find(|r| r.blocking) else {
+            continue;
+        };
+        let label = if n.is_default_domain() {
+            n.op_type.clone()
+        } else {
+            format!("{}.{}", n.domain, n.op_type)
+        };
+        let suggestion = crate::suggest::suggest(g, crate::ir::NodeId(k as u32), v, i.target);
+        let e = groups
+            .entry((label, first.code, suggestion))
+            .or_insert_with(|| (Vec::new(), 0, 0, first.message.clone(), true));
+        e.0.push(n.name.clone());
+        e.1 = e.1.saturating_add(i.costs.cpu_ps[k]);
+        e.2 = e.2.saturating_add(n.cost.macs.unwrap_or(0));
+        e.4 &= n.cost.macs.is_some() && n.cost.ops.is_some();
+    }
+    let mut rows: Vec<(u64, FixRow)> = groups
+        .into_iter()
+        .map(|((op, code, suggestion), (nodes, ps, macs, reason, known))| {
+            (
+                ps,
+                FixRow {
+                    op,
+                    code: code.to_string(),
+                    nodes,
+                    cpu_us: known.then(|| us(ps)),
+                    macs,
+                    reason,
+                    suggestion,
+                },
+            )
+        })
+        .collect();
+    rows.sort_by(|(pa, a), (pb, b)| {
+        pb.cmp(pa)
+            .then(b.macs.cmp(&a.macs))
+            .then(a.op.cmp(&b.op))
+            .then(a.code.cmp(&b.code))
+            .then(a.suggestion.cmp(&b.suggestion))
+    });
+    rows.into_iter().map(|(_, r)| r).collect()
 }
 
 pub fn us(ps: u64) -> f64 {
@@ -566,6 +640,7 @@ pub fn build(i: &Inputs) -> AnalyzeReport {
             })
             .collect(),
         blockers,
+        fix_first: fix_first(i),
         what_if: None,
         warnings,
     }
@@ -694,13 +769,20 @@ struct CutTable {
 }
 
 #[derive(Tabled)]
-struct BlockerRow {
-    reason: String,
+struct FixTable {
+    op: String,
     nodes: usize,
-    #[tabled(rename = "MACs kept off")]
+    #[tabled(rename = "CPU µs")]
+    cpu: String,
+    #[tabled(rename = "MACs")]
     macs: String,
-    example: String,
+    why: String,
+    #[tabled(rename = "what to change")]
+    change: String,
 }
+
+/// Column width the long text columns wrap at.
+const WRAP: usize = 60;
 
 #[derive(Tabled)]
 struct OpTable {
@@ -709,6 +791,14 @@ struct OpTable {
     cpu: usize,
     #[tabled(rename = "const")]
     konst: usize,
+}
+
+fn strategy_name(s: crate::cut::Strategy) -> &'static str {
+    match s {
+        crate::cut::Strategy::Mincut => "min-cut",
+        crate::cut::Strategy::Greedy => "greedy",
+        crate::cut::Strategy::Cpu => "CPU-only",
+    }
 }
 
 fn side_name(s: Side) -> &'static str {
@@ -739,7 +829,7 @@ fn route(c: &CutRow) -> String {
 /// Rows a table section shows before it says how many it left out.
 const ROWS: usize = 20;
 
-pub fn render_table(r: &AnalyzeReport, out: &mut dyn Write) -> std::io::Result<()> {
+pub fn render_table(r: &AnalyzeReport, out: &mut dyn Write, paint: Paint) -> std::io::Result<()> {
     let s = &r.summary;
     let kv = vec![
         Kv {
@@ -770,7 +860,7 @@ pub fn render_table(r: &AnalyzeReport, out: &mut dyn Write) -> std::io::Result<(
             v: format!("{} ({} bytes per inference)", s.transfers, grouped(s.boundary_bytes)),
         },
         Kv {
-            k: "est. latency (min-cut plan)".into(),
+            k: format!("est. latency ({} plan)", strategy_name(r.strategy)),
             v: micros(s.est_latency_us, &s.needs_dims),
         },
         Kv {
@@ -788,7 +878,10 @@ pub fn render_table(r: &AnalyzeReport, out: &mut dyn Write) -> std::io::Result<(
         .iter()
         .map(|p| PartRow {
             id: p.id,
-            side: side_name(p.side).into(),
+            side: paint.paint(
+                if p.side == Side::Accel { Tone::Good } else { Tone::Warn },
+                side_name(p.side),
+            ),
             nodes: p.nodes.len(),
             macs: grouped(p.macs),
             weights: grouped(p.weight_bytes),
@@ -799,7 +892,7 @@ pub fn render_table(r: &AnalyzeReport, out: &mut dyn Write) -> std::io::Result<(
             latency: format!("{:.1}", p.est_latency_us),
         })
         .collect();
-    writeln!(out, "partitions in execution order:")?;
+    writeln!(out, "{}", paint.paint(Tone::Strong, "partitions in execution order:"))?;
     writeln!(out, "{}", Table::new(parts).with(Style::sharp()))?;
     if !r.cut_points.is_empty() {
         let cuts: Vec<CutTable> = r
@@ -814,7 +907,7 @@ pub fn render_table(r: &AnalyzeReport, out: &mut dyn Write) -> std::io::Result<(
                 cost: format!("{:.2}", c.transfer_us),
             })
             .collect();
-        writeln!(out, "cut points:")?;
+        writeln!(out, "{}", paint.paint(Tone::Strong, "cut points:"))?;
         writeln!(out, "{}", Table::new(cuts).with(Style::sharp()))?;
         if r.cut_points.len() > ROWS {
             writeln!(
@@ -835,23 +928,43 @@ pub fn render_table(r: &AnalyzeReport, out: &mut dyn Write) -> std::io::Result<(
         })
         .collect();
     writeln!(out, "{}", Table::new(ops).with(Style::sharp()))?;
-    if !r.blockers.is_empty() {
-        let rows: Vec<BlockerRow> = r
-            .blockers
+    if !r.fix_first.is_empty() {
+        let rows: Vec<FixTable> = r
+            .fix_first
             .iter()
             .take(ROWS)
-            .map(|b| BlockerRow {
-                reason: b.code.clone(),
-                nodes: b.nodes,
-                macs: grouped(b.macs),
-                example: b.example.clone(),
+            .map(|f| FixTable {
+                op: f.op.clone(),
+                nodes: f.nodes.len(),
+                cpu: f.cpu_us.map_or_else(|| "unknown".into(), |v| format!("{v:.1}")),
+                macs: grouped(f.macs),
+                why: format!("{}: {}", f.code, f.reason),
+                change: f.suggestion.clone().unwrap_or_default(),
             })
             .collect();
-        writeln!(out, "what keeps work on the CPU (fix these first):")?;
-        writeln!(out, "{}", Table::new(rows).with(Style::sharp()))?;
+        writeln!(
+            out,
+            "{}",
+            paint.paint(Tone::Strong, "fix these first (CPU-bound work, costliest first):")
+        )?;
+        writeln!(
+            out,
+            "{}",
+            Table::new(rows).with(Style::sharp()).with(
+                tabled::settings::Modify::new(tabled::settings::object::Columns::new(4..6))
+                    .with(tabled::settings::Width::wrap(WRAP).keep_words(true))
+            )
+        )?;
+        if r.fix_first.len() > ROWS {
+            writeln!(out, "… {} more (see --format json)", r.fix_first.len() - ROWS)?;
+        }
     }
     if let Some(w) = &r.what_if {
-        writeln!(out, "what-if ({}):", w.assumptions.join(", "))?;
+        writeln!(
+            out,
+            "{}",
+            paint.paint(Tone::Strong, &format!("what-if ({}):", w.assumptions.join(", ")))
+        )?;
         let rows: Vec<WhatIfTable> = what_if_rows(s, w)
             .into_iter()
             .map(|[figure, real, assumed, change]| WhatIfTable {
@@ -871,9 +984,9 @@ pub fn render_table(r: &AnalyzeReport, out: &mut dyn Write) -> std::io::Result<(
         }
     }
     for w in &r.warnings {
-        writeln!(out, "warning: {}: {}", w.code, w.message)?;
+        writeln!(out, "{} {}: {}", paint.paint(Tone::Warn, "warning:"), w.code, w.message)?;
     }
-    writeln!(out, "{}", r.estimate_note)
+    writeln!(out, "{}", paint.paint(Tone::Dim, r.estimate_note))
 }
 
 /// The first few names and how many more.
@@ -901,22 +1014,29 @@ pub fn render_markdown(r: &AnalyzeReport, out: &mut dyn Write) -> std::io::Resul
     )?;
     writeln!(
         out,
-        "| est. latency (min-cut / greedy / CPU only) | {} / {} / {} |",
+        "| est. latency ({} plan / greedy / CPU only) | {} / {} / {} |",
+        strategy_name(r.strategy),
         micros(s.est_latency_us, &s.needs_dims),
         micros(s.greedy_us, &s.needs_dims),
         micros(s.cpu_only_latency_us, &s.needs_dims)
     )?;
-    if !r.blockers.is_empty() {
-        writeln!(out, "\n**What keeps work on the CPU**\n")?;
-        writeln!(out, "| reason | nodes | MACs kept off | example |\n|---|---|---|---|")?;
-        for b in r.blockers.iter().take(ROWS) {
+    if !r.fix_first.is_empty() {
+        writeln!(out, "\n**Fix these first** (CPU-bound work, costliest first)\n")?;
+        writeln!(
+            out,
+            "| op | nodes | CPU µs | MACs | why | what to change |\n|---|---|---|---|---|---|"
+        )?;
+        for f in r.fix_first.iter().take(ROWS) {
             writeln!(
                 out,
-                "| `{}` | {} | {} | {} |",
-                b.code,
-                b.nodes,
-                grouped(b.macs),
-                b.example.replace('|', "\\|")
+                "| `{}` | {} | {} | {} | `{}`: {} | {} |",
+                f.op,
+                f.nodes.len(),
+                f.cpu_us.map_or_else(|| "unknown".into(), |v| format!("{v:.1}")),
+                grouped(f.macs),
+                f.code,
+                f.reason.replace('|', "\\|"),
+                f.suggestion.as_deref().unwrap_or("").replace('|', "\\|")
             )?;
         }
     }

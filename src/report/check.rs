@@ -63,7 +63,8 @@ fn real_note(o: &Outcome) -> String {
         .unwrap_or_default()
 }
 
-pub fn render_table(r: &CheckReport, out: &mut dyn Write) -> std::io::Result<()> {
+pub fn render_table(r: &CheckReport, out: &mut dyn Write, paint: super::term::Paint) -> std::io::Result<()> {
+    use super::term::Tone;
     if !r.assumptions.is_empty() {
         writeln!(out, "what-if: evaluated under {}", r.assumptions.join(", "))?;
     }
@@ -71,7 +72,11 @@ pub fn render_table(r: &CheckReport, out: &mut dyn Write) -> std::io::Result<()>
         writeln!(
             out,
             "{} {} {}: {} (limit {}, from {}{})",
-            if o.passed { "pass" } else { "FAIL" },
+            if o.passed {
+                paint.paint(Tone::Good, "pass")
+            } else {
+                paint.paint(Tone::Bad, "FAIL")
+            },
             o.model,
             o.rule,
             o.message,
@@ -81,7 +86,7 @@ pub fn render_table(r: &CheckReport, out: &mut dyn Write) -> std::io::Result<()>
         )?;
     }
     for f in &r.failures {
-        writeln!(out, "ERROR {}: {}", f.model, f.error)?;
+        writeln!(out, "{} {}: {}", paint.paint(Tone::Bad, "ERROR"), f.model, f.error)?;
     }
     let failed = r.outcomes.iter().filter(|o| !o.passed).count();
     writeln!(

@@ -55,21 +55,30 @@ impl Paint {
 }
 
 /// A one-line progress indicator on stderr. Silent unless stderr is a terminal and the run
-/// is not quiet; it draws nothing during the first `DELAY` so quick runs do not flicker.
+/// is not quiet; it draws nothing during the first 300 ms so quick runs do not flicker.
 pub struct Progress {
     enabled: bool,
+    delay: Duration,
     started: Instant,
     drawn: bool,
     label: &'static str,
 }
 
-const DELAY: Duration = Duration::from_millis(300);
+/// How long a run goes before the progress line appears; `TILECUT_PROGRESS_AFTER_MS`
+/// overrides it (tests set 0 to see the line on short runs).
+fn delay() -> Duration {
+    std::env::var("TILECUT_PROGRESS_AFTER_MS")
+        .ok()
+        .and_then(|v| v.parse().ok())
+        .map_or(Duration::from_millis(300), Duration::from_millis)
+}
 const WIDTH: usize = 24;
 
 impl Progress {
     pub fn new(label: &'static str, quiet: bool) -> Progress {
         Progress {
             enabled: !quiet && std::io::stderr().is_terminal(),
+            delay: delay(),
             started: Instant::now(),
             drawn: false,
             label,
@@ -78,7 +87,7 @@ impl Progress {
 
     /// Draws `done` of `total` as a bar, or only a stage name when `total` is 0.
     pub fn update(&mut self, done: usize, total: usize, stage: &str) {
-        if !self.enabled || self.started.elapsed() < DELAY {
+        if !self.enabled || self.started.elapsed() < self.delay {
             return;
         }
         let line = if total > 0 {

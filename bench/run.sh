@@ -41,7 +41,7 @@ measure() {
 }
 
 printf '%-20s %10s %9s %10s %9s %10s %8s\n' model tilecut_s rss_MB onnx_py_s rss_MB in-proc_s ratio
-for m in stack_10k stack_30k stack_100k stack_200k heavy_1g_inline heavy_1g_external; do
+for m in stack_10k stack_30k stack_100k stack_200k heavy_1g_inline heavy_1g_external heavy_2g_external; do
   f="$dir/$m.onnx"
   [ -f "$f" ] || continue
   read -r ts tr < <(measure "$bin" inspect "$f" --format json)
@@ -54,6 +54,18 @@ for m in stack_10k stack_30k stack_100k stack_200k heavy_1g_inline heavy_1g_exte
   fi
   printf '%-20s %10s %9d %10s %9d %10.3f %8s\n' "$m" "$ts" $((tr / 1024)) "$ps" $((pr / 1024)) "$ip" "$ratio"
 done
+echo
+echo "split of the model with 2.25 GiB of external data (weights copied range by range, never held in memory):"
+if [ -f "$dir/heavy_2g_external.onnx" ]; then
+  out="$dir/heavy_2g_split"
+  /usr/bin/time -o "$dir/split.time" -f "%e %M" "$bin" split "$dir/heavy_2g_external.onnx" \
+    --target wide-array --strategy greedy --out "$out" --force > /dev/null
+  read -r st sr < "$dir/split.time"
+  size=$(du -sb "$out" | cut -f1)
+  printf 'split: %s s, peak RSS %d MB, %s bytes written into %s\n' "$st" $((sr / 1024)) "$size" "$out"
+  ls -l "$out"
+  rm -rf "$out"
+fi
 echo
 echo "per-stage medians inside tilecut (cargo bench --bench stages):"
 cargo bench --quiet --bench stages -- "$dir" 2>/dev/null | tail -n +1

@@ -37,8 +37,9 @@ pub enum Command {
     Diff(DiffArgs),
     /// Export each partition of the cut as a standalone ONNX model, plus a manifest.
     Split(SplitArgs),
-    /// Run the original model and the chained pieces of a split on the same seeded random
-    /// inputs and compare every output. Exit 0 equal, 1 mismatch, 2 could not run.
+    /// Run the original model and the chained pieces of a split on the same inputs (seeded
+    /// random, or files given with --feed) and compare every output. Exit 0 equal, 1
+    /// mismatch, 2 could not run.
     Verify(VerifyArgs),
     /// Survey a collection of models (files and folders, searched for *.onnx): which
     /// blocker, once lifted, would gain the most. Each lift re-runs only the stages it
@@ -59,8 +60,8 @@ pub enum DevCommand {
         /// Output folder (created if missing).
         dir: PathBuf,
     },
-    /// Write the benchmark models into DIR: stacks of 10k/30k/100k/200k nodes and ~1 GB of
-    /// weights inline and external (several GB of disk).
+    /// Write the benchmark models into DIR: stacks of 10k/30k/50k/100k/200k nodes, 1 GiB of
+    /// weights inline and external, and 2.25 GiB of external weights (about 5 GB of disk).
     BenchModels {
         /// Output folder (created if missing).
         dir: PathBuf,
@@ -302,6 +303,11 @@ pub struct VerifyArgs {
     pub model: ModelArgs,
     /// The folder `tilecut split` wrote.
     pub dir: PathBuf,
+    /// Use this input's values from a file instead of seeded random ones: `NAME=FILE.npy`,
+    /// `NAME=FILE.pb` (an ONNX TensorProto), or `FILE.pb` when the tensor carries the input's
+    /// name (repeatable).
+    #[arg(long = "feed", value_name = "NAME=FILE")]
+    pub feeds: Vec<String>,
     /// Which engine runs the models.
     #[arg(long, value_enum, default_value_t = crate::verify::Engine::Tract)]
     pub engine: crate::verify::Engine,

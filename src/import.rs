@@ -185,6 +185,35 @@ pub fn import(loaded: &LoadedModel, overrides: &Overrides) -> Result<(Model, Vec
     Ok((model, cx.diags))
 }
 
+/// The main graph's nodes with model-local function calls expanded, as wire-format nodes named
+/// the way the IR names them (`call/inner`): what `split` writes when a cut falls inside a call.
+pub fn expanded_main_nodes(loaded: &LoadedModel) -> Result<Vec<onnx::NodeProto>, ReadError> {
+    let proto = &loaded.proto;
+    let overrides = Overrides::default();
+    let mut cx = Cx {
+        path: &loaded.path,
+        dir: &loaded.dir,
+        functions: proto
+            .functions
+            .iter()
+            .map(|f| ((f.domain.clone(), f.name.clone()), f))
+            .collect(),
+        overrides: &overrides,
+        diags: Vec::new(),
+        used_dims: BTreeSet::new(),
+        used_inputs: BTreeSet::new(),
+    };
+    let g = proto
+        .graph
+        .as_ref()
+        .ok_or_else(|| ReadError::invalid(&loaded.path, "no graph"))?;
+    Ok(expand_functions(&mut cx, &g.node, 0, "")?
+        .into_iter()
+        .filter(|f| f.from_function.is_some())
+        .map(|f| f.proto.into_owned())
+        .collect())
+}
+
 fn qualified(domain: &str, op: &str) -> String {
     if domain.is_empty() || domain == "ai.onnx" {
         op.to_string()

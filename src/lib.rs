@@ -5,6 +5,7 @@ pub mod cut;
 pub mod diag;
 pub mod error;
 pub mod fastmap;
+pub mod feeds;
 pub mod gate;
 pub mod import;
 pub mod infer;

@@ -187,41 +187,8 @@ fn run_diff(args: tilecut::cli::DiffArgs) -> anyhow::Result<u8> {
     let d = tilecut::gate::diff(&old, &new, policy.as_ref().map(|p| &p.regression));
     let mut buf = Vec::new();
     match args.format {
-        Format::Json => {
-            serde_json::to_writer_pretty(&mut buf, &d)?;
-            buf.push(b'\n');
-        }
-        _ => {
-            use std::fmt::Write as _;
-            let mut s = String::new();
-            let _ = writeln!(s, "{} → {}", d.old, d.new);
-            for c in &d.placement_changes {
-                let side = |x: Option<tilecut::cut::Side>| {
-                    x.map(|v| format!("{v:?}").to_lowercase())
-                        .unwrap_or_else(|| "absent".into())
-                };
-                let _ = writeln!(
-                    s,
-                    "  {}: {} → {}{}",
-                    c.node,
-                    side(c.old),
-                    side(c.new),
-                    c.why.as_ref().map(|w| format!(" ({w})")).unwrap_or_default()
-                );
-            }
-            let _ = writeln!(s, "  accelerator partitions {:+}", d.partitions_added);
-            for f in &d.figures {
-                let _ = writeln!(
-                    s,
-                    "  {:<16} {:>14.4} → {:>14.4} ({:+.4})",
-                    f.figure, f.old, f.new, f.delta
-                );
-            }
-            for r in d.regressions.iter().filter(|r| !r.passed) {
-                let _ = writeln!(s, "  REGRESSION {}: {}", r.rule, r.message);
-            }
-            buf.extend_from_slice(s.as_bytes());
-        }
+        Format::Json => tilecut::report::diff::render_json(&d, &mut buf)?,
+        _ => tilecut::report::diff::render_table(&d, &mut buf, tilecut::report::term::Paint::for_stdout())?,
     }
     std::io::stdout().lock().write_all(&buf)?;
     let regressed = d.regressions.iter().any(|r| !r.passed);
@@ -394,9 +361,12 @@ fn run(cli: Cli) -> anyhow::Result<u8> {
             let mut out = String::new();
             for p in &manifest.pieces {
                 out.push_str(&format!(
-                    "{}  {:?}  {} inputs, {} outputs\n",
+                    "{}  {}  {} inputs, {} outputs\n",
                     p.file,
-                    p.side,
+                    match p.side {
+                        tilecut::cut::Side::Accel => "accelerator",
+                        _ => "CPU",
+                    },
                     p.inputs.len(),
                     p.outputs.len()
                 ));
@@ -415,37 +385,28 @@ fn run(cli: Cli) -> anyhow::Result<u8> {
                 relative: args.rtol,
                 steps: args.steps,
             };
+            let feeds = args
+                .feeds
+                .iter()
+                .map(|f| tilecut::feeds::parse_arg(f))
+                .collect::<Result<Vec<_>, _>>()
+                .map_err(|e| anyhow::anyhow!(e))?;
             let report = match args.engine {
                 tilecut::verify::Engine::Tract => {
-                    tilecut::verify::verify_tract(&args.model.model, &args.dir, &overrides, tol)?
+                    tilecut::verify::verify_tract(&args.model.model, &args.dir, &overrides, tol, &feeds)?
                 }
                 tilecut::verify::Engine::PythonReference => {
-                    tilecut::verify::verify_python(&args.model.model, &args.dir, &overrides, tol)?
+                    tilecut::verify::verify_python(&args.model.model, &args.dir, &overrides, tol, &feeds)?
                 }
             };
             let mut buf = Vec::new();
             match args.format {
-                Format::Json => {
-                    serde_json::to_writer_pretty(&mut buf, &report)?;
-                    buf.push(b'\n');
-                }
-                _ => {
-                    for o in &report.outputs {
-                        buf.extend_from_slice(
-                            format!(
-                                "{} {} ({}, {} elements): max error {:.3e}, tolerance {:.3e} [{:?}]\n",
-                                if o.equal { "equal   " } else { "MISMATCH" },
-                                o.output,
-                                o.dtype,
-                                o.elements,
-                                o.max_error,
-                                o.tolerance,
-                                report.engine
-                            )
-                            .as_bytes(),
-                        );
-                    }
-                }
+                Format::Json => tilecut::report::verify::render_json(&report, &mut buf)?,
+                _ => tilecut::report::verify::render_table(
+                    &report,
+                    &mut buf,
+                    tilecut::report::term::Paint::for_stdout(),
+                )?,
             }
             std::io::stdout().lock().write_all(&buf)?;
             Ok(if report.passed { 0 } else { 1 })
@@ -487,8 +448,13 @@ fn run(cli: Cli) -> anyhow::Result<u8> {
                 eprintln!("wrote {}", path.display());
             }
             if !stacks_only {
-                for (stem, external) in [("heavy_1g_inline", false), ("heavy_1g_external", true)] {
-                    tilecut::benchgen::heavy(1 << 30, &dir, stem, external)
+                // Over 2 GiB only as external data: a protobuf message cannot hold it inline.
+                for (stem, bytes, external) in [
+                    ("heavy_1g_inline", 1u64 << 30, false),
+                    ("heavy_1g_external", 1 << 30, true),
+                    ("heavy_2g_external", 9 << 28, true),
+                ] {
+                    tilecut::benchgen::heavy(bytes, &dir, stem, external)
                         .with_context(|| format!("{}: cannot write {stem}", dir.display()))?;
                     eprintln!("wrote {}", dir.join(stem).display());
                 }

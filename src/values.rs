@@ -169,9 +169,78 @@ pub fn bf16_to_f64(h: u16) -> f64 {
     f32::from_bits((h as u32) << 16) as f64
 }
 
+/// f64 to IEEE 754 binary16 bits, rounding to nearest, ties to even (what a Cast does).
+pub fn f64_to_f16_bits(x: f64) -> u16 {
+    // Through f32 is exact for every value an f16 round-trip produced; for others the double
+    // rounding can differ from direct rounding by one ulp in rare ties, acceptable for
+    // constants materialised from folding.
+    let f = x as f32;
+    let b = f.to_bits();
+    let sign = ((b >> 16) & 0x8000) as u16;
+    let exp = ((b >> 23) & 0xff) as i32;
+    let mant = b & 0x7f_ffff;
+    if exp == 0xff {
+        return sign | 0x7c00 | if mant != 0 { 0x200 } else { 0 };
+    }
+    let e = exp - 127 + 15;
+    if e >= 0x1f {
+        return sign | 0x7c00;
+    }
+    if e <= 0 {
+        if e < -10 {
+            return sign;
+        }
+        // Subnormal: shift the implicit-one mantissa into place, round to nearest even.
+        let m = mant | 0x80_0000;
+        let shift = (14 - e) as u32;
+        let half = 1u32 << (shift - 1);
+        let rest = m & ((1u32 << shift) - 1);
+        let mut v = m >> shift;
+        if rest > half || (rest == half && v & 1 == 1) {
+            v += 1;
+        }
+        return sign | v as u16;
+    }
+    let rest = mant & 0x1fff;
+    let mut v = ((e as u32) << 10) | (mant >> 13);
+    if rest > 0x1000 || (rest == 0x1000 && v & 1 == 1) {
+        v += 1; // may carry into the exponent, which is the correct rounding
+    }
+    sign | v as u16
+}
+
+/// f64 to bfloat16 bits, rounding to nearest, ties to even.
+pub fn f64_to_bf16_bits(x: f64) -> u16 {
+    let b = (x as f32).to_bits();
+    if (b & 0x7fff_ffff) > 0x7f80_0000 {
+        return ((b >> 16) | 0x40) as u16; // a quiet NaN
+    }
+    let round = 0x7fff + ((b >> 16) & 1);
+    (b.wrapping_add(round) >> 16) as u16
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn half_precision_round_trips() {
+        // Every finite binary16 value converts back to its own bits (IEEE 754-2008 binary16).
+        for h in 0u16..=0xffff {
+            let x = f16_to_f64(h);
+            if x.is_nan() {
+                assert_eq!(f64_to_f16_bits(x) & 0x7c00, 0x7c00);
+                continue;
+            }
+            assert_eq!(f64_to_f16_bits(x), h, "{h:#06x} = {x}");
+        }
+        for h in [0x3f80u16, 0xc000, 0x7f7f, 0x0001, 0x8000] {
+            assert_eq!(f64_to_bf16_bits(bf16_to_f64(h)), h);
+        }
+        // Ties to even: 1 + 2^-11 lies halfway between 1 and the next binary16 value.
+        assert_eq!(f64_to_f16_bits(1.0 + 2f64.powi(-11)), 0x3c00);
+        assert_eq!(f64_to_f16_bits(70000.0), 0x7c00, "overflow to infinity");
+    }
 
     #[test]
     fn half_precision_values() {

@@ -8,7 +8,8 @@ use std::path::Path;
 use serde::Serialize;
 use tract_onnx::prelude::*;
 
-use crate::ir::{DType, Fact};
+use crate::feeds::FeedArg;
+use crate::ir::{DType, Fact, Graph, HostTensor};
 
 #[derive(Debug, thiserror::Error)]
 #[error("{0}")]
@@ -35,6 +36,8 @@ pub struct OutputCheck {
 #[derive(Serialize, Debug, Clone)]
 pub struct VerifyReport {
     pub engine: Engine,
+    /// Where each input of the original model came from.
+    pub inputs: Vec<InputSource>,
     pub outputs: Vec<OutputCheck>,
     pub passed: bool,
 }
@@ -45,48 +48,183 @@ pub struct Tolerance {
     pub steps: f64,
 }
 
-fn random_tensor(fact: &Fact, seed: u64) -> Result<Tensor, VerifyError> {
-    let shape: Vec<usize> = fact
+/// Where one input's values came from.
+#[derive(Serialize, Debug, Clone)]
+pub struct InputSource {
+    pub input: String,
+    pub dtype: String,
+    pub shape: Vec<u64>,
+    /// The file given with `--feed`, or "seeded random (seed N)".
+    pub source: String,
+}
+
+/// Seeded inputs as the tract engine draws them: uniform in [-1, 1) for floats, small
+/// integers (0–3, or any byte for 8-bit types) for integers, true for booleans.
+fn random_host(fact: &Fact, seed: u64) -> Result<HostTensor, VerifyError> {
+    let dims = fact
         .shape
         .concrete()
-        .ok_or_else(|| VerifyError("an input shape is not concrete; fix it with --dim or --input".into()))?
+        .ok_or_else(|| VerifyError("an input shape is not concrete; fix it with --dim or --input".into()))?;
+    let n = dims
         .iter()
-        .map(|&d| d as usize)
-        .collect();
-    let n: usize = shape.iter().product();
+        .try_fold(1u64, |a, &d| a.checked_mul(d))
+        .ok_or_else(|| VerifyError("an input's element count overflows".into()))?;
     let mut rng = crate::samples::Rng::new(seed);
-    let t: Tensor = match fact.dtype {
-        Some(DType::F32) | None => tract_ndarray::ArrayD::from_shape_vec(shape, (0..n).map(|_| rng.unit()).collect())
-            .map_err(|e| VerifyError(e.to_string()))?
-            .into(),
-        Some(DType::Bool) => tract_ndarray::ArrayD::from_elem(shape, true).into(),
-        Some(DType::I64) => {
-            tract_ndarray::ArrayD::from_shape_vec(shape, (0..n).map(|_| (rng.next_u64() % 4) as i64).collect())
+    let dtype = fact.dtype.unwrap_or(DType::F32);
+    let mut bytes = Vec::new();
+    for _ in 0..n {
+        if dtype == DType::F32 {
+            bytes.extend_from_slice(&rng.unit().to_le_bytes());
+            continue;
+        }
+        let r = rng.next_u64();
+        match dtype {
+            DType::Bool => bytes.push(1),
+            DType::I8 | DType::U8 => bytes.push((r % 256) as u8),
+            DType::I16 | DType::U16 => bytes.extend_from_slice(&((r % 4) as u16).to_le_bytes()),
+            DType::I32 | DType::U32 => bytes.extend_from_slice(&((r % 4) as u32).to_le_bytes()),
+            DType::I64 | DType::U64 => bytes.extend_from_slice(&(r % 4).to_le_bytes()),
+            other => {
+                return Err(VerifyError(format!(
+                    "random inputs of type {other} are not supported by the tract engine (give them with --feed)"
+                )))
+            }
+        }
+    }
+    Ok(HostTensor { dtype, dims, bytes })
+}
+
+fn le<const N: usize>(c: &[u8]) -> [u8; N] {
+    let mut a = [0u8; N];
+    a.copy_from_slice(c);
+    a
+}
+
+/// A host tensor as a tract tensor (the payload was checked against the shape on reading).
+fn to_tract(h: &HostTensor) -> Result<Tensor, VerifyError> {
+    let shape: Vec<usize> = h.dims.iter().map(|&d| d as usize).collect();
+    let b = &h.bytes;
+    macro_rules! typed {
+        ($t:ty, $n:expr, $conv:expr) => {{
+            let v: Vec<$t> = b.chunks_exact($n).map(|c| $conv(le::<$n>(c))).collect();
+            tract_ndarray::ArrayD::from_shape_vec(shape, v)
                 .map_err(|e| VerifyError(e.to_string()))?
                 .into()
-        }
-        Some(DType::I32) => {
-            tract_ndarray::ArrayD::from_shape_vec(shape, (0..n).map(|_| (rng.next_u64() % 4) as i32).collect())
-                .map_err(|e| VerifyError(e.to_string()))?
-                .into()
-        }
-        Some(DType::I8) => {
-            tract_ndarray::ArrayD::from_shape_vec(shape, (0..n).map(|_| (rng.next_u64() % 256) as u8 as i8).collect())
-                .map_err(|e| VerifyError(e.to_string()))?
-                .into()
-        }
-        Some(DType::U8) => {
-            tract_ndarray::ArrayD::from_shape_vec(shape, (0..n).map(|_| (rng.next_u64() % 256) as u8).collect())
-                .map_err(|e| VerifyError(e.to_string()))?
-                .into()
-        }
-        Some(other) => {
+        }};
+    }
+    Ok(match h.dtype {
+        DType::F32 => typed!(f32, 4, f32::from_le_bytes),
+        DType::F64 => typed!(f64, 8, f64::from_le_bytes),
+        DType::F16 => typed!(f16, 2, |a| f16::from_bits(u16::from_le_bytes(a))),
+        DType::I8 => typed!(i8, 1, i8::from_le_bytes),
+        DType::I16 => typed!(i16, 2, i16::from_le_bytes),
+        DType::I32 => typed!(i32, 4, i32::from_le_bytes),
+        DType::I64 => typed!(i64, 8, i64::from_le_bytes),
+        DType::U8 => typed!(u8, 1, u8::from_le_bytes),
+        DType::U16 => typed!(u16, 2, u16::from_le_bytes),
+        DType::U32 => typed!(u32, 4, u32::from_le_bytes),
+        DType::U64 => typed!(u64, 8, u64::from_le_bytes),
+        DType::Bool => typed!(bool, 1, |a: [u8; 1]| a[0] != 0),
+        other => {
             return Err(VerifyError(format!(
-                "random inputs of type {other} are not supported by the tract engine"
+                "{} tensors are not supported by the tract engine",
+                other.name()
             )))
         }
-    };
-    Ok(t)
+    })
+}
+
+/// Refuses models whose outputs depend on random draws: no two runs agree, so there is
+/// nothing to compare.
+fn refuse_random(model: &Path, g: &Graph) -> Result<(), VerifyError> {
+    fn find(g: &Graph) -> Option<String> {
+        g.nodes.iter().find_map(|n| {
+            if crate::ops::is_random(&n.op_type) {
+                Some(format!("{} ({})", n.name, n.op_type))
+            } else {
+                n.bodies.iter().find_map(|b| find(&b.graph))
+            }
+        })
+    }
+    match find(g) {
+        Some(node) => Err(VerifyError(format!(
+            "{}: node {node} draws random numbers, so no two runs agree; there is nothing to compare",
+            model.display()
+        ))),
+        None => Ok(()),
+    }
+}
+
+/// Reads the `--feed` files and checks each against the model's inputs: a graph input of
+/// that name, the same element type, the same rank and every known dim equal.
+pub fn read_feeds(g: &Graph, args: &[FeedArg]) -> Result<BTreeMap<String, (String, HostTensor)>, VerifyError> {
+    let mut out = BTreeMap::new();
+    for a in args {
+        let (own, t) = crate::feeds::read(&a.path).map_err(VerifyError)?;
+        let shown = a.path.display().to_string();
+        let name = a
+            .name
+            .clone()
+            .or(own)
+            .ok_or_else(|| VerifyError(format!("{shown}: the file names no input; give it as NAME={shown}")))?;
+        let id = g
+            .inputs
+            .iter()
+            .find(|v| g.value(**v).name == name)
+            .ok_or_else(|| VerifyError(format!("{shown}: the model has no input `{name}`")))?;
+        let fact = &g.value(*id).fact;
+        if let Some(want) = fact.dtype {
+            if want != t.dtype {
+                return Err(VerifyError(format!(
+                    "{shown}: input `{name}` is {}, the file holds {}",
+                    want.name(),
+                    t.dtype.name()
+                )));
+            }
+        }
+        if let Some(dims) = fact.shape.dims() {
+            let fits =
+                dims.len() == t.dims.len() && dims.iter().zip(&t.dims).all(|(d, &x)| d.known().is_none_or(|k| k == x));
+            if !fits {
+                return Err(VerifyError(format!(
+                    "{shown}: input `{name}` has shape {}, the file holds {:?}",
+                    fact.shape, t.dims
+                )));
+            }
+        }
+        if out.insert(name.clone(), (shown, t)).is_some() {
+            return Err(VerifyError(format!("input `{name}` is given twice")));
+        }
+    }
+    Ok(out)
+}
+
+/// The inputs of the original model: from the feeds where given, else seeded random.
+fn inputs(
+    g: &Graph,
+    feeds: &BTreeMap<String, (String, HostTensor)>,
+) -> Result<Vec<(InputSource, HostTensor)>, VerifyError> {
+    let mut out = Vec::new();
+    for (i, id) in g.inputs.iter().enumerate() {
+        let v = g.value(*id);
+        let (source, t) = match feeds.get(&v.name) {
+            Some((path, t)) => (path.clone(), t.clone()),
+            None => {
+                let seed = 1000 + i as u64;
+                (format!("seeded random (seed {seed})"), random_host(&v.fact, seed)?)
+            }
+        };
+        out.push((
+            InputSource {
+                input: v.name.clone(),
+                dtype: t.dtype.name().to_string(),
+                shape: t.dims.clone(),
+                source,
+            },
+            t,
+        ));
+    }
+    Ok(out)
 }
 
 fn run_tract(path: &Path, inputs: &[(String, Tensor)]) -> Result<BTreeMap<String, Tensor>, VerifyError> {
@@ -196,6 +334,7 @@ pub fn verify_tract(
     dir: &Path,
     overrides: &crate::Overrides,
     tol: Tolerance,
+    feeds: &[FeedArg],
 ) -> Result<VerifyReport, VerifyError> {
     let manifest: serde_json::Value = serde_json::from_str(
         &std::fs::read_to_string(dir.join("manifest.json"))
@@ -204,10 +343,13 @@ pub fn verify_tract(
     .map_err(|e| VerifyError(format!("{}: manifest.json is not valid JSON: {e}", dir.display())))?;
     let read = crate::read_model(model, overrides).map_err(|e| VerifyError(e.to_string()))?;
     let g = &read.model.graph;
+    refuse_random(model, g)?;
+    let given = read_feeds(g, feeds)?;
+    let fed = inputs(g, &given)?;
+    let sources: Vec<InputSource> = fed.iter().map(|(s, _)| s.clone()).collect();
     let mut inputs = Vec::new();
-    for (i, id) in g.inputs.iter().enumerate() {
-        let v = g.value(*id);
-        inputs.push((v.name.clone(), random_tensor(&v.fact, 1000 + i as u64)?));
+    for (s, t) in &fed {
+        inputs.push((s.input.clone(), to_tract(t)?));
     }
     let reference = run_tract(model, &inputs)?;
     let mut env: BTreeMap<String, Tensor> = inputs.into_iter().collect();
@@ -244,54 +386,83 @@ pub fn verify_tract(
     let passed = checks.iter().all(|c| c.equal);
     Ok(VerifyReport {
         engine: Engine::Tract,
+        inputs: sources,
         outputs: checks,
         passed,
     })
 }
 
-const REFERENCE: &str = r#"
-import sys, json, os, numpy as np, onnx
+/// The reference-evaluator check, run by python3: `SCRIPT MODEL DIR RTOL STEPS DIMS FEEDS`
+/// prints the output checks as JSON; `SCRIPT --batch LIST RTOL STEPS` checks every
+/// `[model, dir]` pair of the JSON file LIST and prints one JSON line per model (tests use
+/// it to verify hundreds of splits in one process).
+pub const REFERENCE: &str = r#"
+import sys, json, os, numpy as np, onnx, onnx.numpy_helper
 from onnx.reference import ReferenceEvaluator
-model, folder, rtol, steps = sys.argv[1], sys.argv[2], float(sys.argv[3]), float(sys.argv[4])
-dims = json.loads(sys.argv[5])
-m = onnx.load(model)
-inits = {t.name for t in m.graph.initializer}
-feeds = {}
-for i, vi in enumerate(m.graph.input):
-    if vi.name in inits:
-        continue
-    t = vi.type.tensor_type
-    shape = [d.dim_value if d.HasField("dim_value") else dims[d.dim_param] for d in t.shape.dim]
-    rng = np.random.default_rng(1000 + i)
-    dt = onnx.helper.tensor_dtype_to_np_dtype(t.elem_type)
-    if dt == np.bool_:
-        feeds[vi.name] = np.ones(shape, dtype=dt)
-    elif np.issubdtype(dt, np.integer):
-        feeds[vi.name] = rng.integers(0, 4, shape).astype(dt)
-    else:
-        feeds[vi.name] = rng.uniform(-1, 1, shape).astype(dt)
-want = dict(zip([o.name for o in m.graph.output], ReferenceEvaluator(m).run(None, feeds)))
-env = dict(feeds)
-man = json.load(open(os.path.join(folder, "manifest.json")))
-for p in man["pieces"]:
-    pm = onnx.load(os.path.join(folder, p["file"]))
-    outs = ReferenceEvaluator(pm).run(None, {n: env[n] for n in p["inputs"]})
-    env.update(zip([o.name for o in pm.graph.output], outs))
-res = []
-for name, a in want.items():
-    b = env[name]
-    if a.shape != b.shape:
-        res.append({"output": name, "dtype": str(a.dtype), "elements": int(a.size), "max_error": float("inf"), "tolerance": 0, "equal": False})
-        continue
-    af, bf = a.astype(np.float64), b.astype(np.float64)
-    if np.issubdtype(a.dtype, np.floating):
-        err = float(np.max(np.abs(af - bf) / np.maximum(np.maximum(np.abs(af), np.abs(bf)), 1e-6))) if a.size else 0.0
-        tol = rtol
-    else:
-        err = float(np.max(np.abs(af - bf))) if a.size else 0.0
-        tol = steps
-    res.append({"output": name, "dtype": str(a.dtype), "elements": int(a.size), "max_error": err, "tolerance": tol, "equal": bool(err <= tol)})
-print(json.dumps(res))
+
+def check(model, folder, rtol, steps, dims, given):
+    m = onnx.load(model)
+    inits = {t.name for t in m.graph.initializer}
+    feeds = {}
+    for i, vi in enumerate(m.graph.input):
+        if vi.name in inits:
+            continue
+        if vi.name in given:
+            path = given[vi.name]
+            if path.lower().endswith(".npy"):
+                feeds[vi.name] = np.load(path, allow_pickle=False)
+            else:
+                feeds[vi.name] = onnx.numpy_helper.to_array(onnx.load_tensor(path))
+            continue
+        t = vi.type.tensor_type
+        shape = [d.dim_value if d.HasField("dim_value") else dims[d.dim_param] for d in t.shape.dim]
+        rng = np.random.default_rng(1000 + i)
+        dt = onnx.helper.tensor_dtype_to_np_dtype(t.elem_type)
+        if dt == np.bool_:
+            feeds[vi.name] = np.ones(shape, dtype=dt)
+        elif np.issubdtype(dt, np.integer):
+            feeds[vi.name] = rng.integers(0, 4, shape).astype(dt)
+        else:
+            feeds[vi.name] = rng.uniform(-1, 1, shape).astype(dt)
+    want = dict(zip([o.name for o in m.graph.output], ReferenceEvaluator(m).run(None, feeds)))
+    env = dict(feeds)
+    man = json.load(open(os.path.join(folder, "manifest.json")))
+    for p in man["pieces"]:
+        pm = onnx.load(os.path.join(folder, p["file"]))
+        outs = ReferenceEvaluator(pm).run(None, {n: env[n] for n in p["inputs"]})
+        env.update(zip([o.name for o in pm.graph.output], outs))
+    res = []
+    for name, a in want.items():
+        b = env[name]
+        a, b = np.asarray(a), np.asarray(b)
+        if a.shape != b.shape:
+            res.append({"output": name, "dtype": str(a.dtype), "elements": int(a.size), "max_error": float("inf"), "tolerance": 0, "equal": False})
+            continue
+        af, bf = a.astype(np.float64), b.astype(np.float64)
+        both_nan = np.isnan(af) & np.isnan(bf)
+        same_inf = np.isinf(af) & (af == bf)
+        agree = both_nan | same_inf
+        if np.issubdtype(a.dtype, np.floating):
+            e = np.abs(af - bf) / np.maximum(np.maximum(np.abs(af), np.abs(bf)), 1e-6)
+            tol = rtol
+        else:
+            e = np.abs(af - bf)
+            tol = steps
+        e = np.where(agree, 0.0, np.where(np.isnan(e), np.inf, e))
+        err = float(np.max(e)) if a.size else 0.0
+        res.append({"output": name, "dtype": str(a.dtype), "elements": int(a.size), "max_error": err, "tolerance": tol, "equal": bool(err <= tol)})
+    return res
+
+if sys.argv[1] == "--batch":
+    rtol, steps = float(sys.argv[3]), float(sys.argv[4])
+    for model, folder in json.load(open(sys.argv[2])):
+        try:
+            print(json.dumps({"model": model, "results": check(model, folder, rtol, steps, {}, {}), "error": None}), flush=True)
+        except Exception as e:
+            print(json.dumps({"model": model, "results": None, "error": str(e).splitlines()[0] if str(e) else type(e).__name__}), flush=True)
+else:
+    model, folder, rtol, steps = sys.argv[1], sys.argv[2], float(sys.argv[3]), float(sys.argv[4])
+    print(json.dumps(check(model, folder, rtol, steps, json.loads(sys.argv[5]), json.loads(sys.argv[6]))))
 "#;
 
 /// Verifies with the `onnx` package's reference evaluator through python3.
@@ -300,8 +471,38 @@ pub fn verify_python(
     dir: &Path,
     overrides: &crate::Overrides,
     tol: Tolerance,
+    feeds: &[FeedArg],
 ) -> Result<VerifyReport, VerifyError> {
     let dims = serde_json::to_string(&overrides.dims).map_err(|e| VerifyError(e.to_string()))?;
+    // The files are read and checked here too, so both engines refuse the same bad feeds.
+    let read = crate::read_model(model, overrides).map_err(|e| VerifyError(e.to_string()))?;
+    refuse_random(model, &read.model.graph)?;
+    let given = read_feeds(&read.model.graph, feeds)?;
+    let paths: BTreeMap<&String, &String> = given.iter().map(|(k, (p, _))| (k, p)).collect();
+    let given_json = serde_json::to_string(&paths).map_err(|e| VerifyError(e.to_string()))?;
+    let sources: Vec<InputSource> = read
+        .model
+        .graph
+        .inputs
+        .iter()
+        .map(|id| {
+            let v = read.model.graph.value(*id);
+            match given.get(&v.name) {
+                Some((p, t)) => InputSource {
+                    input: v.name.clone(),
+                    dtype: t.dtype.name().into(),
+                    shape: t.dims.clone(),
+                    source: p.clone(),
+                },
+                None => InputSource {
+                    input: v.name.clone(),
+                    dtype: v.fact.dtype.map_or("?", DType::name).into(),
+                    shape: v.fact.shape.concrete().unwrap_or_default(),
+                    source: "seeded random (numpy default_rng)".into(),
+                },
+            }
+        })
+        .collect();
     let out = std::process::Command::new("python3")
         .arg("-c")
         .arg(REFERENCE)
@@ -310,6 +511,7 @@ pub fn verify_python(
         .arg(tol.relative.to_string())
         .arg(tol.steps.to_string())
         .arg(dims)
+        .arg(given_json)
         .output()
         .map_err(|e| VerifyError(format!("python3 could not start: {e}")))?;
     if !out.status.success() {
@@ -335,6 +537,7 @@ pub fn verify_python(
     let passed = outputs.iter().all(|c| c.equal);
     Ok(VerifyReport {
         engine: Engine::PythonReference,
+        inputs: sources,
         outputs,
         passed,
     })

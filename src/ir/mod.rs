@@ -249,6 +249,39 @@ impl ConstValue {
     }
 }
 
+/// A whole tensor in host memory, little-endian and densely packed: an input read from a
+/// `.npy` or `.pb` file for `verify`.
+#[derive(Clone, Debug, PartialEq)]
+pub struct HostTensor {
+    pub dtype: DType,
+    pub dims: Vec<u64>,
+    pub bytes: Vec<u8>,
+}
+
+impl HostTensor {
+    /// Checks that the payload has exactly the bytes its type and shape need.
+    pub fn consistent(&self) -> Result<(), String> {
+        let n = self
+            .dims
+            .iter()
+            .try_fold(1u64, |a, &d| a.checked_mul(d))
+            .ok_or("the shape's element count overflows")?;
+        let want = self
+            .dtype
+            .bytes_for(n)
+            .ok_or_else(|| format!("{} tensors are not supported here", self.dtype.name()))?;
+        if want != self.bytes.len() as u64 {
+            return Err(format!(
+                "{} elements of {} need {want} bytes, the file has {}",
+                n,
+                self.dtype.name(),
+                self.bytes.len()
+            ));
+        }
+        Ok(())
+    }
+}
+
 /// A value (tensor) of a graph.
 #[derive(Clone, Debug)]
 pub struct Value {

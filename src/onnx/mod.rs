@@ -2,6 +2,7 @@
 //! a model file by memory map. The only module that names protobuf types.
 
 pub mod builder;
+pub mod feed;
 pub mod load;
 pub mod qdq;
 pub mod split;

@@ -16,7 +16,7 @@ use prost::Message;
 use serde::Serialize;
 
 use super::builder::value_info_fact;
-use super::load::{read_external, LoadedModel};
+use super::load::LoadedModel;
 use super::{GraphProto, ModelProto, StringStringEntryProto, TensorProto};
 use crate::cut::{Plan, Side};
 use crate::ir::{Graph, NodeId, ValueKind};
@@ -56,10 +56,75 @@ pub struct Manifest {
     pub wiring: Vec<Wire>,
 }
 
-/// A file to write: name inside the output folder and its bytes.
+/// A file to write: name inside the output folder and its content.
 pub struct OutFile {
     pub name: String,
-    pub bytes: Vec<u8>,
+    pub content: Vec<Chunk>,
+}
+
+/// A piece of a file's content. External weights are copied from their file when the output
+/// is written, range by range, so a split of a model with gigabytes of weights never holds
+/// them in memory.
+pub enum Chunk {
+    Bytes(Bytes),
+    /// `len` bytes of `path` from `offset`.
+    FileRange {
+        path: PathBuf,
+        offset: u64,
+        len: u64,
+    },
+    Zeros(u64),
+}
+
+impl OutFile {
+    pub fn from_bytes(name: impl Into<String>, bytes: Vec<u8>) -> OutFile {
+        OutFile {
+            name: name.into(),
+            content: vec![Chunk::Bytes(Bytes::from(bytes))],
+        }
+    }
+
+    /// Bytes the file will have.
+    pub fn len(&self) -> u64 {
+        self.content
+            .iter()
+            .map(|c| match c {
+                Chunk::Bytes(b) => b.len() as u64,
+                Chunk::FileRange { len, .. } | Chunk::Zeros(len) => *len,
+            })
+            .sum()
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.len() == 0
+    }
+
+    /// Writes the content, copying file ranges in bounded memory; a range that the source
+    /// file does not hold in full is an error, never a short file.
+    pub fn write_to(&self, out: &mut dyn Write) -> std::io::Result<()> {
+        use std::io::{Read, Seek, SeekFrom};
+        for c in &self.content {
+            match c {
+                Chunk::Bytes(b) => out.write_all(b)?,
+                Chunk::Zeros(n) => std::io::copy(&mut std::io::repeat(0).take(*n), out).map(|_| ())?,
+                Chunk::FileRange { path, offset, len } => {
+                    let mut f = std::fs::File::open(path)?;
+                    f.seek(SeekFrom::Start(*offset))?;
+                    let copied = std::io::copy(&mut f.take(*len), out)?;
+                    if copied != *len {
+                        return Err(std::io::Error::new(
+                            std::io::ErrorKind::UnexpectedEof,
+                            format!(
+                                "{} holds {copied} of the {len} bytes at offset {offset}",
+                                path.display()
+                            ),
+                        ));
+                    }
+                }
+            }
+        }
+        Ok(())
+    }
 }
 
 #[derive(Debug, thiserror::Error)]
@@ -89,9 +154,10 @@ fn piece_nodes(
                 want.insert(p);
                 stack.push(p);
             } else if g.value(v).konst.as_ref().is_some_and(|k| {
+                use crate::ir::DType;
                 let dt = g.value(v).fact.dtype;
-                (k.try_ints().is_some() && dt.is_some_and(|d| d.is_integer() || d == crate::ir::DType::Bool))
-                    || dt == Some(crate::ir::DType::F32)
+                (k.try_ints().is_some() && dt.is_some_and(|d| d.is_integer() || d == DType::Bool))
+                    || (k.is_numeric() && matches!(dt, Some(DType::F32 | DType::F64 | DType::F16 | DType::BF16)))
             }) {
                 materialize.insert(v);
             } else {
@@ -108,11 +174,25 @@ fn piece_nodes(
 fn const_tensor(name: &str, fact: &crate::ir::Fact, k: &crate::ir::ConstValue) -> TensorProto {
     use crate::ir::DType;
     let dims: Vec<i64> = k.dims.iter().map(|&d| d as i64).collect();
+    let floats = |f: &dyn Fn(f64) -> Vec<u8>| -> Vec<u8> { k.as_floats().iter().flat_map(|&x| f(x)).collect() };
     match fact.dtype {
         Some(DType::F32) => {
             let v: Vec<f32> = k.as_floats().iter().map(|&x| x as f32).collect();
             super::builder::f32_tensor(name, &dims, &v)
         }
+        Some(d @ DType::F64) => super::builder::raw_tensor(name, d, &dims, floats(&|x| x.to_le_bytes().to_vec())),
+        Some(d @ DType::F16) => super::builder::raw_tensor(
+            name,
+            d,
+            &dims,
+            floats(&|x| crate::values::f64_to_f16_bits(x).to_le_bytes().to_vec()),
+        ),
+        Some(d @ DType::BF16) => super::builder::raw_tensor(
+            name,
+            d,
+            &dims,
+            floats(&|x| crate::values::f64_to_bf16_bits(x).to_le_bytes().to_vec()),
+        ),
         Some(d) => super::builder::int_tensor(name, d, &dims, &k.as_ints()),
         None => super::builder::i64_tensor(name, &dims, &k.as_ints()),
     }
@@ -125,24 +205,28 @@ pub fn build(loaded: &LoadedModel, g: &Graph, plan: &Plan) -> Result<(Vec<OutFil
         .graph
         .as_ref()
         .ok_or_else(|| SplitError("model has no graph".into()))?;
-    // A function call expanded into nodes of different partitions cannot be exported whole.
-    let mut call_part: BTreeMap<usize, usize> = BTreeMap::new();
+    // A function call whose expanded nodes fall into different partitions cannot be copied
+    // whole: its body is written inline instead (the expanded nodes, as the IR names them).
+    let mut call_parts: BTreeMap<usize, BTreeSet<usize>> = BTreeMap::new();
     for (i, n) in g.nodes.iter().enumerate() {
-        if n.from_function.is_none() {
-            continue;
-        }
-        if let Some(p) = plan.partition_of[i] {
-            if let Some(&q) = call_part.get(&n.source_index) {
-                if q != p {
-                    return Err(SplitError(format!(
-                        "the cut falls inside model-local function call `{}`; pin its nodes to one side to split",
-                        n.from_function.clone().unwrap_or_default()
-                    )));
-                }
-            }
-            call_part.insert(n.source_index, p);
+        if let (Some(_), Some(p)) = (&n.from_function, plan.partition_of[i]) {
+            call_parts.entry(n.source_index).or_default().insert(p);
         }
     }
+    let inlined_calls: BTreeSet<usize> = call_parts
+        .into_iter()
+        .filter(|(_, parts)| parts.len() > 1)
+        .map(|(call, _)| call)
+        .collect();
+    let expanded: HashMap<String, super::NodeProto> = if inlined_calls.is_empty() {
+        HashMap::new()
+    } else {
+        crate::import::expanded_main_nodes(loaded)
+            .map_err(|e| SplitError(e.to_string()))?
+            .into_iter()
+            .filter_map(|n| n.output.iter().find(|o| !o.is_empty()).cloned().map(|o| (o, n)))
+            .collect()
+    };
     let inits: HashMap<&str, &TensorProto> = proto_graph.initializer.iter().map(|t| (t.name.as_str(), t)).collect();
     let value_of: HashMap<&str, crate::ir::ValueId> = g
         .values
@@ -187,9 +271,28 @@ pub fn build(loaded: &LoadedModel, g: &Graph, plan: &Plan) -> Result<(Vec<OutFil
         // Proto nodes in IR (topological) order, each file node once.
         let mut seen = BTreeSet::new();
         let mut proto_nodes = Vec::new();
+        let mut inlined_here = false;
         for n in &nodes {
-            let src = g.node(*n).source_index;
-            if seen.insert(src) {
+            let node = g.node(*n);
+            let src = node.source_index;
+            if node.from_function.is_some() && inlined_calls.contains(&src) {
+                let first = node
+                    .outputs
+                    .iter()
+                    .flatten()
+                    .map(|v| g.value(*v).name.as_str())
+                    .next()
+                    .unwrap_or("");
+                let pn = expanded.get(first).ok_or_else(|| {
+                    SplitError(format!(
+                        "node `{}` of function call `{}` has no output to export it by",
+                        node.name,
+                        node.from_function.clone().unwrap_or_default()
+                    ))
+                })?;
+                proto_nodes.push(pn.clone());
+                inlined_here = true;
+            } else if seen.insert(src) {
                 let pn = proto_graph
                     .node
                     .get(src)
@@ -216,7 +319,8 @@ pub fn build(loaded: &LoadedModel, g: &Graph, plan: &Plan) -> Result<(Vec<OutFil
         };
         let mut inputs = Vec::new();
         let mut ext_name = None;
-        let mut ext_bytes: Vec<u8> = Vec::new();
+        let mut ext_chunks: Vec<Chunk> = Vec::new();
+        let mut ext_len: u64 = 0;
         let mut copied = Vec::new();
         for name in &reads {
             if materialized.contains(name) {
@@ -243,7 +347,7 @@ pub fn build(loaded: &LoadedModel, g: &Graph, plan: &Plan) -> Result<(Vec<OutFil
         let externalize = inline > INLINE_LIMIT || copied.iter().any(|t| t.is_external());
         for mut t in copied {
             if externalize {
-                let bytes: Vec<u8> = if t.is_external() {
+                let (chunk, len) = if t.is_external() {
                     let get = |k: &str| t.external_data.iter().find(|e| e.key == k).map(|e| e.value.clone());
                     let location = get("location").unwrap_or_default();
                     let (path, present) = super::load::resolve_external(&loaded.dir, &location).map_err(SplitError)?;
@@ -254,24 +358,36 @@ pub fn build(loaded: &LoadedModel, g: &Graph, plan: &Plan) -> Result<(Vec<OutFil
                         )));
                     }
                     let offset = get("offset").and_then(|s| s.parse().ok()).unwrap_or(0);
-                    let length = match get("length").and_then(|s| s.parse().ok()) {
-                        Some(l) => l,
-                        None => std::fs::metadata(&path)
-                            .map(|m| m.len().saturating_sub(offset))
-                            .unwrap_or(0),
-                    };
-                    read_external(&path, offset, length)
+                    let size = std::fs::metadata(&path)
                         .map_err(|e| SplitError(format!("{}: cannot read: {e}", path.display())))?
+                        .len();
+                    let len = match get("length").and_then(|s| s.parse().ok()) {
+                        Some(l) => l,
+                        None => size.saturating_sub(offset),
+                    };
+                    if offset.checked_add(len).is_none_or(|end| end > size) {
+                        return Err(SplitError(format!(
+                            "{}: `{}` needs bytes {offset}..{} but the file has {size}",
+                            path.display(),
+                            t.name,
+                            offset.saturating_add(len)
+                        )));
+                    }
+                    (Chunk::FileRange { path, offset, len }, len)
                 } else {
-                    t.raw_data.to_vec()
+                    let len = t.raw_data.len() as u64;
+                    (Chunk::Bytes(t.raw_data.clone()), len)
                 };
                 let file = format!("piece_{}.data", part.id);
                 // Keep offsets aligned to 64 bytes, as external-data writers commonly do.
-                while ext_bytes.len() % 64 != 0 {
-                    ext_bytes.push(0);
+                let pad = (64 - ext_len % 64) % 64;
+                if pad > 0 {
+                    ext_chunks.push(Chunk::Zeros(pad));
+                    ext_len += pad;
                 }
-                let offset = ext_bytes.len();
-                ext_bytes.extend_from_slice(&bytes);
+                let offset = ext_len;
+                ext_chunks.push(chunk);
+                ext_len += len;
                 t.raw_data = Bytes::new();
                 t.data_location = 1;
                 t.external_data = vec![
@@ -285,7 +401,7 @@ pub fn build(loaded: &LoadedModel, g: &Graph, plan: &Plan) -> Result<(Vec<OutFil
                     },
                     StringStringEntryProto {
                         key: "length".into(),
-                        value: bytes.len().to_string(),
+                        value: len.to_string(),
                     },
                 ];
                 ext_name = Some(file);
@@ -325,9 +441,20 @@ pub fn build(loaded: &LoadedModel, g: &Graph, plan: &Plan) -> Result<(Vec<OutFil
             .iter()
             .map(|n| (n.domain.clone(), n.op_type.clone()))
             .collect();
+        // Inlined function bodies may use domains only the functions import.
+        let mut opset_import = loaded.proto.opset_import.clone();
+        if inlined_here {
+            for f in &loaded.proto.functions {
+                for o in &f.opset_import {
+                    if !opset_import.iter().any(|x| x.domain == o.domain) {
+                        opset_import.push(o.clone());
+                    }
+                }
+            }
+        }
         let model = ModelProto {
             ir_version: loaded.proto.ir_version,
-            opset_import: loaded.proto.opset_import.clone(),
+            opset_import,
             producer_name: "tilecut split".into(),
             producer_version: env!("CARGO_PKG_VERSION").into(),
             graph: Some(graph),
@@ -345,14 +472,11 @@ pub fn build(loaded: &LoadedModel, g: &Graph, plan: &Plan) -> Result<(Vec<OutFil
             part.id,
             if part.side == Side::Accel { "accel" } else { "cpu" }
         );
-        files.push(OutFile {
-            name: file.clone(),
-            bytes: model.encode_to_vec(),
-        });
+        files.push(OutFile::from_bytes(file.clone(), model.encode_to_vec()));
         if let Some(e) = &ext_name {
             files.push(OutFile {
                 name: e.clone(),
-                bytes: std::mem::take(&mut ext_bytes),
+                content: std::mem::take(&mut ext_chunks),
             });
         }
         entries.push(PieceEntry {
@@ -407,9 +531,10 @@ pub struct FileSink;
 
 impl Sink for FileSink {
     fn put(&mut self, dir: &Path, file: &OutFile) -> std::io::Result<()> {
-        let mut f = std::fs::File::create(dir.join(&file.name))?;
-        f.write_all(&file.bytes)?;
-        f.sync_all()
+        let f = std::fs::File::create(dir.join(&file.name))?;
+        let mut w = std::io::BufWriter::with_capacity(1 << 20, f);
+        file.write_to(&mut w)?;
+        w.into_inner().map_err(|e| e.into_error())?.sync_all()
     }
 }
 
@@ -452,14 +577,8 @@ pub fn write(
                 .map_err(|e| SplitError(format!("{}: cannot write: {e}", tmp.join(&f.name).display())))?;
         }
         let m = serde_json::to_vec_pretty(manifest).map_err(|e| SplitError(e.to_string()))?;
-        sink.put(
-            &tmp,
-            &OutFile {
-                name: "manifest.json".into(),
-                bytes: m,
-            },
-        )
-        .map_err(|e| SplitError(format!("{}: cannot write: {e}", tmp.join("manifest.json").display())))?;
+        sink.put(&tmp, &OutFile::from_bytes("manifest.json", m))
+            .map_err(|e| SplitError(format!("{}: cannot write: {e}", tmp.join("manifest.json").display())))?;
         if out.exists() {
             let old = parent.join(format!(".{name}.tilecut-old-{}", std::process::id()));
             std::fs::rename(out, &old).map_err(|e| SplitError(format!("{shown}: cannot replace: {e}")))?;

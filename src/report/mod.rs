@@ -3,10 +3,12 @@
 
 pub mod analyze;
 pub mod check;
+pub mod diff;
 pub mod explain;
 pub mod inspect;
 pub mod survey;
 pub mod term;
+pub mod verify;
 pub mod visual;
 
 /// Output formats of the reading commands.

@@ -1,0 +1,54 @@
+//! `tilecut diff` outputs: placement changes with the reason, partitions added or removed,
+//! every summary figure, and the policy's regression rules (JSON: `gate::Diff` as it is).
+
+use std::io::Write;
+
+use super::term::{Paint, Tone};
+use crate::cut::Side;
+use crate::gate::DiffReport as Diff;
+
+pub fn render_json(d: &Diff, out: &mut dyn Write) -> std::io::Result<()> {
+    serde_json::to_writer_pretty(&mut *out, d)?;
+    writeln!(out)
+}
+
+fn side(x: Option<Side>) -> &'static str {
+    match x {
+        Some(Side::Accel) => "accel",
+        Some(Side::Cpu) => "cpu",
+        Some(Side::Const) => "const",
+        None => "absent",
+    }
+}
+
+pub fn render_table(d: &Diff, out: &mut dyn Write, paint: Paint) -> std::io::Result<()> {
+    writeln!(out, "{} → {}", d.old, d.new)?;
+    for c in &d.placement_changes {
+        writeln!(
+            out,
+            "  {}: {} → {}{}",
+            c.node,
+            side(c.old),
+            side(c.new),
+            c.why.as_ref().map(|w| format!(" ({w})")).unwrap_or_default()
+        )?;
+    }
+    writeln!(out, "  accelerator partitions {:+}", d.partitions_added)?;
+    for f in &d.figures {
+        writeln!(
+            out,
+            "  {:<16} {:>14.4} → {:>14.4} ({:+.4})",
+            f.figure, f.old, f.new, f.delta
+        )?;
+    }
+    for r in d.regressions.iter().filter(|r| !r.passed) {
+        writeln!(
+            out,
+            "  {} {}: {}",
+            paint.paint(Tone::Bad, "REGRESSION"),
+            r.rule,
+            r.message
+        )?;
+    }
+    Ok(())
+}

@@ -35,7 +35,15 @@ impl Hasher for FxHasher {
     }
 
     fn finish(&self) -> u64 {
-        self.0
+        // The multiply leaves the low bits weak, and hashbrown picks buckets by the low bits:
+        // names that differ late ("b1234.q", "b1235.q") then collide and cost string
+        // compares. MurmurHash3's 64-bit finalizer spreads every input bit.
+        let mut x = self.0;
+        x ^= x >> 33;
+        x = x.wrapping_mul(0xff51_afd7_ed55_8ccd);
+        x ^= x >> 33;
+        x = x.wrapping_mul(0xc4ce_b9fe_1a85_ec53);
+        x ^ (x >> 33)
     }
 }
 

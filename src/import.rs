@@ -262,8 +262,14 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     }
     let flat = expand_functions(cx, &g.node, 0, "")?;
 
-    let mut values: Vec<Value> = Vec::new();
-    let mut names: FastMap<String, ValueId> = FastMap::default();
+    // Every value is an initializer, an input or a node output (plus a few placeholders):
+    // sizing the tables once avoids re-growing (and re-touching) them on large graphs.
+    let outputs_total: usize = flat.iter().map(|n| n.proto.output.len()).sum();
+    let expected = g.initializer.len() + g.sparse_initializer.len() + g.input.len() + outputs_total + 8;
+    let mut values: Vec<Value> = Vec::with_capacity(expected);
+    // Keys borrow the file's (or the expanded nodes') own strings: no copy per name.
+    let mut names: FastMap<&str, ValueId> = FastMap::default();
+    names.reserve(expected);
     let new_value = |values: &mut Vec<Value>, name: &str, kind: ValueKind, fact: Fact| {
         values.push(Value {
             name: name.to_string(),
@@ -280,19 +286,19 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
 
     for t in &g.initializer {
         let data = tensor_data(cx, t)?;
-        if names.contains_key(&t.name) {
+        if names.contains_key(t.name.as_str()) {
             return Err(cx.err(format!("initializer `{}` is defined twice", t.name)));
         }
         let fact = Fact::tensor(data.dtype, Shape::known(&data.dims));
         let id = new_value(&mut values, &t.name, ValueKind::Initializer, fact);
-        values[id.index()].data = Some(data);
-        names.insert(t.name.clone(), id);
+        values[id.index()].data = Some(Box::new(data));
+        names.insert(t.name.as_str(), id);
     }
     for sp in &g.sparse_initializer {
         let Some(v) = sp.values.as_ref() else { continue };
         let dims = non_negative_dims(cx, &v.name, &sp.dims)?;
         let dtype = DType::from_onnx(v.data_type);
-        if names.contains_key(&v.name) {
+        if names.contains_key(v.name.as_str()) {
             return Err(cx.err(format!("initializer `{}` is defined twice", v.name)));
         }
         let id = new_value(
@@ -301,20 +307,20 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
             ValueKind::Initializer,
             Fact::tensor(dtype, Shape::known(&dims)),
         );
-        values[id.index()].data = Some(TensorData {
+        values[id.index()].data = Some(Box::new(TensorData {
             dtype,
             dims,
             storage: Storage::Empty,
-        });
-        names.insert(v.name.clone(), id);
+        }));
+        names.insert(v.name.as_str(), id);
     }
     let mut inputs = Vec::new();
     let mut weight_inputs: Vec<&str> = Vec::new();
     for vi in &g.input {
         let declared = declared_fact(cx, vi, false)?;
-        if let Some(&id) = names.get(&vi.name) {
+        if let Some(&id) = names.get(vi.name.as_str()) {
             // Old IR versions list initializers among the inputs: a weight with a default.
-            values[id.index()].declared = Some(declared);
+            values[id.index()].declared = Some(Box::new(declared));
             weight_inputs.push(&vi.name);
             continue;
         }
@@ -324,8 +330,8 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
             declared
         };
         let id = new_value(&mut values, &vi.name, ValueKind::Input, declared.clone());
-        values[id.index()].declared = Some(declared);
-        names.insert(vi.name.clone(), id);
+        values[id.index()].declared = Some(Box::new(declared));
+        names.insert(vi.name.as_str(), id);
         inputs.push(id);
     }
 
@@ -343,9 +349,11 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     }
 
     // Node outputs, duplicate producers refused.
-    let mut producer_of: FastMap<String, usize> = FastMap::default();
+    let mut producer_of: FastMap<&str, usize> = FastMap::default();
+    producer_of.reserve(outputs_total);
     for (i, n) in flat.iter().enumerate() {
         for o in n.proto.output.iter().filter(|o| !o.is_empty()) {
+            let o = o.as_str();
             if let Some(&other) = producer_of.get(o) {
                 return Err(cx.err(format!(
                     "tensor `{o}` is produced twice: by node `{}` and by node `{}`",
@@ -359,7 +367,7 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
                     display_name(&n.proto, i)
                 )));
             }
-            producer_of.insert(o.clone(), i);
+            producer_of.insert(o, i);
         }
     }
 
@@ -381,14 +389,11 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
 
     // Dependencies between nodes, for the topological sort.
     let mut graph_free: FreeNames = Vec::new();
-    let placeholder = |values: &mut Vec<Value>, names: &mut FastMap<String, ValueId>, name: &str| {
-        if let Some(&id) = names.get(name) {
-            return id;
-        }
-        let id = new_value(values, name, ValueKind::Input, Fact::default());
-        names.insert(name.to_string(), id);
-        id
-    };
+    // The outer names the bodies read, in one place the name table can borrow from.
+    let body_reads: Vec<Vec<String>> = bodies_of
+        .iter()
+        .map(|b| b.2.iter().map(|f| f.0.clone()).collect())
+        .collect();
     let mut deps: Vec<Vec<usize>> = vec![Vec::new(); flat.len()];
     let mut captured: Vec<ValueId> = Vec::new();
     for (i, n) in flat.iter().enumerate() {
@@ -397,12 +402,13 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
             .input
             .iter()
             .filter(|s| !s.is_empty())
-            .chain(bodies_of[i].2.iter().map(|f| &f.0));
+            .chain(body_reads[i].iter());
         for name in reads {
-            if let Some(&p) = producer_of.get(name) {
+            if let Some(&p) = producer_of.get(name.as_str()) {
                 deps[i].push(p);
-            } else if !names.contains_key(name) {
-                let id = placeholder(&mut values, &mut names, name);
+            } else if !names.contains_key(name.as_str()) {
+                let id = new_value(&mut values, name, ValueKind::Input, Fact::default());
+                names.insert(name.as_str(), id);
                 captured.push(id);
                 graph_free.push((name.clone(), display_name(&n.proto, i)));
             }
@@ -410,38 +416,50 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     }
     let order = topo_order(cx, &flat, &deps)?;
 
-    // Build nodes in that order.
-    let mut used_names: FastSet<String> = FastSet::default();
+    // Build nodes in that order. Names the file gives are checked for repeats without copies;
+    // generated and renamed ones are few.
+    let mut used_file: FastSet<&str> = FastSet::default();
+    used_file.reserve(flat.len());
+    let mut used_made: FastSet<String> = FastSet::default();
     let mut nodes = Vec::with_capacity(flat.len());
     let mut bodies_of: Vec<Option<BodyParts>> = bodies_of.into_iter().map(Some).collect();
     for &i in &order {
         let n = &flat[i];
         let id = NodeId(nodes.len() as u32);
-        let (bodies, attrs, free) = bodies_of[i].take().unwrap_or_default();
-        let mut name = if n.proto.name.is_empty() {
-            generated_name(&n.proto, i)
+        let (bodies, attrs, _) = bodies_of[i].take().unwrap_or_default();
+        let file_name = n.proto.name.as_str();
+        let name = if !file_name.is_empty() && !used_file.contains(file_name) && !used_made.contains(file_name) {
+            used_file.insert(file_name);
+            file_name.to_string()
         } else {
-            n.proto.name.clone()
-        };
-        if used_names.contains(&name) {
-            let mut k = 2;
-            while used_names.contains(&format!("{name}~{k}")) {
-                k += 1;
+            let base = if file_name.is_empty() {
+                generated_name(&n.proto, i)
+            } else {
+                file_name.to_string()
+            };
+            let taken = |x: &str| used_file.contains(x) || used_made.contains(x);
+            let mut name = base.clone();
+            if taken(&name) {
+                let mut k = 2;
+                while taken(&format!("{base}~{k}")) {
+                    k += 1;
+                }
+                name = format!("{base}~{k}");
             }
-            name = format!("{name}~{k}");
-        }
-        used_names.insert(name.clone());
+            used_made.insert(name.clone());
+            name
+        };
         let mut node_inputs = Vec::with_capacity(n.proto.input.len());
         for s in &n.proto.input {
             if s.is_empty() {
                 node_inputs.push(None);
                 continue;
             }
-            let v = match names.get(s) {
+            let v = match names.get(s.as_str()) {
                 Some(&v) => v,
                 None => {
                     let v = new_value(&mut values, s, ValueKind::Activation, Fact::default());
-                    names.insert(s.clone(), v);
+                    names.insert(s.as_str(), v);
                     v
                 }
             };
@@ -456,12 +474,12 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
             }
             let v = new_value(&mut values, s, ValueKind::Activation, Fact::default());
             values[v.index()].producer = Some(id);
-            names.insert(s.clone(), v);
+            names.insert(s.as_str(), v);
             node_outputs.push(Some(v));
         }
         let mut caps = Vec::new();
-        for (fname, _) in &free {
-            let Some(&v) = names.get(fname) else { continue };
+        for fname in &body_reads[i] {
+            let Some(&v) = names.get(fname.as_str()) else { continue };
             if !caps.contains(&v) && !node_inputs.contains(&Some(v)) {
                 values[v.index()].consumers.push(id);
                 caps.push(v);
@@ -487,10 +505,11 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     let mut outputs = Vec::new();
     for vi in &g.output {
         let declared = declared_fact(cx, vi, false)?;
-        let id = match names.get(&vi.name) {
+        let id = match names.get(vi.name.as_str()) {
             Some(&id) => id,
             None => {
-                let id = placeholder(&mut values, &mut names, &vi.name);
+                let id = new_value(&mut values, &vi.name, ValueKind::Input, Fact::default());
+                names.insert(vi.name.as_str(), id);
                 captured.push(id);
                 graph_free.push((vi.name.clone(), format!("graph output of `{}`", g.name)));
                 id
@@ -500,14 +519,14 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
         if v.producer.is_some() {
             v.kind = ValueKind::Output;
         }
-        v.declared = Some(declared);
+        v.declared = Some(Box::new(declared));
         outputs.push(id);
     }
     for vi in &g.value_info {
-        if let Some(&id) = names.get(&vi.name) {
+        if let Some(&id) = names.get(vi.name.as_str()) {
             let declared = declared_fact(cx, vi, false)?;
             if values[id.index()].declared.is_none() {
-                values[id.index()].declared = Some(declared);
+                values[id.index()].declared = Some(Box::new(declared));
             }
         }
     }
@@ -745,7 +764,7 @@ fn attr_value(
         2 => AttrValue::Int(a.i),
         3 => AttrValue::String(String::from_utf8_lossy(&a.s).into_owned()),
         4 => match &a.t {
-            Some(t) => AttrValue::Tensor(tensor_data(cx, t)?),
+            Some(t) => AttrValue::Tensor(Box::new(tensor_data(cx, t)?)),
             None => AttrValue::Other,
         },
         5 => match &a.g {

@@ -10,8 +10,24 @@ use crate::onnx::load::read_external;
 use crate::ops::{self, CostRule, Ctx, MacsOps};
 use crate::values::{self, MAX_DECODE_ELEMENTS};
 
-/// Why a main-graph value's shape is not concrete, by value index.
-pub type UnknownReasons = BTreeMap<ValueId, String>;
+/// Why a main-graph value's shape is not concrete, by value index. A large graph with one
+/// symbolic dim has the same reason on every tensor: the text is shared, not repeated.
+pub type UnknownReasons = BTreeMap<ValueId, std::sync::Arc<str>>;
+
+/// One shared copy of each distinct reason text.
+#[derive(Default)]
+struct ReasonTexts(HashMap<String, std::sync::Arc<str>>);
+
+impl ReasonTexts {
+    fn get(&mut self, text: String) -> std::sync::Arc<str> {
+        if let Some(a) = self.0.get(&text) {
+            return a.clone();
+        }
+        let a: std::sync::Arc<str> = std::sync::Arc::from(text.as_str());
+        self.0.insert(text, a.clone());
+        a
+    }
+}
 
 /// Infers facts and costs for the whole model in place.
 pub fn infer(model: &mut Model, diags: &mut Vec<Diagnostic>) -> UnknownReasons {
@@ -73,8 +89,9 @@ fn load_const(g: &mut Graph, v: ValueId) {
             read_external(path, *offset, bytes)
                 .ok()
                 .and_then(|b| values::decode_raw_bytes(dt, &b, data.dims.clone()))
+                .map(Box::new)
         }
-        _ => values::decode(data),
+        _ => values::decode(data).map(Box::new),
     };
 }
 
@@ -97,7 +114,7 @@ fn infer_graph(
         if let Some((f, k, kind)) = outer.get(&name) {
             let v = &mut g.values[c.index()];
             v.fact = f.clone();
-            v.konst = k.clone();
+            v.konst = k.clone().map(Box::new);
             if is_const_kind(*kind) {
                 v.kind = ValueKind::Constant;
             }
@@ -106,14 +123,22 @@ fn infer_graph(
     for v in &mut g.values {
         if v.kind == ValueKind::Input {
             if let Some(d) = &v.declared {
-                v.fact = d.clone();
+                v.fact = (**d).clone();
             }
         }
     }
+    let mut texts = ReasonTexts::default();
     for ni in 0..g.nodes.len() {
-        let slots: Vec<Option<ValueId>> = g.nodes[ni].inputs.clone();
-        for v in slots.iter().flatten().chain(g.nodes[ni].captures.clone().iter()) {
-            load_const(g, *v);
+        for k in 0..g.nodes[ni].inputs.len() + g.nodes[ni].captures.len() {
+            let n = &g.nodes[ni];
+            let v = if k < n.inputs.len() {
+                n.inputs[k]
+            } else {
+                Some(n.captures[k - n.inputs.len()])
+            };
+            if let Some(v) = v {
+                load_const(g, v);
+            }
         }
         let node = &g.nodes[ni];
         let opset = crate::ir::opset_of(opsets, &node.domain);
@@ -125,7 +150,7 @@ fn infer_graph(
         if !node.bodies.is_empty() {
             let mut scope: OuterFacts = outer.clone();
             for v in &g.values {
-                scope.insert(v.name.clone(), (v.fact.clone(), v.konst.clone(), v.kind));
+                scope.insert(v.name.clone(), (v.fact.clone(), v.konst.as_deref().cloned(), v.kind));
             }
             let input_facts: Vec<Fact> = node
                 .inputs
@@ -164,7 +189,7 @@ fn infer_graph(
             consts: node
                 .inputs
                 .iter()
-                .map(|s| s.and_then(|v| g.values[v.index()].konst.as_ref()))
+                .map(|s| s.and_then(|v| g.values[v.index()].konst.as_deref()))
                 .collect(),
             opset,
             body_outputs,
@@ -186,7 +211,7 @@ fn infer_graph(
         let folded_values = def.and_then(|d| d.fold).and_then(|f| f(&ctx));
         let all_const_inputs = node.all_inputs().iter().all(|v| {
             is_const_kind(g.values[v.index()].kind)
-                || g.values[v.index()].konst.as_ref().is_some_and(ConstValue::is_numeric)
+                || g.values[v.index()].konst.as_deref().is_some_and(ConstValue::is_numeric)
         });
         let cost = node_cost(&ctx, def.map(|d| d.cost), &facts, &body_costs);
         if let Some(f) = &failure {
@@ -195,20 +220,18 @@ fn infer_graph(
             }
         }
         let random = ops::is_random(&node.op_type);
-        let outputs = node.outputs.clone();
-        let node_name = node.name.clone();
         let fully_folded = folded_values.as_ref().is_some_and(|vals| {
-            vals.len() >= outputs.iter().flatten().count() && vals.iter().all(ConstValue::is_numeric)
+            vals.len() >= node.outputs.iter().flatten().count() && vals.iter().all(ConstValue::is_numeric)
         });
         let folded = !random && (all_const_inputs || fully_folded);
-        g.nodes[ni].cost = cost;
-        g.nodes[ni].folded = folded;
-
-        for (k, slot) in outputs.iter().enumerate() {
+        let mut facts = facts;
+        let node = &g.nodes[ni];
+        let node_name = &node.name;
+        for (k, slot) in node.outputs.iter().enumerate() {
             let Some(v) = slot else { continue };
-            let inferred = facts.get(k).cloned().unwrap_or_default();
+            let mut fact = facts.get_mut(k).map(std::mem::take).unwrap_or_default();
+            let inferred_rank = fact.shape.rank();
             let value = &mut g.values[v.index()];
-            let mut fact = inferred.clone();
             if let Some(decl) = &value.declared {
                 let fact_known = fact.dtype.is_some() && fact.shape.is_concrete();
                 if fact_known && decl.dtype.is_some() && decl.shape.rank().is_some() && !agrees(&fact, decl) {
@@ -223,7 +246,7 @@ fn infer_graph(
                                 decl.shape
                             ),
                         )
-                        .at_node(&node_name)
+                        .at_node(node_name)
                         .at_tensor(&value.name),
                     );
                 }
@@ -232,7 +255,7 @@ fn infer_graph(
             if let Some(r) = reasons.as_deref_mut() {
                 if !fact.shape.is_concrete() {
                     let why = match &failure {
-                        Some(f) if inferred.shape.rank().is_none() => f.clone(),
+                        Some(f) if inferred_rank.is_none() => f.clone(),
                         _ => {
                             let syms = fact.shape.symbols();
                             if syms.is_empty() {
@@ -242,15 +265,20 @@ fn infer_graph(
                             }
                         }
                     };
-                    r.insert(*v, why);
+                    r.insert(*v, texts.get(why));
                 }
             }
             value.fact = fact;
-            value.konst = folded_values.as_ref().and_then(|vals| vals.get(k).cloned());
+            value.konst = folded_values
+                .as_ref()
+                .and_then(|vals| vals.get(k).cloned())
+                .map(Box::new);
             if folded && value.kind == ValueKind::Activation {
                 value.kind = ValueKind::Constant;
             }
         }
+        g.nodes[ni].cost = cost;
+        g.nodes[ni].folded = folded;
     }
     // Graph inputs the caller feeds but whose shapes are unknown, for the report.
     if let Some(r) = reasons {
@@ -260,11 +288,11 @@ fn infer_graph(
                 let syms = f.shape.symbols();
                 r.insert(
                     i,
-                    if syms.is_empty() {
+                    texts.get(if syms.is_empty() {
                         "declared with unknown dims".into()
                     } else {
                         format!("declared with symbolic dims: {}", syms.join(", "))
-                    },
+                    }),
                 );
             }
         }
@@ -349,8 +377,8 @@ fn seed_body_inputs(body: &mut Graph, op: &str, inputs: &[Fact], num_scan: usize
             _ => None,
         };
         if let Some(f) = seeded {
-            let decl = v.declared.clone().unwrap_or_default();
-            v.declared = Some(fill_from(&decl, &f));
+            let decl = v.declared.as_deref().cloned().unwrap_or_default();
+            v.declared = Some(Box::new(fill_from(&decl, &f)));
         }
     }
 }

@@ -64,6 +64,16 @@ fn usage_error(e: clap::Error) -> ExitCode {
     ExitCode::from(EXIT_COULD_NOT_RUN)
 }
 
+/// Writes a rendered report to stdout through a buffer. Reports are complete values before
+/// rendering starts, so only the output itself can fail midway (a closed pipe); streaming
+/// spares holding a second copy of a large report in memory.
+fn emit(render: impl FnOnce(&mut dyn Write) -> std::io::Result<()>) -> std::io::Result<()> {
+    let stdout = std::io::stdout();
+    let mut out = std::io::BufWriter::with_capacity(1 << 16, stdout.lock());
+    render(&mut out)?;
+    out.flush()
+}
+
 fn read_text(path: &std::path::Path) -> anyhow::Result<String> {
     std::fs::read_to_string(path).with_context(|| format!("{}: cannot read", path.display()))
 }
@@ -271,13 +281,11 @@ fn run(cli: Cli) -> anyhow::Result<u8> {
         Command::Inspect(args) => {
             let overrides = args.model.overrides()?;
             let report = tilecut::inspect(&args.model.model, &overrides)?;
-            let mut buf = Vec::new();
-            match args.format {
-                Format::Json => inspect::render_json(&report, &mut buf)?,
-                Format::Table => inspect::render_table(&report, &mut buf)?,
-                Format::Markdown => inspect::render_markdown(&report, &mut buf)?,
-            }
-            std::io::stdout().lock().write_all(&buf)?;
+            emit(|out| match args.format {
+                Format::Json => inspect::render_json(&report, out),
+                Format::Table => inspect::render_table(&report, out),
+                Format::Markdown => inspect::render_markdown(&report, out),
+            })?;
             Ok(0)
         }
         Command::Analyze(args) => {
@@ -301,13 +309,12 @@ fn run(cli: Cli) -> anyhow::Result<u8> {
                 tilecut::report::visual::render_html(&analysis, &mut x)?;
                 write_atomic(p, &x).with_context(|| format!("{}: cannot write", p.display()))?;
             }
-            let mut buf = Vec::new();
-            match args.format {
-                Format::Json => analyze::render_json(&report, &mut buf)?,
-                Format::Table => analyze::render_table(&report, &mut buf, tilecut::report::term::Paint::for_stdout())?,
-                Format::Markdown => analyze::render_markdown(&report, &mut buf)?,
-            }
-            std::io::stdout().lock().write_all(&buf)?;
+            bar.finish();
+            emit(|out| match args.format {
+                Format::Json => analyze::render_json(&report, out),
+                Format::Table => analyze::render_table(&report, out, tilecut::report::term::Paint::for_stdout()),
+                Format::Markdown => analyze::render_markdown(&report, out),
+            })?;
             Ok(0)
         }
         Command::Targets(args) => {

@@ -60,11 +60,11 @@ pub struct Effective {
 }
 
 fn is_dq(n: &Node) -> bool {
-    n.op_type == "DequantizeLinear" && (n.is_default_domain() || n.domain == "com.microsoft")
+    n.op_type == "DequantizeLinear" && (n.is_default_domain() || n.domain == crate::ops::CONTRIB_DOMAIN)
 }
 
 fn is_q(n: &Node) -> bool {
-    n.op_type == "QuantizeLinear" && (n.is_default_domain() || n.domain == "com.microsoft")
+    n.op_type == "QuantizeLinear" && (n.is_default_domain() || n.domain == crate::ops::CONTRIB_DOMAIN)
 }
 
 /// Quantization parameters of a scale/zero-point pair, with the quantized type `dtype`.
@@ -171,16 +171,48 @@ pub fn effective(g: &Graph, id: NodeId) -> Effective {
     e
 }
 
-/// QLinearConv / QLinearMatMul carry their scales as inputs: (x, x_scale, x_zp, w, w_scale,
-/// w_zp, y_scale, y_zp) per the ONNX spec; the weight is slot 3.
+/// Where an operator-form quantized op keeps its scales: (x, x_scale, x_zp) for the first
+/// input, then (y_scale, y_zp) for the output. QLinearConv/QLinearMatMul per the ONNX spec;
+/// the contrib-domain QLinear ops and QGemm per that domain's documentation (from memory).
+fn scale_slots(node: &Node) -> Option<(usize, usize)> {
+    let contrib = node.domain == crate::ops::CONTRIB_DOMAIN;
+    Some(match node.op_type.as_str() {
+        "QLinearConv" | "QLinearMatMul" => (1, 6),
+        "QGemm" if contrib => (1, 7),
+        "QLinearAdd" | "QLinearMul" if contrib => (1, 6),
+        "QLinearSigmoid"
+        | "QLinearLeakyRelu"
+        | "QLinearSoftmax"
+        | "QLinearGlobalAveragePool"
+        | "QLinearAveragePool"
+        | "QLinearReduceMean"
+            if contrib =>
+        {
+            (1, 3)
+        }
+        _ => return None,
+    })
+}
+
+/// Operator-form quantized ops carry their scales as inputs; the weight of QLinearConv,
+/// QLinearMatMul and QGemm is slot 3 and is presented in slot 1, where the rule table looks.
 fn operator_form(g: &Graph, node: &Node, e: &mut Effective) {
-    if !matches!(node.op_type.as_str(), "QLinearConv" | "QLinearMatMul") {
+    let Some((x_scale, y_scale)) = scale_slots(node) else {
         return;
-    }
+    };
     let slot = |i: usize| node.inputs.get(i).copied().flatten();
     let dt = |i: usize| slot(i).and_then(|v| g.value(v).fact.dtype);
-    if let Some(x) = dt(0) {
-        e.input_quant[0] = Some(params(g, node, slot(1), slot(2), x));
+    if !matches!(node.op_type.as_str(), "QLinearConv" | "QLinearMatMul" | "QGemm") {
+        if let (Some(x), Some(q)) = (dt(0), e.input_quant.get_mut(0)) {
+            *q = Some(params(g, node, slot(x_scale), slot(x_scale + 1), x));
+        }
+        if let (Some(y), Some(o)) = (dt(0), e.output_quant.get_mut(0)) {
+            *o = Some(params(g, node, slot(y_scale), slot(y_scale + 1), y));
+        }
+        return;
+    }
+    if let (Some(x), Some(q)) = (dt(0), e.input_quant.get_mut(0)) {
+        *q = Some(params(g, node, slot(1), slot(2), x));
     }
     if let Some(w) = dt(3) {
         let mut p = params(g, node, slot(4), slot(5), w);
@@ -193,7 +225,7 @@ fn operator_form(g: &Graph, node: &Node, e: &mut Effective) {
             e.input_quant[1] = Some(p);
         }
     }
-    if let (Some(y), Some(o)) = (dt(7), e.output_quant.get_mut(0)) {
-        *o = Some(params(g, node, slot(6), slot(7), y));
+    if let (Some(y), Some(o)) = (dt(y_scale + 1), e.output_quant.get_mut(0)) {
+        *o = Some(params(g, node, slot(y_scale), slot(y_scale + 1), y));
     }
 }

@@ -153,6 +153,11 @@ fn has_weight(op: &str) -> bool {
             | "QLinearMatMul"
             | "ConvInteger"
             | "MatMulInteger"
+            | "QGemm"
+            | "FusedConv"
+            | "FusedGemm"
+            | "NhwcConv"
+            | "DeformConv"
     )
 }
 
@@ -241,7 +246,9 @@ pub fn judge_node(
         );
     }
     let opset = crate::ir::opset_of(opsets, &node.domain);
-    let domain_matches = |d: &str| d == node.domain || (crate::ops::is_default_domain(d) && node.is_default_domain());
+    let domain_matches = |d: &str| {
+        crate::ops::resolve_domain(d) == node.domain || (crate::ops::is_default_domain(d) && node.is_default_domain())
+    };
     if let Some(m) = target
         .file
         .movement

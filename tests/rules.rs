@@ -395,3 +395,107 @@ fn weight_only_quantization_and_quantized_graph_inputs() {
         v.bundle
     );
 }
+
+/// A scalar initializer of ONNX type `elem` (1 float32, 2 uint8, 3 int8) holding `bytes`.
+fn scalar_init(name: &str, elem: i32, bytes: Vec<u8>, dims: &[i64]) -> tilecut::onnx::TensorProto {
+    tilecut::onnx::TensorProto {
+        name: name.into(),
+        dims: dims.to_vec(),
+        data_type: elem,
+        raw_data: bytes::Bytes::from(bytes),
+        ..Default::default()
+    }
+}
+
+/// An operator-form quantized model as runtime quantizers write it: QLinearConv (standard
+/// domain) followed by the contrib domain's QLinearAdd, QLinearGlobalAveragePool, QGemm and
+/// QLinearSigmoid. Shapes and slots from the ONNX spec (QLinearConv) and the contrib domain's
+/// documentation (from memory): every figure below is computed by hand.
+#[test]
+fn operator_form_contrib_ops_are_inferred_and_judged() {
+    use tilecut::ops::CONTRIB_DOMAIN;
+    let d = tempfile::tempdir().expect("tmp");
+    let contrib = |mut n: tilecut::onnx::NodeProto| {
+        n.domain = CONTRIB_DOMAIN.into();
+        n
+    };
+    let mut conv = node("QLinearConv", &["x", "s", "zu", "w", "s", "zi", "s", "zu"], &["c"]);
+    conv.attribute
+        .push(tilecut::onnx::builder::attr::ints("pads", &[1, 1, 1, 1]));
+    let nodes = vec![
+        conv,
+        contrib(node("QLinearAdd", &["c", "s", "zu", "c", "s", "zu", "s", "zu"], &["a"])),
+        contrib(node("QLinearGlobalAveragePool", &["a", "s", "zu", "s", "zu"], &["p"])),
+        node("Flatten", &["p"], &["f"]),
+        contrib(node("QGemm", &["f", "s", "zu", "b", "s", "zi", "", "s", "zu"], &["g"])),
+        contrib(node("QLinearSigmoid", &["g", "s", "zu", "s", "zu"], &["q"])),
+        node("DequantizeLinear", &["q", "s", "zu"], &["y"]),
+    ];
+    let inits = vec![
+        scalar_init("s", 1, 0.5f32.to_le_bytes().to_vec(), &[]),
+        scalar_init("zu", 2, vec![0], &[]),
+        scalar_init("zi", 3, vec![0], &[]),
+        scalar_init("w", 3, vec![1; 8 * 3 * 3 * 3], &[8, 3, 3, 3]),
+        scalar_init("b", 3, vec![1; 8 * 4], &[8, 4]),
+    ];
+    let mut m = model(
+        nodes,
+        vec![vi("x", 2, &[Dm::N(1), Dm::N(3), Dm::N(16), Dm::N(16)])],
+        vec![vi("y", 1, &[Dm::N(1), Dm::N(4)])],
+        inits,
+    );
+    m.opset_import.push(tilecut::onnx::OperatorSetIdProto {
+        domain: CONTRIB_DOMAIN.into(),
+        version: 1,
+    });
+    let path = write(d.path(), "qoperator.onnx", &m);
+    let a = tilecut::analyze_stages(
+        &path,
+        &Default::default(),
+        tilecut::target::load("compact-array").expect("target"),
+        &Default::default(),
+    )
+    .expect("analyzes");
+    let g = &a.read.model.graph;
+    let shape = |t: &str| g.value(g.value_by_name(t).expect("tensor")).fact.shape.to_string();
+    // QLinearConv, 3×3 kernel, pads 1: 16×16 stays 16×16, 8 output channels.
+    assert_eq!(shape("c"), "[1,8,16,16]");
+    assert_eq!(shape("a"), "[1,8,16,16]");
+    assert_eq!(shape("p"), "[1,8,1,1]");
+    assert_eq!(shape("f"), "[1,8]");
+    // QGemm [1, 8] × [8, 4].
+    assert_eq!(shape("g"), "[1,4]");
+    assert_eq!(shape("q"), "[1,4]");
+    let macs = |op: &str| {
+        g.nodes
+            .iter()
+            .find(|n| n.op_type == op)
+            .and_then(|n| n.cost.macs)
+            .expect("macs")
+    };
+    // 1·8·16·16 outputs × 3·3·3 = 55,296; QGemm 1·4 outputs × K = 8 → 32.
+    assert_eq!(macs("QLinearConv"), 55_296);
+    assert_eq!(macs("QGemm"), 32);
+    // uint8 activations, int8 symmetric weights, per-tensor scales: every node runs on the
+    // array on compact-array, the contrib ones by its `contrib-qlinear-int` rule.
+    for (i, n) in g.nodes.iter().enumerate() {
+        let v = &a.verdicts[i];
+        assert_eq!(v.candidate, Candidate::Accel, "{}: {:?}", n.op_type, v.reasons);
+        if n.domain == CONTRIB_DOMAIN {
+            assert_eq!(v.rule.as_deref(), Some("contrib-qlinear-int"), "{}", n.op_type);
+        }
+    }
+    let qg = g.nodes.iter().position(|n| n.op_type == "QGemm").expect("QGemm");
+    assert_eq!(a.verdicts[qg].signature, "uint8 × int8 → uint8");
+    // An asymmetric weight zero point is caught on QGemm as on QLinearConv.
+    let mut m2 = m.clone();
+    let gph = m2.graph.as_mut().expect("graph");
+    gph.initializer.push(scalar_init("zi7", 3, vec![7], &[]));
+    for n in gph.node.iter_mut().filter(|n| n.op_type == "QGemm") {
+        n.input[5] = "zi7".into();
+    }
+    let path2 = write(d.path(), "qoperator_asym.onnx", &m2);
+    let (code, out, err) = run(&["explain", path2.to_str().expect("utf8"), "QGemm_g"]);
+    assert_eq!(code, 0, "{err}");
+    assert!(out.contains("weight-asymmetric"), "{out}");
+}

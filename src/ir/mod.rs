@@ -289,11 +289,12 @@ pub struct Value {
     pub kind: ValueKind,
     pub fact: Fact,
     /// The fact the file declared (graph input/output or value_info), kept for cross-checks.
-    pub declared: Option<Fact>,
+    /// Boxed, like the two below: most values have none, and a large graph has many values.
+    pub declared: Option<Box<Fact>>,
     pub producer: Option<NodeId>,
     pub consumers: Vec<NodeId>,
-    pub data: Option<TensorData>,
-    pub konst: Option<ConstValue>,
+    pub data: Option<Box<TensorData>>,
+    pub konst: Option<Box<ConstValue>>,
 }
 
 /// An attribute value. Tensors and graphs are owned here; graphs are analyzed as bodies.
@@ -302,7 +303,7 @@ pub enum AttrValue {
     Float(f32),
     Int(i64),
     String(String),
-    Tensor(TensorData),
+    Tensor(Box<TensorData>),
     /// Index into the node's `bodies`.
     Graph(usize),
     Floats(Vec<f32>),

@@ -121,7 +121,9 @@ impl Shape {
     }
 
     pub fn is_concrete(&self) -> bool {
-        self.concrete().is_some()
+        self.0
+            .as_ref()
+            .is_some_and(|d| d.iter().all(|x| matches!(x, Dim::Known(_))))
     }
 
     /// Element count; `None` if any dim is not known or the product overflows.

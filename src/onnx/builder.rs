@@ -174,7 +174,7 @@ pub mod attr {
         AttributeProto {
             name: name.into(),
             r#type: 4,
-            t: Some(t),
+            t: Some(Box::new(t)),
             ..Default::default()
         }
     }
@@ -182,7 +182,7 @@ pub mod attr {
         AttributeProto {
             name: name.into(),
             r#type: 5,
-            g: Some(g),
+            g: Some(Box::new(g)),
             ..Default::default()
         }
     }

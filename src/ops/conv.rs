@@ -75,7 +75,7 @@ fn spatial_out(
     Ok(Dim::Known(out.max(0) as u64))
 }
 
-struct Window {
+pub(super) struct Window {
     kernel: Vec<u64>,
     strides: Vec<u64>,
     dilations: Vec<u64>,
@@ -83,7 +83,7 @@ struct Window {
     auto_pad: String,
 }
 
-fn window(ctx: &Ctx, spatial: usize, kernel: Option<Vec<u64>>) -> Result<Window, String> {
+pub(super) fn window(ctx: &Ctx, spatial: usize, kernel: Option<Vec<u64>>) -> Result<Window, String> {
     let kernel = match ctx.ints("kernel_shape") {
         Some(k) => k
             .iter()
@@ -124,7 +124,7 @@ fn window(ctx: &Ctx, spatial: usize, kernel: Option<Vec<u64>>) -> Result<Window,
     })
 }
 
-fn conv_spatial(ctx: &Ctx, x: &[Dim], w: &Window, ceil_mode: bool) -> Result<Vec<Dim>, String> {
+pub(super) fn conv_spatial(ctx: &Ctx, x: &[Dim], w: &Window, ceil_mode: bool) -> Result<Vec<Dim>, String> {
     let spatial = w.kernel.len();
     (0..spatial)
         .map(|i| {
@@ -143,7 +143,7 @@ fn conv_spatial(ctx: &Ctx, x: &[Dim], w: &Window, ceil_mode: bool) -> Result<Vec
         .map_err(|e: String| format!("{}: {e}", ctx.node.op_type))
 }
 
-fn conv(ctx: &Ctx) -> Inferred {
+pub(super) fn conv(ctx: &Ctx) -> Inferred {
     let io = io(&ctx.node.op_type);
     let x = ctx.dims(io.x).ok_or("input rank unknown")?;
     if x.len() < 3 {
@@ -213,7 +213,7 @@ fn conv_transpose(ctx: &Ctx) -> Inferred {
     Ok(vec![tensor(ctx.dtype(0), Shape::of(out))])
 }
 
-fn pool(ctx: &Ctx) -> Inferred {
+pub(super) fn pool(ctx: &Ctx) -> Inferred {
     let x = ctx.dims(0).ok_or("input rank unknown")?;
     if x.len() < 3 {
         return Err(format!("input of rank {}", x.len()));
@@ -240,7 +240,37 @@ fn global_pool(ctx: &Ctx) -> Inferred {
     Ok(vec![tensor(ctx.dtype(0), Shape::of(out))])
 }
 
-fn conv_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
+/// MaxUnpool: `output_shape` (input 2) when given, else each spatial dim is
+/// (in − 1)·stride − pad_begin − pad_end + kernel (ONNX spec, MaxUnpool).
+fn max_unpool(ctx: &Ctx) -> Inferred {
+    let x = ctx.dims(0).ok_or("input rank unknown")?;
+    if x.len() < 3 {
+        return Err(format!("input of rank {}", x.len()));
+    }
+    if ctx.has_input(2) {
+        let shape = match ctx.konst(2) {
+            Some(c) => Shape::of(c.as_dims()),
+            None => Shape::of_rank(x.len()),
+        };
+        return Ok(vec![tensor(ctx.dtype(0), shape)]);
+    }
+    let spatial = x.len() - 2;
+    let win = window(ctx, spatial, None)?;
+    let mut out = vec![x[0].clone(), x[1].clone()];
+    for i in 0..spatial {
+        out.push(match x[2 + i] {
+            Dim::Known(n) => {
+                let pads = win.pads.as_ref().map(|p| p[i] + p[i + spatial]).unwrap_or(0);
+                let o = (n as i64 - 1) * win.strides[i] as i64 - pads + win.kernel[i] as i64;
+                Dim::Known(o.max(0) as u64)
+            }
+            _ => Dim::Unknown,
+        });
+    }
+    Ok(vec![tensor(ctx.dtype(0), Shape::of(out))])
+}
+
+pub(super) fn conv_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
     let io = io(&ctx.node.op_type);
     let macs = (|| {
         let y = outs.first()?.shape.concrete()?;
@@ -261,7 +291,7 @@ fn conv_transpose_macs(ctx: &Ctx, _outs: &[Fact]) -> MacsOps {
     (macs, Some(0))
 }
 
-fn pool_ops(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
+pub(super) fn pool_ops(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
     let ops = (|| {
         let y = outs.first()?.shape.element_count()?;
         let k: u64 = count(
@@ -293,6 +323,10 @@ pub static OPS: &[OpDef] = &[
     op!("ConvInteger", conv, CostRule::Custom(conv_macs)),
     op!("QLinearConv", conv, CostRule::Custom(conv_macs)),
     op!("ConvTranspose", conv_transpose, CostRule::Custom(conv_transpose_macs)),
+    // DeformConv: X, W, offset (B, mask): Conv's output shape and MACs (plus the bilinear
+    // sampling, counted as other ops by nobody's convention, so left out).
+    op!("DeformConv", conv, CostRule::Custom(conv_macs)),
+    op!("MaxUnpool", max_unpool, CostRule::Free),
     op!("MaxPool", pool, CostRule::Custom(pool_ops)),
     op!("AveragePool", pool, CostRule::Custom(pool_ops)),
     op!("LpPool", pool, CostRule::Custom(pool_ops)),

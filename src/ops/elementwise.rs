@@ -6,6 +6,15 @@ use super::fold::{self, all_consts};
 use super::util::{broadcast, same_as, tensor};
 use super::{CostRule, Ctx, Inferred, OpDef};
 
+/// Bernoulli: the input's shape; the `dtype` attribute's type, else the input's.
+fn bernoulli(ctx: &Ctx) -> Inferred {
+    let dt = match ctx.opt_int("dtype") {
+        Some(c) => DType::from_onnx(c as i32),
+        None => ctx.dtype(0),
+    };
+    Ok(vec![tensor(dt, ctx.shape(0))])
+}
+
 fn unary(ctx: &Ctx) -> Inferred {
     let mut outs = vec![same_as(ctx, 0)];
     outs.truncate(ctx.outputs().max(1));
@@ -296,6 +305,8 @@ pub static OPS: &[OpDef] = &[
     op!("LogSoftmax", unary, CostRule::PerOutput(SOFTMAX_OPS)),
     op!("Hardmax", unary, E1),
     op!("CumSum", unary, E1),
+    op!("CumProd", unary, E1),
+    op!("Bernoulli", bernoulli, E1),
     op!("Trilu", unary, CostRule::Free),
     op!("ReverseSequence", unary, CostRule::Free),
     op!("EyeLike", eye_like, CostRule::Free),

@@ -5,6 +5,7 @@ use std::collections::BTreeMap;
 use crate::ir::{DType, Dim, Fact, Shape};
 
 use super::util::{broadcast, count, tensor};
+use super::CONTRIB_DOMAIN;
 use super::{CostRule, Ctx, Inferred, MacsOps, OpDef};
 
 /// (A, B) input slots and output dtype of each matmul-like op.
@@ -378,7 +379,7 @@ fn fused_matmul(ctx: &Ctx) -> Inferred {
 }
 
 macro_rules! op {
-    ($dom:literal, $name:literal, $infer:expr, $cost:expr) => {
+    ($dom:expr, $name:literal, $infer:expr, $cost:expr) => {
         OpDef {
             domain: $dom,
             op: $name,
@@ -398,32 +399,32 @@ pub static OPS: &[OpDef] = &[
     op!("", "Einsum", einsum, CostRule::Custom(einsum_macs)),
     op!("", "Attention", attention, CostRule::Custom(attention_macs)),
     op!(
-        "com.microsoft",
+        CONTRIB_DOMAIN,
         "Attention",
         ms_attention,
         CostRule::Custom(ms_attention_macs)
     ),
-    op!("com.microsoft", "MultiHeadAttention", mha, CostRule::PerOutput(1)),
+    op!(CONTRIB_DOMAIN, "MultiHeadAttention", mha, CostRule::PerOutput(1)),
     op!(
-        "com.microsoft",
+        CONTRIB_DOMAIN,
         "FusedMatMul",
         fused_matmul,
         CostRule::Custom(matmul_macs)
     ),
     op!(
-        "com.microsoft",
+        CONTRIB_DOMAIN,
         "MatMulNBits",
         matmul_nbits,
         CostRule::Custom(matmul_nbits_macs)
     ),
     op!(
-        "com.microsoft",
+        CONTRIB_DOMAIN,
         "MatMulIntegerToFloat",
         matmul,
         CostRule::Custom(matmul_macs)
     ),
     op!(
-        "com.microsoft",
+        CONTRIB_DOMAIN,
         "DynamicQuantizeMatMul",
         matmul,
         CostRule::Custom(matmul_macs)

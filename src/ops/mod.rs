@@ -12,6 +12,7 @@
 //!   per-op factor in the table), pools one per window element, reductions one per input element.
 //! - Data movement (Reshape, Transpose, Concat, Gather, …) costs neither: only bytes.
 
+mod contrib;
 mod control_flow;
 mod conv;
 mod elementwise;
@@ -22,7 +23,9 @@ mod quant;
 mod recurrent;
 mod reduce;
 mod shape_ops;
+mod signal;
 mod util;
+mod vision;
 
 pub use util::broadcast;
 
@@ -75,6 +78,19 @@ pub struct OpDef {
     pub fold: Option<FoldFn>,
 }
 
+/// The contrib operator domain, as model files name it: runtimes' optimisers and quantizers
+/// write fused and operator-form quantized ops there. Written once, here.
+pub const CONTRIB_DOMAIN: &str = "com.microsoft";
+
+/// A domain as profiles may write it: `contrib` stands for `CONTRIB_DOMAIN`.
+pub fn resolve_domain(d: &str) -> &str {
+    if d == "contrib" {
+        CONTRIB_DOMAIN
+    } else {
+        d
+    }
+}
+
 /// Domains tilecut treats as the standard one.
 pub fn is_default_domain(domain: &str) -> bool {
     domain.is_empty() || domain == "ai.onnx"
@@ -95,6 +111,9 @@ static REGISTRY: &[&[OpDef]] = &[
     reduce::OPS,
     shape_ops::OPS,
     control_flow::OPS,
+    signal::OPS,
+    vision::OPS,
+    contrib::OPS,
 ];
 
 /// Looks an op up by domain and type (a hash index over the registry, built once).
@@ -108,7 +127,11 @@ pub fn lookup(domain: &str, op: &str) -> Option<&'static OpDef> {
             .map(|o| ((o.domain, o.op), o))
             .collect()
     });
-    let d = if domain == "ai.onnx" { "" } else { domain };
+    let d = if domain == "ai.onnx" {
+        ""
+    } else {
+        resolve_domain(domain)
+    };
     index.get(&(d, op)).copied()
 }
 

@@ -3,6 +3,7 @@
 use crate::ir::{DType, Dim, Shape};
 
 use super::util::{same_as, tensor};
+use super::CONTRIB_DOMAIN;
 use super::{CostRule, Ctx, Inferred, OpDef};
 
 fn same(ctx: &Ctx) -> Inferred {
@@ -60,7 +61,7 @@ fn skip_norm(ctx: &Ctx) -> Inferred {
 }
 
 macro_rules! op {
-    ($dom:literal, $name:literal, $infer:expr, $cost:expr) => {
+    ($dom:expr, $name:literal, $infer:expr, $cost:expr) => {
         OpDef {
             domain: $dom,
             op: $name,
@@ -85,34 +86,34 @@ pub static OPS: &[OpDef] = &[
     op!("", "MeanVarianceNormalization", same, CostRule::PerInput(NORM_OPS)),
     op!("", "LRN", same, CostRule::PerInput(NORM_OPS)),
     op!("", "RotaryEmbedding", same, CostRule::PerOutput(3)),
-    op!("com.microsoft", "RotaryEmbedding", same, CostRule::PerOutput(3)),
+    op!(CONTRIB_DOMAIN, "RotaryEmbedding", same, CostRule::PerOutput(3)),
     op!(
-        "com.microsoft",
+        CONTRIB_DOMAIN,
         "SkipLayerNormalization",
         skip_norm,
         CostRule::PerInput(NORM_OPS)
     ),
     op!(
-        "com.microsoft",
+        CONTRIB_DOMAIN,
         "SkipSimplifiedLayerNormalization",
         skip_norm,
         CostRule::PerInput(4)
     ),
     op!(
-        "com.microsoft",
+        CONTRIB_DOMAIN,
         "SimplifiedLayerNormalization",
         layer_norm,
         CostRule::PerInput(4)
     ),
     op!(
-        "com.microsoft",
+        CONTRIB_DOMAIN,
         "LayerNormalization",
         layer_norm,
         CostRule::PerInput(NORM_OPS)
     ),
-    op!("com.microsoft", "Gelu", same, CostRule::PerOutput(1)),
-    op!("com.microsoft", "FastGelu", same, CostRule::PerOutput(1)),
-    op!("com.microsoft", "BiasGelu", same, CostRule::PerOutput(2)),
-    op!("com.microsoft", "QuickGelu", same, CostRule::PerOutput(1)),
-    op!("com.microsoft", "BiasAdd", same, CostRule::PerOutput(2)),
+    op!(CONTRIB_DOMAIN, "Gelu", same, CostRule::PerOutput(1)),
+    op!(CONTRIB_DOMAIN, "FastGelu", same, CostRule::PerOutput(1)),
+    op!(CONTRIB_DOMAIN, "BiasGelu", same, CostRule::PerOutput(2)),
+    op!(CONTRIB_DOMAIN, "QuickGelu", same, CostRule::PerOutput(1)),
+    op!(CONTRIB_DOMAIN, "BiasAdd", same, CostRule::PerOutput(2)),
 ];

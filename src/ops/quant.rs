@@ -4,6 +4,7 @@
 use crate::ir::{DType, Shape};
 
 use super::util::tensor;
+use super::CONTRIB_DOMAIN;
 use super::{CostRule, Ctx, Inferred, OpDef};
 
 /// QuantizeLinear: y has x's shape; its type is y_zero_point's, else `output_dtype`
@@ -39,7 +40,7 @@ fn dynamic_quantize(ctx: &Ctx) -> Inferred {
 }
 
 macro_rules! op {
-    ($dom:literal, $name:literal, $infer:expr, $cost:expr) => {
+    ($dom:expr, $name:literal, $infer:expr, $cost:expr) => {
         OpDef {
             domain: $dom,
             op: $name,
@@ -55,6 +56,6 @@ pub static OPS: &[OpDef] = &[
     op!("", "QuantizeLinear", quantize, CostRule::PerOutput(2)),
     op!("", "DequantizeLinear", dequantize, CostRule::PerOutput(2)),
     op!("", "DynamicQuantizeLinear", dynamic_quantize, CostRule::PerInput(3)),
-    op!("com.microsoft", "QuantizeLinear", quantize, CostRule::PerOutput(2)),
-    op!("com.microsoft", "DequantizeLinear", dequantize, CostRule::PerOutput(2)),
+    op!(CONTRIB_DOMAIN, "QuantizeLinear", quantize, CostRule::PerOutput(2)),
+    op!(CONTRIB_DOMAIN, "DequantizeLinear", dequantize, CostRule::PerOutput(2)),
 ];

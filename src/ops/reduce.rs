@@ -14,7 +14,7 @@ fn axes_input_since(op: &str) -> i64 {
     }
 }
 
-fn reduce(ctx: &Ctx) -> Inferred {
+pub(super) fn reduce(ctx: &Ctx) -> Inferred {
     let keep = ctx.int("keepdims", 1) != 0;
     let dt = ctx.dtype(0);
     let Some(dims) = ctx.dims(0) else {

@@ -86,7 +86,7 @@ pub struct TensorRow {
 pub struct UnknownShape {
     pub tensor: String,
     pub node: Option<String>,
-    pub reason: String,
+    pub reason: std::sync::Arc<str>,
 }
 
 /// A shape as JSON: integers, strings for symbols, null for unknown dims.
@@ -439,7 +439,7 @@ pub fn render_table(r: &InspectReport, out: &mut dyn Write) -> std::io::Result<(
             .map(|u| UnknownRow {
                 tensor: u.tensor.clone(),
                 node: u.node.clone().unwrap_or_else(|| "(graph input)".into()),
-                reason: u.reason.clone(),
+                reason: u.reason.to_string(),
             })
             .collect();
         writeln!(out, "tensors with unknown shapes: {}", r.unknown_shapes.len())?;

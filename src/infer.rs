@@ -148,8 +148,12 @@ fn infer_graph(
         let mut body_outputs = Vec::new();
         let mut body_costs = Vec::new();
         if !node.bodies.is_empty() {
+            // The bodies see what the node reads (its inputs and captures, which cover nested
+            // bodies too), not the whole graph: a large graph with many If/Loop nodes would
+            // otherwise copy every fact once per node.
             let mut scope: OuterFacts = outer.clone();
-            for v in &g.values {
+            for c in node.all_inputs() {
+                let v = &g.values[c.index()];
                 scope.insert(v.name.clone(), (v.fact.clone(), v.konst.as_deref().cloned(), v.kind));
             }
             let input_facts: Vec<Fact> = node

@@ -484,3 +484,20 @@ fn loop_trip_counts_come_from_the_model_or_the_user() {
         "not a non-negative integer",
     );
 }
+
+/// A Loop body that reads an outer weight which is also the node's own input must still see
+/// its facts (regression: bodies once saw only the node's captures and lost the MatMul's
+/// shape). The sample runs 4 trips of [16]×[16, 16] = 256 MACs each: 1,024.
+#[test]
+fn loop_bodies_see_every_outer_value_they_read() {
+    let m = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("sample-models/running_average_loop.onnx");
+    let (code, out, err) = run(&["inspect", m.to_str().expect("utf8"), "--format", "json"]);
+    assert_eq!(code, 0, "{err}");
+    let r: serde_json::Value = serde_json::from_str(&out).expect("json");
+    assert_eq!(r["model"]["macs"], 1024);
+    assert!(r["warnings"]
+        .as_array()
+        .expect("w")
+        .iter()
+        .all(|w| w["code"] != "shape-failed"));
+}

@@ -7,11 +7,13 @@
 //!    segment of a topological order is convex, and segments form a chain, so the quotient
 //!    graph is acyclic), then split into connected components (components of a convex set are
 //!    convex and independent of each other).
-//! 3. Dispatch refinement (a heuristic): an accelerator partition whose removal lowers the full
-//!    objective (dispatches and accelerator-to-accelerator traffic included) is pinned to the
-//!    CPU and the cut re-solved. Every accepted step lowers a non-negative integer objective, so
-//!    the loop terminates. The result is never worse than `greedy` or `cpu`: the best of the
-//!    three is kept.
+//! 3. Dispatch refinement (a heuristic), because a dispatch is paid per partition, not per
+//!    node: an accelerator partition whose removal lowers the full objective (dispatches and
+//!    accelerator-to-accelerator traffic included) is pinned to the CPU and the cut re-solved;
+//!    and two accelerator partitions separated only by CPU nodes the array could run are merged
+//!    (those nodes pinned to the array) when that lowers it. Every accepted step lowers a
+//!    non-negative integer objective, and at most `MAX_REFINEMENT_TRIES` steps are tried, so the
+//!    loop terminates. The result is never worse than `greedy` or `cpu`: the best is kept.
 
 pub mod cost;
 pub mod flow;
@@ -471,7 +473,7 @@ fn solve(g: &Graph, costs: &Costs, forced_cpu: &[bool], forced_accel: &[bool]) -
     (side, cut.value)
 }
 
-/// Most partitions the refinement tries to drop; beyond it the plan keeps what it has.
+/// Most drops and merges the refinement tries; beyond it the plan keeps what it has.
 pub const MAX_REFINEMENT_TRIES: usize = 256;
 
 /// Plans the cut with `strategy`.
@@ -521,10 +523,13 @@ pub fn plans(
         Strategy::Mincut => {
             let (side, value) = solve(g, costs, &pin_cpu, &pin_accel);
             let mut best = finish(g, costs, strategy, side, value, 0);
-            let mut forced = pin_cpu.clone();
+            let mut forced_cpu = pin_cpu.clone();
+            let mut forced_accel = pin_accel.clone();
             let mut tries = 0;
             let mut rejected: BTreeSet<Vec<NodeId>> = BTreeSet::new();
+            let mut rejected_merges: BTreeSet<(NodeId, NodeId)> = BTreeSet::new();
             'outer: loop {
+                // Drops: a partition whose dispatch costs more than it saves goes to the CPU.
                 // Cheapest-looking partitions first: fewest nodes is a fair proxy for gain.
                 let mut cands: Vec<&Partition> = best
                     .partitions
@@ -533,22 +538,59 @@ pub fn plans(
                     .collect();
                 cands.sort_by_key(|p| (p.nodes.len(), p.id));
                 for p in cands {
-                    if tries >= MAX_REFINEMENT_TRIES || p.nodes.iter().any(|i| pin_accel[i.index()]) {
+                    if tries >= MAX_REFINEMENT_TRIES || p.nodes.iter().any(|i| forced_accel[i.index()]) {
                         continue;
                     }
                     tries += 1;
-                    let mut f = forced.clone();
+                    let mut f = forced_cpu.clone();
                     for i in &p.nodes {
                         f[i.index()] = true;
                     }
-                    let (side, _) = solve(g, costs, &f, &pin_accel);
+                    let (side, _) = solve(g, costs, &f, &forced_accel);
                     let trial = finish(g, costs, strategy, side, value, best.refinements + 1);
                     if trial.objective_ps < best.objective_ps {
-                        forced = f;
+                        forced_cpu = f;
                         best = trial;
                         continue 'outer;
                     }
                     rejected.insert(p.nodes.clone());
+                }
+                // Merges: two accelerator partitions separated only by CPU partitions whose
+                // nodes the array could run become one, saving a dispatch and the transfers
+                // between them, when that outweighs running those nodes on the array.
+                let order: Vec<&Partition> = best.partitions.iter().collect();
+                let accel_at: Vec<usize> = (0..order.len()).filter(|&k| order[k].side == Side::Accel).collect();
+                for w in accel_at.windows(2) {
+                    let (a, b) = (order[w[0]], order[w[1]]);
+                    let key = (a.nodes[0], b.nodes[0]);
+                    if tries >= MAX_REFINEMENT_TRIES || rejected_merges.contains(&key) {
+                        continue;
+                    }
+                    let middle: Vec<NodeId> = order[w[0] + 1..w[1]]
+                        .iter()
+                        .flat_map(|p| p.nodes.iter().copied())
+                        .collect();
+                    let movable = !middle.is_empty()
+                        && middle
+                            .iter()
+                            .all(|i| verdicts[i.index()].candidate == Candidate::Accel && !forced_cpu[i.index()]);
+                    if !movable {
+                        rejected_merges.insert(key);
+                        continue;
+                    }
+                    tries += 1;
+                    let mut f = forced_accel.clone();
+                    for i in a.nodes.iter().chain(&b.nodes).chain(&middle) {
+                        f[i.index()] = true;
+                    }
+                    let (side, _) = solve(g, costs, &forced_cpu, &f);
+                    let trial = finish(g, costs, strategy, side, value, best.refinements + 1);
+                    if trial.objective_ps < best.objective_ps {
+                        forced_accel = f;
+                        best = trial;
+                        continue 'outer;
+                    }
+                    rejected_merges.insert(key);
                 }
                 break;
             }

@@ -16,9 +16,40 @@ pub type UnknownReasons = BTreeMap<ValueId, std::sync::Arc<str>>;
 
 /// One shared copy of each distinct reason text.
 #[derive(Default)]
-struct ReasonTexts(HashMap<String, std::sync::Arc<str>>);
+struct ReasonTexts(
+    HashMap<String, std::sync::Arc<str>>,
+    HashMap<Vec<usize>, std::sync::Arc<str>>,
+);
 
 impl ReasonTexts {
+    /// The reason for a shape that is not concrete, cached by the identity of its symbolic
+    /// dims (shapes share their symbols' text), so the common case allocates one small key.
+    fn for_shape(&mut self, shape: &Shape) -> std::sync::Arc<str> {
+        let key: Vec<usize> = shape
+            .dims()
+            .into_iter()
+            .flatten()
+            .map(|d| match d {
+                crate::ir::Dim::Sym(s) => std::sync::Arc::as_ptr(s) as *const u8 as usize,
+                crate::ir::Dim::Unknown => 1,
+                crate::ir::Dim::Known(_) => 0,
+            })
+            .filter(|&k| k != 0)
+            .collect();
+        if let Some(a) = self.1.get(&key) {
+            return a.clone();
+        }
+        let syms = shape.symbols();
+        let text = if syms.is_empty() {
+            "depends on a tensor whose shape is unknown".to_string()
+        } else {
+            format!("depends on symbolic dims: {}", syms.join(", "))
+        };
+        let a = self.get(text);
+        self.1.insert(key, a.clone());
+        a
+    }
+
     fn get(&mut self, text: String) -> std::sync::Arc<str> {
         if let Some(a) = self.0.get(&text) {
             return a.clone();
@@ -259,17 +290,10 @@ fn infer_graph(
             if let Some(r) = reasons.as_deref_mut() {
                 if !fact.shape.is_concrete() {
                     let why = match &failure {
-                        Some(f) if inferred_rank.is_none() => f.clone(),
-                        _ => {
-                            let syms = fact.shape.symbols();
-                            if syms.is_empty() {
-                                "depends on a tensor whose shape is unknown".to_string()
-                            } else {
-                                format!("depends on symbolic dims: {}", syms.join(", "))
-                            }
-                        }
+                        Some(f) if inferred_rank.is_none() => texts.get(f.clone()),
+                        _ => texts.for_shape(&fact.shape),
                     };
-                    r.insert(*v, texts.get(why));
+                    r.insert(*v, why);
                 }
             }
             value.fact = fact;
@@ -457,7 +481,7 @@ fn node_cost(ctx: &Ctx, rule: Option<CostRule>, outs: &[Fact], bodies: &[MacsOps
     }
     if macs.is_none() || ops_.is_none() {
         for f in ctx.inputs.iter().flatten().copied().chain(outs.iter()) {
-            needs.extend(f.shape.symbols());
+            f.shape.symbols_into(&mut needs);
         }
         needs.sort();
         needs.dedup();

@@ -280,12 +280,16 @@ fn run(cli: Cli) -> anyhow::Result<u8> {
     match cli.command {
         Command::Inspect(args) => {
             let overrides = args.model.overrides()?;
-            let report = tilecut::inspect(&args.model.model, &overrides)?;
+            let read = tilecut::read_model(&args.model.model, &overrides)?;
+            let report = inspect::build(&read.model, &read.diags, &read.unknown);
             emit(|out| match args.format {
                 Format::Json => inspect::render_json(&report, out),
                 Format::Table => inspect::render_table(&report, out),
                 Format::Markdown => inspect::render_markdown(&report, out),
             })?;
+            // The process ends here: freeing a large graph piece by piece would only cost time.
+            std::mem::forget(read);
+            std::mem::forget(report);
             Ok(0)
         }
         Command::Analyze(args) => {
@@ -315,6 +319,8 @@ fn run(cli: Cli) -> anyhow::Result<u8> {
                 Format::Table => analyze::render_table(&report, out, tilecut::report::term::Paint::for_stdout()),
                 Format::Markdown => analyze::render_markdown(&report, out),
             })?;
+            std::mem::forget(analysis);
+            std::mem::forget(report);
             Ok(0)
         }
         Command::Targets(args) => {

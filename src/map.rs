@@ -28,6 +28,19 @@ pub enum Bound {
     StreamPorts,
 }
 
+impl Bound {
+    /// The name used in JSON (kebab-case) and tables.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Bound::Compute => "compute",
+            Bound::LocalMemory => "local-memory",
+            Bound::BufferTileCapacity => "buffer-tile-capacity",
+            Bound::IoBandwidth => "io-bandwidth",
+            Bound::StreamPorts => "stream-ports",
+        }
+    }
+}
+
 #[derive(Serialize, Debug, Clone)]
 pub struct Stage {
     pub nodes: Vec<String>,

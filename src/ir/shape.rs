@@ -134,6 +134,26 @@ impl Shape {
             .try_fold(1u64, |acc, d| acc.checked_mul(d.known()?))
     }
 
+    /// Adds the symbols that keep this shape from being concrete to `out`, skipping those
+    /// already there (no allocation for a symbol seen before: large graphs repeat one `batch`).
+    pub fn symbols_into(&self, out: &mut Vec<String>) {
+        for d in self.0.iter().flatten() {
+            let Dim::Sym(s) = d else { continue };
+            let simple = !s.contains(['*', '+', '(', ')']);
+            if simple {
+                if !out.iter().any(|x| x.as_str() == &**s) && s.parse::<u64>().is_err() {
+                    out.push(s.to_string());
+                }
+            } else {
+                for t in d.symbols() {
+                    if !out.contains(&t) {
+                        out.push(t);
+                    }
+                }
+            }
+        }
+    }
+
     /// Symbols that keep this shape from being concrete.
     pub fn symbols(&self) -> Vec<String> {
         let mut out: Vec<String> = self.0.iter().flatten().flat_map(Dim::symbols).collect();

@@ -755,6 +755,8 @@ struct PartRow {
     cols: String,
     #[tabled(rename = "est. µs")]
     latency: String,
+    #[tabled(rename = "bound / fits")]
+    bound: String,
 }
 
 #[derive(Tabled)]
@@ -860,6 +862,20 @@ pub fn render_table(r: &AnalyzeReport, out: &mut dyn Write, paint: Paint) -> std
             v: format!("{} ({} bytes per inference)", s.transfers, grouped(s.boundary_bytes)),
         },
         Kv {
+            k: "array columns (est.)".into(),
+            v: format!(
+                "{} of {} used, {} free for other workloads{}",
+                s.columns_used,
+                s.columns_budget,
+                s.columns_free,
+                if s.resident {
+                    String::new()
+                } else {
+                    format!("; not resident: swapped per inference (+{:.1} µs)", s.reconfigure_us)
+                }
+            ),
+        },
+        Kv {
             k: format!("est. latency ({} plan)", strategy_name(r.strategy)),
             v: micros(s.est_latency_us, &s.needs_dims),
         },
@@ -890,6 +906,17 @@ pub fn render_table(r: &AnalyzeReport, out: &mut dyn Write, paint: Paint) -> std
                 _ => "-".into(),
             },
             latency: format!("{:.1}", p.est_latency_us),
+            bound: match &p.mapping {
+                Some(m) => {
+                    let bound = m.bound.as_str().to_string();
+                    if m.fits {
+                        bound
+                    } else {
+                        paint.paint(Tone::Bad, &format!("{bound} / does not fit"))
+                    }
+                }
+                None => "-".into(),
+            },
         })
         .collect();
     writeln!(out, "{}", paint.paint(Tone::Strong, "partitions in execution order:"))?;

@@ -223,7 +223,11 @@ pub fn build(model: &Model, diags: &[Diagnostic], reasons: &UnknownReasons) -> I
         macs = macs.zip(n.cost.macs).and_then(|(a, b)| a.checked_add(b));
         ops = ops.zip(n.cost.ops).and_then(|(a, b)| a.checked_add(b));
         if n.cost.macs.is_none() || n.cost.ops.is_none() {
-            because.extend(n.cost.needs_dims.iter().cloned());
+            for d in &n.cost.needs_dims {
+                if !because.contains(d) {
+                    because.push(d.clone());
+                }
+            }
         }
     }
     let mut activation_bytes = Some(0u64);
@@ -235,7 +239,7 @@ pub fn build(model: &Model, diags: &[Diagnostic], reasons: &UnknownReasons) -> I
         {
             activation_bytes = activation_bytes.zip(bytes).and_then(|(a, b)| a.checked_add(b));
             if bytes.is_none() {
-                because.extend(v.fact.shape.symbols());
+                v.fact.shape.symbols_into(&mut because);
             }
         }
         tensors.push(TensorRow {

@@ -47,4 +47,5 @@ pub mod codes {
     pub const OVERRIDE_UNUSED: &str = "override-unused";
     pub const OPSET_MISSING: &str = "opset-missing";
     pub const DECLARED_FALLBACK: &str = "shape-from-file";
+    pub const ASSUMPTION_UNUSED: &str = "assumption-unused";
 }

@@ -314,6 +314,21 @@ impl Analysis {
         if let Some((w, s)) = &self.what_if {
             let assumed = report::analyze::build(&self.inputs(StagesRef::of(s), params));
             r.what_if = Some(report::analyze::what_if(&r, &assumed, w));
+            // An assumed op the model does not contain changes nothing: say so.
+            for op in &w.supported_ops {
+                let (domain, name) = target::split_op(op);
+                let present = self.read.model.graph.nodes.iter().any(|n| {
+                    n.op_type == name
+                        && (n.domain == ops::resolve_domain(domain)
+                            || (ops::is_default_domain(domain) && n.is_default_domain()))
+                });
+                if !present {
+                    r.warnings.push(diag::Diagnostic::new(
+                        diag::codes::ASSUMPTION_UNUSED,
+                        format!("--assume-supported {op}: the model has no node of that op type"),
+                    ));
+                }
+            }
         }
         r
     }

@@ -101,19 +101,7 @@ pub fn import(loaded: &LoadedModel, overrides: &Overrides) -> Result<(Model, Vec
         };
         opsets.insert(d, o.version);
     }
-    let mut cx = Cx {
-        path: &loaded.path,
-        dir: &loaded.dir,
-        functions: proto
-            .functions
-            .iter()
-            .map(|f| ((f.domain.clone(), f.name.clone()), f))
-            .collect(),
-        overrides,
-        diags: Vec::new(),
-        used_dims: BTreeSet::new(),
-        used_inputs: BTreeSet::new(),
-    };
+    let mut cx = Cx::new(loaded, overrides);
     if opsets.is_empty() {
         // IR version 1/2 models predate opset_import; the spec says to assume opset 1.
         opsets.insert(String::new(), 1);
@@ -190,19 +178,7 @@ pub fn import(loaded: &LoadedModel, overrides: &Overrides) -> Result<(Model, Vec
 pub fn expanded_main_nodes(loaded: &LoadedModel) -> Result<Vec<onnx::NodeProto>, ReadError> {
     let proto = &loaded.proto;
     let overrides = Overrides::default();
-    let mut cx = Cx {
-        path: &loaded.path,
-        dir: &loaded.dir,
-        functions: proto
-            .functions
-            .iter()
-            .map(|f| ((f.domain.clone(), f.name.clone()), f))
-            .collect(),
-        overrides: &overrides,
-        diags: Vec::new(),
-        used_dims: BTreeSet::new(),
-        used_inputs: BTreeSet::new(),
-    };
+    let mut cx = Cx::new(loaded, &overrides);
     let g = proto
         .graph
         .as_ref()
@@ -232,7 +208,24 @@ struct Cx<'a> {
     used_inputs: BTreeSet<String>,
 }
 
-impl Cx<'_> {
+impl<'a> Cx<'a> {
+    fn new(loaded: &'a LoadedModel, overrides: &'a Overrides) -> Cx<'a> {
+        Cx {
+            path: &loaded.path,
+            dir: &loaded.dir,
+            functions: loaded
+                .proto
+                .functions
+                .iter()
+                .map(|f| ((f.domain.clone(), f.name.clone()), f))
+                .collect(),
+            overrides,
+            diags: Vec::new(),
+            used_dims: BTreeSet::new(),
+            used_inputs: BTreeSet::new(),
+        }
+    }
+
     fn err(&self, msg: impl Into<String>) -> ReadError {
         ReadError::invalid(self.path, msg)
     }

@@ -217,18 +217,21 @@ pub fn stages_from_verdicts(
     })
 }
 
-/// Every stage of `analyze`, kept for callers that look inside (tests, `explain`).
+/// Every stage of `analyze`, kept for callers that look inside (tests, `explain`). The real
+/// stages are reached through `Deref` (`analysis.plan`, `analysis.verdicts`, …).
 pub struct Analysis {
     pub read: Analyzed,
-    pub target: target::Target,
-    pub verdicts: Vec<rules::Verdict>,
-    pub costs: cut::Costs,
-    pub plan: cut::Plan,
-    pub greedy: cut::Plan,
-    pub cpu_only: cut::Plan,
-    pub array: map::ArrayUse,
+    pub stages: Stages,
     /// The same stages under the what-if assumptions, when some were given.
     pub what_if: Option<(WhatIf, Box<Stages>)>,
+}
+
+impl std::ops::Deref for Analysis {
+    type Target = Stages;
+
+    fn deref(&self) -> &Stages {
+        &self.stages
+    }
 }
 
 /// read → judge → cost → cut (all three strategies) → map; again under the what-if
@@ -268,41 +271,23 @@ pub fn analyze_read(read: Analyzed, target: target::Target, opts: &AnalyzeOption
         what_if: WhatIf::default(),
         ..opts.clone()
     };
-    let Stages {
-        target,
-        verdicts,
-        costs,
-        plan,
-        greedy,
-        cpu_only,
-        array,
-    } = run_stages(&read, target, &real)?;
-    Ok(Analysis {
-        read,
-        target,
-        verdicts,
-        costs,
-        plan,
-        greedy,
-        cpu_only,
-        array,
-        what_if,
-    })
+    let stages = run_stages(&read, target, &real)?;
+    Ok(Analysis { read, stages, what_if })
 }
 
 impl Analysis {
-    fn inputs<'a>(&'a self, s: StagesRef<'a>, params: u64) -> report::analyze::Inputs<'a> {
+    fn inputs<'a>(&'a self, s: &'a Stages, params: u64) -> report::analyze::Inputs<'a> {
         let mut warnings = self.read.diags.clone();
         warnings.extend(s.target.warnings.iter().cloned());
         report::analyze::Inputs {
             model: &self.read.model,
-            target: s.target,
-            verdicts: s.verdicts,
-            costs: s.costs,
-            plan: s.plan,
-            greedy: s.greedy,
-            cpu_only: s.cpu_only,
-            array: s.array,
+            target: &s.target,
+            verdicts: &s.verdicts,
+            costs: &s.costs,
+            plan: &s.plan,
+            greedy: &s.greedy,
+            cpu_only: &s.cpu_only,
+            array: &s.array,
             params,
             warnings,
         }
@@ -310,9 +295,9 @@ impl Analysis {
 
     pub fn report(&self) -> report::analyze::AnalyzeReport {
         let params = self.params();
-        let mut r = report::analyze::build(&self.inputs(self.real(), params));
+        let mut r = report::analyze::build(&self.inputs(&self.stages, params));
         if let Some((w, s)) = &self.what_if {
-            let assumed = report::analyze::build(&self.inputs(StagesRef::of(s), params));
+            let assumed = report::analyze::build(&self.inputs(s, params));
             r.what_if = Some(report::analyze::what_if(&r, &assumed, w));
             // An assumed op the model does not contain changes nothing: say so.
             for op in &w.supported_ops {
@@ -337,48 +322,10 @@ impl Analysis {
     /// `check --assume-*` evaluates the policy on.
     pub fn assumed_report(&self) -> Option<report::analyze::AnalyzeReport> {
         let (_, s) = self.what_if.as_ref()?;
-        Some(report::analyze::build(&self.inputs(StagesRef::of(s), self.params())))
+        Some(report::analyze::build(&self.inputs(s, self.params())))
     }
 
     fn params(&self) -> u64 {
         report::inspect::params_and_weight_bytes(&self.read.model.graph).0
-    }
-
-    fn real(&self) -> StagesRef<'_> {
-        StagesRef {
-            target: &self.target,
-            verdicts: &self.verdicts,
-            costs: &self.costs,
-            plan: &self.plan,
-            greedy: &self.greedy,
-            cpu_only: &self.cpu_only,
-            array: &self.array,
-        }
-    }
-}
-
-/// Borrowed stages, so the real analysis and a what-if scenario share one report path.
-#[derive(Clone, Copy)]
-struct StagesRef<'a> {
-    target: &'a target::Target,
-    verdicts: &'a [rules::Verdict],
-    costs: &'a cut::Costs,
-    plan: &'a cut::Plan,
-    greedy: &'a cut::Plan,
-    cpu_only: &'a cut::Plan,
-    array: &'a map::ArrayUse,
-}
-
-impl<'a> StagesRef<'a> {
-    fn of(s: &'a Stages) -> StagesRef<'a> {
-        StagesRef {
-            target: &s.target,
-            verdicts: &s.verdicts,
-            costs: &s.costs,
-            plan: &s.plan,
-            greedy: &s.greedy,
-            cpu_only: &s.cpu_only,
-            array: &s.array,
-        }
     }
 }

@@ -523,6 +523,18 @@ pub fn plans(
         Strategy::Mincut => {
             let (side, value) = solve(g, costs, &pin_cpu, &pin_accel);
             let mut best = finish(g, costs, strategy, side, value, 0);
+            // A refinement step: force `nodes` to one side on top of what is forced already,
+            // re-solve, and cost the plan.
+            let forcing = |base: &[bool], nodes: &[NodeId]| -> Vec<bool> {
+                let mut f = base.to_vec();
+                for i in nodes {
+                    f[i.index()] = true;
+                }
+                f
+            };
+            let attempt = |cpu: &[bool], accel: &[bool], refinements: usize| {
+                finish(g, costs, strategy, solve(g, costs, cpu, accel).0, value, refinements)
+            };
             let mut forced_cpu = pin_cpu.clone();
             let mut forced_accel = pin_accel.clone();
             let mut tries = 0;
@@ -542,12 +554,8 @@ pub fn plans(
                         continue;
                     }
                     tries += 1;
-                    let mut f = forced_cpu.clone();
-                    for i in &p.nodes {
-                        f[i.index()] = true;
-                    }
-                    let (side, _) = solve(g, costs, &f, &forced_accel);
-                    let trial = finish(g, costs, strategy, side, value, best.refinements + 1);
+                    let f = forcing(&forced_cpu, &p.nodes);
+                    let trial = attempt(&f, &forced_accel, best.refinements + 1);
                     if trial.objective_ps < best.objective_ps {
                         forced_cpu = f;
                         best = trial;
@@ -579,12 +587,9 @@ pub fn plans(
                         continue;
                     }
                     tries += 1;
-                    let mut f = forced_accel.clone();
-                    for i in a.nodes.iter().chain(&b.nodes).chain(&middle) {
-                        f[i.index()] = true;
-                    }
-                    let (side, _) = solve(g, costs, &forced_cpu, &f);
-                    let trial = finish(g, costs, strategy, side, value, best.refinements + 1);
+                    let all: Vec<NodeId> = a.nodes.iter().chain(&b.nodes).chain(&middle).copied().collect();
+                    let f = forcing(&forced_accel, &all);
+                    let trial = attempt(&forced_cpu, &f, best.refinements + 1);
                     if trial.objective_ps < best.objective_ps {
                         forced_accel = f;
                         best = trial;

@@ -7,7 +7,7 @@
 use crate::ir::{DType, Dim, Fact, Shape};
 
 use super::util::{broadcast, count, tensor};
-use super::{conv, reduce, vision, CostRule, Ctx, Inferred, MacsOps, OpDef, CONTRIB_DOMAIN};
+use super::{conv, matmul, reduce, shape_ops, vision, CostRule, Ctx, Inferred, MacsOps, OpDef, CONTRIB_DOMAIN};
 
 /// QLinearAdd / QLinearMul: (A, A_scale, A_zp, B, B_scale, B_zp, C_scale, C_zp) → the
 /// broadcast of A and B, in A's integer type.
@@ -110,31 +110,9 @@ fn nhwc_conv(ctx: &Ctx) -> Inferred {
 /// QLinearConcat: (Y_scale, Y_zp, then X, X_scale, X_zp per input) → concat of the X along
 /// `axis`, in Y_zp's type.
 fn qlinear_concat(ctx: &Ctx) -> Inferred {
-    let xs: Vec<usize> = (2..ctx.node.inputs.len()).step_by(3).collect();
-    let shapes: Vec<Option<Vec<Dim>>> = xs.iter().map(|&i| ctx.dims(i)).collect();
-    let Some(rank) = shapes.iter().flatten().map(Vec::len).next() else {
-        return Ok(vec![tensor(ctx.dtype(1), Shape::unknown())]);
-    };
-    let axis = super::util::norm_axis(ctx.int("axis", 0), rank).ok_or("axis out of range")?;
-    let mut out = vec![Dim::Unknown; rank];
-    let mut total = Dim::Known(0);
-    for s in &shapes {
-        let Some(s) = s else {
-            total = Dim::Unknown;
-            continue;
-        };
-        if s.len() != rank {
-            return Err("inputs of different ranks".into());
-        }
-        for (i, d) in s.iter().enumerate() {
-            if i != axis && out[i] == Dim::Unknown {
-                out[i] = d.clone();
-            }
-        }
-        total = total.add(&s[axis]).ok_or("dim overflow")?;
-    }
-    out[axis] = total;
-    Ok(vec![tensor(ctx.dtype(1).or(ctx.dtype(2)), Shape::of(out))])
+    let shapes: Vec<Option<Vec<Dim>>> = (2..ctx.node.inputs.len()).step_by(3).map(|i| ctx.dims(i)).collect();
+    let shape = shape_ops::concat_shape(&shapes, ctx.int("axis", 0))?;
+    Ok(vec![tensor(ctx.dtype(1).or(ctx.dtype(2)), shape)])
 }
 
 /// QGemm: (A, a_scale, a_zp, B, b_scale, b_zp, C?, y_scale?, y_zp?) with transA/transB →
@@ -154,47 +132,6 @@ fn qgemm(ctx: &Ctx) -> Inferred {
         Some(DType::F32)
     };
     Ok(vec![tensor(dt, Shape::of(vec![m.clone(), n.clone()]))])
-}
-
-fn qgemm_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
-    let macs = (|| {
-        let y = outs.first()?.shape.element_count()?;
-        let a = ctx.shape(0).concrete()?;
-        let k = if ctx.int("transA", 0) != 0 {
-            *a.first()?
-        } else {
-            *a.get(1)?
-        };
-        y.checked_mul(k)
-    })();
-    (macs, Some(0))
-}
-
-/// FusedGemm: Gemm (A, B, C) with a fused activation.
-fn fused_gemm(ctx: &Ctx) -> Inferred {
-    let (Some(a), Some(b)) = (ctx.dims(0), ctx.dims(1)) else {
-        return Err("operand rank unknown".into());
-    };
-    if a.len() != 2 || b.len() != 2 {
-        return Err(format!("2-D operands needed, got ranks {} and {}", a.len(), b.len()));
-    }
-    let m = if ctx.int("transA", 0) != 0 { &a[1] } else { &a[0] };
-    let n = if ctx.int("transB", 0) != 0 { &b[0] } else { &b[1] };
-    Ok(vec![tensor(ctx.dtype(0), Shape::of(vec![m.clone(), n.clone()]))])
-}
-
-fn fused_gemm_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
-    let macs = (|| {
-        let y = outs.first()?.shape.element_count()?;
-        let a = ctx.shape(0).concrete()?;
-        let k = if ctx.int("transA", 0) != 0 {
-            *a.first()?
-        } else {
-            *a.get(1)?
-        };
-        y.checked_mul(k)
-    })();
-    (macs, Some(0))
 }
 
 /// NhwcConv MACs: every output element takes (C/group)·∏kernel, W being [M, C/group, k…].
@@ -324,9 +261,11 @@ pub static OPS: &[OpDef] = &[
     ),
     op!("QLinearConcat", qlinear_concat, CostRule::PerOutput(2)),
     op!("QLinearReduceMean", reduce::reduce, CostRule::PerInput(1)),
-    op!("QGemm", qgemm, CostRule::Custom(qgemm_macs)),
+    // QGemm's A is slot 0 as in Gemm, so Gemm's count (outputs × K) applies.
+    op!("QGemm", qgemm, CostRule::Custom(matmul::gemm_macs)),
     op!("FusedConv", conv::conv, CostRule::Custom(conv::conv_macs)),
-    op!("FusedGemm", fused_gemm, CostRule::Custom(fused_gemm_macs)),
+    // FusedGemm: Gemm (A, B, C) with a fused activation.
+    op!("FusedGemm", matmul::gemm, CostRule::Custom(matmul::gemm_macs)),
     op!("NhwcConv", nhwc_conv, CostRule::Custom(nhwc_conv_macs)),
     op!("NhwcMaxPool", nhwc_max_pool, CostRule::PerOutput(1)),
     op!("GridSample", vision::grid_sample, CostRule::PerOutput(8)),

@@ -68,7 +68,7 @@ fn matmul_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
     (macs, Some(0))
 }
 
-fn gemm(ctx: &Ctx) -> Inferred {
+pub(super) fn gemm(ctx: &Ctx) -> Inferred {
     let (Some(a), Some(b)) = (ctx.dims(0), ctx.dims(1)) else {
         return Err("operand rank unknown".into());
     };
@@ -92,7 +92,7 @@ fn gemm(ctx: &Ctx) -> Inferred {
     Ok(vec![tensor(ctx.dtype(0), Shape::of(vec![m, n]))])
 }
 
-fn gemm_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
+pub(super) fn gemm_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
     let y = outs.first().and_then(|f| f.shape.element_count());
     let macs = (|| {
         let a = ctx.shape(0).concrete()?;

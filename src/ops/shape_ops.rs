@@ -416,13 +416,19 @@ fn concat(ctx: &Ctx) -> Inferred {
     let n = ctx.node.inputs.len();
     let shapes: Vec<Option<Vec<Dim>>> = (0..n).filter(|&i| ctx.has_input(i)).map(|i| ctx.dims(i)).collect();
     let dt = (0..n).find_map(|i| ctx.dtype(i));
+    Ok(vec![tensor(dt, concat_shape(&shapes, ctx.int("axis", 0))?)])
+}
+
+/// The shape of a concatenation along `axis`: the other dims from whichever input knows them,
+/// the axis the sum of the inputs' (unknown if any input's is).
+pub(super) fn concat_shape(shapes: &[Option<Vec<Dim>>], axis: i64) -> Result<Shape, String> {
     let Some(rank) = shapes.iter().flatten().map(Vec::len).next() else {
-        return Ok(vec![tensor(dt, Shape::unknown())]);
+        return Ok(Shape::unknown());
     };
-    let axis = norm_axis(ctx.int("axis", 0), rank).ok_or("axis out of range")?;
+    let axis = norm_axis(axis, rank).ok_or("axis out of range")?;
     let mut out: Vec<Dim> = vec![Dim::Unknown; rank];
     let mut total = Dim::Known(0);
-    for s in &shapes {
+    for s in shapes {
         let Some(s) = s else {
             total = Dim::Unknown;
             continue;
@@ -438,7 +444,7 @@ fn concat(ctx: &Ctx) -> Inferred {
         total = total.add(&s[axis]).ok_or("dim overflow")?;
     }
     out[axis] = total;
-    Ok(vec![tensor(dt, Shape::of(out))])
+    Ok(Shape::of(out))
 }
 
 fn fold_concat(ctx: &Ctx) -> Option<Vec<ConstValue>> {

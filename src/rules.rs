@@ -385,7 +385,7 @@ fn static_shape_reasons(g: &Graph, node: &Node, rule: &str) -> Vec<Reason> {
                 "symbolic dims {}; fix them with {}",
                 syms.join(", "),
                 syms.iter()
-                    .map(|s| format!("--dim {s}=N"))
+                    .map(|s| crate::text::fix_hint(s))
                     .collect::<Vec<_>>()
                     .join(" ")
             )

@@ -262,7 +262,7 @@ pub fn suggest_one(g: &Graph, id: NodeId, first: &Reason, target: &Target) -> Op
             if !syms.is_empty() {
                 format!(
                     "fix the symbolic dims: {}",
-                    syms.iter().map(|s| format!("--dim {s}=N")).collect::<Vec<_>>().join(" ")
+                    syms.iter().map(|s| crate::text::fix_hint(s)).collect::<Vec<_>>().join(" ")
                 )
             } else if data_dependent {
                 "its shape depends on data at run time: keep it on the CPU, or bound the size (e.g. a fixed top-k) so the shape is static".into()

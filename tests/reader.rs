@@ -501,3 +501,16 @@ fn loop_bodies_see_every_outer_value_they_read() {
         .iter()
         .all(|w| w["code"] != "shape-failed"));
 }
+
+/// A Loop whose trip count is a graph input (the ONNX conformance model `test_loop11`): its
+/// cost is unknown until `--loop-trips` gives the count, and that is the setting the report
+/// names (not a `--dim`).
+#[test]
+fn unknown_loop_trips_name_the_loop_trips_setting() {
+    let m = conformance("test_loop11.onnx");
+    let m = m.to_str().expect("utf8");
+    let (code, out, err) = run(&["inspect", m]);
+    assert_eq!(code, 0, "{err}");
+    assert!(out.contains("--loop-trips"), "{out}");
+    assert!(!out.contains("--dim trips@"), "{out}");
+}

@@ -660,7 +660,7 @@ fn micros(x: Option<f64>, needs: &[String]) -> String {
             "unknown (fix {})",
             needs
                 .iter()
-                .map(|d| format!("--dim {d}=N"))
+                .map(|d| crate::text::fix_hint(d))
                 .collect::<Vec<_>>()
                 .join(" ")
         ),

@@ -406,7 +406,7 @@ pub fn render_table(r: &InspectReport, out: &mut dyn Write) -> std::io::Result<(
             value: m
                 .unknown_because
                 .iter()
-                .map(|d| format!("--dim {d}=N"))
+                .map(|d| crate::text::fix_hint(d))
                 .collect::<Vec<_>>()
                 .join(" "),
         });

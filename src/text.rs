@@ -45,6 +45,17 @@ pub fn glob(pattern: &str, text: &str) -> bool {
     true
 }
 
+/// The command-line setting that makes a symbol known: `--dim NAME=N` for a symbolic dim,
+/// `--loop-trips NODE=N` for a Loop's trip count (symbols `trips@NODE`). Data-dependent sizes
+/// (`what@node`) have none; they are named as they are.
+pub fn fix_hint(symbol: &str) -> String {
+    match symbol.split_once('@') {
+        Some(("trips", node)) => format!("--loop-trips {node}=N"),
+        Some(_) => format!("(data-dependent: {symbol})"),
+        None => format!("--dim {symbol}=N"),
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::glob;
@@ -56,16 +67,5 @@ mod tests {
         assert!(glob("a*b*c", "axxbyyc"));
         assert!(!glob("a*b", "ac"));
         assert!(glob("exact", "exact"));
-    }
-}
-
-/// The command-line setting that makes a symbol known: `--dim NAME=N` for a symbolic dim,
-/// `--loop-trips NODE=N` for a Loop's trip count (symbols `trips@NODE`). Data-dependent sizes
-/// (`what@node`) have none; they are named as they are.
-pub fn fix_hint(symbol: &str) -> String {
-    match symbol.split_once('@') {
-        Some(("trips", node)) => format!("--loop-trips {node}=N"),
-        Some(_) => format!("(data-dependent: {symbol})"),
-        None => format!("--dim {symbol}=N"),
     }
 }

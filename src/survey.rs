@@ -146,6 +146,8 @@ pub struct ModelSurvey {
     pub nodes: usize,
     pub figures: Figures,
     pub lifts: Vec<Lift>,
+    /// Blockers whose lift could not be computed (the model itself was surveyed).
+    pub lift_errors: Vec<String>,
 }
 
 /// A file that could not be surveyed: listed, never fatal.
@@ -501,8 +503,15 @@ fn survey_model(path: &Path, req: &Request) -> Result<ModelSurvey, String> {
     let base = crate::run_stages(&read, req.target.clone(), &AnalyzeOptions::default()).map_err(|e| e.to_string())?;
     let real = Figures::of(&base.summary(&read));
     let mut lifts = Vec::new();
+    let mut lift_errors = Vec::new();
     for (key, nodes) in blockers(&read, &base) {
-        let figures = lift(&key, &read, &base, &loaded, req.overrides, &req.dim_lifts)?;
+        let figures = match lift(&key, &read, &base, &loaded, req.overrides, &req.dim_lifts) {
+            Ok(f) => f,
+            Err(e) => {
+                lift_errors.push(format!("{}: {e}", key.label()));
+                continue;
+            }
+        };
         let (_, how) = what_if_for(&key, &req.dim_lifts);
         lifts.push(Lift {
             blocker: key.label(),
@@ -519,6 +528,7 @@ fn survey_model(path: &Path, req: &Request) -> Result<ModelSurvey, String> {
         nodes: read.model.graph.nodes.len(),
         figures: real,
         lifts,
+        lift_errors,
     })
 }
 

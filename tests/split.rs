@@ -308,6 +308,25 @@ fn cut_at_forces_the_cut_points() {
     let m: serde_json::Value =
         serde_json::from_str(&std::fs::read_to_string(out.join("manifest.json")).expect("m")).expect("json");
     assert_eq!(m["pieces"].as_array().expect("pieces").len(), 3);
+    // Pieces keep the side the cut-finder gave their nodes: cutting the int8 grader where its
+    // min-cut plan crosses the boundary (image_q in, fc_35_q out) leaves the array's piece whole.
+    let q = d.path().join("q");
+    split_and_verify(
+        &sample("fruit_grader_qdq_int8.onnx"),
+        &q,
+        &["--cut-at", "image_q", "--cut-at", "fc_35_q"],
+        false,
+    )
+    .expect("verifies");
+    let m: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(q.join("manifest.json")).expect("m")).expect("json");
+    let sides: Vec<&str> = m["pieces"]
+        .as_array()
+        .expect("pieces")
+        .iter()
+        .map(|p| p["side"].as_str().expect("side"))
+        .collect();
+    assert_eq!(sides, ["cpu", "accel", "cpu"]);
     assert_fails_cleanly(
         &[
             "split",

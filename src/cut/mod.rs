@@ -663,14 +663,21 @@ pub fn plan_at(g: &Graph, base: &Plan, tensors: &[String]) -> Result<Plan, PinEr
             for node in &p.nodes {
                 partition_of[node.index()] = Some(id);
             }
+            // A piece is the array's when the base plan put all of it there; a piece that
+            // mixes sides is the CPU's, which can run anything.
+            let piece_side = if p.nodes.iter().all(|n| base.side[n.index()] == Side::Accel) {
+                Side::Accel
+            } else {
+                Side::Cpu
+            };
             parts.push(Partition {
                 id,
-                side: Side::Cpu,
+                side: piece_side,
                 nodes: p.nodes,
             });
         }
     }
-    let side: Vec<Side> = (0..n)
+    let mut side: Vec<Side> = (0..n)
         .map(|i| {
             if base.side[i] == Side::Const {
                 Side::Const
@@ -679,6 +686,11 @@ pub fn plan_at(g: &Graph, base: &Plan, tensors: &[String]) -> Result<Plan, PinEr
             }
         })
         .collect();
+    for p in &parts {
+        for node in &p.nodes {
+            side[node.index()] = p.side;
+        }
+    }
     Ok(Plan {
         strategy: base.strategy,
         side,

@@ -34,12 +34,20 @@ pub fn render_table(d: &Diff, out: &mut dyn Write, paint: Paint) -> std::io::Res
         )?;
     }
     writeln!(out, "  accelerator partitions {:+}", d.partitions_added)?;
+    let num = |x: f64| {
+        if x.is_nan() {
+            format!("{:>14}", "unknown")
+        } else {
+            format!("{x:>14.4}")
+        }
+    };
     for f in &d.figures {
-        writeln!(
-            out,
-            "  {:<16} {:>14.4} → {:>14.4} ({:+.4})",
-            f.figure, f.old, f.new, f.delta
-        )?;
+        let delta = if f.delta.is_nan() {
+            "unknown".to_string()
+        } else {
+            format!("{:+.4}", f.delta)
+        };
+        writeln!(out, "  {:<16} {} → {} ({delta})", f.figure, num(f.old), num(f.new))?;
     }
     for r in d.regressions.iter().filter(|r| !r.passed) {
         writeln!(

@@ -8,7 +8,7 @@
 //! nodes, figures {accel_macs, coverage_macs, coverage_nodes, accel_partitions, transfers,
 //! boundary_bytes, est_latency_us}, lifts[] {blocker, kind, name, how, nodes, figures, gain
 //! {macs_moved, partitions_removed, transfers_removed, boundary_bytes_removed,
-//! latency_saved_us}}}, `failures[]` {path, error}.
+//! latency_saved_us}}, lift_errors[]}, `failures[]` {path, error}.
 //!
 //! CSV: one row per ranked blocker, the `ranking[]` fields in that order, header first.
 
@@ -147,6 +147,11 @@ pub fn render_table(r: &SurveyReport, out: &mut dyn Write, paint: Paint) -> std:
             .collect();
         writeln!(out, "per model:")?;
         writeln!(out, "{}", Table::new(rows).with(Style::sharp()))?;
+    }
+    for m in &r.models {
+        for e in &m.lift_errors {
+            writeln!(out, "{} in {}: {e}", paint.paint(Tone::Warn, "could not lift"), m.path)?;
+        }
     }
     for f in &r.failures {
         writeln!(

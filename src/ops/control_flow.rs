@@ -7,7 +7,7 @@ use super::util::tensor;
 use super::{CostRule, Ctx, Inferred, OpDef};
 
 /// Merges two branch facts: equal dims stay, differing ones become unknown.
-fn merge(a: &Fact, b: &Fact) -> Fact {
+pub(super) fn merge(a: &Fact, b: &Fact) -> Fact {
     let dtype = if a.dtype == b.dtype { a.dtype } else { None };
     let shape = match (a.shape.dims(), b.shape.dims()) {
         (Some(x), Some(y)) if x.len() == y.len() => Shape::of(

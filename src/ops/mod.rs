@@ -22,6 +22,7 @@ mod norm;
 mod quant;
 mod recurrent;
 mod reduce;
+mod sequence;
 mod shape_ops;
 mod signal;
 mod util;
@@ -113,6 +114,7 @@ static REGISTRY: &[&[OpDef]] = &[
     control_flow::OPS,
     signal::OPS,
     vision::OPS,
+    sequence::OPS,
     contrib::OPS,
 ];
 

@@ -29,7 +29,7 @@ pub fn parse_arg(text: &str) -> Result<FeedArg, String> {
 /// Reads a feed file; the name is the TensorProto's own for `.pb` files that carry one.
 pub fn read(path: &Path) -> Result<(Option<String>, HostTensor), String> {
     let shown = path.display();
-    let bytes = std::fs::read(path).map_err(|e| format!("{shown}: cannot read: {e}"))?;
+    let bytes = crate::text::read_file(path).map_err(|e| format!("{shown}: cannot read: {e}"))?;
     let ext = path
         .extension()
         .and_then(|e| e.to_str())

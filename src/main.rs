@@ -75,7 +75,7 @@ fn emit(render: impl FnOnce(&mut dyn Write) -> std::io::Result<()>) -> std::io::
 }
 
 fn read_text(path: &std::path::Path) -> anyhow::Result<String> {
-    std::fs::read_to_string(path).with_context(|| format!("{}: cannot read", path.display()))
+    tilecut::text::read_text_file(path).with_context(|| format!("{}: cannot read", path.display()))
 }
 
 fn run_check(args: tilecut::cli::CheckArgs, quiet: bool) -> anyhow::Result<u8> {

@@ -56,6 +56,25 @@ pub fn fix_hint(symbol: &str) -> String {
     }
 }
 
+/// Reads a whole input file the user names (profile, policy, feed), refusing what is not a
+/// regular file first: a FIFO would block the read, a device would never end it.
+pub fn read_file(path: &std::path::Path) -> std::io::Result<Vec<u8>> {
+    let meta = std::fs::metadata(path)?;
+    if !meta.is_file() {
+        return Err(std::io::Error::new(
+            std::io::ErrorKind::InvalidInput,
+            "not a regular file (a folder, pipe, socket or device?)",
+        ));
+    }
+    std::fs::read(path)
+}
+
+/// `read_file` for text.
+pub fn read_text_file(path: &std::path::Path) -> std::io::Result<String> {
+    String::from_utf8(read_file(path)?)
+        .map_err(|_| std::io::Error::new(std::io::ErrorKind::InvalidData, "not UTF-8 text"))
+}
+
 #[cfg(test)]
 mod tests {
     use super::glob;

@@ -514,3 +514,29 @@ fn unknown_loop_trips_name_the_loop_trips_setting() {
     assert!(out.contains("--loop-trips"), "{out}");
     assert!(!out.contains("--dim trips@"), "{out}");
 }
+
+/// A pipe or a device in place of a model is refused before it is opened: opening a FIFO
+/// would block, reading /dev/zero would never end. Likewise in a survey folder.
+#[test]
+fn pipes_and_devices_are_refused_without_blocking() {
+    assert_fails_cleanly(&["inspect", "/dev/zero"], "not a regular file");
+    let d = tempfile::tempdir().expect("tmp");
+    let fifo = d.path().join("camera.onnx");
+    let made = std::process::Command::new("mkfifo")
+        .arg(&fifo)
+        .status()
+        .map(|s| s.success())
+        .unwrap_or(false);
+    if !made {
+        println!("SKIPPED the FIFO half: mkfifo is not available");
+        return;
+    }
+    assert_fails_cleanly(&["inspect", fifo.to_str().expect("utf8")], "not a regular file");
+    let (code, out, _) = run(&["survey", d.path().to_str().expect("utf8"), "--format", "json"]);
+    assert_eq!(code, 0);
+    let r: serde_json::Value = serde_json::from_str(&out).expect("json");
+    assert!(r["failures"][0]["error"]
+        .as_str()
+        .expect("e")
+        .contains("not a regular file"));
+}

@@ -24,11 +24,19 @@ pub fn load(path: &Path) -> Result<LoadedModel, ReadError> {
         path: path.to_path_buf(),
         source,
     };
-    let file = File::open(path).map_err(io)?;
-    let meta = file.metadata().map_err(io)?;
+    // Checked before opening: opening a FIFO or a device would block or read forever.
+    let meta = std::fs::metadata(path).map_err(io)?;
     if meta.is_dir() {
         return Err(ReadError::invalid(path, "is a folder, not a model file"));
     }
+    if !meta.is_file() {
+        return Err(ReadError::invalid(
+            path,
+            "is not a regular file (a pipe, socket or device?)",
+        ));
+    }
+    let file = File::open(path).map_err(io)?;
+    let meta = file.metadata().map_err(io)?;
     if meta.len() == 0 {
         return Err(ReadError::Empty {
             path: path.to_path_buf(),

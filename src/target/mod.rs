@@ -76,7 +76,7 @@ pub fn load(spec: &str) -> Result<Target, ProfileError> {
             message: format!("no such built-in target or file (built-in: {})", names.join(", ")),
         });
     }
-    let text = std::fs::read_to_string(path).map_err(|e| ProfileError {
+    let text = crate::text::read_text_file(path).map_err(|e| ProfileError {
         source_name: spec.to_string(),
         message: format!("cannot read: {e}"),
     })?;

@@ -520,6 +520,10 @@ fn unknown_loop_trips_name_the_loop_trips_setting() {
 #[test]
 fn pipes_and_devices_are_refused_without_blocking() {
     assert_fails_cleanly(&["inspect", "/dev/zero"], "not a regular file");
+    let m = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("sample-models/fruit_grader_f32.onnx");
+    let m = m.to_str().expect("utf8");
+    assert_fails_cleanly(&["analyze", m, "--target", "/dev/zero"], "not a regular file");
+    assert_fails_cleanly(&["check", m, "--policy", "/dev/zero"], "not a regular file");
     let d = tempfile::tempdir().expect("tmp");
     let fifo = d.path().join("camera.onnx");
     let made = std::process::Command::new("mkfifo")

@@ -121,6 +121,10 @@ pub struct Verdict {
     /// Set when the verdict assumes the node quantized (`--assume-quantized`).
     #[serde(skip)]
     pub quantized_as: Option<QuantizedAs>,
+    /// The effective type whose compute rate applies (first input's, else first output's):
+    /// kept so that costing need not fold the Q/DQ bundle again.
+    #[serde(skip)]
+    pub rate_type: Option<DType>,
 }
 
 fn block(code: &'static str, rule: &str, message: String) -> Reason {
@@ -212,6 +216,12 @@ pub fn judge_node(
     let node = g.node(id);
     let e = quant::effective(g, id);
     let sig = signature(node, &e);
+    let rate_type = e
+        .inputs
+        .first()
+        .copied()
+        .flatten()
+        .or_else(|| e.outputs.first().copied().flatten());
     let bundle = e.bundle.iter().map(|b| g.node(*b).name.clone()).collect();
     if node.folded {
         return Verdict {
@@ -221,6 +231,7 @@ pub fn judge_node(
             signature: sig,
             bundle,
             quantized_as: None,
+            rate_type,
         };
     }
     let cpu = |reasons: Vec<Reason>, rule: Option<String>| Verdict {
@@ -230,6 +241,7 @@ pub fn judge_node(
         signature: sig.clone(),
         bundle: e.bundle.iter().map(|b| g.node(*b).name.clone()).collect(),
         quantized_as: None,
+        rate_type,
     };
     if !node.bodies.is_empty() {
         return cpu(
@@ -307,6 +319,7 @@ pub fn judge_node(
                 signature: sig.clone(),
                 bundle: e.bundle.iter().map(|b| g.node(*b).name.clone()).collect(),
                 quantized_as,
+                rate_type,
             };
         }
         if best.as_ref().is_none_or(|(b, _, _)| blocking < *b) {

@@ -9,7 +9,6 @@
 //! layout conversion. Weights are loaded once and never counted per inference.
 
 use crate::ir::{DType, Graph, NodeId, ValueKind};
-use crate::quant;
 use crate::rules::{Candidate, Verdict};
 use crate::target::{type_name, Target};
 
@@ -40,16 +39,8 @@ pub struct Costs {
 
 /// The data type whose rate applies to a node: its effective activation type (the assumed one
 /// under `--assume-quantized`).
-fn node_type(g: &Graph, id: NodeId, v: &Verdict) -> Option<DType> {
-    if let Some(q) = v.quantized_as {
-        return Some(q.act);
-    }
-    let e = quant::effective(g, id);
-    e.inputs
-        .first()
-        .copied()
-        .flatten()
-        .or_else(|| e.outputs.first().copied().flatten())
+fn node_type(v: &Verdict) -> Option<DType> {
+    v.quantized_as.map(|q| q.act).or(v.rate_type)
 }
 
 /// Bytes of one instance of every value; under `--assume-quantized`, float tensors that an
@@ -142,7 +133,7 @@ pub fn costs(g: &Graph, verdicts: &[Verdict], target: &Target) -> Costs {
             .filter(|v| !matches!(g.value(**v).kind, ValueKind::Initializer | ValueKind::Constant))
             .filter_map(|v| bytes[v.index()])
             .sum();
-        let dt = node_type(g, id, &verdicts[i]);
+        let dt = node_type(&verdicts[i]);
         let tname = dt.map(type_name).unwrap_or("fp32");
         let cpu = (work / target.cpu_ops_per_s(tname)).max(moved as f64 / f.cpu.memory_bandwidth_bytes_per_s);
         cpu_ps.push(ps(cpu));

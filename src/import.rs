@@ -243,8 +243,8 @@ struct FlatNode<'a> {
 /// Free names of a graph: (tensor name, first node reading it).
 type FreeNames = Vec<(String, String)>;
 
-/// A node's imported bodies, its attributes, and the outer names the bodies read.
-type BodyParts = (Vec<Body>, Vec<Attr>, FreeNames);
+/// A node's imported bodies and its attributes.
+type BodyParts = (Vec<Body>, Vec<Attr>);
 
 fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Graph, FreeNames), ReadError> {
     if depth > MAX_SUBGRAPH_DEPTH {
@@ -364,8 +364,10 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
         }
     }
 
-    // Bodies first: their free names are inputs of the carrying node.
+    // Bodies first: their free names are inputs of the carrying node. They are kept apart
+    // from the bodies, which move into the nodes, so the name table can borrow them.
     let mut bodies_of: Vec<BodyParts> = Vec::with_capacity(flat.len());
+    let mut body_reads: Vec<Vec<String>> = Vec::with_capacity(flat.len());
     for n in &flat {
         let mut bodies = Vec::new();
         let mut free: FreeNames = Vec::new();
@@ -377,16 +379,12 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
                 value,
             });
         }
-        bodies_of.push((bodies, attrs, free));
+        bodies_of.push((bodies, attrs));
+        body_reads.push(free.into_iter().map(|(name, _)| name).collect());
     }
 
     // Dependencies between nodes, for the topological sort.
     let mut graph_free: FreeNames = Vec::new();
-    // The outer names the bodies read, in one place the name table can borrow from.
-    let body_reads: Vec<Vec<String>> = bodies_of
-        .iter()
-        .map(|b| b.2.iter().map(|f| f.0.clone()).collect())
-        .collect();
     let mut deps: Vec<Vec<usize>> = vec![Vec::new(); flat.len()];
     let mut captured: Vec<ValueId> = Vec::new();
     for (i, n) in flat.iter().enumerate() {
@@ -419,7 +417,7 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     for &i in &order {
         let n = &flat[i];
         let id = NodeId(nodes.len() as u32);
-        let (bodies, attrs, _) = bodies_of[i].take().unwrap_or_default();
+        let (bodies, attrs) = bodies_of[i].take().unwrap_or_default();
         let file_name = n.proto.name.as_str();
         let name = if !file_name.is_empty() && !used_file.contains(file_name) && !used_made.contains(file_name) {
             used_file.insert(file_name);

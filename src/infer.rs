@@ -18,23 +18,23 @@ pub type UnknownReasons = BTreeMap<ValueId, std::sync::Arc<str>>;
 #[derive(Default)]
 struct ReasonTexts(
     HashMap<String, std::sync::Arc<str>>,
-    HashMap<Vec<usize>, std::sync::Arc<str>>,
+    HashMap<Vec<Option<std::sync::Arc<str>>>, std::sync::Arc<str>>,
 );
 
 impl ReasonTexts {
-    /// The reason for a shape that is not concrete, cached by the identity of its symbolic
-    /// dims (shapes share their symbols' text), so the common case allocates one small key.
+    /// The reason for a shape that is not concrete, cached by its dims that are not known
+    /// (a symbol, or None for an unknown dim): the key shares the symbols' text instead of
+    /// splitting and joining it again for every tensor.
     fn for_shape(&mut self, shape: &Shape) -> std::sync::Arc<str> {
-        let key: Vec<usize> = shape
+        let key: Vec<Option<std::sync::Arc<str>>> = shape
             .dims()
             .into_iter()
             .flatten()
-            .map(|d| match d {
-                crate::ir::Dim::Sym(s) => std::sync::Arc::as_ptr(s) as *const u8 as usize,
-                crate::ir::Dim::Unknown => 1,
-                crate::ir::Dim::Known(_) => 0,
+            .filter_map(|d| match d {
+                crate::ir::Dim::Sym(s) => Some(Some(s.clone())),
+                crate::ir::Dim::Unknown => Some(None),
+                crate::ir::Dim::Known(_) => None,
             })
-            .filter(|&k| k != 0)
             .collect();
         if let Some(a) = self.1.get(&key) {
             return a.clone();
@@ -160,16 +160,10 @@ fn infer_graph(
     }
     let mut texts = ReasonTexts::default();
     for ni in 0..g.nodes.len() {
-        for k in 0..g.nodes[ni].inputs.len() + g.nodes[ni].captures.len() {
-            let n = &g.nodes[ni];
-            let v = if k < n.inputs.len() {
-                n.inputs[k]
-            } else {
-                Some(n.captures[k - n.inputs.len()])
-            };
-            if let Some(v) = v {
-                load_const(g, v);
-            }
+        // Inputs and captures, once: constants are loaded, bodies see them, folding checks them.
+        let reads = g.nodes[ni].all_inputs();
+        for v in &reads {
+            load_const(g, *v);
         }
         let node = &g.nodes[ni];
         let opset = crate::ir::opset_of(opsets, &node.domain);
@@ -183,7 +177,7 @@ fn infer_graph(
             // bodies too), not the whole graph: a large graph with many If/Loop nodes would
             // otherwise copy every fact once per node.
             let mut scope: OuterFacts = outer.clone();
-            for c in node.all_inputs() {
+            for c in &reads {
                 let v = &g.values[c.index()];
                 scope.insert(v.name.clone(), (v.fact.clone(), v.konst.as_deref().cloned(), v.kind));
             }
@@ -244,7 +238,7 @@ fn infer_graph(
             }
         };
         let folded_values = def.and_then(|d| d.fold).and_then(|f| f(&ctx));
-        let all_const_inputs = node.all_inputs().iter().all(|v| {
+        let all_const_inputs = reads.iter().all(|v| {
             is_const_kind(g.values[v.index()].kind)
                 || g.values[v.index()].konst.as_deref().is_some_and(ConstValue::is_numeric)
         });

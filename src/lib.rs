@@ -297,16 +297,17 @@ impl Analysis {
         let params = self.params();
         let mut r = report::analyze::build(&self.inputs(&self.stages, params));
         if let Some((w, s)) = &self.what_if {
-            let assumed = report::analyze::build(&self.inputs(s, params));
-            r.what_if = Some(report::analyze::what_if(&r, &assumed, w));
+            r.what_if = Some(report::analyze::what_if(&r, &self.inputs(s, params), w));
             // An assumed op the model does not contain changes nothing: say so.
             for op in &w.supported_ops {
                 let (domain, name) = target::split_op(op);
-                let present = self.read.model.graph.nodes.iter().any(|n| {
-                    n.op_type == name
-                        && (n.domain == ops::resolve_domain(domain)
-                            || (ops::is_default_domain(domain) && n.is_default_domain()))
-                });
+                let present = self
+                    .read
+                    .model
+                    .graph
+                    .nodes
+                    .iter()
+                    .any(|n| n.op_type == name && ops::node_in_domain(n, domain));
                 if !present {
                     r.warnings.push(diag::Diagnostic::new(
                         diag::codes::ASSUMPTION_UNUSED,

@@ -136,15 +136,9 @@ fn run_check(args: tilecut::cli::CheckArgs, quiet: bool) -> anyhow::Result<u8> {
         baseline,
         what_if: args.what_if.what_if()?,
     };
-    let bar = std::sync::Mutex::new(tilecut::report::term::Progress::new("checking", quiet));
-    let (report, measured) = tilecut::gate::check(&req, &|done, total| {
-        if let Ok(mut b) = bar.lock() {
-            b.update(done, total, "models");
-        }
-    });
-    if let Ok(mut b) = bar.lock() {
-        b.finish();
-    }
+    let bar = tilecut::report::term::SharedProgress::new("checking", quiet);
+    let (report, measured) = tilecut::gate::check(&req, &|done, total| bar.update(done, total, "models"));
+    bar.finish();
     let mut buf = Vec::new();
     match args.format {
         Format::Json => check::render_json(&report, &mut buf)?,
@@ -246,15 +240,9 @@ fn run_survey(args: tilecut::cli::SurveyArgs, quiet: bool) -> anyhow::Result<u8>
         jobs,
         dim_lifts,
     };
-    let bar = std::sync::Mutex::new(tilecut::report::term::Progress::new("surveying", quiet));
-    let report = tilecut::survey::survey(&req, &|done, total| {
-        if let Ok(mut b) = bar.lock() {
-            b.update(done, total, "models");
-        }
-    })?;
-    if let Ok(mut b) = bar.lock() {
-        b.finish();
-    }
+    let bar = tilecut::report::term::SharedProgress::new("surveying", quiet);
+    let report = tilecut::survey::survey(&req, &|done, total| bar.update(done, total, "models"))?;
+    bar.finish();
     let mut buf = Vec::new();
     match args.format {
         SurveyFormat::Json => survey::render_json(&report, &mut buf)?,
@@ -280,16 +268,12 @@ fn run(cli: Cli) -> anyhow::Result<u8> {
     match cli.command {
         Command::Inspect(args) => {
             let overrides = args.model.overrides()?;
-            let read = tilecut::read_model(&args.model.model, &overrides)?;
-            let report = inspect::build(&read.model, &read.diags, &read.unknown);
+            let report = tilecut::inspect(&args.model.model, &overrides)?;
             emit(|out| match args.format {
                 Format::Json => inspect::render_json(&report, out),
                 Format::Table => inspect::render_table(&report, out),
                 Format::Markdown => inspect::render_markdown(&report, out),
             })?;
-            // The process ends here: freeing a large graph piece by piece would only cost time.
-            std::mem::forget(read);
-            std::mem::forget(report);
             Ok(0)
         }
         Command::Analyze(args) => {
@@ -319,8 +303,6 @@ fn run(cli: Cli) -> anyhow::Result<u8> {
                 Format::Table => analyze::render_table(&report, out, tilecut::report::term::Paint::for_stdout()),
                 Format::Markdown => analyze::render_markdown(&report, out),
             })?;
-            std::mem::forget(analysis);
-            std::mem::forget(report);
             Ok(0)
         }
         Command::Targets(args) => {

@@ -222,7 +222,7 @@ pub fn judge_node(
         .copied()
         .flatten()
         .or_else(|| e.outputs.first().copied().flatten());
-    let bundle = e.bundle.iter().map(|b| g.node(*b).name.clone()).collect();
+    let bundle: Vec<String> = e.bundle.iter().map(|b| g.node(*b).name.clone()).collect();
     if node.folded {
         return Verdict {
             candidate: Candidate::Const,
@@ -239,7 +239,7 @@ pub fn judge_node(
         rule,
         reasons,
         signature: sig.clone(),
-        bundle: e.bundle.iter().map(|b| g.node(*b).name.clone()).collect(),
+        bundle: bundle.clone(),
         quantized_as: None,
         rate_type,
     };
@@ -258,9 +258,6 @@ pub fn judge_node(
         );
     }
     let opset = crate::ir::opset_of(opsets, &node.domain);
-    let domain_matches = |d: &str| {
-        crate::ops::resolve_domain(d) == node.domain || (crate::ops::is_default_domain(d) && node.is_default_domain())
-    };
     if let Some(m) = target
         .file
         .movement
@@ -280,14 +277,10 @@ pub fn judge_node(
         .file
         .rules
         .iter()
-        .filter(|r| domain_matches(&r.domain) && r.ops.iter().any(|o| o == &node.op_type))
+        .filter(|r| crate::ops::node_in_domain(node, &r.domain) && r.ops.iter().any(|o| o == &node.op_type))
         .collect();
     if rules.is_empty() {
-        let q = if node.is_default_domain() {
-            node.op_type.clone()
-        } else {
-            format!("{}.{}", node.domain, node.op_type)
-        };
+        let q = node.op_label();
         return cpu(
             vec![Reason {
                 code: reason::NO_RULE,
@@ -317,7 +310,7 @@ pub fn judge_node(
                 rule: Some(r.id.clone()),
                 reasons,
                 signature: sig.clone(),
-                bundle: e.bundle.iter().map(|b| g.node(*b).name.clone()).collect(),
+                bundle: bundle.clone(),
                 quantized_as,
                 rate_type,
             };

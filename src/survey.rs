@@ -339,12 +339,7 @@ pub fn blockers(read: &Analyzed, base: &Stages) -> BTreeMap<BlockerKey, usize> {
             };
             match r.code {
                 reason::NO_RULE => {
-                    let op = if node.is_default_domain() {
-                        node.op_type.clone()
-                    } else {
-                        format!("{}.{}", node.domain, node.op_type)
-                    };
-                    keys.insert(key(Kind::Op, &op));
+                    keys.insert(key(Kind::Op, &node.op_label()));
                 }
                 reason::DYNAMIC_SHAPE => {
                     for vid in node.inputs.iter().chain(node.outputs.iter()).flatten() {
@@ -454,12 +449,7 @@ pub fn lift(
             let (domain, op) = crate::target::split_op(&key.name);
             let mut verdicts = base.verdicts.clone();
             for (i, n) in g.nodes.iter().enumerate() {
-                let same_domain = if domain.is_empty() {
-                    n.is_default_domain()
-                } else {
-                    n.domain == domain
-                };
-                if n.op_type == op && same_domain {
+                if n.op_type == op && crate::ops::node_in_domain(n, domain) {
                     verdicts[i] = crate::rules::judge_node(
                         g,
                         crate::ir::NodeId(i as u32),

@@ -155,9 +155,25 @@ fn refuse_random(model: &Path, g: &Graph) -> Result<(), VerifyError> {
     }
 }
 
+/// What both engines start from: the model read (models with random ops refused) and the
+/// `--feed` files read and checked against its inputs.
+fn prepare(
+    model: &Path,
+    overrides: &crate::Overrides,
+    feeds: &[FeedArg],
+) -> Result<(crate::Analyzed, Feeds), VerifyError> {
+    let read = crate::read_model(model, overrides).map_err(|e| VerifyError(e.to_string()))?;
+    refuse_random(model, &read.model.graph)?;
+    let given = read_feeds(&read.model.graph, feeds)?;
+    Ok((read, given))
+}
+
+/// Feeds by input name: (the file as given, its tensor).
+pub type Feeds = BTreeMap<String, (String, HostTensor)>;
+
 /// Reads the `--feed` files and checks each against the model's inputs: a graph input of
 /// that name, the same element type, the same rank and every known dim equal.
-pub fn read_feeds(g: &Graph, args: &[FeedArg]) -> Result<BTreeMap<String, (String, HostTensor)>, VerifyError> {
+pub fn read_feeds(g: &Graph, args: &[FeedArg]) -> Result<Feeds, VerifyError> {
     let mut out = BTreeMap::new();
     for a in args {
         let (own, t) = crate::feeds::read(&a.path).map_err(VerifyError)?;
@@ -200,10 +216,7 @@ pub fn read_feeds(g: &Graph, args: &[FeedArg]) -> Result<BTreeMap<String, (Strin
 }
 
 /// The inputs of the original model: from the feeds where given, else seeded random.
-fn inputs(
-    g: &Graph,
-    feeds: &BTreeMap<String, (String, HostTensor)>,
-) -> Result<Vec<(InputSource, HostTensor)>, VerifyError> {
+fn inputs(g: &Graph, feeds: &Feeds) -> Result<Vec<(InputSource, HostTensor)>, VerifyError> {
     let mut out = Vec::new();
     for (i, id) in g.inputs.iter().enumerate() {
         let v = g.value(*id);
@@ -341,10 +354,8 @@ pub fn verify_tract(
             .map_err(|e| VerifyError(format!("{}: cannot read manifest.json: {e}", dir.display())))?,
     )
     .map_err(|e| VerifyError(format!("{}: manifest.json is not valid JSON: {e}", dir.display())))?;
-    let read = crate::read_model(model, overrides).map_err(|e| VerifyError(e.to_string()))?;
+    let (read, given) = prepare(model, overrides, feeds)?;
     let g = &read.model.graph;
-    refuse_random(model, g)?;
-    let given = read_feeds(g, feeds)?;
     let fed = inputs(g, &given)?;
     let sources: Vec<InputSource> = fed.iter().map(|(s, _)| s.clone()).collect();
     let mut inputs = Vec::new();
@@ -475,9 +486,7 @@ pub fn verify_python(
 ) -> Result<VerifyReport, VerifyError> {
     let dims = serde_json::to_string(&overrides.dims).map_err(|e| VerifyError(e.to_string()))?;
     // The files are read and checked here too, so both engines refuse the same bad feeds.
-    let read = crate::read_model(model, overrides).map_err(|e| VerifyError(e.to_string()))?;
-    refuse_random(model, &read.model.graph)?;
-    let given = read_feeds(&read.model.graph, feeds)?;
+    let (read, given) = prepare(model, overrides, feeds)?;
     let paths: BTreeMap<&String, &String> = given.iter().map(|(k, (p, _))| (k, p)).collect();
     let given_json = serde_json::to_string(&paths).map_err(|e| VerifyError(e.to_string()))?;
     let sources: Vec<InputSource> = read

@@ -371,6 +371,16 @@ impl Node {
         self.domain.is_empty() || self.domain == "ai.onnx"
     }
 
+    /// The op type, qualified by its domain outside the standard one (`Conv`,
+    /// `my.domain.MyOp`): how reports and blockers name it.
+    pub fn op_label(&self) -> String {
+        if self.is_default_domain() {
+            self.op_type.clone()
+        } else {
+            format!("{}.{}", self.domain, self.op_type)
+        }
+    }
+
     /// Values read by this node, bodies' captures included, in slot order, deduplicated.
     pub fn all_inputs(&self) -> Vec<ValueId> {
         let mut out: Vec<ValueId> = Vec::new();

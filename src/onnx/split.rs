@@ -84,21 +84,6 @@ impl OutFile {
         }
     }
 
-    /// Bytes the file will have.
-    pub fn len(&self) -> u64 {
-        self.content
-            .iter()
-            .map(|c| match c {
-                Chunk::Bytes(b) => b.len() as u64,
-                Chunk::FileRange { len, .. } | Chunk::Zeros(len) => *len,
-            })
-            .sum()
-    }
-
-    pub fn is_empty(&self) -> bool {
-        self.len() == 0
-    }
-
     /// Writes the content, copying file ranges in bounded memory; a range that the source
     /// file does not hold in full is an error, never a short file.
     pub fn write_to(&self, out: &mut dyn Write) -> std::io::Result<()> {
@@ -267,7 +252,6 @@ pub fn build(loaded: &LoadedModel, g: &Graph, plan: &Plan) -> Result<(Vec<OutFil
         let materialized: BTreeSet<String> = materialize.iter().map(|v| g.value(*v).name.clone()).collect();
         let members: BTreeSet<NodeId> = nodes.iter().copied().collect();
         let own: BTreeSet<NodeId> = part.nodes.iter().copied().collect();
-        let _ = &own;
         // Proto nodes in IR (topological) order, each file node once.
         let mut seen = BTreeSet::new();
         let mut proto_nodes = Vec::new();

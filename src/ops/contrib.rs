@@ -6,19 +6,13 @@
 
 use crate::ir::{DType, Dim, Fact, Shape};
 
-use super::util::{broadcast, count, tensor};
+use super::util::{broadcast, count, like_input, tensor};
 use super::{conv, matmul, reduce, shape_ops, vision, CostRule, Ctx, Inferred, MacsOps, OpDef, CONTRIB_DOMAIN};
 
 /// QLinearAdd / QLinearMul: (A, A_scale, A_zp, B, B_scale, B_zp, C_scale, C_zp) → the
 /// broadcast of A and B, in A's integer type.
 fn qlinear_binary(ctx: &Ctx) -> Inferred {
     Ok(vec![tensor(ctx.dtype(0), broadcast(&[ctx.shape(0), ctx.shape(3)])?)])
-}
-
-/// QLinearSigmoid, QLinearLeakyRelu, QLinearSoftmax: (X, X_scale, X_zp, Y_scale, Y_zp) →
-/// X's shape and type.
-fn qlinear_unary(ctx: &Ctx) -> Inferred {
-    Ok(vec![tensor(ctx.dtype(0), ctx.shape(0))])
 }
 
 /// QLinearGlobalAveragePool: [N, C, D…] → [N, C, 1…], or [N, D…, C] → [N, 1…, C] with
@@ -250,9 +244,11 @@ macro_rules! op {
 pub static OPS: &[OpDef] = &[
     op!("QLinearAdd", qlinear_binary, CostRule::PerOutput(4)),
     op!("QLinearMul", qlinear_binary, CostRule::PerOutput(4)),
-    op!("QLinearSigmoid", qlinear_unary, CostRule::PerOutput(4)),
-    op!("QLinearLeakyRelu", qlinear_unary, CostRule::PerOutput(3)),
-    op!("QLinearSoftmax", qlinear_unary, CostRule::PerOutput(5)),
+    // QLinearSigmoid, QLinearLeakyRelu, QLinearSoftmax: (X, X_scale, X_zp, Y_scale, Y_zp) →
+    // X's shape and type.
+    op!("QLinearSigmoid", like_input, CostRule::PerOutput(4)),
+    op!("QLinearLeakyRelu", like_input, CostRule::PerOutput(3)),
+    op!("QLinearSoftmax", like_input, CostRule::PerOutput(5)),
     op!("QLinearGlobalAveragePool", qlinear_global_pool, CostRule::PerInput(1)),
     op!(
         "QLinearAveragePool",

@@ -5,8 +5,7 @@ use std::collections::BTreeMap;
 use crate::ir::{DType, Dim, Fact, Shape};
 
 use super::util::{broadcast, count, tensor};
-use super::CONTRIB_DOMAIN;
-use super::{CostRule, Ctx, Inferred, MacsOps, OpDef};
+use super::{CostRule, Ctx, Inferred, MacsOps, OpDef, CONTRIB_DOMAIN};
 
 /// (A, B) input slots and output dtype of each matmul-like op.
 fn ab(ctx: &Ctx) -> (usize, usize, Option<DType>) {

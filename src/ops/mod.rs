@@ -92,6 +92,12 @@ pub fn resolve_domain(d: &str) -> &str {
     }
 }
 
+/// Whether `node` is in `domain` as a profile or a what-if names it: the standard domain by
+/// any of its spellings, `contrib` for `CONTRIB_DOMAIN`, else the exact name.
+pub fn node_in_domain(node: &crate::ir::Node, domain: &str) -> bool {
+    resolve_domain(domain) == node.domain || (is_default_domain(domain) && node.is_default_domain())
+}
+
 /// Domains tilecut treats as the standard one.
 pub fn is_default_domain(domain: &str) -> bool {
     domain.is_empty() || domain == "ai.onnx"

@@ -2,13 +2,8 @@
 
 use crate::ir::{DType, Dim, Shape};
 
-use super::util::{same_as, tensor};
-use super::CONTRIB_DOMAIN;
-use super::{CostRule, Ctx, Inferred, OpDef};
-
-fn same(ctx: &Ctx) -> Inferred {
-    Ok(vec![same_as(ctx, 0)])
-}
+use super::util::{like_input, same_as, tensor};
+use super::{CostRule, Ctx, Inferred, OpDef, CONTRIB_DOMAIN};
 
 fn batch_norm(ctx: &Ctx) -> Inferred {
     let mut outs = vec![same_as(ctx, 0)];
@@ -79,14 +74,19 @@ const NORM_OPS: u64 = 5;
 pub static OPS: &[OpDef] = &[
     op!("", "BatchNormalization", batch_norm, CostRule::PerOutput(2)),
     op!("", "LayerNormalization", layer_norm, CostRule::PerInput(NORM_OPS)),
-    op!("", "InstanceNormalization", same, CostRule::PerInput(NORM_OPS)),
-    op!("", "GroupNormalization", same, CostRule::PerInput(NORM_OPS)),
-    op!("", "RMSNormalization", same, CostRule::PerInput(4)),
-    op!("", "LpNormalization", same, CostRule::PerInput(3)),
-    op!("", "MeanVarianceNormalization", same, CostRule::PerInput(NORM_OPS)),
-    op!("", "LRN", same, CostRule::PerInput(NORM_OPS)),
-    op!("", "RotaryEmbedding", same, CostRule::PerOutput(3)),
-    op!(CONTRIB_DOMAIN, "RotaryEmbedding", same, CostRule::PerOutput(3)),
+    op!("", "InstanceNormalization", like_input, CostRule::PerInput(NORM_OPS)),
+    op!("", "GroupNormalization", like_input, CostRule::PerInput(NORM_OPS)),
+    op!("", "RMSNormalization", like_input, CostRule::PerInput(4)),
+    op!("", "LpNormalization", like_input, CostRule::PerInput(3)),
+    op!(
+        "",
+        "MeanVarianceNormalization",
+        like_input,
+        CostRule::PerInput(NORM_OPS)
+    ),
+    op!("", "LRN", like_input, CostRule::PerInput(NORM_OPS)),
+    op!("", "RotaryEmbedding", like_input, CostRule::PerOutput(3)),
+    op!(CONTRIB_DOMAIN, "RotaryEmbedding", like_input, CostRule::PerOutput(3)),
     op!(
         CONTRIB_DOMAIN,
         "SkipLayerNormalization",
@@ -111,9 +111,9 @@ pub static OPS: &[OpDef] = &[
         layer_norm,
         CostRule::PerInput(NORM_OPS)
     ),
-    op!(CONTRIB_DOMAIN, "Gelu", same, CostRule::PerOutput(1)),
-    op!(CONTRIB_DOMAIN, "FastGelu", same, CostRule::PerOutput(1)),
-    op!(CONTRIB_DOMAIN, "BiasGelu", same, CostRule::PerOutput(2)),
-    op!(CONTRIB_DOMAIN, "QuickGelu", same, CostRule::PerOutput(1)),
-    op!(CONTRIB_DOMAIN, "BiasAdd", same, CostRule::PerOutput(2)),
+    op!(CONTRIB_DOMAIN, "Gelu", like_input, CostRule::PerOutput(1)),
+    op!(CONTRIB_DOMAIN, "FastGelu", like_input, CostRule::PerOutput(1)),
+    op!(CONTRIB_DOMAIN, "BiasGelu", like_input, CostRule::PerOutput(2)),
+    op!(CONTRIB_DOMAIN, "QuickGelu", like_input, CostRule::PerOutput(1)),
+    op!(CONTRIB_DOMAIN, "BiasAdd", like_input, CostRule::PerOutput(2)),
 ];

@@ -4,8 +4,7 @@
 use crate::ir::{DType, Shape};
 
 use super::util::tensor;
-use super::CONTRIB_DOMAIN;
-use super::{CostRule, Ctx, Inferred, OpDef};
+use super::{CostRule, Ctx, Inferred, OpDef, CONTRIB_DOMAIN};
 
 /// QuantizeLinear: y has x's shape; its type is y_zero_point's, else `output_dtype`
 /// (opset 21+), else uint8 (ONNX spec, QuantizeLinear).

@@ -104,6 +104,12 @@ pub fn same_as(ctx: &Ctx, i: usize) -> Fact {
         .unwrap_or_default()
 }
 
+/// One output with input 0's fact: the shape function of every op that keeps its input's
+/// type and shape.
+pub fn like_input(ctx: &Ctx) -> super::Inferred {
+    Ok(vec![same_as(ctx, 0)])
+}
+
 pub fn tensor(dtype: Option<DType>, shape: Shape) -> Fact {
     Fact::tensor(dtype, shape)
 }

@@ -3,7 +3,7 @@
 
 use crate::ir::{Dim, Shape};
 
-use super::util::{norm_axis, tensor};
+use super::util::{like_input, norm_axis, tensor};
 use super::{CostRule, Ctx, Inferred, OpDef};
 
 /// GridSample: X [N, C, D1..Dr], grid [N, O1..Or, r] → [N, C, O1..Or].
@@ -126,10 +126,6 @@ fn det(ctx: &Ctx) -> Inferred {
     Ok(vec![tensor(ctx.dtype(0), Shape::of(x[..x.len() - 2].to_vec()))])
 }
 
-fn same(ctx: &Ctx) -> Inferred {
-    Ok(vec![tensor(ctx.dtype(0), ctx.shape(0))])
-}
-
 macro_rules! op {
     ($name:literal, $infer:expr, $cost:expr) => {
         OpDef {
@@ -152,5 +148,5 @@ pub static OPS: &[OpDef] = &[
     op!("CenterCropPad", center_crop_pad, CostRule::Free),
     op!("Det", det, CostRule::PerInput(1)),
     // ImageScaler (an experimental op of the early opsets): scale and per-channel bias.
-    op!("ImageScaler", same, CostRule::PerOutput(2)),
+    op!("ImageScaler", like_input, CostRule::PerOutput(2)),
 ];

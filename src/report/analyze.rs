@@ -33,7 +33,7 @@ use crate::target::Target;
 
 use super::inspect::{shape_json, JsonShape};
 use super::term::{Paint, Tone};
-use super::{grouped, maybe};
+use super::{grouped, maybe, pct};
 
 pub const ANALYZE_SCHEMA_VERSION: u32 = 2;
 
@@ -99,21 +99,23 @@ pub fn delta(real: &Summary, assumed: &Summary) -> Delta {
     }
 }
 
-/// The what-if section from the real report and the report under the assumptions.
-pub fn what_if(real: &AnalyzeReport, assumed: &AnalyzeReport, w: &crate::WhatIf) -> WhatIfReport {
+/// The what-if section from the real report and the stages under the assumptions (only their
+/// summary and placements are needed, not a whole second report).
+pub fn what_if(real: &AnalyzeReport, assumed: &Inputs, w: &crate::WhatIf) -> WhatIfReport {
     let mut to_accel = Vec::new();
     let mut to_cpu = Vec::new();
-    for (r, a) in real.nodes.iter().zip(&assumed.nodes) {
-        match (r.placement, a.placement) {
+    for (r, a) in real.nodes.iter().zip(&assumed.plan.side) {
+        match (r.placement, a) {
             (Side::Cpu, Side::Accel) => to_accel.push(r.name.clone()),
             (Side::Accel, Side::Cpu) => to_cpu.push(r.name.clone()),
             _ => {}
         }
     }
+    let summary = summary(assumed);
     WhatIfReport {
         assumptions: w.describe(),
-        summary: assumed.summary.clone(),
-        delta: delta(&real.summary, &assumed.summary),
+        delta: delta(&real.summary, &summary),
+        summary,
         moved_to_accel: to_accel,
         moved_to_cpu: to_cpu,
     }
@@ -293,11 +295,7 @@ fn fix_first(i: &Inputs) -> Vec<FixRow> {
         let Some(first) = v.reasons.iter().find(|r| r.blocking) else {
             continue;
         };
-        let label = if n.is_default_domain() {
-            n.op_type.clone()
-        } else {
-            format!("{}.{}", n.domain, n.op_type)
-        };
+        let label = n.op_label();
         let suggestion = crate::suggest::suggest(g, crate::ir::NodeId(k as u32), v, i.target);
         let e = groups
             .entry((label, first.code, suggestion))
@@ -450,11 +448,7 @@ pub fn build(i: &Inputs) -> AnalyzeReport {
     for (k, n) in g.nodes.iter().enumerate() {
         let v = &i.verdicts[k];
         let side = plan.side[k];
-        let label = if n.is_default_domain() {
-            n.op_type.clone()
-        } else {
-            format!("{}.{}", n.domain, n.op_type)
-        };
+        let label = n.op_label();
         let e = ops.entry(label).or_default();
         match side {
             Side::Accel => e.0 += 1,
@@ -727,11 +721,6 @@ struct WhatIfTable {
     #[tabled(rename = "under the assumptions")]
     assumed: String,
     change: String,
-}
-
-fn pct(x: Option<f64>) -> String {
-    x.map(|v| format!("{:.1} %", v * 100.0))
-        .unwrap_or_else(|| "unknown".into())
 }
 
 #[derive(Tabled)]

@@ -22,16 +22,7 @@ pub fn render(a: &Analysis, id: NodeId, out: &mut dyn Write) -> std::io::Result<
     let v = &a.verdicts[id.index()];
     let side = a.plan.side[id.index()];
     writeln!(out, "node       {}", n.name)?;
-    writeln!(
-        out,
-        "op         {}{}",
-        if n.is_default_domain() {
-            String::new()
-        } else {
-            format!("{}.", n.domain)
-        },
-        n.op_type
-    )?;
+    writeln!(out, "op         {}", n.op_label())?;
     writeln!(
         out,
         "verdict    {:?} (placed: {:?}{})",

@@ -211,11 +211,7 @@ pub fn build(model: &Model, diags: &[Diagnostic], reasons: &UnknownReasons) -> I
     let mut ops = Some(0u64);
     let mut because: Vec<String> = Vec::new();
     for n in &g.nodes {
-        let label = if n.is_default_domain() {
-            n.op_type.clone()
-        } else {
-            format!("{}.{}", n.domain, n.op_type)
-        };
+        let label = n.op_label();
         *counts.entry(label).or_default() += 1;
         if n.folded {
             continue;

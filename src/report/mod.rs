@@ -32,6 +32,12 @@ pub fn grouped(n: u64) -> String {
     out
 }
 
+/// A share (0–1) as a percentage, or "unknown".
+pub fn pct(x: Option<f64>) -> String {
+    x.map(|v| format!("{:.1} %", v * 100.0))
+        .unwrap_or_else(|| "unknown".into())
+}
+
 /// A figure that may be unknown, for tables.
 pub fn maybe(n: Option<u64>) -> String {
     n.map(grouped).unwrap_or_else(|| "unknown".into())

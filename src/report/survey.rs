@@ -17,8 +17,8 @@ use std::io::Write;
 use tabled::settings::Style;
 use tabled::{Table, Tabled};
 
-use super::grouped;
 use super::term::{Paint, Tone};
+use super::{grouped, pct};
 use crate::survey::SurveyReport;
 
 pub fn render_json(r: &SurveyReport, out: &mut dyn Write) -> std::io::Result<()> {
@@ -34,11 +34,6 @@ fn signed(n: i64) -> String {
     } else {
         "0".into()
     }
-}
-
-fn pct(x: Option<f64>) -> String {
-    x.map(|v| format!("{:.1} %", v * 100.0))
-        .unwrap_or_else(|| "unknown".into())
 }
 
 fn latency(r: &crate::survey::RankRow) -> String {

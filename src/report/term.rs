@@ -35,10 +35,6 @@ impl Paint {
         }
     }
 
-    pub fn plain() -> Paint {
-        Paint { colour: false }
-    }
-
     pub fn paint(self, tone: Tone, text: &str) -> String {
         if !self.colour {
             return text.to_string();
@@ -118,6 +114,27 @@ impl Progress {
             let _ = write!(err, "\r\x1b[2K");
             let _ = err.flush();
             self.drawn = false;
+        }
+    }
+}
+
+/// A `Progress` that callbacks running on several threads (the survey's workers) update.
+pub struct SharedProgress(std::sync::Mutex<Progress>);
+
+impl SharedProgress {
+    pub fn new(label: &'static str, quiet: bool) -> SharedProgress {
+        SharedProgress(std::sync::Mutex::new(Progress::new(label, quiet)))
+    }
+
+    pub fn update(&self, done: usize, total: usize, stage: &str) {
+        if let Ok(mut p) = self.0.lock() {
+            p.update(done, total, stage);
+        }
+    }
+
+    pub fn finish(&self) {
+        if let Ok(mut p) = self.0.lock() {
+            p.finish();
         }
     }
 }

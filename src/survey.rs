@@ -242,7 +242,7 @@ pub fn collect(paths: &[PathBuf]) -> Result<Vec<PathBuf>, SurveyError> {
             };
             if meta.is_dir() {
                 walk(&p, out)?;
-            } else if p.extension().is_some_and(|e| e.eq_ignore_ascii_case("onnx")) && !meta.is_dir() {
+            } else if p.extension().is_some_and(|e| e.eq_ignore_ascii_case("onnx")) {
                 out.push(p);
             }
         }

@@ -8,6 +8,7 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
     // Every `bytes` field decodes as a slice of the mapped file instead of a copy.
     config.bytes(["."]);
     config.extern_path(".onnx.TensorProto", "crate::onnx::tensor::TensorProto");
+    config.extern_path(".onnx.NodeProto", "crate::onnx::node::NodeProto");
     // Rare, large message fields are boxed so that every attribute (most are one int or a
     // short list) does not carry a tensor, a graph and a sparse tensor inline: unboxed, an
     // AttributeProto is 1.7 KB and the decoded tree of a 100k-node model is mostly them.

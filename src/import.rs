@@ -3,14 +3,13 @@
 
 use std::collections::{BTreeMap, BTreeSet, BinaryHeap, HashMap};
 use std::path::{Path, PathBuf};
-use std::sync::Arc;
 
 use crate::diag::{codes, Diagnostic};
 use crate::error::{ReadError, SettingError};
 use crate::fastmap::{FastMap, FastSet};
 use crate::ir::{
-    Attr, AttrValue, Body, DType, Dim, Fact, Graph, Model, Node, NodeCost, NodeId, Shape, Storage, TensorData, Value,
-    ValueId, ValueKind, ValueType,
+    Attr, AttrValue, Body, DType, Dim, Fact, Graph, Model, Name, Node, NodeCost, NodeId, Shape, Storage, TensorData,
+    Value, ValueId, ValueKind, ValueType,
 };
 use crate::onnx::load::{resolve_external, LoadedModel};
 use crate::onnx::{self, TensorProto};
@@ -206,6 +205,23 @@ struct Cx<'a> {
     diags: Vec<Diagnostic>,
     used_dims: BTreeSet<String>,
     used_inputs: BTreeSet<String>,
+    /// One shared copy of each op type and domain text, for every graph of the model.
+    names: Interner,
+}
+
+/// Hands out one shared `Name` per distinct text.
+#[derive(Default)]
+struct Interner(FastSet<Name>);
+
+impl Interner {
+    fn get(&mut self, s: &str) -> Name {
+        if let Some(n) = self.0.get(s) {
+            return n.clone();
+        }
+        let n = Name::from(s);
+        self.0.insert(n.clone());
+        n
+    }
 }
 
 impl<'a> Cx<'a> {
@@ -223,6 +239,7 @@ impl<'a> Cx<'a> {
             diags: Vec::new(),
             used_dims: BTreeSet::new(),
             used_inputs: BTreeSet::new(),
+            names: Interner::default(),
         }
     }
 
@@ -234,10 +251,38 @@ impl<'a> Cx<'a> {
 /// A node after function expansion, still in wire form (borrowed unless a function call
 /// rewrote it).
 struct FlatNode<'a> {
-    proto: std::borrow::Cow<'a, onnx::NodeProto>,
-    from_function: Option<String>,
+    proto: NodeRef<'a>,
+    from_function: Option<Name>,
     /// Index of the node in the graph's own node list (the call node, for expanded nodes).
     source: usize,
+}
+
+/// A wire-format node, borrowed from the file or owned when a function call rewrote it. Not a
+/// `Cow`: that is as large as a whole `NodeProto` (216 bytes) even when borrowed, and a
+/// 100k-node graph holds one per node.
+enum NodeRef<'a> {
+    Borrowed(&'a onnx::NodeProto),
+    Owned(Box<onnx::NodeProto>),
+}
+
+impl NodeRef<'_> {
+    fn into_owned(self) -> onnx::NodeProto {
+        match self {
+            NodeRef::Borrowed(n) => n.clone(),
+            NodeRef::Owned(n) => *n,
+        }
+    }
+}
+
+impl std::ops::Deref for NodeRef<'_> {
+    type Target = onnx::NodeProto;
+
+    fn deref(&self) -> &onnx::NodeProto {
+        match self {
+            NodeRef::Borrowed(n) => n,
+            NodeRef::Owned(n) => n,
+        }
+    }
 }
 
 /// Free names of a graph: (tensor name, first node reading it).
@@ -385,7 +430,9 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
 
     // Dependencies between nodes, for the topological sort.
     let mut graph_free: FreeNames = Vec::new();
-    let mut deps: Vec<Vec<usize>> = vec![Vec::new(); flat.len()];
+    // Compressed rows (node i reads the nodes `deps.of(i)`): one allocation for the whole
+    // graph instead of a vector per node.
+    let mut deps = Csr::with_rows(flat.len());
     let mut captured: Vec<ValueId> = Vec::new();
     for (i, n) in flat.iter().enumerate() {
         let reads = n
@@ -396,7 +443,7 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
             .chain(body_reads[i].iter());
         for name in reads {
             if let Some(&p) = producer_of.get(name.as_str()) {
-                deps[i].push(p);
+                deps.push(p);
             } else if !names.contains_key(name.as_str()) {
                 let id = new_value(&mut values, name, ValueKind::Input, Fact::default());
                 names.insert(name.as_str(), id);
@@ -404,6 +451,7 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
                 graph_free.push((name.clone(), display_name(&n.proto, i)));
             }
         }
+        deps.end_row();
     }
     let order = topo_order(cx, &flat, &deps)?;
 
@@ -413,11 +461,10 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     used_file.reserve(flat.len());
     let mut used_made: FastSet<String> = FastSet::default();
     let mut nodes = Vec::with_capacity(flat.len());
-    let mut bodies_of: Vec<Option<BodyParts>> = bodies_of.into_iter().map(Some).collect();
     for &i in &order {
         let n = &flat[i];
         let id = NodeId(nodes.len() as u32);
-        let (bodies, attrs) = bodies_of[i].take().unwrap_or_default();
+        let (bodies, attrs) = std::mem::take(&mut bodies_of[i]);
         let file_name = n.proto.name.as_str();
         let name = if !file_name.is_empty() && !used_file.contains(file_name) && !used_made.contains(file_name) {
             used_file.insert(file_name);
@@ -479,13 +526,13 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
         nodes.push(Node {
             name,
             generated_name: n.proto.name.is_empty(),
-            op_type: n.proto.op_type.clone(),
-            domain: n.proto.domain.clone(),
-            inputs: node_inputs,
-            outputs: node_outputs,
-            attrs,
-            bodies,
-            captures: caps,
+            op_type: cx.names.get(&n.proto.op_type),
+            domain: cx.names.get(&n.proto.domain),
+            inputs: node_inputs.into_boxed_slice(),
+            outputs: node_outputs.into_boxed_slice(),
+            attrs: attrs.into_boxed_slice(),
+            bodies: bodies.into_boxed_slice(),
+            captures: caps.into_boxed_slice(),
             from_function: n.from_function.clone(),
             source_index: n.source,
             cost: NodeCost::default(),
@@ -566,24 +613,67 @@ fn generated_name(n: &onnx::NodeProto, index: usize) -> String {
     }
 }
 
-/// Kahn's algorithm, always taking the earliest ready node in file order, so a file already
-/// in order keeps it. A cycle is an error naming its nodes (found with petgraph's SCCs).
-fn topo_order(cx: &Cx, flat: &[FlatNode], deps: &[Vec<usize>]) -> Result<Vec<usize>, ReadError> {
-    let n = flat.len();
-    let mut indegree = vec![0usize; n];
-    let mut users: Vec<Vec<usize>> = vec![Vec::new(); n];
-    for (i, ds) in deps.iter().enumerate() {
-        for &d in ds {
-            indegree[i] += 1;
-            users[d].push(i);
+/// Rows of node indices in one buffer (compressed sparse rows), filled row by row.
+struct Csr {
+    starts: Vec<u32>,
+    items: Vec<u32>,
+}
+
+impl Csr {
+    fn with_rows(rows: usize) -> Csr {
+        let mut starts = Vec::with_capacity(rows + 1);
+        starts.push(0);
+        Csr {
+            starts,
+            items: Vec::with_capacity(rows + rows / 2),
         }
     }
+
+    fn push(&mut self, item: usize) {
+        self.items.push(item as u32);
+    }
+
+    fn end_row(&mut self) {
+        self.starts.push(self.items.len() as u32);
+    }
+
+    fn of(&self, row: usize) -> &[u32] {
+        &self.items[self.starts[row] as usize..self.starts[row + 1] as usize]
+    }
+}
+
+/// Kahn's algorithm, always taking the earliest ready node in file order, so a file already
+/// in order keeps it. A cycle is an error naming its nodes (found with petgraph's SCCs).
+fn topo_order(cx: &Cx, flat: &[FlatNode], deps: &Csr) -> Result<Vec<usize>, ReadError> {
+    let n = flat.len();
+    let mut indegree = vec![0u32; n];
+    // The reverse rows (who reads node d), built by counting: again one allocation.
+    let mut count = vec![0u32; n + 1];
+    for (i, deg) in indegree.iter_mut().enumerate() {
+        for &d in deps.of(i) {
+            *deg += 1;
+            count[d as usize + 1] += 1;
+        }
+    }
+    for k in 0..n {
+        count[k + 1] += count[k];
+    }
+    let mut fill = count.clone();
+    let mut user_list = vec![0u32; count[n] as usize];
+    for i in 0..n {
+        for &d in deps.of(i) {
+            user_list[fill[d as usize] as usize] = i as u32;
+            fill[d as usize] += 1;
+        }
+    }
+    drop(fill);
     let mut ready: BinaryHeap<std::cmp::Reverse<usize>> =
         (0..n).filter(|&i| indegree[i] == 0).map(std::cmp::Reverse).collect();
     let mut order = Vec::with_capacity(n);
     while let Some(std::cmp::Reverse(i)) = ready.pop() {
         order.push(i);
-        for &u in &users[i] {
+        for &u in &user_list[count[i] as usize..count[i + 1] as usize] {
+            let u = u as usize;
             indegree[u] -= 1;
             if indegree[u] == 0 {
                 ready.push(std::cmp::Reverse(u));
@@ -595,9 +685,9 @@ fn topo_order(cx: &Cx, flat: &[FlatNode], deps: &[Vec<usize>]) -> Result<Vec<usi
     }
     let mut pg = petgraph::graph::DiGraph::<usize, ()>::new();
     let idx: Vec<_> = (0..n).map(|i| pg.add_node(i)).collect();
-    for (i, ds) in deps.iter().enumerate() {
-        for &d in ds {
-            pg.add_edge(idx[d], idx[i], ());
+    for i in 0..n {
+        for &d in deps.of(i) {
+            pg.add_edge(idx[d as usize], idx[i], ());
         }
     }
     let mut cycle: Vec<String> = petgraph::algo::tarjan_scc(&pg)
@@ -635,7 +725,7 @@ fn expand_functions<'a>(
         };
         let Some(f) = called else {
             out.push(FlatNode {
-                proto: std::borrow::Cow::Borrowed(n),
+                proto: NodeRef::Borrowed(n),
                 from_function: None,
                 source,
             });
@@ -696,10 +786,11 @@ fn expand_functions<'a>(
         }
         let label = qualified(&n.domain, &n.op_type);
         let inner_stack = format!("{stack}{label}>");
+        let call_name = Name::from(call.as_str());
         for flat in expand_functions(cx, &body, depth + 1, &inner_stack)? {
-            let from = flat.from_function.unwrap_or_else(|| call.clone());
+            let from = flat.from_function.unwrap_or_else(|| call_name.clone());
             out.push(FlatNode {
-                proto: std::borrow::Cow::Owned(flat.proto.into_owned()),
+                proto: NodeRef::Owned(Box::new(flat.proto.into_owned())),
                 from_function: Some(from),
                 source,
             });
@@ -951,7 +1042,7 @@ fn shape_of(cx: &Cx, name: &str, s: Option<&onnx::TensorShapeProto>) -> Result<S
                     "tensor `{name}` declares dim {v}; only -1 (unknown) may be negative"
                 )))
             }
-            Some(D::DimParam(p)) if !p.is_empty() => Dim::Sym(Arc::from(p.as_str())),
+            Some(D::DimParam(p)) if !p.is_empty() => Dim::sym(p),
             _ => Dim::Unknown,
         });
     }

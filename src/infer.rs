@@ -18,7 +18,7 @@ pub type UnknownReasons = BTreeMap<ValueId, std::sync::Arc<str>>;
 #[derive(Default)]
 struct ReasonTexts(
     HashMap<String, std::sync::Arc<str>>,
-    HashMap<Vec<Option<std::sync::Arc<str>>>, std::sync::Arc<str>>,
+    HashMap<Vec<Option<crate::ir::Name>>, std::sync::Arc<str>>,
 );
 
 impl ReasonTexts {
@@ -26,7 +26,7 @@ impl ReasonTexts {
     /// (a symbol, or None for an unknown dim): the key shares the symbols' text instead of
     /// splitting and joining it again for every tensor.
     fn for_shape(&mut self, shape: &Shape) -> std::sync::Arc<str> {
-        let key: Vec<Option<std::sync::Arc<str>>> = shape
+        let key: Vec<Option<crate::ir::Name>> = shape
             .dims()
             .into_iter()
             .flatten()
@@ -231,7 +231,7 @@ fn infer_graph(
             },
             None => {
                 let e = unknown_ops
-                    .entry((node.domain.clone(), node.op_type.clone()))
+                    .entry((node.domain.to_string(), node.op_type.to_string()))
                     .or_insert((0, node.name.clone()));
                 e.0 += 1;
                 (Vec::new(), Some(format!("op `{}` is unknown to tilecut", node.op_type)))

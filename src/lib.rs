@@ -55,12 +55,6 @@ pub fn read_loaded(loaded: &onnx::load::LoadedModel, overrides: &Overrides) -> R
     Ok(Analyzed { model, diags, unknown })
 }
 
-/// `tilecut inspect` as a library call.
-pub fn inspect(path: &Path, overrides: &Overrides) -> Result<report::inspect::InspectReport, ReadError> {
-    let a = read_model(path, overrides)?;
-    Ok(report::inspect::build(&a.model, &a.diags, &a.unknown))
-}
-
 /// Why `analyze` could not run: a model, a profile or a pin problem.
 #[derive(Debug, thiserror::Error)]
 pub enum AnalyzeError {

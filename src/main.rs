@@ -268,7 +268,8 @@ fn run(cli: Cli) -> anyhow::Result<u8> {
     match cli.command {
         Command::Inspect(args) => {
             let overrides = args.model.overrides()?;
-            let report = tilecut::inspect(&args.model.model, &overrides)?;
+            let read = tilecut::read_model(&args.model.model, &overrides)?;
+            let report = inspect::build(&read.model, &read.diags, &read.unknown);
             emit(|out| match args.format {
                 Format::Json => inspect::render_json(&report, out),
                 Format::Table => inspect::render_table(&report, out),

@@ -3,9 +3,11 @@
 //! A leaf module: it does no I/O and names no protobuf type.
 
 mod dtype;
+mod name;
 mod shape;
 
 pub use dtype::DType;
+pub use name::Name;
 pub use shape::{Dim, Shape};
 
 use bytes::Bytes;
@@ -344,17 +346,18 @@ pub struct Node {
     pub name: String,
     /// True when the file left the node unnamed and `name` was generated.
     pub generated_name: bool,
-    pub op_type: String,
-    pub domain: String,
+    /// Shared with every other node of the same op (see `Name`).
+    pub op_type: Name,
+    pub domain: Name,
     /// One slot per declared input; `None` for an omitted optional input ("").
-    pub inputs: Vec<Option<ValueId>>,
-    pub outputs: Vec<Option<ValueId>>,
-    pub attrs: Vec<Attr>,
-    pub bodies: Vec<Body>,
+    pub inputs: Box<[Option<ValueId>]>,
+    pub outputs: Box<[Option<ValueId>]>,
+    pub attrs: Box<[Attr]>,
+    pub bodies: Box<[Body]>,
     /// Outer-scope values the bodies read: edges like any other input.
-    pub captures: Vec<ValueId>,
+    pub captures: Box<[ValueId]>,
     /// The model-local function call this node was expanded from, if any.
-    pub from_function: Option<String>,
+    pub from_function: Option<Name>,
     /// Index of the file's node this one comes from (the call node, for expanded functions).
     pub source_index: usize,
     pub cost: NodeCost,
@@ -374,11 +377,7 @@ impl Node {
     /// The op type, qualified by its domain outside the standard one (`Conv`,
     /// `my.domain.MyOp`): how reports and blockers name it.
     pub fn op_label(&self) -> String {
-        if self.is_default_domain() {
-            self.op_type.clone()
-        } else {
-            format!("{}.{}", self.domain, self.op_type)
-        }
+        op_label(&self.domain, &self.op_type)
     }
 
     /// Values read by this node, bodies' captures included, in slot order, deduplicated.
@@ -390,6 +389,15 @@ impl Node {
             }
         }
         out
+    }
+}
+
+/// An op type qualified by its domain outside the standard one (see `Node::op_label`).
+pub fn op_label(domain: &str, op_type: &str) -> String {
+    if domain.is_empty() || domain == "ai.onnx" {
+        op_type.to_string()
+    } else {
+        format!("{domain}.{op_type}")
     }
 }
 

@@ -1,19 +1,19 @@
 //! Dimensions and shapes: a dim is a known size, a named symbol, or unknown.
 
-use std::sync::Arc;
+use super::Name;
 
 #[derive(Clone, Debug, PartialEq, Eq, PartialOrd, Ord, Hash)]
 pub enum Dim {
     Known(u64),
     /// A symbolic size: a name from the file (`batch`), or an expression over such names
     /// (`batch*3`), or a data-dependent size that tilecut names after its node.
-    Sym(Arc<str>),
+    Sym(Name),
     Unknown,
 }
 
 impl Dim {
     pub fn sym(s: &str) -> Dim {
-        Dim::Sym(Arc::from(s))
+        Dim::Sym(Name::from(s))
     }
 
     pub fn known(&self) -> Option<u64> {

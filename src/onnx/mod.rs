@@ -1,9 +1,10 @@
-//! The ONNX wire format: generated message types, the hand-written `TensorProto`, and loading
-//! a model file by memory map. The only module that names protobuf types.
+//! The ONNX wire format: generated message types, the hand-written `TensorProto` and
+//! `NodeProto`, and loading a model file by memory map. The only module that names protobuf types.
 
 pub mod builder;
 pub mod feed;
 pub mod load;
+pub mod node;
 pub mod qdq;
 pub mod split;
 pub mod tensor;
@@ -14,4 +15,5 @@ mod generated {
 }
 
 pub use generated::*;
+pub use node::NodeProto;
 pub use tensor::TensorProto;

@@ -126,7 +126,7 @@ static REGISTRY: &[&[OpDef]] = &[
 
 /// Looks an op up by domain and type (a hash index over the registry, built once).
 pub fn lookup(domain: &str, op: &str) -> Option<&'static OpDef> {
-    type Index = std::collections::HashMap<(&'static str, &'static str), &'static OpDef>;
+    type Index = crate::fastmap::FastMap<(&'static str, &'static str), &'static OpDef>;
     static INDEX: std::sync::OnceLock<Index> = std::sync::OnceLock::new();
     let index = INDEX.get_or_init(|| {
         registry()

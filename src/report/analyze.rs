@@ -464,7 +464,7 @@ pub fn build(i: &Inputs) -> AnalyzeReport {
         }
         nodes.push(NodeRow {
             name: n.name.clone(),
-            op: n.op_type.clone(),
+            op: n.op_type.to_string(),
             outputs: n.outputs.iter().flatten().map(|o| g.value(*o).name.clone()).collect(),
             placement: side,
             partition: plan.partition_of[k],

@@ -9,6 +9,7 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
     config.bytes(["."]);
     config.extern_path(".onnx.TensorProto", "crate::onnx::tensor::TensorProto");
     config.extern_path(".onnx.NodeProto", "crate::onnx::node::NodeProto");
+    config.extern_path(".onnx.GraphProto", "crate::onnx::graph::GraphProto");
     // Rare, large message fields are boxed so that every attribute (most are one int or a
     // short list) does not carry a tensor, a graph and a sparse tensor inline: unboxed, an
     // AttributeProto is 1.7 KB and the decoded tree of a 100k-node model is mostly them.

@@ -8,8 +8,8 @@ use crate::diag::{codes, Diagnostic};
 use crate::error::{ReadError, SettingError};
 use crate::fastmap::{FastMap, FastSet};
 use crate::ir::{
-    Attr, AttrValue, Body, DType, Dim, Fact, Graph, Model, Name, Node, NodeCost, NodeId, Shape, Storage, TensorData,
-    Value, ValueId, ValueKind, ValueType,
+    short_text_eq, Attr, AttrValue, Body, DType, Dim, Fact, Graph, Model, Name, Node, NodeCost, NodeId, Shape, Storage,
+    TensorData, Value, ValueId, ValueKind, ValueType,
 };
 use crate::onnx::load::{resolve_external, LoadedModel};
 use crate::onnx::{self, TensorProto};
@@ -209,17 +209,39 @@ struct Cx<'a> {
     names: Interner,
 }
 
-/// Hands out one shared `Name` per distinct text.
+/// Hands out one shared `Name` per distinct text. A model has a few dozen distinct op types
+/// and domains, met once per node: a short list scanned with a cheap comparison, most
+/// recently used first, then a hash set for models with many more.
 #[derive(Default)]
-struct Interner(FastSet<Name>);
+struct Interner {
+    recent: Vec<Name>,
+    rest: FastSet<Name>,
+}
 
 impl Interner {
+    const RECENT: usize = 16;
+
     fn get(&mut self, s: &str) -> Name {
-        if let Some(n) = self.0.get(s) {
-            return n.clone();
+        if let Some(i) = self.recent.iter().position(|n| short_text_eq(n, s)) {
+            let n = self.recent[i].clone();
+            if i > 0 {
+                self.recent.swap(0, i);
+            }
+            return n;
         }
-        let n = Name::from(s);
-        self.0.insert(n.clone());
+        let n = match self.rest.get(s) {
+            Some(n) => n.clone(),
+            None => {
+                let n = Name::from(s);
+                self.rest.insert(n.clone());
+                n
+            }
+        };
+        if self.recent.len() < Self::RECENT {
+            self.recent.push(n.clone());
+        } else {
+            self.recent[Self::RECENT - 1] = n.clone();
+        }
         n
     }
 }
@@ -305,9 +327,8 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     let outputs_total: usize = flat.iter().map(|n| n.proto.output.len()).sum();
     let expected = g.initializer.len() + g.sparse_initializer.len() + g.input.len() + outputs_total + 8;
     let mut values: Vec<Value> = Vec::with_capacity(expected);
-    // Keys borrow the file's (or the expanded nodes') own strings: no copy per name.
-    let mut names: FastMap<&str, ValueId> = FastMap::default();
-    names.reserve(expected);
+    // Every tensor name the graph mentions, hashed once; later passes use its index.
+    let mut syms = Symbols::with_capacity(expected);
     let new_value = |values: &mut Vec<Value>, name: &str, kind: ValueKind, fact: Fact| {
         values.push(Value {
             name: name.to_string(),
@@ -324,19 +345,19 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
 
     for t in &g.initializer {
         let data = tensor_data(cx, t)?;
-        if names.contains_key(t.name.as_str()) {
+        if syms.value_of(&t.name).is_some() {
             return Err(cx.err(format!("initializer `{}` is defined twice", t.name)));
         }
         let fact = Fact::tensor(data.dtype, Shape::known(&data.dims));
         let id = new_value(&mut values, &t.name, ValueKind::Initializer, fact);
         values[id.index()].data = Some(Box::new(data));
-        names.insert(t.name.as_str(), id);
+        syms.bind(&t.name, id);
     }
     for sp in &g.sparse_initializer {
         let Some(v) = sp.values.as_ref() else { continue };
         let dims = non_negative_dims(cx, &v.name, &sp.dims)?;
         let dtype = DType::from_onnx(v.data_type);
-        if names.contains_key(v.name.as_str()) {
+        if syms.value_of(&v.name).is_some() {
             return Err(cx.err(format!("initializer `{}` is defined twice", v.name)));
         }
         let id = new_value(
@@ -350,13 +371,13 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
             dims,
             storage: Storage::Empty,
         }));
-        names.insert(v.name.as_str(), id);
+        syms.bind(&v.name, id);
     }
     let mut inputs = Vec::new();
     let mut weight_inputs: Vec<&str> = Vec::new();
     for vi in &g.input {
         let declared = declared_fact(cx, vi, false)?;
-        if let Some(&id) = names.get(vi.name.as_str()) {
+        if let Some(id) = syms.value_of(&vi.name) {
             // Old IR versions list initializers among the inputs: a weight with a default.
             values[id.index()].declared = Some(Box::new(declared));
             weight_inputs.push(&vi.name);
@@ -369,7 +390,7 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
         };
         let id = new_value(&mut values, &vi.name, ValueKind::Input, declared.clone());
         values[id.index()].declared = Some(Box::new(declared));
-        names.insert(vi.name.as_str(), id);
+        syms.bind(&vi.name, id);
         inputs.push(id);
     }
 
@@ -386,27 +407,40 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
         );
     }
 
-    // Node outputs, duplicate producers refused.
-    let mut producer_of: FastMap<&str, usize> = FastMap::default();
-    producer_of.reserve(outputs_total);
+    // Node outputs, duplicate producers refused; each name a node writes or reads is looked
+    // up here, once, and kept as its symbol (`NONE` for an omitted optional slot).
+    let mut outs = Csr::with_rows(flat.len());
+    let mut ins = Csr::with_rows(flat.len());
     for (i, n) in flat.iter().enumerate() {
-        for o in n.proto.output.iter().filter(|o| !o.is_empty()) {
-            let o = o.as_str();
-            if let Some(&other) = producer_of.get(o) {
+        for o in &n.proto.output {
+            if o.is_empty() {
+                outs.push(NONE);
+                continue;
+            }
+            let k = syms.intern(o);
+            let other = syms.producer[k as usize];
+            if other != NONE {
+                let other = other as usize;
                 return Err(cx.err(format!(
                     "tensor `{o}` is produced twice: by node `{}` and by node `{}`",
                     display_name(&flat[other].proto, other),
                     display_name(&n.proto, i)
                 )));
             }
-            if names.contains_key(o) {
+            if syms.value[k as usize].is_some() {
                 return Err(cx.err(format!(
                     "tensor `{o}` is produced by node `{}` but is also a graph input or initializer",
                     display_name(&n.proto, i)
                 )));
             }
-            producer_of.insert(o, i);
+            syms.producer[k as usize] = i as u32;
+            outs.push(k);
         }
+        outs.end_row();
+        for x in &n.proto.input {
+            ins.push(if x.is_empty() { NONE } else { syms.intern(x) });
+        }
+        ins.end_row();
     }
 
     // Bodies first: their free names are inputs of the carrying node. They are kept apart
@@ -428,6 +462,14 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
         body_reads.push(free.into_iter().map(|(name, _)| name).collect());
     }
 
+    let mut body_syms = Csr::with_rows(flat.len());
+    for reads in &body_reads {
+        for r in reads {
+            body_syms.push(syms.intern(r));
+        }
+        body_syms.end_row();
+    }
+
     // Dependencies between nodes, for the topological sort.
     let mut graph_free: FreeNames = Vec::new();
     // Compressed rows (node i reads the nodes `deps.of(i)`): one allocation for the whole
@@ -435,20 +477,17 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     let mut deps = Csr::with_rows(flat.len());
     let mut captured: Vec<ValueId> = Vec::new();
     for (i, n) in flat.iter().enumerate() {
-        let reads = n
-            .proto
-            .input
-            .iter()
-            .filter(|s| !s.is_empty())
-            .chain(body_reads[i].iter());
-        for name in reads {
-            if let Some(&p) = producer_of.get(name.as_str()) {
+        let reads = ins.of(i).iter().filter(|&&k| k != NONE).chain(body_syms.of(i));
+        for &k in reads {
+            let p = syms.producer[k as usize];
+            if p != NONE {
                 deps.push(p);
-            } else if !names.contains_key(name.as_str()) {
+            } else if syms.value[k as usize].is_none() {
+                let name = syms.names[k as usize];
                 let id = new_value(&mut values, name, ValueKind::Input, Fact::default());
-                names.insert(name.as_str(), id);
+                syms.value[k as usize] = Some(id);
                 captured.push(id);
-                graph_free.push((name.clone(), display_name(&n.proto, i)));
+                graph_free.push((name.to_string(), display_name(&n.proto, i)));
             }
         }
         deps.end_row();
@@ -487,37 +526,47 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
             used_made.insert(name.clone());
             name
         };
-        let mut node_inputs = Vec::with_capacity(n.proto.input.len());
-        for s in &n.proto.input {
-            if s.is_empty() {
+        let mut node_inputs = Vec::with_capacity(ins.of(i).len());
+        for &k in ins.of(i) {
+            if k == NONE {
                 node_inputs.push(None);
                 continue;
             }
-            let v = match names.get(s.as_str()) {
-                Some(&v) => v,
+            let v = match syms.value[k as usize] {
+                Some(v) => v,
                 None => {
-                    let v = new_value(&mut values, s, ValueKind::Activation, Fact::default());
-                    names.insert(s.as_str(), v);
+                    let v = new_value(
+                        &mut values,
+                        syms.names[k as usize],
+                        ValueKind::Activation,
+                        Fact::default(),
+                    );
+                    syms.value[k as usize] = Some(v);
                     v
                 }
             };
             values[v.index()].consumers.push(id);
             node_inputs.push(Some(v));
         }
-        let mut node_outputs = Vec::with_capacity(n.proto.output.len());
-        for s in &n.proto.output {
-            if s.is_empty() {
+        let mut node_outputs = Vec::with_capacity(outs.of(i).len());
+        for &k in outs.of(i) {
+            if k == NONE {
                 node_outputs.push(None);
                 continue;
             }
-            let v = new_value(&mut values, s, ValueKind::Activation, Fact::default());
+            let v = new_value(
+                &mut values,
+                syms.names[k as usize],
+                ValueKind::Activation,
+                Fact::default(),
+            );
             values[v.index()].producer = Some(id);
-            names.insert(s.as_str(), v);
+            syms.value[k as usize] = Some(v);
             node_outputs.push(Some(v));
         }
         let mut caps = Vec::new();
-        for fname in &body_reads[i] {
-            let Some(&v) = names.get(fname.as_str()) else { continue };
+        for &k in body_syms.of(i) {
+            let Some(v) = syms.value[k as usize] else { continue };
             if !caps.contains(&v) && !node_inputs.contains(&Some(v)) {
                 values[v.index()].consumers.push(id);
                 caps.push(v);
@@ -543,11 +592,11 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     let mut outputs = Vec::new();
     for vi in &g.output {
         let declared = declared_fact(cx, vi, false)?;
-        let id = match names.get(vi.name.as_str()) {
-            Some(&id) => id,
+        let id = match syms.value_of(&vi.name) {
+            Some(id) => id,
             None => {
                 let id = new_value(&mut values, &vi.name, ValueKind::Input, Fact::default());
-                names.insert(vi.name.as_str(), id);
+                syms.bind(&vi.name, id);
                 captured.push(id);
                 graph_free.push((vi.name.clone(), format!("graph output of `{}`", g.name)));
                 id
@@ -561,7 +610,7 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
         outputs.push(id);
     }
     for vi in &g.value_info {
-        if let Some(&id) = names.get(vi.name.as_str()) {
+        if let Some(id) = syms.value_of(&vi.name) {
             let declared = declared_fact(cx, vi, false)?;
             if values[id.index()].declared.is_none() {
                 values[id.index()].declared = Some(Box::new(declared));
@@ -613,6 +662,52 @@ fn generated_name(n: &onnx::NodeProto, index: usize) -> String {
     }
 }
 
+/// "No symbol / no node" in the compact tables below.
+const NONE: u32 = u32::MAX;
+
+/// The tensor names of one graph, each hashed once and then known by its index: the value it
+/// names so far and the node that produces it.
+struct Symbols<'a> {
+    index: FastMap<&'a str, u32>,
+    names: Vec<&'a str>,
+    value: Vec<Option<ValueId>>,
+    /// Index in the flat node list, or `NONE`.
+    producer: Vec<u32>,
+}
+
+impl<'a> Symbols<'a> {
+    fn with_capacity(n: usize) -> Symbols<'a> {
+        let mut index = FastMap::default();
+        index.reserve(n);
+        Symbols {
+            index,
+            names: Vec::with_capacity(n),
+            value: Vec::with_capacity(n),
+            producer: Vec::with_capacity(n),
+        }
+    }
+
+    fn intern(&mut self, name: &'a str) -> u32 {
+        let next = self.names.len() as u32;
+        let k = *self.index.entry(name).or_insert(next);
+        if k == next {
+            self.names.push(name);
+            self.value.push(None);
+            self.producer.push(NONE);
+        }
+        k
+    }
+
+    fn value_of(&self, name: &str) -> Option<ValueId> {
+        self.index.get(name).and_then(|&k| self.value[k as usize])
+    }
+
+    fn bind(&mut self, name: &'a str, id: ValueId) {
+        let k = self.intern(name);
+        self.value[k as usize] = Some(id);
+    }
+}
+
 /// Rows of node indices in one buffer (compressed sparse rows), filled row by row.
 struct Csr {
     starts: Vec<u32>,
@@ -629,8 +724,8 @@ impl Csr {
         }
     }
 
-    fn push(&mut self, item: usize) {
-        self.items.push(item as u32);
+    fn push(&mut self, item: u32) {
+        self.items.push(item);
     }
 
     fn end_row(&mut self) {

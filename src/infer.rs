@@ -159,6 +159,9 @@ fn infer_graph(
         }
     }
     let mut texts = ReasonTexts::default();
+    // (opset, op definition) per (domain, op type), keyed by the interned names' addresses:
+    // looked up by text once per distinct op instead of once per node.
+    let mut defs: crate::fastmap::FastMap<(usize, usize), (i64, Option<&'static ops::OpDef>)> = Default::default();
     for ni in 0..g.nodes.len() {
         // Inputs and captures, once: constants are loaded, bodies see them, folding checks them.
         let reads = g.nodes[ni].all_inputs();
@@ -166,8 +169,14 @@ fn infer_graph(
             load_const(g, *v);
         }
         let node = &g.nodes[ni];
-        let opset = crate::ir::opset_of(opsets, &node.domain);
-        let def = ops::lookup(&node.domain, &node.op_type);
+        let (opset, def) = *defs
+            .entry((node.domain.addr(), node.op_type.addr()))
+            .or_insert_with(|| {
+                (
+                    crate::ir::opset_of(opsets, &node.domain),
+                    ops::lookup(&node.domain, &node.op_type),
+                )
+            });
 
         // Bodies first, with this graph's facts visible to them.
         let mut body_outputs = Vec::new();

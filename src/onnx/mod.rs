@@ -1,8 +1,9 @@
-//! The ONNX wire format: generated message types, the hand-written `TensorProto` and
-//! `NodeProto`, and loading a model file by memory map. The only module that names protobuf types.
+//! The ONNX wire format: generated message types, the hand-written `TensorProto`,
+//! `NodeProto` and `GraphProto`, and loading a model file by memory map. The only module that names protobuf types.
 
 pub mod builder;
 pub mod feed;
+pub mod graph;
 pub mod load;
 pub mod node;
 pub mod qdq;
@@ -15,5 +16,6 @@ mod generated {
 }
 
 pub use generated::*;
+pub use graph::GraphProto;
 pub use node::NodeProto;
 pub use tensor::TensorProto;

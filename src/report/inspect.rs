@@ -300,13 +300,13 @@ pub fn build<'a>(model: &'a Model, diags: &[Diagnostic], reasons: &'a UnknownRea
             shape: shape_json(&v.fact.shape),
         }
     };
-    // Counted by (domain, op) borrowed from the nodes; labels are made once per op type.
-    let mut counts: crate::fastmap::FastMap<(&str, &str), usize> = Default::default();
+    // Counted by the interned (domain, op) names' addresses; labels are made once per op.
+    let mut counts: crate::fastmap::FastMap<(usize, usize), (usize, &crate::ir::Node)> = Default::default();
     let mut macs = Some(0u64);
     let mut ops = Some(0u64);
     let mut because: Vec<String> = Vec::new();
     for n in &g.nodes {
-        *counts.entry((n.domain.as_str(), n.op_type.as_str())).or_default() += 1;
+        counts.entry((n.domain.addr(), n.op_type.addr())).or_insert((0, n)).0 += 1;
         if n.folded {
             continue;
         }
@@ -333,13 +333,14 @@ pub fn build<'a>(model: &'a Model, diags: &[Diagnostic], reasons: &'a UnknownRea
         }
     }
     // Re-keyed by label ("Conv", "my.domain.Op") for a stable order; "" and "ai.onnx" merge.
-    let counts: BTreeMap<String, usize> = counts
-        .into_iter()
-        .map(|((domain, op), n)| (crate::ir::op_label(domain, op), n))
-        .fold(BTreeMap::new(), |mut m, (label, n)| {
-            *m.entry(label).or_default() += n;
-            m
-        });
+    let counts: BTreeMap<String, usize> =
+        counts
+            .into_iter()
+            .map(|(_, (n, node))| (node.op_label(), n))
+            .fold(BTreeMap::new(), |mut m, (label, n)| {
+                *m.entry(label).or_default() += n;
+                m
+            });
     because.sort();
     because.dedup();
     let w = params_and_weight_bytes(g);

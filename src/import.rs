@@ -6,10 +6,10 @@ use std::path::{Path, PathBuf};
 
 use crate::diag::{codes, Diagnostic};
 use crate::error::{ReadError, SettingError};
-use crate::fastmap::{FastMap, FastSet};
+use crate::fastmap::{short_text_eq, FastMap, FastSet, TextKey};
 use crate::ir::{
-    short_text_eq, Attr, AttrValue, Body, DType, Dim, Fact, Graph, Model, Name, Node, NodeCost, NodeId, Shape, Storage,
-    TensorData, Value, ValueId, ValueKind, ValueType,
+    Attr, AttrValue, Body, DType, Dim, Fact, Graph, Model, Name, Node, NodeCost, NodeId, Shape, Storage, TensorData,
+    Value, ValueId, ValueKind, ValueType,
 };
 use crate::onnx::load::{resolve_external, LoadedModel};
 use crate::onnx::{self, TensorProto};
@@ -496,7 +496,7 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
 
     // Build nodes in that order. Names the file gives are checked for repeats without copies;
     // generated and renamed ones are few.
-    let mut used_file: FastSet<&str> = FastSet::default();
+    let mut used_file: FastSet<TextKey> = FastSet::default();
     used_file.reserve(flat.len());
     let mut used_made: FastSet<String> = FastSet::default();
     let mut nodes = Vec::with_capacity(flat.len());
@@ -505,8 +505,12 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
         let id = NodeId(nodes.len() as u32);
         let (bodies, attrs) = std::mem::take(&mut bodies_of[i]);
         let file_name = n.proto.name.as_str();
-        let name = if !file_name.is_empty() && !used_file.contains(file_name) && !used_made.contains(file_name) {
-            used_file.insert(file_name);
+        // One hash per name in the common case: made names are rare, and `insert` answers
+        // whether the name was free.
+        let fresh = !file_name.is_empty()
+            && (used_made.is_empty() || !used_made.contains(file_name))
+            && used_file.insert(TextKey(file_name));
+        let name = if fresh {
             file_name.to_string()
         } else {
             let base = if file_name.is_empty() {
@@ -514,7 +518,7 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
             } else {
                 file_name.to_string()
             };
-            let taken = |x: &str| used_file.contains(x) || used_made.contains(x);
+            let taken = |x: &str| used_file.contains(&TextKey(x)) || used_made.contains(x);
             let mut name = base.clone();
             if taken(&name) {
                 let mut k = 2;
@@ -668,7 +672,7 @@ const NONE: u32 = u32::MAX;
 /// The tensor names of one graph, each hashed once and then known by its index: the value it
 /// names so far and the node that produces it.
 struct Symbols<'a> {
-    index: FastMap<&'a str, u32>,
+    index: FastMap<TextKey<'a>, u32>,
     names: Vec<&'a str>,
     value: Vec<Option<ValueId>>,
     /// Index in the flat node list, or `NONE`.
@@ -689,7 +693,7 @@ impl<'a> Symbols<'a> {
 
     fn intern(&mut self, name: &'a str) -> u32 {
         let next = self.names.len() as u32;
-        let k = *self.index.entry(name).or_insert(next);
+        let k = *self.index.entry(TextKey(name)).or_insert(next);
         if k == next {
             self.names.push(name);
             self.value.push(None);
@@ -699,7 +703,7 @@ impl<'a> Symbols<'a> {
     }
 
     fn value_of(&self, name: &str) -> Option<ValueId> {
-        self.index.get(name).and_then(|&k| self.value[k as usize])
+        self.index.get(&TextKey(name)).and_then(|&k| self.value[k as usize])
     }
 
     fn bind(&mut self, name: &'a str, id: ValueId) {

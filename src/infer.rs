@@ -5,6 +5,7 @@
 use std::collections::{BTreeMap, HashMap};
 
 use crate::diag::{codes, Diagnostic};
+use crate::fastmap::FastMap;
 use crate::ir::{ConstValue, DType, Fact, Graph, Model, NodeCost, Shape, Storage, ValueId, ValueKind, ValueType};
 use crate::onnx::load::read_external;
 use crate::ops::{self, CostRule, Ctx, MacsOps};
@@ -17,8 +18,10 @@ pub type UnknownReasons = BTreeMap<ValueId, std::sync::Arc<str>>;
 /// One shared copy of each distinct reason text.
 #[derive(Default)]
 struct ReasonTexts(
-    HashMap<String, std::sync::Arc<str>>,
-    HashMap<Vec<Option<crate::ir::Name>>, std::sync::Arc<str>>,
+    FastMap<String, std::sync::Arc<str>>,
+    FastMap<Vec<Option<crate::ir::Name>>, std::sync::Arc<str>>,
+    /// The key being looked up, reused: one allocation per distinct key, not per tensor.
+    Vec<Option<crate::ir::Name>>,
 );
 
 impl ReasonTexts {
@@ -26,18 +29,17 @@ impl ReasonTexts {
     /// (a symbol, or None for an unknown dim): the key shares the symbols' text instead of
     /// splitting and joining it again for every tensor.
     fn for_shape(&mut self, shape: &Shape) -> std::sync::Arc<str> {
-        let key: Vec<Option<crate::ir::Name>> = shape
-            .dims()
-            .into_iter()
-            .flatten()
-            .filter_map(|d| match d {
-                crate::ir::Dim::Sym(s) => Some(Some(s.clone())),
-                crate::ir::Dim::Unknown => Some(None),
-                crate::ir::Dim::Known(_) => None,
-            })
-            .collect();
-        if let Some(a) = self.1.get(&key) {
-            return a.clone();
+        let mut key = std::mem::take(&mut self.2);
+        key.clear();
+        key.extend(shape.dims().into_iter().flatten().filter_map(|d| match d {
+            crate::ir::Dim::Sym(s) => Some(Some(s.clone())),
+            crate::ir::Dim::Unknown => Some(None),
+            crate::ir::Dim::Known(_) => None,
+        }));
+        if let Some(a) = self.1.get(key.as_slice()) {
+            let a = a.clone();
+            self.2 = key;
+            return a;
         }
         let syms = shape.symbols();
         let text = if syms.is_empty() {

@@ -275,6 +275,9 @@ fn run(cli: Cli) -> anyhow::Result<u8> {
                 Format::Table => inspect::render_table(&report, out),
                 Format::Markdown => inspect::render_markdown(&report, out),
             })?;
+            // The process ends here: freeing a large model node by node would only delay
+            // the exit (measured: about 10 ms of 130 on a 100k-node graph).
+            std::mem::forget(read);
             Ok(0)
         }
         Command::Analyze(args) => {

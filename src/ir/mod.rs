@@ -7,7 +7,7 @@ mod name;
 mod shape;
 
 pub use dtype::DType;
-pub use name::{short_text_eq, Name};
+pub use name::Name;
 pub use shape::{Dim, Shape};
 
 use bytes::Bytes;

@@ -20,29 +20,6 @@ impl Name {
     }
 }
 
-/// Byte equality of two short texts without a call into the C library's `memcmp`: op types
-/// and domains are compared once per node, and on the machines measured the call cost more
-/// than the comparison (it was a fifth of a large graph's reading time).
-pub fn short_text_eq(a: &str, b: &str) -> bool {
-    let (a, b) = (a.as_bytes(), b.as_bytes());
-    if a.len() != b.len() {
-        return false;
-    }
-    let mut ca = a.chunks_exact(8);
-    let mut cb = b.chunks_exact(8);
-    for (x, y) in (&mut ca).zip(&mut cb) {
-        let word = |c: &[u8]| {
-            let mut w = [0u8; 8];
-            w.copy_from_slice(c);
-            u64::from_ne_bytes(w)
-        };
-        if word(x) != word(y) {
-            return false;
-        }
-    }
-    ca.remainder().iter().zip(cb.remainder()).all(|(x, y)| x == y)
-}
-
 impl Default for Name {
     fn default() -> Self {
         Name(Arc::new(String::new()))

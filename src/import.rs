@@ -454,7 +454,7 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
         for a in &n.proto.attribute {
             let value = attr_value(cx, a, depth, &mut bodies, &mut free)?;
             attrs.push(Attr {
-                name: a.name.clone(),
+                name: cx.names.get(&a.name),
                 value,
             });
         }

@@ -482,7 +482,7 @@ fn node_cost(ctx: &Ctx, rule: Option<CostRule>, outs: &[Fact], bodies: &[MacsOps
         && ctx.konst(0).is_none()
         && ctx.loop_trips.is_none()
     {
-        needs.push(format!("trips@{}", ctx.node.name));
+        needs.push(crate::ir::Name::from(format!("trips@{}", ctx.node.name)));
     }
     if macs.is_none() || ops_.is_none() {
         for f in ctx.inputs.iter().flatten().copied().chain(outs.iter()) {

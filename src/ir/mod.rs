@@ -319,7 +319,8 @@ pub enum AttrValue {
 
 #[derive(Clone, Debug)]
 pub struct Attr {
-    pub name: String,
+    /// Shared: a graph repeats a few attribute names (`axis`, `perm`) on every node.
+    pub name: Name,
     pub value: AttrValue,
 }
 
@@ -338,7 +339,7 @@ pub struct NodeCost {
     /// Element-wise and other non-MAC arithmetic operations.
     pub ops: Option<u64>,
     /// Symbols whose values would make the unknown figures known.
-    pub needs_dims: Vec<String>,
+    pub needs_dims: Vec<Name>,
 }
 
 #[derive(Clone, Debug)]

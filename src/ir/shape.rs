@@ -135,19 +135,19 @@ impl Shape {
     }
 
     /// Adds the symbols that keep this shape from being concrete to `out`, skipping those
-    /// already there (no allocation for a symbol seen before: large graphs repeat one `batch`).
-    pub fn symbols_into(&self, out: &mut Vec<String>) {
+    /// already there (a shared `Name`, no allocation: large graphs repeat one `batch`).
+    pub fn symbols_into(&self, out: &mut Vec<Name>) {
         for d in self.0.iter().flatten() {
             let Dim::Sym(s) = d else { continue };
             let simple = !s.contains(['*', '+', '(', ')']);
             if simple {
-                if !out.iter().any(|x| x.as_str() == &**s) && s.parse::<u64>().is_err() {
-                    out.push(s.to_string());
+                if !out.iter().any(|x| x == s) && s.parse::<u64>().is_err() {
+                    out.push(s.clone());
                 }
             } else {
                 for t in d.symbols() {
-                    if !out.contains(&t) {
-                        out.push(t);
+                    if !out.iter().any(|x| *x == t) {
+                        out.push(Name::from(t));
                     }
                 }
             }

@@ -395,7 +395,7 @@ pub fn summary(i: &Inputs) -> Summary {
         .costs
         .unknown_work
         .iter()
-        .flat_map(|n| g.node(*n).cost.needs_dims.iter().cloned())
+        .flat_map(|n| g.node(*n).cost.needs_dims.iter().map(|d| d.to_string()))
         .collect();
     needs_dims.sort();
     needs_dims.dedup();

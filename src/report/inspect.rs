@@ -304,7 +304,7 @@ pub fn build<'a>(model: &'a Model, diags: &[Diagnostic], reasons: &'a UnknownRea
     let mut counts: crate::fastmap::FastMap<(usize, usize), (usize, &crate::ir::Node)> = Default::default();
     let mut macs = Some(0u64);
     let mut ops = Some(0u64);
-    let mut because: Vec<String> = Vec::new();
+    let mut because: Vec<crate::ir::Name> = Vec::new();
     for n in &g.nodes {
         counts.entry((n.domain.addr(), n.op_type.addr())).or_insert((0, n)).0 += 1;
         if n.folded {
@@ -369,7 +369,7 @@ pub fn build<'a>(model: &'a Model, diags: &[Diagnostic], reasons: &'a UnknownRea
             macs,
             ops,
             activation_bytes,
-            unknown_because: because,
+            unknown_because: because.iter().map(|d| d.to_string()).collect(),
         },
         inputs: g.inputs.iter().map(port).collect(),
         outputs: g.outputs.iter().map(port).collect(),

@@ -13,7 +13,9 @@ use crate::values::{self, MAX_DECODE_ELEMENTS};
 
 /// Why a main-graph value's shape is not concrete, by value index. A large graph with one
 /// symbolic dim has the same reason on every tensor: the text is shared, not repeated.
-pub type UnknownReasons = BTreeMap<ValueId, std::sync::Arc<str>>;
+/// Sorted by value id, one entry per value (a list, not a map: it is built in one pass and
+/// only read in order).
+pub type UnknownReasons = Vec<(ValueId, std::sync::Arc<str>)>;
 
 /// One shared copy of each distinct reason text.
 #[derive(Default)]
@@ -91,6 +93,8 @@ pub fn infer(model: &mut Model, diags: &mut Vec<Diagnostic>) -> UnknownReasons {
             .at_node(&first),
         );
     }
+    // Node outputs come in node order and graph inputs last; every value appears once.
+    reasons.sort_by_key(|(id, _)| *id);
     reasons
 }
 
@@ -254,6 +258,8 @@ fn infer_graph(
                 || g.values[v.index()].konst.as_deref().is_some_and(ConstValue::is_numeric)
         });
         let cost = node_cost(&ctx, def.map(|d| d.cost), &facts, &body_costs);
+        // The context borrows the graph, which the outputs below are written into.
+        drop(ctx);
         if let Some(f) = &failure {
             if def.is_some() {
                 diags.push(Diagnostic::new(codes::SHAPE_FAILED, f.clone()).at_node(&node.name));
@@ -298,7 +304,7 @@ fn infer_graph(
                         Some(f) if inferred_rank.is_none() => texts.get(f.clone()),
                         _ => texts.for_shape(&fact.shape),
                     };
-                    r.insert(*v, why);
+                    r.push((*v, why));
                 }
             }
             value.fact = fact;
@@ -319,14 +325,14 @@ fn infer_graph(
             let f = &g.values[i.index()].fact;
             if !f.shape.is_concrete() {
                 let syms = f.shape.symbols();
-                r.insert(
+                r.push((
                     i,
                     texts.get(if syms.is_empty() {
                         "declared with unknown dims".into()
                     } else {
                         format!("declared with symbolic dims: {}", syms.join(", "))
                     }),
-                );
+                ));
             }
         }
     }

@@ -382,8 +382,8 @@ impl Node {
     }
 
     /// Values read by this node, bodies' captures included, in slot order, deduplicated.
-    pub fn all_inputs(&self) -> Vec<ValueId> {
-        let mut out: Vec<ValueId> = Vec::new();
+    pub fn all_inputs(&self) -> Inputs {
+        let mut out = Inputs::new();
         for v in self.inputs.iter().flatten().chain(self.captures.iter()) {
             if !out.contains(v) {
                 out.push(*v);
@@ -392,6 +392,10 @@ impl Node {
         out
     }
 }
+
+/// A node's input values: inline up to four (most nodes read one to three), so that asking
+/// for them allocates nothing.
+pub type Inputs = smallvec::SmallVec<[ValueId; 4]>;
 
 /// An op type qualified by its domain outside the standard one (see `Node::op_label`).
 pub fn op_label(domain: &str, op_type: &str) -> String {

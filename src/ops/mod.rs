@@ -35,8 +35,9 @@ use crate::ir::{ConstValue, Fact, Node};
 /// What an op's functions see of one node.
 pub struct Ctx<'a> {
     pub node: &'a Node,
-    pub inputs: Vec<Option<&'a Fact>>,
-    pub consts: Vec<Option<&'a ConstValue>>,
+    /// Inline up to four slots: building a context allocates nothing for most nodes.
+    pub inputs: smallvec::SmallVec<[Option<&'a Fact>; 4]>,
+    pub consts: smallvec::SmallVec<[Option<&'a ConstValue>; 4]>,
     /// Opset version of the node's domain.
     pub opset: i64,
     /// Facts inferred for each body's outputs (If/Loop/Scan), in body order.

@@ -9,7 +9,12 @@ fn median(mut v: Vec<f64>) -> f64 {
     v[v.len() / 2]
 }
 
+// The binary's allocator and setting, so the figures are the binary's.
+#[global_allocator]
+static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;
+
 fn main() {
+    tilecut::tune_allocator();
     let dir = std::env::args()
         .skip(1)
         .find(|a| !a.starts_with('-'))

@@ -37,7 +37,12 @@ fn collection(dir: &Path) -> Vec<PathBuf> {
     out
 }
 
+// The binary's allocator and setting, so the figures are the binary's.
+#[global_allocator]
+static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;
+
 fn main() {
+    tilecut::tune_allocator();
     let dir = std::env::args()
         .skip(1)
         .find(|a| !a.starts_with('-'))

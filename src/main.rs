@@ -14,10 +14,7 @@ use tilecut::report::{analyze, inspect, Format};
 const EXIT_COULD_NOT_RUN: u8 = 2;
 
 fn main() -> ExitCode {
-    // Large OS pages for the allocator's arenas: on virtual machines a page fault costs
-    // microseconds, and the IR of a 100k-node model touches hundreds of MB.
-    // SAFETY: setting an allocator option is a plain store, valid at any time.
-    unsafe { libmimalloc_sys::mi_option_set(libmimalloc_sys::mi_option_large_os_pages, 1) };
+    tilecut::tune_allocator();
     let cli = match Cli::try_parse() {
         Ok(c) => c,
         Err(e) => return usage_error(e),

@@ -205,7 +205,7 @@ struct Cx<'a> {
     diags: Vec<Diagnostic>,
     used_dims: BTreeSet<String>,
     used_inputs: BTreeSet<String>,
-    /// One shared copy of each op type and domain text, for every graph of the model.
+    /// One shared copy of each op type, domain and attribute name, for every graph of the model.
     names: Interner,
 }
 

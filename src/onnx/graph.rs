@@ -10,6 +10,7 @@ use bytes::{Buf, BufMut};
 use prost::encoding::{self, DecodeContext, WireType};
 use prost::DecodeError;
 
+use super::node::{encode_string, string_len};
 use super::{NodeProto, SparseTensorProto, StringStringEntryProto, TensorProto, ValueInfoProto};
 
 /// Field numbers of the standard's `GraphProto`.
@@ -62,13 +63,9 @@ fn node_run_length(mut wire: &[u8]) -> usize {
 impl prost::Message for GraphProto {
     fn encode_raw(&self, buf: &mut impl BufMut) {
         encoding::message::encode_repeated(field::NODE, &self.node, buf);
-        if !self.name.is_empty() {
-            encoding::string::encode(field::NAME, &self.name, buf);
-        }
+        encode_string(field::NAME, &self.name, buf);
         encoding::message::encode_repeated(field::INITIALIZER, &self.initializer, buf);
-        if !self.doc_string.is_empty() {
-            encoding::string::encode(field::DOC_STRING, &self.doc_string, buf);
-        }
+        encode_string(field::DOC_STRING, &self.doc_string, buf);
         encoding::message::encode_repeated(field::INPUT, &self.input, buf);
         encoding::message::encode_repeated(field::OUTPUT, &self.output, buf);
         encoding::message::encode_repeated(field::VALUE_INFO, &self.value_info, buf);
@@ -109,15 +106,11 @@ impl prost::Message for GraphProto {
     }
 
     fn encoded_len(&self) -> usize {
-        let mut len = encoding::message::encoded_len_repeated(field::NODE, &self.node);
-        if !self.name.is_empty() {
-            len += encoding::string::encoded_len(field::NAME, &self.name);
-        }
-        len += encoding::message::encoded_len_repeated(field::INITIALIZER, &self.initializer);
-        if !self.doc_string.is_empty() {
-            len += encoding::string::encoded_len(field::DOC_STRING, &self.doc_string);
-        }
-        len + encoding::message::encoded_len_repeated(field::INPUT, &self.input)
+        encoding::message::encoded_len_repeated(field::NODE, &self.node)
+            + string_len(field::NAME, &self.name)
+            + encoding::message::encoded_len_repeated(field::INITIALIZER, &self.initializer)
+            + string_len(field::DOC_STRING, &self.doc_string)
+            + encoding::message::encoded_len_repeated(field::INPUT, &self.input)
             + encoding::message::encoded_len_repeated(field::OUTPUT, &self.output)
             + encoding::message::encoded_len_repeated(field::VALUE_INFO, &self.value_info)
             + encoding::message::encoded_len_repeated(field::SPARSE_INITIALIZER, &self.sparse_initializer)

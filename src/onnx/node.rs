@@ -74,13 +74,14 @@ fn merge_messages<M: prost::Message + Default>(
     Ok(())
 }
 
-fn encode_string(tag: u32, s: &String, buf: &mut impl BufMut) {
+/// A proto3 string field: written only when not empty (shared by the hand-written messages).
+pub(super) fn encode_string(tag: u32, s: &String, buf: &mut impl BufMut) {
     if !s.is_empty() {
         encoding::string::encode(tag, s, buf);
     }
 }
 
-fn string_len(tag: u32, s: &String) -> usize {
+pub(super) fn string_len(tag: u32, s: &String) -> usize {
     if s.is_empty() {
         0
     } else {

@@ -10,6 +10,7 @@ use bytes::{Buf, BufMut, Bytes, BytesMut};
 use prost::encoding::{self, DecodeContext, WireType};
 use prost::DecodeError;
 
+use super::node::{encode_string, string_len};
 use super::StringStringEntryProto;
 
 /// `TensorProto.Segment`: a slice of a large tensor split across several protos.
@@ -143,15 +144,11 @@ impl prost::Message for TensorProto {
         encode_packed_field(field::INT32_DATA, &self.int32_data, buf);
         encoding::bytes::encode_repeated(field::STRING_DATA, &self.string_data, buf);
         encode_packed_field(field::INT64_DATA, &self.int64_data, buf);
-        if !self.name.is_empty() {
-            encoding::string::encode(field::NAME, &self.name, buf);
-        }
+        encode_string(field::NAME, &self.name, buf);
         encode_packed_field(field::RAW_DATA, &self.raw_data, buf);
         encode_packed_field(field::DOUBLE_DATA, &self.double_data, buf);
         encode_packed_field(field::UINT64_DATA, &self.uint64_data, buf);
-        if !self.doc_string.is_empty() {
-            encoding::string::encode(field::DOC_STRING, &self.doc_string, buf);
-        }
+        encode_string(field::DOC_STRING, &self.doc_string, buf);
         encoding::message::encode_repeated(field::EXTERNAL_DATA, &self.external_data, buf);
         if self.data_location != 0 {
             encoding::int32::encode(field::DATA_LOCATION, &self.data_location, buf);
@@ -200,15 +197,11 @@ impl prost::Message for TensorProto {
         len += packed_field_len(field::INT32_DATA, &self.int32_data);
         len += encoding::bytes::encoded_len_repeated(field::STRING_DATA, &self.string_data);
         len += packed_field_len(field::INT64_DATA, &self.int64_data);
-        if !self.name.is_empty() {
-            len += encoding::string::encoded_len(field::NAME, &self.name);
-        }
+        len += string_len(field::NAME, &self.name);
         len += packed_field_len(field::RAW_DATA, &self.raw_data);
         len += packed_field_len(field::DOUBLE_DATA, &self.double_data);
         len += packed_field_len(field::UINT64_DATA, &self.uint64_data);
-        if !self.doc_string.is_empty() {
-            len += encoding::string::encoded_len(field::DOC_STRING, &self.doc_string);
-        }
+        len += string_len(field::DOC_STRING, &self.doc_string);
         len += encoding::message::encoded_len_repeated(field::EXTERNAL_DATA, &self.external_data);
         if self.data_location != 0 {
             len += encoding::int32::encoded_len(field::DATA_LOCATION, &self.data_location);

@@ -5,6 +5,10 @@
 //! Serialisers write a message's fields in field-number order, so the nodes (field 1) lie in
 //! one run; at the first node the decoder counts that run ahead and reserves it exactly. The
 //! count is only a capacity hint: a file laid out otherwise decodes the same, just slower.
+//! Inside a nested graph the count can run past the graph's end into the enclosing graph's
+//! nodes (the decoder cannot see where a nested message ends), so all hints of one decode
+//! share a budget of what the file could hold (`decode_model`): a hostile file nesting graphs
+//! cannot make each level reserve the whole run again.
 
 use bytes::{Buf, BufMut};
 use prost::encoding::{self, DecodeContext, WireType};
@@ -39,6 +43,21 @@ pub struct GraphProto {
     pub output: Vec<ValueInfoProto>,
     pub value_info: Vec<ValueInfoProto>,
     pub metadata_props: Vec<StringStringEntryProto>,
+}
+
+thread_local! {
+    /// Node slots the current `decode_model` may still reserve ahead: one per two bytes of the
+    /// file (the smallest node entry), which is what a full decode could allocate anyway.
+    /// Zero outside `decode_model`: no hints, prost's growth.
+    static HINT_BUDGET: std::cell::Cell<usize> = const { std::cell::Cell::new(0) };
+}
+
+/// Decodes a `ModelProto` with node-list hints bounded by the file's size.
+pub fn decode_model(bytes: bytes::Bytes) -> Result<super::ModelProto, DecodeError> {
+    HINT_BUDGET.with(|b| b.set(bytes.len() / 2));
+    let out = <super::ModelProto as prost::Message>::decode(bytes);
+    HINT_BUDGET.with(|b| b.set(0));
+    out
 }
 
 /// How many length-delimited field-1 entries follow in `wire`, which starts at the length of
@@ -83,10 +102,15 @@ impl prost::Message for GraphProto {
         match tag {
             field::NODE => {
                 if self.node.is_empty() && wire_type == WireType::LengthDelimited {
-                    let wire = buf.chunk();
-                    // Every node takes at least two bytes (its key and length), which also
-                    // bounds the hint by the input's size.
-                    let run = node_run_length(wire).min(wire.len() / 2);
+                    let run = HINT_BUDGET.with(|b| {
+                        let run = if b.get() == 0 {
+                            0
+                        } else {
+                            node_run_length(buf.chunk()).min(b.get())
+                        };
+                        b.set(b.get() - run);
+                        run
+                    });
                     self.node.reserve_exact(run);
                 }
                 encoding::message::merge_repeated(wire_type, &mut self.node, buf, ctx)
@@ -143,9 +167,60 @@ mod tests {
             name: "g".into(),
             ..Default::default()
         };
-        let d = GraphProto::decode(Bytes::from(g.encode_to_vec())).expect("decodes");
+        let m = super::super::ModelProto {
+            graph: Some(g.clone()),
+            ..Default::default()
+        };
+        let d = decode_model(Bytes::from(m.encode_to_vec())).expect("decodes");
+        let d = d.graph.expect("graph");
         assert_eq!(d, g);
         assert_eq!(d.node.capacity(), 100);
+    }
+
+    /// A subgraph as the last attribute of a node, followed by the enclosing graph's other
+    /// nodes: the subgraph's run scan reads on into them. The hints of one decode never add up
+    /// to more node slots than the file could hold.
+    #[test]
+    fn hints_in_nested_graphs_stay_within_the_files_budget() {
+        use super::super::AttributeProto;
+        let mut inner = GraphProto::default();
+        for level in 0..30 {
+            let mut carrier = node("If", &format!("c{level}"));
+            // `g` is the attribute's last field written (no `type`), so the subgraph's bytes
+            // are followed directly by the enclosing graph's next node.
+            carrier.attribute.push(AttributeProto {
+                name: "then_branch".into(),
+                g: Some(Box::new(inner)),
+                ..Default::default()
+            });
+            let mut nodes = vec![carrier];
+            nodes.extend((0..100).map(|i| node("Relu", &format!("l{level}_{i}"))));
+            inner = GraphProto {
+                node: nodes,
+                ..Default::default()
+            };
+        }
+        let m = super::super::ModelProto {
+            graph: Some(inner),
+            ..Default::default()
+        };
+        let wire = m.encode_to_vec();
+        let d = decode_model(Bytes::from(wire.clone())).expect("decodes");
+        fn slots(g: &GraphProto) -> usize {
+            g.node.capacity()
+                + g.node
+                    .iter()
+                    .flat_map(|n| n.attribute.iter())
+                    .filter_map(|a| a.g.as_deref())
+                    .map(slots)
+                    .sum::<usize>()
+        }
+        let graph = d.graph.expect("graph");
+        assert_eq!(graph.node.len(), 101);
+        // The budget, plus what ordinary doubling adds once it is spent (≤ 2 per real node).
+        let real = 30 * 101;
+        let bound = wire.len() / 2 + 2 * real;
+        assert!(slots(&graph) <= bound, "{} slots, bound {bound}", slots(&graph));
     }
 
     /// Nodes interleaved with other fields (allowed by the encoding guide: fields may come in

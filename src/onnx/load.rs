@@ -4,7 +4,6 @@ use std::fs::File;
 use std::path::{Component, Path, PathBuf};
 
 use bytes::Bytes;
-use prost::Message;
 
 use super::ModelProto;
 use crate::error::ReadError;
@@ -46,7 +45,7 @@ pub fn load(path: &Path) -> Result<LoadedModel, ReadError> {
     // process while mapped would fault; that is the usual contract of mapped readers.
     let map = unsafe { memmap2::Mmap::map(&file) }.map_err(io)?;
     let bytes = Bytes::from_owner(map);
-    let proto = ModelProto::decode(bytes).map_err(|e| decode_error(path, e))?;
+    let proto = super::graph::decode_model(bytes).map_err(|e| decode_error(path, e))?;
     if proto.graph.is_none() {
         return Err(ReadError::Decode {
             path: path.to_path_buf(),
@@ -72,7 +71,7 @@ pub fn decode(path: &Path, bytes: Bytes, dir: PathBuf) -> Result<LoadedModel, Re
             path: path.to_path_buf(),
         });
     }
-    let proto = ModelProto::decode(bytes).map_err(|e| decode_error(path, e))?;
+    let proto = super::graph::decode_model(bytes).map_err(|e| decode_error(path, e))?;
     if proto.graph.is_none() {
         return Err(ReadError::Decode {
             path: path.to_path_buf(),

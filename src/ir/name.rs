@@ -34,12 +34,6 @@ impl std::ops::Deref for Name {
     }
 }
 
-impl AsRef<str> for Name {
-    fn as_ref(&self) -> &str {
-        &self.0
-    }
-}
-
 impl std::borrow::Borrow<str> for Name {
     fn borrow(&self) -> &str {
         &self.0
@@ -55,18 +49,6 @@ impl From<&str> for Name {
 impl From<String> for Name {
     fn from(s: String) -> Name {
         Name(Arc::new(s))
-    }
-}
-
-impl From<&Name> for String {
-    fn from(n: &Name) -> String {
-        n.0.to_string()
-    }
-}
-
-impl PartialEq<str> for Name {
-    fn eq(&self, other: &str) -> bool {
-        self.0.as_str() == other
     }
 }
 
@@ -94,21 +76,9 @@ impl std::fmt::Debug for Name {
     }
 }
 
-impl serde::Serialize for Name {
-    fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
-        s.serialize_str(&self.0)
-    }
-}
-
 impl PartialEq<Name> for String {
     fn eq(&self, other: &Name) -> bool {
         self.as_str() == other.0.as_str()
-    }
-}
-
-impl PartialEq<Name> for str {
-    fn eq(&self, other: &Name) -> bool {
-        self == other.0.as_str()
     }
 }
 

@@ -12,7 +12,7 @@ use crate::ir::{
     Value, ValueId, ValueKind, ValueType,
 };
 use crate::onnx::load::{resolve_external, LoadedModel};
-use crate::onnx::{self, TensorProto};
+use crate::onnx::{self, ProtoStr, TensorProto};
 
 /// Subgraphs (If/Loop/Scan bodies) nested deeper than this are refused instead of recursed
 /// into. Real models nest two or three levels; the bound keeps hostile files from exhausting
@@ -200,7 +200,7 @@ fn qualified(domain: &str, op: &str) -> String {
 struct Cx<'a> {
     path: &'a Path,
     dir: &'a Path,
-    functions: HashMap<(String, String), &'a onnx::FunctionProto>,
+    functions: HashMap<(&'a str, &'a str), &'a onnx::FunctionProto>,
     overrides: &'a Overrides,
     diags: Vec<Diagnostic>,
     used_dims: BTreeSet<String>,
@@ -255,7 +255,7 @@ impl<'a> Cx<'a> {
                 .proto
                 .functions
                 .iter()
-                .map(|f| ((f.domain.clone(), f.name.clone()), f))
+                .map(|f| ((f.domain.as_str(), f.name.as_str()), f))
                 .collect(),
             overrides,
             diags: Vec::new(),
@@ -653,7 +653,7 @@ fn display_name(n: &onnx::NodeProto, index: usize) -> String {
     if n.name.is_empty() {
         generated_name(n, index)
     } else {
-        n.name.clone()
+        n.name.to_string()
     }
 }
 
@@ -820,7 +820,7 @@ fn expand_functions<'a>(
         let called = if cx.functions.is_empty() {
             None
         } else {
-            cx.functions.get(&(n.domain.clone(), n.op_type.clone())).copied()
+            cx.functions.get(&(n.domain.as_str(), n.op_type.as_str())).copied()
         };
         let Some(f) = called else {
             out.push(FlatNode {
@@ -839,9 +839,9 @@ fn expand_functions<'a>(
         let call = if n.name.is_empty() {
             generated_name(n, out.len())
         } else {
-            n.name.clone()
+            n.name.to_string()
         };
-        let mut rename: HashMap<&str, String> = HashMap::new();
+        let mut rename: HashMap<&str, ProtoStr> = HashMap::new();
         for (i, formal) in f.input.iter().enumerate() {
             rename.insert(formal, n.input.get(i).cloned().unwrap_or_default());
         }
@@ -851,22 +851,23 @@ fn expand_functions<'a>(
         let mut body = Vec::with_capacity(f.node.len());
         for inner in &f.node {
             let mut m = inner.clone();
-            let map = |s: &String| -> String {
+            let map = |s: &ProtoStr| -> ProtoStr {
                 if s.is_empty() {
-                    return String::new();
+                    return ProtoStr::new();
                 }
-                rename.get(s.as_str()).cloned().unwrap_or_else(|| format!("{call}/{s}"))
+                rename
+                    .get(s.as_str())
+                    .cloned()
+                    .unwrap_or_else(|| format!("{call}/{s}").into())
             };
             m.input = inner.input.iter().map(map).collect();
             m.output = inner.output.iter().map(map).collect();
-            m.name = format!(
-                "{call}/{}",
-                if inner.name.is_empty() {
-                    generated_name(inner, 0)
-                } else {
-                    inner.name.clone()
-                }
-            );
+            m.name = if inner.name.is_empty() {
+                format!("{call}/{}", generated_name(inner, 0))
+            } else {
+                format!("{call}/{}", inner.name)
+            }
+            .into();
             m.attribute = Vec::with_capacity(inner.attribute.len());
             for a in &inner.attribute {
                 if a.ref_attr_name.is_empty() {

@@ -50,8 +50,10 @@ pub struct Analyzed {
 pub fn read_model(path: &Path, overrides: &Overrides) -> Result<Analyzed, ReadError> {
     let loaded = onnx::load::load(path)?;
     let (mut model, mut diags) = import::import(&loaded, overrides)?;
-    // The wire-format tree is not needed past import; freeing it lets inference reuse the memory.
-    drop(loaded);
+    // The wire-format tree is not needed past import. Freeing it (on a large graph, hundreds
+    // of thousands of small blocks) runs beside inference on another thread; if no thread
+    // can be started, the failed spawn drops it here.
+    let _ = std::thread::Builder::new().spawn(move || drop(loaded));
     let unknown = infer::infer(&mut model, &mut diags);
     Ok(Analyzed { model, diags, unknown })
 }

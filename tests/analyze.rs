@@ -375,7 +375,7 @@ fn renaming_nodes_leaves_cost_and_structure_unchanged() {
     let bytes = std::fs::read(&m).expect("read");
     let mut proto = <tilecut::onnx::ModelProto as prost::Message>::decode(bytes::Bytes::from(bytes)).expect("decode");
     for (i, n) in proto.graph.as_mut().expect("graph").node.iter_mut().enumerate() {
-        n.name = format!("renamed_{}", 1000 - i);
+        n.name = format!("renamed_{}", 1000 - i).into();
     }
     let d = tempfile::tempdir().expect("tmp");
     let p = d.path().join("renamed.onnx");

@@ -170,6 +170,28 @@ fn wrong_wire_type() {
     assert_fails_cleanly(&["inspect", p.to_str().expect("utf8")], "wire.onnx");
 }
 
+/// Protobuf language guide: a `string` field "must always contain UTF-8 encoded text". Node
+/// names are decoded as slices of the mapped file, so the check happens in our decoder.
+#[test]
+fn node_name_that_is_not_utf8() {
+    let d = tmp();
+    let m = model(
+        vec![node("Relu", &["x"], &["Qz9Qz9"])],
+        vec![vi("x", 1, &[Dm::N(3)])],
+        vec![vi("Qz9Qz9", 1, &[])],
+        vec![],
+    );
+    let mut bytes = m.encode_to_vec();
+    // Same length, so every enclosing length prefix stays right: only the text is bad.
+    let at = bytes.windows(6).position(|w| w == b"Qz9Qz9").expect("placeholder");
+    bytes[at..at + 6].copy_from_slice(&[0xff, 0xfe, 0xff, 0xfe, 0xff, 0xfe]);
+    let p = d.path().join("latin.onnx");
+    std::fs::write(&p, &bytes).expect("write");
+    assert_fails_cleanly(&["inspect", p.to_str().expect("utf8")], "latin.onnx");
+    let (_, _, err) = run(&["inspect", p.to_str().expect("utf8")]);
+    assert!(err.contains("UTF-8"), "says what is wrong: {err}");
+}
+
 #[test]
 fn cyclic_graph_names_the_nodes() {
     let d = tmp();

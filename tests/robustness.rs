@@ -113,7 +113,7 @@ fn every_op_survives_random_shapes_and_attributes() {
             let outs: Vec<String> = (0..n_out).map(|i| format!("y{i}")).collect();
             let orefs: Vec<&str> = outs.iter().map(|s| s.as_str()).collect();
             let node = m.graph.node(def.op, &refs, &orefs);
-            node.domain = def.domain.to_string();
+            node.domain = def.domain.into();
             let r = |rng: &mut Rng| (rng.next_u64() % 11) as i64 - 5;
             for a in [
                 "axis",

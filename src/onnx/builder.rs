@@ -225,10 +225,10 @@ impl GraphBuilder {
     pub fn node(&mut self, op: &str, inputs: &[&str], outputs: &[&str]) -> &mut NodeProto {
         self.counter += 1;
         self.graph.node.push(NodeProto {
-            name: format!("{}_{}", op.to_lowercase(), self.counter),
+            name: format!("{}_{}", op.to_lowercase(), self.counter).into(),
             op_type: op.into(),
-            input: inputs.iter().map(|s| s.to_string()).collect(),
-            output: outputs.iter().map(|s| s.to_string()).collect(),
+            input: inputs.iter().map(|&s| s.into()).collect(),
+            output: outputs.iter().map(|&s| s.into()).collect(),
             ..Default::default()
         });
         let last = self.graph.node.len() - 1;

@@ -113,7 +113,8 @@ impl prost::Message for GraphProto {
                     });
                     self.node.reserve_exact(run);
                 }
-                encoding::message::merge_repeated(wire_type, &mut self.node, buf, ctx)
+                self.node.push(NodeProto::default());
+                super::node::merge_into_last(wire_type, &mut self.node, buf, ctx)
             }
             field::NAME => encoding::string::merge(wire_type, &mut self.name, buf, ctx),
             field::INITIALIZER => encoding::message::merge_repeated(wire_type, &mut self.initializer, buf, ctx),

@@ -9,6 +9,7 @@ pub mod node;
 pub mod qdq;
 pub mod split;
 pub mod tensor;
+pub mod text;
 
 #[allow(clippy::all, missing_docs)]
 mod generated {
@@ -19,3 +20,4 @@ pub use generated::*;
 pub use graph::GraphProto;
 pub use node::NodeProto;
 pub use tensor::TensorProto;
+pub use text::ProtoStr;

@@ -10,6 +10,7 @@ use bytes::{Buf, BufMut};
 use prost::encoding::{self, DecodeContext, WireType};
 use prost::DecodeError;
 
+use super::text::{merge_repeated, ProtoStr};
 use super::{AttributeProto, StringStringEntryProto};
 
 /// Field numbers of the standard's `NodeProto`.
@@ -28,14 +29,14 @@ mod field {
 /// `NodeProto`, field for field.
 #[derive(Clone, PartialEq, Default, Debug)]
 pub struct NodeProto {
-    pub input: Vec<String>,
-    pub output: Vec<String>,
-    pub name: String,
-    pub op_type: String,
-    pub domain: String,
-    pub overload: String,
+    pub input: Vec<ProtoStr>,
+    pub output: Vec<ProtoStr>,
+    pub name: ProtoStr,
+    pub op_type: ProtoStr,
+    pub domain: ProtoStr,
+    pub overload: ProtoStr,
     pub attribute: Vec<AttributeProto>,
-    pub doc_string: String,
+    pub doc_string: ProtoStr,
     pub metadata_props: Vec<StringStringEntryProto>,
 }
 
@@ -43,23 +44,11 @@ pub struct NodeProto {
 /// inputs, outputs and attributes); beyond it, the usual doubling.
 const EXACT_UP_TO: usize = 8;
 
-fn push_exact<T>(v: &mut Vec<T>, item: T) {
+pub(super) fn push_exact<T>(v: &mut Vec<T>, item: T) {
     if v.len() == v.capacity() && v.len() < EXACT_UP_TO {
         v.reserve_exact(1);
     }
     v.push(item);
-}
-
-fn merge_strings(
-    wire_type: WireType,
-    v: &mut Vec<String>,
-    buf: &mut impl Buf,
-    ctx: DecodeContext,
-) -> Result<(), DecodeError> {
-    let mut s = String::new();
-    encoding::string::merge(wire_type, &mut s, buf, ctx)?;
-    push_exact(v, s);
-    Ok(())
 }
 
 fn merge_messages<M: prost::Message + Default>(
@@ -68,10 +57,27 @@ fn merge_messages<M: prost::Message + Default>(
     buf: &mut impl Buf,
     ctx: DecodeContext,
 ) -> Result<(), DecodeError> {
-    let mut m = M::default();
-    encoding::message::merge(wire_type, &mut m, buf, ctx)?;
-    push_exact(v, m);
-    Ok(())
+    push_exact(v, M::default());
+    merge_into_last(wire_type, v, buf, ctx)
+}
+
+/// Decodes a message into the last element of `v`, dropping that element if it fails.
+/// Nodes and attributes are a few hundred bytes each: decoded on the stack and then pushed,
+/// each was copied once more (libc's `memcpy` showed in profiles of large graphs).
+pub(super) fn merge_into_last<M: prost::Message>(
+    wire_type: WireType,
+    v: &mut Vec<M>,
+    buf: &mut impl Buf,
+    ctx: DecodeContext,
+) -> Result<(), DecodeError> {
+    let Some(last) = v.last_mut() else {
+        return Ok(());
+    };
+    let r = encoding::message::merge(wire_type, last, buf, ctx);
+    if r.is_err() {
+        v.pop();
+    }
+    r
 }
 
 /// A proto3 string field: written only when not empty (shared by the hand-written messages).
@@ -91,14 +97,18 @@ pub(super) fn string_len(tag: u32, s: &String) -> usize {
 
 impl prost::Message for NodeProto {
     fn encode_raw(&self, buf: &mut impl BufMut) {
-        encoding::string::encode_repeated(field::INPUT, &self.input, buf);
-        encoding::string::encode_repeated(field::OUTPUT, &self.output, buf);
-        encode_string(field::NAME, &self.name, buf);
-        encode_string(field::OP_TYPE, &self.op_type, buf);
+        for s in &self.input {
+            s.encode_always(field::INPUT, buf);
+        }
+        for s in &self.output {
+            s.encode_always(field::OUTPUT, buf);
+        }
+        self.name.encode(field::NAME, buf);
+        self.op_type.encode(field::OP_TYPE, buf);
         encoding::message::encode_repeated(field::ATTRIBUTE, &self.attribute, buf);
-        encode_string(field::DOC_STRING, &self.doc_string, buf);
-        encode_string(field::DOMAIN, &self.domain, buf);
-        encode_string(field::OVERLOAD, &self.overload, buf);
+        self.doc_string.encode(field::DOC_STRING, buf);
+        self.domain.encode(field::DOMAIN, buf);
+        self.overload.encode(field::OVERLOAD, buf);
         encoding::message::encode_repeated(field::METADATA_PROPS, &self.metadata_props, buf);
     }
 
@@ -110,28 +120,35 @@ impl prost::Message for NodeProto {
         ctx: DecodeContext,
     ) -> Result<(), DecodeError> {
         match tag {
-            field::INPUT => merge_strings(wire_type, &mut self.input, buf, ctx),
-            field::OUTPUT => merge_strings(wire_type, &mut self.output, buf, ctx),
-            field::NAME => encoding::string::merge(wire_type, &mut self.name, buf, ctx),
-            field::OP_TYPE => encoding::string::merge(wire_type, &mut self.op_type, buf, ctx),
+            field::INPUT => merge_repeated(wire_type, &mut self.input, buf, ctx),
+            field::OUTPUT => merge_repeated(wire_type, &mut self.output, buf, ctx),
+            field::NAME => ProtoStr::merge(wire_type, buf, ctx).map(|s| self.name = s),
+            field::OP_TYPE => ProtoStr::merge(wire_type, buf, ctx).map(|s| self.op_type = s),
             field::ATTRIBUTE => merge_messages(wire_type, &mut self.attribute, buf, ctx),
-            field::DOC_STRING => encoding::string::merge(wire_type, &mut self.doc_string, buf, ctx),
-            field::DOMAIN => encoding::string::merge(wire_type, &mut self.domain, buf, ctx),
-            field::OVERLOAD => encoding::string::merge(wire_type, &mut self.overload, buf, ctx),
+            field::DOC_STRING => ProtoStr::merge(wire_type, buf, ctx).map(|s| self.doc_string = s),
+            field::DOMAIN => ProtoStr::merge(wire_type, buf, ctx).map(|s| self.domain = s),
+            field::OVERLOAD => ProtoStr::merge(wire_type, buf, ctx).map(|s| self.overload = s),
             field::METADATA_PROPS => merge_messages(wire_type, &mut self.metadata_props, buf, ctx),
             _ => encoding::skip_field(wire_type, tag, buf, ctx),
         }
     }
 
     fn encoded_len(&self) -> usize {
-        encoding::string::encoded_len_repeated(field::INPUT, &self.input)
-            + encoding::string::encoded_len_repeated(field::OUTPUT, &self.output)
-            + string_len(field::NAME, &self.name)
-            + string_len(field::OP_TYPE, &self.op_type)
+        self.input
+            .iter()
+            .map(|s| s.encoded_len_always(field::INPUT))
+            .sum::<usize>()
+            + self
+                .output
+                .iter()
+                .map(|s| s.encoded_len_always(field::OUTPUT))
+                .sum::<usize>()
+            + self.name.encoded_len(field::NAME)
+            + self.op_type.encoded_len(field::OP_TYPE)
             + encoding::message::encoded_len_repeated(field::ATTRIBUTE, &self.attribute)
-            + string_len(field::DOC_STRING, &self.doc_string)
-            + string_len(field::DOMAIN, &self.domain)
-            + string_len(field::OVERLOAD, &self.overload)
+            + self.doc_string.encoded_len(field::DOC_STRING)
+            + self.domain.encoded_len(field::DOMAIN)
+            + self.overload.encoded_len(field::OVERLOAD)
             + encoding::message::encoded_len_repeated(field::METADATA_PROPS, &self.metadata_props)
     }
 

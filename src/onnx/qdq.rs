@@ -238,7 +238,7 @@ fn dq_node(name: &str, inputs: [&str; 3], output: &str, attrs: Vec<super::Attrib
     NodeProto {
         name: name.into(),
         op_type: "DequantizeLinear".into(),
-        input: inputs.iter().map(|s| s.to_string()).collect(),
+        input: inputs.iter().map(|&s| s.into()).collect(),
         output: vec![output.into()],
         attribute: attrs,
         ..Default::default()
@@ -305,10 +305,10 @@ pub fn quantize(model: &ModelProto, opts: &QuantOptions) -> Result<ModelProto, S
         new_inits.push(f32_tensor(&s, &[], &[act_scale]));
         new_inits.push(int_tensor(&z, adt, &[], &[act_zp]));
         nodes.push(NodeProto {
-            name: format!("{name}_quantize"),
+            name: format!("{name}_quantize").into(),
             op_type: "QuantizeLinear".into(),
-            input: vec![name.into(), s.clone(), z.clone()],
-            output: vec![format!("{name}_q")],
+            input: vec![name.into(), s.as_str().into(), z.as_str().into()],
+            output: vec![format!("{name}_q").into()],
             ..Default::default()
         });
         nodes.push(dq_node(
@@ -327,7 +327,7 @@ pub fn quantize(model: &ModelProto, opts: &QuantOptions) -> Result<ModelProto, S
         let mut n = node.clone();
         let compute = matches!(n.op_type.as_str(), "Conv" | "ConvTranspose" | "Gemm" | "MatMul");
         if compute {
-            let wname = n.input.get(1).cloned().unwrap_or_default();
+            let wname = n.input.get(1).map(String::from).unwrap_or_default();
             if let Some(w) = inits.get(&wname).filter(|_| float_values.contains(&wname)) {
                 let values = f32_values(w).ok_or_else(|| format!("weight `{wname}` has no float32 payload"))?;
                 let (ch, red) = weight_axes(&n, w.dims.len());
@@ -342,10 +342,10 @@ pub fn quantize(model: &ModelProto, opts: &QuantOptions) -> Result<ModelProto, S
                 new_inits.push(f32_tensor(&sn, &qw.scale_dims, &qw.scales));
                 new_inits.push(int_tensor(&zn, qw.dtype, &qw.scale_dims, &qw.zero_points));
                 nodes.push(dq_node(&format!("{wname}_dq"), [&qn, &sn, &zn], &dqn, qw.attrs.clone()));
-                n.input[1] = dqn;
+                n.input[1] = dqn.into();
                 replaced.insert(wname.clone());
                 // Bias: int32 with scale = activation scale × weight scale (per channel).
-                let bname = n.input.get(2).cloned().unwrap_or_default();
+                let bname = n.input.get(2).map(String::from).unwrap_or_default();
                 if let (Some(b), Some(cs)) = (inits.get(&bname), qw.channel_scales.as_ref()) {
                     if let Some(bv) = f32_values(b) {
                         let bs: Vec<f32> = (0..bv.len())
@@ -371,7 +371,7 @@ pub fn quantize(model: &ModelProto, opts: &QuantOptions) -> Result<ModelProto, S
                             &bdq,
                             vec![attr::int("axis", 0)],
                         ));
-                        n.input[2] = bdq;
+                        n.input[2] = bdq.into();
                         replaced.insert(bname);
                     }
                 }
@@ -380,16 +380,16 @@ pub fn quantize(model: &ModelProto, opts: &QuantOptions) -> Result<ModelProto, S
         // Consumers read the dequantized copy of each quantized activation.
         for inp in n.input.iter_mut() {
             if quantized_acts.contains(inp.as_str()) {
-                *inp = format!("{inp}_dq");
+                *inp = format!("{inp}_dq").into();
             }
         }
-        let keep_float = opts.float_ops.contains(&n.op_type) || float_ops_out(&n);
+        let keep_float = opts.float_ops.contains(n.op_type.as_str()) || float_ops_out(&n);
         let outs = n.output.clone();
         nodes.push(n);
         if !keep_float {
             for o in outs.iter().filter(|o| !o.is_empty()) {
                 qdq_for(o, &mut nodes, &mut new_inits);
-                quantized_acts.insert(o.clone());
+                quantized_acts.insert(o.to_string());
             }
         }
     }

@@ -209,7 +209,13 @@ pub fn build(loaded: &LoadedModel, g: &Graph, plan: &Plan) -> Result<(Vec<OutFil
         crate::import::expanded_main_nodes(loaded)
             .map_err(|e| SplitError(e.to_string()))?
             .into_iter()
-            .filter_map(|n| n.output.iter().find(|o| !o.is_empty()).cloned().map(|o| (o, n)))
+            .filter_map(|n| {
+                n.output
+                    .iter()
+                    .find(|o| !o.is_empty())
+                    .map(String::from)
+                    .map(|o| (o, n))
+            })
             .collect()
     };
     let inits: HashMap<&str, &TensorProto> = proto_graph.initializer.iter().map(|t| (t.name.as_str(), t)).collect();
@@ -286,7 +292,7 @@ pub fn build(loaded: &LoadedModel, g: &Graph, plan: &Plan) -> Result<(Vec<OutFil
         }
         let produced: BTreeSet<String> = proto_nodes
             .iter()
-            .flat_map(|n| n.output.iter().filter(|o| !o.is_empty()).cloned())
+            .flat_map(|n| n.output.iter().filter(|o| !o.is_empty()).map(String::from))
             .collect();
         let mut reads: Vec<String> = Vec::new();
         for n in &nodes {
@@ -423,7 +429,7 @@ pub fn build(loaded: &LoadedModel, g: &Graph, plan: &Plan) -> Result<(Vec<OutFil
         let called: BTreeSet<(String, String)> = graph
             .node
             .iter()
-            .map(|n| (n.domain.clone(), n.op_type.clone()))
+            .map(|n| (n.domain.to_string(), n.op_type.to_string()))
             .collect();
         // Inlined function bodies may use domains only the functions import.
         let mut opset_import = loaded.proto.opset_import.clone();

@@ -47,9 +47,9 @@ pub fn vi(name: &str, elem: i32, dims: &[Dm]) -> onnx::ValueInfoProto {
 pub fn node(op: &str, inputs: &[&str], outputs: &[&str]) -> onnx::NodeProto {
     onnx::NodeProto {
         op_type: op.into(),
-        name: format!("{op}_{}", outputs.first().copied().unwrap_or("")),
-        input: inputs.iter().map(|s| s.to_string()).collect(),
-        output: outputs.iter().map(|s| s.to_string()).collect(),
+        name: format!("{op}_{}", outputs.first().copied().unwrap_or("")).into(),
+        input: inputs.iter().map(|&s| s.into()).collect(),
+        output: outputs.iter().map(|&s| s.into()).collect(),
         ..Default::default()
     }
 }

@@ -1,0 +1,258 @@
+//! `ProtoStr`: a protobuf string field that shares the bytes it was decoded from.
+//!
+//! A model's names (node, op type, domain, every input and output) are most of a large
+//! graph's wire bytes. Decoding each into a `String` was one heap allocation, one copy and,
+//! on a 100k-node graph, a third of the decoded tree's memory. Decoded from the file's
+//! `Bytes` (a memory map), a `ProtoStr` is a slice of the map: a reference count, no copy.
+//! Its UTF-8 is checked once, when it is decoded, as the standard requires of `string`.
+
+use std::borrow::Borrow;
+use std::fmt;
+use std::hash::{Hash, Hasher};
+use std::ops::Deref;
+
+use bytes::{Buf, BufMut, Bytes};
+use prost::encoding::{self, DecodeContext, WireType};
+use prost::DecodeError;
+
+/// A UTF-8 string held in `Bytes`: a slice of the decoded buffer, or an owned string.
+#[derive(Clone, Default)]
+pub struct ProtoStr {
+    bytes: Bytes,
+}
+
+impl ProtoStr {
+    pub const fn new() -> Self {
+        ProtoStr { bytes: Bytes::new() }
+    }
+
+    /// `bytes` must be UTF-8 (the callers have checked it).
+    fn checked(bytes: Bytes) -> Self {
+        ProtoStr { bytes }
+    }
+
+    pub fn as_str(&self) -> &str {
+        // SAFETY: every constructor checks or inherits UTF-8: `merge` checks it, `From<&str>`
+        // and `From<String>` take a `str`, and `Clone` shares checked bytes.
+        unsafe { std::str::from_utf8_unchecked(&self.bytes) }
+    }
+
+    /// Decodes one length-delimited string field, sharing `buf`'s bytes where `buf` is
+    /// `Bytes` (zero-copy) and copying otherwise.
+    pub fn merge(wire_type: WireType, buf: &mut impl Buf, _ctx: DecodeContext) -> Result<Self, DecodeError> {
+        encoding::check_wire_type(WireType::LengthDelimited, wire_type)?;
+        let len = encoding::decode_varint(buf)?;
+        if len > buf.remaining() as u64 {
+            return Err(DecodeError::new("buffer underflow"));
+        }
+        let bytes = buf.copy_to_bytes(len as usize);
+        if std::str::from_utf8(&bytes).is_err() {
+            return Err(DecodeError::new("invalid string value: data is not UTF-8 encoded"));
+        }
+        Ok(ProtoStr::checked(bytes))
+    }
+
+    /// Writes the field unless it is empty (proto3: an empty string is the default).
+    pub fn encode(&self, tag: u32, buf: &mut impl BufMut) {
+        if !self.bytes.is_empty() {
+            self.encode_always(tag, buf);
+        }
+    }
+
+    /// Writes the field even when empty (an element of a repeated field).
+    pub fn encode_always(&self, tag: u32, buf: &mut impl BufMut) {
+        encoding::encode_key(tag, WireType::LengthDelimited, buf);
+        encoding::encode_varint(self.bytes.len() as u64, buf);
+        buf.put_slice(&self.bytes);
+    }
+
+    pub fn encoded_len(&self, tag: u32) -> usize {
+        if self.bytes.is_empty() {
+            0
+        } else {
+            self.encoded_len_always(tag)
+        }
+    }
+
+    pub fn encoded_len_always(&self, tag: u32) -> usize {
+        encoding::key_len(tag) + encoding::encoded_len_varint(self.bytes.len() as u64) + self.bytes.len()
+    }
+}
+
+impl Deref for ProtoStr {
+    type Target = str;
+    fn deref(&self) -> &str {
+        self.as_str()
+    }
+}
+
+impl AsRef<str> for ProtoStr {
+    fn as_ref(&self) -> &str {
+        self.as_str()
+    }
+}
+
+impl Borrow<str> for ProtoStr {
+    fn borrow(&self) -> &str {
+        self.as_str()
+    }
+}
+
+impl From<&str> for ProtoStr {
+    fn from(s: &str) -> Self {
+        ProtoStr::checked(Bytes::copy_from_slice(s.as_bytes()))
+    }
+}
+
+impl From<String> for ProtoStr {
+    fn from(s: String) -> Self {
+        ProtoStr::checked(Bytes::from(s))
+    }
+}
+
+impl From<&String> for ProtoStr {
+    fn from(s: &String) -> Self {
+        ProtoStr::from(s.as_str())
+    }
+}
+
+impl From<&ProtoStr> for String {
+    fn from(s: &ProtoStr) -> Self {
+        s.as_str().to_owned()
+    }
+}
+
+impl PartialEq for ProtoStr {
+    fn eq(&self, other: &Self) -> bool {
+        self.bytes == other.bytes
+    }
+}
+
+impl Eq for ProtoStr {}
+
+impl PartialEq<str> for ProtoStr {
+    fn eq(&self, other: &str) -> bool {
+        self.as_str() == other
+    }
+}
+
+impl PartialEq<&str> for ProtoStr {
+    fn eq(&self, other: &&str) -> bool {
+        self.as_str() == *other
+    }
+}
+
+impl PartialEq<String> for ProtoStr {
+    fn eq(&self, other: &String) -> bool {
+        self.as_str() == other
+    }
+}
+
+impl PartialEq<ProtoStr> for &str {
+    fn eq(&self, other: &ProtoStr) -> bool {
+        *self == other.as_str()
+    }
+}
+
+impl PartialEq<ProtoStr> for str {
+    fn eq(&self, other: &ProtoStr) -> bool {
+        self == other.as_str()
+    }
+}
+
+impl PartialOrd for ProtoStr {
+    fn partial_cmp(&self, other: &Self) -> Option<std::cmp::Ordering> {
+        Some(self.cmp(other))
+    }
+}
+
+impl Ord for ProtoStr {
+    fn cmp(&self, other: &Self) -> std::cmp::Ordering {
+        self.as_str().cmp(other.as_str())
+    }
+}
+
+// Hashes as `str` does, so that a map keyed by `ProtoStr` can be probed with a `&str`.
+impl Hash for ProtoStr {
+    fn hash<H: Hasher>(&self, state: &mut H) {
+        self.as_str().hash(state)
+    }
+}
+
+impl fmt::Debug for ProtoStr {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        fmt::Debug::fmt(self.as_str(), f)
+    }
+}
+
+impl fmt::Display for ProtoStr {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(self.as_str())
+    }
+}
+
+/// One element of a repeated string field, pushed without slack (see `node::push_exact`).
+pub(super) fn merge_repeated(
+    wire_type: WireType,
+    v: &mut Vec<ProtoStr>,
+    buf: &mut impl Buf,
+    ctx: DecodeContext,
+) -> Result<(), DecodeError> {
+    let s = ProtoStr::merge(wire_type, buf, ctx)?;
+    super::node::push_exact(v, s);
+    Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn field(tag: u32, payload: &[u8]) -> Vec<u8> {
+        let mut wire = Vec::new();
+        encoding::encode_key(tag, WireType::LengthDelimited, &mut wire);
+        encoding::encode_varint(payload.len() as u64, &mut wire);
+        wire.extend_from_slice(payload);
+        wire
+    }
+
+    #[test]
+    fn a_string_decoded_from_bytes_shares_them() {
+        let wire = Bytes::from(field(3, b"conv_1"));
+        let mut buf = wire.clone();
+        let (tag, wt) = encoding::decode_key(&mut buf).expect("key");
+        assert_eq!(tag, 3);
+        let s = ProtoStr::merge(wt, &mut buf, DecodeContext::default()).expect("decodes");
+        assert_eq!(s, "conv_1");
+        // The same memory as the wire buffer: a slice, not a copy.
+        let at = wire.as_ptr() as usize;
+        assert!((at..at + wire.len()).contains(&(s.as_ptr() as usize)));
+        let mut out = Vec::new();
+        s.encode(3, &mut out);
+        assert_eq!(out, wire.to_vec());
+        assert_eq!(s.encoded_len(3), wire.len());
+        assert_eq!(ProtoStr::from("conv_1"), s);
+    }
+
+    /// The protobuf language guide: a `string` "must always contain UTF-8 encoded text".
+    #[test]
+    fn invalid_utf8_and_short_buffers_are_errors() {
+        let mut buf = Bytes::from(field(3, &[0x66, 0xff, 0x66])[1..].to_vec());
+        assert!(ProtoStr::merge(WireType::LengthDelimited, &mut buf, DecodeContext::default()).is_err());
+        let mut wire = field(3, b"abc");
+        wire.truncate(wire.len() - 1);
+        let mut buf = Bytes::from(wire[1..].to_vec());
+        assert!(ProtoStr::merge(WireType::LengthDelimited, &mut buf, DecodeContext::default()).is_err());
+        let mut buf = Bytes::from(vec![1u8]);
+        assert!(ProtoStr::merge(WireType::Varint, &mut buf, DecodeContext::default()).is_err());
+    }
+
+    #[test]
+    fn empty_is_not_written_but_counts_in_a_repeated_field() {
+        let mut out = Vec::new();
+        ProtoStr::new().encode(1, &mut out);
+        assert!(out.is_empty());
+        ProtoStr::new().encode_always(1, &mut out);
+        assert_eq!(out, [0x0a, 0x00]);
+        assert_eq!(ProtoStr::new().encoded_len_always(1), 2);
+    }
+}

@@ -641,8 +641,7 @@ pub fn build(i: &Inputs) -> AnalyzeReport {
 }
 
 pub fn render_json(r: &AnalyzeReport, out: &mut dyn Write) -> std::io::Result<()> {
-    serde_json::to_writer_pretty(&mut *out, r)?;
-    writeln!(out)
+    super::write_json(r, out)
 }
 
 /// A latency for tables: µs, or why it is unknown.

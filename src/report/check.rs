@@ -42,8 +42,7 @@ impl CheckReport {
 }
 
 pub fn render_json(r: &CheckReport, out: &mut dyn Write) -> std::io::Result<()> {
-    serde_json::to_writer_pretty(&mut *out, r)?;
-    writeln!(out)
+    super::write_json(r, out)
 }
 
 fn source(o: &Outcome) -> &'static str {
@@ -263,6 +262,5 @@ pub fn render_sarif(r: &CheckReport, out: &mut dyn Write) -> std::io::Result<()>
             "results": results,
         }],
     });
-    serde_json::to_writer_pretty(&mut *out, &doc)?;
-    writeln!(out)
+    super::write_json(&doc, out)
 }

@@ -8,8 +8,7 @@ use crate::cut::Side;
 use crate::gate::DiffReport as Diff;
 
 pub fn render_json(d: &Diff, out: &mut dyn Write) -> std::io::Result<()> {
-    serde_json::to_writer_pretty(&mut *out, d)?;
-    writeln!(out)
+    super::write_json(d, out)
 }
 
 fn side(x: Option<Side>) -> &'static str {

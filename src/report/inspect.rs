@@ -381,8 +381,7 @@ pub fn build<'a>(model: &'a Model, diags: &[Diagnostic], reasons: &'a UnknownRea
 }
 
 pub fn render_json(r: &InspectReport, out: &mut dyn Write) -> std::io::Result<()> {
-    serde_json::to_writer_pretty(&mut *out, r)?;
-    writeln!(out)
+    super::write_json(r, out)
 }
 
 fn shape_text(s: &Option<JsonShape>) -> String {

@@ -19,6 +19,17 @@ pub enum Format {
     Markdown,
 }
 
+/// Every JSON report: pretty-printed, one trailing newline. serde_json writes a token at a
+/// time; straight into a `dyn Write` each token was a dynamic call, which made a large model's
+/// JSON half the run. A buffer in between takes the tokens with inlined copies.
+pub fn write_json<T: serde::Serialize + ?Sized>(value: &T, out: &mut dyn std::io::Write) -> std::io::Result<()> {
+    use std::io::Write;
+    let mut buf = std::io::BufWriter::with_capacity(1 << 16, out);
+    serde_json::to_writer_pretty(&mut buf, value)?;
+    buf.write_all(b"\n")?;
+    buf.flush()
+}
+
 /// Formats a count with thousands separators, for tables.
 pub fn grouped(n: u64) -> String {
     let s = n.to_string();

@@ -22,8 +22,7 @@ use super::{grouped, pct};
 use crate::survey::SurveyReport;
 
 pub fn render_json(r: &SurveyReport, out: &mut dyn Write) -> std::io::Result<()> {
-    serde_json::to_writer_pretty(&mut *out, r)?;
-    writeln!(out)
+    super::write_json(r, out)
 }
 
 fn signed(n: i64) -> String {

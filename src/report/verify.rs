@@ -7,8 +7,7 @@ use super::term::{Paint, Tone};
 use crate::verify::{Engine, VerifyReport};
 
 pub fn render_json(r: &VerifyReport, out: &mut dyn Write) -> std::io::Result<()> {
-    serde_json::to_writer_pretty(&mut *out, r)?;
-    writeln!(out)
+    super::write_json(r, out)
 }
 
 pub fn render_table(r: &VerifyReport, out: &mut dyn Write, paint: Paint) -> std::io::Result<()> {

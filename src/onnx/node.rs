@@ -26,7 +26,7 @@ mod field {
     pub const METADATA_PROPS: u32 = 9;
 }
 
-/// `NodeProto`, field for field.
+/// `NodeProto`, field for field; the three fields analysis never reads are in `rare`.
 #[derive(Clone, PartialEq, Default, Debug)]
 pub struct NodeProto {
     pub input: Vec<ProtoStr>,
@@ -34,10 +34,25 @@ pub struct NodeProto {
     pub name: ProtoStr,
     pub op_type: ProtoStr,
     pub domain: ProtoStr,
-    pub overload: ProtoStr,
     pub attribute: Vec<AttributeProto>,
+    /// Allocated only for a node that sets one of them: almost none do, and inline they were
+    /// a third of every node's size.
+    pub rare: Option<Box<NodeRare>>,
+}
+
+/// `doc_string`, `overload` and `metadata_props` of a `NodeProto`: kept so that exported
+/// pieces carry them, never analysed.
+#[derive(Clone, PartialEq, Default, Debug)]
+pub struct NodeRare {
     pub doc_string: ProtoStr,
+    pub overload: ProtoStr,
     pub metadata_props: Vec<StringStringEntryProto>,
+}
+
+impl NodeProto {
+    fn rare_mut(&mut self) -> &mut NodeRare {
+        self.rare.get_or_insert_with(Default::default)
+    }
 }
 
 /// Below this length a repeated field grows by exactly one element (nodes have a handful of
@@ -106,10 +121,14 @@ impl prost::Message for NodeProto {
         self.name.encode(field::NAME, buf);
         self.op_type.encode(field::OP_TYPE, buf);
         encoding::message::encode_repeated(field::ATTRIBUTE, &self.attribute, buf);
-        self.doc_string.encode(field::DOC_STRING, buf);
+        if let Some(r) = &self.rare {
+            r.doc_string.encode(field::DOC_STRING, buf);
+        }
         self.domain.encode(field::DOMAIN, buf);
-        self.overload.encode(field::OVERLOAD, buf);
-        encoding::message::encode_repeated(field::METADATA_PROPS, &self.metadata_props, buf);
+        if let Some(r) = &self.rare {
+            r.overload.encode(field::OVERLOAD, buf);
+            encoding::message::encode_repeated(field::METADATA_PROPS, &r.metadata_props, buf);
+        }
     }
 
     fn merge_field(
@@ -125,10 +144,10 @@ impl prost::Message for NodeProto {
             field::NAME => ProtoStr::merge(wire_type, buf, ctx).map(|s| self.name = s),
             field::OP_TYPE => ProtoStr::merge(wire_type, buf, ctx).map(|s| self.op_type = s),
             field::ATTRIBUTE => merge_messages(wire_type, &mut self.attribute, buf, ctx),
-            field::DOC_STRING => ProtoStr::merge(wire_type, buf, ctx).map(|s| self.doc_string = s),
+            field::DOC_STRING => ProtoStr::merge(wire_type, buf, ctx).map(|s| self.rare_mut().doc_string = s),
             field::DOMAIN => ProtoStr::merge(wire_type, buf, ctx).map(|s| self.domain = s),
-            field::OVERLOAD => ProtoStr::merge(wire_type, buf, ctx).map(|s| self.overload = s),
-            field::METADATA_PROPS => merge_messages(wire_type, &mut self.metadata_props, buf, ctx),
+            field::OVERLOAD => ProtoStr::merge(wire_type, buf, ctx).map(|s| self.rare_mut().overload = s),
+            field::METADATA_PROPS => merge_messages(wire_type, &mut self.rare_mut().metadata_props, buf, ctx),
             _ => encoding::skip_field(wire_type, tag, buf, ctx),
         }
     }
@@ -146,10 +165,12 @@ impl prost::Message for NodeProto {
             + self.name.encoded_len(field::NAME)
             + self.op_type.encoded_len(field::OP_TYPE)
             + encoding::message::encoded_len_repeated(field::ATTRIBUTE, &self.attribute)
-            + self.doc_string.encoded_len(field::DOC_STRING)
             + self.domain.encoded_len(field::DOMAIN)
-            + self.overload.encoded_len(field::OVERLOAD)
-            + encoding::message::encoded_len_repeated(field::METADATA_PROPS, &self.metadata_props)
+            + self.rare.as_ref().map_or(0, |r| {
+                r.doc_string.encoded_len(field::DOC_STRING)
+                    + r.overload.encoded_len(field::OVERLOAD)
+                    + encoding::message::encoded_len_repeated(field::METADATA_PROPS, &r.metadata_props)
+            })
     }
 
     fn clear(&mut self) {
@@ -199,6 +220,35 @@ mod tests {
         assert!(n.attribute.capacity() == 1 && n.input.capacity() == 3, "no slack");
         let again = NodeProto::decode(Bytes::from(n.encode_to_vec())).expect("round trip");
         assert_eq!(again, n);
+    }
+
+    /// The fields analysis never reads still survive a decode and re-encode (field numbers 6,
+    /// 8 and 9 of the standard's `NodeProto`), and cost nothing on a node without them.
+    #[test]
+    fn rare_fields_round_trip() {
+        let mut wire = Vec::new();
+        for (tag, s) in [(4u32, "Relu"), (6, "from line 12"), (8, "fast")] {
+            encoding::encode_key(tag, WireType::LengthDelimited, &mut wire);
+            encoding::encode_varint(s.len() as u64, &mut wire);
+            wire.extend_from_slice(s.as_bytes());
+        }
+        let prop = StringStringEntryProto {
+            key: "grade".into(),
+            value: "A".into(),
+        };
+        encoding::message::encode(9, &prop, &mut wire);
+        let n = NodeProto::decode(Bytes::from(wire.clone())).expect("decodes");
+        let rare = n.rare.as_deref().expect("rare fields kept");
+        assert_eq!(
+            (rare.doc_string.as_str(), rare.overload.as_str()),
+            ("from line 12", "fast")
+        );
+        assert_eq!(rare.metadata_props, [prop]);
+        assert_eq!(n.encode_to_vec(), wire, "same bytes, same order");
+        assert_eq!(n.encoded_len(), wire.len());
+        let plain = NodeProto::decode(Bytes::from(wire[..6].to_vec())).expect("decodes");
+        assert_eq!(plain.op_type, "Relu");
+        assert!(plain.rare.is_none());
     }
 
     #[test]

@@ -23,15 +23,17 @@ m = onnx.load(sys.argv[1], load_external_data=False)
 shape_inference.infer_shapes(m)
 print(time.perf_counter() - t)'
 
-# median seconds and max RSS (KB) of a command over $runs runs
+# median seconds (wall clock to the millisecond; /usr/bin/time's own figure has 10 ms steps)
+# and max RSS (KB) of a command over $runs runs
 measure() {
-  local times=() rss=0 out tmp
+  local times=() rss=0 tmp s e r
   tmp=$(mktemp)
   for _ in $(seq "$runs"); do
-    /usr/bin/time -o "$tmp" -f "%e %M" "$@" > /dev/null 2>&1 || true
-    out=$(tail -1 "$tmp")
-    times+=("${out% *}")
-    local r="${out#* }"
+    s=$(date +%s%N)
+    /usr/bin/time -o "$tmp" -f "%M" "$@" > /dev/null 2>&1 || true
+    e=$(date +%s%N)
+    times+=("$(awk -v a="$s" -v b="$e" 'BEGIN { printf "%.3f", (b - a) / 1e9 }')")
+    r=$(tail -1 "$tmp")
     [ "$r" -gt "$rss" ] && rss=$r
   done
   rm -f "$tmp"

@@ -336,7 +336,7 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
             fact,
             declared: None,
             producer: None,
-            consumers: Vec::new(),
+            consumers: Default::default(),
             data: None,
             konst: None,
         });

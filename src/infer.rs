@@ -167,7 +167,7 @@ fn infer_graph(
     let mut texts = ReasonTexts::default();
     // (opset, op definition) per (domain, op type), keyed by the interned names' addresses:
     // looked up by text once per distinct op instead of once per node.
-    let mut defs: crate::fastmap::FastMap<(usize, usize), (i64, Option<&'static ops::OpDef>)> = Default::default();
+    let mut defs: FastMap<(usize, usize), (i64, Option<&'static ops::OpDef>)> = Default::default();
     for ni in 0..g.nodes.len() {
         // Inputs and captures, once: constants are loaded, bodies see them, folding checks them.
         let reads = g.nodes[ni].all_inputs();

@@ -284,6 +284,9 @@ impl HostTensor {
     }
 }
 
+/// The nodes reading a value, in import order.
+pub type Consumers = smallvec::SmallVec<[NodeId; 4]>;
+
 /// A value (tensor) of a graph.
 #[derive(Clone, Debug)]
 pub struct Value {
@@ -294,7 +297,9 @@ pub struct Value {
     /// Boxed, like the two below: most values have none, and a large graph has many values.
     pub declared: Option<Box<Fact>>,
     pub producer: Option<NodeId>,
-    pub consumers: Vec<NodeId>,
+    /// Inline up to four readers, the same 24 bytes as a `Vec`: most tensors have one or two,
+    /// and a large graph paid one allocation per tensor for them.
+    pub consumers: Consumers,
     pub data: Option<Box<TensorData>>,
     pub konst: Option<Box<ConstValue>>,
 }

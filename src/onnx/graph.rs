@@ -14,7 +14,7 @@ use bytes::{Buf, BufMut};
 use prost::encoding::{self, DecodeContext, WireType};
 use prost::DecodeError;
 
-use super::node::{encode_string, string_len};
+use super::text::{encode_string, string_len};
 use super::{NodeProto, SparseTensorProto, StringStringEntryProto, TensorProto, ValueInfoProto};
 
 /// Field numbers of the standard's `GraphProto`.
@@ -113,8 +113,7 @@ impl prost::Message for GraphProto {
                     });
                     self.node.reserve_exact(run);
                 }
-                self.node.push(NodeProto::default());
-                super::node::merge_into_last(wire_type, &mut self.node, buf, ctx)
+                super::node::merge_messages(wire_type, &mut self.node, buf, ctx)
             }
             field::NAME => encoding::string::merge(wire_type, &mut self.name, buf, ctx),
             field::INITIALIZER => encoding::message::merge_repeated(wire_type, &mut self.initializer, buf, ctx),

@@ -66,48 +66,22 @@ pub(super) fn push_exact<T>(v: &mut Vec<T>, item: T) {
     v.push(item);
 }
 
-fn merge_messages<M: prost::Message + Default>(
+/// One element of a repeated message field, decoded in its slot and dropped again if it fails.
+/// Nodes and attributes are a few hundred bytes each: decoded on the stack and then pushed,
+/// each was copied once more (libc's `memcpy` showed in profiles of large graphs).
+pub(super) fn merge_messages<M: prost::Message + Default>(
     wire_type: WireType,
     v: &mut Vec<M>,
     buf: &mut impl Buf,
     ctx: DecodeContext,
 ) -> Result<(), DecodeError> {
     push_exact(v, M::default());
-    merge_into_last(wire_type, v, buf, ctx)
-}
-
-/// Decodes a message into the last element of `v`, dropping that element if it fails.
-/// Nodes and attributes are a few hundred bytes each: decoded on the stack and then pushed,
-/// each was copied once more (libc's `memcpy` showed in profiles of large graphs).
-pub(super) fn merge_into_last<M: prost::Message>(
-    wire_type: WireType,
-    v: &mut Vec<M>,
-    buf: &mut impl Buf,
-    ctx: DecodeContext,
-) -> Result<(), DecodeError> {
-    let Some(last) = v.last_mut() else {
-        return Ok(());
-    };
-    let r = encoding::message::merge(wire_type, last, buf, ctx);
+    let last = v.len() - 1; // the element just pushed
+    let r = encoding::message::merge(wire_type, &mut v[last], buf, ctx);
     if r.is_err() {
         v.pop();
     }
     r
-}
-
-/// A proto3 string field: written only when not empty (shared by the hand-written messages).
-pub(super) fn encode_string(tag: u32, s: &String, buf: &mut impl BufMut) {
-    if !s.is_empty() {
-        encoding::string::encode(tag, s, buf);
-    }
-}
-
-pub(super) fn string_len(tag: u32, s: &String) -> usize {
-    if s.is_empty() {
-        0
-    } else {
-        encoding::string::encoded_len(tag, s)
-    }
 }
 
 impl prost::Message for NodeProto {

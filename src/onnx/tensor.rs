@@ -10,7 +10,7 @@ use bytes::{Buf, BufMut, Bytes, BytesMut};
 use prost::encoding::{self, DecodeContext, WireType};
 use prost::DecodeError;
 
-use super::node::{encode_string, string_len};
+use super::text::{encode_string, string_len};
 use super::StringStringEntryProto;
 
 /// `TensorProto.Segment`: a slice of a large tensor split across several protos.

@@ -6,9 +6,7 @@
 //! `Bytes` (a memory map), a `ProtoStr` is a slice of the map: a reference count, no copy.
 //! Its UTF-8 is checked once, when it is decoded, as the standard requires of `string`.
 
-use std::borrow::Borrow;
 use std::fmt;
-use std::hash::{Hash, Hasher};
 use std::ops::Deref;
 
 use bytes::{Buf, BufMut, Bytes};
@@ -24,11 +22,6 @@ pub struct ProtoStr {
 impl ProtoStr {
     pub const fn new() -> Self {
         ProtoStr { bytes: Bytes::new() }
-    }
-
-    /// `bytes` must be UTF-8 (the callers have checked it).
-    fn checked(bytes: Bytes) -> Self {
-        ProtoStr { bytes }
     }
 
     pub fn as_str(&self) -> &str {
@@ -49,34 +42,52 @@ impl ProtoStr {
         if std::str::from_utf8(&bytes).is_err() {
             return Err(DecodeError::new("invalid string value: data is not UTF-8 encoded"));
         }
-        Ok(ProtoStr::checked(bytes))
+        Ok(ProtoStr { bytes })
     }
 
     /// Writes the field unless it is empty (proto3: an empty string is the default).
     pub fn encode(&self, tag: u32, buf: &mut impl BufMut) {
-        if !self.bytes.is_empty() {
-            self.encode_always(tag, buf);
-        }
+        encode_string(tag, self, buf);
     }
 
     /// Writes the field even when empty (an element of a repeated field).
     pub fn encode_always(&self, tag: u32, buf: &mut impl BufMut) {
-        encoding::encode_key(tag, WireType::LengthDelimited, buf);
-        encoding::encode_varint(self.bytes.len() as u64, buf);
-        buf.put_slice(&self.bytes);
+        encode_field(tag, self, buf);
     }
 
     pub fn encoded_len(&self, tag: u32) -> usize {
-        if self.bytes.is_empty() {
-            0
-        } else {
-            self.encoded_len_always(tag)
-        }
+        string_len(tag, self)
     }
 
     pub fn encoded_len_always(&self, tag: u32) -> usize {
-        encoding::key_len(tag) + encoding::encoded_len_varint(self.bytes.len() as u64) + self.bytes.len()
+        field_len(tag, self)
     }
+}
+
+/// A proto3 string field, written only when not empty: `ProtoStr`s and the `String` fields of
+/// the other hand-written messages.
+pub(super) fn encode_string(tag: u32, s: &str, buf: &mut impl BufMut) {
+    if !s.is_empty() {
+        encode_field(tag, s, buf);
+    }
+}
+
+pub(super) fn string_len(tag: u32, s: &str) -> usize {
+    if s.is_empty() {
+        0
+    } else {
+        field_len(tag, s)
+    }
+}
+
+fn encode_field(tag: u32, s: &str, buf: &mut impl BufMut) {
+    encoding::encode_key(tag, WireType::LengthDelimited, buf);
+    encoding::encode_varint(s.len() as u64, buf);
+    buf.put_slice(s.as_bytes());
+}
+
+fn field_len(tag: u32, s: &str) -> usize {
+    encoding::key_len(tag) + encoding::encoded_len_varint(s.len() as u64) + s.len()
 }
 
 impl Deref for ProtoStr {
@@ -86,33 +97,17 @@ impl Deref for ProtoStr {
     }
 }
 
-impl AsRef<str> for ProtoStr {
-    fn as_ref(&self) -> &str {
-        self.as_str()
-    }
-}
-
-impl Borrow<str> for ProtoStr {
-    fn borrow(&self) -> &str {
-        self.as_str()
-    }
-}
-
 impl From<&str> for ProtoStr {
     fn from(s: &str) -> Self {
-        ProtoStr::checked(Bytes::copy_from_slice(s.as_bytes()))
+        ProtoStr {
+            bytes: Bytes::copy_from_slice(s.as_bytes()),
+        }
     }
 }
 
 impl From<String> for ProtoStr {
     fn from(s: String) -> Self {
-        ProtoStr::checked(Bytes::from(s))
-    }
-}
-
-impl From<&String> for ProtoStr {
-    fn from(s: &String) -> Self {
-        ProtoStr::from(s.as_str())
+        ProtoStr { bytes: Bytes::from(s) }
     }
 }
 
@@ -130,52 +125,9 @@ impl PartialEq for ProtoStr {
 
 impl Eq for ProtoStr {}
 
-impl PartialEq<str> for ProtoStr {
-    fn eq(&self, other: &str) -> bool {
-        self.as_str() == other
-    }
-}
-
 impl PartialEq<&str> for ProtoStr {
     fn eq(&self, other: &&str) -> bool {
         self.as_str() == *other
-    }
-}
-
-impl PartialEq<String> for ProtoStr {
-    fn eq(&self, other: &String) -> bool {
-        self.as_str() == other
-    }
-}
-
-impl PartialEq<ProtoStr> for &str {
-    fn eq(&self, other: &ProtoStr) -> bool {
-        *self == other.as_str()
-    }
-}
-
-impl PartialEq<ProtoStr> for str {
-    fn eq(&self, other: &ProtoStr) -> bool {
-        self == other.as_str()
-    }
-}
-
-impl PartialOrd for ProtoStr {
-    fn partial_cmp(&self, other: &Self) -> Option<std::cmp::Ordering> {
-        Some(self.cmp(other))
-    }
-}
-
-impl Ord for ProtoStr {
-    fn cmp(&self, other: &Self) -> std::cmp::Ordering {
-        self.as_str().cmp(other.as_str())
-    }
-}
-
-// Hashes as `str` does, so that a map keyed by `ProtoStr` can be probed with a `&str`.
-impl Hash for ProtoStr {
-    fn hash<H: Hasher>(&self, state: &mut H) {
-        self.as_str().hash(state)
     }
 }
 

@@ -25,11 +25,27 @@ fn main() -> ExitCode {
             if is_broken_pipe(&e) {
                 return ExitCode::SUCCESS;
             }
-            let chain: Vec<String> = e.chain().map(|c| c.to_string()).collect();
-            eprintln!("tilecut: error: {}", chain.join(": ").replace('\n', " "));
+            eprintln!("tilecut: error: {}", one_line(&e));
             ExitCode::from(EXIT_COULD_NOT_RUN)
         }
     }
+}
+
+/// The error and its causes on one line. A typed error that already prints its cause
+/// (`ReadError::Io` says "cannot read: {source}") would otherwise repeat it.
+fn one_line(e: &anyhow::Error) -> String {
+    let mut line = String::new();
+    for cause in e.chain() {
+        let text = cause.to_string();
+        if line.ends_with(text.as_str()) {
+            continue;
+        }
+        if !line.is_empty() {
+            line.push_str(": ");
+        }
+        line.push_str(&text);
+    }
+    line.replace('\n', " ")
 }
 
 /// Help and version print as clap renders them; a bad argument is one line, exit 2.

@@ -124,6 +124,9 @@ fn nodes_out_of_order_are_sorted() {
 #[test]
 fn missing_file() {
     assert_fails_cleanly(&["inspect", "/nonexistent/model.onnx"], "/nonexistent/model.onnx");
+    // The OS's reason is said once: the typed error already prints its cause.
+    let (_, _, err) = run(&["inspect", "/nonexistent/model.onnx"]);
+    assert_eq!(err.matches("os error").count(), 1, "cause repeated: {err}");
 }
 
 #[test]

@@ -569,3 +569,93 @@ fn pipes_and_devices_are_refused_without_blocking() {
         .expect("e")
         .contains("not a regular file"));
 }
+
+/// Ops of opsets 24–28, on the ONNX project's conformance models: shapes as the files declare
+/// them (the conformance test checks those) and costs by the README's conventions.
+#[test]
+fn newer_standard_ops_are_costed_by_the_documented_conventions() {
+    let macs_of = |model: &str| {
+        let p = conformance(model);
+        let (code, out, err) = run(&["inspect", p.to_str().expect("utf8"), "--format", "json"]);
+        assert_eq!(code, 0, "{model}: {err}");
+        let v: serde_json::Value = serde_json::from_str(&out).expect("json");
+        assert!(
+            !v["warnings"]
+                .as_array()
+                .expect("array")
+                .iter()
+                .any(|w| w["code"] == "op-unknown"),
+            "{model}: {}",
+            v["warnings"]
+        );
+        (v["model"]["macs"].clone(), v["outputs"].clone())
+    };
+    // CausalConvWithState-27: input (2, 4, 8), weight (4, 1, 4): depthwise, 2·4·8 outputs × 4
+    // taps = 256; the carried state is (2, 4, k−1 = 3).
+    let (macs, outs) = macs_of("test_causal_conv_with_state_basic.onnx");
+    assert_eq!(macs, 256);
+    assert_eq!(outs[1]["shape"], serde_json::json!([2, 4, 3]));
+    // LinearAttention-27, gated delta rule: B 2, T 4, 4 query and 4 KV heads of 32/4 = 8:
+    // 2·4·(4 + 4·2)·8·8 = 6144 (the delta rules' state–key product doubles the KV term).
+    let (macs, outs) = macs_of("test_linear_attention_gated_delta.onnx");
+    assert_eq!(macs, 6144);
+    assert_eq!(outs[1]["shape"], serde_json::json!([2, 4, 8, 8]));
+    // SwiGLU-28, TensorScatter-24, BitCast-26, the losses of opset 12/13: no contraction.
+    for m in [
+        "test_swiglu.onnx",
+        "test_tensorscatter_3d.onnx",
+        "test_bitcast_float32_to_int32.onnx",
+        "test_sce_mean.onnx",
+        "test_nllloss_NCd1_ii.onnx",
+    ] {
+        assert_eq!(macs_of(m).0, 0, "{m}");
+    }
+}
+
+/// Inputs the operator specification forbids leave the output unknown with the reason, never
+/// a guessed shape: BitCast-26 between types of different widths ("The target data type must
+/// have the same bit-width"), SwiGLU-28 on operands of different shapes ("broadcasting is not
+/// applied").
+#[test]
+fn newer_ops_refuse_what_their_specification_forbids() {
+    let d = tmp();
+    let mut cast = node("BitCast", &["x"], &["y"]);
+    cast.attribute.push(onnx::AttributeProto {
+        name: "to".into(),
+        r#type: 2, // INT
+        i: 7,      // int64: 64 bits from float's 32
+        ..Default::default()
+    });
+    let swiglu = node("SwiGLU", &["a", "b"], &["z"]);
+    let mut m = model(
+        vec![cast, swiglu],
+        vec![
+            vi("x", 1, &[Dm::N(4)]),
+            vi("a", 1, &[Dm::N(2), Dm::N(4)]),
+            vi("b", 1, &[Dm::N(2), Dm::N(1)]),
+        ],
+        // Outputs without a type: nothing to fall back on.
+        ["y", "z"]
+            .map(|n| onnx::ValueInfoProto {
+                name: n.into(),
+                ..Default::default()
+            })
+            .to_vec(),
+        vec![],
+    );
+    m.opset_import[0].version = 28;
+    let p = write(d.path(), "forbidden.onnx", &m);
+    let (code, out, err) = run(&["inspect", p.to_str().expect("utf8"), "--format", "json"]);
+    assert_eq!(code, 0, "{err}");
+    let v: serde_json::Value = serde_json::from_str(&out).expect("json");
+    let unknown = v["unknown_shapes"].as_array().expect("array");
+    let why = |t: &str| {
+        unknown
+            .iter()
+            .find(|u| u["tensor"] == t)
+            .map(|u| u["reason"].as_str().unwrap_or("").to_string())
+            .unwrap_or_default()
+    };
+    assert!(why("y").contains("widths must match"), "{unknown:?}");
+    assert!(why("z").contains("does not broadcast"), "{unknown:?}");
+}

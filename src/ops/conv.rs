@@ -305,6 +305,50 @@ pub(super) fn pool_ops(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
     (Some(0), ops)
 }
 
+/// CausalConvWithState (opset 27): a depthwise causal 1-D convolution over (batch, channels,
+/// length) with weight (channels, 1, k); the output has the input's shape and the carried
+/// state holds the last k−1 positions: (batch, channels, k−1) (ONNX operator specification,
+/// CausalConvWithState-27).
+fn causal_conv_with_state(ctx: &Ctx) -> Inferred {
+    let x = ctx.shape(0);
+    if let Some(r) = x.rank().filter(|&r| r != 3) {
+        return Err(format!("input of rank {r}, expected (batch, channels, length)"));
+    }
+    let kernel = match ctx.dims(1) {
+        Some(w) if w.len() == 3 => w[2].clone(),
+        Some(w) => return Err(format!("weight of rank {}, expected (channels, 1, k)", w.len())),
+        None => Dim::Unknown,
+    };
+    let mut outs = vec![tensor(ctx.dtype(0), x.clone())];
+    if ctx.outputs() > 1 {
+        let carried = match kernel {
+            Dim::Known(0) => return Err("kernel size 0".into()),
+            Dim::Known(k) => Dim::Known(k - 1),
+            // A past state given as input has the same shape.
+            _ => match ctx.dims(3) {
+                Some(p) if p.len() == 3 => p[2].clone(),
+                _ => Dim::Unknown,
+            },
+        };
+        let state = match x.dims() {
+            Some(d) => Shape::of(vec![d[0].clone(), d[1].clone(), carried]),
+            None => Shape::of_rank(3),
+        };
+        outs.push(tensor(ctx.dtype(0), state));
+    }
+    Ok(outs)
+}
+
+/// Depthwise: each output element is k multiply-accumulates (bias and activation are not MACs).
+fn causal_conv_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
+    let macs = (|| {
+        let y = outs.first()?.shape.element_count()?;
+        let k = ctx.shape(1).concrete()?.get(2).copied()?;
+        y.checked_mul(k)
+    })();
+    (macs, Some(0))
+}
+
 macro_rules! op {
     ($name:literal, $infer:expr, $cost:expr) => {
         OpDef {
@@ -326,6 +370,11 @@ pub static OPS: &[OpDef] = &[
     // DeformConv: X, W, offset (B, mask): Conv's output shape and MACs (plus the bilinear
     // sampling, counted as other ops by nobody's convention, so left out).
     op!("DeformConv", conv, CostRule::Custom(conv_macs)),
+    op!(
+        "CausalConvWithState",
+        causal_conv_with_state,
+        CostRule::Custom(causal_conv_macs)
+    ),
     op!("MaxUnpool", max_unpool, CostRule::Free),
     op!("MaxPool", pool, CostRule::Custom(pool_ops)),
     op!("AveragePool", pool, CostRule::Custom(pool_ops)),

@@ -6,13 +6,90 @@ use super::fold::{self, all_consts};
 use super::util::{broadcast, same_as, tensor};
 use super::{CostRule, Ctx, Inferred, OpDef};
 
-/// Bernoulli: the input's shape; the `dtype` attribute's type, else the input's.
-fn bernoulli(ctx: &Ctx) -> Inferred {
+/// Bernoulli, RandomUniformLike, RandomNormalLike: the input's shape; the `dtype`
+/// attribute's type, else the input's.
+fn like_with_dtype(ctx: &Ctx) -> Inferred {
     let dt = match ctx.opt_int("dtype") {
         Some(c) => DType::from_onnx(c as i32),
         None => ctx.dtype(0),
     };
     Ok(vec![tensor(dt, ctx.shape(0))])
+}
+
+/// BitCast (opset 26): the same bits as the `to` type, which must be as wide (ONNX operator
+/// specification, BitCast-26: "The target data type must have the same bit-width").
+fn bitcast(ctx: &Ctx) -> Inferred {
+    let to = ctx.opt_int("to").ok_or("BitCast without `to`")?;
+    let dt = DType::from_onnx(to as i32).ok_or_else(|| format!("BitCast to unknown type code {to}"))?;
+    if let Some(from) = ctx.dtype(0) {
+        if from.bits() != dt.bits() {
+            return Err(format!(
+                "BitCast from {} ({} bits) to {} ({} bits): the widths must match",
+                from.name(),
+                from.bits(),
+                dt.name(),
+                dt.bits()
+            ));
+        }
+    }
+    Ok(vec![tensor(Some(dt), ctx.shape(0))])
+}
+
+/// RandomUniform / RandomNormal: the `shape` attribute, the `dtype` attribute's type (float by
+/// default, per the operator specification).
+fn random(ctx: &Ctx) -> Inferred {
+    let dims = ctx.ints("shape").ok_or("no `shape` attribute")?;
+    let dims: Vec<u64> = dims
+        .iter()
+        .map(|&d| u64::try_from(d).map_err(|_| format!("negative dim {d} in `shape`")))
+        .collect::<Result<_, _>>()?;
+    let dt = DType::from_onnx(ctx.int("dtype", 1) as i32);
+    Ok(vec![tensor(dt, Shape::known(&dims))])
+}
+
+/// Multinomial: [batch, sample_size] of the `dtype` attribute's type (int32 by default, per the
+/// operator specification).
+fn multinomial(ctx: &Ctx) -> Inferred {
+    let batch = match ctx.dims(0) {
+        Some(d) if d.len() == 2 => d[0].clone(),
+        Some(d) => return Err(format!("input of rank {}, expected 2", d.len())),
+        None => crate::ir::Dim::Unknown,
+    };
+    let samples = u64::try_from(ctx.int("sample_size", 1)).map_err(|_| "negative sample_size")?;
+    let dt = DType::from_onnx(ctx.int("dtype", 6) as i32);
+    Ok(vec![tensor(dt, Shape::of(vec![batch, crate::ir::Dim::Known(samples)]))])
+}
+
+/// SwiGLU (opset 28): Swish(A)·B over two inputs of identical shape, no broadcasting (ONNX
+/// operator specification, SwiGLU-28).
+fn swiglu(ctx: &Ctx) -> Inferred {
+    let (a, b) = (ctx.shape(0), ctx.shape(1));
+    if let (Some(x), Some(y)) = (a.dims(), b.dims()) {
+        let clash = x.len() != y.len()
+            || x.iter()
+                .zip(y)
+                .any(|(p, q)| matches!((p.known(), q.known()), (Some(m), Some(n)) if m != n));
+        if clash {
+            return Err(format!("A {a} and B {b} differ; SwiGLU does not broadcast"));
+        }
+        // Where A's dim is not known, B's may be.
+        let merged = x
+            .iter()
+            .zip(y)
+            .map(|(p, q)| {
+                if p.known().is_some() || q.known().is_none() {
+                    p.clone()
+                } else {
+                    q.clone()
+                }
+            })
+            .collect();
+        return Ok(vec![tensor(ctx.dtype(0).or(ctx.dtype(1)), Shape::of(merged))]);
+    }
+    Ok(vec![tensor(
+        ctx.dtype(0).or(ctx.dtype(1)),
+        if a.rank().is_some() { a } else { b },
+    )])
 }
 
 fn unary(ctx: &Ctx) -> Inferred {
@@ -202,7 +279,7 @@ fn bitshift(ctx: &Ctx) -> Inferred {
 }
 
 /// Softmax-like ops are a few ops per element; exact counts vary by implementation.
-const SOFTMAX_OPS: u64 = 3;
+pub(super) const SOFTMAX_OPS: u64 = 3;
 
 macro_rules! op {
     ($name:literal, $infer:expr, $cost:expr) => {
@@ -306,7 +383,17 @@ pub static OPS: &[OpDef] = &[
     op!("Hardmax", unary, E1),
     op!("CumSum", unary, E1),
     op!("CumProd", unary, E1),
-    op!("Bernoulli", bernoulli, E1),
+    op!("Bernoulli", like_with_dtype, E1),
+    op!("BitCast", bitcast, CostRule::Free),
+    op!("RandomUniform", random, E1),
+    op!("RandomNormal", random, E1),
+    op!("RandomUniformLike", like_with_dtype, E1),
+    op!("RandomNormalLike", like_with_dtype, E1),
+    op!("Multinomial", multinomial, E1),
+    // Swish of A (scale, sigmoid, multiply) times B: four per element (common practice).
+    op!("SwiGLU", swiglu, CostRule::PerOutput(4)),
+    // A KV-cache write: data movement only.
+    op!("TensorScatter", unary, CostRule::Free),
     op!("Trilu", unary, CostRule::Free),
     op!("ReverseSequence", unary, CostRule::Free),
     op!("EyeLike", eye_like, CostRule::Free),

@@ -292,6 +292,70 @@ fn attention_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
     (macs, outs.first().and_then(|f| f.shape.element_count()).map(|y| y * 3))
 }
 
+/// LinearAttention (opset 27): query (B, T, Hq·dk), key (B, T, ·), value (B, T, Hkv·dv), an
+/// optional past state (B, Hkv, dk, dv); the output is (B, T, Hq·dv) and the present state
+/// has the past state's shape (ONNX operator specification, LinearAttention-27).
+fn linear_attention(ctx: &Ctx) -> Inferred {
+    let q = ctx.dims(0).ok_or("query rank unknown")?;
+    let v = ctx.dims(2).ok_or("value rank unknown")?;
+    if q.len() != 3 || v.len() != 3 {
+        return Err(format!(
+            "query and value of ranks {}, {}; expected 3 (packed heads)",
+            q.len(),
+            v.len()
+        ));
+    }
+    let heads = |name: &str| -> Result<u64, String> {
+        let h = ctx.opt_int(name).ok_or_else(|| format!("no `{name}`"))?;
+        u64::try_from(h)
+            .ok()
+            .filter(|&h| h > 0)
+            .ok_or_else(|| format!("`{name}` is {h}"))
+    };
+    let (qh, kvh) = (heads("q_num_heads")?, heads("kv_num_heads")?);
+    if qh % kvh != 0 {
+        return Err(format!("q_num_heads {qh} is not a multiple of kv_num_heads {kvh}"));
+    }
+    let per_head = |d: &Dim, h: u64| match d {
+        Dim::Known(x) if x % h == 0 => Ok(Dim::Known(x / h)),
+        Dim::Known(x) => Err(format!("last dim {x} does not split into {h} heads")),
+        _ => Ok(Dim::Unknown),
+    };
+    let (dk, dv) = (per_head(&q[2], qh)?, per_head(&v[2], kvh)?);
+    let y_last = dv.mul(&Dim::Known(qh)).unwrap_or(Dim::Unknown);
+    let mut outs = vec![tensor(
+        ctx.dtype(0),
+        Shape::of(vec![q[0].clone(), q[1].clone(), y_last]),
+    )];
+    if ctx.outputs() > 1 {
+        let state = match ctx.dims(3) {
+            Some(p) if ctx.has_input(3) => Shape::of(p),
+            _ => Shape::of(vec![q[0].clone(), Dim::Known(kvh), dk, dv]),
+        };
+        outs.push(tensor(ctx.dtype(3).or(ctx.dtype(0)), state));
+    }
+    Ok(outs)
+}
+
+/// Per token: each KV head updates its dk×dv state (one outer product, plus the state–key
+/// product of the delta rules, which take `beta`), and each query head reads it out (dk·dv):
+/// B·T·(Hq + Hkv·(1 + delta))·dk·dv.
+fn linear_attention_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
+    let macs = (|| {
+        let q = ctx.shape(0).concrete()?;
+        let v = ctx.shape(2).concrete()?;
+        let (qh, kvh) = (ctx.opt_int("q_num_heads")? as u64, ctx.opt_int("kv_num_heads")? as u64);
+        let (dk, dv) = (q.get(2)?.checked_div(qh)?, v.get(2)?.checked_div(kvh)?);
+        let updates = if ctx.has_input(5) { 2 } else { 1 };
+        let per_token = qh
+            .checked_add(kvh.checked_mul(updates)?)?
+            .checked_mul(dk)?
+            .checked_mul(dv)?;
+        q.first()?.checked_mul(*q.get(1)?)?.checked_mul(per_token)
+    })();
+    (macs, outs.first().and_then(|f| f.shape.element_count()))
+}
+
 /// com.microsoft Attention: input [B, S, hidden] and packed QKV weights.
 fn ms_attention(ctx: &Ctx) -> Inferred {
     let x = ctx.dims(0).ok_or("input rank unknown")?;
@@ -397,6 +461,12 @@ pub static OPS: &[OpDef] = &[
     op!("", "Gemm", gemm, CostRule::Custom(gemm_macs)),
     op!("", "Einsum", einsum, CostRule::Custom(einsum_macs)),
     op!("", "Attention", attention, CostRule::Custom(attention_macs)),
+    op!(
+        "",
+        "LinearAttention",
+        linear_attention,
+        CostRule::Custom(linear_attention_macs)
+    ),
     op!(
         CONTRIB_DOMAIN,
         "Attention",

@@ -24,6 +24,8 @@ pub(super) fn reduce(ctx: &Ctx) -> Inferred {
         if ctx.has_input(1) {
             match ctx.const_ints(1) {
                 Some(a) => Some(a),
+                // Values unknown, but an axes tensor of shape [0] is empty whatever it holds.
+                None if ctx.shape(1).concrete().is_some_and(|d| d == [0]) => Some(Vec::new()),
                 None => {
                     let shape = if keep {
                         Shape::of_rank(dims.len())
@@ -75,6 +77,33 @@ fn arg_reduce(ctx: &Ctx) -> Inferred {
     Ok(vec![tensor(Some(DType::I64), Shape::of(out))])
 }
 
+/// SoftmaxCrossEntropyLoss (opset 12) and NegativeLogLikelihoodLoss (opset 12): scores
+/// (N, C, d1…dk) and labels (N, d1…dk). The loss is a scalar under the `mean` (default) and
+/// `sum` reductions and the labels' shape under `none`; the optional second output of the
+/// softmax form (log-probabilities) has the scores' shape (ONNX operator specification).
+fn loss(ctx: &Ctx) -> Inferred {
+    let reduction = ctx.string("reduction").unwrap_or_else(|| "mean".to_string());
+    let loss_shape = match reduction.as_str() {
+        "mean" | "sum" => Shape::scalar(),
+        "none" => match (ctx.dims(1), ctx.dims(0)) {
+            (Some(t), _) => Shape::of(t),
+            // Without the labels' shape: the scores' with the class axis removed.
+            (None, Some(x)) if x.len() >= 2 => {
+                let mut d = x;
+                d.remove(1);
+                Shape::of(d)
+            }
+            _ => Shape::unknown(),
+        },
+        other => return Err(format!("unknown reduction `{other}`")),
+    };
+    let mut outs = vec![tensor(ctx.dtype(0), loss_shape)];
+    if ctx.outputs() > 1 {
+        outs.push(tensor(ctx.dtype(0), ctx.shape(0)));
+    }
+    Ok(outs)
+}
+
 macro_rules! op {
     ($name:literal, $infer:expr) => {
         OpDef {
@@ -101,4 +130,14 @@ pub static OPS: &[OpDef] = &[
     op!("ReduceSumSquare", reduce),
     op!("ArgMax", arg_reduce),
     op!("ArgMin", arg_reduce),
+    OpDef {
+        domain: "",
+        op: "SoftmaxCrossEntropyLoss",
+        family: "reduce",
+        infer: loss,
+        // Softmax, log and the pick: counted like a softmax, per score.
+        cost: CostRule::PerInput(super::elementwise::SOFTMAX_OPS),
+        fold: None,
+    },
+    op!("NegativeLogLikelihoodLoss", loss),
 ];

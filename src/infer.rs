@@ -202,13 +202,10 @@ fn infer_graph(
                 .map(|s| s.map(|v| g.values[v.index()].fact.clone()).unwrap_or_default())
                 .collect();
             let op = node.op_type.clone();
-            let num_scan = match node.attr("num_scan_inputs") {
-                Some(crate::ir::AttrValue::Int(n)) => *n as usize,
-                _ => 0,
-            };
+            let scan = (op == "Scan").then(|| ops::ScanLayout::of(node, opset));
             let mut bodies = std::mem::take(&mut g.nodes[ni].bodies);
             for b in &mut bodies {
-                seed_body_inputs(&mut b.graph, &op, &input_facts, num_scan);
+                seed_body_inputs(&mut b.graph, &op, &input_facts, scan.as_ref());
                 infer_graph(&mut b.graph, opsets, trips, &scope, diags, unknown_ops, None);
                 body_outputs.push(
                     b.graph
@@ -383,7 +380,7 @@ fn fill_from(fact: &Fact, decl: &Fact) -> Fact {
 }
 
 /// Body graph inputs: Loop (iteration, condition, carried...), Scan (state..., scan slices).
-fn seed_body_inputs(body: &mut Graph, op: &str, inputs: &[Fact], num_scan: usize) {
+fn seed_body_inputs(body: &mut Graph, op: &str, inputs: &[Fact], scan: Option<&ops::ScanLayout>) {
     let ids = body.inputs.clone();
     for (k, id) in ids.iter().enumerate() {
         let v = &mut body.values[id.index()];
@@ -400,19 +397,7 @@ fn seed_body_inputs(body: &mut Graph, op: &str, inputs: &[Fact], num_scan: usize
                 1 => Some(Fact::tensor(Some(DType::Bool), Shape::scalar())),
                 _ => inputs.get(k).cloned(),
             },
-            "Scan" => {
-                let n_state = inputs.len().saturating_sub(num_scan);
-                inputs.get(k).cloned().map(|mut f| {
-                    if k >= n_state {
-                        if let Some(d) = f.shape.0.as_mut() {
-                            if !d.is_empty() {
-                                d.remove(0);
-                            }
-                        }
-                    }
-                    f
-                })
-            }
+            "Scan" => scan.and_then(|l| l.body_input(k, inputs)),
             _ => None,
         };
         if let Some(f) = seeded {
@@ -459,10 +444,7 @@ fn node_cost(ctx: &Ctx, rule: Option<CostRule>, outs: &[Fact], bodies: &[MacsOps
                 .and_then(|c| c.as_ints().first().copied())
                 .map(|t| t.max(0) as u64)
                 .or(ctx.loop_trips),
-            "Scan" => outs
-                .iter()
-                .skip(ctx.node.inputs.len())
-                .find_map(|f| f.shape.dims().and_then(|d| d.first()).and_then(|d| d.known())),
+            "Scan" => ops::ScanLayout::of(ctx.node, ctx.opset).trips(ctx),
             _ => Some(1),
         };
         let pick = |sel: fn(&MacsOps) -> Option<u64>| -> Option<u64> {

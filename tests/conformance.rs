@@ -139,3 +139,56 @@ fn inference_reproduces_declared_output_shapes_of_conformance_models() {
     // A floor, so that a regression that turns known shapes into unknown ones fails too.
     assert!(agree >= 1800, "only {agree} outputs agree");
 }
+
+/// The model's (MACs, other ops) as `tilecut inspect` reports them; `None` for an unknown one.
+fn cost_figures(path: &Path) -> Option<(Option<u64>, Option<u64>)> {
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_tilecut"))
+        .args(["inspect", path.to_str()?, "--format", "json"])
+        .output()
+        .ok()?;
+    if !out.status.success() {
+        return None;
+    }
+    let v: serde_json::Value = serde_json::from_slice(&out.stdout).ok()?;
+    Some((v["model"]["macs"].as_u64(), v["model"]["ops"].as_u64()))
+}
+
+/// Many conformance models come in pairs: `test_X` calls a fused op, `test_X_expanded` is the
+/// same computation written as the op's function body from the ONNX operator specification.
+/// MACs are counted on the body's MatMul, Conv and Einsum nodes, so wherever both are known,
+/// the fused op's MAC convention must give the body's count. For the ops whose other-ops count
+/// is also defined as the body's (LinearAttention, CausalConvWithState, SwiGLU), that too.
+#[test]
+fn fused_ops_cost_what_their_function_bodies_cost() {
+    let (mut compared, mut failures) = (0usize, Vec::new());
+    for expanded in models() {
+        let name = expanded.file_name().and_then(|n| n.to_str()).unwrap_or("").to_string();
+        let Some(fused_name) = name.strip_suffix("_expanded.onnx") else {
+            continue;
+        };
+        let fused = expanded.with_file_name(format!("{fused_name}.onnx"));
+        let (Some(a), Some(b)) = (cost_figures(&fused), cost_figures(&expanded)) else {
+            continue;
+        };
+        if let (Some(x), Some(y)) = (a.0, b.0) {
+            compared += 1;
+            if x != y {
+                failures.push(format!("{fused_name}: {x} MACs fused, {y} in the function body"));
+            }
+        }
+        let body_counted = ["linear_attention", "causal_conv_with_state", "swiglu"];
+        if body_counted
+            .iter()
+            .any(|op| fused_name.starts_with(&format!("test_{op}")))
+            && a.1 != b.1
+        {
+            failures.push(format!(
+                "{fused_name}: other ops {:?} fused, {:?} in the body",
+                a.1, b.1
+            ));
+        }
+    }
+    println!("fused vs function body: {compared} pairs with both MAC counts known");
+    assert!(failures.is_empty(), "{failures:#?}");
+    assert!(compared >= 100, "only {compared} pairs compared");
+}

@@ -595,8 +595,9 @@ fn newer_standard_ops_are_costed_by_the_documented_conventions() {
     let (macs, outs) = macs_of("test_causal_conv_with_state_basic.onnx");
     assert_eq!(macs, 256);
     assert_eq!(outs[1]["shape"], serde_json::json!([2, 4, 3]));
-    // LinearAttention-27, gated delta rule: B 2, T 4, 4 query and 4 KV heads of 32/4 = 8:
-    // 2·4·(4 + 4·2)·8·8 = 6144 (the delta rules' state–key product doubles the KV term).
+    // LinearAttention-27, gated delta rule (the default `update_rule`): B 2, T 4, 4 query and
+    // 4 KV heads of 32/4 = 8: 2·4·(4 + 4·2)·8·8 = 6144 (the delta rules' state–key product
+    // doubles the KV term).
     let (macs, outs) = macs_of("test_linear_attention_gated_delta.onnx");
     assert_eq!(macs, 6144);
     assert_eq!(outs[1]["shape"], serde_json::json!([2, 4, 8, 8]));
@@ -658,4 +659,84 @@ fn newer_ops_refuse_what_their_specification_forbids() {
     };
     assert!(why("y").contains("widths must match"), "{unknown:?}");
     assert!(why("z").contains("does not broadcast"), "{unknown:?}");
+}
+
+/// Scan in both forms of the ONNX operator specification, costed per body run. The
+/// conformance models test_scan_sum (Scan-8: batch 1, sequence 3) and test_scan9_sum
+/// (Scan-9: sequence 3) add two floats per step: 3 runs × 2 = 6 ops, no MACs.
+#[test]
+fn scan_bodies_are_costed_once_per_step_in_both_forms() {
+    for m in ["test_scan_sum.onnx", "test_scan9_sum.onnx"] {
+        let p = conformance(m);
+        let (code, out, err) = run(&["inspect", p.to_str().expect("utf8"), "--format", "json"]);
+        assert_eq!(code, 0, "{m}: {err}");
+        let v: serde_json::Value = serde_json::from_str(&out).expect("json");
+        assert_eq!(v["model"]["ops"], 6, "{m}");
+        assert_eq!(v["model"]["macs"], 0, "{m}");
+    }
+    // Scan-11 scanning x [2, 5, 3] along axis 1 (`scan_input_axes`) and stacking the body's
+    // per-step output along axis 1 (`scan_output_axes`): the body sees a [2, 3] slice, the
+    // stacked output is [2, 5, 3], and the body's Add (6 elements) runs 5 times.
+    let d = tmp();
+    let body = onnx::GraphProto {
+        node: vec![
+            node("Add", &["s", "xi"], &["s_next"]),
+            node("Identity", &["s_next"], &["y_step"]),
+        ],
+        name: "body".into(),
+        input: vec![vi("s", 1, &[Dm::N(2), Dm::N(3)]), vi("xi", 1, &[])],
+        output: ["s_next", "y_step"]
+            .map(|n| onnx::ValueInfoProto {
+                name: n.into(),
+                ..Default::default()
+            })
+            .to_vec(),
+        ..Default::default()
+    };
+    let mut scan = node("Scan", &["s0", "x"], &["s_final", "ys"]);
+    let int = |name: &str, i: i64| onnx::AttributeProto {
+        name: name.into(),
+        r#type: 2,
+        i,
+        ..Default::default()
+    };
+    let ints = |name: &str, v: &[i64]| onnx::AttributeProto {
+        name: name.into(),
+        r#type: 7,
+        ints: v.to_vec(),
+        ..Default::default()
+    };
+    scan.attribute = vec![
+        onnx::AttributeProto {
+            name: "body".into(),
+            r#type: 5,
+            g: Some(Box::new(body)),
+            ..Default::default()
+        },
+        int("num_scan_inputs", 1),
+        ints("scan_input_axes", &[1]),
+        ints("scan_output_axes", &[1]),
+    ];
+    let mut m = model(
+        vec![scan],
+        vec![
+            vi("s0", 1, &[Dm::N(2), Dm::N(3)]),
+            vi("x", 1, &[Dm::N(2), Dm::N(5), Dm::N(3)]),
+        ],
+        ["s_final", "ys"]
+            .map(|n| onnx::ValueInfoProto {
+                name: n.into(),
+                ..Default::default()
+            })
+            .to_vec(),
+        vec![],
+    );
+    m.opset_import[0].version = 11;
+    let p = write(d.path(), "scan_axes.onnx", &m);
+    let (code, out, err) = run(&["inspect", p.to_str().expect("utf8"), "--format", "json"]);
+    assert_eq!(code, 0, "{err}");
+    let v: serde_json::Value = serde_json::from_str(&out).expect("json");
+    assert_eq!(v["outputs"][0]["shape"], serde_json::json!([2, 3]));
+    assert_eq!(v["outputs"][1]["shape"], serde_json::json!([2, 5, 3]));
+    assert_eq!(v["model"]["ops"], 30);
 }

@@ -1,7 +1,7 @@
 //! Subgraph-carrying ops: If, Loop, Scan. Their bodies are inferred by the driver first;
 //! the shape functions here combine the bodies' output facts.
 
-use crate::ir::{Dim, Fact, Shape};
+use crate::ir::{AttrValue, Dim, Fact, Node, Shape};
 
 use super::util::tensor;
 use super::{CostRule, Ctx, Inferred, OpDef};
@@ -88,39 +88,120 @@ fn loop_(ctx: &Ctx) -> Inferred {
 }
 
 /// Scan (opset 9+): state outputs keep the body's facts; scan outputs gain the scan axis.
-fn scan(ctx: &Ctx) -> Inferred {
-    if ctx.opset < 9 {
-        // Scan-8 has a batch axis and sequence_lens input; not modelled.
-        return Err("Scan before opset 9 (batched form) is not modelled".into());
+/// Where a Scan node's inputs are and how its body sees them, in both forms of the operator
+/// specification: Scan-8 reads (sequence_lens, states…, scan inputs…) with a leading batch
+/// axis on every state and [batch, sequence, …] on every scan input; Scan-9 and later read
+/// (states…, scan inputs…), each scan input scanned along its `scan_input_axes` entry.
+pub struct ScanLayout {
+    /// Index of the first state input (1 in Scan-8, after sequence_lens).
+    first: usize,
+    n_state: usize,
+    /// Per scan input, the axis scanned (Scan-8: 1, behind the batch axis).
+    axes: Vec<i64>,
+    batched: bool,
+}
+
+impl ScanLayout {
+    pub fn of(node: &Node, opset: i64) -> ScanLayout {
+        let int = |name: &str| match node.attr(name) {
+            Some(AttrValue::Int(n)) => Some(*n),
+            _ => None,
+        };
+        let n_scan = int("num_scan_inputs").unwrap_or(0).max(0) as usize;
+        let batched = opset < 9;
+        let first = usize::from(batched);
+        let n_state = node.inputs.len().saturating_sub(first + n_scan);
+        let axes = match node.attr("scan_input_axes") {
+            Some(AttrValue::Ints(a)) if !batched => a.clone(),
+            _ => Vec::new(),
+        };
+        let axes = (0..n_scan)
+            .map(|j| if batched { 1 } else { axes.get(j).copied().unwrap_or(0) })
+            .collect();
+        ScanLayout {
+            first,
+            n_state,
+            axes,
+            batched,
+        }
     }
+
+    /// The body's `k`-th input as seen from the node's input facts: a state without its batch
+    /// axis (Scan-8), a scan input without its scanned axis (and batch axis).
+    pub fn body_input(&self, k: usize, inputs: &[Fact]) -> Option<Fact> {
+        let mut f = inputs.get(self.first + k)?.clone();
+        let remove = |f: &mut Fact, axis: i64| {
+            if let Some(d) = f.shape.0.as_mut() {
+                match super::util::norm_axis(axis, d.len()) {
+                    Some(a) => {
+                        d.remove(a);
+                    }
+                    None => f.shape = Shape::unknown(),
+                }
+            }
+        };
+        if k < self.n_state {
+            if self.batched {
+                remove(&mut f, 0);
+            }
+        } else {
+            let axis = *self.axes.get(k - self.n_state)?;
+            remove(&mut f, axis);
+            if self.batched {
+                remove(&mut f, 0);
+            }
+        }
+        Some(f)
+    }
+
+    /// (batch, sequence length) of the first scan input: the batch is 1 outside Scan-8.
+    fn lengths(&self, ctx: &Ctx) -> (Dim, Dim) {
+        let Some(d) = ctx.dims(self.first + self.n_state) else {
+            return (Dim::Unknown, Dim::Unknown);
+        };
+        let seq = self
+            .axes
+            .first()
+            .and_then(|&a| super::util::norm_axis(a, d.len()))
+            .map_or(Dim::Unknown, |a| d[a].clone());
+        let batch = if self.batched {
+            d.first().cloned().unwrap_or(Dim::Unknown)
+        } else {
+            Dim::Known(1)
+        };
+        (batch, seq)
+    }
+
+    /// How many times the body runs: the sequence length, times the batch in Scan-8.
+    pub fn trips(&self, ctx: &Ctx) -> Option<u64> {
+        let (batch, seq) = self.lengths(ctx);
+        batch.known()?.checked_mul(seq.known()?)
+    }
+}
+
+fn scan(ctx: &Ctx) -> Inferred {
     let body = ctx.body_outputs.first().ok_or("Scan without body")?;
-    let n_scan_in = ctx.int("num_scan_inputs", 0).max(0) as usize;
-    let n_state = ctx.node.inputs.len().saturating_sub(n_scan_in);
-    let seq = (n_state < ctx.node.inputs.len())
-        .then(|| ctx.dims(n_state))
-        .flatten()
-        .and_then(|d| {
-            let axis = ctx
-                .ints("scan_input_axes")
-                .and_then(|a| a.first().copied())
-                .unwrap_or(0);
-            super::util::norm_axis(axis, d.len()).map(|a| d[a].clone())
-        })
-        .unwrap_or(Dim::Unknown);
+    let layout = ScanLayout::of(ctx.node, ctx.opset);
+    let (batch, seq) = layout.lengths(ctx);
     let out_axes = ctx.ints("scan_output_axes");
     let mut outs = Vec::new();
     for i in 0..ctx.outputs() {
         let f = body.get(i).cloned().unwrap_or_default();
-        if i < n_state {
-            outs.push(f);
-            continue;
-        }
         let shape = match f.shape.dims() {
             Some(d) => {
                 let mut s = d.to_vec();
-                let axis = out_axes.as_ref().and_then(|a| a.get(i - n_state).copied()).unwrap_or(0);
-                let at = super::util::norm_insert_axis(axis, s.len()).unwrap_or(0);
-                s.insert(at, seq.clone());
+                if i >= layout.n_state {
+                    let axis = out_axes
+                        .as_ref()
+                        .filter(|_| !layout.batched)
+                        .and_then(|a| a.get(i - layout.n_state).copied())
+                        .unwrap_or(0);
+                    let at = super::util::norm_insert_axis(axis, s.len()).ok_or("scan_output_axes out of range")?;
+                    s.insert(at, seq.clone());
+                }
+                if layout.batched {
+                    s.insert(0, batch.clone());
+                }
                 Shape::of(s)
             }
             None => Shape::unknown(),

@@ -339,14 +339,16 @@ fn causal_conv_with_state(ctx: &Ctx) -> Inferred {
     Ok(outs)
 }
 
-/// Depthwise: each output element is k multiply-accumulates (bias and activation are not MACs).
+/// Depthwise: each output element is k multiply-accumulates; the fused SiLU is two ops per
+/// element (a Sigmoid and a Mul, as the function body counts it); the bias is part of the Conv.
 fn causal_conv_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
-    let macs = (|| {
-        let y = outs.first()?.shape.element_count()?;
-        let k = ctx.shape(1).concrete()?.get(2).copied()?;
-        y.checked_mul(k)
-    })();
-    (macs, Some(0))
+    let y = outs.first().and_then(|f| f.shape.element_count());
+    let macs = (|| y?.checked_mul(ctx.shape(1).concrete()?.get(2).copied()?))();
+    let per = match ctx.string("activation").as_deref() {
+        Some("silu" | "swish") => 2,
+        _ => 0,
+    };
+    (macs, y.and_then(|y| y.checked_mul(per)))
 }
 
 macro_rules! op {

@@ -390,8 +390,8 @@ pub static OPS: &[OpDef] = &[
     op!("RandomUniformLike", like_with_dtype, E1),
     op!("RandomNormalLike", like_with_dtype, E1),
     op!("Multinomial", multinomial, E1),
-    // Swish of A (scale, sigmoid, multiply) times B: four per element (common practice).
-    op!("SwiGLU", swiglu, CostRule::PerOutput(4)),
+    // Swish of A, times B: two per element, as its function body (Swish, Mul) counts here.
+    op!("SwiGLU", swiglu, CostRule::PerOutput(2)),
     // A KV-cache write: data movement only.
     op!("TensorScatter", unary, CostRule::Free),
     op!("Trilu", unary, CostRule::Free),

@@ -286,7 +286,14 @@ fn attention_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
         let q = ctx.shape(0).concrete()?;
         let k = ctx.shape(1).concrete()?;
         // Scores: B·Hq·Sq·Skv·Dqk; weighted sum: B·Hq·Sq·Skv·Dv = |Y|·Skv.
-        let (q_elems, skv) = (count(&q)?, if k.len() == 4 { k[2] } else { k[1] });
+        // With a cache, the scores span the past keys too: Skv = past + new.
+        let new_kv = if k.len() == 4 { k[2] } else { k[1] };
+        let past = if ctx.has_input(4) {
+            ctx.shape(4).concrete()?.get(2).copied()?
+        } else {
+            0
+        };
+        let (q_elems, skv) = (count(&q)?, new_kv.checked_add(past)?);
         q_elems.checked_mul(skv)?.checked_add(y.checked_mul(skv)?)
     })();
     (macs, outs.first().and_then(|f| f.shape.element_count()).map(|y| y * 3))
@@ -337,23 +344,46 @@ fn linear_attention(ctx: &Ctx) -> Inferred {
     Ok(outs)
 }
 
-/// Per token: each KV head updates its dk×dv state (one outer product, plus the state–key
-/// product of the delta rules, which take `beta`), and each query head reads it out (dk·dv):
-/// B·T·(Hq + Hkv·(1 + delta))·dk·dv.
-fn linear_attention_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
-    let macs = (|| {
+/// The recurrence a LinearAttention node runs: (gated, delta). `gated_delta` by default, as
+/// the operator specification has it.
+fn linear_attention_rule(ctx: &Ctx) -> (bool, bool) {
+    match ctx.string("update_rule").as_deref().unwrap_or("gated_delta") {
+        "linear" => (false, false),
+        "gated" => (true, false),
+        "delta" => (false, true),
+        _ => (true, true),
+    }
+}
+
+/// Per token, counted as the operator's function body counts them (checked against the
+/// conformance models' expanded forms): each KV head adds k⊗v into its dk×dv state (MACs),
+/// the delta rules first take the state–key product (MACs) and subtract and scale it (2·dv
+/// ops), the gated rules decay the state (dk·dv ops, plus one exp per decay element), and each
+/// query head reads the state out (dk·dv MACs) and scales it (dv ops).
+fn linear_attention_macs(ctx: &Ctx, _outs: &[Fact]) -> MacsOps {
+    let figures = (|| {
         let q = ctx.shape(0).concrete()?;
         let v = ctx.shape(2).concrete()?;
-        let (qh, kvh) = (ctx.opt_int("q_num_heads")? as u64, ctx.opt_int("kv_num_heads")? as u64);
+        let qh = u64::try_from(ctx.opt_int("q_num_heads")?).ok()?;
+        let kvh = u64::try_from(ctx.opt_int("kv_num_heads")?).ok()?;
         let (dk, dv) = (q.get(2)?.checked_div(qh)?, v.get(2)?.checked_div(kvh)?);
-        let updates = if ctx.has_input(5) { 2 } else { 1 };
-        let per_token = qh
-            .checked_add(kvh.checked_mul(updates)?)?
-            .checked_mul(dk)?
-            .checked_mul(dv)?;
-        q.first()?.checked_mul(*q.get(1)?)?.checked_mul(per_token)
+        let tokens = q.first()?.checked_mul(*q.get(1)?)?;
+        let (gated, delta) = linear_attention_rule(ctx);
+        let state = kvh.checked_mul(dk)?.checked_mul(dv)?;
+        let macs = state
+            .checked_mul(if delta { 2 } else { 1 })?
+            .checked_add(qh.checked_mul(dk)?.checked_mul(dv)?)?;
+        let mut ops = state.checked_add(qh.checked_mul(dv)?)?;
+        if delta {
+            ops = ops.checked_add(kvh.checked_mul(dv)?.checked_mul(2)?)?;
+        }
+        if gated {
+            let decay = ctx.shape(4).concrete()?.last().copied()?;
+            ops = ops.checked_add(state)?.checked_add(decay)?;
+        }
+        Some((tokens.checked_mul(macs)?, tokens.checked_mul(ops)?))
     })();
-    (macs, outs.first().and_then(|f| f.shape.element_count()))
+    (figures.map(|f| f.0), figures.map(|f| f.1))
 }
 
 /// com.microsoft Attention: input [B, S, hidden] and packed QKV weights.

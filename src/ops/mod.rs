@@ -6,8 +6,9 @@
 //! - MACs count multiply-accumulates of the op's main contraction: Conv =
 //!   N·Cout·∏out_spatial·(Cin/group)·∏kernel; ConvTranspose = N·Cin·∏in_spatial·(Cout/group)·∏kernel;
 //!   MatMul = ∏batch·M·N·K; Gemm = M·N·K; Einsum = ∏ of every distinct index size; LSTM/GRU/RNN =
-//!   seq·dirs·batch·gates·hidden·(input+hidden); Attention = B·H·Sq·Skv·(Dqk+Dv);
-//!   LinearAttention = B·T·(Hq + Hkv·u)·dk·dv (u = 2 with `beta`, else 1);
+//!   seq·dirs·batch·gates·hidden·(input+hidden); Attention = B·H·Sq·Skv·(Dqk+Dv) with Skv
+//!   counting a KV cache's past keys; LinearAttention = B·T·(Hq + Hkv·u)·dk·dv (u = 2 for the
+//!   delta rules, else 1);
 //!   CausalConvWithState = B·C·L·k.
 //!   Bias additions, activation functions and scaling are not MACs.
 //! - `ops` counts other arithmetic: element-wise ops one per output element (times the
@@ -30,6 +31,7 @@ mod signal;
 mod util;
 mod vision;
 
+pub use control_flow::ScanLayout;
 pub use util::broadcast;
 
 use crate::ir::{ConstValue, Fact, Node};

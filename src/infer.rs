@@ -165,6 +165,8 @@ fn infer_graph(
         }
     }
     let mut texts = ReasonTexts::default();
+    // Outputs of known ops that only the file's declaration sized: (count, first tensor, its node).
+    let mut from_file: (usize, Option<(String, String)>) = (0, None);
     // (opset, op definition) per (domain, op type), keyed by the interned names' addresses:
     // looked up by text once per distinct op instead of once per node.
     let mut defs: FastMap<(usize, usize), (i64, Option<&'static ops::OpDef>)> = Default::default();
@@ -254,7 +256,51 @@ fn infer_graph(
             is_const_kind(g.values[v.index()].kind)
                 || g.values[v.index()].konst.as_deref().is_some_and(ConstValue::is_numeric)
         });
-        let cost = node_cost(&ctx, def.map(|d| d.cost), &facts, &body_costs);
+        // Each output's fact: what inference found, completed from the file's declaration.
+        // Costs are computed on these, so a figure follows the shape the report shows.
+        let node = &g.nodes[ni];
+        let mut outputs = facts;
+        outputs.resize_with(node.outputs.len(), Fact::default);
+        // Whether inference gave each output a rank: an unranked one takes the failure as its
+        // reason, below.
+        let ranked: smallvec::SmallVec<[bool; 4]> = outputs.iter().map(|f| f.shape.rank().is_some()).collect();
+        for (slot, fact) in node.outputs.iter().zip(outputs.iter_mut()) {
+            if let Some(decl) = slot.and_then(|v| g.values[v.index()].declared.as_deref()) {
+                let fact_known = fact.dtype.is_some() && fact.shape.is_concrete();
+                if fact_known && decl.dtype.is_some() && decl.shape.rank().is_some() && !agrees(fact, decl) {
+                    diags.push(
+                        Diagnostic::new(
+                            codes::SHAPE_DISAGREES,
+                            format!(
+                                "inferred {} {} but the file declares {} {}",
+                                fact.dtype.map(|d| d.name()).unwrap_or("?"),
+                                fact.shape,
+                                decl.dtype.map(|d| d.name()).unwrap_or("?"),
+                                decl.shape
+                            ),
+                        )
+                        .at_node(&node.name)
+                        .at_tensor(slot.map_or("", |v| g.values[v.index()].name.as_str())),
+                    );
+                }
+                let filled = fill_from(fact, decl);
+                if def.is_some() && filled.shape != fact.shape {
+                    from_file.0 += 1;
+                    if from_file.1.is_none() {
+                        let tensor = slot.map_or(String::new(), |v| g.values[v.index()].name.clone());
+                        from_file.1 = Some((tensor, node.name.clone()));
+                    }
+                }
+                *fact = filled;
+            }
+        }
+        // A node whose inference failed is not costed from declared shapes: its inputs may be
+        // what made it fail, and the cost rules expect the inputs their shape rules accepted.
+        let cost = if failure.is_none() {
+            node_cost(&ctx, def.map(|d| d.cost), &outputs, &body_costs)
+        } else {
+            node_cost(&ctx, def.map(|d| d.cost), &[], &body_costs)
+        };
         // The context borrows the graph, which the outputs below are written into.
         drop(ctx);
         if let Some(f) = &failure {
@@ -267,38 +313,15 @@ fn infer_graph(
             vals.len() >= node.outputs.iter().flatten().count() && vals.iter().all(ConstValue::is_numeric)
         });
         let folded = !random && (all_const_inputs || fully_folded);
-        let mut facts = facts;
         let node = &g.nodes[ni];
-        let node_name = &node.name;
         for (k, slot) in node.outputs.iter().enumerate() {
             let Some(v) = slot else { continue };
-            let mut fact = facts.get_mut(k).map(std::mem::take).unwrap_or_default();
-            let inferred_rank = fact.shape.rank();
+            let fact = std::mem::take(&mut outputs[k]);
             let value = &mut g.values[v.index()];
-            if let Some(decl) = &value.declared {
-                let fact_known = fact.dtype.is_some() && fact.shape.is_concrete();
-                if fact_known && decl.dtype.is_some() && decl.shape.rank().is_some() && !agrees(&fact, decl) {
-                    diags.push(
-                        Diagnostic::new(
-                            codes::SHAPE_DISAGREES,
-                            format!(
-                                "inferred {} {} but the file declares {} {}",
-                                fact.dtype.map(|d| d.name()).unwrap_or("?"),
-                                fact.shape,
-                                decl.dtype.map(|d| d.name()).unwrap_or("?"),
-                                decl.shape
-                            ),
-                        )
-                        .at_node(node_name)
-                        .at_tensor(&value.name),
-                    );
-                }
-                fact = fill_from(&fact, decl);
-            }
             if let Some(r) = reasons.as_deref_mut() {
                 if !fact.shape.is_concrete() {
                     let why = match &failure {
-                        Some(f) if inferred_rank.is_none() => texts.get(f.clone()),
+                        Some(f) if !ranked[k] => texts.get(f.clone()),
                         _ => texts.for_shape(&fact.shape),
                     };
                     r.push((*v, why));
@@ -315,6 +338,18 @@ fn infer_graph(
         }
         g.nodes[ni].cost = cost;
         g.nodes[ni].folded = folded;
+    }
+    if let (n, Some((tensor, node))) = from_file {
+        diags.push(
+            Diagnostic::new(
+                codes::DECLARED_FALLBACK,
+                format!(
+                    "{n} tensor(s) that tilecut could not size take the shape the file declares; figures computed from them rest on the file"
+                ),
+            )
+            .at_node(&node)
+            .at_tensor(&tensor),
+        );
     }
     // Graph inputs the caller feeds but whose shapes are unknown, for the report.
     if let Some(r) = reasons {

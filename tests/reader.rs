@@ -740,3 +740,34 @@ fn scan_bodies_are_costed_once_per_step_in_both_forms() {
     assert_eq!(v["outputs"][1]["shape"], serde_json::json!([2, 5, 3]));
     assert_eq!(v["model"]["ops"], 30);
 }
+
+/// When inference cannot size a node's output (AffineGrid-20's `size` is a graph input here)
+/// and the file declares it, the report shows the declared shape and the node's cost follows
+/// it: never an unknown figure with nothing named to fix.
+#[test]
+fn costs_follow_an_output_shape_taken_from_the_file() {
+    let d = tmp();
+    let mut m = model(
+        vec![node("AffineGrid", &["theta", "size"], &["grid"])],
+        vec![
+            vi("theta", 1, &[Dm::N(2), Dm::N(2), Dm::N(3)]),
+            vi("size", 7, &[Dm::N(4)]),
+        ],
+        vec![vi("grid", 1, &[Dm::N(2), Dm::N(5), Dm::N(6), Dm::N(2)])],
+        vec![],
+    );
+    m.opset_import[0].version = 20;
+    let p = write(d.path(), "grid.onnx", &m);
+    let (code, out, err) = run(&["inspect", p.to_str().expect("utf8"), "--format", "json"]);
+    assert_eq!(code, 0, "{err}");
+    let v: serde_json::Value = serde_json::from_str(&out).expect("json");
+    assert_eq!(v["outputs"][0]["shape"], serde_json::json!([2, 5, 6, 2]));
+    assert!(v["warnings"]
+        .as_array()
+        .expect("array")
+        .iter()
+        .any(|w| w["code"] == "shape-from-file"));
+    // AffineGrid: 6 ops per output element by tilecut's table (README), 2·5·6·2 = 120 elements.
+    assert_eq!(v["model"]["ops"], 720);
+    assert_eq!(v["model"]["unknown_because"], serde_json::json!([]));
+}

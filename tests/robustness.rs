@@ -163,8 +163,12 @@ fn every_op_survives_random_shapes_and_attributes() {
                     ["ij,jk->ik", "...ii->...i", "a,b", ",", "->"][(rng.next_u64() % 5) as usize],
                 ));
             }
+            // Declared output shapes, random too: where inference leaves a shape unknown the
+            // declaration completes it, and the cost rules then run on it.
             for o in &outs {
-                m.graph.output(o, DType::F32, &[]);
+                let rank = (rng.next_u64() % 5) as usize;
+                let dims: Vec<DimSpec> = (0..rank).map(|_| DimSpec::Fixed((rng.next_u64() % 6) as i64)).collect();
+                m.graph.output(o, DType::F32, &dims);
             }
             let p = dir.path().join("op.onnx");
             std::fs::write(&p, m.build().encode_to_vec()).expect("write");

@@ -287,7 +287,7 @@ fn attention_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
         let k = ctx.shape(1).concrete()?;
         // Scores: B·Hq·Sq·Skv·Dqk; weighted sum: B·Hq·Sq·Skv·Dv = |Y|·Skv.
         // With a cache, the scores span the past keys too: Skv = past + new.
-        let new_kv = if k.len() == 4 { k[2] } else { k[1] };
+        let new_kv = *k.get(if k.len() == 4 { 2 } else { 1 })?;
         let past = if ctx.has_input(4) {
             ctx.shape(4).concrete()?.get(2).copied()?
         } else {

@@ -601,6 +601,13 @@ fn newer_standard_ops_are_costed_by_the_documented_conventions() {
     let (macs, outs) = macs_of("test_linear_attention_gated_delta.onnx");
     assert_eq!(macs, 6144);
     assert_eq!(outs[1]["shape"], serde_json::json!([2, 4, 8, 8]));
+    // ImageDecoder-20: [H, W, 3] for RGB, H and W sized by the image (symbols named after
+    // the node, never guessed); the file's declaration does not replace them.
+    let (_, outs) = macs_of("test_image_decoder_decode_jpeg_rgb.onnx");
+    let dims = outs[0]["shape"].as_array().expect("dims").clone();
+    assert_eq!(dims.len(), 3);
+    assert!(dims[0].is_string() && dims[1].is_string(), "{dims:?}");
+    assert_eq!(dims[2], 3);
     // SwiGLU-28, TensorScatter-24, BitCast-26, the losses of opset 12/13: no contraction.
     for m in [
         "test_swiglu.onnx",

@@ -28,6 +28,7 @@ mod reduce;
 mod sequence;
 mod shape_ops;
 mod signal;
+mod strings;
 mod util;
 mod vision;
 
@@ -124,6 +125,7 @@ static REGISTRY: &[&[OpDef]] = &[
     shape_ops::OPS,
     control_flow::OPS,
     signal::OPS,
+    strings::OPS,
     vision::OPS,
     sequence::OPS,
     contrib::OPS,

@@ -643,12 +643,7 @@ fn newer_ops_refuse_what_their_specification_forbids() {
             vi("b", 1, &[Dm::N(2), Dm::N(1)]),
         ],
         // Outputs without a type: nothing to fall back on.
-        ["y", "z"]
-            .map(|n| onnx::ValueInfoProto {
-                name: n.into(),
-                ..Default::default()
-            })
-            .to_vec(),
+        untyped(&["y", "z"]),
         vec![],
     );
     m.opset_import[0].version = 28;
@@ -692,12 +687,7 @@ fn scan_bodies_are_costed_once_per_step_in_both_forms() {
         ],
         name: "body".into(),
         input: vec![vi("s", 1, &[Dm::N(2), Dm::N(3)]), vi("xi", 1, &[])],
-        output: ["s_next", "y_step"]
-            .map(|n| onnx::ValueInfoProto {
-                name: n.into(),
-                ..Default::default()
-            })
-            .to_vec(),
+        output: untyped(&["s_next", "y_step"]),
         ..Default::default()
     };
     let mut scan = node("Scan", &["s0", "x"], &["s_final", "ys"]);
@@ -730,12 +720,7 @@ fn scan_bodies_are_costed_once_per_step_in_both_forms() {
             vi("s0", 1, &[Dm::N(2), Dm::N(3)]),
             vi("x", 1, &[Dm::N(2), Dm::N(5), Dm::N(3)]),
         ],
-        ["s_final", "ys"]
-            .map(|n| onnx::ValueInfoProto {
-                name: n.into(),
-                ..Default::default()
-            })
-            .to_vec(),
+        untyped(&["s_final", "ys"]),
         vec![],
     );
     m.opset_import[0].version = 11;

@@ -857,7 +857,7 @@ fn fold_expand(ctx: &Ctx) -> Option<Vec<ConstValue>> {
 // ---- Data-dependent and selection ops ---------------------------------------------------
 
 /// A size known only at run time, named after the node so the report can point at it.
-fn data_dependent(ctx: &Ctx, what: &str) -> Dim {
+pub(super) fn data_dependent(ctx: &Ctx, what: &str) -> Dim {
     Dim::sym(&format!("{what}@{}", ctx.node.name))
 }
 

@@ -4,13 +4,9 @@
 
 use crate::ir::{DType, Dim, Shape};
 
+use super::shape_ops::data_dependent;
 use super::util::{broadcast, tensor};
 use super::{CostRule, Ctx, Inferred, OpDef};
-
-/// A size only the data decides, named after the node (as NonZero's is).
-fn data_dependent(ctx: &Ctx, what: &str) -> Dim {
-    Dim::sym(&format!("{what}@{}", ctx.node.name))
-}
 
 /// RegexFullMatch-20: one bool per string.
 fn regex_full_match(ctx: &Ctx) -> Inferred {

@@ -44,6 +44,18 @@ pub fn vi(name: &str, elem: i32, dims: &[Dm]) -> onnx::ValueInfoProto {
     }
 }
 
+/// Value infos with a name only: graph outputs (or body ports) that declare no type, so that
+/// nothing falls back on a declaration.
+pub fn untyped(names: &[&str]) -> Vec<onnx::ValueInfoProto> {
+    names
+        .iter()
+        .map(|&n| onnx::ValueInfoProto {
+            name: n.into(),
+            ..Default::default()
+        })
+        .collect()
+}
+
 pub fn node(op: &str, inputs: &[&str], outputs: &[&str]) -> onnx::NodeProto {
     onnx::NodeProto {
         op_type: op.into(),

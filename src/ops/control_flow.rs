@@ -87,7 +87,6 @@ fn loop_(ctx: &Ctx) -> Inferred {
     Ok(outs)
 }
 
-/// Scan (opset 9+): state outputs keep the body's facts; scan outputs gain the scan axis.
 /// Where a Scan node's inputs are and how its body sees them, in both forms of the operator
 /// specification: Scan-8 reads (sequence_lens, states…, scan inputs…) with a leading batch
 /// axis on every state and [batch, sequence, …] on every scan input; Scan-9 and later read
@@ -179,6 +178,8 @@ impl ScanLayout {
     }
 }
 
+/// Scan: state outputs keep the body's facts (Scan-8 adds the batch axis back); scan outputs
+/// gain the scanned axis (at `scan_output_axes`, Scan-9 and later).
 fn scan(ctx: &Ctx) -> Inferred {
     let body = ctx.body_outputs.first().ok_or("Scan without body")?;
     let layout = ScanLayout::of(ctx.node, ctx.opset);
@@ -187,6 +188,11 @@ fn scan(ctx: &Ctx) -> Inferred {
     let mut outs = Vec::new();
     for i in 0..ctx.outputs() {
         let f = body.get(i).cloned().unwrap_or_default();
+        if i < layout.n_state && !layout.batched {
+            // A carried state may be any value type (a sequence, say): passed through whole.
+            outs.push(f);
+            continue;
+        }
         let shape = match f.shape.dims() {
             Some(d) => {
                 let mut s = d.to_vec();

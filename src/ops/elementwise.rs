@@ -1,6 +1,6 @@
 //! Element-wise ops: unary maps, broadcasting binary and variadic ops, comparisons, casts.
 
-use crate::ir::{ConstData, ConstValue, DType, Shape};
+use crate::ir::{ConstData, ConstValue, DType, Dim, Shape};
 
 use super::fold::{self, all_consts};
 use super::util::{broadcast, same_as, tensor};
@@ -53,11 +53,11 @@ fn multinomial(ctx: &Ctx) -> Inferred {
     let batch = match ctx.dims(0) {
         Some(d) if d.len() == 2 => d[0].clone(),
         Some(d) => return Err(format!("input of rank {}, expected 2", d.len())),
-        None => crate::ir::Dim::Unknown,
+        None => Dim::Unknown,
     };
     let samples = u64::try_from(ctx.int("sample_size", 1)).map_err(|_| "negative sample_size")?;
     let dt = DType::from_onnx(ctx.int("dtype", 6) as i32);
-    Ok(vec![tensor(dt, Shape::of(vec![batch, crate::ir::Dim::Known(samples)]))])
+    Ok(vec![tensor(dt, Shape::of(vec![batch, Dim::Known(samples)]))])
 }
 
 /// SwiGLU (opset 28): Swish(A)·B over two inputs of identical shape, no broadcasting (ONNX

@@ -635,15 +635,32 @@ fn newer_ops_refuse_what_their_specification_forbids() {
         ..Default::default()
     });
     let swiglu = node("SwiGLU", &["a", "b"], &["z"]);
+    // LinearAttention-27 names four update rules; another name is not guessed at.
+    let mut linear = node("LinearAttention", &["q", "q", "q"], &["o"]);
+    for (name, i) in [("q_num_heads", 2), ("kv_num_heads", 2)] {
+        linear.attribute.push(onnx::AttributeProto {
+            name: name.into(),
+            r#type: 2,
+            i,
+            ..Default::default()
+        });
+    }
+    linear.attribute.push(onnx::AttributeProto {
+        name: "update_rule".into(),
+        r#type: 3, // STRING
+        s: bytes::Bytes::from_static(b"bogus"),
+        ..Default::default()
+    });
     let mut m = model(
-        vec![cast, swiglu],
+        vec![cast, swiglu, linear],
         vec![
             vi("x", 1, &[Dm::N(4)]),
             vi("a", 1, &[Dm::N(2), Dm::N(4)]),
             vi("b", 1, &[Dm::N(2), Dm::N(1)]),
+            vi("q", 1, &[Dm::N(1), Dm::N(3), Dm::N(8)]),
         ],
         // Outputs without a type: nothing to fall back on.
-        untyped(&["y", "z"]),
+        untyped(&["y", "z", "o"]),
         vec![],
     );
     m.opset_import[0].version = 28;
@@ -661,6 +678,7 @@ fn newer_ops_refuse_what_their_specification_forbids() {
     };
     assert!(why("y").contains("widths must match"), "{unknown:?}");
     assert!(why("z").contains("does not broadcast"), "{unknown:?}");
+    assert!(why("o").contains("unknown update_rule `bogus`"), "{unknown:?}");
 }
 
 /// Scan in both forms of the ONNX operator specification, costed per body run. The

@@ -319,6 +319,7 @@ fn linear_attention(ctx: &Ctx) -> Inferred {
             .filter(|&h| h > 0)
             .ok_or_else(|| format!("`{name}` is {h}"))
     };
+    linear_attention_rule(ctx)?;
     let (qh, kvh) = (heads("q_num_heads")?, heads("kv_num_heads")?);
     if qh % kvh != 0 {
         return Err(format!("q_num_heads {qh} is not a multiple of kv_num_heads {kvh}"));
@@ -345,13 +346,14 @@ fn linear_attention(ctx: &Ctx) -> Inferred {
 }
 
 /// The recurrence a LinearAttention node runs: (gated, delta). `gated_delta` by default, as
-/// the operator specification has it.
-fn linear_attention_rule(ctx: &Ctx) -> (bool, bool) {
+/// the operator specification has it; any other name is an error, not a guess.
+fn linear_attention_rule(ctx: &Ctx) -> Result<(bool, bool), String> {
     match ctx.string("update_rule").as_deref().unwrap_or("gated_delta") {
-        "linear" => (false, false),
-        "gated" => (true, false),
-        "delta" => (false, true),
-        _ => (true, true),
+        "linear" => Ok((false, false)),
+        "gated" => Ok((true, false)),
+        "delta" => Ok((false, true)),
+        "gated_delta" => Ok((true, true)),
+        other => Err(format!("unknown update_rule `{other}`")),
     }
 }
 
@@ -368,7 +370,7 @@ fn linear_attention_macs(ctx: &Ctx, _outs: &[Fact]) -> MacsOps {
         let kvh = u64::try_from(ctx.opt_int("kv_num_heads")?).ok()?;
         let (dk, dv) = (q.get(2)?.checked_div(qh)?, v.get(2)?.checked_div(kvh)?);
         let tokens = q.first()?.checked_mul(*q.get(1)?)?;
-        let (gated, delta) = linear_attention_rule(ctx);
+        let (gated, delta) = linear_attention_rule(ctx).ok()?;
         let state = kvh.checked_mul(dk)?.checked_mul(dv)?;
         let macs = state
             .checked_mul(if delta { 2 } else { 1 })?

@@ -118,3 +118,128 @@ fn inferred_output_shapes_agree_with_onnx_shape_inference() {
     );
     assert!(compared >= 1000, "only {compared} outputs compared");
 }
+
+/// Little-endian int64 payload (`raw_data`, as the ONNX IR stores it).
+fn le(v: &[i64]) -> bytes::Bytes {
+    v.iter().flat_map(|x| x.to_le_bytes()).collect()
+}
+
+/// Evaluates every model in a folder with the `onnx` package's reference evaluator (no inputs:
+/// every value is an initializer) and prints each first output's shape and values.
+const EVALUATE: &str = r#"
+import sys, json, glob, os, onnx
+from onnx.reference import ReferenceEvaluator
+res = {}
+for p in sorted(glob.glob(os.path.join(sys.argv[1], "*.onnx"))):
+    out = ReferenceEvaluator(onnx.load(p)).run(None, {})[0]
+    res[os.path.basename(p)] = [list(out.shape), [float(x) for x in out.flatten()]]
+print(json.dumps(res))
+"#;
+
+/// Shape arithmetic folds ReduceMin/Max/Sum/Prod of constants (exporters compute TopK's `k`
+/// as `min(dim, limit)` this way). Each folded value must equal what the `onnx` package's
+/// reference evaluator computes for the same model: integers and floats, kept and dropped
+/// axes, negative axes, all axes by default, and `noop_with_empty_axes`.
+#[test]
+fn folded_reductions_agree_with_the_onnx_reference_evaluator() {
+    if !python_onnx("folded_reductions_agree_with_the_onnx_reference_evaluator") {
+        return;
+    }
+    let dir = tempfile::tempdir().expect("tmp");
+    // The data of the operator specification's ReduceMin examples, as int64 and as float.
+    let ints: Vec<i64> = vec![5, 1, 20, 2, 30, 1, 40, 2, 55, 1, 60, 2];
+    let mut written = 0;
+    for op in ["ReduceMin", "ReduceMax", "ReduceSum", "ReduceProd"] {
+        for (tag, axes) in [
+            ("all", None),
+            ("a1", Some(vec![1])),
+            ("neg", Some(vec![-1])),
+            ("a02", Some(vec![0, 2])),
+        ] {
+            for keep in [0, 1] {
+                for float in [false, true] {
+                    let data = tilecut::onnx::TensorProto {
+                        name: "data".into(),
+                        dims: vec![3, 2, 2],
+                        data_type: if float { 1 } else { 7 },
+                        raw_data: if float {
+                            ints.iter().flat_map(|&v| (v as f32).to_le_bytes()).collect()
+                        } else {
+                            le(&ints)
+                        },
+                        ..Default::default()
+                    };
+                    let mut inits = vec![data];
+                    let mut n = node(op, &["data"], &["out"]);
+                    if let Some(a) = &axes {
+                        inits.push(tilecut::onnx::TensorProto {
+                            name: "axes".into(),
+                            dims: vec![a.len() as i64],
+                            data_type: 7,
+                            raw_data: le(a),
+                            ..Default::default()
+                        });
+                        n.input.push("axes".into());
+                    }
+                    n.attribute.push(tilecut::onnx::AttributeProto {
+                        name: "keepdims".into(),
+                        r#type: 2,
+                        i: keep,
+                        ..Default::default()
+                    });
+                    let mut m = model(vec![n], vec![], untyped(&["out"]), inits);
+                    m.opset_import[0].version = 18;
+                    let file = format!("{op}_{tag}_k{keep}_{}.onnx", if float { "f" } else { "i" });
+                    write(dir.path(), &file, &m);
+                    written += 1;
+                }
+            }
+        }
+    }
+    // noop_with_empty_axes: no axes, the data passes through unchanged.
+    let mut n = node("ReduceSum", &["data"], &["out"]);
+    n.attribute.push(tilecut::onnx::AttributeProto {
+        name: "noop_with_empty_axes".into(),
+        r#type: 2,
+        i: 1,
+        ..Default::default()
+    });
+    let data = tilecut::onnx::TensorProto {
+        name: "data".into(),
+        dims: vec![3, 2, 2],
+        data_type: 7,
+        raw_data: le(&ints),
+        ..Default::default()
+    };
+    let mut m = model(vec![n], vec![], untyped(&["out"]), vec![data]);
+    m.opset_import[0].version = 18;
+    write(dir.path(), "noop.onnx", &m);
+    written += 1;
+
+    let out = python(EVALUATE, &[dir.path().to_str().expect("utf8")]);
+    let reference: serde_json::Map<String, serde_json::Value> = serde_json::from_str(&out).expect("json");
+    assert_eq!(reference.len(), written);
+    for (file, expected) in &reference {
+        let read = tilecut::read_model(&dir.path().join(file), &Default::default()).expect("reads");
+        let g = &read.model.graph;
+        let v = g.value(g.outputs[0]);
+        let k = v
+            .konst
+            .as_deref()
+            .unwrap_or_else(|| panic!("{file}: the reduction was not folded"));
+        let dims: Vec<u64> = expected[0]
+            .as_array()
+            .expect("dims")
+            .iter()
+            .map(|d| d.as_u64().expect("dim"))
+            .collect();
+        let values: Vec<f64> = expected[1]
+            .as_array()
+            .expect("values")
+            .iter()
+            .map(|x| x.as_f64().expect("number"))
+            .collect();
+        assert_eq!(k.dims, dims, "{file}: folded shape");
+        assert_eq!(k.as_floats(), values, "{file}: folded values");
+    }
+}

@@ -781,3 +781,64 @@ fn costs_follow_an_output_shape_taken_from_the_file() {
     assert_eq!(v["model"]["ops"], 720);
     assert_eq!(v["model"]["unknown_because"], serde_json::json!([]));
 }
+
+/// Exporters write TopK's `k` as `min(dim, limit)`: Shape → Gather → Unsqueeze → Concat with
+/// the limit → ReduceMin. Folded, `k` is a number and TopK's outputs are sized by it along
+/// the axis (ONNX operator specification, TopK: "the size of dimension `axis` is k").
+#[test]
+fn topk_limits_computed_by_shape_arithmetic_resolve() {
+    let d = tmp();
+    let int64 = |name: &str, dims: Vec<i64>, v: &[i64]| TensorProto {
+        name: name.into(),
+        dims,
+        data_type: 7,
+        raw_data: v.iter().flat_map(|x| x.to_le_bytes()).collect(),
+        ..Default::default()
+    };
+    let gather = {
+        let mut n = node("Gather", &["s", "one"], &["n"]);
+        n.attribute.push(onnx::AttributeProto {
+            name: "axis".into(),
+            r#type: 2,
+            i: 0,
+            ..Default::default()
+        });
+        n
+    };
+    let concat = {
+        let mut n = node("Concat", &["nu", "limit"], &["kc"]);
+        n.attribute.push(onnx::AttributeProto {
+            name: "axis".into(),
+            r#type: 2,
+            i: 0,
+            ..Default::default()
+        });
+        n
+    };
+    for (width, k) in [(64, 64), (4096, 100)] {
+        let m = model(
+            vec![
+                node("Shape", &["x"], &["s"]),
+                gather.clone(),
+                node("Unsqueeze", &["n", "zero"], &["nu"]),
+                concat.clone(),
+                node("ReduceMin", &["kc"], &["k"]),
+                node("TopK", &["x", "k"], &["vals", "idx"]),
+            ],
+            vec![vi("x", 1, &[Dm::N(2), Dm::N(width)])],
+            untyped(&["vals", "idx"]),
+            vec![
+                int64("one", vec![], &[1]),
+                int64("zero", vec![1], &[0]),
+                int64("limit", vec![1], &[100]),
+            ],
+        );
+        let p = write(d.path(), &format!("topk_{width}.onnx"), &m);
+        let (code, out, err) = run(&["inspect", p.to_str().expect("utf8"), "--format", "json"]);
+        assert_eq!(code, 0, "{err}");
+        let v: serde_json::Value = serde_json::from_str(&out).expect("json");
+        assert_eq!(v["outputs"][0]["shape"], serde_json::json!([2, k]), "width {width}");
+        assert_eq!(v["outputs"][1]["shape"], serde_json::json!([2, k]), "width {width}");
+        assert_eq!(v["outputs"][1]["dtype"], "int64");
+    }
+}

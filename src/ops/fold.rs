@@ -106,6 +106,62 @@ pub fn elementwise(
     }
 }
 
+/// Reduces a constant over the flagged axes (`keep`: reduced axes stay as size 1). Integers
+/// stay integers (None on overflow); an empty reduction is left unfolded, since the value
+/// the specification gives it depends on the op.
+pub fn reduce(
+    data: &ConstValue,
+    reduced: &[bool],
+    keep: bool,
+    int_op: fn(i64, i64) -> Option<i64>,
+    float_op: fn(f64, f64) -> f64,
+) -> Option<ConstValue> {
+    if reduced.len() != data.dims.len() || !data.is_numeric() || count(&data.dims)? == 0 {
+        return None;
+    }
+    let kept: Vec<u64> = data
+        .dims
+        .iter()
+        .zip(reduced)
+        .map(|(&d, &r)| if r { 1 } else { d })
+        .collect();
+    let n = usize::try_from(count(&kept)?).ok()?;
+    let slot = |pos: &[u64]| {
+        kept.iter()
+            .zip(pos)
+            .fold(0u64, |i, (&d, &p)| i * d + if d == 1 { 0 } else { p }) as usize
+    };
+    let dims: Vec<u64> = if keep {
+        kept.clone()
+    } else {
+        data.dims
+            .iter()
+            .zip(reduced)
+            .filter(|(_, &r)| !r)
+            .map(|(&d, _)| d)
+            .collect()
+    };
+    if matches!(data.data, ConstData::Float(_)) {
+        let v = data.as_floats();
+        let mut out: Vec<Option<f64>> = vec![None; n];
+        for (pos, x) in positions(&data.dims).zip(v) {
+            let o = &mut out[slot(&pos)];
+            *o = Some(o.map_or(x, |a| float_op(a, x)));
+        }
+        return Some(ConstValue::floats(dims, out.into_iter().collect::<Option<_>>()?));
+    }
+    let v = data.try_ints()?;
+    let mut out: Vec<Option<i64>> = vec![None; n];
+    for (pos, x) in positions(&data.dims).zip(v) {
+        let o = &mut out[slot(&pos)];
+        *o = Some(match *o {
+            Some(a) => int_op(a, x)?,
+            None => x,
+        });
+    }
+    Some(ConstValue::ints(dims, out.into_iter().collect::<Option<_>>()?))
+}
+
 /// All inputs present and constant, in slot order.
 pub fn all_consts<'a>(ctx: &Ctx<'a>) -> Option<Vec<&'a ConstValue>> {
     (0..ctx.node.inputs.len())

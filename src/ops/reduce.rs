@@ -1,7 +1,8 @@
 //! Reductions and arg-reductions: axes by attribute or (newer opsets) by input.
 
-use crate::ir::{DType, Dim, Shape};
+use crate::ir::{ConstValue, DType, Dim, Shape};
 
+use super::fold;
 use super::util::{norm_axis, tensor};
 use super::{CostRule, Ctx, Inferred, OpDef};
 
@@ -14,26 +15,26 @@ fn axes_input_since(op: &str) -> i64 {
     }
 }
 
-pub(super) fn reduce(ctx: &Ctx) -> Inferred {
-    let keep = ctx.int("keepdims", 1) != 0;
-    let dt = ctx.dtype(0);
-    let Some(dims) = ctx.dims(0) else {
-        return Ok(vec![tensor(dt, Shape::unknown())]);
-    };
+/// Which axes a reduction removes, as the operator specification reads them: by attribute
+/// before the opset that made `axes` an input, by input after; no axes means all of them
+/// unless `noop_with_empty_axes` is set.
+enum Axes {
+    /// Reduce these (a flag per input axis).
+    Reduce(Vec<bool>),
+    /// `noop_with_empty_axes` with no axes: the input passes through.
+    Identity,
+    /// The axes are an input whose values are not known.
+    Unknown,
+}
+
+fn reduced_axes(ctx: &Ctx, rank: usize) -> Result<Axes, String> {
     let axes: Option<Vec<i64>> = if ctx.opset >= axes_input_since(&ctx.node.op_type) {
         if ctx.has_input(1) {
             match ctx.const_ints(1) {
                 Some(a) => Some(a),
                 // Values unknown, but an axes tensor of shape [0] is empty whatever it holds.
                 None if ctx.shape(1).concrete().is_some_and(|d| d == [0]) => Some(Vec::new()),
-                None => {
-                    let shape = if keep {
-                        Shape::of_rank(dims.len())
-                    } else {
-                        Shape::unknown()
-                    };
-                    return Ok(vec![tensor(dt, shape)]);
-                }
+                None => return Ok(Axes::Unknown),
             }
         } else {
             None
@@ -43,13 +44,28 @@ pub(super) fn reduce(ctx: &Ctx) -> Inferred {
     };
     let axes = match axes {
         Some(a) if !a.is_empty() => a,
-        _ if ctx.int("noop_with_empty_axes", 0) != 0 => return Ok(vec![tensor(dt, Shape::of(dims))]),
-        _ => (0..dims.len() as i64).collect(),
+        _ if ctx.int("noop_with_empty_axes", 0) != 0 => return Ok(Axes::Identity),
+        _ => (0..rank as i64).collect(),
     };
-    let mut reduced = vec![false; dims.len()];
+    let mut reduced = vec![false; rank];
     for a in axes {
-        reduced[ctx.axis(a, dims.len())?] = true;
+        reduced[ctx.axis(a, rank)?] = true;
     }
+    Ok(Axes::Reduce(reduced))
+}
+
+pub(super) fn reduce(ctx: &Ctx) -> Inferred {
+    let keep = ctx.int("keepdims", 1) != 0;
+    let dt = ctx.dtype(0);
+    let Some(dims) = ctx.dims(0) else {
+        return Ok(vec![tensor(dt, Shape::unknown())]);
+    };
+    let reduced = match reduced_axes(ctx, dims.len())? {
+        Axes::Reduce(r) => r,
+        Axes::Identity => return Ok(vec![tensor(dt, Shape::of(dims))]),
+        Axes::Unknown if keep => return Ok(vec![tensor(dt, Shape::of_rank(dims.len()))]),
+        Axes::Unknown => return Ok(vec![tensor(dt, Shape::unknown())]),
+    };
     let out: Vec<Dim> = dims
         .iter()
         .zip(&reduced)
@@ -60,6 +76,26 @@ pub(super) fn reduce(ctx: &Ctx) -> Inferred {
         })
         .collect();
     Ok(vec![tensor(dt, Shape::of(out))])
+}
+
+/// Folds ReduceMin, ReduceMax, ReduceSum and ReduceProd of a small constant: exporters compute
+/// TopK's `k` as the smaller of a shape dim and a limit this way.
+fn fold_reduce(ctx: &Ctx) -> Option<Vec<ConstValue>> {
+    let data = ctx.konst(0)?;
+    let keep = ctx.int("keepdims", 1) != 0;
+    let reduced = match reduced_axes(ctx, data.dims.len()).ok()? {
+        Axes::Reduce(r) => r,
+        Axes::Identity => return Some(vec![data.clone()]),
+        Axes::Unknown => return None,
+    };
+    let (int_op, float_op): (fn(i64, i64) -> Option<i64>, fn(f64, f64) -> f64) = match ctx.node.op_type.as_str() {
+        "ReduceMin" => (|a, b| Some(a.min(b)), f64::min),
+        "ReduceMax" => (|a, b| Some(a.max(b)), f64::max),
+        "ReduceSum" => (i64::checked_add, |a, b| a + b),
+        "ReduceProd" => (i64::checked_mul, |a, b| a * b),
+        _ => return None,
+    };
+    Some(vec![fold::reduce(data, &reduced, keep, int_op, float_op)?])
 }
 
 fn arg_reduce(ctx: &Ctx) -> Inferred {
@@ -106,23 +142,26 @@ fn loss(ctx: &Ctx) -> Inferred {
 
 macro_rules! op {
     ($name:literal, $infer:expr) => {
+        op!($name, $infer, None)
+    };
+    ($name:literal, $infer:expr, $fold:expr) => {
         OpDef {
             domain: "",
             op: $name,
             family: "reduce",
             infer: $infer,
             cost: CostRule::PerInput(1),
-            fold: None,
+            fold: $fold,
         }
     };
 }
 
 pub static OPS: &[OpDef] = &[
-    op!("ReduceSum", reduce),
+    op!("ReduceSum", reduce, Some(fold_reduce)),
     op!("ReduceMean", reduce),
-    op!("ReduceMax", reduce),
-    op!("ReduceMin", reduce),
-    op!("ReduceProd", reduce),
+    op!("ReduceMax", reduce, Some(fold_reduce)),
+    op!("ReduceMin", reduce, Some(fold_reduce)),
+    op!("ReduceProd", reduce, Some(fold_reduce)),
     op!("ReduceL1", reduce),
     op!("ReduceL2", reduce),
     op!("ReduceLogSum", reduce),

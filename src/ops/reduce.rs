@@ -88,14 +88,14 @@ fn fold_reduce(ctx: &Ctx) -> Option<Vec<ConstValue>> {
         Axes::Identity => return Some(vec![data.clone()]),
         Axes::Unknown => return None,
     };
-    let (int_op, float_op): (fn(i64, i64) -> Option<i64>, fn(f64, f64) -> f64) = match ctx.node.op_type.as_str() {
+    let ops: fold::ReduceOps = match ctx.node.op_type.as_str() {
         "ReduceMin" => (|a, b| Some(a.min(b)), f64::min),
         "ReduceMax" => (|a, b| Some(a.max(b)), f64::max),
         "ReduceSum" => (i64::checked_add, |a, b| a + b),
         "ReduceProd" => (i64::checked_mul, |a, b| a * b),
         _ => return None,
     };
-    Some(vec![fold::reduce(data, &reduced, keep, int_op, float_op)?])
+    Some(vec![fold::reduce(data, &reduced, keep, ops)?])
 }
 
 fn arg_reduce(ctx: &Ctx) -> Inferred {

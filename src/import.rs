@@ -40,10 +40,13 @@ impl Overrides {
             .trim()
             .parse()
             .map_err(|_| SettingError(format!("--dim `{text}`: `{value}` is not a non-negative integer")))?;
-        if name.trim().is_empty() {
+        let name = name.trim();
+        if name.is_empty() {
             return Err(SettingError(format!("--dim `{text}`: empty name")));
         }
-        self.dims.insert(name.trim().to_string(), v);
+        // The name the file's spelling `a + 1` takes in tilecut (see `Dim::param`).
+        let name = crate::ir::compact_expression(name).unwrap_or_else(|| name.to_string());
+        self.dims.insert(name, v);
         Ok(())
     }
 
@@ -1058,18 +1061,36 @@ fn declared_fact(cx: &mut Cx, vi: &onnx::ValueInfoProto, apply_overrides: bool) 
             for (axis, d) in dims.iter_mut().enumerate() {
                 match d {
                     Dim::Sym(s) => {
-                        if let Some(&v) = cx.overrides.dims.get(&**s) {
+                        let s = s.clone();
+                        if let Some(&v) = cx.overrides.dims.get(&*s) {
                             cx.used_dims.insert(s.to_string());
                             *d = Dim::Known(v);
-                        } else {
-                            cx.diags.push(
-                                Diagnostic::new(
-                                    codes::SYMBOLIC_DIM,
-                                    format!("input dim {axis} is symbolic `{s}`; fix it with --dim {s}=N"),
-                                )
-                                .at_tensor(&vi.name),
-                            );
+                            continue;
                         }
+                        // A sum or product of symbols is known once each symbol in it is.
+                        let symbols = d.symbols();
+                        for x in &symbols {
+                            if cx.overrides.dims.contains_key(x) {
+                                cx.used_dims.insert(x.clone());
+                            }
+                        }
+                        let dims = &cx.overrides.dims;
+                        if let Ok(Some(v)) = crate::ir::evaluate(&s, &|x| dims.get(x).copied()) {
+                            *d = Dim::Known(v);
+                            continue;
+                        }
+                        let missing: Vec<String> = symbols
+                            .iter()
+                            .filter(|x| !dims.contains_key(*x))
+                            .map(|x| format!("--dim {x}=N"))
+                            .collect();
+                        cx.diags.push(
+                            Diagnostic::new(
+                                codes::SYMBOLIC_DIM,
+                                format!("input dim {axis} is symbolic `{s}`; fix it with {}", missing.join(" ")),
+                            )
+                            .at_tensor(&vi.name),
+                        );
                     }
                     Dim::Unknown => cx.diags.push(
                         Diagnostic::new(
@@ -1142,7 +1163,7 @@ fn shape_of(cx: &Cx, name: &str, s: Option<&onnx::TensorShapeProto>) -> Result<S
                     "tensor `{name}` declares dim {v}; only -1 (unknown) may be negative"
                 )))
             }
-            Some(D::DimParam(p)) if !p.is_empty() => Dim::sym(p),
+            Some(D::DimParam(p)) if !p.is_empty() => Dim::param(p),
             _ => Dim::Unknown,
         });
     }

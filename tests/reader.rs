@@ -842,3 +842,137 @@ fn topk_limits_computed_by_shape_arithmetic_resolve() {
         assert_eq!(v["outputs"][1]["dtype"], "int64");
     }
 }
+
+/// A dim_param written as a sum (`past_sequence_length + 1`, as exporters of decoders with a
+/// KV cache write it: common practice, from memory) is a sum of symbols: the advice names the
+/// symbol, and fixing the symbol, or the whole text, fixes the dim.
+#[test]
+fn dim_params_written_as_sums_are_fixed_by_their_symbols() {
+    let d = tmp();
+    let m = model(
+        vec![node("MatMul", &["x", "w"], &["y"])],
+        vec![vi(
+            "x",
+            1,
+            &[Dm::S("batch"), Dm::S("past_sequence_length + 1"), Dm::N(8)],
+        )],
+        untyped(&["y"]),
+        vec![f32_init("w", &[8, 4])],
+    );
+    let p = write(d.path(), "kv.onnx", &m);
+    let ps = p.to_str().expect("utf8");
+    let (code, out, _) = run(&["inspect", ps, "--format", "json"]);
+    assert_eq!(code, 0);
+    let v: serde_json::Value = serde_json::from_str(&out).expect("json");
+    assert_eq!(
+        v["model"]["unknown_because"],
+        serde_json::json!(["batch", "past_sequence_length"])
+    );
+    assert_eq!(
+        v["inputs"][0]["shape"],
+        serde_json::json!(["batch", "past_sequence_length+1", 8])
+    );
+    let advice: Vec<&str> = v["warnings"]
+        .as_array()
+        .expect("array")
+        .iter()
+        .filter_map(|w| w["message"].as_str())
+        .collect();
+    assert!(
+        advice
+            .iter()
+            .any(|w| w.ends_with("fix it with --dim past_sequence_length=N")),
+        "{advice:?}"
+    );
+    for fix in [
+        "past_sequence_length=6",
+        "past_sequence_length + 1=7",
+        "past_sequence_length+1=7",
+    ] {
+        let (code, out, err) = run(&["inspect", ps, "--format", "json", "--dim", "batch=2", "--dim", fix]);
+        assert_eq!(code, 0, "{err}");
+        let v: serde_json::Value = serde_json::from_str(&out).expect("json");
+        // MatMul [2, 7, 8] × [8, 4]: 2·7·8·4 MACs.
+        assert_eq!(v["model"]["macs"], 2 * 7 * 8 * 4, "--dim {fix}");
+        assert!(
+            !v["warnings"]
+                .as_array()
+                .expect("array")
+                .iter()
+                .any(|w| w["code"] == "override-unused"),
+            "--dim {fix}: {}",
+            v["warnings"]
+        );
+    }
+}
+
+/// A symbolic length through windows that step by one stays symbolic: the ONNX operator
+/// specification's output size, floor((in + pads − ((k − 1)·dilation + 1)) / stride) + 1, is
+/// `in` plus a constant when stride is 1. Each symbolic result must evaluate to what the same
+/// model gives with the length fixed; a strided or shrinking window stays unknown.
+#[test]
+fn unit_stride_windows_keep_symbolic_lengths() {
+    let d = tmp();
+    let attr_ints = |name: &str, v: &[i64]| onnx::AttributeProto {
+        name: name.into(),
+        r#type: 7,
+        ints: v.to_vec(),
+        ..Default::default()
+    };
+    let conv = |x: &str, y: &str, pads: &[i64], strides: &[i64]| {
+        let mut n = node("Conv", &[x, "w"], &[y]);
+        n.attribute.push(attr_ints("kernel_shape", &[3]));
+        n.attribute.push(attr_ints("pads", pads));
+        n.attribute.push(attr_ints("strides", strides));
+        n
+    };
+    let mut pool = node("MaxPool", &["c2"], &["p"]);
+    pool.attribute.push(attr_ints("kernel_shape", &[3]));
+    pool.attribute.push(attr_ints("pads", &[1, 1]));
+    let m = model(
+        vec![
+            conv("x", "c1", &[1, 1], &[1]),
+            conv("c1", "c2", &[2, 2], &[1]),
+            pool,
+            conv("p", "c3", &[0, 0], &[1]),
+            conv("p", "c4", &[1, 1], &[2]),
+        ],
+        vec![vi("x", 1, &[Dm::N(1), Dm::N(4), Dm::S("T")])],
+        untyped(&["c1", "c2", "p", "c3", "c4"]),
+        vec![f32_init("w", &[4, 4, 3])],
+    );
+    let p = write(d.path(), "conv1d.onnx", &m);
+    let ps = p.to_str().expect("utf8");
+    let shapes = |extra: &[&str]| -> Vec<serde_json::Value> {
+        let mut args = vec!["inspect", ps, "--format", "json"];
+        args.extend_from_slice(extra);
+        let (code, out, err) = run(&args);
+        assert_eq!(code, 0, "{err}");
+        let v: serde_json::Value = serde_json::from_str(&out).expect("json");
+        v["outputs"]
+            .as_array()
+            .expect("outputs")
+            .iter()
+            .map(|o| o["shape"][2].clone())
+            .collect()
+    };
+    let symbolic = shapes(&[]);
+    assert_eq!(
+        symbolic,
+        serde_json::json!(["T", "T+2", "T+2", null, null])
+            .as_array()
+            .expect("array")
+            .clone()
+    );
+    for t in [5u64, 10, 64] {
+        let fixed = shapes(&["--dim", &format!("T={t}")]);
+        for (i, s) in symbolic.iter().enumerate() {
+            let Some(expr) = s.as_str() else { continue };
+            let at_t = tilecut::ir::evaluate(expr, &|x| (x == "T").then_some(t)).expect("expression");
+            assert_eq!(fixed[i].as_u64(), at_t, "output {i} at T={t}");
+        }
+        // The spec's formula with T fixed, for the two windows left unknown symbolically.
+        assert_eq!(fixed[3].as_u64(), Some(t + 2 - 3 + 1));
+        assert_eq!(fixed[4].as_u64(), Some((t + 2 + 2 - 3) / 2 + 1));
+    }
+}

@@ -8,7 +8,7 @@ mod shape;
 
 pub use dtype::DType;
 pub use name::Name;
-pub use shape::{Dim, Shape};
+pub use shape::{compact_expression, evaluate, Dim, Shape};
 
 use bytes::Bytes;
 use std::collections::BTreeMap;

@@ -23,9 +23,24 @@ impl Dim {
         }
     }
 
-    /// The symbol names the dim depends on (identifiers in its expression).
+    /// A `dim_param` as the file writes it. Exporters write sums and products of symbols
+    /// with spaces (`past_sequence_length + 1`); those take the compact form tilecut builds
+    /// its own expressions in (`past_sequence_length+1`), so that the symbols inside are
+    /// known and `--dim` can fix them. Any other text is one opaque symbol, as written.
+    pub fn param(text: &str) -> Dim {
+        if text.contains(char::is_whitespace) {
+            if let Some(compact) = compact_expression(text) {
+                return Dim::Sym(Name::from(compact));
+            }
+        }
+        Dim::sym(text)
+    }
+
+    /// The symbol names the dim depends on (identifiers in its expression). A text with
+    /// spaces in it is not an expression tilecut wrote (see `param`): one symbol, whole.
     pub fn symbols(&self) -> Vec<String> {
         match self {
+            Dim::Sym(s) if s.contains(char::is_whitespace) => vec![s.to_string()],
             Dim::Sym(s) => s
                 .split(['*', '+', '(', ')'])
                 .filter(|t| !t.is_empty() && t.parse::<u64>().is_err())
@@ -79,6 +94,96 @@ impl std::fmt::Display for Dim {
             Dim::Unknown => f.write_str("?"),
         }
     }
+}
+
+/// `text` without its spaces, if it is a sum of products of identifiers and whole numbers
+/// (with parentheses) that uses at least one operator.
+pub fn compact_expression(text: &str) -> Option<String> {
+    let compact: String = text.split_whitespace().collect();
+    let operators = compact.contains(['+', '*']);
+    (operators && evaluate(&compact, &|_| Some(1)).is_ok()).then_some(compact)
+}
+
+/// The text given to `evaluate` is not a sum of products.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct NotAnExpression;
+
+/// Evaluates a sum of products over identifiers and whole numbers (`a+2*(b+1)`, no spaces).
+/// `Err` if the text is not such an expression; `Ok(None)` if `value` does not know an
+/// identifier or the arithmetic overflows.
+pub fn evaluate(text: &str, value: &dyn Fn(&str) -> Option<u64>) -> Result<Option<u64>, NotAnExpression> {
+    struct P<'a> {
+        s: &'a [u8],
+        at: usize,
+        value: &'a dyn Fn(&str) -> Option<u64>,
+    }
+    impl P<'_> {
+        fn peek(&self) -> Option<u8> {
+            self.s.get(self.at).copied()
+        }
+        fn sum(&mut self, depth: usize) -> Result<Option<u64>, NotAnExpression> {
+            let mut acc = self.product(depth)?;
+            while self.peek() == Some(b'+') {
+                self.at += 1;
+                let r = self.product(depth)?;
+                acc = acc.zip(r).and_then(|(a, b)| a.checked_add(b));
+            }
+            Ok(acc)
+        }
+        fn product(&mut self, depth: usize) -> Result<Option<u64>, NotAnExpression> {
+            let mut acc = self.factor(depth)?;
+            while self.peek() == Some(b'*') {
+                self.at += 1;
+                let r = self.factor(depth)?;
+                acc = acc.zip(r).and_then(|(a, b)| a.checked_mul(b));
+            }
+            Ok(acc)
+        }
+        fn factor(&mut self, depth: usize) -> Result<Option<u64>, NotAnExpression> {
+            // Dims come from files: a hostile one must not nest parentheses into a stack overflow.
+            if depth > 64 {
+                return Err(NotAnExpression);
+            }
+            match self.peek() {
+                Some(b'(') => {
+                    self.at += 1;
+                    let v = self.sum(depth + 1)?;
+                    if self.peek() != Some(b')') {
+                        return Err(NotAnExpression);
+                    }
+                    self.at += 1;
+                    Ok(v)
+                }
+                Some(c) if c.is_ascii_digit() => {
+                    let start = self.at;
+                    while self.peek().is_some_and(|c| c.is_ascii_digit()) {
+                        self.at += 1;
+                    }
+                    let digits = std::str::from_utf8(&self.s[start..self.at]).map_err(|_| NotAnExpression)?;
+                    Ok(digits.parse().ok())
+                }
+                Some(c) if c.is_ascii_alphabetic() || c == b'_' => {
+                    let start = self.at;
+                    while self.peek().is_some_and(|c| c.is_ascii_alphanumeric() || c == b'_') {
+                        self.at += 1;
+                    }
+                    let name = std::str::from_utf8(&self.s[start..self.at]).map_err(|_| NotAnExpression)?;
+                    Ok((self.value)(name))
+                }
+                _ => Err(NotAnExpression),
+            }
+        }
+    }
+    let mut p = P {
+        s: text.as_bytes(),
+        at: 0,
+        value,
+    };
+    let v = p.sum(0)?;
+    if p.at != text.len() {
+        return Err(NotAnExpression);
+    }
+    Ok(v)
 }
 
 /// A shape: `None` when even the rank is unknown.
@@ -178,5 +283,42 @@ impl std::fmt::Display for Shape {
                 f.write_str("]")
             }
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn file_expressions_become_compact_and_evaluate() {
+        // Exporters of decoders with a KV cache write the sequence dim this way (common
+        // practice; spelling from memory).
+        assert_eq!(
+            Dim::param("past_sequence_length + 1"),
+            Dim::sym("past_sequence_length+1")
+        );
+        assert_eq!(Dim::param("2 * (a + b)"), Dim::sym("2*(a+b)"));
+        // Not sums of products: kept whole, one symbol each.
+        for text in ["batch size", "seq - 1", "floor(T / 2)", "a + ", "(a + b"] {
+            assert_eq!(Dim::param(text), Dim::sym(text), "{text}");
+            assert_eq!(Dim::param(text).symbols(), [text.to_string()], "{text}");
+        }
+        assert_eq!(Dim::param("batch"), Dim::sym("batch"));
+        assert_eq!(Dim::param("a + 1").symbols(), ["a".to_string()]);
+        let v = |x: &str| match x {
+            "a" => Some(3),
+            "b" => Some(4),
+            _ => None,
+        };
+        assert_eq!(evaluate("2*(a+b)+1", &v), Ok(Some(15)));
+        assert_eq!(evaluate("a*c", &v), Ok(None));
+        assert_eq!(evaluate("18446744073709551615*2", &v), Ok(None), "overflow is unknown");
+        assert_eq!(evaluate("a+", &v), Err(NotAnExpression));
+        assert_eq!(evaluate("a b", &v), Err(NotAnExpression));
+        // A hostile file's parentheses end the parse, not the process.
+        let deep = format!("{}1{}", "(".repeat(100_000), ")".repeat(100_000));
+        assert_eq!(evaluate(&deep, &v), Err(NotAnExpression));
+        assert_eq!(Dim::param(&format!("{deep} + 1")).symbols().len(), 1);
     }
 }

@@ -38,13 +38,35 @@ fn spatial_out(
     auto_pad: &str,
     ceil_mode: bool,
 ) -> Result<Dim, String> {
-    let Dim::Known(i) = input else { return Ok(Dim::Unknown) };
-    let (i, k, s, d) = (*i as i64, kernel as i64, stride as i64, dilation as i64);
+    let (k, s, d) = (kernel as i64, stride as i64, dilation as i64);
     if s <= 0 || d <= 0 {
         return Err("stride and dilation must be positive".into());
     }
     let ek = (k - 1) * d + 1;
     let (pad_begin, pad_total) = pads.map(|(b, e)| (b, b + e)).unwrap_or((0, 0));
+    let i = match input {
+        Dim::Known(i) => *i as i64,
+        Dim::Unknown => return Ok(Dim::Unknown),
+        // A symbolic size stays symbolic where the window moves one step at a time: the
+        // output is the input plus what the padding adds beyond the kernel's extent (the
+        // specification's formula with stride 1; ceil_mode changes nothing then). Strided
+        // windows divide, which tilecut's dim expressions do not: unknown until fixed.
+        sym @ Dim::Sym(_) => {
+            if s != 1 {
+                return Ok(Dim::Unknown);
+            }
+            let grow = match auto_pad {
+                "SAME_UPPER" | "SAME_LOWER" => 0,
+                "VALID" => 1 - ek,
+                _ => pad_total + 1 - ek,
+            };
+            return Ok(match grow {
+                0 => sym.clone(),
+                g if g > 0 => sym.add(&Dim::Known(g as u64)).unwrap_or(Dim::Unknown),
+                _ => Dim::Unknown,
+            });
+        }
+    };
     let out = match auto_pad {
         "SAME_UPPER" | "SAME_LOWER" => ceil_div(i, s),
         "VALID" => {

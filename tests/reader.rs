@@ -976,3 +976,83 @@ fn unit_stride_windows_keep_symbolic_lengths() {
         assert_eq!(fixed[4].as_u64(), Some((t + 2 + 2 - 3) / 2 + 1));
     }
 }
+
+/// Exporter shape arithmetic over a symbolic length keeps the symbol: position ids from
+/// `Range(0, Shape(ids)[1], 1)` (ONNX specification, Range: ceil((limit − start) / delta)
+/// elements), Pad adding to a length, and Resize sizes computed as `Shape(x) × factors`.
+/// Every symbolic result must evaluate to what the same model gives with the length fixed.
+#[test]
+fn shape_arithmetic_over_a_symbolic_length_keeps_the_symbol() {
+    let d = tmp();
+    let int64 = |name: &str, dims: Vec<i64>, v: &[i64]| TensorProto {
+        name: name.into(),
+        dims,
+        data_type: 7,
+        raw_data: v.iter().flat_map(|x| x.to_le_bytes()).collect(),
+        ..Default::default()
+    };
+    let mut resize = node("Resize", &["x4", "", "", "sizes"], &["up"]);
+    resize.attribute.push(onnx::AttributeProto {
+        name: "mode".into(),
+        r#type: 3,
+        s: b"nearest".to_vec().into(),
+        ..Default::default()
+    });
+    let m = model(
+        vec![
+            node("Shape", &["ids"], &["s"]),
+            node("Gather", &["s", "one"], &["len"]),
+            node("Range", &["zero", "len", "one"], &["pos"]),
+            node("Gather", &["table", "pos"], &["pe"]),
+            node("Gather", &["table", "ids"], &["x"]),
+            node("Pad", &["x", "pads"], &["xp"]),
+            node("Unsqueeze", &["x", "axis0"], &["x4"]),
+            node("Shape", &["x4"], &["s4"]),
+            node("Mul", &["s4", "factors"], &["sizes"]),
+            resize,
+        ],
+        vec![vi("ids", 7, &[Dm::N(1), Dm::S("len")])],
+        untyped(&["pe", "xp", "up"]),
+        vec![
+            f32_init("table", &[64, 8]),
+            int64("one", vec![], &[1]),
+            int64("zero", vec![], &[0]),
+            int64("pads", vec![6], &[0, 1, 0, 0, 2, 0]),
+            int64("axis0", vec![1], &[0]),
+            int64("factors", vec![4], &[1, 1, 2, 1]),
+        ],
+    );
+    let p = write(d.path(), "positions.onnx", &m);
+    let ps = p.to_str().expect("utf8");
+    let outputs = |extra: &[&str]| -> serde_json::Value {
+        let mut args = vec!["inspect", ps, "--format", "json"];
+        args.extend_from_slice(extra);
+        let (code, out, err) = run(&args);
+        assert_eq!(code, 0, "{err}");
+        let v: serde_json::Value = serde_json::from_str(&out).expect("json");
+        v["outputs"]
+            .as_array()
+            .expect("outputs")
+            .iter()
+            .map(|o| o["shape"].clone())
+            .collect()
+    };
+    let symbolic = outputs(&[]);
+    assert_eq!(
+        symbolic,
+        serde_json::json!([["len", 8], [1, "len+3", 8], [1, 1, "len*2", 8]])
+    );
+    for n in [1u64, 7, 50] {
+        let fixed = outputs(&["--dim", &format!("len={n}")]);
+        let sym = symbolic.as_array().expect("array");
+        for (i, shape) in sym.iter().enumerate() {
+            for (k, dim) in shape.as_array().expect("dims").iter().enumerate() {
+                let want = match dim.as_str() {
+                    Some(expr) => tilecut::ir::evaluate(expr, &|x| (x == "len").then_some(n)).expect("expr"),
+                    None => dim.as_u64(),
+                };
+                assert_eq!(fixed[i][k].as_u64(), want, "output {i} dim {k} at len={n}");
+            }
+        }
+    }
+}

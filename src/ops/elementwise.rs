@@ -167,14 +167,24 @@ fn fold_with(
     Some(vec![fold::elementwise(&c, int_op, float_op, boolean)?])
 }
 
+/// Sums and products of shape values keep their symbols (`Shape` of `[batch, T]` × 2 is
+/// `[batch*2, T*2]`): the arithmetic dim expressions have.
+fn fold_symbolic(ctx: &Ctx, op: fn(&Dim, &Dim) -> Option<Dim>) -> Option<Vec<ConstValue>> {
+    let c = all_consts(ctx)?;
+    if c.len() != 2 {
+        return None;
+    }
+    Some(vec![fold::dims_elementwise(&c, op)?])
+}
+
 fn fold_add(ctx: &Ctx) -> Option<Vec<ConstValue>> {
-    fold_with(ctx, 2..=2, |a| a[0].checked_add(a[1]), |a| a[0] + a[1], false)
+    fold_with(ctx, 2..=2, |a| a[0].checked_add(a[1]), |a| a[0] + a[1], false).or_else(|| fold_symbolic(ctx, Dim::add))
 }
 fn fold_sub(ctx: &Ctx) -> Option<Vec<ConstValue>> {
     fold_with(ctx, 2..=2, |a| a[0].checked_sub(a[1]), |a| a[0] - a[1], false)
 }
 fn fold_mul(ctx: &Ctx) -> Option<Vec<ConstValue>> {
-    fold_with(ctx, 2..=2, |a| a[0].checked_mul(a[1]), |a| a[0] * a[1], false)
+    fold_with(ctx, 2..=2, |a| a[0].checked_mul(a[1]), |a| a[0] * a[1], false).or_else(|| fold_symbolic(ctx, Dim::mul))
 }
 fn fold_div(ctx: &Ctx) -> Option<Vec<ConstValue>> {
     fold_with(ctx, 2..=2, |a| fold::trunc_div(a[0], a[1]), |a| a[0] / a[1], false)

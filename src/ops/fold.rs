@@ -1,7 +1,7 @@
 //! Constant folding of small integer and float tensors, so exporter patterns such as
 //! `Shape → Gather → Unsqueeze → Concat → Reshape` resolve to concrete shapes.
 
-use crate::ir::{ConstData, ConstValue};
+use crate::ir::{ConstData, ConstValue, Dim};
 
 use super::util::count;
 use super::Ctx;
@@ -157,6 +157,42 @@ pub fn reduce(data: &ConstValue, reduced: &[bool], keep: bool, (int_op, float_op
         });
     }
     Some(ConstValue::ints(dims, out.into_iter().collect::<Option<_>>()?))
+}
+
+/// An element-wise op over shape values of which at least one is known only in part
+/// (`ConstData::Dims`), all others integers. The result is integers where every element came
+/// out known, dims otherwise.
+pub fn dims_elementwise(values: &[&ConstValue], op: fn(&Dim, &Dim) -> Option<Dim>) -> Option<ConstValue> {
+    if !values.iter().any(|v| matches!(v.data, ConstData::Dims(_)))
+        || values.iter().any(|v| matches!(v.data, ConstData::Float(_)))
+    {
+        return None;
+    }
+    let mut dims: Vec<u64> = Vec::new();
+    for v in values {
+        dims = broadcast_dims(&dims, &v.dims)?;
+    }
+    if count(&dims)? > MAX_FOLD_ELEMENTS {
+        return None;
+    }
+    let args: Vec<Vec<Dim>> = values.iter().map(|v| v.as_dims()).collect();
+    let mut out = Vec::new();
+    for pos in positions(&dims) {
+        let mut it = values.iter().zip(&args).map(|(v, a)| &a[source_index(&pos, &v.dims)]);
+        let first = it.next()?.clone();
+        out.push(it.try_fold(first, |acc, x| op(&acc, x))?);
+    }
+    let known: Option<Vec<i64>> = out
+        .iter()
+        .map(|d| d.known().and_then(|x| i64::try_from(x).ok()))
+        .collect();
+    Some(ConstValue {
+        dims,
+        data: match known {
+            Some(v) => ConstData::Int(v),
+            None => ConstData::Dims(out),
+        },
+    })
 }
 
 /// All inputs present and constant, in slot order.

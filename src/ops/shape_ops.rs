@@ -156,10 +156,27 @@ fn range_len(ctx: &Ctx) -> Option<u64> {
     Some(((l - s) / d).ceil().max(0.0) as u64)
 }
 
+/// `Range(0, n, 1)` with `n` a symbolic size (read off a `Shape`): exporters make position
+/// ids this way, and the output is `n` long whatever `n` is.
+fn range_symbolic(ctx: &Ctx) -> Option<Dim> {
+    let (s, d) = (ctx.konst(0)?.as_floats(), ctx.konst(2)?.as_floats());
+    if s.as_slice() != [0.0] || d.as_slice() != [1.0] {
+        return None;
+    }
+    match &ctx.konst(1)?.data {
+        ConstData::Dims(v) => match v.as_slice() {
+            [sym @ Dim::Sym(_)] => Some(sym.clone()),
+            _ => None,
+        },
+        _ => None,
+    }
+}
+
 fn range(ctx: &Ctx) -> Inferred {
-    let shape = match range_len(ctx) {
-        Some(n) => Shape::known(&[n]),
-        None => Shape::of_rank(1),
+    let shape = match (range_len(ctx), range_symbolic(ctx)) {
+        (Some(n), _) => Shape::known(&[n]),
+        (None, Some(sym)) => Shape::of(vec![sym]),
+        (None, None) => Shape::of_rank(1),
     };
     Ok(vec![tensor(ctx.dtype(0), shape)])
 }
@@ -721,12 +738,14 @@ fn pad(ctx: &Ctx) -> Inferred {
     }
     let mut out = d.clone();
     for (k, &a) in axes.iter().enumerate() {
-        if let Dim::Known(v) = d[a] {
-            let n = v as i64 + pads[k] + pads[k + axes.len()];
-            out[a] = Dim::Known(n.max(0) as u64);
-        } else {
-            out[a] = Dim::Unknown;
-        }
+        let total = pads[k].checked_add(pads[k + axes.len()]).ok_or("pads overflow")?;
+        out[a] = match &d[a] {
+            Dim::Known(v) => Dim::Known((*v as i64).saturating_add(total).max(0) as u64),
+            // A symbolic length grows by what is added; cropping it (negative pads) would
+            // need subtraction, which dim expressions do not have.
+            sym @ Dim::Sym(_) if total >= 0 => sym.add(&Dim::Known(total as u64)).unwrap_or(Dim::Unknown),
+            _ => Dim::Unknown,
+        };
     }
     Ok(vec![tensor(dt, Shape::of(out))])
 }
@@ -756,7 +775,7 @@ fn resize(ctx: &Ctx) -> Inferred {
     };
     let unknown = || Ok(vec![tensor(dt, Shape::of_rank(d.len()))]);
     let mut out = d.clone();
-    if let Some(sizes) = size_slot.filter(|&i| ctx.has_input(i)).map(|i| ctx.const_ints(i)) {
+    if let Some(sizes) = size_slot.filter(|&i| ctx.has_input(i)).map(|i| ctx.konst(i)) {
         let Some(sizes) = sizes.filter(|s| !s.is_empty()) else {
             return unknown();
         };
@@ -768,7 +787,9 @@ fn resize(ctx: &Ctx) -> Inferred {
             .unwrap_or_else(|| "stretch".into());
         if policy != "stretch" {
             let known: Option<Vec<u64>> = axes.iter().map(|&a| d[a].known()).collect();
-            let Some(inp) = known else { return unknown() };
+            let (Some(inp), Some(sizes)) = (known, sizes.try_ints()) else {
+                return unknown();
+            };
             let ratios = sizes.iter().zip(&inp).map(|(&s, &i)| s as f64 / i as f64);
             let r = if policy == "not_larger" {
                 ratios.fold(f64::INFINITY, f64::min)
@@ -779,8 +800,9 @@ fn resize(ctx: &Ctx) -> Inferred {
                 out[a] = Dim::Known((inp[k] as f64 * r).round() as u64);
             }
         } else {
+            // Sizes read off a symbolic shape (`Shape` × factors) stay symbolic.
             for (k, &a) in axes.iter().enumerate() {
-                out[a] = Dim::Known(sizes[k].max(0) as u64);
+                out[a] = sizes.as_dims()[k].clone();
             }
         }
         return Ok(vec![tensor(dt, Shape::of(out))]);

@@ -29,8 +29,10 @@ impl<'a> Ctx<'a> {
         self.consts.get(i).copied().flatten()
     }
 
+    /// The input's values as integers, if every one is known: a shape value with a symbolic
+    /// element is not a list of numbers (its `-1` stand-in would read as "infer" or "last").
     pub fn const_ints(&self, i: usize) -> Option<Vec<i64>> {
-        self.konst(i).map(ConstValue::as_ints)
+        self.konst(i).and_then(ConstValue::try_ints)
     }
 
     pub fn outputs(&self) -> usize {

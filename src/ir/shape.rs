@@ -72,8 +72,18 @@ impl Dim {
             (Dim::Known(1), d) | (d, Dim::Known(1)) => d.clone(),
             (Dim::Known(0), _) | (_, Dim::Known(0)) => Dim::Known(0),
             (Dim::Unknown, _) | (_, Dim::Unknown) => Dim::Unknown,
-            (a, b) => Dim::sym(&format!("{}*{}", a.wrap()?, b.wrap()?)),
+            (a, b) => Dim::expression(a, '*', b),
         })
+    }
+
+    /// `a op b` as a symbolic dim, or unknown past `MAX_EXPRESSION` characters: an expression
+    /// that doubles at each step (`x + x`, repeated by a chain of nodes) would otherwise grow
+    /// without bound on a hostile or merely odd graph.
+    fn expression(a: &Dim, op: char, b: &Dim) -> Dim {
+        match (a.wrap(), b.wrap()) {
+            (Some(x), Some(y)) if x.len() + y.len() < MAX_EXPRESSION => Dim::sym(&format!("{x}{op}{y}")),
+            _ => Dim::Unknown,
+        }
     }
 
     pub fn add(&self, other: &Dim) -> Option<Dim> {
@@ -81,7 +91,7 @@ impl Dim {
             (Dim::Known(a), Dim::Known(b)) => Dim::Known(a.checked_add(*b)?),
             (Dim::Known(0), d) | (d, Dim::Known(0)) => d.clone(),
             (Dim::Unknown, _) | (_, Dim::Unknown) => Dim::Unknown,
-            (a, b) => Dim::sym(&format!("{}+{}", a.wrap()?, b.wrap()?)),
+            (a, b) => Dim::expression(a, '+', b),
         })
     }
 }
@@ -95,6 +105,9 @@ impl std::fmt::Display for Dim {
         }
     }
 }
+
+/// The longest symbolic dim expression tilecut builds; longer ones become unknown.
+pub const MAX_EXPRESSION: usize = 256;
 
 /// `text` without its spaces, if it is a sum of products of identifiers and whole numbers
 /// (with parentheses) that uses at least one operator.
@@ -320,5 +333,16 @@ mod tests {
         let deep = format!("{}1{}", "(".repeat(100_000), ")".repeat(100_000));
         assert_eq!(evaluate(&deep, &v), Err(NotAnExpression));
         assert_eq!(Dim::param(&format!("{deep} + 1")).symbols().len(), 1);
+    }
+
+    #[test]
+    fn expressions_that_double_stop_growing() {
+        let mut d = Dim::sym("n");
+        for _ in 0..200 {
+            d = d.add(&d).expect("no overflow");
+            d = d.mul(&Dim::Known(3)).expect("no overflow");
+        }
+        assert_eq!(d, Dim::Unknown);
+        assert_eq!(Dim::sym("a").add(&Dim::Known(2)), Some(Dim::sym("a+2")));
     }
 }

@@ -106,12 +106,12 @@ pub fn elementwise(
     }
 }
 
-/// Reduces a constant over the flagged axes (`keep`: reduced axes stay as size 1). Integers
-/// stay integers (None on overflow); an empty reduction is left unfolded, since the value
-/// the specification gives it depends on the op.
 /// A reduction's step for integers (None on overflow) and for floats.
 pub type ReduceOps = (fn(i64, i64) -> Option<i64>, fn(f64, f64) -> f64);
 
+/// Reduces a constant over the flagged axes (`keep`: reduced axes stay as size 1). Integers
+/// stay integers (None on overflow); an empty reduction is left unfolded, since the value
+/// the specification gives it depends on the op.
 pub fn reduce(data: &ConstValue, reduced: &[bool], keep: bool, (int_op, float_op): ReduceOps) -> Option<ConstValue> {
     if reduced.len() != data.dims.len() || !data.is_numeric() || count(&data.dims)? == 0 {
         return None;

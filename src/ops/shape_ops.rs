@@ -801,8 +801,8 @@ fn resize(ctx: &Ctx) -> Inferred {
             }
         } else {
             // Sizes read off a symbolic shape (`Shape` × factors) stay symbolic.
-            for (k, &a) in axes.iter().enumerate() {
-                out[a] = sizes.as_dims()[k].clone();
+            for (&a, size) in axes.iter().zip(sizes.as_dims()) {
+                out[a] = size;
             }
         }
         return Ok(vec![tensor(dt, Shape::of(out))]);

@@ -119,11 +119,6 @@ fn inferred_output_shapes_agree_with_onnx_shape_inference() {
     assert!(compared >= 1000, "only {compared} outputs compared");
 }
 
-/// Little-endian int64 payload (`raw_data`, as the ONNX IR stores it).
-fn le(v: &[i64]) -> bytes::Bytes {
-    v.iter().flat_map(|x| x.to_le_bytes()).collect()
-}
-
 /// Evaluates every model in a folder with the `onnx` package's reference evaluator (no inputs:
 /// every value is an initializer) and prints each first output's shape and values.
 const EVALUATE: &str = r#"
@@ -158,35 +153,18 @@ fn folded_reductions_agree_with_the_onnx_reference_evaluator() {
         ] {
             for keep in [0, 1] {
                 for float in [false, true] {
-                    let data = tilecut::onnx::TensorProto {
-                        name: "data".into(),
-                        dims: vec![3, 2, 2],
-                        data_type: if float { 1 } else { 7 },
-                        raw_data: if float {
-                            ints.iter().flat_map(|&v| (v as f32).to_le_bytes()).collect()
-                        } else {
-                            le(&ints)
-                        },
-                        ..Default::default()
-                    };
+                    let mut data = i64_init("data", &[3, 2, 2], &ints);
+                    if float {
+                        data.data_type = 1;
+                        data.raw_data = ints.iter().flat_map(|&v| (v as f32).to_le_bytes()).collect();
+                    }
                     let mut inits = vec![data];
                     let mut n = node(op, &["data"], &["out"]);
                     if let Some(a) = &axes {
-                        inits.push(tilecut::onnx::TensorProto {
-                            name: "axes".into(),
-                            dims: vec![a.len() as i64],
-                            data_type: 7,
-                            raw_data: le(a),
-                            ..Default::default()
-                        });
+                        inits.push(i64_init("axes", &[a.len() as i64], a));
                         n.input.push("axes".into());
                     }
-                    n.attribute.push(tilecut::onnx::AttributeProto {
-                        name: "keepdims".into(),
-                        r#type: 2,
-                        i: keep,
-                        ..Default::default()
-                    });
+                    n.attribute.push(int_attr("keepdims", keep));
                     let mut m = model(vec![n], vec![], untyped(&["out"]), inits);
                     m.opset_import[0].version = 18;
                     let file = format!("{op}_{tag}_k{keep}_{}.onnx", if float { "f" } else { "i" });
@@ -198,19 +176,8 @@ fn folded_reductions_agree_with_the_onnx_reference_evaluator() {
     }
     // noop_with_empty_axes: no axes, the data passes through unchanged.
     let mut n = node("ReduceSum", &["data"], &["out"]);
-    n.attribute.push(tilecut::onnx::AttributeProto {
-        name: "noop_with_empty_axes".into(),
-        r#type: 2,
-        i: 1,
-        ..Default::default()
-    });
-    let data = tilecut::onnx::TensorProto {
-        name: "data".into(),
-        dims: vec![3, 2, 2],
-        data_type: 7,
-        raw_data: le(&ints),
-        ..Default::default()
-    };
+    n.attribute.push(int_attr("noop_with_empty_axes", 1));
+    let data = i64_init("data", &[3, 2, 2], &ints);
     let mut m = model(vec![n], vec![], untyped(&["out"]), vec![data]);
     m.opset_import[0].version = 18;
     write(dir.path(), "noop.onnx", &m);

@@ -788,33 +788,10 @@ fn costs_follow_an_output_shape_taken_from_the_file() {
 #[test]
 fn topk_limits_computed_by_shape_arithmetic_resolve() {
     let d = tmp();
-    let int64 = |name: &str, dims: Vec<i64>, v: &[i64]| TensorProto {
-        name: name.into(),
-        dims,
-        data_type: 7,
-        raw_data: v.iter().flat_map(|x| x.to_le_bytes()).collect(),
-        ..Default::default()
-    };
-    let gather = {
-        let mut n = node("Gather", &["s", "one"], &["n"]);
-        n.attribute.push(onnx::AttributeProto {
-            name: "axis".into(),
-            r#type: 2,
-            i: 0,
-            ..Default::default()
-        });
-        n
-    };
-    let concat = {
-        let mut n = node("Concat", &["nu", "limit"], &["kc"]);
-        n.attribute.push(onnx::AttributeProto {
-            name: "axis".into(),
-            r#type: 2,
-            i: 0,
-            ..Default::default()
-        });
-        n
-    };
+    let mut gather = node("Gather", &["s", "one"], &["n"]);
+    gather.attribute.push(int_attr("axis", 0));
+    let mut concat = node("Concat", &["nu", "limit"], &["kc"]);
+    concat.attribute.push(int_attr("axis", 0));
     for (width, k) in [(64, 64), (4096, 100)] {
         let m = model(
             vec![
@@ -828,9 +805,9 @@ fn topk_limits_computed_by_shape_arithmetic_resolve() {
             vec![vi("x", 1, &[Dm::N(2), Dm::N(width)])],
             untyped(&["vals", "idx"]),
             vec![
-                int64("one", vec![], &[1]),
-                int64("zero", vec![1], &[0]),
-                int64("limit", vec![1], &[100]),
+                i64_init("one", &[], &[1]),
+                i64_init("zero", &[1], &[0]),
+                i64_init("limit", &[1], &[100]),
             ],
         );
         let p = write(d.path(), &format!("topk_{width}.onnx"), &m);
@@ -943,35 +920,19 @@ fn unit_stride_windows_keep_symbolic_lengths() {
     );
     let p = write(d.path(), "conv1d.onnx", &m);
     let ps = p.to_str().expect("utf8");
-    let shapes = |extra: &[&str]| -> Vec<serde_json::Value> {
-        let mut args = vec!["inspect", ps, "--format", "json"];
-        args.extend_from_slice(extra);
-        let (code, out, err) = run(&args);
-        assert_eq!(code, 0, "{err}");
-        let v: serde_json::Value = serde_json::from_str(&out).expect("json");
-        v["outputs"]
-            .as_array()
-            .expect("outputs")
-            .iter()
-            .map(|o| o["shape"][2].clone())
-            .collect()
-    };
-    let symbolic = shapes(&[]);
+    let lengths =
+        |shapes: Vec<serde_json::Value>| -> Vec<serde_json::Value> { shapes.iter().map(|s| s[2].clone()).collect() };
     assert_eq!(
-        symbolic,
+        lengths(output_shapes(ps, &[])),
         serde_json::json!(["T", "T+2", "T+2", null, null])
             .as_array()
             .expect("array")
             .clone()
     );
+    symbolic_shapes_evaluate_like_fixed_ones(ps, "T", &[5, 10, 64]);
     for t in [5u64, 10, 64] {
-        let fixed = shapes(&["--dim", &format!("T={t}")]);
-        for (i, s) in symbolic.iter().enumerate() {
-            let Some(expr) = s.as_str() else { continue };
-            let at_t = tilecut::ir::evaluate(expr, &|x| (x == "T").then_some(t)).expect("expression");
-            assert_eq!(fixed[i].as_u64(), at_t, "output {i} at T={t}");
-        }
         // The spec's formula with T fixed, for the two windows left unknown symbolically.
+        let fixed = lengths(output_shapes(ps, &["--dim", &format!("T={t}")]));
         assert_eq!(fixed[3].as_u64(), Some(t + 2 - 3 + 1));
         assert_eq!(fixed[4].as_u64(), Some((t + 2 + 2 - 3) / 2 + 1));
     }
@@ -984,13 +945,6 @@ fn unit_stride_windows_keep_symbolic_lengths() {
 #[test]
 fn shape_arithmetic_over_a_symbolic_length_keeps_the_symbol() {
     let d = tmp();
-    let int64 = |name: &str, dims: Vec<i64>, v: &[i64]| TensorProto {
-        name: name.into(),
-        dims,
-        data_type: 7,
-        raw_data: v.iter().flat_map(|x| x.to_le_bytes()).collect(),
-        ..Default::default()
-    };
     let mut resize = node("Resize", &["x4", "", "", "sizes"], &["up"]);
     resize.attribute.push(onnx::AttributeProto {
         name: "mode".into(),
@@ -1015,43 +969,54 @@ fn shape_arithmetic_over_a_symbolic_length_keeps_the_symbol() {
         untyped(&["pe", "xp", "up"]),
         vec![
             f32_init("table", &[64, 8]),
-            int64("one", vec![], &[1]),
-            int64("zero", vec![], &[0]),
-            int64("pads", vec![6], &[0, 1, 0, 0, 2, 0]),
-            int64("axis0", vec![1], &[0]),
-            int64("factors", vec![4], &[1, 1, 2, 1]),
+            i64_init("one", &[], &[1]),
+            i64_init("zero", &[], &[0]),
+            i64_init("pads", &[6], &[0, 1, 0, 0, 2, 0]),
+            i64_init("axis0", &[1], &[0]),
+            i64_init("factors", &[4], &[1, 1, 2, 1]),
         ],
     );
     let p = write(d.path(), "positions.onnx", &m);
     let ps = p.to_str().expect("utf8");
-    let outputs = |extra: &[&str]| -> serde_json::Value {
-        let mut args = vec!["inspect", ps, "--format", "json"];
-        args.extend_from_slice(extra);
-        let (code, out, err) = run(&args);
-        assert_eq!(code, 0, "{err}");
-        let v: serde_json::Value = serde_json::from_str(&out).expect("json");
-        v["outputs"]
-            .as_array()
-            .expect("outputs")
-            .iter()
-            .map(|o| o["shape"].clone())
-            .collect()
-    };
-    let symbolic = outputs(&[]);
     assert_eq!(
-        symbolic,
+        output_shapes(ps, &[]),
         serde_json::json!([["len", 8], [1, "len+3", 8], [1, 1, "len*2", 8]])
+            .as_array()
+            .expect("array")
+            .clone()
     );
-    for n in [1u64, 7, 50] {
-        let fixed = outputs(&["--dim", &format!("len={n}")]);
-        let sym = symbolic.as_array().expect("array");
-        for (i, shape) in sym.iter().enumerate() {
+    symbolic_shapes_evaluate_like_fixed_ones(ps, "len", &[1, 7, 50]);
+}
+
+/// Each graph output's shape as `inspect --format json` reports it.
+fn output_shapes(model: &str, extra: &[&str]) -> Vec<serde_json::Value> {
+    let mut args = vec!["inspect", model, "--format", "json"];
+    args.extend_from_slice(extra);
+    let (code, out, err) = run(&args);
+    assert_eq!(code, 0, "{err}");
+    let v: serde_json::Value = serde_json::from_str(&out).expect("json");
+    v["outputs"]
+        .as_array()
+        .expect("outputs")
+        .iter()
+        .map(|o| o["shape"].clone())
+        .collect()
+}
+
+/// Every symbolic dim of the outputs, evaluated at `symbol = n`, equals the dim the same model
+/// gives with `--dim symbol=n`; known dims stay as they are.
+fn symbolic_shapes_evaluate_like_fixed_ones(model: &str, symbol: &str, values: &[u64]) {
+    let symbolic = output_shapes(model, &[]);
+    for &n in values {
+        let fixed = output_shapes(model, &["--dim", &format!("{symbol}={n}")]);
+        for (i, shape) in symbolic.iter().enumerate() {
             for (k, dim) in shape.as_array().expect("dims").iter().enumerate() {
                 let want = match dim.as_str() {
-                    Some(expr) => tilecut::ir::evaluate(expr, &|x| (x == "len").then_some(n)).expect("expr"),
+                    Some(expr) => tilecut::ir::evaluate(expr, &|x| (x == symbol).then_some(n)).expect("expr"),
+                    None if dim.is_null() => continue,
                     None => dim.as_u64(),
                 };
-                assert_eq!(fixed[i][k].as_u64(), want, "output {i} dim {k} at len={n}");
+                assert_eq!(fixed[i][k].as_u64(), want, "output {i} dim {k} at {symbol}={n}");
             }
         }
     }

@@ -26,6 +26,15 @@ fn broadcast_dims(a: &[u64], b: &[u64]) -> Option<Vec<u64>> {
     Some(out)
 }
 
+/// The broadcast shape of folded inputs, if they broadcast and the result is small enough.
+fn folded_shape(values: &[&ConstValue]) -> Option<Vec<u64>> {
+    let mut dims: Vec<u64> = Vec::new();
+    for v in values {
+        dims = broadcast_dims(&dims, &v.dims)?;
+    }
+    (count(&dims)? <= MAX_FOLD_ELEMENTS).then_some(dims)
+}
+
 /// Index into `dims`-shaped data for the broadcast position `pos` of `out`.
 fn source_index(pos: &[u64], dims: &[u64]) -> usize {
     let off = pos.len() - dims.len();
@@ -60,13 +69,7 @@ pub fn elementwise(
     if !values.iter().all(|v| v.is_numeric()) {
         return None;
     }
-    let mut dims: Vec<u64> = Vec::new();
-    for v in values {
-        dims = broadcast_dims(&dims, &v.dims)?;
-    }
-    if count(&dims)? > MAX_FOLD_ELEMENTS {
-        return None;
-    }
+    let dims = folded_shape(values)?;
     let all_int = values.iter().all(|v| matches!(v.data, ConstData::Int(_)));
     if all_int || bool_result {
         let ints: Vec<Vec<i64>> = values.iter().map(|v| v.as_ints()).collect();
@@ -168,13 +171,7 @@ pub fn dims_elementwise(values: &[&ConstValue], op: fn(&Dim, &Dim) -> Option<Dim
     {
         return None;
     }
-    let mut dims: Vec<u64> = Vec::new();
-    for v in values {
-        dims = broadcast_dims(&dims, &v.dims)?;
-    }
-    if count(&dims)? > MAX_FOLD_ELEMENTS {
-        return None;
-    }
+    let dims = folded_shape(values)?;
     let args: Vec<Vec<Dim>> = values.iter().map(|v| v.as_dims()).collect();
     let mut out = Vec::new();
     for pos in positions(&dims) {

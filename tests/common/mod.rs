@@ -101,6 +101,27 @@ pub fn f32_init(name: &str, dims: &[i64]) -> TensorProto {
     }
 }
 
+/// An int64 initializer, little-endian in `raw_data` as the ONNX IR stores it.
+pub fn i64_init(name: &str, dims: &[i64], values: &[i64]) -> TensorProto {
+    TensorProto {
+        name: name.into(),
+        dims: dims.to_vec(),
+        data_type: 7,
+        raw_data: values.iter().flat_map(|x| x.to_le_bytes()).collect(),
+        ..Default::default()
+    }
+}
+
+/// An integer attribute (`AttributeProto.type` INT).
+pub fn int_attr(name: &str, value: i64) -> onnx::AttributeProto {
+    onnx::AttributeProto {
+        name: name.into(),
+        r#type: 2,
+        i: value,
+        ..Default::default()
+    }
+}
+
 pub fn write(dir: &Path, name: &str, m: &ModelProto) -> PathBuf {
     let p = dir.join(name);
     std::fs::write(&p, m.encode_to_vec()).expect("write model");

@@ -43,6 +43,13 @@ impl Dim {
             Dim::Sym(s) if s.contains(char::is_whitespace) => vec![s.to_string()],
             Dim::Sym(s) => s
                 .split(['*', '+', '(', ')'])
+                // A data-dependent size is named after its node (`k@/model/TopK`), and node
+                // names have slashes: only elsewhere is `/` the division tilecut writes.
+                .map(|t| match t.split_once('/') {
+                    // tilecut divides by numbers only; `N/A` from a file is one name.
+                    Some((name, by)) if !t.contains('@') && by.split('/').all(|x| x.parse::<u64>().is_ok()) => name,
+                    _ => t,
+                })
                 .filter(|t| !t.is_empty() && t.parse::<u64>().is_err())
                 .map(str::to_string)
                 .collect(),
@@ -60,7 +67,8 @@ impl Dim {
 
     fn wrap(&self) -> Option<String> {
         match self {
-            Dim::Sym(s) if s.contains('+') => Some(format!("({s})")),
+            // Division binds like a product but is not associative with one: `3*(T/2)`.
+            Dim::Sym(s) if s.contains(['+', '/']) => Some(format!("({s})")),
             _ => self.text(),
         }
     }
@@ -80,9 +88,37 @@ impl Dim {
     /// that doubles at each step (`x + x`, repeated by a chain of nodes) would otherwise grow
     /// without bound on a hostile or merely odd graph.
     fn expression(a: &Dim, op: char, b: &Dim) -> Dim {
-        match (a.wrap(), b.wrap()) {
+        // A sum needs no parentheses around its terms (everything else binds tighter), and a
+        // constant added to a sum ending in a constant joins it: `T+2` plus 1 is `T+3`.
+        let (x, y) = if op == '+' {
+            if let (Dim::Sym(s), Dim::Known(j)) = (a, b) {
+                if let Some((rest, k)) = s.rsplit_once('+') {
+                    if let Some(sum) = k.parse::<u64>().ok().and_then(|k| k.checked_add(*j)) {
+                        return Dim::sym(&format!("{rest}+{sum}"));
+                    }
+                }
+            }
+            (a.text(), b.text())
+        } else {
+            (a.wrap(), b.wrap())
+        };
+        match (x, y) {
             (Some(x), Some(y)) if x.len() + y.len() < MAX_EXPRESSION => Dim::sym(&format!("{x}{op}{y}")),
             _ => Dim::Unknown,
+        }
+    }
+
+    /// Whole-number division rounding down, by a positive constant: the size of a strided
+    /// window's output. A data-dependent size (named `…@node`) is not divided: node names
+    /// may hold slashes, so the expression would not read back.
+    pub fn div_floor(&self, divisor: u64) -> Dim {
+        match self {
+            _ if divisor == 0 => Dim::Unknown,
+            Dim::Known(a) => Dim::Known(a / divisor),
+            d if divisor == 1 => d.clone(),
+            Dim::Sym(s) if s.contains('@') => Dim::Unknown,
+            d @ Dim::Sym(_) => Dim::expression(d, '/', &Dim::Known(divisor)),
+            Dim::Unknown => Dim::Unknown,
         }
     }
 
@@ -121,9 +157,10 @@ pub fn compact_expression(text: &str) -> Option<String> {
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub struct NotAnExpression;
 
-/// Evaluates a sum of products over identifiers and whole numbers (`a+2*(b+1)`, no spaces).
-/// `Err` if the text is not such an expression; `Ok(None)` if `value` does not know an
-/// identifier or the arithmetic overflows.
+/// Evaluates a sum of products and quotients over identifiers and whole numbers
+/// (`a+2*(b+1)/3`, no spaces; `/` rounds down; left to right within a product). `Err` if the
+/// text is not such an expression; `Ok(None)` if `value` does not know an identifier, the
+/// arithmetic overflows or divides by zero.
 pub fn evaluate(text: &str, value: &dyn Fn(&str) -> Option<u64>) -> Result<Option<u64>, NotAnExpression> {
     struct P<'a> {
         s: &'a [u8],
@@ -145,10 +182,16 @@ pub fn evaluate(text: &str, value: &dyn Fn(&str) -> Option<u64>) -> Result<Optio
         }
         fn product(&mut self, depth: usize) -> Result<Option<u64>, NotAnExpression> {
             let mut acc = self.factor(depth)?;
-            while self.peek() == Some(b'*') {
+            while let Some(op @ (b'*' | b'/')) = self.peek() {
                 self.at += 1;
+                // Division is by whole numbers only (what tilecut writes, see `div_floor`).
+                if op == b'/' && !self.peek().is_some_and(|c| c.is_ascii_digit()) {
+                    return Err(NotAnExpression);
+                }
                 let r = self.factor(depth)?;
-                acc = acc.zip(r).and_then(|(a, b)| a.checked_mul(b));
+                acc = acc
+                    .zip(r)
+                    .and_then(|(a, b)| if op == b'*' { a.checked_mul(b) } else { a.checked_div(b) });
             }
             Ok(acc)
         }
@@ -257,7 +300,7 @@ impl Shape {
     pub fn symbols_into(&self, out: &mut Vec<Name>) {
         for d in self.0.iter().flatten() {
             let Dim::Sym(s) = d else { continue };
-            let simple = !s.contains(['*', '+', '(', ')']);
+            let simple = !s.contains(['*', '+', '(', ')', '/']);
             if simple {
                 if !out.iter().any(|x| x == s) && s.parse::<u64>().is_err() {
                     out.push(s.clone());
@@ -344,5 +387,35 @@ mod tests {
         }
         assert_eq!(d, Dim::Unknown);
         assert_eq!(Dim::sym("a").add(&Dim::Known(2)), Some(Dim::sym("a+2")));
+    }
+
+    #[test]
+    fn quotients_round_down_and_keep_their_place() {
+        let t = Dim::sym("T");
+        let half = t.add(&Dim::Known(1)).expect("sum").div_floor(2);
+        assert_eq!(half, Dim::sym("(T+1)/2"));
+        assert_eq!(half.symbols(), ["T".to_string()]);
+        let tripled = Dim::Known(3).mul(&t.div_floor(2)).expect("product");
+        assert_eq!(tripled, Dim::sym("3*(T/2)"));
+        for v in [0u64, 1, 2, 7, 100] {
+            let at = |x: &str| (x == "T").then_some(v);
+            assert_eq!(evaluate("(T+1)/2", &at), Ok(Some(v.div_ceil(2))));
+            assert_eq!(evaluate("3*(T/2)", &at), Ok(Some(3 * (v / 2))));
+            assert_eq!(evaluate("3*T/2", &at), Ok(Some(3 * v / 2)), "left to right");
+        }
+        assert_eq!(evaluate("T/0", &|_| Some(4)), Ok(None));
+        // A data-dependent size keeps its node's slashes and is not divided.
+        let k = Dim::sym("k@/model/TopK");
+        assert_eq!(k.symbols(), ["k@/model/TopK".to_string()]);
+        assert_eq!(k.div_floor(2), Dim::Unknown);
+        assert_eq!(Dim::Known(7).div_floor(2), Dim::Known(3));
+        let padded = t.add(&Dim::Known(2)).and_then(|d| d.add(&Dim::Known(1)));
+        assert_eq!(padded, Some(Dim::sym("T+3")));
+        let sum = Dim::sym("a+b").add(&Dim::sym("c/2+1"));
+        assert_eq!(sum, Some(Dim::sym("a+b+c/2+1")));
+        assert_eq!(evaluate("a+b+c/2+1", &|_| Some(5)), Ok(Some(5 + 5 + 2 + 1)));
+        // A file's name with a slash in it is a name, not a quotient.
+        assert_eq!(Dim::sym("N/A").symbols(), ["N/A".to_string()]);
+        assert_eq!(evaluate("N/A", &|_| Some(4)), Err(NotAnExpression));
     }
 }

@@ -47,24 +47,24 @@ fn spatial_out(
     let i = match input {
         Dim::Known(i) => *i as i64,
         Dim::Unknown => return Ok(Dim::Unknown),
-        // A symbolic size stays symbolic where the window moves one step at a time: the
-        // output is the input plus what the padding adds beyond the kernel's extent (the
-        // specification's formula with stride 1; ceil_mode changes nothing then). Strided
-        // windows divide, which tilecut's dim expressions do not: unknown until fixed.
+        // A symbolic size stays symbolic: the specification's floor((in + pads − extent) / s)
+        // + 1 is floor((in + c) / s) with c = pads − extent + s, written so while c is not
+        // negative (dim expressions do not subtract); SAME padding gives ceil(in / s), that
+        // is c = s − 1. With ceil_mode and a stride the last window's placement rule cannot
+        // be written either: unknown until the size is fixed.
         sym @ Dim::Sym(_) => {
-            if s != 1 {
+            if ceil_mode && s != 1 {
                 return Ok(Dim::Unknown);
             }
-            let grow = match auto_pad {
-                "SAME_UPPER" | "SAME_LOWER" => 0,
-                "VALID" => 1 - ek,
-                _ => pad_total + 1 - ek,
+            let c = match auto_pad {
+                "SAME_UPPER" | "SAME_LOWER" => s - 1,
+                "VALID" => s - ek,
+                _ => pad_total - ek + s,
             };
-            return Ok(match grow {
-                0 => sym.clone(),
-                g if g > 0 => sym.add(&Dim::Known(g as u64)).unwrap_or(Dim::Unknown),
-                _ => Dim::Unknown,
-            });
+            let Ok(c) = u64::try_from(c) else {
+                return Ok(Dim::Unknown);
+            };
+            return Ok(sym.add(&Dim::Known(c)).map_or(Dim::Unknown, |d| d.div_floor(s as u64)));
         }
     };
     let out = match auto_pad {

@@ -907,6 +907,12 @@ fn windows_keep_symbolic_lengths() {
     let mut pool = node("MaxPool", &["c2"], &["p"]);
     pool.attribute.push(attr_ints("kernel_shape", &[3]));
     pool.attribute.push(attr_ints("pads", &[1, 1]));
+    // ConvTranspose: s·(in − 1) + output_padding + ((k − 1)·d + 1) − pads.
+    let mut up = node("ConvTranspose", &["c4", "w"], &["u"]);
+    up.attribute.push(attr_ints("kernel_shape", &[3]));
+    up.attribute.push(attr_ints("strides", &[2]));
+    up.attribute.push(attr_ints("pads", &[1, 0]));
+    up.attribute.push(attr_ints("output_padding", &[1]));
     let m = model(
         vec![
             conv("x", "c1", &[1, 1], &[1]),
@@ -914,9 +920,10 @@ fn windows_keep_symbolic_lengths() {
             pool,
             conv("p", "c3", &[0, 0], &[1]),
             conv("p", "c4", &[1, 1], &[2]),
+            up,
         ],
         vec![vi("x", 1, &[Dm::N(1), Dm::N(4), Dm::S("T")])],
-        untyped(&["c1", "c2", "p", "c3", "c4"]),
+        untyped(&["c1", "c2", "p", "c3", "c4", "u"]),
         vec![f32_init("w", &[4, 4, 3])],
     );
     let p = write(d.path(), "conv1d.onnx", &m);
@@ -925,7 +932,7 @@ fn windows_keep_symbolic_lengths() {
         |shapes: Vec<serde_json::Value>| -> Vec<serde_json::Value> { shapes.iter().map(|s| s[2].clone()).collect() };
     assert_eq!(
         lengths(output_shapes(ps, &[])),
-        serde_json::json!(["T", "T+2", "T+2", null, "(T+3)/2"])
+        serde_json::json!(["T", "T+2", "T+2", null, "(T+3)/2", "((T+3)/2)*2+1"])
             .as_array()
             .expect("array")
             .clone()
@@ -935,6 +942,8 @@ fn windows_keep_symbolic_lengths() {
         // The spec's formula with T fixed, for the shrinking window and the strided one.
         let fixed = lengths(output_shapes(ps, &["--dim", &format!("T={t}")]));
         assert_eq!(fixed[3].as_u64(), Some(t + 2 - 3 + 1));
+        let c4 = (t + 2 + 2 - 3) / 2 + 1;
+        assert_eq!(fixed[5].as_u64(), Some(2 * (c4 - 1) + 1 + 3 - 1));
         assert_eq!(fixed[4].as_u64(), Some((t + 2 + 2 - 3) / 2 + 1));
     }
 }

@@ -217,20 +217,36 @@ fn conv_transpose(ctx: &Ctx) -> Inferred {
         return Ok(vec![tensor(ctx.dtype(0), Shape::of(out))]);
     }
     for i in 0..spatial {
-        let Dim::Known(inp) = x[2 + i] else {
-            out.push(Dim::Unknown);
-            continue;
-        };
         let (s, k, d) = (win.strides[i] as i64, win.kernel[i] as i64, win.dilations[i] as i64);
         let op = out_pad.get(i).copied().unwrap_or(0);
-        let o = match win.auto_pad.as_str() {
-            "SAME_UPPER" | "SAME_LOWER" => inp as i64 * s,
+        // out = s·in + extra (ONNX spec, ConvTranspose: s·(in − 1) + output_padding +
+        // ((k − 1)·d + 1) − pads; SAME: s·in).
+        let extra = match win.auto_pad.as_str() {
+            "SAME_UPPER" | "SAME_LOWER" => 0,
             _ => {
                 let pads = win.pads.as_ref().map(|p| p[i] + p[i + spatial]).unwrap_or(0);
-                s * (inp as i64 - 1) + op + ((k - 1) * d + 1) - if win.auto_pad == "VALID" { 0 } else { pads }
+                op + ((k - 1) * d + 1) - s - if win.auto_pad == "VALID" { 0 } else { pads }
             }
         };
-        out.push(Dim::Known(o.max(0) as u64));
+        out.push(match &x[2 + i] {
+            Dim::Known(inp) => {
+                let o = i64::try_from(*inp)
+                    .ok()
+                    .and_then(|inp| s.checked_mul(inp)?.checked_add(extra))
+                    .ok_or("output size overflows")?;
+                Dim::Known(o.max(0) as u64)
+            }
+            // A symbolic length stays symbolic while the constant part is not negative (dim
+            // expressions do not subtract).
+            sym @ Dim::Sym(_) => match u64::try_from(extra) {
+                Ok(extra) => sym
+                    .mul(&Dim::Known(s as u64))
+                    .and_then(|d| d.add(&Dim::Known(extra)))
+                    .unwrap_or(Dim::Unknown),
+                Err(_) => Dim::Unknown,
+            },
+            Dim::Unknown => Dim::Unknown,
+        });
     }
     Ok(vec![tensor(ctx.dtype(0), Shape::of(out))])
 }

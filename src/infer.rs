@@ -2,7 +2,7 @@
 //! ops need, infers bodies before the node that carries them, folds shape arithmetic, marks
 //! weight-like subgraphs, and costs every node. Unknowns become diagnostics, never guesses.
 
-use std::collections::{BTreeMap, HashMap};
+use std::collections::{BTreeMap, BTreeSet, HashMap};
 
 use crate::diag::{codes, Diagnostic};
 use crate::fastmap::FastMap;
@@ -68,12 +68,23 @@ impl ReasonTexts {
 pub fn infer(model: &mut Model, diags: &mut Vec<Diagnostic>) -> UnknownReasons {
     let opsets = model.opsets.clone();
     let trips = model.loop_trips.clone();
+    // The symbols `--dim` can fix: those of the main graph's inputs.
+    let mut fixable = BTreeSet::new();
+    for &i in &model.graph.inputs {
+        for d in model.graph.values[i.index()].fact.shape.dims().unwrap_or(&[]) {
+            fixable.extend(d.symbols());
+        }
+    }
     let mut unknown_ops: BTreeMap<(String, String), (usize, String)> = BTreeMap::new();
     let mut reasons = UnknownReasons::new();
+    let settings = Settings {
+        opsets: &opsets,
+        trips: &trips,
+        fixable: &fixable,
+    };
     infer_graph(
         &mut model.graph,
-        &opsets,
-        &trips,
+        &settings,
         &HashMap::new(),
         diags,
         &mut unknown_ops,
@@ -136,15 +147,24 @@ fn is_const_kind(k: ValueKind) -> bool {
     matches!(k, ValueKind::Initializer | ValueKind::Constant)
 }
 
+/// What every graph of one model is inferred under.
+struct Settings<'a> {
+    opsets: &'a BTreeMap<String, i64>,
+    /// `--loop-trips`, by node name.
+    trips: &'a BTreeMap<String, u64>,
+    /// Symbols of the main graph's inputs (see `fill_from`).
+    fixable: &'a BTreeSet<String>,
+}
+
 fn infer_graph(
     g: &mut Graph,
-    opsets: &BTreeMap<String, i64>,
-    trips: &BTreeMap<String, u64>,
+    settings: &Settings,
     outer: &OuterFacts,
     diags: &mut Vec<Diagnostic>,
     unknown_ops: &mut BTreeMap<(String, String), (usize, String)>,
     mut reasons: Option<&mut UnknownReasons>,
 ) {
+    let Settings { opsets, trips, fixable } = *settings;
     // Captured outer values take their facts from outside.
     for &c in &g.captured.clone() {
         let name = g.values[c.index()].name.clone();
@@ -208,7 +228,7 @@ fn infer_graph(
             let mut bodies = std::mem::take(&mut g.nodes[ni].bodies);
             for b in &mut bodies {
                 seed_body_inputs(&mut b.graph, &op, &input_facts, scan.as_ref());
-                infer_graph(&mut b.graph, opsets, trips, &scope, diags, unknown_ops, None);
+                infer_graph(&mut b.graph, settings, &scope, diags, unknown_ops, None);
                 body_outputs.push(
                     b.graph
                         .outputs
@@ -283,7 +303,7 @@ fn infer_graph(
                         .at_tensor(slot.map_or("", |v| g.values[v.index()].name.as_str())),
                     );
                 }
-                let filled = fill_from(fact, decl);
+                let filled = fill_from(fact, decl, fixable);
                 if def.is_some() && filled.shape != fact.shape {
                     from_file.0 += 1;
                     if from_file.1.is_none() {
@@ -386,17 +406,25 @@ fn agrees(a: &Fact, b: &Fact) -> bool {
     }
 }
 
-/// Fills what inference left unknown from the file's declaration.
-fn fill_from(fact: &Fact, decl: &Fact) -> Fact {
+/// Fills what inference left unknown from the file's declaration. A declared symbol that no
+/// graph input has (`unk__3`, as shape inference tools name what they could not work out)
+/// fills as unknown: kept, it would be advertised as a `--dim` to fix, and no `--dim` reaches
+/// it; fixing the inputs' symbols is what sizes such a tensor.
+fn fill_from(fact: &Fact, decl: &Fact, fixable: &BTreeSet<String>) -> Fact {
+    use crate::ir::Dim;
+    let declared = |q: &Dim| match q {
+        Dim::Sym(_) if !q.symbols().iter().all(|s| fixable.contains(s)) => Dim::Unknown,
+        q => q.clone(),
+    };
     let dtype = fact.dtype.or(decl.dtype);
     let shape = match (fact.shape.dims(), decl.shape.dims()) {
-        (None, Some(_)) => decl.shape.clone(),
+        (None, Some(y)) => Shape::of(y.iter().map(declared).collect()),
         (Some(x), Some(y)) if x.len() == y.len() => Shape::of(
             x.iter()
                 .zip(y)
-                .map(|(p, q)| match (p, q) {
-                    (crate::ir::Dim::Unknown, q) => q.clone(),
-                    (p, _) => p.clone(),
+                .map(|(p, q)| match p {
+                    Dim::Unknown => declared(q),
+                    p => p.clone(),
                 })
                 .collect(),
         ),
@@ -412,6 +440,11 @@ fn fill_from(fact: &Fact, decl: &Fact) -> Fact {
         dtype,
         shape,
     }
+}
+
+/// Every symbol of a fact's shape.
+fn all_symbols(f: &Fact) -> BTreeSet<String> {
+    f.shape.dims().unwrap_or(&[]).iter().flat_map(|d| d.symbols()).collect()
 }
 
 /// Body graph inputs: Loop (iteration, condition, carried...), Scan (state..., scan slices).
@@ -436,8 +469,10 @@ fn seed_body_inputs(body: &mut Graph, op: &str, inputs: &[Fact], scan: Option<&o
             _ => None,
         };
         if let Some(f) = seeded {
+            // The other direction: what the carrying node infers completes the body's own
+            // declaration, whatever symbols it has.
             let decl = v.declared.as_deref().cloned().unwrap_or_default();
-            v.declared = Some(Box::new(fill_from(&decl, &f)));
+            v.declared = Some(Box::new(fill_from(&decl, &f, &all_symbols(&f))));
         }
     }
 }

@@ -1031,3 +1031,47 @@ fn symbolic_shapes_evaluate_like_fixed_ones(model: &str, symbol: &str, values: &
         }
     }
 }
+
+/// Shape inference tools name the dims they cannot work out (`unk__7`; the `onnx` package's
+/// `infer_shapes` does, seen with onnx 1.23.2) and store them in `value_info`. No `--dim`
+/// reaches such a name, so it must not be advised: a tensor only the file sizes that way is
+/// unknown, and the advice names the inputs' symbols, which do size it.
+#[test]
+fn symbols_only_the_file_invents_are_not_advised() {
+    let d = tmp();
+    let mut m = model(
+        vec![
+            node("Shape", &["x"], &["s"]),
+            node("Slice", &["s", "one", "two"], &["len"]),
+            // pos[0:len] of a 100-row table: min(len, 100) rows, which dims cannot say.
+            node("Slice", &["table", "zero", "len", "zero"], &["pe"]),
+            node("Transpose", &["pe"], &["pet"]),
+            node("MatMul", &["x", "pet"], &["y"]),
+        ],
+        vec![vi("x", 1, &[Dm::N(1), Dm::S("T"), Dm::N(8)])],
+        untyped(&["y"]),
+        vec![
+            f32_init("table", &[100, 8]),
+            i64_init("zero", &[1], &[0]),
+            i64_init("one", &[1], &[1]),
+            i64_init("two", &[1], &[2]),
+        ],
+    );
+    let g = m.graph.as_mut().expect("graph");
+    g.value_info.push(vi("pe", 1, &[Dm::S("unk__7"), Dm::N(8)]));
+    g.value_info.push(vi("y", 1, &[Dm::N(1), Dm::S("T"), Dm::S("unk__8")]));
+    let p = write(d.path(), "slice.onnx", &m);
+    let ps = p.to_str().expect("utf8");
+    let (code, out, err) = run(&["inspect", ps, "--format", "json"]);
+    assert_eq!(code, 0, "{err}");
+    let v: serde_json::Value = serde_json::from_str(&out).expect("json");
+    assert_eq!(v["model"]["unknown_because"], serde_json::json!(["T"]));
+    assert!(!out.contains("--dim unk__"), "{out}");
+    assert_eq!(v["outputs"][0]["shape"], serde_json::json!([1, "T", null]));
+    // Fixed, the input's symbol sizes everything: min(5, 100) rows.
+    let (code, out, err) = run(&["inspect", ps, "--format", "json", "--dim", "T=5"]);
+    assert_eq!(code, 0, "{err}");
+    let v: serde_json::Value = serde_json::from_str(&out).expect("json");
+    assert_eq!(v["outputs"][0]["shape"], serde_json::json!([1, 5, 5]));
+    assert_eq!(v["model"]["macs"], 5 * 8 * 5);
+}

@@ -92,8 +92,18 @@ fn every_op_survives_random_shapes_and_attributes() {
                         if rng.next_u64() % 6 == 0 {
                             // Plain symbols, and the expressions files write (sums with spaces)
                             // or that only look like one (a slash in a name).
-                            let texts = ["n", "n", "n + 1", "2 * (n + m)", "N/A", "n/2", "(n"];
-                            DimSpec::Named(texts[(rng.next_u64() % 7) as usize].into())
+                            let texts = [
+                                "n",
+                                "n",
+                                "n + 1",
+                                "2 * (n + m)",
+                                "N/A",
+                                "n/2",
+                                "(n",
+                                "n - 9",
+                                "(n - 1)//2 + 1",
+                            ];
+                            DimSpec::Named(texts[(rng.next_u64() % 9) as usize].into())
                         } else {
                             DimSpec::Fixed((rng.next_u64() % 6) as i64)
                         }

@@ -45,11 +45,7 @@ impl Dim {
                 .split(['*', '+', '(', ')'])
                 // A data-dependent size is named after its node (`k@/model/TopK`), and node
                 // names have slashes: only elsewhere is `/` the division tilecut writes.
-                .map(|t| match t.split_once('/') {
-                    // tilecut divides by numbers only; `N/A` from a file is one name.
-                    Some((name, by)) if !t.contains('@') && by.split('/').all(|x| x.parse::<u64>().is_ok()) => name,
-                    _ => t,
-                })
+                .map(|t| if t.contains('@') { t } else { strip_constant_tail(t) })
                 .filter(|t| !t.is_empty() && t.parse::<u64>().is_err())
                 .map(str::to_string)
                 .collect(),
@@ -68,7 +64,7 @@ impl Dim {
     fn wrap(&self) -> Option<String> {
         match self {
             // Division binds like a product but is not associative with one: `3*(T/2)`.
-            Dim::Sym(s) if s.contains(['+', '/']) => Some(format!("({s})")),
+            Dim::Sym(s) if s.contains(['+', '-', '/']) => Some(format!("({s})")),
             _ => self.text(),
         }
     }
@@ -88,16 +84,8 @@ impl Dim {
     /// that doubles at each step (`x + x`, repeated by a chain of nodes) would otherwise grow
     /// without bound on a hostile or merely odd graph.
     fn expression(a: &Dim, op: char, b: &Dim) -> Dim {
-        // A sum needs no parentheses around its terms (everything else binds tighter), and a
-        // constant added to a sum ending in a constant joins it: `T+2` plus 1 is `T+3`.
+        // A sum needs no parentheses around its terms (everything else binds tighter).
         let (x, y) = if op == '+' {
-            if let (Dim::Sym(s), Dim::Known(j)) = (a, b) {
-                if let Some((rest, k)) = s.rsplit_once('+') {
-                    if let Some(sum) = k.parse::<u64>().ok().and_then(|k| k.checked_add(*j)) {
-                        return Dim::sym(&format!("{rest}+{sum}"));
-                    }
-                }
-            }
             (a.text(), b.text())
         } else {
             (a.wrap(), b.wrap())
@@ -105,6 +93,52 @@ impl Dim {
         match (x, y) {
             (Some(x), Some(y)) if x.len() + y.len() < MAX_EXPRESSION => Dim::sym(&format!("{x}{op}{y}")),
             _ => Dim::Unknown,
+        }
+    }
+
+    /// The dim plus a constant, which may be negative: `T+2`, `T-1`. A constant ending a
+    /// sum joins it (`T+2` less 3 is `T-1`). A size that would go below zero, or a
+    /// data-dependent one (`…@node`, whose node name may hold `-`), is unknown.
+    pub fn offset(&self, delta: i64) -> Dim {
+        match self {
+            _ if delta == 0 => self.clone(),
+            Dim::Known(a) => i64::try_from(*a)
+                .ok()
+                .and_then(|a| a.checked_add(delta))
+                .and_then(|v| u64::try_from(v).ok())
+                .map_or(Dim::Unknown, Dim::Known),
+            Dim::Sym(s) if s.contains('@') => Dim::Unknown,
+            Dim::Sym(s) => {
+                // `rest±k` with k a trailing whole number: a top-level term, since anything
+                // inside parentheses would be followed by `)`.
+                let split = s
+                    .rfind(['+', '-'])
+                    .filter(|&i| i > 0 && s[i + 1..].parse::<u64>().is_ok());
+                let (rest, base) = match split {
+                    Some(i) => {
+                        let k: i64 = match s[i + 1..].parse() {
+                            Ok(k) => k,
+                            Err(_) => return Dim::Unknown,
+                        };
+                        (&s[..i], if &s[i..=i] == "-" { -k } else { k })
+                    }
+                    None => (&s[..], 0),
+                };
+                let Some(net) = base.checked_add(delta) else {
+                    return Dim::Unknown;
+                };
+                let text = match net {
+                    0 => rest.to_string(),
+                    n if n > 0 => format!("{rest}+{n}"),
+                    n => format!("{rest}-{}", n.unsigned_abs()),
+                };
+                if text.len() < MAX_EXPRESSION {
+                    Dim::sym(&text)
+                } else {
+                    Dim::Unknown
+                }
+            }
+            Dim::Unknown => Dim::Unknown,
         }
     }
 
@@ -127,6 +161,10 @@ impl Dim {
             (Dim::Known(a), Dim::Known(b)) => Dim::Known(a.checked_add(*b)?),
             (Dim::Known(0), d) | (d, Dim::Known(0)) => d.clone(),
             (Dim::Unknown, _) | (_, Dim::Unknown) => Dim::Unknown,
+            (d @ Dim::Sym(_), Dim::Known(k)) | (Dim::Known(k), d @ Dim::Sym(_)) => match i64::try_from(*k) {
+                Ok(k) => d.offset(k),
+                Err(_) => Dim::Unknown,
+            },
             (a, b) => Dim::expression(a, '+', b),
         })
     }
@@ -148,9 +186,20 @@ pub const MAX_EXPRESSION: usize = 256;
 /// `text` without its spaces, if it is a sum of products of identifiers and whole numbers
 /// (with parentheses) that uses at least one operator.
 pub fn compact_expression(text: &str) -> Option<String> {
-    let compact: String = text.split_whitespace().collect();
-    let operators = compact.contains(['+', '*']);
+    // `//` is how exporters that print Python expressions write the floor division tilecut
+    // writes as `/` (the same for sizes, which are never negative).
+    let compact: String = text.split_whitespace().collect::<String>().replace("//", "/");
+    let operators = compact.contains(['+', '*', '-', '/']);
     (operators && evaluate(&compact, &|_| Some(1)).is_ok()).then_some(compact)
+}
+
+/// A token of an expression without a trailing `-k` or `/k` (whole numbers): `T-1` is `T`,
+/// `T/2` is `T`; `seq-len` and `N/A` are names and stay whole.
+fn strip_constant_tail(t: &str) -> &str {
+    match t.find(['-', '/']) {
+        Some(i) if t[i + 1..].split(['-', '/']).all(|x| x.parse::<u64>().is_ok()) => &t[..i],
+        _ => t,
+    }
 }
 
 /// The text given to `evaluate` is not a sum of products.
@@ -173,10 +222,17 @@ pub fn evaluate(text: &str, value: &dyn Fn(&str) -> Option<u64>) -> Result<Optio
         }
         fn sum(&mut self, depth: usize) -> Result<Option<u64>, NotAnExpression> {
             let mut acc = self.product(depth)?;
-            while self.peek() == Some(b'+') {
+            while let Some(op @ (b'+' | b'-')) = self.peek() {
                 self.at += 1;
+                // Subtraction is of whole numbers only (what tilecut writes, see `offset`).
+                if op == b'-' && !self.peek().is_some_and(|c| c.is_ascii_digit()) {
+                    return Err(NotAnExpression);
+                }
                 let r = self.product(depth)?;
-                acc = acc.zip(r).and_then(|(a, b)| a.checked_add(b));
+                // A size below zero is no size: unknown.
+                acc = acc
+                    .zip(r)
+                    .and_then(|(a, b)| if op == b'+' { a.checked_add(b) } else { a.checked_sub(b) });
             }
             Ok(acc)
         }
@@ -355,8 +411,12 @@ mod tests {
             Dim::sym("past_sequence_length+1")
         );
         assert_eq!(Dim::param("2 * (a + b)"), Dim::sym("2*(a+b)"));
-        // Not sums of products: kept whole, one symbol each.
-        for text in ["batch size", "seq - 1", "floor(T / 2)", "a + ", "(a + b"] {
+        // Python's floor division, as exporters that print Python expressions write a
+        // strided size (spelling from memory).
+        assert_eq!(Dim::param("(s0 - 1)//2 + 1"), Dim::sym("(s0-1)/2+1"));
+        assert_eq!(Dim::param("(s0 - 1)//2 + 1").symbols(), ["s0".to_string()]);
+        // Not expressions tilecut reads: kept whole, one symbol each.
+        for text in ["batch size", "a - b", "floor(T / 2)", "a + ", "(a + b", "T / n"] {
             assert_eq!(Dim::param(text), Dim::sym(text), "{text}");
             assert_eq!(Dim::param(text).symbols(), [text.to_string()], "{text}");
         }
@@ -414,6 +474,22 @@ mod tests {
         let sum = Dim::sym("a+b").add(&Dim::sym("c/2+1"));
         assert_eq!(sum, Some(Dim::sym("a+b+c/2+1")));
         assert_eq!(evaluate("a+b+c/2+1", &|_| Some(5)), Ok(Some(5 + 5 + 2 + 1)));
+        // Constants subtract: a window that shrinks, a crop; below zero is no size.
+        assert_eq!(t.offset(-2), Dim::sym("T-2"));
+        assert_eq!(t.offset(-2).offset(5), Dim::sym("T+3"));
+        assert_eq!(t.offset(3).offset(-3), t);
+        assert_eq!(t.offset(-2).div_floor(2), Dim::sym("(T-2)/2"));
+        assert_eq!(t.offset(-2).symbols(), ["T".to_string()]);
+        assert_eq!(Dim::Known(1).offset(-2), Dim::Unknown);
+        assert_eq!(Dim::sym("k@/a-b").offset(-1), Dim::Unknown);
+        for v in [2u64, 3, 10] {
+            let at = |x: &str| (x == "T").then_some(v);
+            assert_eq!(evaluate("(T-2)/2", &at), Ok(Some((v - 2) / 2)));
+        }
+        assert_eq!(evaluate("T-2", &|_| Some(1)), Ok(None), "below zero");
+        assert_eq!(evaluate("a-b", &|_| Some(1)), Err(NotAnExpression));
+        // Names with a dash or a slash in them are names, not differences or quotients.
+        assert_eq!(Dim::sym("seq-len").symbols(), ["seq-len".to_string()]);
         // A file's name with a slash in it is a name, not a quotient.
         assert_eq!(Dim::sym("N/A").symbols(), ["N/A".to_string()]);
         assert_eq!(evaluate("N/A", &|_| Some(4)), Err(NotAnExpression));

@@ -48,10 +48,9 @@ fn spatial_out(
         Dim::Known(i) => *i as i64,
         Dim::Unknown => return Ok(Dim::Unknown),
         // A symbolic size stays symbolic: the specification's floor((in + pads − extent) / s)
-        // + 1 is floor((in + c) / s) with c = pads − extent + s, written so while c is not
-        // negative (dim expressions do not subtract); SAME padding gives ceil(in / s), that
-        // is c = s − 1. With ceil_mode and a stride the last window's placement rule cannot
-        // be written either: unknown until the size is fixed.
+        // + 1 is floor((in + c) / s) with c = pads − extent + s; SAME padding gives
+        // ceil(in / s), that is c = s − 1. With ceil_mode and a stride the last window's
+        // placement rule cannot be written: unknown until the size is fixed.
         sym @ Dim::Sym(_) => {
             if ceil_mode && s != 1 {
                 return Ok(Dim::Unknown);
@@ -61,10 +60,7 @@ fn spatial_out(
                 "VALID" => s - ek,
                 _ => pad_total - ek + s,
             };
-            let Ok(c) = u64::try_from(c) else {
-                return Ok(Dim::Unknown);
-            };
-            return Ok(sym.add(&Dim::Known(c)).map_or(Dim::Unknown, |d| d.div_floor(s as u64)));
+            return Ok(sym.offset(c).div_floor(s as u64));
         }
     };
     let out = match auto_pad {
@@ -236,15 +232,7 @@ fn conv_transpose(ctx: &Ctx) -> Inferred {
                     .ok_or("output size overflows")?;
                 Dim::Known(o.max(0) as u64)
             }
-            // A symbolic length stays symbolic while the constant part is not negative (dim
-            // expressions do not subtract).
-            sym @ Dim::Sym(_) => match u64::try_from(extra) {
-                Ok(extra) => sym
-                    .mul(&Dim::Known(s as u64))
-                    .and_then(|d| d.add(&Dim::Known(extra)))
-                    .unwrap_or(Dim::Unknown),
-                Err(_) => Dim::Unknown,
-            },
+            sym @ Dim::Sym(_) => sym.mul(&Dim::Known(s as u64)).map_or(Dim::Unknown, |d| d.offset(extra)),
             Dim::Unknown => Dim::Unknown,
         });
     }

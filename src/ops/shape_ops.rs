@@ -741,10 +741,8 @@ fn pad(ctx: &Ctx) -> Inferred {
         let total = pads[k].checked_add(pads[k + axes.len()]).ok_or("pads overflow")?;
         out[a] = match &d[a] {
             Dim::Known(v) => Dim::Known((*v as i64).saturating_add(total).max(0) as u64),
-            // A symbolic length grows by what is added; cropping it (negative pads) would
-            // need subtraction, which dim expressions do not have.
-            sym @ Dim::Sym(_) if total >= 0 => sym.add(&Dim::Known(total as u64)).unwrap_or(Dim::Unknown),
-            _ => Dim::Unknown,
+            sym @ Dim::Sym(_) => sym.offset(total),
+            Dim::Unknown => Dim::Unknown,
         };
     }
     Ok(vec![tensor(dt, Shape::of(out))])

@@ -211,6 +211,8 @@ pub struct NotAnExpression;
 /// text is not such an expression; `Ok(None)` if `value` does not know an identifier, the
 /// arithmetic overflows or divides by zero.
 pub fn evaluate(text: &str, value: &dyn Fn(&str) -> Option<u64>) -> Result<Option<u64>, NotAnExpression> {
+    /// An operator's character and its checked arithmetic.
+    type Operator = (u8, fn(u64, u64) -> Option<u64>);
     struct P<'a> {
         s: &'a [u8],
         at: usize,
@@ -220,36 +222,33 @@ pub fn evaluate(text: &str, value: &dyn Fn(&str) -> Option<u64>) -> Result<Optio
         fn peek(&self) -> Option<u8> {
             self.s.get(self.at).copied()
         }
-        fn sum(&mut self, depth: usize) -> Result<Option<u64>, NotAnExpression> {
-            let mut acc = self.product(depth)?;
-            while let Some(op @ (b'+' | b'-')) = self.peek() {
+        /// One precedence level: operands joined by `join` (any operand) or `by_number` (a
+        /// whole number only, what tilecut writes: see `offset` and `div_floor`).
+        fn chain(
+            &mut self,
+            depth: usize,
+            (join, join_op): Operator,
+            (by_number, number_op): Operator,
+            operand: fn(&mut Self, usize) -> Result<Option<u64>, NotAnExpression>,
+        ) -> Result<Option<u64>, NotAnExpression> {
+            let mut acc = operand(self, depth)?;
+            while let Some(op) = self.peek().filter(|&c| c == join || c == by_number) {
                 self.at += 1;
-                // Subtraction is of whole numbers only (what tilecut writes, see `offset`).
-                if op == b'-' && !self.peek().is_some_and(|c| c.is_ascii_digit()) {
+                if op == by_number && !self.peek().is_some_and(|c| c.is_ascii_digit()) {
                     return Err(NotAnExpression);
                 }
-                let r = self.product(depth)?;
-                // A size below zero is no size: unknown.
-                acc = acc
-                    .zip(r)
-                    .and_then(|(a, b)| if op == b'+' { a.checked_add(b) } else { a.checked_sub(b) });
+                let r = operand(self, depth)?;
+                // Overflow, a size below zero or a division by zero: unknown.
+                let f = if op == join { join_op } else { number_op };
+                acc = acc.zip(r).and_then(|(a, b)| f(a, b));
             }
             Ok(acc)
         }
+        fn sum(&mut self, depth: usize) -> Result<Option<u64>, NotAnExpression> {
+            self.chain(depth, (b'+', u64::checked_add), (b'-', u64::checked_sub), Self::product)
+        }
         fn product(&mut self, depth: usize) -> Result<Option<u64>, NotAnExpression> {
-            let mut acc = self.factor(depth)?;
-            while let Some(op @ (b'*' | b'/')) = self.peek() {
-                self.at += 1;
-                // Division is by whole numbers only (what tilecut writes, see `div_floor`).
-                if op == b'/' && !self.peek().is_some_and(|c| c.is_ascii_digit()) {
-                    return Err(NotAnExpression);
-                }
-                let r = self.factor(depth)?;
-                acc = acc
-                    .zip(r)
-                    .and_then(|(a, b)| if op == b'*' { a.checked_mul(b) } else { a.checked_div(b) });
-            }
-            Ok(acc)
+            self.chain(depth, (b'*', u64::checked_mul), (b'/', u64::checked_div), Self::factor)
         }
         fn factor(&mut self, depth: usize) -> Result<Option<u64>, NotAnExpression> {
             // Dims come from files: a hostile one must not nest parentheses into a stack overflow.

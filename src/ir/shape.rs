@@ -111,16 +111,14 @@ impl Dim {
             Dim::Sym(s) => {
                 // `rest±k` with k a trailing whole number: a top-level term, since anything
                 // inside parentheses would be followed by `)`.
-                let split = s
+                let tail = s
                     .rfind(['+', '-'])
-                    .filter(|&i| i > 0 && s[i + 1..].parse::<u64>().is_ok());
-                let (rest, base) = match split {
-                    Some(i) => {
-                        let k: i64 = match s[i + 1..].parse() {
-                            Ok(k) => k,
-                            Err(_) => return Dim::Unknown,
-                        };
-                        (&s[..i], if &s[i..=i] == "-" { -k } else { k })
+                    .filter(|&i| i > 0)
+                    .and_then(|i| Some((i, s[i + 1..].parse::<u64>().ok()?)));
+                let (rest, base) = match tail {
+                    Some((i, k)) => {
+                        let Ok(k) = i64::try_from(k) else { return Dim::Unknown };
+                        (&s[..i], if s.as_bytes()[i] == b'-' { -k } else { k })
                     }
                     None => (&s[..], 0),
                 };

@@ -9,6 +9,12 @@
 //! nodes (the decoder cannot see where a nested message ends), so all hints of one decode
 //! share a budget of what the file could hold (`decode_model`): a hostile file nesting graphs
 //! cannot make each level reserve the whole run again.
+//!
+//! The first large node run of a decode (the main graph's, in any file written in field order)
+//! is decoded on all cores: the run is cut at node boundaries into pieces of about equal bytes
+//! and each piece decodes into its own slots of the node list. Every node goes through the
+//! same `merge` with the same recursion context as in a sequential decode, so the result and
+//! any error are the same; only the order in which nodes are visited differs.
 
 use bytes::{Buf, BufMut};
 use prost::encoding::{self, DecodeContext, WireType};
@@ -50,21 +56,39 @@ thread_local! {
     /// file (the smallest node entry), which is what a full decode could allocate anyway.
     /// Zero outside `decode_model`: no hints, prost's growth.
     static HINT_BUDGET: std::cell::Cell<usize> = const { std::cell::Cell::new(0) };
+    /// Whether the current `decode_model` may still split a node run across threads: once per
+    /// decode, so that nested graphs decoded by a worker never start workers of their own.
+    static SPLIT_ALLOWED: std::cell::Cell<bool> = const { std::cell::Cell::new(false) };
 }
+
+/// Below this many nodes a run decodes on the calling thread: starting a thread costs about as
+/// much as decoding a few hundred nodes.
+const SPLIT_MIN_NODES: usize = 4096;
+/// At most this many threads decode one run.
+const SPLIT_MAX_THREADS: usize = 4;
+/// A worker's stack: as deep as the main thread's, for nodes nesting graphs up to prost's
+/// recursion limit.
+const WORKER_STACK: usize = 8 << 20;
 
 /// Decodes a `ModelProto` with node-list hints bounded by the file's size.
 pub fn decode_model(bytes: bytes::Bytes) -> Result<super::ModelProto, DecodeError> {
     HINT_BUDGET.with(|b| b.set(bytes.len() / 2));
+    SPLIT_ALLOWED.with(|s| s.set(true));
     let out = <super::ModelProto as prost::Message>::decode(bytes);
     HINT_BUDGET.with(|b| b.set(0));
+    SPLIT_ALLOWED.with(|s| s.set(false));
     out
 }
 
-/// How many length-delimited field-1 entries follow in `wire`, which starts at the length of
-/// the first one (its key already read). Stops at anything else or at a malformed length.
-fn node_run_length(mut wire: &[u8]) -> usize {
-    const NODE_KEY: u64 = (field::NODE as u64) << 3 | WireType::LengthDelimited as u64;
+const NODE_KEY: u64 = (field::NODE as u64) << 3 | WireType::LengthDelimited as u64;
+
+/// The run of length-delimited field-1 entries at the start of `wire`, which starts at the
+/// length of the first one (its key already read): how many there are and where the last one
+/// ends. Stops at anything else or at a malformed length.
+fn node_run(mut wire: &[u8]) -> (usize, usize) {
+    let total = wire.len();
     let mut count = 0;
+    let mut end = 0;
     while let Ok(len) = encoding::decode_varint(&mut wire) {
         let Ok(len) = usize::try_from(len) else { break };
         if len > wire.len() {
@@ -72,11 +96,135 @@ fn node_run_length(mut wire: &[u8]) -> usize {
         }
         wire = &wire[len..];
         count += 1;
+        end = total - wire.len();
         if encoding::decode_varint(&mut wire) != Ok(NODE_KEY) {
             break;
         }
     }
-    count
+    (count, end)
+}
+
+/// Where `run` (a node run as `node_run` measured it) is cut into `pieces` parts of about
+/// equal bytes: for each part after the first, its first node's index and the offset of that
+/// node's length. Never cuts a run into empty parts.
+fn run_cuts(run: &[u8], count: usize, pieces: usize) -> Vec<(usize, usize)> {
+    let mut cuts = Vec::with_capacity(pieces.saturating_sub(1));
+    let mut wire = run;
+    let mut index = 0;
+    while cuts.len() + 1 < pieces && index < count {
+        let at = run.len() - wire.len();
+        if index > 0 && at * pieces >= run.len() * (cuts.len() + 1) {
+            cuts.push((index, at));
+        }
+        // The run was measured: each length and key decodes and each length fits.
+        let Ok(len) = encoding::decode_varint(&mut wire) else {
+            break;
+        };
+        let Some(rest) = usize::try_from(len).ok().and_then(|l| wire.get(l..)) else {
+            break;
+        };
+        wire = rest;
+        index += 1;
+        if index < count && encoding::decode_varint(&mut wire).is_err() {
+            break;
+        }
+    }
+    cuts
+}
+
+/// Decodes the `slots.len()` nodes of `piece` (length-prefixed nodes joined by node keys) into
+/// their slots, each exactly as the sequential decode would.
+fn decode_piece(slots: &mut [NodeProto], mut piece: bytes::Bytes, ctx: DecodeContext) -> Result<(), DecodeError> {
+    let n = slots.len();
+    for (i, slot) in slots.iter_mut().enumerate() {
+        encoding::message::merge(WireType::LengthDelimited, slot, &mut piece, ctx.clone())?;
+        if i + 1 < n && encoding::decode_varint(&mut piece)? != NODE_KEY {
+            return Err(DecodeError::new("node run changed while decoding"));
+        }
+    }
+    Ok(())
+}
+
+/// How many runs were decoded split, so that tests can tell the split path ran.
+#[cfg(test)]
+static SPLIT_RUNS: std::sync::atomic::AtomicUsize = std::sync::atomic::AtomicUsize::new(0);
+
+/// Slots of the node list and the bytes of the nodes that go in them.
+type Piece<'a> = (&'a mut [NodeProto], bytes::Bytes);
+
+/// Decodes the run of `count` nodes whose `len` bytes start `buf` on up to `threads` threads,
+/// appending them to `nodes`. Falls back to one thread where no other can be started.
+fn decode_run_split(
+    nodes: &mut Vec<NodeProto>,
+    buf: &mut impl Buf,
+    count: usize,
+    len: usize,
+    threads: usize,
+    ctx: DecodeContext,
+) -> Result<(), DecodeError> {
+    #[cfg(test)]
+    SPLIT_RUNS.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+    let run = buf.copy_to_bytes(len);
+    let cuts = run_cuts(&run, count, threads);
+    let start = nodes.len();
+    nodes.resize_with(start + count, NodeProto::default);
+    let mut slots: &mut [NodeProto] = &mut nodes[start..];
+    // Each piece shares the file's bytes through an owner of its own, so that the reference
+    // counts the pieces' strings take do not all land on one contended counter.
+    let mut pieces = Vec::with_capacity(cuts.len() + 1);
+    let mut prev = (0, 0);
+    for &(index, at) in cuts.iter().chain(std::iter::once(&(count, run.len()))) {
+        let (head, tail) = std::mem::take(&mut slots).split_at_mut(index - prev.0);
+        slots = tail;
+        // A piece after the first starts at a node key's end, so its bytes begin with a length;
+        // a piece before the last ends with the next piece's key, which it does not read.
+        let bytes = bytes::Bytes::from_owner(run.slice(prev.1..at));
+        pieces.push((head, bytes));
+        prev = (index, at);
+    }
+    // A piece whose worker cannot start is decoded here after the first; the cells hand each
+    // piece to exactly one thread.
+    let cells: Vec<std::sync::Mutex<Option<Piece>>> =
+        pieces.into_iter().map(|p| std::sync::Mutex::new(Some(p))).collect();
+    fn run_piece(cell: &std::sync::Mutex<Option<Piece>>, ctx: DecodeContext) -> Result<(), DecodeError> {
+        // `take` cannot panic, so a poisoned lock still holds a whole piece or none.
+        let piece = cell.lock().unwrap_or_else(|e| e.into_inner()).take();
+        match piece {
+            Some((slots, bytes)) => decode_piece(slots, bytes, ctx),
+            None => Ok(()),
+        }
+    }
+    std::thread::scope(|scope| {
+        let workers: Vec<_> = cells
+            .iter()
+            .skip(1)
+            .map(|cell| {
+                let ctx = ctx.clone();
+                std::thread::Builder::new()
+                    .stack_size(WORKER_STACK)
+                    .spawn_scoped(scope, move || run_piece(cell, ctx))
+                    .ok()
+            })
+            .collect();
+        let mut result = match cells.first() {
+            Some(cell) => run_piece(cell, ctx.clone()),
+            None => Ok(()),
+        };
+        for (cell, worker) in cells.iter().skip(1).zip(workers) {
+            let r = match worker {
+                Some(handle) => handle
+                    .join()
+                    .unwrap_or_else(|_| Err(DecodeError::new("a decoding thread panicked"))),
+                None => run_piece(cell, ctx.clone()),
+            };
+            // Pieces are checked in file order: the first error is the one a sequential decode
+            // meets first.
+            if result.is_ok() {
+                result = r;
+            }
+        }
+        result
+    })
 }
 
 impl prost::Message for GraphProto {
@@ -102,15 +250,22 @@ impl prost::Message for GraphProto {
         match tag {
             field::NODE => {
                 if self.node.is_empty() && wire_type == WireType::LengthDelimited {
-                    let run = HINT_BUDGET.with(|b| {
-                        let run = if b.get() == 0 {
-                            0
-                        } else {
-                            node_run_length(buf.chunk()).min(b.get())
-                        };
-                        b.set(b.get() - run);
-                        run
-                    });
+                    let budget = HINT_BUDGET.with(|b| b.get());
+                    let (count, len) = if budget == 0 { (0, 0) } else { node_run(buf.chunk()) };
+                    let threads = || {
+                        std::thread::available_parallelism()
+                            .map_or(1, |n| n.get())
+                            .min(SPLIT_MAX_THREADS)
+                    };
+                    if count >= SPLIT_MIN_NODES && SPLIT_ALLOWED.with(|s| s.replace(false)) && threads() > 1 {
+                        // The run lies within the file (`node_run` checked each length), so
+                        // its count is within the budget.
+                        HINT_BUDGET.with(|b| b.set(budget.saturating_sub(count)));
+                        self.node.reserve_exact(count);
+                        return decode_run_split(&mut self.node, buf, count, len, threads(), ctx);
+                    }
+                    let run = count.min(budget);
+                    HINT_BUDGET.with(|b| b.set(budget - run));
                     self.node.reserve_exact(run);
                 }
                 super::node::merge_messages(wire_type, &mut self.node, buf, ctx)
@@ -251,5 +406,135 @@ mod tests {
                 "cut {cut}"
             );
         }
+    }
+
+    /// A graph over the split threshold: nodes with attributes, empty optional inputs and, at
+    /// both ends and in the middle, an `If` carrying a subgraph.
+    fn large_model(nodes: usize) -> super::super::ModelProto {
+        use super::super::AttributeProto;
+        let mut list = Vec::with_capacity(nodes);
+        for i in 0..nodes {
+            let mut n = node(if i % 3 == 0 { "Conv" } else { "Relu" }, &format!("t{i}"));
+            n.name = format!("n{i}").into();
+            n.input = vec![format!("t{}", i.saturating_sub(1)).into(), "".into()];
+            n.attribute.push(AttributeProto {
+                name: "k".into(),
+                ints: vec![i as i64, 3],
+                r#type: 7,
+                ..Default::default()
+            });
+            if i == 0 || i == nodes / 2 || i + 1 == nodes {
+                let body = GraphProto {
+                    node: (0..5).map(|j| node("Neg", &format!("b{i}_{j}"))).collect(),
+                    ..Default::default()
+                };
+                n.attribute.push(AttributeProto {
+                    name: "then_branch".into(),
+                    g: Some(Box::new(body)),
+                    r#type: 5,
+                    ..Default::default()
+                });
+            }
+            list.push(n);
+        }
+        super::super::ModelProto {
+            ir_version: 9,
+            graph: Some(GraphProto {
+                node: list,
+                name: "main".into(),
+                ..Default::default()
+            }),
+            ..Default::default()
+        }
+    }
+
+    fn split_runs() -> usize {
+        SPLIT_RUNS.load(std::sync::atomic::Ordering::Relaxed)
+    }
+
+    #[test]
+    fn a_large_run_decodes_split_exactly_as_encoded() {
+        let m = large_model(3 * SPLIT_MIN_NODES);
+        let wire = Bytes::from(m.encode_to_vec());
+        let before = split_runs();
+        let d = decode_model(wire.clone()).expect("decodes");
+        if std::thread::available_parallelism().map_or(1, |n| n.get()) > 1 {
+            assert!(split_runs() > before, "the run was not split");
+        }
+        assert_eq!(d, m);
+        // And as the sequential decode (prost's own entry point never splits) has it.
+        assert_eq!(d, super::super::ModelProto::decode(wire).expect("decodes"));
+    }
+
+    /// A fault in any piece is the same error, word for word, as the sequential decode's; with
+    /// faults in two pieces, the first in file order.
+    #[test]
+    fn a_fault_in_a_split_run_is_the_sequential_error() {
+        let m = large_model(2 * SPLIT_MIN_NODES);
+        let wire = m.encode_to_vec();
+        let find = |needle: &[u8]| wire.windows(needle.len()).position(|w| w == needle).expect("present");
+        // Node names `n100` and `n7000` (in the first and second halves), made invalid UTF-8.
+        let early = find(b"n100\x22") + 1;
+        let late = find(b"n7000\x22") + 1;
+        for faults in [vec![late], vec![early], vec![early, late]] {
+            let mut bad = wire.clone();
+            for &at in &faults {
+                bad[at] = 0xff;
+            }
+            let bad = Bytes::from(bad);
+            let split = decode_model(bad.clone()).expect_err("invalid UTF-8");
+            let sequential = super::super::ModelProto::decode(bad).expect_err("invalid UTF-8");
+            assert_eq!(split.to_string(), sequential.to_string(), "faults at {faults:?}");
+        }
+        // A run truncated inside its last node is shorter than measured: not split, an error.
+        let cut = Bytes::copy_from_slice(&wire[..wire.len() - 3]);
+        assert!(decode_model(cut).is_err());
+    }
+
+    #[test]
+    fn runs_are_cut_at_node_boundaries_into_even_pieces() {
+        let g = GraphProto {
+            node: (0..100).map(|i| node("Relu", &format!("y{i}"))).collect(),
+            ..Default::default()
+        };
+        let wire = g.encode_to_vec();
+        // The run starts after the first key.
+        let run = &wire[1..];
+        let (count, end) = node_run(run);
+        assert_eq!((count, end), (100, run.len()));
+        for pieces in 1..=5 {
+            let cuts = run_cuts(run, count, pieces);
+            assert_eq!(cuts.len(), pieces - 1);
+            let mut prev = (0, 0);
+            for &(index, at) in &cuts {
+                assert!(index > prev.0 && at > prev.1, "{cuts:?}");
+                // Each cut is the start of node `index`'s length, right after its key.
+                assert_eq!(run[at - 1], NODE_KEY as u8);
+                let nodes: Vec<NodeProto> = g.node[index..].to_vec();
+                let rest = GraphProto {
+                    node: nodes,
+                    ..Default::default()
+                }
+                .encode_to_vec();
+                assert_eq!(&run[at..], &rest[1..]);
+                prev = (index, at);
+            }
+            // Pieces of about equal bytes: none more than one node off an even share.
+            let mut bounds: Vec<usize> = cuts.iter().map(|c| c.1).collect();
+            bounds.insert(0, 0);
+            bounds.push(run.len());
+            let node_bytes = run.len() / count + 2;
+            for w in bounds.windows(2) {
+                let share = run.len() / pieces;
+                assert!((w[1] - w[0]).abs_diff(share) <= node_bytes, "{bounds:?}");
+            }
+        }
+        // More pieces than nodes: one per node at most.
+        let two = &GraphProto {
+            node: g.node[..2].to_vec(),
+            ..Default::default()
+        }
+        .encode_to_vec()[1..];
+        assert_eq!(run_cuts(two, 2, 4).len(), 1);
     }
 }

@@ -313,9 +313,6 @@ impl std::ops::Deref for NodeRef<'_> {
 /// Free names of a graph: (tensor name, first node reading it).
 type FreeNames = Vec<(String, String)>;
 
-/// A node's imported bodies and its attributes.
-type BodyParts = (Vec<Body>, Vec<Attr>);
-
 fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Graph, FreeNames), ReadError> {
     if depth > MAX_SUBGRAPH_DEPTH {
         return Err(cx.err(format!(
@@ -410,65 +407,48 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
         );
     }
 
-    // Node outputs, duplicate producers refused; each name a node writes or reads is looked
-    // up here, once, and kept as its symbol (`NONE` for an omitted optional slot).
-    let mut outs = Csr::with_rows(flat.len());
-    let mut ins = Csr::with_rows(flat.len());
-    for (i, n) in flat.iter().enumerate() {
-        for o in &n.proto.output {
-            if o.is_empty() {
-                outs.push(NONE);
-                continue;
-            }
-            let k = syms.intern(o);
-            let other = syms.producer[k as usize];
-            if other != NONE {
-                let other = other as usize;
-                return Err(cx.err(format!(
-                    "tensor `{o}` is produced twice: by node `{}` and by node `{}`",
-                    display_name(&flat[other].proto, other),
-                    display_name(&n.proto, i)
-                )));
-            }
-            if syms.value[k as usize].is_some() {
-                return Err(cx.err(format!(
-                    "tensor `{o}` is produced by node `{}` but is also a graph input or initializer",
-                    display_name(&n.proto, i)
-                )));
-            }
-            syms.producer[k as usize] = i as u32;
-            outs.push(k);
-        }
-        outs.end_row();
-        for x in &n.proto.input {
-            ins.push(if x.is_empty() { NONE } else { syms.intern(x) });
-        }
-        ins.end_row();
-    }
+    // Two passes over the nodes that do not depend on each other: tensor names into symbols,
+    // and attributes (with the subgraphs they carry) into the IR. On a large main graph the
+    // second runs on another thread.
+    let parallel = depth == 0 && flat.len() >= PARALLEL_MIN_NODES;
+    let path = cx.path;
+    let (names, attrs) = if parallel {
+        let flat = &flat;
+        let syms = &mut syms;
+        std::thread::scope(|scope| {
+            let worker = std::thread::Builder::new()
+                .stack_size(WORKER_STACK)
+                .spawn_scoped(scope, || attr_pass(cx, flat, depth));
+            let names = name_pass(path, flat, syms);
+            let attrs = worker
+                .ok()
+                .map(|h| h.join().unwrap_or_else(|p| std::panic::resume_unwind(p)));
+            (names, attrs)
+        })
+    } else {
+        (name_pass(path, &flat, &mut syms), None)
+    };
+    // A sequential import meets the name pass's faults first.
+    let (outs, ins) = names?;
+    let attrs = match attrs {
+        Some(a) => a?,
+        // Small graphs, or no thread could be started.
+        None => attr_pass(cx, &flat, depth)?,
+    };
+    let AttrPass {
+        attrs: mut attrs_of,
+        bodies: mut bodies_of,
+        reads: body_reads,
+    } = attrs;
 
-    // Bodies first: their free names are inputs of the carrying node. They are kept apart
-    // from the bodies, which move into the nodes, so the name table can borrow them.
-    let mut bodies_of: Vec<BodyParts> = Vec::with_capacity(flat.len());
-    let mut body_reads: Vec<Vec<String>> = Vec::with_capacity(flat.len());
-    for n in &flat {
-        let mut bodies = Vec::new();
-        let mut free: FreeNames = Vec::new();
-        let mut attrs = Vec::with_capacity(n.proto.attribute.len());
-        for a in &n.proto.attribute {
-            let value = attr_value(cx, a, depth, &mut bodies, &mut free)?;
-            attrs.push(Attr {
-                name: cx.names.get(&a.name),
-                value,
-            });
-        }
-        bodies_of.push((bodies, attrs));
-        body_reads.push(free.into_iter().map(|(name, _)| name).collect());
-    }
-
+    // The outer names bodies read, as symbols: after every name the nodes write or read.
     let mut body_syms = Csr::with_rows(flat.len());
-    for reads in &body_reads {
-        for r in reads {
-            body_syms.push(syms.intern(r));
+    let mut readers = body_reads.iter().peekable();
+    for i in 0..flat.len() {
+        if let Some((_, reads)) = readers.next_if(|r| r.0 == i) {
+            for r in reads {
+                body_syms.push(syms.intern(r));
+            }
         }
         body_syms.end_row();
     }
@@ -506,7 +486,11 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     for &i in &order {
         let n = &flat[i];
         let id = NodeId(nodes.len() as u32);
-        let (bodies, attrs) = std::mem::take(&mut bodies_of[i]);
+        let attrs = std::mem::take(&mut attrs_of[i]);
+        let bodies = match bodies_of.binary_search_by_key(&i, |b| b.0) {
+            Ok(k) => std::mem::take(&mut bodies_of[k].1),
+            Err(_) => Vec::new(),
+        };
         let file_name = n.proto.name.as_str();
         // One hash per name in the common case: made names are rare, and `insert` answers
         // whether the name was free.
@@ -586,7 +570,7 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
             domain: cx.names.get(&n.proto.domain),
             inputs: node_inputs.into_boxed_slice(),
             outputs: node_outputs.into_boxed_slice(),
-            attrs: attrs.into_boxed_slice(),
+            attrs,
             bodies: bodies.into_boxed_slice(),
             captures: caps.into_boxed_slice(),
             from_function: n.from_function.clone(),
@@ -650,6 +634,95 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
         captured,
     };
     Ok((graph, graph_free))
+}
+
+/// Graphs with at least this many nodes import their attributes on a second thread.
+const PARALLEL_MIN_NODES: usize = 4096;
+/// A worker's stack: as deep as the main thread's, for subgraphs nested to the limit.
+const WORKER_STACK: usize = 8 << 20;
+
+/// Output and input symbols of every node (`NONE` for an omitted optional slot), duplicate
+/// producers refused: each name a node writes or reads is looked up here, once.
+fn name_pass<'a>(path: &Path, flat: &'a [FlatNode], syms: &mut Symbols<'a>) -> Result<(Csr, Csr), ReadError> {
+    let mut outs = Csr::with_rows(flat.len());
+    let mut ins = Csr::with_rows(flat.len());
+    for (i, n) in flat.iter().enumerate() {
+        for o in &n.proto.output {
+            if o.is_empty() {
+                outs.push(NONE);
+                continue;
+            }
+            let k = syms.intern(o);
+            let other = syms.producer[k as usize];
+            if other != NONE {
+                let other = other as usize;
+                return Err(ReadError::invalid(
+                    path,
+                    format!(
+                        "tensor `{o}` is produced twice: by node `{}` and by node `{}`",
+                        display_name(&flat[other].proto, other),
+                        display_name(&n.proto, i)
+                    ),
+                ));
+            }
+            if syms.value[k as usize].is_some() {
+                return Err(ReadError::invalid(
+                    path,
+                    format!(
+                        "tensor `{o}` is produced by node `{}` but is also a graph input or initializer",
+                        display_name(&n.proto, i)
+                    ),
+                ));
+            }
+            syms.producer[k as usize] = i as u32;
+            outs.push(k);
+        }
+        outs.end_row();
+        for x in &n.proto.input {
+            ins.push(if x.is_empty() { NONE } else { syms.intern(x) });
+        }
+        ins.end_row();
+    }
+    Ok((outs, ins))
+}
+
+/// Every node's attributes; for the few nodes that carry subgraphs (by node index, in node
+/// order), their bodies, and the outer names the bodies read (inputs of the node). The names
+/// are kept apart from the bodies, which move into the nodes, so that the name table can
+/// borrow them.
+struct AttrPass {
+    attrs: Vec<Box<[Attr]>>,
+    bodies: Vec<(usize, Vec<Body>)>,
+    reads: Vec<(usize, Vec<String>)>,
+}
+
+/// Imports the attributes of every node, and the subgraphs among them.
+fn attr_pass(cx: &mut Cx, flat: &[FlatNode], depth: usize) -> Result<AttrPass, ReadError> {
+    let mut out = AttrPass {
+        attrs: Vec::with_capacity(flat.len()),
+        bodies: Vec::new(),
+        reads: Vec::new(),
+    };
+    for (i, n) in flat.iter().enumerate() {
+        let mut bodies = Vec::new();
+        let mut free: FreeNames = Vec::new();
+        let mut attrs = Vec::with_capacity(n.proto.attribute.len());
+        for a in &n.proto.attribute {
+            let value = attr_value(cx, a, depth, &mut bodies, &mut free)?;
+            attrs.push(Attr {
+                name: cx.names.get(&a.name),
+                value,
+            });
+        }
+        out.attrs.push(attrs.into_boxed_slice());
+        if !bodies.is_empty() {
+            out.bodies.push((i, bodies));
+        }
+        if !free.is_empty() {
+            out.reads.push((i, free.into_iter().map(|(name, _)| name).collect()));
+        }
+    }
+    Ok(out)
 }
 
 fn display_name(n: &onnx::NodeProto, index: usize) -> String {

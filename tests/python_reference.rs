@@ -210,3 +210,276 @@ fn folded_reductions_agree_with_the_onnx_reference_evaluator() {
         assert_eq!(k.as_floats(), values, "{file}: folded values");
     }
 }
+
+/// A tensor for the folding checks: int64, float32 or bool, little-endian in `raw_data`.
+fn data(name: &str, dims: &[i64], kind: char, values: &[f64]) -> tilecut::onnx::TensorProto {
+    let (data_type, raw_data): (i32, Vec<u8>) = match kind {
+        'i' => (7, values.iter().flat_map(|&v| (v as i64).to_le_bytes()).collect()),
+        'f' => (1, values.iter().flat_map(|&v| (v as f32).to_le_bytes()).collect()),
+        _ => (9, values.iter().map(|&v| (v != 0.0) as u8).collect()),
+    };
+    tilecut::onnx::TensorProto {
+        name: name.into(),
+        dims: dims.to_vec(),
+        data_type,
+        raw_data: raw_data.into(),
+        ..Default::default()
+    }
+}
+
+/// The arithmetic exporters put on shapes and on small constants (paddings reversed with
+/// Transpose, sizes rounded with Floor and Ceil after a float division, Mod for alignment,
+/// boolean conditions of If) folds to the values the `onnx` package's reference evaluator
+/// computes for the same one-node model: negative operands of Mod under both sign rules,
+/// rounding of halves to even, the sign of zero, broadcasting, and Pow's result type
+/// following its base.
+#[test]
+fn folded_arithmetic_and_transposes_agree_with_the_onnx_reference_evaluator() {
+    if !python_onnx("folded_arithmetic_and_transposes_agree_with_the_onnx_reference_evaluator") {
+        return;
+    }
+    let dir = tempfile::tempdir().expect("tmp");
+    let halves = [-2.5, -1.5, -0.5, 0.5, 1.5, 2.5, 1.2, -1.7];
+    let signed = [-7.0, 7.0, -7.0, 7.0, 5.0, 0.0];
+    let divisors = [3.0, 3.0, -3.0, -3.0, 5.0, 4.0];
+    let cube: Vec<f64> = (0..24).map(f64::from).collect();
+    let perm = |p: &[i64]| tilecut::onnx::AttributeProto {
+        name: "perm".into(),
+        r#type: 7,
+        ints: p.to_vec(),
+        ..Default::default()
+    };
+    type Input<'a> = (&'a [i64], char, &'a [f64]);
+    let mut cases: Vec<(String, &str, Vec<Input>, Vec<tilecut::onnx::AttributeProto>)> = Vec::new();
+    for (tag, p) in [
+        ("p102", Some(vec![1, 0, 2])),
+        ("p201", Some(vec![2, 0, 1])),
+        ("rev", None),
+    ] {
+        for kind in ['i', 'f'] {
+            let attrs = p.as_deref().map(perm).into_iter().collect();
+            cases.push((
+                format!("Transpose_{tag}_{kind}"),
+                "Transpose",
+                vec![(&[2, 3, 4], kind, &cube)],
+                attrs,
+            ));
+        }
+    }
+    for fmod in [0, 1] {
+        cases.push((
+            format!("Mod_i_fmod{fmod}"),
+            "Mod",
+            vec![(&[6], 'i', &signed), (&[6], 'i', &divisors)],
+            vec![int_attr("fmod", fmod)],
+        ));
+    }
+    cases.push((
+        "Mod_f_fmod1".into(),
+        "Mod",
+        vec![(&[6], 'f', &signed), (&[6], 'f', &[3.0, 3.0, -3.0, -3.0, 5.0, 4.0])],
+        vec![int_attr("fmod", 1)],
+    ));
+    cases.push((
+        "Pow_ii".into(),
+        "Pow",
+        vec![(&[4], 'i', &[2.0, 3.0, -2.0, 5.0]), (&[4], 'i', &[3.0, 2.0, 3.0, 0.0])],
+        vec![],
+    ));
+    cases.push((
+        "Pow_ff".into(),
+        "Pow",
+        vec![(&[3], 'f', &[4.0, 2.0, 9.0]), (&[1], 'f', &[0.5])],
+        vec![],
+    ));
+    cases.push((
+        "Pow_if".into(),
+        "Pow",
+        vec![(&[4], 'i', &[2.0, 3.0, 4.0, 9.0]), (&[4], 'f', &[2.0, 0.5, 1.5, 0.5])],
+        vec![],
+    ));
+    for op in ["Floor", "Ceil", "Round", "Sign", "Neg"] {
+        cases.push((format!("{op}_f"), op, vec![(&[8], 'f', &halves)], vec![]));
+    }
+    cases.push(("Sign_i".into(), "Sign", vec![(&[3], 'i', &[-3.0, 0.0, 5.0])], vec![]));
+    cases.push(("Floor_i".into(), "Floor", vec![(&[3], 'i', &[-3.0, 0.0, 5.0])], vec![]));
+    cases.push(("Sqrt_f".into(), "Sqrt", vec![(&[3], 'f', &[4.0, 2.0, 0.25])], vec![]));
+    cases.push((
+        "Reciprocal_f".into(),
+        "Reciprocal",
+        vec![(&[3], 'f', &[4.0, -2.0, 0.25])],
+        vec![],
+    ));
+    for op in ["GreaterOrEqual", "LessOrEqual"] {
+        for kind in ['i', 'f'] {
+            cases.push((
+                format!("{op}_{kind}"),
+                op,
+                vec![
+                    (&[2, 3], kind, &[1.0, 2.0, 3.0, 4.0, 5.0, 6.0]),
+                    (&[3], kind, &[2.0, 2.0, 5.0]),
+                ],
+                vec![],
+            ));
+        }
+    }
+    let a = [0.0, 0.0, 1.0, 1.0];
+    let b = [0.0, 1.0, 0.0, 1.0];
+    for op in ["And", "Or", "Xor"] {
+        cases.push((format!("{op}_b"), op, vec![(&[4], 'b', &a), (&[4], 'b', &b)], vec![]));
+    }
+    cases.push(("Not_b".into(), "Not", vec![(&[4], 'b', &b)], vec![]));
+    cases.push((
+        "Sum_i".into(),
+        "Sum",
+        vec![
+            (&[2, 2], 'i', &[1.0, 2.0, 3.0, 4.0]),
+            (&[2], 'i', &[10.0, 20.0]),
+            (&[1], 'i', &[100.0]),
+        ],
+        vec![],
+    ));
+    for (file, op, inputs, attrs) in &cases {
+        let names: Vec<String> = (0..inputs.len()).map(|i| format!("in{i}")).collect();
+        let inits = inputs
+            .iter()
+            .zip(&names)
+            .map(|((dims, kind, values), name)| data(name, dims, *kind, values))
+            .collect();
+        let refs: Vec<&str> = names.iter().map(String::as_str).collect();
+        let mut n = node(op, &refs, &["out"]);
+        n.attribute = attrs.clone();
+        let mut m = model(vec![n], vec![], untyped(&["out"]), inits);
+        m.opset_import[0].version = 18;
+        write(dir.path(), &format!("{file}.onnx"), &m);
+    }
+
+    let out = python(EVALUATE, &[dir.path().to_str().expect("utf8")]);
+    let reference: serde_json::Map<String, serde_json::Value> = serde_json::from_str(&out).expect("json");
+    assert_eq!(reference.len(), cases.len());
+    for (file, expected) in &reference {
+        let read = tilecut::read_model(&dir.path().join(file), &Default::default()).expect("reads");
+        let g = &read.model.graph;
+        let v = g.value(g.outputs[0]);
+        let k = v.konst.as_deref().unwrap_or_else(|| panic!("{file}: not folded"));
+        let dims: Vec<u64> = expected[0]
+            .as_array()
+            .expect("dims")
+            .iter()
+            .map(|d| d.as_u64().expect("dim"))
+            .collect();
+        let values: Vec<f64> = expected[1]
+            .as_array()
+            .expect("values")
+            .iter()
+            .map(|x| x.as_f64().expect("number"))
+            .collect();
+        assert_eq!(k.dims, dims, "{file}: folded shape");
+        // Folded floats are f64, the reference computes in float32: equal to float32 precision.
+        let ours = k.as_floats();
+        assert_eq!(ours.len(), values.len(), "{file}");
+        for (o, r) in ours.iter().zip(&values) {
+            assert!(
+                (o - r).abs() <= 1e-6 * r.abs().max(1.0),
+                "{file}: folded {ours:?}, reference {values:?}"
+            );
+        }
+    }
+}
+
+/// Runs a model whose input `x` is one-dimensional, at each length given, with the reference
+/// evaluator; prints `{length: [shape of each output]}`.
+const RUN_AT_LENGTHS: &str = r#"
+import sys, json, onnx, numpy as np
+from onnx.reference import ReferenceEvaluator
+m = onnx.load(sys.argv[1])
+ev = ReferenceEvaluator(m)
+res = {}
+for t in json.loads(sys.argv[2]):
+    outs = ev.run(None, {"x": np.zeros([t], dtype=np.float32)})
+    res[str(t)] = [list(o.shape) for o in outs]
+print(json.dumps(res))
+"#;
+
+/// Slices of a symbolic length T keep T in their size where the size is an expression of T:
+/// to the end from a start (ends written as INT64_MAX, INT32_MAX or 10^9), with a stride,
+/// and the whole axis backwards. Each expression, evaluated at several lengths, must equal the
+/// size the `onnx` package's reference evaluator gives at that length. A slice whose size is
+/// a `min` with T (a fixed end) stays unknown.
+#[test]
+fn symbolic_slices_agree_with_the_onnx_reference_evaluator_at_each_length() {
+    if !python_onnx("symbolic_slices_agree_with_the_onnx_reference_evaluator_at_each_length") {
+        return;
+    }
+    use tilecut::ir::{evaluate, Dim};
+    let forms: &[(i64, i64, i64)] = &[
+        (0, i64::MAX, 1),
+        (2, i64::MAX, 1),
+        (0, 1_000_000_000, 1),
+        (1, i32::MAX as i64, 3),
+        (0, i64::MAX, 2),
+        (-1, i64::MIN, -1),
+        (-1, -i64::MAX, -2),
+        (i64::MAX, i64::MIN, -1),
+        (0, 5, 1),
+    ];
+    let mut nodes = Vec::new();
+    let mut inits = Vec::new();
+    let mut outs = Vec::new();
+    for (k, &(start, end, step)) in forms.iter().enumerate() {
+        for (part, v) in [("s", start), ("e", end), ("a", 0), ("p", step)] {
+            inits.push(i64_init(&format!("{part}{k}"), &[1], &[v]));
+        }
+        let ins = [
+            "x".to_string(),
+            format!("s{k}"),
+            format!("e{k}"),
+            format!("a{k}"),
+            format!("p{k}"),
+        ];
+        let refs: Vec<&str> = ins.iter().map(String::as_str).collect();
+        let out = format!("y{k}");
+        nodes.push(node("Slice", &refs, &[&out]));
+        outs.push(out);
+    }
+    let out_refs: Vec<&str> = outs.iter().map(String::as_str).collect();
+    let mut m = model(nodes, vec![vi("x", 1, &[Dm::S("T")])], untyped(&out_refs), inits);
+    m.opset_import[0].version = 18;
+    let dir = tempfile::tempdir().expect("tmp");
+    let path = write(dir.path(), "slices.onnx", &m);
+
+    let read = tilecut::read_model(&path, &Default::default()).expect("reads");
+    let g = &read.model.graph;
+    let ours: Vec<Dim> = g
+        .outputs
+        .iter()
+        .map(|&o| g.value(o).fact.shape.dims().expect("rank")[0].clone())
+        .collect();
+    assert_eq!(ours[forms.len() - 1], Dim::Unknown, "min(T, 5) is not guessed");
+
+    let lengths = [1u64, 2, 7, 12];
+    let out = python(RUN_AT_LENGTHS, &[path.to_str().expect("utf8"), "[1, 2, 7, 12]"]);
+    let reference: serde_json::Map<String, serde_json::Value> = serde_json::from_str(&out).expect("json");
+    for t in lengths {
+        let shapes = reference[&t.to_string()].as_array().expect("outputs");
+        for (k, dim) in ours.iter().enumerate().take(forms.len() - 1) {
+            let want = shapes[k][0].as_u64().expect("size");
+            let Dim::Sym(text) = dim else {
+                panic!("slice {:?}: tilecut gives {dim:?}", forms[k])
+            };
+            let got = evaluate(text, &|n| (n == "T").then_some(t)).expect("an expression");
+            // `T-2` is below zero at T = 1, where the slice is empty: the expression then
+            // evaluates to unknown, never to a wrong size.
+            let empty_below = forms[k].0 > 0 && forms[k].2 > 0 && t < forms[k].0 as u64;
+            if empty_below {
+                assert!(
+                    got.is_none() || got == Some(want),
+                    "slice {:?} at T = {t}: `{text}`",
+                    forms[k]
+                );
+            } else {
+                assert_eq!(got, Some(want), "slice {:?} at T = {t}: `{text}`", forms[k]);
+            }
+        }
+    }
+}

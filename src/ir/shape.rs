@@ -273,7 +273,12 @@ pub fn evaluate(text: &str, value: &dyn Fn(&str) -> Option<u64>) -> Result<Optio
                 }
                 Some(c) if c.is_ascii_alphabetic() || c == b'_' => {
                     let start = self.at;
-                    while self.peek().is_some_and(|c| c.is_ascii_alphanumeric() || c == b'_') {
+                    // Exporters put dots in dim names (`p2o.DynamicDimension.1`); a dot is no
+                    // operator here, so it belongs to the name.
+                    while self
+                        .peek()
+                        .is_some_and(|c| c.is_ascii_alphanumeric() || c == b'_' || c == b'.')
+                    {
                         self.at += 1;
                     }
                     let name = std::str::from_utf8(&self.s[start..self.at]).map_err(|_| NotAnExpression)?;
@@ -428,6 +433,8 @@ mod tests {
         assert_eq!(evaluate("a*c", &v), Ok(None));
         assert_eq!(evaluate("18446744073709551615*2", &v), Ok(None), "overflow is unknown");
         assert_eq!(evaluate("a+", &v), Err(NotAnExpression));
+        let dotted = |n: &str| (n == "p2o.DynamicDimension.1").then_some(64);
+        assert_eq!(evaluate("((p2o.DynamicDimension.1+1)/2)*8", &dotted), Ok(Some(256)));
         assert_eq!(evaluate("a b", &v), Err(NotAnExpression));
         // A hostile file's parentheses end the parse, not the process.
         let deep = format!("{}1{}", "(".repeat(100_000), ")".repeat(100_000));

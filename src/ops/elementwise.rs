@@ -252,6 +252,124 @@ fn fold_neg(ctx: &Ctx) -> Option<Vec<ConstValue>> {
 fn fold_abs(ctx: &Ctx) -> Option<Vec<ConstValue>> {
     fold_with(ctx, 1..=1, |a| a[0].checked_abs(), |a| a[0].abs(), false)
 }
+fn fold_greater_or_equal(ctx: &Ctx) -> Option<Vec<ConstValue>> {
+    fold_with(
+        ctx,
+        2..=2,
+        |a| Some((a[0] >= a[1]) as i64),
+        |a| (a[0] >= a[1]) as i64 as f64,
+        true,
+    )
+}
+fn fold_less_or_equal(ctx: &Ctx) -> Option<Vec<ConstValue>> {
+    fold_with(
+        ctx,
+        2..=2,
+        |a| Some((a[0] <= a[1]) as i64),
+        |a| (a[0] <= a[1]) as i64 as f64,
+        true,
+    )
+}
+fn fold_not(ctx: &Ctx) -> Option<Vec<ConstValue>> {
+    fold_with(
+        ctx,
+        1..=1,
+        |a| Some((a[0] == 0) as i64),
+        |a| (a[0] == 0.0) as i64 as f64,
+        true,
+    )
+}
+fn fold_and(ctx: &Ctx) -> Option<Vec<ConstValue>> {
+    fold_with(
+        ctx,
+        2..=2,
+        |a| Some((a[0] != 0 && a[1] != 0) as i64),
+        |a| (a[0] != 0.0 && a[1] != 0.0) as i64 as f64,
+        true,
+    )
+}
+fn fold_or(ctx: &Ctx) -> Option<Vec<ConstValue>> {
+    fold_with(
+        ctx,
+        2..=2,
+        |a| Some((a[0] != 0 || a[1] != 0) as i64),
+        |a| (a[0] != 0.0 || a[1] != 0.0) as i64 as f64,
+        true,
+    )
+}
+fn fold_xor(ctx: &Ctx) -> Option<Vec<ConstValue>> {
+    fold_with(
+        ctx,
+        2..=2,
+        |a| Some(((a[0] != 0) != (a[1] != 0)) as i64),
+        |a| ((a[0] != 0.0) != (a[1] != 0.0)) as i64 as f64,
+        true,
+    )
+}
+fn fold_sum(ctx: &Ctx) -> Option<Vec<ConstValue>> {
+    fold_with(
+        ctx,
+        1..=usize::MAX,
+        |a| a.iter().try_fold(0i64, |s, &x| s.checked_add(x)),
+        |a| a.iter().sum(),
+        false,
+    )
+}
+/// Mod per the ONNX operator specification: with `fmod` = 0 (integers only) the result takes
+/// the divisor's sign, as in Python; with `fmod` = 1 the dividend's, as C's fmod.
+fn fold_mod(ctx: &Ctx) -> Option<Vec<ConstValue>> {
+    fn floor_mod(a: &[i64]) -> Option<i64> {
+        let r = a[0].checked_rem(a[1])?;
+        Some(if r != 0 && (r < 0) != (a[1] < 0) { r + a[1] } else { r })
+    }
+    fn trunc_mod(a: &[i64]) -> Option<i64> {
+        a[0].checked_rem(a[1])
+    }
+    let int_op: fn(&[i64]) -> Option<i64> = if ctx.int("fmod", 0) == 1 { trunc_mod } else { floor_mod };
+    // Floats are allowed only with fmod = 1, whose sign rule is C's: Rust's `%` on f64.
+    fold_with(ctx, 2..=2, int_op, |a| a[0] % a[1], false)
+}
+/// Pow keeps the base's type (input 0), so an integer base with a float exponent folds to
+/// integers, truncated as a cast would.
+fn fold_pow(ctx: &Ctx) -> Option<Vec<ConstValue>> {
+    let out = fold_with(
+        ctx,
+        2..=2,
+        |a| a[0].checked_pow(u32::try_from(a[1]).ok()?),
+        |a| a[0].powf(a[1]),
+        false,
+    )?;
+    match ctx.dtype(0) {
+        Some(dt) if !dt.is_float() => Some(out.iter().map(|v| cast_const(v, dt)).collect()),
+        _ => Some(out),
+    }
+}
+fn fold_floor(ctx: &Ctx) -> Option<Vec<ConstValue>> {
+    fold_with(ctx, 1..=1, |a| Some(a[0]), |a| a[0].floor(), false)
+}
+fn fold_ceil(ctx: &Ctx) -> Option<Vec<ConstValue>> {
+    fold_with(ctx, 1..=1, |a| Some(a[0]), |a| a[0].ceil(), false)
+}
+/// Round halves to even, per the ONNX operator specification.
+fn fold_round(ctx: &Ctx) -> Option<Vec<ConstValue>> {
+    fold_with(ctx, 1..=1, |a| Some(a[0]), |a| a[0].round_ties_even(), false)
+}
+fn fold_sqrt(ctx: &Ctx) -> Option<Vec<ConstValue>> {
+    fold_with(ctx, 1..=1, |_| None, |a| a[0].sqrt(), false)
+}
+fn fold_reciprocal(ctx: &Ctx) -> Option<Vec<ConstValue>> {
+    fold_with(ctx, 1..=1, |_| None, |a| 1.0 / a[0], false)
+}
+/// Sign of zero is zero (f64::signum would give 1).
+fn fold_sign(ctx: &Ctx) -> Option<Vec<ConstValue>> {
+    fold_with(
+        ctx,
+        1..=1,
+        |a| Some(a[0].signum()),
+        |a| if a[0] == 0.0 { 0.0 } else { a[0].signum() },
+        false,
+    )
+}
 fn fold_identity(ctx: &Ctx) -> Option<Vec<ConstValue>> {
     Some(vec![ctx.konst(0)?.clone()])
 }
@@ -321,25 +439,25 @@ pub static OPS: &[OpDef] = &[
     op!("Sub", binary, E1, fold_sub),
     op!("Mul", binary, E1, fold_mul),
     op!("Div", binary, E1, fold_div),
-    op!("Pow", binary, E1),
-    op!("Mod", binary, E1),
+    op!("Pow", binary, E1, fold_pow),
+    op!("Mod", binary, E1, fold_mod),
     op!("BitShift", bitshift, E1),
     op!("BitwiseAnd", binary, E1),
     op!("BitwiseOr", binary, E1),
     op!("BitwiseXor", binary, E1),
     op!("BitwiseNot", unary, E1),
-    op!("And", binary, E1),
-    op!("Or", binary, E1),
-    op!("Xor", binary, E1),
-    op!("Not", unary, E1),
+    op!("And", binary, E1, fold_and),
+    op!("Or", binary, E1, fold_or),
+    op!("Xor", binary, E1, fold_xor),
+    op!("Not", unary, E1, fold_not),
     op!("Equal", compare, E1, fold_equal),
     op!("Greater", compare, E1, fold_greater),
     op!("Less", compare, E1, fold_less),
-    op!("GreaterOrEqual", compare, E1),
-    op!("LessOrEqual", compare, E1),
+    op!("GreaterOrEqual", compare, E1, fold_greater_or_equal),
+    op!("LessOrEqual", compare, E1, fold_less_or_equal),
     op!("Max", binary, E1, fold_max),
     op!("Min", binary, E1, fold_min),
-    op!("Sum", binary, E1),
+    op!("Sum", binary, E1, fold_sum),
     op!("Mean", binary, E1),
     op!("Where", where_, E1, fold_where),
     op!("PRelu", prelu, E1),
@@ -368,14 +486,14 @@ pub static OPS: &[OpDef] = &[
     op!("Shrink", shrink_or_same, E1),
     op!("Exp", unary, E1),
     op!("Log", unary, E1),
-    op!("Sqrt", unary, E1),
-    op!("Reciprocal", unary, E1),
+    op!("Sqrt", unary, E1, fold_sqrt),
+    op!("Reciprocal", unary, E1, fold_reciprocal),
     op!("Neg", unary, E1, fold_neg),
     op!("Abs", unary, E1, fold_abs),
-    op!("Floor", unary, E1),
-    op!("Ceil", unary, E1),
-    op!("Round", unary, E1),
-    op!("Sign", unary, E1),
+    op!("Floor", unary, E1, fold_floor),
+    op!("Ceil", unary, E1, fold_ceil),
+    op!("Round", unary, E1, fold_round),
+    op!("Sign", unary, E1, fold_sign),
     op!("Erf", unary, E1),
     op!("Sin", unary, E1),
     op!("Cos", unary, E1),

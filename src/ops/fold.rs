@@ -269,3 +269,24 @@ pub fn slice(data: &ConstValue, ranges: &[(usize, i64, i64, i64)]) -> Option<Con
     }
     Some(data.pick(dims, &src_idx))
 }
+
+/// Output axis `i` is input axis `perm[i]`; `perm` is a permutation of the axes.
+pub fn transpose(data: &ConstValue, perm: &[usize]) -> Option<ConstValue> {
+    let rank = data.dims.len();
+    let mut seen = vec![false; rank];
+    for &p in perm {
+        if p >= rank || std::mem::replace(&mut seen[p], true) {
+            return None;
+        }
+    }
+    let dims: Vec<u64> = perm.iter().map(|&p| data.dims[p]).collect();
+    let total = count(&dims)?;
+    if total > MAX_FOLD_ELEMENTS {
+        return None;
+    }
+    let strides: Vec<u64> = (0..rank).map(|i| count(&data.dims[i + 1..]).unwrap_or(0)).collect();
+    let src_idx: Vec<usize> = positions(&dims)
+        .map(|pos| pos.iter().zip(perm).map(|(&x, &p)| x * strides[p]).sum::<u64>() as usize)
+        .collect();
+    Some(data.pick(dims, &src_idx))
+}

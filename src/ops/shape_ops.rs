@@ -348,6 +348,19 @@ fn transpose(ctx: &Ctx) -> Inferred {
     Ok(vec![tensor(ctx.dtype(0), Shape::of(out))])
 }
 
+fn fold_transpose(ctx: &Ctx) -> Option<Vec<ConstValue>> {
+    let data = ctx.konst(0)?;
+    let rank = data.dims.len();
+    let perm: Vec<usize> = match ctx.ints("perm") {
+        Some(p) => p.iter().map(|&a| norm_axis(a, rank)).collect::<Option<_>>()?,
+        None => (0..rank).rev().collect(),
+    };
+    if perm.len() != rank {
+        return None;
+    }
+    Some(vec![fold::transpose(data, &perm)?])
+}
+
 /// Axes from the attribute (before `since`) or from input 1.
 fn axes(ctx: &Ctx, since: i64) -> Result<Option<Vec<i64>>, ()> {
     if ctx.opset >= since {
@@ -577,11 +590,14 @@ fn slice_params(ctx: &Ctx) -> Option<SliceParams> {
     Some((ctx.const_ints(1)?, ctx.const_ints(2)?, opt(3)?, opt(4)?))
 }
 
-/// Per-axis (axis, start, end, step) after clamping, per the Slice spec.
-/// An axis and its clamped (start, end, step), `None` where the axis size is unknown.
-type AxisRange = (usize, Option<(i64, i64, i64)>);
+/// One sliced axis: its clamped (start, end, step) where the axis size is known, per the
+/// Slice specification, or else the output size as far as it can be told.
+enum AxisSpan {
+    Clamped(i64, i64, i64),
+    Open(Dim),
+}
 
-fn slice_ranges(ctx: &Ctx, d: &[Dim]) -> Result<Option<Vec<AxisRange>>, String> {
+fn slice_ranges(ctx: &Ctx, d: &[Dim]) -> Result<Option<Vec<(usize, AxisSpan)>>, String> {
     let Some((starts, ends, axes, steps)) = slice_params(ctx) else {
         return Ok(None);
     };
@@ -598,7 +614,7 @@ fn slice_ranges(ctx: &Ctx, d: &[Dim]) -> Result<Option<Vec<AxisRange>>, String> 
             return Err("step 0".into());
         }
         let Dim::Known(dim) = d[axis] else {
-            out.push((axis, None));
+            out.push((axis, AxisSpan::Open(open_span(&d[axis], starts[i], ends[i], step))));
             continue;
         };
         let dim = dim as i64;
@@ -609,9 +625,32 @@ fn slice_ranges(ctx: &Ctx, d: &[Dim]) -> Result<Option<Vec<AxisRange>>, String> 
         } else {
             (s.clamp(0, dim - 1), e.clamp(-1, dim - 1))
         };
-        out.push((axis, Some((s, e, step))));
+        out.push((axis, AxisSpan::Clamped(s, e, step)));
     }
     Ok(Some(out))
+}
+
+/// Exporters write "to the end" as a large end: INT64_MAX, INT32_MAX, or 10^9 (one TF
+/// converter's masked ends). Common practice; a symbolic size is assumed to be below it.
+const TO_THE_END: i64 = 1_000_000_000;
+
+/// The output size of a slice of a symbolic size T, where it is an expression of T: from
+/// `start` ≥ 0 to the end, `ceil((T - start) / step)`; the whole axis backwards (from the last
+/// element past the first), `ceil(T / |step|)`. Anything else is a `min` with T, which a
+/// dim cannot express, and stays unknown.
+fn open_span(d: &Dim, start: i64, end: i64, step: i64) -> Dim {
+    let stride = step.unsigned_abs();
+    let Ok(round_up) = i64::try_from(stride - 1) else {
+        return Dim::Unknown;
+    };
+    let first_off = if step > 0 && (0..TO_THE_END).contains(&start) && end >= TO_THE_END {
+        start
+    } else if step < 0 && (start == -1 || start >= TO_THE_END) && end <= -TO_THE_END {
+        0
+    } else {
+        return Dim::Unknown;
+    };
+    d.offset(-first_off).offset(round_up).div_floor(stride)
 }
 
 fn slice(ctx: &Ctx) -> Inferred {
@@ -640,7 +679,7 @@ fn slice(ctx: &Ctx) -> Inferred {
     let mut out = d.clone();
     for (axis, r) in ranges {
         out[axis] = match r {
-            Some((s, e, step)) => {
+            AxisSpan::Clamped(s, e, step) => {
                 let (span, st) = if step > 0 {
                     ((e - s).max(0), step)
                 } else {
@@ -649,7 +688,7 @@ fn slice(ctx: &Ctx) -> Inferred {
                 let n = (span + st - 1) / st;
                 Dim::Known(n as u64)
             }
-            None => Dim::Unknown,
+            AxisSpan::Open(dim) => dim,
         };
     }
     Ok(vec![tensor(dt, Shape::of(out))])
@@ -661,7 +700,10 @@ fn fold_slice(ctx: &Ctx) -> Option<Vec<ConstValue>> {
     let ranges = slice_ranges(ctx, &d).ok()??;
     let r: Vec<(usize, i64, i64, i64)> = ranges
         .into_iter()
-        .map(|(a, r)| r.map(|(s, e, st)| (a, s, e, st)))
+        .map(|(a, r)| match r {
+            AxisSpan::Clamped(s, e, st) => Some((a, s, e, st)),
+            AxisSpan::Open(_) => None,
+        })
         .collect::<Option<_>>()?;
     Some(vec![fold::slice(data, &r)?])
 }
@@ -748,9 +790,24 @@ fn pad(ctx: &Ctx) -> Inferred {
     Ok(vec![tensor(dt, Shape::of(out))])
 }
 
+/// floor(size × scale), per the Resize specification. A symbolic size stays an expression
+/// where the product is exact: a whole-number scale, or one over a power of two.
 fn scaled(d: &Dim, s: f64) -> Dim {
+    const WHOLE_MAX: f64 = (1u64 << 32) as f64;
     match d {
         Dim::Known(v) => Dim::Known((*v as f64 * s).floor() as u64),
+        Dim::Sym(_) if s >= 1.0 && s.fract() == 0.0 && s <= WHOLE_MAX => {
+            d.mul(&Dim::Known(s as u64)).unwrap_or(Dim::Unknown)
+        }
+        Dim::Sym(_) if s > 0.0 && s < 1.0 => {
+            let k = 1.0 / s;
+            let exact = k.fract() == 0.0 && k <= WHOLE_MAX && (k as u64).is_power_of_two();
+            if exact {
+                d.div_floor(k as u64)
+            } else {
+                Dim::Unknown
+            }
+        }
         _ => Dim::Unknown,
     }
 }
@@ -1054,7 +1111,7 @@ pub static OPS: &[OpDef] = &[
     op!("Range", range, fold_range),
     op!("Reshape", reshape, fold_reshape),
     op!("Flatten", flatten, fold_same_data),
-    op!("Transpose", transpose),
+    op!("Transpose", transpose, fold_transpose),
     op!("Squeeze", squeeze, fold_same_data),
     op!("Unsqueeze", unsqueeze, fold_same_data),
     op!("Concat", concat, fold_concat),

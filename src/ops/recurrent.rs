@@ -1,5 +1,9 @@
 //! LSTM, GRU and RNN (ONNX operator spec): Y [seq, dirs, batch, hidden] (layout 0) or
 //! [batch, seq, dirs, hidden] (layout 1), Y_h / Y_c [dirs, batch, hidden] (or batch-first).
+//! The contrib domain's DynamicQuantizeLSTM is an LSTM with int8 weights stored transposed
+//! (W [dirs, input, 4·hidden], R [dirs, hidden, 4·hidden], from its contrib operator
+//! documentation, recalled from memory and matching the shipped models' weights) and a
+//! scale and zero point per direction after the LSTM inputs; its outputs are the LSTM's.
 
 use crate::ir::{Dim, Fact, Shape};
 
@@ -8,7 +12,7 @@ use super::{CostRule, Ctx, Inferred, MacsOps, OpDef};
 
 fn gates(op: &str) -> u64 {
     match op {
-        "LSTM" => 4,
+        "LSTM" | "DynamicQuantizeLSTM" => 4,
         "GRU" => 3,
         _ => 1,
     }
@@ -33,7 +37,8 @@ fn recurrent(ctx: &Ctx) -> Inferred {
     let hidden = match ctx.opt_int("hidden_size") {
         Some(h) => Dim::Known(h.max(0) as u64),
         None => match ctx.dims(2) {
-            // R is [dirs, gates·hidden, hidden].
+            // R is [dirs, gates·hidden, hidden]; transposed in the quantized contrib form.
+            Some(r) if r.len() == 3 && ctx.node.op_type == "DynamicQuantizeLSTM" => r[1].clone(),
             Some(r) if r.len() == 3 => r[2].clone(),
             _ => Dim::Unknown,
         },
@@ -79,8 +84,11 @@ fn recurrent_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
 
 macro_rules! op {
     ($name:literal) => {
+        op!("", $name)
+    };
+    ($domain:expr, $name:literal) => {
         OpDef {
-            domain: "",
+            domain: $domain,
             op: $name,
             family: "recurrent",
             infer: recurrent,
@@ -90,4 +98,9 @@ macro_rules! op {
     };
 }
 
-pub static OPS: &[OpDef] = &[op!("LSTM"), op!("GRU"), op!("RNN")];
+pub static OPS: &[OpDef] = &[
+    op!("LSTM"),
+    op!("GRU"),
+    op!("RNN"),
+    op!(super::CONTRIB_DOMAIN, "DynamicQuantizeLSTM"),
+];

@@ -169,6 +169,7 @@ pub struct Stages {
     pub greedy: cut::Plan,
     pub cpu_only: cut::Plan,
     pub array: map::ArrayUse,
+    pub greedy_array: map::ArrayUse,
 }
 
 impl Stages {
@@ -183,6 +184,7 @@ impl Stages {
             greedy: &self.greedy,
             cpu_only: &self.cpu_only,
             array: &self.array,
+            greedy_array: &self.greedy_array,
             params: 0,
             warnings: Vec::new(),
         })
@@ -206,11 +208,43 @@ pub fn stages_from_verdicts(
     let g = &read.model.graph;
     let costs = cut::cost::costs(g, &verdicts, &target);
     let cut::Plans {
-        chosen: plan,
+        chosen: mut plan,
         greedy,
         cpu: cpu_only,
     } = cut::plans(g, &verdicts, &costs, opts.strategy, &opts.pins)?;
-    let array = map::map(g, &costs, &plan, &target, opts.columns);
+    let mapped = |p: &cut::Plan| {
+        let array = map::map(g, &costs, p, &target, opts.columns);
+        let latency = map::est_latency_ps(p, &costs, &array);
+        (array, latency)
+    };
+    let (mut array, mut latency) = mapped(&plan);
+    let (greedy_array, greedy_latency) = mapped(&greedy);
+    if opts.strategy == cut::Strategy::Mincut {
+        if !array.resident {
+            plan = cut::fit(g, &verdicts, &costs, &opts.pins, plan, &|p| {
+                let (array, latency) = mapped(p);
+                (latency, array.resident)
+            })?;
+            (array, latency) = mapped(&plan);
+        }
+        // Never slower, as mapped, than the simple strategies (the cut alone guarantees this
+        // for the objective, which leaves out swapping partitions through the columns).
+        let (cpu_array, cpu_latency) = mapped(&cpu_only);
+        for (other, other_array, other_latency) in [
+            (&greedy, &greedy_array, greedy_latency),
+            (&cpu_only, &cpu_array, cpu_latency),
+        ] {
+            if other_latency < latency {
+                plan = cut::Plan {
+                    strategy: cut::Strategy::Mincut,
+                    mincut_ps: plan.mincut_ps,
+                    ..other.clone()
+                };
+                array = other_array.clone();
+                latency = other_latency;
+            }
+        }
+    }
     Ok(Stages {
         target,
         verdicts,
@@ -219,6 +253,7 @@ pub fn stages_from_verdicts(
         greedy,
         cpu_only,
         array,
+        greedy_array,
     })
 }
 
@@ -293,6 +328,7 @@ impl Analysis {
             greedy: &s.greedy,
             cpu_only: &s.cpu_only,
             array: &s.array,
+            greedy_array: &s.greedy_array,
             params,
             warnings,
         }

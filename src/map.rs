@@ -283,3 +283,16 @@ pub fn map(g: &Graph, costs: &Costs, plan: &Plan, t: &Target, columns: Option<u3
         mappings,
     }
 }
+
+/// The latency estimate after mapping: the serial objective with each accelerator partition's
+/// node times replaced by its pipeline latency, plus reconfiguration when not resident.
+pub fn est_latency_ps(plan: &Plan, costs: &Costs, array: &ArrayUse) -> u64 {
+    let mut ps = plan.objective_ps;
+    for p in plan.partitions.iter().filter(|p| p.side == Side::Accel) {
+        let serial: u64 = p.nodes.iter().map(|n| costs.accel_ps[n.index()].unwrap_or(0)).sum();
+        if let Some(m) = array.mappings.iter().find(|m| m.partition == p.id) {
+            ps = ps.saturating_sub(serial).saturating_add(m.latency_ps);
+        }
+    }
+    ps.saturating_add(array.reconfigure_ps)
+}

@@ -327,3 +327,60 @@ fn refinement_merges_partitions_when_a_dispatch_outweighs_the_work_between() {
     assert!(a.plan.objective_ps < a.greedy.objective_ps);
     assert!(a.plan.refinements >= 1);
 }
+
+/// Four heavy int8 matrix products, each between CPU-only Neg nodes: the exact cut offloads all
+/// four, one partition each. With a budget of two columns they are swapped through the array
+/// every inference at 0.1 s each (made-up numbers). Running two of the products on the CPU costs
+/// 67 ms apiece (64·1024·1024 ops at 1 GOPS) and lets the other two stay resident, so column
+/// fitting must keep exactly two partitions, and the mapped estimate must beat the unfitted
+/// plan's, the greedy plan's and the CPU-only plan's.
+#[test]
+fn column_fitting_drops_partitions_that_cost_more_to_swap_than_they_save() {
+    use tilecut::onnx::builder::{raw_tensor, ModelBuilder};
+    let profile = MERGE_PROFILE
+        .replace("columns = 1\n", "columns = 2\nreconfigure_s = 0.1\n")
+        .replace("dispatch_overhead_s = 1e-3", "dispatch_overhead_s = 1e-6");
+    let target = || tilecut::target::parse(&profile, "fit.toml").expect("profile");
+    let mut m = ModelBuilder::new("fit", 17);
+    m.graph
+        .input("x", DType::I8, &[DimSpec::Fixed(64), DimSpec::Fixed(1024)]);
+    let scalar = |name: &str, dt: DType, raw: Vec<u8>| raw_tensor(name, dt, &[], raw);
+    m.graph
+        .initializer(scalar("s", DType::F32, 0.5f32.to_le_bytes().to_vec()));
+    m.graph.initializer(scalar("z", DType::I8, vec![0]));
+    let mut prev = "x".to_string();
+    for k in 0..4 {
+        let w = format!("w{k}");
+        m.graph
+            .initializer(raw_tensor(&w, DType::I8, &[1024, 1024], vec![1; 1024 * 1024]));
+        let a = format!("a{k}");
+        m.graph
+            .node("QLinearMatMul", &[&prev, "s", "z", &w, "s", "z", "s", "z"], &[&a]);
+        prev = if k < 3 {
+            let n = format!("n{k}");
+            m.graph.node("Neg", &[&a], &[&n]);
+            n
+        } else {
+            a
+        };
+    }
+    m.graph
+        .output(&prev, DType::I8, &[DimSpec::Fixed(64), DimSpec::Fixed(1024)]);
+    let d = tempfile::tempdir().expect("tmp");
+    let model = d.path().join("fit.onnx");
+    std::fs::write(&model, m.build().encode_to_vec()).expect("write");
+
+    let a = tilecut::analyze_stages(&model, &Default::default(), target(), &Default::default()).expect("analyzes");
+    let accel = a.plan.partitions.iter().filter(|p| p.side == Side::Accel).count();
+    assert_eq!(accel, 2, "two partitions kept");
+    assert!(a.array.resident);
+    let s = a.summary(&a.read);
+    let est = s.est_latency_us.expect("known");
+    assert!(est <= s.greedy_us.expect("known") && est <= s.cpu_only_latency_us.expect("known"));
+    // The unfitted plan: the exact cut's four partitions, swapped (0.4 s of reconfiguration).
+    let unfitted = tilecut::map::map(&a.read.model.graph, &a.costs, &a.greedy, &a.target, None);
+    assert!(!unfitted.resident);
+    let unfitted_us = tilecut::map::est_latency_ps(&a.greedy, &a.costs, &unfitted) as f64 / 1e6;
+    assert!(est < unfitted_us, "{est} µs against {unfitted_us} µs unfitted");
+    assert!(s.reconfigure_us == 0.0);
+}

@@ -614,6 +614,62 @@ pub fn plans(
     Ok(Plans { chosen, greedy, cpu })
 }
 
+/// Column fitting, after mapping: when the accelerator partitions need more columns than the
+/// array has, they are swapped every inference, which the cut cannot see. `mapped` gives a
+/// plan's mapped latency (reconfiguration included) and whether it is resident. Each step
+/// moves to the CPU the accelerator partition whose move leaves the lowest latency: while the
+/// plan is not resident, even when that step alone is slower (only the last of several moves
+/// may end the swapping), afterwards only while it helps. The fastest plan met is kept; at
+/// most `MAX_REFINEMENT_TRIES` trials. Partitions holding a node pinned to the array stay.
+pub fn fit(
+    g: &Graph,
+    verdicts: &[Verdict],
+    costs: &Costs,
+    pins: &Pins,
+    base: Plan,
+    mapped: &dyn Fn(&Plan) -> (u64, bool),
+) -> Result<Plan, PinError> {
+    let (_, pinned_accel) = resolve_pins(g, verdicts, pins)?;
+    let (mut latency, mut resident) = mapped(&base);
+    let mut best = (latency, base.clone());
+    let mut current = base;
+    let mut tries = 0;
+    loop {
+        let mut step: Option<(u64, bool, Plan)> = None;
+        for p in current.partitions.iter().filter(|p| p.side == Side::Accel) {
+            if tries >= MAX_REFINEMENT_TRIES || p.nodes.iter().any(|n| pinned_accel[n.index()]) {
+                continue;
+            }
+            tries += 1;
+            let mut side = current.side.clone();
+            for n in &p.nodes {
+                side[n.index()] = Side::Cpu;
+            }
+            let trial = finish(
+                g,
+                costs,
+                current.strategy,
+                side,
+                current.mincut_ps,
+                current.refinements + 1,
+            );
+            let (l, r) = mapped(&trial);
+            if step.as_ref().is_none_or(|s| l < s.0) {
+                step = Some((l, r, trial));
+            }
+        }
+        match step {
+            Some((l, r, plan)) if !resident || l < latency => {
+                (latency, resident, current) = (l, r, plan);
+                if latency < best.0 {
+                    best = (latency, current.clone());
+                }
+            }
+            _ => return Ok(best.1),
+        }
+    }
+}
+
 /// A plan whose boundaries are the user's `--cut-at` tensors: a node's level is the largest
 /// number of cut tensors on a path to it, levels only grow along edges, so grouping nodes by
 /// level (then by connected component) gives convex partitions in a fixed order.

@@ -346,22 +346,14 @@ pub struct Inputs<'a> {
     pub greedy: &'a Plan,
     pub cpu_only: &'a Plan,
     pub array: &'a crate::map::ArrayUse,
+    /// The greedy plan's mapping: its latency is estimated the same way as the chosen plan's.
+    pub greedy_array: &'a crate::map::ArrayUse,
     pub params: u64,
     pub warnings: Vec<Diagnostic>,
 }
 
-/// The latency estimate after mapping: the serial objective with each accelerator partition's
-/// node times replaced by its pipeline latency, plus reconfiguration when not resident.
 fn est_latency_us(i: &Inputs) -> f64 {
-    let plan = i.plan;
-    let mut ps = plan.objective_ps;
-    for p in plan.partitions.iter().filter(|p| p.side == Side::Accel) {
-        let serial: u64 = p.nodes.iter().map(|n| i.costs.accel_ps[n.index()].unwrap_or(0)).sum();
-        if let Some(m) = i.array.mappings.iter().find(|m| m.partition == p.id) {
-            ps = ps.saturating_sub(serial).saturating_add(m.latency_ps);
-        }
-    }
-    us(ps.saturating_add(i.array.reconfigure_ps))
+    us(crate::map::est_latency_ps(i.plan, i.costs, i.array))
 }
 
 /// The summary figures alone: what `build` reports, and what the survey compares scenarios by.
@@ -415,7 +407,7 @@ pub fn summary(i: &Inputs) -> Summary {
         mincut_us: us(plan.mincut_ps),
         est_latency_us: known.then(|| est_latency_us(i)),
         cpu_only_latency_us: known.then(|| us(i.cpu_only.objective_ps)),
-        greedy_us: known.then(|| us(i.greedy.objective_ps)),
+        greedy_us: known.then(|| us(crate::map::est_latency_ps(i.greedy, i.costs, i.greedy_array))),
         unknown_cost_nodes: i.costs.unknown_work.len(),
         needs_dims,
         columns_budget: i.array.columns_budget,

@@ -353,3 +353,120 @@ fn quantized_lstms_take_the_lstm_shapes_of_the_operator_specification() {
         assert_eq!(n.cost.macs, Some(seq * 2 * batch * hidden * 4 * (input + hidden)));
     }
 }
+
+/// Quantizes the OCR text detector with onnxruntime's static quantizer (QDQ format, int8
+/// symmetric activations, per-channel int8 weights; seeded random calibration data) at a
+/// fixed input of 1×3×64×96. Argument 1: the float model; argument 2: the output file.
+/// The shapes of every tensor then come from running it with onnxruntime itself.
+const QUANTIZE: &str = r#"
+import sys, numpy as np, onnx, tempfile, os
+from onnxruntime.quantization import quantize_static, CalibrationDataReader, QuantFormat, QuantType
+m = onnx.load(sys.argv[1])
+x = m.graph.input[0]
+for d, v in zip(x.type.tensor_type.shape.dim, [1, 3, 64, 96]):
+    d.Clear()
+    d.dim_value = v
+fixed = os.path.join(tempfile.mkdtemp(), "fixed.onnx")
+onnx.save(m, fixed)
+class Data(CalibrationDataReader):
+    def __init__(self):
+        self.n = 0
+    def get_next(self):
+        if self.n == 4:
+            return None
+        self.n += 1
+        return {x.name: np.random.default_rng(self.n).standard_normal([1, 3, 64, 96]).astype(np.float32)}
+quantize_static(fixed, sys.argv[2], Data(), quant_format=QuantFormat.QDQ, per_channel=True,
+                activation_type=QuantType.QInt8, weight_type=QuantType.QInt8,
+                extra_options={"ActivationSymmetric": True})
+"#;
+
+/// `SHAPES` with onnxruntime as the engine: the `onnx` reference evaluator has no
+/// DequantizeLinear for the opset (12) of the quantized model.
+const SHAPES_ORT: &str = r#"
+import sys, json, onnx, numpy as np, onnxruntime as ort
+m = onnx.load(sys.argv[1])
+g = m.graph
+declared = {o.name for o in g.output}
+for n in g.node:
+    for o in n.output:
+        if o and o not in declared:
+            g.output.append(onnx.ValueInfoProto(name=o))
+            declared.add(o)
+opts = ort.SessionOptions()
+opts.graph_optimization_level = ort.GraphOptimizationLevel.ORT_DISABLE_ALL
+sess = ort.InferenceSession(m.SerializeToString(), opts, providers=["CPUExecutionProvider"])
+x = np.random.default_rng(7).standard_normal([1, 3, 64, 96]).astype(np.float32)
+outs = sess.run(None, {g.input[0].name: x})
+print(json.dumps({o.name: [int(d) for d in np.shape(v)] for o, v in zip(sess.get_outputs(), outs)}))
+"#;
+
+/// A real quantizer's output, not the project's own samples: every Conv of the QDQ model
+/// onnxruntime's quantizer writes must be read as an int8 bundle the compact array can run,
+/// every tensor must have the shape onnxruntime computes running it, and the plan must not be slower
+/// than running on the CPU alone. Needs the `onnxruntime` Python package (installed by
+/// `.ci/run`); skipped with a message elsewhere, fails under CI=true.
+#[test]
+fn a_real_quantizers_qdq_output_is_read_as_int8_bundles() {
+    let test = "a_real_quantizers_qdq_output_is_read_as_int8_bundles";
+    if !available(test) {
+        return;
+    }
+    let has_ort = std::process::Command::new("python3")
+        .args(["-c", "import onnxruntime.quantization"])
+        .output()
+        .is_ok_and(|o| o.status.success());
+    if !has_ort {
+        if std::env::var("CI").is_ok_and(|v| v == "true") {
+            panic!("{test}: the onnxruntime Python package is required under CI=true (.ci/run installs it)");
+        }
+        println!("SKIPPED {test}: the onnxruntime Python package is not installed");
+        return;
+    }
+    let d = tempfile::tempdir().expect("tmp");
+    let q = d.path().join("det_qdq.onnx");
+    let float = models_dir().join("rapidocr_onnxruntime-1.4.4/rapidocr_onnxruntime/models/ch_PP-OCRv4_det_infer.onnx");
+    python(QUANTIZE, &[float.to_str().expect("utf8"), q.to_str().expect("utf8")]);
+
+    let reference: BTreeMap<String, Vec<u64>> =
+        serde_json::from_str(&python(SHAPES_ORT, &[q.to_str().expect("utf8")])).expect("reference json");
+    let a = tilecut::analyze_stages(
+        &q,
+        &Overrides::default(),
+        tilecut::target::load("compact-array").expect("target"),
+        &Default::default(),
+    )
+    .expect("analyzes");
+    assert_eq!(a.read.unknown.len(), 0);
+    let g = &a.read.model.graph;
+    let ours: BTreeMap<String, Vec<Dim>> = g
+        .values
+        .iter()
+        .filter_map(|v| Some((v.name.clone(), v.fact.shape.dims()?.to_vec())))
+        .collect();
+    let case = Case {
+        file: "det_qdq.onnx",
+        feeds: "",
+        inputs: &[],
+        symbols: None,
+    };
+    let (agree, _) = compare(&case, &reference, &ours, None);
+    assert!(agree > 1000, "{agree}");
+    let convs: Vec<usize> = (0..g.nodes.len())
+        .filter(|&i| g.nodes[i].op_type.as_str() == "Conv")
+        .collect();
+    assert!(convs.len() >= 60, "{} Convs", convs.len());
+    for &i in &convs {
+        let v = &a.verdicts[i];
+        assert_eq!(
+            v.candidate,
+            tilecut::rules::Candidate::Accel,
+            "{}: {:?}",
+            g.nodes[i].name,
+            v.reasons.iter().map(|r| &r.message).collect::<Vec<_>>()
+        );
+    }
+    let s = a.summary(&a.read);
+    assert!(s.est_latency_us.expect("known") <= s.cpu_only_latency_us.expect("known"));
+    assert!(s.coverage_macs.expect("known") > 0.0);
+}

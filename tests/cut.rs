@@ -256,6 +256,19 @@ ops = ["Transpose"]
 how = "dma"
 "#;
 
+/// The start of a model of int8 matrix products: the input `x` (int8 64×1024) and the scale
+/// `s` and zero point `z` every QLinearMatMul of the test shares.
+fn int8_products(name: &str) -> tilecut::onnx::builder::ModelBuilder {
+    use tilecut::onnx::builder::{raw_tensor, ModelBuilder};
+    let mut m = ModelBuilder::new(name, 17);
+    m.graph
+        .input("x", DType::I8, &[DimSpec::Fixed(64), DimSpec::Fixed(1024)]);
+    m.graph
+        .initializer(raw_tensor("s", DType::F32, &[], 0.5f32.to_le_bytes().to_vec()));
+    m.graph.initializer(raw_tensor("z", DType::I8, &[], vec![0]));
+    m
+}
+
 /// Two heavy int8 matrix products with a transpose between them. Alone, the exact cut puts the
 /// transpose on the CPU: on this array moving 2 × 64 KiB through the I/O tile takes 0.5 ms,
 /// while the CPU does it in 6.6 µs plus two 1 µs transfers (the cut does not see dispatches).
@@ -264,14 +277,8 @@ how = "dma"
 /// (Dropping either product to the CPU would cost 134 ms: 2·64·1024·1024 ops at 1 GOPS.)
 #[test]
 fn refinement_merges_partitions_when_a_dispatch_outweighs_the_work_between() {
-    use tilecut::onnx::builder::{raw_tensor, ModelBuilder};
-    let mut m = ModelBuilder::new("merge", 17);
-    m.graph
-        .input("x", DType::I8, &[DimSpec::Fixed(64), DimSpec::Fixed(1024)]);
-    let scalar = |name: &str, dt: DType, raw: Vec<u8>| raw_tensor(name, dt, &[], raw);
-    m.graph
-        .initializer(scalar("s", DType::F32, 0.5f32.to_le_bytes().to_vec()));
-    m.graph.initializer(scalar("z", DType::I8, vec![0]));
+    use tilecut::onnx::builder::raw_tensor;
+    let mut m = int8_products("merge");
     m.graph
         .initializer(raw_tensor("w1", DType::I8, &[1024, 1024], vec![1; 1024 * 1024]));
     m.graph
@@ -336,18 +343,12 @@ fn refinement_merges_partitions_when_a_dispatch_outweighs_the_work_between() {
 /// plan's, the greedy plan's and the CPU-only plan's.
 #[test]
 fn column_fitting_drops_partitions_that_cost_more_to_swap_than_they_save() {
-    use tilecut::onnx::builder::{raw_tensor, ModelBuilder};
+    use tilecut::onnx::builder::raw_tensor;
     let profile = MERGE_PROFILE
         .replace("columns = 1\n", "columns = 2\nreconfigure_s = 0.1\n")
         .replace("dispatch_overhead_s = 1e-3", "dispatch_overhead_s = 1e-6");
     let target = || tilecut::target::parse(&profile, "fit.toml").expect("profile");
-    let mut m = ModelBuilder::new("fit", 17);
-    m.graph
-        .input("x", DType::I8, &[DimSpec::Fixed(64), DimSpec::Fixed(1024)]);
-    let scalar = |name: &str, dt: DType, raw: Vec<u8>| raw_tensor(name, dt, &[], raw);
-    m.graph
-        .initializer(scalar("s", DType::F32, 0.5f32.to_le_bytes().to_vec()));
-    m.graph.initializer(scalar("z", DType::I8, vec![0]));
+    let mut m = int8_products("fit");
     let mut prev = "x".to_string();
     for k in 0..4 {
         let w = format!("w{k}");

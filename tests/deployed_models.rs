@@ -25,14 +25,14 @@ use common::*;
 use tilecut::import::Overrides;
 use tilecut::ir::{evaluate, Dim};
 
-/// Runs a model with the reference evaluator and prints `{tensor: shape}` for every node
-/// output of the main graph. Argument 2 maps each input to a shape (random data) or to
-/// `{"value": v}` (a scalar such as a sample rate).
-const SHAPES: &str = r#"
+/// A Python script that loads the model named by its first argument and makes every node
+/// output of the main graph a graph output, followed by `$run`, which runs it.
+macro_rules! every_output {
+    ($run:literal) => {
+        concat!(
+            r#"
 import sys, json, onnx, numpy as np
-from onnx.reference import ReferenceEvaluator
 m = onnx.load(sys.argv[1])
-spec = json.loads(sys.argv[2])
 g = m.graph
 declared = {o.name for o in g.output}
 for n in g.node:
@@ -40,6 +40,19 @@ for n in g.node:
         if o and o not in declared:
             g.output.append(onnx.ValueInfoProto(name=o))
             declared.add(o)
+"#,
+            $run
+        )
+    };
+}
+
+/// Runs a model with the reference evaluator and prints `{tensor: shape}` for every node
+/// output of the main graph. Argument 2 maps each input to a shape (random data) or to
+/// `{"value": v}` (a scalar such as a sample rate).
+const SHAPES: &str = every_output!(
+    r#"
+from onnx.reference import ReferenceEvaluator
+spec = json.loads(sys.argv[2])
 rng = np.random.default_rng(7)
 weights = {t.name for t in g.initializer}
 feeds = {}
@@ -56,7 +69,8 @@ for i in g.input:
         feeds[i.name] = rng.integers(0, 256, size=s).astype(dt)
 outs = ReferenceEvaluator(m).run(None, feeds)
 print(json.dumps({o.name: [int(d) for d in np.shape(v)] for o, v in zip(g.output, outs)}))
-"#;
+"#
+);
 
 struct Case {
     file: &'static str,
@@ -383,23 +397,17 @@ quantize_static(fixed, sys.argv[2], Data(), quant_format=QuantFormat.QDQ, per_ch
 
 /// `SHAPES` with onnxruntime as the engine: the `onnx` reference evaluator has no
 /// DequantizeLinear for the opset (12) of the quantized model.
-const SHAPES_ORT: &str = r#"
-import sys, json, onnx, numpy as np, onnxruntime as ort
-m = onnx.load(sys.argv[1])
-g = m.graph
-declared = {o.name for o in g.output}
-for n in g.node:
-    for o in n.output:
-        if o and o not in declared:
-            g.output.append(onnx.ValueInfoProto(name=o))
-            declared.add(o)
+const SHAPES_ORT: &str = every_output!(
+    r#"
+import onnxruntime as ort
 opts = ort.SessionOptions()
 opts.graph_optimization_level = ort.GraphOptimizationLevel.ORT_DISABLE_ALL
 sess = ort.InferenceSession(m.SerializeToString(), opts, providers=["CPUExecutionProvider"])
 x = np.random.default_rng(7).standard_normal([1, 3, 64, 96]).astype(np.float32)
 outs = sess.run(None, {g.input[0].name: x})
 print(json.dumps({o.name: [int(d) for d in np.shape(v)] for o, v in zip(sess.get_outputs(), outs)}))
-"#;
+"#
+);
 
 /// A real quantizer's output, not the project's own samples: every Conv of the QDQ model
 /// onnxruntime's quantizer writes must be read as an int8 bundle the compact array can run,

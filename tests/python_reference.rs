@@ -131,6 +131,27 @@ for p in sorted(glob.glob(os.path.join(sys.argv[1], "*.onnx"))):
 print(json.dumps(res))
 "#;
 
+/// The folded value of a model's first output, and the shape and values `EVALUATE` printed
+/// for it.
+fn folded_and_expected(
+    dir: &Path,
+    file: &str,
+    expected: &serde_json::Value,
+) -> (tilecut::ir::ConstValue, Vec<u64>, Vec<f64>) {
+    let read = tilecut::read_model(&dir.join(file), &Default::default()).expect("reads");
+    let g = &read.model.graph;
+    let k = g
+        .value(g.outputs[0])
+        .konst
+        .as_deref()
+        .cloned()
+        .unwrap_or_else(|| panic!("{file}: not folded"));
+    let list = |i: usize| expected[i].as_array().expect("list").iter();
+    let dims = list(0).map(|d| d.as_u64().expect("dim")).collect();
+    let values = list(1).map(|x| x.as_f64().expect("number")).collect();
+    (k, dims, values)
+}
+
 /// Shape arithmetic folds ReduceMin/Max/Sum/Prod of constants (exporters compute TopK's `k`
 /// as `min(dim, limit)` this way). Each folded value must equal what the `onnx` package's
 /// reference evaluator computes for the same model: integers and floats, kept and dropped
@@ -187,25 +208,7 @@ fn folded_reductions_agree_with_the_onnx_reference_evaluator() {
     let reference: serde_json::Map<String, serde_json::Value> = serde_json::from_str(&out).expect("json");
     assert_eq!(reference.len(), written);
     for (file, expected) in &reference {
-        let read = tilecut::read_model(&dir.path().join(file), &Default::default()).expect("reads");
-        let g = &read.model.graph;
-        let v = g.value(g.outputs[0]);
-        let k = v
-            .konst
-            .as_deref()
-            .unwrap_or_else(|| panic!("{file}: the reduction was not folded"));
-        let dims: Vec<u64> = expected[0]
-            .as_array()
-            .expect("dims")
-            .iter()
-            .map(|d| d.as_u64().expect("dim"))
-            .collect();
-        let values: Vec<f64> = expected[1]
-            .as_array()
-            .expect("values")
-            .iter()
-            .map(|x| x.as_f64().expect("number"))
-            .collect();
+        let (k, dims, values) = folded_and_expected(dir.path(), file, expected);
         assert_eq!(k.dims, dims, "{file}: folded shape");
         assert_eq!(k.as_floats(), values, "{file}: folded values");
     }
@@ -358,22 +361,7 @@ fn folded_arithmetic_and_transposes_agree_with_the_onnx_reference_evaluator() {
     let reference: serde_json::Map<String, serde_json::Value> = serde_json::from_str(&out).expect("json");
     assert_eq!(reference.len(), cases.len());
     for (file, expected) in &reference {
-        let read = tilecut::read_model(&dir.path().join(file), &Default::default()).expect("reads");
-        let g = &read.model.graph;
-        let v = g.value(g.outputs[0]);
-        let k = v.konst.as_deref().unwrap_or_else(|| panic!("{file}: not folded"));
-        let dims: Vec<u64> = expected[0]
-            .as_array()
-            .expect("dims")
-            .iter()
-            .map(|d| d.as_u64().expect("dim"))
-            .collect();
-        let values: Vec<f64> = expected[1]
-            .as_array()
-            .expect("values")
-            .iter()
-            .map(|x| x.as_f64().expect("number"))
-            .collect();
+        let (k, dims, values) = folded_and_expected(dir.path(), file, expected);
         assert_eq!(k.dims, dims, "{file}: folded shape");
         // Folded floats are f64, the reference computes in float32: equal to float32 precision.
         let ours = k.as_floats();

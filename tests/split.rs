@@ -762,3 +762,21 @@ fn tract_verifies_models_whose_dim_names_it_cannot_parse() {
     assert_eq!(j["engine"], "tract");
     assert_eq!(j["outputs"][0]["elements"], 12);
 }
+
+/// Tolerances must be non-negative numbers: anything else is a one-line error, exit 2.
+#[test]
+fn bad_tolerances_are_refused() {
+    for (flag, v) in [
+        ("--rtol", "-1"),
+        ("--atol", "nan"),
+        ("--steps", "-0.5"),
+        ("--atol", "inf"),
+    ] {
+        let arg = format!("{flag}={v}");
+        let (c, out, err) = run(&["verify", "model.onnx", "pieces", &arg]);
+        assert_eq!(c, 2, "{arg}: {err}");
+        assert!(out.is_empty());
+        assert_eq!(err.lines().count(), 1, "{err}");
+        assert!(err.contains(flag), "{err}");
+    }
+}

@@ -85,6 +85,10 @@ pub struct ModelArgs {
     /// Trip count of a Loop node whose count is not a constant, e.g. `--loop-trips decode=32`.
     #[arg(long = "loop-trips", value_name = "NODE=N")]
     pub loop_trips: Vec<String>,
+    /// Fix a small numeric input's value, so that what branches on it resolves, e.g.
+    /// `--value sample_rate=16000` (comma-separated for several elements; repeatable).
+    #[arg(long = "value", value_name = "NAME=V")]
+    pub values: Vec<String>,
 }
 
 impl ModelArgs {
@@ -98,6 +102,9 @@ impl ModelArgs {
         }
         for t in &self.loop_trips {
             o.add_loop_trips(t)?;
+        }
+        for v in &self.values {
+            o.add_value(v)?;
         }
         Ok(o)
     }

@@ -8,8 +8,8 @@ use crate::diag::{codes, Diagnostic};
 use crate::error::{ReadError, SettingError};
 use crate::fastmap::{short_text_eq, FastMap, FastSet, TextKey};
 use crate::ir::{
-    Attr, AttrValue, Body, DType, Dim, Fact, Graph, Model, Name, Node, NodeCost, NodeId, Shape, Storage, TensorData,
-    Value, ValueId, ValueKind, ValueType,
+    Attr, AttrValue, Body, ConstValue, DType, Dim, Fact, Graph, Model, Name, Node, NodeCost, NodeId, Shape, Storage,
+    TensorData, Value, ValueId, ValueKind, ValueType,
 };
 use crate::onnx::load::{resolve_external, LoadedModel};
 use crate::onnx::{self, ProtoStr, TensorProto};
@@ -28,6 +28,9 @@ pub struct Overrides {
     pub inputs: BTreeMap<String, Vec<Dim>>,
     /// `--loop-trips NODE=N`: trip counts for Loop nodes whose count is not a constant.
     pub loop_trips: BTreeMap<String, u64>,
+    /// `--value NAME=V[,V…]`: the value of a small numeric input (a sample rate, a flag), so
+    /// that what branches on it resolves; kept as text until the input's type is known.
+    pub values: BTreeMap<String, Vec<String>>,
 }
 
 impl Overrides {
@@ -47,6 +50,25 @@ impl Overrides {
         // The name the file's spelling `a + 1` takes in tilecut (see `Dim::param`).
         let name = crate::ir::compact_expression(name).unwrap_or_else(|| name.to_string());
         self.dims.insert(name, v);
+        Ok(())
+    }
+
+    /// Parses `NAME=V[,V…]` for `--value`: numbers, one per element, in row-major order.
+    pub fn add_value(&mut self, text: &str) -> Result<(), SettingError> {
+        let (name, list) = text
+            .split_once('=')
+            .ok_or_else(|| SettingError(format!("--value `{text}`: expected NAME=V or NAME=V,V,…")))?;
+        let name = name.trim();
+        if name.is_empty() {
+            return Err(SettingError(format!("--value `{text}`: empty name")));
+        }
+        let parts: Vec<String> = list.split(',').map(|p| p.trim().to_string()).collect();
+        for p in &parts {
+            if !p.parse::<f64>().is_ok_and(f64::is_finite) {
+                return Err(SettingError(format!("--value `{text}`: `{p}` is not a number")));
+            }
+        }
+        self.values.insert(name.to_string(), parts);
         Ok(())
     }
 
@@ -131,6 +153,14 @@ pub fn import(loaded: &LoadedModel, overrides: &Overrides) -> Result<(Model, Vec
             ));
         }
     }
+    for name in overrides.values.keys() {
+        if !cx.used_values.contains(name) {
+            return Err(ReadError::invalid(
+                &loaded.path,
+                format!("--value names `{name}`, which is not an input of the model"),
+            ));
+        }
+    }
     for name in overrides.dims.keys() {
         if !cx.used_dims.contains(name) {
             cx.diags.push(Diagnostic::new(
@@ -208,6 +238,7 @@ struct Cx<'a> {
     diags: Vec<Diagnostic>,
     used_dims: BTreeSet<String>,
     used_inputs: BTreeSet<String>,
+    used_values: BTreeSet<String>,
     /// One shared copy of each op type, domain and attribute name, for every graph of the model.
     names: Interner,
 }
@@ -264,6 +295,7 @@ impl<'a> Cx<'a> {
             diags: Vec::new(),
             used_dims: BTreeSet::new(),
             used_inputs: BTreeSet::new(),
+            used_values: BTreeSet::new(),
             names: Interner::default(),
         }
     }
@@ -389,6 +421,13 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
             declared
         };
         let id = new_value(&mut values, &vi.name, ValueKind::Input, declared.clone());
+        if depth == 0 {
+            if let Some(text) = cx.overrides.values.get(&vi.name) {
+                let k = input_value(cx, &vi.name, &declared, text)?;
+                cx.used_values.insert(vi.name.clone());
+                values[id.index()].konst = Some(Box::new(k));
+            }
+        }
         values[id.index()].declared = Some(Box::new(declared));
         syms.bind(&vi.name, id);
         inputs.push(id);
@@ -1045,6 +1084,39 @@ fn attr_value(
         }
         _ => AttrValue::Other,
     })
+}
+
+/// A `--value` for input `name`: as many numbers as its shape (fixed, with `--input` if need
+/// be) holds, integers for an integer or boolean input.
+fn input_value(cx: &Cx, name: &str, fact: &Fact, text: &[String]) -> Result<ConstValue, ReadError> {
+    let dims = fact.shape.concrete().ok_or_else(|| {
+        cx.err(format!(
+            "--value {name}: the input's shape is not fully known; fix it with --input {name}=…"
+        ))
+    })?;
+    let count = dims.iter().try_fold(1u64, |n, &d| n.checked_mul(d));
+    if count != Some(text.len() as u64) {
+        return Err(cx.err(format!(
+            "--value {name}: the input has shape {} ({} element(s)) and {} value(s) were given",
+            fact.shape,
+            count.map_or_else(|| "too many".to_string(), |c| c.to_string()),
+            text.len()
+        )));
+    }
+    match fact.dtype {
+        Some(dt) if dt.is_float() => Ok(ConstValue::floats(
+            dims,
+            text.iter().map(|t| t.parse().unwrap_or(f64::NAN)).collect(),
+        )),
+        Some(dt) if dt.is_integer() || dt == DType::Bool => {
+            let ints: Option<Vec<i64>> = text.iter().map(|t| t.parse().ok()).collect();
+            let ints = ints.ok_or_else(|| cx.err(format!("--value {name}: the input is {dt}; give whole numbers")))?;
+            Ok(ConstValue::ints(dims, ints))
+        }
+        _ => Err(cx.err(format!(
+            "--value {name}: only numeric inputs of a known type take values"
+        ))),
+    }
 }
 
 fn non_negative_dims(cx: &Cx, name: &str, dims: &[i64]) -> Result<Vec<u64>, ReadError> {

@@ -520,7 +520,7 @@ fn node_cost(ctx: &Ctx, rule: Option<CostRule>, outs: &[Fact], bodies: &[MacsOps
         let pick = |sel: fn(&MacsOps) -> Option<u64>| -> Option<u64> {
             if ctx.node.op_type == "If" {
                 if let Some(c) = ctx.konst(0).and_then(|c| c.as_ints().first().copied()) {
-                    return bodies.get(if c != 0 { 0 } else { 1 }).and_then(sel);
+                    return bodies.get(ops::if_branch(ctx.node, c != 0)).and_then(sel);
                 }
                 // Unknown condition: cost the more expensive branch.
                 return bodies.iter().map(sel).try_fold(0u64, |m, x| x.map(|x| m.max(x)));

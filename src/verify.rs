@@ -120,6 +120,34 @@ fn random_host(fact: &Fact, seed: u64) -> Result<HostTensor, VerifyError> {
     Ok(HostTensor { dtype, dims, bytes })
 }
 
+/// An input's `--value` as host bytes of its type.
+fn value_host(v: &crate::ir::Value) -> Result<HostTensor, VerifyError> {
+    let (Some(k), Some(dtype)) = (v.konst.as_deref(), v.fact.dtype) else {
+        return Err(VerifyError(format!("input `{}`: no value", v.name)));
+    };
+    let ints = k.as_ints();
+    let floats = k.as_floats();
+    let bytes: Vec<u8> = match dtype {
+        DType::F32 => floats.iter().flat_map(|&x| (x as f32).to_le_bytes()).collect(),
+        DType::F64 => floats.iter().flat_map(|&x| x.to_le_bytes()).collect(),
+        DType::Bool | DType::I8 | DType::U8 => ints.iter().map(|&x| x as u8).collect(),
+        DType::I16 | DType::U16 => ints.iter().flat_map(|&x| (x as u16).to_le_bytes()).collect(),
+        DType::I32 | DType::U32 => ints.iter().flat_map(|&x| (x as u32).to_le_bytes()).collect(),
+        DType::I64 | DType::U64 => ints.iter().flat_map(|&x| x.to_le_bytes()).collect(),
+        other => {
+            return Err(VerifyError(format!(
+                "input `{}`: --value of type {other} is not supported by verify (give it with --feed)",
+                v.name
+            )))
+        }
+    };
+    Ok(HostTensor {
+        dtype,
+        dims: k.dims.clone(),
+        bytes,
+    })
+}
+
 fn le<const N: usize>(c: &[u8]) -> [u8; N] {
     let mut a = [0u8; N];
     a.copy_from_slice(c);
@@ -248,6 +276,7 @@ fn inputs(g: &Graph, feeds: &Feeds) -> Result<Vec<(InputSource, HostTensor)>, Ve
         let v = g.value(*id);
         let (source, t) = match feeds.get(&v.name) {
             Some((path, t)) => (path.clone(), t.clone()),
+            None if v.konst.is_some() => ("--value".to_string(), value_host(v)?),
             None => {
                 let seed = 1000 + i as u64;
                 (format!("seeded random (seed {seed})"), random_host(&v.fact, seed)?)
@@ -478,7 +507,7 @@ pub fn verify_tract(
 }
 
 /// The reference-evaluator check, run by python3: `SCRIPT MODEL DIR RTOL STEPS DIMS FEEDS
-/// SHAPES ATOL` prints the output checks as JSON (SHAPES: the inputs' shapes as tilecut sized them,
+/// SHAPES ATOL VALUES` prints the output checks as JSON (SHAPES: the inputs' shapes as tilecut sized them,
 /// `--input` settings included; DIMS sizes what they leave symbolic); `SCRIPT --batch LIST RTOL STEPS [ATOL]` checks every
 /// `[model, dir]` pair of the JSON file LIST and prints one JSON line per model (tests use
 /// it to verify hundreds of splits in one process).
@@ -486,7 +515,7 @@ pub const REFERENCE: &str = r#"
 import sys, json, os, numpy as np, onnx, onnx.numpy_helper
 from onnx.reference import ReferenceEvaluator
 
-def check(model, folder, rtol, steps, dims, given, shapes, atol):
+def check(model, folder, rtol, steps, dims, given, shapes, atol, values={}):
     m = onnx.load(model)
     inits = {t.name for t in m.graph.initializer}
     feeds = {}
@@ -501,6 +530,10 @@ def check(model, folder, rtol, steps, dims, given, shapes, atol):
                 feeds[vi.name] = onnx.numpy_helper.to_array(onnx.load_tensor(path))
             continue
         t = vi.type.tensor_type
+        if vi.name in values:
+            dt = onnx.helper.tensor_dtype_to_np_dtype(t.elem_type)
+            feeds[vi.name] = np.array(values[vi.name], dtype=np.float64).astype(dt).reshape(shapes[vi.name])
+            continue
         if vi.name in shapes:
             shape = shapes[vi.name]
         else:
@@ -556,7 +589,7 @@ if sys.argv[1] == "--batch":
             print(json.dumps({"model": model, "results": None, "error": str(e).splitlines()[0] if str(e) else type(e).__name__}), flush=True)
 else:
     model, folder, rtol, steps = sys.argv[1], sys.argv[2], float(sys.argv[3]), float(sys.argv[4])
-    print(json.dumps(check(model, folder, rtol, steps, json.loads(sys.argv[5]), json.loads(sys.argv[6]), json.loads(sys.argv[7]), float(sys.argv[8]))))
+    print(json.dumps(check(model, folder, rtol, steps, json.loads(sys.argv[5]), json.loads(sys.argv[6]), json.loads(sys.argv[7]), float(sys.argv[8]), json.loads(sys.argv[9]))))
 "#;
 
 /// Verifies with the `onnx` package's reference evaluator through python3.
@@ -590,7 +623,11 @@ pub fn verify_python(
                     input: v.name.clone(),
                     dtype: v.fact.dtype.map_or("?", DType::name).into(),
                     shape: v.fact.shape.concrete().unwrap_or_default(),
-                    source: "seeded random (numpy default_rng)".into(),
+                    source: if v.konst.is_some() {
+                        "--value".into()
+                    } else {
+                        "seeded random (numpy default_rng)".into()
+                    },
                 },
             }
         })
@@ -606,6 +643,16 @@ pub fn verify_python(
         })
         .collect();
     let shapes_json = serde_json::to_string(&shapes).map_err(|e| VerifyError(e.to_string()))?;
+    // `--value` inputs, as numbers the script casts to the input's type.
+    let values: BTreeMap<&str, Vec<f64>> = g
+        .inputs
+        .iter()
+        .filter_map(|id| {
+            let v = g.value(*id);
+            Some((v.name.as_str(), v.konst.as_deref()?.as_floats()))
+        })
+        .collect();
+    let values_json = serde_json::to_string(&values).map_err(|e| VerifyError(e.to_string()))?;
     let out = std::process::Command::new("python3")
         .arg("-c")
         .arg(REFERENCE)
@@ -617,6 +664,7 @@ pub fn verify_python(
         .arg(given_json)
         .arg(shapes_json)
         .arg(tol.absolute.to_string())
+        .arg(values_json)
         .output()
         .map_err(|e| VerifyError(format!("python3 could not start: {e}")))?;
     if !out.status.success() {

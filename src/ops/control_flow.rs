@@ -25,6 +25,16 @@ pub(super) fn merge(a: &Fact, b: &Fact) -> Fact {
     }
 }
 
+/// The body index of the branch an If takes for `condition`: bodies keep the file's attribute
+/// order, and exporters write `else_branch` first as often as not.
+pub fn if_branch(node: &Node, condition: bool) -> usize {
+    let want = if condition { "then_branch" } else { "else_branch" };
+    node.bodies
+        .iter()
+        .position(|b| b.attr == want)
+        .unwrap_or(usize::from(!condition))
+}
+
 fn if_(ctx: &Ctx) -> Inferred {
     let n = ctx.outputs();
     let branches = &ctx.body_outputs;
@@ -33,8 +43,9 @@ fn if_(ctx: &Ctx) -> Inferred {
     }
     // A constant condition selects one branch (the other never runs).
     if let Some(c) = ctx.konst(0).and_then(|c| c.as_ints().first().copied()) {
-        let pick = if c != 0 { 0 } else { 1 };
-        let b = &branches[pick];
+        let b = branches
+            .get(if_branch(ctx.node, c != 0))
+            .ok_or("If without that branch")?;
         return Ok((0..n).map(|i| b.get(i).cloned().unwrap_or_default()).collect());
     }
     Ok((0..n)

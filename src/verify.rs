@@ -295,19 +295,14 @@ fn inputs(g: &Graph, feeds: &Feeds) -> Result<Vec<(InputSource, HostTensor)>, Ve
     Ok(out)
 }
 
-/// tract reads a `dim_param` as one of its own dim expressions, and names exporters write with
-/// dots or slashes (`p2o.DynamicDimension.0`, `Squeeze/decoder/Squeeze_output_0_dim_0`) do not
-/// parse. The inputs' facts are set from the values anyway, so for tract alone such names are
-/// renamed to identifiers (every other character an underscore), in subgraphs too.
+/// tract reads a `dim_param` as one of its own dim expressions and unifies it with what it
+/// computes. Every input's fact is set from its value, so the file's symbolic dims are of no
+/// use to tract, and they hurt: a declared `batch` will not unify with the 1 an input fixes
+/// ("Impossible to unify Sym(batch) with Val(1)"), and names exporters write with dots or
+/// function calls (`p2o.DynamicDimension.0`, `floor(height/2 - 1/2) + 1`) do not parse. For
+/// tract alone, every `dim_param` is cleared to an unknown dim, in subgraphs too.
 fn tract_safe_dims(g: &mut tract_onnx::pb::GraphProto) {
     use tract_onnx::pb::{tensor_shape_proto::dimension::Value as D, type_proto::Value as T};
-    let readable = |p: &str| {
-        let b = p.as_bytes();
-        b.iter().enumerate().all(|(i, &c)| match c {
-            b'/' => b.get(i + 1).is_some_and(u8::is_ascii_digit),
-            c => c.is_ascii_alphanumeric() || b"_+-*() ".contains(&c),
-        })
-    };
     for vi in g
         .input
         .iter_mut()
@@ -318,14 +313,8 @@ fn tract_safe_dims(g: &mut tract_onnx::pb::GraphProto) {
             continue;
         };
         for d in t.shape.iter_mut().flat_map(|s| s.dim.iter_mut()) {
-            if let Some(D::DimParam(p)) = &mut d.value {
-                if !readable(p) {
-                    let name: String = p
-                        .chars()
-                        .map(|c| if c.is_ascii_alphanumeric() { c } else { '_' })
-                        .collect();
-                    *p = format!("s_{name}");
-                }
+            if matches!(d.value, Some(D::DimParam(_))) {
+                d.value = None;
             }
         }
     }
@@ -336,14 +325,21 @@ fn tract_safe_dims(g: &mut tract_onnx::pb::GraphProto) {
     }
 }
 
+/// tract's error on one line: its message and, when there is one, the innermost cause (where
+/// the message alone names only the node).
+fn one_line(e: &anyhow::Error) -> String {
+    let first = e.to_string().lines().next().unwrap_or("").to_string();
+    let root = e.root_cause().to_string();
+    let root = root.lines().next().unwrap_or("");
+    if root.is_empty() || root == first {
+        first
+    } else {
+        format!("{first} ({root})")
+    }
+}
+
 fn run_tract(path: &Path, inputs: &[(String, Tensor)]) -> Result<BTreeMap<String, Tensor>, VerifyError> {
-    let err = |e: anyhow::Error| {
-        VerifyError(format!(
-            "{}: tract could not run it: {}",
-            path.display(),
-            e.to_string().lines().next().unwrap_or("")
-        ))
-    };
+    let err = |e: anyhow::Error| VerifyError(format!("{}: tract could not run it: {}", path.display(), one_line(&e)));
     let r = std::panic::catch_unwind(|| -> TractResult<BTreeMap<String, Tensor>> {
         // `model_for_path`, with dim names tract cannot read renamed in between.
         let onnx = tract_onnx::onnx();

@@ -740,17 +740,26 @@ fn the_reference_engine_takes_input_settings() {
     assert_eq!(j["outputs"][0]["elements"], 12);
 }
 
-/// Exporters name dims with dots (`p2o.DynamicDimension.0`) or slashes, which tract cannot
-/// read as its dim expressions: `verify` renames them for tract alone, so such a model runs.
+/// Exporters name dims with dots (`p2o.DynamicDimension.0`), slashes or function calls
+/// (`floor(T/2 - 1/2) + 1`), which tract cannot read as its dim expressions, and declare
+/// symbolic dims on inner tensors, which tract will not unify with the sizes the inputs fix
+/// (seen on deployed detectors and OCR models). `verify` clears them for tract alone, so such
+/// a model runs.
 #[test]
 fn tract_verifies_models_whose_dim_names_it_cannot_parse() {
     let d = tempfile::tempdir().expect("tmp");
-    let m = model(
+    let mut m = model(
         vec![node("Relu", &["x"], &["r"]), node("Neg", &["r"], &["y"])],
         vec![vi("x", 1, &[Dm::S("p2o.DynamicDimension.0"), Dm::N(4)])],
         vec![vi("y", 1, &[Dm::S("Neg/out_dim_0"), Dm::N(4)])],
         vec![],
     );
+    if let Some(g) = m.graph.as_mut() {
+        g.value_info
+            .push(vi("r", 1, &[Dm::S("floor(T/2 - 1/2) + 1"), Dm::N(4)]));
+        // A plain name: readable, and still not the 3 that `--input` fixes.
+        g.value_info.push(vi("y", 1, &[Dm::S("batch"), Dm::N(4)]));
+    }
     let p = write(d.path(), "dotted.onnx", &m);
     let out = d.path().join("pieces");
     let (pm, o) = (p.to_str().expect("utf8"), out.to_str().expect("utf8"));

@@ -76,6 +76,9 @@ impl Dim {
             (Dim::Known(1), d) | (d, Dim::Known(1)) => d.clone(),
             (Dim::Known(0), _) | (_, Dim::Known(0)) => Dim::Known(0),
             (Dim::Unknown, _) | (_, Dim::Unknown) => Dim::Unknown,
+            (Dim::Sym(s), Dim::Known(k)) | (Dim::Known(k), Dim::Sym(s)) if scaled_product(s, *k).is_some() => {
+                scaled_product(s, *k)?
+            }
             (a, b) => Dim::expression(a, '*', b),
         })
     }
@@ -149,7 +152,10 @@ impl Dim {
             Dim::Known(a) => Dim::Known(a / divisor),
             d if divisor == 1 => d.clone(),
             Dim::Sym(s) if s.contains('@') => Dim::Unknown,
-            d @ Dim::Sym(_) => Dim::expression(d, '/', &Dim::Known(divisor)),
+            Dim::Sym(s) => match nested_quotient(s, divisor) {
+                Some(d) => d,
+                None => Dim::expression(self, '/', &Dim::Known(divisor)),
+            },
             Dim::Unknown => Dim::Unknown,
         }
     }
@@ -180,6 +186,86 @@ impl std::fmt::Display for Dim {
 
 /// The longest symbolic dim expression tilecut builds; longer ones become unknown.
 pub const MAX_EXPRESSION: usize = 256;
+
+/// Whether `s` has one of `ops` outside every pair of parentheses.
+fn has_top_level(s: &str, ops: &[u8]) -> bool {
+    let mut depth = 0i32;
+    s.bytes().any(|b| {
+        match b {
+            b'(' => depth += 1,
+            b')' => depth -= 1,
+            _ => {}
+        }
+        depth == 0 && ops.contains(&b)
+    })
+}
+
+/// `s` without one pair of parentheses around all of it, if it has one.
+fn unwrapped(s: &str) -> &str {
+    match s.strip_prefix('(').and_then(|r| r.strip_suffix(')')) {
+        // `(a)*(b)` also starts and ends with parentheses: only a pair that never closes
+        // early encloses the whole.
+        Some(inner) if balanced(inner) => inner,
+        _ => s,
+    }
+}
+
+fn balanced(s: &str) -> bool {
+    let mut depth = 0i32;
+    s.bytes().all(|b| {
+        match b {
+            b'(' => depth += 1,
+            b')' => depth -= 1,
+            _ => {}
+        }
+        depth >= 0
+    }) && depth == 0
+}
+
+/// `x*a` times `k` as `x*(a·k)`, for a product `s` whose last factor is a whole number: a
+/// grid upsampled twice by 2 reads `x*4`, not `(x*2)*2`. Only a plain product is merged (no
+/// sum or quotient at its top level), since `a+b*2` times 2 is not `a+b*4`.
+fn scaled_product(s: &str, k: u64) -> Option<Dim> {
+    let s = unwrapped(s);
+    if has_top_level(s, b"+-/") {
+        return None;
+    }
+    let (rest, a) = s.rsplit_once('*')?;
+    let a: u64 = a.parse().ok()?;
+    let text = format!("{rest}*{}", a.checked_mul(k)?);
+    (text.len() < MAX_EXPRESSION).then(|| Dim::sym(&text))
+}
+
+/// `(x/b + a) / d` as `(x + a·b) / (b·d)`: for whole numbers, floor(floor(x/b) + a) / d)
+/// equals floor((x + a·b) / (b·d)) (common practice: nested floor division). A stack of
+/// stride-2 windows then reads `(width+31)/32`, not five nested quotients. `s` must be a
+/// quotient of a parenthesized expression or a name by a whole number, with an optional
+/// whole-number term after it.
+fn nested_quotient(s: &str, d: u64) -> Option<Dim> {
+    let s = unwrapped(s);
+    // The trailing `±a`, a top-level term when the text after the sign is a plain number.
+    let (q, a) = match s.rfind(['+', '-']) {
+        Some(i) if i > 0 && s[i + 1..].bytes().all(|c| c.is_ascii_digit()) && i + 1 < s.len() => {
+            let a: i64 = s[i + 1..].parse().ok()?;
+            (&s[..i], if s.as_bytes()[i] == b'-' { -a } else { a })
+        }
+        _ => (s, 0),
+    };
+    let (x, b) = q.rsplit_once('/')?;
+    let b: u64 = b.parse().ok()?;
+    let x = match x.strip_prefix('(').and_then(|r| r.strip_suffix(')')) {
+        Some(inner) if balanced(inner) => inner,
+        // A bare name: anything with an operator in it would bind differently.
+        _ if !x.is_empty() && !x.contains(['+', '-', '*', '/', '(', ')']) => x,
+        _ => return None,
+    };
+    let shift = a.checked_mul(i64::try_from(b).ok()?)?;
+    let inner = Dim::sym(x).offset(shift);
+    if inner == Dim::Unknown {
+        return None;
+    }
+    Some(Dim::expression(&inner, '/', &Dim::Known(b.checked_mul(d)?)))
+}
 
 /// `text` without its spaces, if it is a sum of products of identifiers and whole numbers
 /// (with parentheses) that uses at least one operator.
@@ -403,6 +489,70 @@ impl std::fmt::Display for Shape {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// Merged quotients and products must equal the step-by-step integer arithmetic at every
+    /// size (floor division of whole numbers, common practice), and stay short.
+    #[test]
+    fn merged_quotients_and_products_equal_the_step_by_step_sizes() {
+        // Each chain: a stride-s window of kernel k and total padding p, or a scale, or an
+        // offset, applied in turn to a symbolic T.
+        #[derive(Clone, Copy)]
+        enum Step {
+            Window { k: u64, s: u64, p: u64 },
+            Scale(u64),
+            Offset(i64),
+        }
+        use Step::*;
+        let chains: &[&[Step]] = &[
+            &[Window { k: 3, s: 2, p: 2 }; 5],
+            &[
+                Window { k: 3, s: 2, p: 2 },
+                Window { k: 2, s: 2, p: 0 },
+                Scale(2),
+                Scale(2),
+            ],
+            &[
+                Window { k: 7, s: 2, p: 6 },
+                Window { k: 3, s: 2, p: 2 },
+                Scale(3),
+                Window { k: 5, s: 3, p: 0 },
+            ],
+            &[
+                Offset(-1),
+                Window { k: 4, s: 4, p: 0 },
+                Offset(2),
+                Window { k: 1, s: 2, p: 0 },
+            ],
+        ];
+        for (c, chain) in chains.iter().enumerate() {
+            let mut d = Dim::sym("T");
+            for step in chain.iter() {
+                d = match step {
+                    Window { k, s, p } => d.offset(*p as i64 - *k as i64).div_floor(*s).offset(1),
+                    Scale(f) => d.mul(&Dim::Known(*f)).expect("product"),
+                    Offset(o) => d.offset(*o),
+                };
+            }
+            let Dim::Sym(text) = &d else { panic!("chain {c}: {d:?}") };
+            assert!(text.len() < 40, "chain {c}: `{text}` was not merged");
+            for t in 16..300u64 {
+                let mut want = t as i64;
+                for step in chain.iter() {
+                    want = match step {
+                        Window { k, s, p } => (want + *p as i64 - *k as i64).div_euclid(*s as i64) + 1,
+                        Scale(f) => want * *f as i64,
+                        Offset(o) => want + o,
+                    };
+                }
+                let got = evaluate(text, &|n| (n == "T").then_some(t)).expect("expression");
+                assert_eq!(got, Some(want as u64), "chain {c} at T = {t}: `{text}`");
+            }
+        }
+        // Not merged: a sum times a number, and a quotient of a product.
+        assert_eq!(Dim::sym("a+b*2").mul(&Dim::Known(2)), Some(Dim::sym("(a+b*2)*2")));
+        assert_eq!(Dim::sym("a*b/2").div_floor(2), Dim::sym("(a*b/2)/2"));
+        assert_eq!(Dim::sym("(a)*(b)").mul(&Dim::Known(3)), Some(Dim::sym("(a)*(b)*3")));
+    }
 
     #[test]
     fn file_expressions_become_compact_and_evaluate() {

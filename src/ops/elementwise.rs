@@ -383,6 +383,17 @@ fn fold_cast_like(ctx: &Ctx) -> Option<Vec<ConstValue>> {
 }
 
 fn cast_const(v: &ConstValue, to: DType) -> ConstValue {
+    // A size read off a shape stays a size through a cast to any type that holds every size
+    // exactly (exporters cast `Shape` results to float for `Range` and to int32): symbolic
+    // sizes carry on instead of turning unknown.
+    if matches!(v.data, ConstData::Dims(_))
+        && matches!(
+            to,
+            DType::F32 | DType::F64 | DType::I32 | DType::I64 | DType::U32 | DType::U64
+        )
+    {
+        return v.clone();
+    }
     if to.is_float() {
         ConstValue::floats(v.dims.clone(), v.as_floats())
     } else if to == DType::Bool {

@@ -156,20 +156,35 @@ fn range_len(ctx: &Ctx) -> Option<u64> {
     Some(((l - s) / d).ceil().max(0.0) as u64)
 }
 
-/// `Range(0, n, 1)` with `n` a symbolic size (read off a `Shape`): exporters make position
-/// ids this way, and the output is `n` long whatever `n` is.
+/// `Range(s, n, k)` with `n` a symbolic size (read off a `Shape`, perhaps cast to float) and
+/// `s`, `k` whole numbers, `k` positive: exporters make position ids and detection grids this
+/// way. Per the ONNX Range specification the output holds ceil((n - s) / k) elements, which
+/// is `n-s` for a step of one and `(n-s+k-1)/k` otherwise, whatever `n` is.
 fn range_symbolic(ctx: &Ctx) -> Option<Dim> {
-    let (s, d) = (ctx.konst(0)?.as_floats(), ctx.konst(2)?.as_floats());
-    if s.as_slice() != [0.0] || d.as_slice() != [1.0] {
+    let whole = |i: usize| -> Option<i64> {
+        match ctx.konst(i)?.as_floats().as_slice() {
+            [x] if x.fract() == 0.0 && x.abs() < 1e15 => Some(*x as i64),
+            _ => None,
+        }
+    };
+    let (start, step) = (whole(0)?, whole(2)?);
+    if start < 0 || step <= 0 {
         return None;
     }
-    match &ctx.konst(1)?.data {
+    let limit = match &ctx.konst(1)?.data {
         ConstData::Dims(v) => match v.as_slice() {
-            [sym @ Dim::Sym(_)] => Some(sym.clone()),
-            _ => None,
+            [sym @ Dim::Sym(_)] => sym.clone(),
+            _ => return None,
         },
-        _ => None,
-    }
+        _ => return None,
+    };
+    let span = limit.offset(start.checked_neg()?);
+    let len = if step == 1 {
+        span
+    } else {
+        span.offset(step - 1).div_floor(step as u64)
+    };
+    (len != Dim::Unknown).then_some(len)
 }
 
 fn range(ctx: &Ctx) -> Inferred {

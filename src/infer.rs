@@ -225,10 +225,25 @@ fn infer_graph(
                 .collect();
             let op = node.op_type.clone();
             let scan = (op == "Scan").then(|| ops::ScanLayout::of(node, opset));
+            // An If whose condition is known runs one branch: the other is still inferred
+            // (split and explain read its tensors), but what it finds is not reported, as
+            // it can never happen.
+            let taken = (op == "If")
+                .then(|| node.inputs.first().copied().flatten())
+                .flatten()
+                .and_then(|c| g.values[c.index()].konst.as_deref())
+                .and_then(|c| c.as_ints().first().copied())
+                .map(|c| ops::if_branch(node, c != 0));
             let mut bodies = std::mem::take(&mut g.nodes[ni].bodies);
-            for b in &mut bodies {
+            for (bi, b) in bodies.iter_mut().enumerate() {
                 seed_body_inputs(&mut b.graph, &op, &input_facts, scan.as_ref());
-                infer_graph(&mut b.graph, settings, &scope, diags, unknown_ops, None);
+                let mut unseen = Vec::new();
+                let body_diags = if taken.is_some_and(|t| t != bi) {
+                    &mut unseen
+                } else {
+                    &mut *diags
+                };
+                infer_graph(&mut b.graph, settings, &scope, body_diags, unknown_ops, None);
                 body_outputs.push(
                     b.graph
                         .outputs

@@ -1262,6 +1262,11 @@ fn else_first_if(dir: &std::path::Path) -> std::path::PathBuf {
         let mut g = GraphBuilder::new(name);
         let out = format!("{name}_out");
         g.node("Identity", &[from], &[&out]);
+        // A node whose inference fails (its input's first dim is not 1), read by nothing:
+        // reported only where its branch may run.
+        g.initializer(i64_tensor(&format!("{name}_axes"), &[1], &[0]));
+        let (axes, dropped) = (format!("{name}_axes"), format!("{name}_dropped"));
+        g.node("Squeeze", &[from, &axes], &[&dropped]).name = format!("{name}_squeeze").into();
         g.graph.output.push(onnx::ValueInfoProto {
             name: out,
             ..Default::default()
@@ -1288,7 +1293,7 @@ fn else_first_if(dir: &std::path::Path) -> std::path::PathBuf {
 
 /// `--value` fixes a small input's value, and an If on it takes the branch the ONNX operator
 /// specification names: `then_branch` when the condition is true, whatever the order of the
-/// attributes in the file.
+/// attributes in the file. The other branch never runs, so its findings are not reported.
 #[test]
 fn a_fixed_input_value_selects_the_if_branch_by_name() {
     let d = tmp();
@@ -1303,16 +1308,37 @@ fn a_fixed_input_value_selects_the_if_branch_by_name() {
             "json",
         ]);
         assert_eq!(c, 0, "{err}");
-        let j: serde_json::Value = serde_json::from_str(&out).expect("json");
-        j["outputs"][0]["shape"].clone()
+        serde_json::from_str::<serde_json::Value>(&out).expect("json")
     };
-    assert_eq!(shape("flag=1"), serde_json::json!([2, 3]), "true: then_branch");
-    assert_eq!(shape("flag=0"), serde_json::json!([5]), "false: else_branch");
-    // Without a value the branches disagree: the rank is not guessed.
+    // The branch that cannot run is not reported on: only the taken one's failure shows.
+    let failed = |j: &serde_json::Value| -> Vec<String> {
+        let w = j["warnings"].as_array().expect("warnings");
+        w.iter()
+            .filter(|w| w["code"] == "shape-failed")
+            .map(|w| w["node"].as_str().unwrap_or_default().to_string())
+            .collect()
+    };
+    let (then, else_) = (shape("flag=1"), shape("flag=0"));
+    assert_eq!(
+        then["outputs"][0]["shape"],
+        serde_json::json!([2, 3]),
+        "true: then_branch"
+    );
+    assert_eq!(failed(&then), ["then_squeeze"]);
+    assert_eq!(
+        else_["outputs"][0]["shape"],
+        serde_json::json!([5]),
+        "false: else_branch"
+    );
+    assert_eq!(failed(&else_), ["else_squeeze"]);
+    // Without a value the branches disagree: the rank is not guessed, and both may run.
     let (c, out, _) = run(&["inspect", p.to_str().expect("utf8"), "--format", "json"]);
     assert_eq!(c, 0);
     let j: serde_json::Value = serde_json::from_str(&out).expect("json");
     assert_eq!(j["outputs"][0]["shape"], serde_json::Value::Null);
+    let mut both = failed(&j);
+    both.sort();
+    assert_eq!(both, ["else_squeeze", "then_squeeze"]);
 }
 
 /// Bad `--value` settings: one-line errors naming the problem, exit 2.

@@ -5,6 +5,7 @@
 
 mod common;
 
+use std::collections::BTreeMap;
 use std::path::Path;
 
 use common::*;
@@ -586,4 +587,124 @@ fn symbolic_ranges_and_strided_stacks_agree_with_the_onnx_reference_evaluator() 
             );
         }
     }
+}
+
+/// Lists the models of the `onnx` package's backend test data converted from PyTorch and its
+/// "simple" models, each with the dims of its test inputs (by input name) and of the outputs
+/// the ONNX project recorded for them (by output index), from `test_data_set_0`.
+const BACKEND_CASES: &str = r#"
+import os, glob, json, onnx
+root = os.path.join(os.path.dirname(onnx.__file__), "backend", "test", "data")
+cases = []
+for kind in ("pytorch-converted", "pytorch-operator", "simple"):
+    for d in sorted(glob.glob(os.path.join(root, kind, "*"))):
+        model = os.path.join(d, "model.onnx")
+        data = sorted(glob.glob(os.path.join(d, "test_data_set_0", "*.pb")))
+        if not os.path.exists(model) or not data:
+            continue
+        g = onnx.load(model, load_external_data=False).graph
+        weights = {t.name for t in g.initializer}
+        names = [i.name for i in g.input if i.name not in weights]
+        inputs, outputs = {}, {}
+        for f in data:
+            t = onnx.TensorProto()
+            with open(f, "rb") as fh:
+                t.ParseFromString(fh.read())
+            b = os.path.basename(f)[:-3]
+            k = int(b.split("_")[1])
+            if b.startswith("input_") and k < len(names):
+                inputs[names[k]] = list(t.dims)
+            elif b.startswith("output_"):
+                outputs[k] = list(t.dims)
+        cases.append([model, inputs, outputs])
+print(json.dumps(cases))
+"#;
+
+/// The ONNX project's backend test models converted from PyTorch and its "simple" models
+/// (`onnx/backend/test/data/{pytorch-converted,pytorch-operator,simple}` in the `onnx`
+/// package), with the declared output types and all value_info stripped and the inputs fixed
+/// to the recorded test inputs' dims: every output dim tilecut states must be the recorded
+/// output's. A dim may stay open only where the size is data (string stop words; an Expand to
+/// a shape that is an input's value, fixed only with `--value`), where sequence positions
+/// matter (tilecut types a sequence by its elements, not their count), or for the training
+/// preview domain's Gradient, which tilecut does not read.
+#[test]
+fn backend_test_models_give_their_recorded_output_shapes() {
+    if !python_onnx("backend_test_models_give_their_recorded_output_shapes") {
+        return;
+    }
+    use tilecut::ir::Dim;
+    // (model, input dims by name, output dims by index)
+    type Dims = BTreeMap<String, Vec<u64>>;
+    let cases: Vec<(String, Dims, Dims)> = serde_json::from_str(&python(BACKEND_CASES, &[])).expect("json");
+    assert!(cases.len() >= 130, "only {} backend test models found", cases.len());
+    let (mut agree, mut open) = (0, Vec::new());
+    let mut wrong = Vec::new();
+    for (model, inputs, outputs) in &cases {
+        let path = Path::new(model);
+        let bytes = std::fs::read(path).expect("read");
+        let mut m = <tilecut::onnx::ModelProto as prost::Message>::decode(bytes::Bytes::from(bytes)).expect("decode");
+        let g = m.graph.as_mut().expect("graph");
+        for o in &mut g.output {
+            o.r#type = None;
+        }
+        g.value_info.clear();
+        let encoded = bytes::Bytes::from(prost::Message::encode_to_vec(&m));
+        let dir = path.parent().expect("folder").canonicalize().expect("dir");
+        let loaded = tilecut::onnx::load::decode(path, encoded, dir).expect("decode");
+        let mut o = tilecut::Overrides::default();
+        for (name, dims) in inputs {
+            if !dims.is_empty() {
+                let dims: Vec<String> = dims.iter().map(u64::to_string).collect();
+                o.add_input(&format!("{name}={}", dims.join("x")))
+                    .expect("input setting");
+            }
+        }
+        let read = tilecut::read_loaded(&loaded, &o).expect("reads");
+        let g = &read.model.graph;
+        let case = path
+            .parent()
+            .and_then(Path::file_name)
+            .and_then(|n| n.to_str())
+            .unwrap_or(model);
+        for (k, want) in outputs {
+            let k: usize = k.parse().expect("index");
+            let Some(ours) = g.value(g.outputs[k]).fact.shape.dims() else {
+                open.push(format!("{case} output {k}: rank unknown"));
+                continue;
+            };
+            let fits = ours.len() == want.len()
+                && ours
+                    .iter()
+                    .zip(want)
+                    .all(|(d, w)| !matches!(d, Dim::Known(v) if v != w));
+            if !fits {
+                wrong.push(format!("{case} output {k}: tilecut {ours:?}, recorded {want:?}"));
+            } else if ours.iter().all(|d| matches!(d, Dim::Known(_))) {
+                agree += 1;
+            } else {
+                open.push(format!("{case} output {k}: {ours:?}"));
+            }
+        }
+    }
+    println!(
+        "backend test models: {agree} outputs agree with the recorded ones, {} left open: {open:#?}",
+        open.len()
+    );
+    assert!(wrong.is_empty(), "{} wrong: {wrong:#?}", wrong.len());
+    for o in &open {
+        let allowed = ["test_strnorm", "test_sequence", "test_expand_shape", "test_gradient"];
+        assert!(
+            allowed.iter().any(|a| o.starts_with(a)),
+            "only data-dependent and sequence-position sizes may stay open: {o}"
+        );
+    }
+    // An Expand to an input's value still has its rank (two from the target's length, three
+    // from the data) and the data's dims other than 1: [1, 3, 1] expanded to a 2-long shape.
+    assert!(
+        open.iter()
+            .any(|o| o == "test_expand_shape_model1 output 0: [Unknown, Known(3), Unknown]"),
+        "{open:?}"
+    );
+    assert!(agree >= 130, "only {agree} agree");
 }

@@ -921,12 +921,39 @@ fn tile(ctx: &Ctx) -> Inferred {
 fn expand(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(0);
     let Some(target) = ctx.konst(1) else {
-        return Ok(vec![tensor(dt, Shape::unknown())]);
+        return Ok(vec![tensor(dt, expand_unknown_target(ctx))]);
     };
     Ok(vec![tensor(
         dt,
         broadcast(&[ctx.shape(0), Shape::of(target.as_dims())])?,
     )])
+}
+
+/// Expand to a shape known only at run time. Its length, when the shape input's own shape is
+/// known, still fixes the rank (max of the two, per the ONNX Expand specification's
+/// multidirectional broadcasting), and a known dim of the data other than 1 survives, since
+/// the target's dim there must be 1 or that dim.
+fn expand_unknown_target(ctx: &Ctx) -> Shape {
+    let (Some(data), Some(target)) = (ctx.dims(0), ctx.shape(1).concrete()) else {
+        return Shape::unknown();
+    };
+    let [len] = target[..] else {
+        return Shape::unknown();
+    };
+    let Ok(len) = usize::try_from(len) else {
+        return Shape::unknown();
+    };
+    let rank = data.len().max(len);
+    let lead = rank - data.len();
+    Shape::of(
+        (0..rank)
+            .map(|i| match i.checked_sub(lead).map(|j| &data[j]) {
+                // A symbolic dim may be 1 at run time, and then the target's dim wins.
+                Some(Dim::Known(v)) if *v != 1 => Dim::Known(*v),
+                _ => Dim::Unknown,
+            })
+            .collect(),
+    )
 }
 
 fn fold_expand(ctx: &Ctx) -> Option<Vec<ConstValue>> {

@@ -150,6 +150,25 @@ fn lifting_dims_equals_analyzing_with_the_dims_fixed() {
         assert!(real["summary"]["est_latency_us"].is_null());
         assert_eq!(real["summary"]["needs_dims"], serde_json::json!(["batch", "frames"]));
         assert!(fixed["summary"]["est_latency_us"].is_number());
+        // The table says the node coverage comes from a cut that could not weigh those nodes.
+        let (c, table, err) = run(&["analyze", s(&model), "--target", target]);
+        assert_eq!(c, 0, "{err}");
+        let row = table.lines().find(|l| l.contains("coverage by nodes")).expect("row");
+        assert!(
+            row.contains("nodes of unknown cost: fix --dim batch=N --dim frames=N for a real plan"),
+            "{row}"
+        );
+        let (_, table, _) = run(&[
+            "analyze",
+            s(&model),
+            "--target",
+            target,
+            "--dim",
+            "batch=1",
+            "--dim",
+            "frames=98",
+        ]);
+        assert!(!table.contains("unknown cost"), "{table}");
     }
 }
 

@@ -641,14 +641,38 @@ fn micros(x: Option<f64>, needs: &[String]) -> String {
     match x {
         Some(v) => format!("{v:.1} µs"),
         None if needs.is_empty() => "unknown (some shapes are unknown)".into(),
-        None => format!(
-            "unknown (fix {})",
-            needs
-                .iter()
-                .map(|d| crate::text::fix_hint(d))
-                .collect::<Vec<_>>()
-                .join(" ")
-        ),
+        None => format!("unknown (fix {})", fix_hints(needs)),
+    }
+}
+
+fn fix_hints(needs: &[String]) -> String {
+    needs
+        .iter()
+        .map(|d| crate::text::fix_hint(d))
+        .collect::<Vec<_>>()
+        .join(" ")
+}
+
+/// Node coverage, and a warning beside it when some nodes' work is unknown: the cut then
+/// sees them as free and has nothing to gain by moving them, so a low figure says more about
+/// the missing dims than about the target.
+fn node_coverage(s: &Summary) -> String {
+    let share = pct(Some(s.coverage_nodes));
+    match unknown_cost_note(s) {
+        Some(note) => format!("{share} ({note})"),
+        None => share,
+    }
+}
+
+/// "cut with N nodes of unknown cost: fix --dim … for a real plan", when there are such nodes.
+pub(crate) fn unknown_cost_note(s: &Summary) -> Option<String> {
+    match s.unknown_cost_nodes {
+        0 => None,
+        n if s.needs_dims.is_empty() => Some(format!("cut with {n} nodes of unknown cost")),
+        n => Some(format!(
+            "cut with {n} nodes of unknown cost: fix {} for a real plan",
+            fix_hints(&s.needs_dims)
+        )),
     }
 }
 
@@ -831,7 +855,7 @@ pub fn render_table(r: &AnalyzeReport, out: &mut dyn Write, paint: Paint) -> std
         },
         Kv {
             k: "coverage by nodes".into(),
-            v: pct(Some(s.coverage_nodes)),
+            v: node_coverage(s),
         },
         Kv {
             k: "accelerator partitions".into(),
@@ -1011,7 +1035,7 @@ pub fn render_markdown(r: &AnalyzeReport, out: &mut dyn Write) -> std::io::Resul
     writeln!(out, "### tilecut: `{}` on `{}`\n", r.model.path, r.target.name)?;
     writeln!(out, "| figure | value |\n|---|---|")?;
     writeln!(out, "| coverage by MACs | {} |", pct(s.coverage_macs))?;
-    writeln!(out, "| coverage by nodes | {} |", pct(Some(s.coverage_nodes)))?;
+    writeln!(out, "| coverage by nodes | {} |", node_coverage(s))?;
     writeln!(out, "| accelerator partitions | {} |", s.accel_partitions)?;
     writeln!(
         out,

@@ -270,6 +270,9 @@ table {{ border-collapse: collapse; width: 100%; background: #fff; }} td, th {{ 
         svg = svg,
         grid = grid,
         rows_html = rows_html,
-        note = esc(r.estimate_note),
+        note = esc(&match super::analyze::unknown_cost_note(s) {
+            Some(n) => format!("{} Coverage by nodes: {n}.", r.estimate_note),
+            None => r.estimate_note.to_string(),
+        }),
     )
 }

@@ -227,7 +227,8 @@ fn balanced(s: &str) -> bool {
 /// sum or quotient at its top level), since `a+b*2` times 2 is not `a+b*4`.
 fn scaled_product(s: &str, k: u64) -> Option<Dim> {
     let s = unwrapped(s);
-    if has_top_level(s, b"+-/") {
+    // A data-dependent size's node name may hold any character: never taken apart.
+    if s.contains('@') || has_top_level(s, b"+-/") {
         return None;
     }
     let (rest, a) = s.rsplit_once('*')?;

@@ -65,6 +65,21 @@ for p in sorted(glob.glob(os.path.join(sys.argv[1], "*.onnx"))):
 print(json.dumps(res))
 "#;
 
+/// A model decoded with its declared output types and all value_info removed, so that
+/// tilecut's inference cannot fall back on them.
+fn stripped(path: &Path) -> tilecut::onnx::load::LoadedModel {
+    let bytes = std::fs::read(path).expect("read");
+    let mut m = <tilecut::onnx::ModelProto as prost::Message>::decode(bytes::Bytes::from(bytes)).expect("decode");
+    let g = m.graph.as_mut().expect("graph");
+    for o in &mut g.output {
+        o.r#type = None;
+    }
+    g.value_info.clear();
+    let encoded = bytes::Bytes::from(prost::Message::encode_to_vec(&m));
+    let dir = path.parent().expect("folder").canonicalize().expect("dir");
+    tilecut::onnx::load::decode(path, encoded, dir).expect("decode")
+}
+
 #[test]
 fn inferred_output_shapes_agree_with_onnx_shape_inference() {
     if !python_onnx("inferred_output_shapes_agree_with_onnx_shape_inference") {
@@ -77,17 +92,8 @@ fn inferred_output_shapes_agree_with_onnx_shape_inference() {
     let mut disagreements = Vec::new();
     for (file, outs) in &reference {
         let Some(outs) = outs.as_array() else { continue };
-        let path = dir.join(file);
-        // Strip the same way as the reference side.
-        let bytes = std::fs::read(&path).expect("read");
-        let mut m = <tilecut::onnx::ModelProto as prost::Message>::decode(bytes::Bytes::from(bytes)).expect("decode");
-        let g = m.graph.as_mut().expect("graph");
-        for o in &mut g.output {
-            o.r#type = None;
-        }
-        g.value_info.clear();
-        let encoded = bytes::Bytes::from(prost::Message::encode_to_vec(&m));
-        let loaded = tilecut::onnx::load::decode(&path, encoded, dir.canonicalize().expect("dir")).expect("decode");
+        // Stripped the same way as the reference side.
+        let loaded = stripped(&dir.join(file));
         let (mut model, mut diags) = tilecut::import::import(&loaded, &Default::default()).expect("import");
         tilecut::infer::infer(&mut model, &mut diags);
         for (k, o) in outs.iter().enumerate() {
@@ -642,16 +648,7 @@ fn backend_test_models_give_their_recorded_output_shapes() {
     let mut wrong = Vec::new();
     for (model, inputs, outputs) in &cases {
         let path = Path::new(model);
-        let bytes = std::fs::read(path).expect("read");
-        let mut m = <tilecut::onnx::ModelProto as prost::Message>::decode(bytes::Bytes::from(bytes)).expect("decode");
-        let g = m.graph.as_mut().expect("graph");
-        for o in &mut g.output {
-            o.r#type = None;
-        }
-        g.value_info.clear();
-        let encoded = bytes::Bytes::from(prost::Message::encode_to_vec(&m));
-        let dir = path.parent().expect("folder").canonicalize().expect("dir");
-        let loaded = tilecut::onnx::load::decode(path, encoded, dir).expect("decode");
+        let loaded = stripped(path);
         let mut o = tilecut::Overrides::default();
         for (name, dims) in inputs {
             if !dims.is_empty() {

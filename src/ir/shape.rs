@@ -187,17 +187,21 @@ impl std::fmt::Display for Dim {
 /// The longest symbolic dim expression tilecut builds; longer ones become unknown.
 pub const MAX_EXPRESSION: usize = 256;
 
-/// Whether `s` has one of `ops` outside every pair of parentheses.
-fn has_top_level(s: &str, ops: &[u8]) -> bool {
-    let mut depth = 0i32;
-    s.bytes().any(|b| {
+/// Each byte of `s` with the parenthesis depth after it.
+fn depths(s: &str) -> impl Iterator<Item = (u8, i32)> + '_ {
+    s.bytes().scan(0i32, |depth, b| {
         match b {
-            b'(' => depth += 1,
-            b')' => depth -= 1,
+            b'(' => *depth += 1,
+            b')' => *depth -= 1,
             _ => {}
         }
-        depth == 0 && ops.contains(&b)
+        Some((b, *depth))
     })
+}
+
+/// Whether `s` has one of `ops` outside every pair of parentheses.
+fn has_top_level(s: &str, ops: &[u8]) -> bool {
+    depths(s).any(|(b, depth)| depth == 0 && ops.contains(&b))
 }
 
 /// `s` without one pair of parentheses around all of it, if it has one.
@@ -211,15 +215,7 @@ fn unwrapped(s: &str) -> &str {
 }
 
 fn balanced(s: &str) -> bool {
-    let mut depth = 0i32;
-    s.bytes().all(|b| {
-        match b {
-            b'(' => depth += 1,
-            b')' => depth -= 1,
-            _ => {}
-        }
-        depth >= 0
-    }) && depth == 0
+    depths(s).all(|(_, depth)| depth >= 0) && depths(s).last().is_none_or(|(_, d)| d == 0)
 }
 
 /// `x*a` times `k` as `x*(a·k)`, for a product `s` whose last factor is a whole number: a

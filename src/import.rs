@@ -1268,7 +1268,7 @@ fn type_fact(cx: &Cx, name: &str, tp: &onnx::TypeProto) -> Result<Fact, ReadErro
                 None => Fact::default(),
             };
             Fact {
-                value_type: ValueType::Sequence(Box::new(inner)),
+                value_type: ValueType::Sequence(Box::new(inner), None),
                 dtype: None,
                 shape: Shape::unknown(),
             }

@@ -445,7 +445,10 @@ fn fill_from(fact: &Fact, decl: &Fact, fixable: &BTreeSet<String>) -> Fact {
         ),
         _ => fact.shape.clone(),
     };
-    let value_type = if fact.dtype.is_none() && fact.shape.rank().is_none() {
+    // A sequence whose elements the graph spells out keeps them: a declaration types the
+    // elements only.
+    let tracked = matches!(fact.value_type, ValueType::Sequence(_, Some(_)));
+    let value_type = if !tracked && fact.dtype.is_none() && fact.shape.rank().is_none() {
         decl.value_type.clone()
     } else {
         fact.value_type.clone()

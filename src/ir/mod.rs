@@ -64,10 +64,16 @@ impl ValueKind {
 pub enum ValueType {
     Tensor,
     SparseTensor,
-    Sequence(Box<Fact>),
+    /// A sequence: the fact every element satisfies, and each element's fact where the graph
+    /// makes the sequence element by element (construct, insert, erase, split with known
+    /// sizes; at most `MAX_TRACKED_ELEMENTS`).
+    Sequence(Box<Fact>, Option<Vec<Fact>>),
     Map,
     Optional(Box<Fact>),
 }
+
+/// The longest sequence whose elements are tracked one by one.
+pub const MAX_TRACKED_ELEMENTS: usize = 64;
 
 /// What is known of a value: element type and shape, either possibly unknown.
 #[derive(Clone, Debug, PartialEq)]

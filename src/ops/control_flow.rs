@@ -1,7 +1,7 @@
 //! Subgraph-carrying ops: If, Loop, Scan. Their bodies are inferred by the driver first;
 //! the shape functions here combine the bodies' output facts.
 
-use crate::ir::{AttrValue, Dim, Fact, Node, Shape};
+use crate::ir::{AttrValue, Dim, Fact, Node, Shape, ValueType};
 
 use super::util::tensor;
 use super::{CostRule, Ctx, Inferred, OpDef};
@@ -18,8 +18,14 @@ pub(super) fn merge(a: &Fact, b: &Fact) -> Fact {
         ),
         _ => Shape::unknown(),
     };
+    let value_type = match (&a.value_type, &b.value_type) {
+        (ValueType::Sequence(x, xs), ValueType::Sequence(y, ys)) => {
+            ValueType::Sequence(Box::new(merge(x, y)), if xs == ys { xs.clone() } else { None })
+        }
+        (t, _) => t.clone(),
+    };
     Fact {
-        value_type: a.value_type.clone(),
+        value_type,
         dtype,
         shape,
     }

@@ -719,7 +719,7 @@ print(json.dumps([list(np.shape(o)) for o in outs]))
 /// A sequence split from a tensor in uneven pieces (SplitToSequence, scalar split 3 over 7
 /// rows), read back piece by piece: its length folds to 3, the last piece has 1 row, erasing
 /// the first and concatenating leaves 4 rows, and stacking the pieces of 1 row each along a
-/// new axis gives 7. Each output's shape must be the one the `onnx` package's reference
+/// new axis gives 7; a tensor inserted at -1 goes before the last one. Each output's shape must be the one the `onnx` package's reference
 /// evaluator computes (sequence ops per the ONNX operator specification).
 #[test]
 fn sequences_split_in_pieces_agree_with_the_onnx_reference_evaluator() {
@@ -747,14 +747,26 @@ fn sequences_split_in_pieces_agree_with_the_onnx_reference_evaluator() {
             node("ConcatFromSequence", &["rows"], &["stacked"]),
             vec![int_attr("axis", 1), int_attr("new_axis", 1)],
         ),
+        // [a, b], then c inserted at -1: before the last, [a, c, b].
+        node("SequenceConstruct", &["a", "b"], &["ab"]),
+        node("SequenceInsert", &["ab", "c", "last"], &["acb"]),
+        node("SequenceAt", &["acb", "one"], &["second"]),
+        node("SequenceAt", &["acb", "last"], &["final"]),
     ];
     let inits = vec![
         i64_init("three", &[], &[3]),
         i64_init("last", &[], &[-1]),
         i64_init("zero", &[], &[0]),
+        i64_init("one", &[], &[1]),
     ];
-    let outs = ["count", "tail", "joined", "stacked"];
-    let m = model(nodes, vec![vi("x", 1, &[Dm::N(7), Dm::N(2)])], untyped(&outs), inits);
+    let outs = ["count", "tail", "joined", "stacked", "second", "final"];
+    let inputs = vec![
+        vi("x", 1, &[Dm::N(7), Dm::N(2)]),
+        vi("a", 1, &[Dm::N(1), Dm::N(2)]),
+        vi("b", 1, &[Dm::N(2), Dm::N(2)]),
+        vi("c", 1, &[Dm::N(3), Dm::N(2)]),
+    ];
+    let m = model(nodes, inputs, untyped(&outs), inits);
     let dir = tempfile::tempdir().expect("tmp");
     let path = write(dir.path(), "pieces.onnx", &m);
 
@@ -767,7 +779,10 @@ fn sequences_split_in_pieces_agree_with_the_onnx_reference_evaluator() {
         .collect();
     let reference: Vec<Vec<u64>> = serde_json::from_str(&python(
         RUN_ON_ZEROS,
-        &[path.to_str().expect("utf8"), r#"{"x": [7, 2]}"#],
+        &[
+            path.to_str().expect("utf8"),
+            r#"{"x": [7, 2], "a": [1, 2], "b": [2, 2], "c": [3, 2]}"#,
+        ],
     ))
     .expect("json");
     assert_eq!(ours, reference);

@@ -68,13 +68,17 @@ fn elements(ctx: &Ctx, i: usize) -> Option<Vec<Fact>> {
     }
 }
 
-/// A constant position input, as an index into `len` slots (`len` + 1 for an insertion):
-/// negative positions count from the back, per the specification.
-fn position(ctx: &Ctx, i: usize, len: usize) -> Option<usize> {
+/// A constant position input into a sequence of `n` elements, per the specification:
+/// negative positions count from the back (`-1` is the last element, or, for an insertion,
+/// the place before it); an insertion may also take `n`, the back.
+fn position(ctx: &Ctx, i: usize, n: usize, insertion: bool) -> Option<usize> {
     let p = *ctx.konst(i)?.try_ints()?.first()?;
-    let n = i64::try_from(len).ok()?;
-    let at = if p < 0 { p.checked_add(n)? } else { p };
-    usize::try_from(at).ok().filter(|&a| a < len)
+    let at = if p < 0 {
+        p.checked_add(i64::try_from(n).ok()?)?
+    } else {
+        p
+    };
+    usize::try_from(at).ok().filter(|&a| a < n || (insertion && a == n))
 }
 
 fn sequence_empty(ctx: &Ctx) -> Inferred {
@@ -94,7 +98,7 @@ fn sequence_insert(ctx: &Ctx) -> Inferred {
     let added = ctx.fact(1).cloned().unwrap_or_default();
     if let Some(mut v) = elements(ctx, 0) {
         let at = if ctx.has_input(2) {
-            position(ctx, 2, v.len() + 1)
+            position(ctx, 2, v.len(), true)
         } else {
             Some(v.len())
         };
@@ -115,7 +119,7 @@ fn sequence_insert(ctx: &Ctx) -> Inferred {
 fn sequence_erase(ctx: &Ctx) -> Inferred {
     if let Some(mut v) = elements(ctx, 0) {
         let at = if ctx.has_input(1) {
-            position(ctx, 1, v.len())
+            position(ctx, 1, v.len(), false)
         } else {
             v.len().checked_sub(1)
         };
@@ -128,7 +132,7 @@ fn sequence_erase(ctx: &Ctx) -> Inferred {
 }
 
 fn sequence_at(ctx: &Ctx) -> Inferred {
-    let at = elements(ctx, 0).and_then(|v| Some(v.get(position(ctx, 1, v.len())?)?.clone()));
+    let at = elements(ctx, 0).and_then(|v| Some(v.get(position(ctx, 1, v.len(), false)?)?.clone()));
     Ok(vec![at.unwrap_or_else(|| element(ctx, 0))])
 }
 

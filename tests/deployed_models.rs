@@ -197,7 +197,7 @@ fn cases() -> Vec<Case> {
             symbols: Some(&[("unk__749", 1)]),
         },
         Case {
-            // An audio front end exported from PyTorch: an STFT as two strided Convs, a mel
+            // An audio front end exported from a training framework: an STFT as two strided Convs, a mel
             // filter bank by MatMul, log and clipping; batch and sample count symbolic.
             file: "openwakeword-0.4.0/openwakeword/resources/models/melspectrogram.onnx",
             feeds: r#"{"input": [2, 1280]}"#,
@@ -455,7 +455,7 @@ fn deployed_models_split_into_pieces_that_compute_the_same_outputs() {
             "rapidocr-3.10.0/rapidocr/models/PP-OCRv6_rec_small.onnx",
             &["--input", "x=1x3x48x160", "--engine", "python-reference"],
         ),
-        // Its inner tensors declare PyTorch's `floor(height/2 - 1/2) + 1`, which tract does
+        // Its inner tensors declare its exporter's `floor(height/2 - 1/2) + 1`, which tract does
         // not parse.
         ("nudenet-3.4.2/nudenet/320n.onnx", &["--input", "images=1x3x256x384"]),
         (

@@ -595,14 +595,15 @@ fn symbolic_ranges_and_strided_stacks_agree_with_the_onnx_reference_evaluator() 
     }
 }
 
-/// Lists the models of the `onnx` package's backend test data converted from PyTorch and its
-/// "simple" models, each with the dims of its test inputs (by input name) and of the outputs
-/// the ONNX project recorded for them (by output index), from `test_data_set_0`.
+/// Lists the models of the `onnx` package's backend test data converted from a training
+/// framework and its "simple" models, each with the dims of its test inputs (by input name)
+/// and of the outputs the ONNX project recorded for them (by output index), from
+/// `test_data_set_0`.
 const BACKEND_CASES: &str = r#"
 import os, glob, json, onnx
 root = os.path.join(os.path.dirname(onnx.__file__), "backend", "test", "data")
 cases = []
-for kind in ("pytorch-converted", "pytorch-operator", "simple"):
+for kind in sorted(k for k in os.listdir(root) if k not in ("node", "light", "real")):
     for d in sorted(glob.glob(os.path.join(root, kind, "*"))):
         model = os.path.join(d, "model.onnx")
         data = sorted(glob.glob(os.path.join(d, "test_data_set_0", "*.pb")))
@@ -626,9 +627,9 @@ for kind in ("pytorch-converted", "pytorch-operator", "simple"):
 print(json.dumps(cases))
 "#;
 
-/// The ONNX project's backend test models converted from PyTorch and its "simple" models
-/// (`onnx/backend/test/data/{pytorch-converted,pytorch-operator,simple}` in the `onnx`
-/// package), with the declared output types and all value_info stripped and the inputs fixed
+/// The ONNX project's backend test models converted from a training framework and its
+/// "simple" models (every folder of `onnx/backend/test/data/` but `node`, `light` and
+/// `real`, in the `onnx` package), with the declared output types and all value_info stripped and the inputs fixed
 /// to the recorded test inputs' dims: every output dim tilecut states must be the recorded
 /// output's. A dim may stay open only where the size is data (string stop words; an Expand to
 /// a shape that is an input's value, fixed only with `--value`), or for the training preview

@@ -117,18 +117,9 @@ fn lifting_dims_equals_analyzing_with_the_dims_fixed() {
             "--format",
             "json",
         ]);
-        let fixed = json(&[
-            "analyze",
-            s(&model),
-            "--target",
-            target,
-            "--dim",
-            "batch=1",
-            "--dim",
-            "frames=98",
-            "--format",
-            "json",
-        ]);
+        let base = ["analyze", s(&model), "--target", target];
+        let dims = ["--dim", "batch=1", "--dim", "frames=98"];
+        let fixed = json(&[&base[..], &dims, &["--format", "json"]].concat());
         assert_eq!(
             &lift(&survey, 0, "dim:*")["figures"],
             &figures(&fixed["summary"]),
@@ -151,23 +142,14 @@ fn lifting_dims_equals_analyzing_with_the_dims_fixed() {
         assert_eq!(real["summary"]["needs_dims"], serde_json::json!(["batch", "frames"]));
         assert!(fixed["summary"]["est_latency_us"].is_number());
         // The table says the node coverage comes from a cut that could not weigh those nodes.
-        let (c, table, err) = run(&["analyze", s(&model), "--target", target]);
+        let (c, table, err) = run(&base);
         assert_eq!(c, 0, "{err}");
         let row = table.lines().find(|l| l.contains("coverage by nodes")).expect("row");
         assert!(
             row.contains("nodes of unknown cost: fix --dim batch=N --dim frames=N for a real plan"),
             "{row}"
         );
-        let (_, table, _) = run(&[
-            "analyze",
-            s(&model),
-            "--target",
-            target,
-            "--dim",
-            "batch=1",
-            "--dim",
-            "frames=98",
-        ]);
+        let (_, table, _) = run(&[&base[..], &dims].concat());
         assert!(!table.contains("unknown cost"), "{table}");
     }
 }

@@ -458,9 +458,12 @@ fn deployed_models_split_into_pieces_that_compute_the_same_outputs() {
         // Its inner tensors declare its exporter's `floor(height/2 - 1/2) + 1`, which tract does
         // not parse.
         ("nudenet-3.4.2/nudenet/320n.onnx", &["--input", "images=1x3x256x384"]),
+        // tract's run passes in a release build, but a consistency check of its debug build
+        // fails inside tract on this model (an opaque-type fact): the reference evaluator
+        // checks it.
         (
             "basic_pitch-0.4.0/basic_pitch/saved_models/icassp_2022/nmp.onnx",
-            &["--dim", "unk__749=1"],
+            &["--dim", "unk__749=1", "--engine", "python-reference"],
         ),
         // tract's whole-model run and its chained pieces differ here by 1.7e-5 relative, above
         // the default 1e-5 (float rounding in a 20-step LSTM, we believe: the reference

@@ -228,12 +228,8 @@ fn infer_graph(
             // An If whose condition is known runs one branch: the other is still inferred
             // (split and explain read its tensors), but what it finds is not reported, as
             // it can never happen.
-            let taken = (op == "If")
-                .then(|| node.inputs.first().copied().flatten())
-                .flatten()
-                .and_then(|c| g.values[c.index()].konst.as_deref())
-                .and_then(|c| c.as_ints().first().copied())
-                .map(|c| ops::if_branch(node, c != 0));
+            let condition = node.inputs.first().copied().flatten();
+            let taken = ops::taken_branch(node, condition.and_then(|c| g.values[c.index()].konst.as_deref()));
             let mut bodies = std::mem::take(&mut g.nodes[ni].bodies);
             for (bi, b) in bodies.iter_mut().enumerate() {
                 seed_body_inputs(&mut b.graph, &op, &input_facts, scan.as_ref());
@@ -537,8 +533,8 @@ fn node_cost(ctx: &Ctx, rule: Option<CostRule>, outs: &[Fact], bodies: &[MacsOps
         };
         let pick = |sel: fn(&MacsOps) -> Option<u64>| -> Option<u64> {
             if ctx.node.op_type == "If" {
-                if let Some(c) = ctx.konst(0).and_then(|c| c.as_ints().first().copied()) {
-                    return bodies.get(ops::if_branch(ctx.node, c != 0)).and_then(sel);
+                if let Some(taken) = ops::taken_branch(ctx.node, ctx.konst(0)) {
+                    return bodies.get(taken).and_then(sel);
                 }
                 // Unknown condition: cost the more expensive branch.
                 return bodies.iter().map(sel).try_fold(0u64, |m, x| x.map(|x| m.max(x)));

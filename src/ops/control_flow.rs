@@ -1,7 +1,7 @@
 //! Subgraph-carrying ops: If, Loop, Scan. Their bodies are inferred by the driver first;
 //! the shape functions here combine the bodies' output facts.
 
-use crate::ir::{AttrValue, Dim, Fact, Node, Shape, ValueType};
+use crate::ir::{AttrValue, ConstValue, Dim, Fact, Node, Shape, ValueType};
 
 use super::util::tensor;
 use super::{CostRule, Ctx, Inferred, OpDef};
@@ -31,14 +31,21 @@ pub(super) fn merge(a: &Fact, b: &Fact) -> Fact {
     }
 }
 
-/// The body index of the branch an If takes for `condition`: bodies keep the file's attribute
-/// order, and exporters write `else_branch` first as often as not.
-pub fn if_branch(node: &Node, condition: bool) -> usize {
-    let want = if condition { "then_branch" } else { "else_branch" };
-    node.bodies
-        .iter()
-        .position(|b| b.attr == want)
-        .unwrap_or(usize::from(!condition))
+/// The body index of the branch an If takes, when it is an If whose condition is known:
+/// bodies keep the file's attribute order, and exporters write `else_branch` first as often
+/// as not. Inference, costing and the findings of the branch that cannot run all ask this.
+pub fn taken_branch(node: &Node, condition: Option<&ConstValue>) -> Option<usize> {
+    if node.op_type != "If" {
+        return None;
+    }
+    let taken = *condition?.as_ints().first()? != 0;
+    let want = if taken { "then_branch" } else { "else_branch" };
+    Some(
+        node.bodies
+            .iter()
+            .position(|b| b.attr == want)
+            .unwrap_or(usize::from(!taken)),
+    )
 }
 
 fn if_(ctx: &Ctx) -> Inferred {
@@ -48,10 +55,8 @@ fn if_(ctx: &Ctx) -> Inferred {
         return Err("If needs then_branch and else_branch".into());
     }
     // A constant condition selects one branch (the other never runs).
-    if let Some(c) = ctx.konst(0).and_then(|c| c.as_ints().first().copied()) {
-        let b = branches
-            .get(if_branch(ctx.node, c != 0))
-            .ok_or("If without that branch")?;
+    if let Some(taken) = taken_branch(ctx.node, ctx.konst(0)) {
+        let b = branches.get(taken).ok_or("If without that branch")?;
         return Ok((0..n).map(|i| b.get(i).cloned().unwrap_or_default()).collect());
     }
     Ok((0..n)

@@ -1,8 +1,12 @@
 //! Per-stage timings of the reader on generated models (`tilecut dev bench-models DIR`).
-//! Run: `cargo bench --bench stages -- DIR`. Prints medians of 5 runs per stage.
+//! Run: `cargo bench --bench stages -- DIR`. Prints medians of 5 runs per stage. `load ms`
+//! reads the file as the binary's `inspect` does (mapped for the process's life); `shared`
+//! reads it as library callers do by default (see `onnx::load::MapLife`).
 
 use std::path::PathBuf;
 use std::time::Instant;
+
+use tilecut::onnx::load::MapLife;
 
 fn median(mut v: Vec<f64>) -> f64 {
     v.sort_by(|a, b| a.total_cmp(b));
@@ -21,8 +25,8 @@ fn main() {
         .map(PathBuf::from)
         .unwrap_or_else(|| PathBuf::from("bench-models"));
     println!(
-        "{:<22} {:>9} {:>9} {:>9} {:>9} {:>9} {:>9} {:>9} {:>12}",
-        "model", "load ms", "import", "infer", "report", "json", "judge", "cut", "cut/10k nodes"
+        "{:<22} {:>9} {:>9} {:>9} {:>9} {:>9} {:>9} {:>9} {:>9} {:>12}",
+        "model", "load ms", "shared", "import", "infer", "report", "json", "judge", "cut", "cut/10k nodes"
     );
     let target = tilecut::target::load("wide-array").expect("built-in target");
     let mut overrides = tilecut::Overrides::default();
@@ -40,11 +44,15 @@ fn main() {
         if !path.exists() {
             continue;
         }
-        let mut t = vec![Vec::new(); 7];
+        let mut t = vec![Vec::new(); 8];
         let mut nodes = 0usize;
         for _ in 0..5 {
             let s = Instant::now();
-            let loaded = tilecut::onnx::load::load(&path).expect("load");
+            let shared = tilecut::onnx::load::load(&path).expect("load");
+            t[7].push(s.elapsed().as_secs_f64() * 1e3);
+            drop(shared);
+            let s = Instant::now();
+            let loaded = tilecut::onnx::load::load_with(&path, MapLife::Process).expect("load");
             t[0].push(s.elapsed().as_secs_f64() * 1e3);
             let s = Instant::now();
             let (mut model, mut diags) = tilecut::import::import(&loaded, &overrides).expect("import");
@@ -79,8 +87,8 @@ fn main() {
         let m: Vec<f64> = t.into_iter().map(median).collect();
         let per10k = if nodes > 0 { m[6] * 10_000.0 / nodes as f64 } else { 0.0 };
         println!(
-            "{:<22} {:>9.1} {:>9.1} {:>9.1} {:>9.1} {:>9.1} {:>9.1} {:>9.1} {:>12.1}",
-            name, m[0], m[1], m[2], m[3], m[4], m[5], m[6], per10k
+            "{:<22} {:>9.1} {:>9.1} {:>9.1} {:>9.1} {:>9.1} {:>9.1} {:>9.1} {:>9.1} {:>12.1}",
+            name, m[0], m[7], m[1], m[2], m[3], m[4], m[5], m[6], per10k
         );
     }
 }

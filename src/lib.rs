@@ -48,7 +48,13 @@ pub struct Analyzed {
 
 /// Reads, imports and infers a model file: the reading pipeline every command shares.
 pub fn read_model(path: &Path, overrides: &Overrides) -> Result<Analyzed, ReadError> {
-    let loaded = onnx::load::load(path)?;
+    read_model_with(path, overrides, onnx::load::MapLife::Shared)
+}
+
+/// `read_model`, with the file's map kept as `life` says (`Process` for a process that reads
+/// this one model and ends).
+pub fn read_model_with(path: &Path, overrides: &Overrides, life: onnx::load::MapLife) -> Result<Analyzed, ReadError> {
+    let loaded = onnx::load::load_with(path, life)?;
     let (mut model, mut diags) = import::import(&loaded, overrides)?;
     // The wire-format tree is not needed past import. Freeing it (on a large graph, hundreds
     // of thousands of small blocks) runs beside inference on another thread; if no thread

@@ -8,6 +8,7 @@ use anyhow::Context;
 use clap::Parser;
 use tilecut::cli::{Cli, Command, DevCommand, TargetsAction};
 use tilecut::onnx::builder::write_atomic;
+use tilecut::onnx::load::MapLife;
 use tilecut::report::{analyze, inspect, Format};
 
 /// Exit statuses, documented in the README: 0 ok, 1 policy violated, 2 could not run.
@@ -281,7 +282,7 @@ fn run(cli: Cli) -> anyhow::Result<u8> {
     match cli.command {
         Command::Inspect(args) => {
             let overrides = args.model.overrides()?;
-            let read = tilecut::read_model(&args.model.model, &overrides)?;
+            let read = tilecut::read_model_with(&args.model.model, &overrides, MapLife::Process)?;
             let report = inspect::build(&read.model, &read.diags, &read.unknown);
             emit(|out| match args.format {
                 Format::Json => inspect::render_json(&report, out),
@@ -298,10 +299,10 @@ fn run(cli: Cli) -> anyhow::Result<u8> {
             let target = tilecut::target::load(&args.target.target)?;
             let opts = args.cut.options(args.columns, args.what_if.what_if()?);
             let mut bar = tilecut::report::term::Progress::new("analyze", quiet);
-            let analysis =
-                tilecut::analyze_stages_observed(&args.model.model, &overrides, target, &opts, &mut |stage| {
-                    bar.update(0, 0, stage)
-                })?;
+            bar.update(0, 0, "reading the model");
+            let read = tilecut::read_model_with(&args.model.model, &overrides, MapLife::Process)?;
+            bar.update(0, 0, "judging, cutting, mapping");
+            let analysis = tilecut::analyze_read(read, target, &opts)?;
             bar.update(0, 0, "writing the report");
             let report = analysis.report();
             if let Some(p) = &args.dot {

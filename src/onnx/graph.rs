@@ -59,6 +59,9 @@ thread_local! {
     /// Whether the current `decode_model` may still split a node run across threads: once per
     /// decode, so that nested graphs decoded by a worker never start workers of their own.
     static SPLIT_ALLOWED: std::cell::Cell<bool> = const { std::cell::Cell::new(false) };
+    /// Whether each piece of a split run gets an owner of its own (see `decode_run_split`):
+    /// false for static bytes, whose slices take no reference count at all.
+    static PIECE_OWNERS: std::cell::Cell<bool> = const { std::cell::Cell::new(true) };
 }
 
 /// Below this many nodes a run decodes on the calling thread: starting a thread costs about as
@@ -72,11 +75,19 @@ pub const WORKER_STACK: usize = 8 << 20;
 
 /// Decodes a `ModelProto` with node-list hints bounded by the file's size.
 pub fn decode_model(bytes: bytes::Bytes) -> Result<super::ModelProto, DecodeError> {
+    decode_model_with(bytes, false)
+}
+
+/// `decode_model`, told whether `bytes` are static (a map kept for the process's life): the
+/// pieces decoded on other threads then share them as they are.
+pub fn decode_model_with(bytes: bytes::Bytes, is_static: bool) -> Result<super::ModelProto, DecodeError> {
     HINT_BUDGET.with(|b| b.set(bytes.len() / 2));
     SPLIT_ALLOWED.with(|s| s.set(true));
+    PIECE_OWNERS.with(|p| p.set(!is_static));
     let out = <super::ModelProto as prost::Message>::decode(bytes);
     HINT_BUDGET.with(|b| b.set(0));
     SPLIT_ALLOWED.with(|s| s.set(false));
+    PIECE_OWNERS.with(|p| p.set(true));
     out
 }
 
@@ -171,6 +182,7 @@ fn decode_run_split(
     let mut slots: &mut [NodeProto] = &mut nodes[start..];
     // Each piece shares the file's bytes through an owner of its own, so that the reference
     // counts the pieces' strings take do not all land on one contended counter.
+    let owners = PIECE_OWNERS.with(|p| p.get());
     let mut pieces = Vec::with_capacity(cuts.len() + 1);
     let mut prev = (0, 0);
     for &(index, at) in cuts.iter().chain(std::iter::once(&(count, run.len()))) {
@@ -178,7 +190,11 @@ fn decode_run_split(
         slots = tail;
         // A piece after the first starts at a node key's end, so its bytes begin with a length;
         // a piece before the last ends with the next piece's key, which it does not read.
-        let bytes = bytes::Bytes::from_owner(run.slice(prev.1..at));
+        let bytes = if owners {
+            bytes::Bytes::from_owner(run.slice(prev.1..at))
+        } else {
+            run.slice(prev.1..at)
+        };
         pieces.push((head, bytes));
         prev = (index, at);
     }
@@ -462,7 +478,28 @@ mod tests {
         }
         assert_eq!(d, m);
         // And as the sequential decode (prost's own entry point never splits) has it.
-        assert_eq!(d, super::super::ModelProto::decode(wire).expect("decodes"));
+        assert_eq!(d, super::super::ModelProto::decode(wire.clone()).expect("decodes"));
+
+        // From static bytes (a map kept for the process's life), the pieces share the bytes
+        // without owners of their own: the same tree, every string a slice of those bytes.
+        let leaked: &'static [u8] = Box::leak(wire.to_vec().into_boxed_slice());
+        let before = split_runs();
+        let s = decode_model_with(Bytes::from_static(leaked), true).expect("decodes");
+        if std::thread::available_parallelism().map_or(1, |n| n.get()) > 1 {
+            assert!(split_runs() > before, "the run was not split");
+        }
+        assert_eq!(s, m);
+        let span = leaked.as_ptr_range();
+        let graph = s.graph.as_ref().expect("graph");
+        for n in [&graph.node[0], &graph.node[graph.node.len() - 1]] {
+            assert!(
+                span.contains(&n.name.as_ptr()),
+                "`{}` is not a slice of the file",
+                n.name
+            );
+        }
+        // The next decode on this thread shares through owners again.
+        assert!(PIECE_OWNERS.with(|p| p.get()));
     }
 
     /// A fault in any piece is the same error, word for word, as the sequential decode's; with

@@ -39,7 +39,9 @@ impl ProtoStr {
             return Err(DecodeError::new("buffer underflow"));
         }
         let bytes = buf.copy_to_bytes(len as usize);
-        if std::str::from_utf8(&bytes).is_err() {
+        // Names are almost always ASCII: a word-at-a-time check of that, before the full
+        // UTF-8 check (whose per-call setup cost 4% of reading a 100k-node graph).
+        if !bytes.is_ascii() && std::str::from_utf8(&bytes).is_err() {
             return Err(DecodeError::new("invalid string value: data is not UTF-8 encoded"));
         }
         Ok(ProtoStr { bytes })

@@ -189,7 +189,11 @@ pub fn import(loaded: &LoadedModel, overrides: &Overrides) -> Result<(Model, Vec
             ));
         }
     }
-    let mut functions: Vec<String> = proto.functions.iter().map(|f| qualified(&f.domain, &f.name)).collect();
+    let mut functions: Vec<String> = proto
+        .functions
+        .iter()
+        .map(|f| crate::ir::op_label(&f.domain, &f.name))
+        .collect();
     functions.sort();
     let model = Model {
         path: loaded.path.clone(),
@@ -220,14 +224,6 @@ pub fn expanded_main_nodes(loaded: &LoadedModel) -> Result<Vec<onnx::NodeProto>,
         .filter(|f| f.from_function.is_some())
         .map(|f| f.proto.into_owned())
         .collect())
-}
-
-fn qualified(domain: &str, op: &str) -> String {
-    if domain.is_empty() || domain == "ai.onnx" {
-        op.to_string()
-    } else {
-        format!("{domain}.{op}")
-    }
 }
 
 struct Cx<'a> {
@@ -946,7 +942,7 @@ fn expand_functions<'a>(
         if depth >= MAX_FUNCTION_DEPTH {
             return Err(cx.err(format!(
                 "model-local functions call each other deeper than {MAX_FUNCTION_DEPTH} levels at `{}` (recursive?)",
-                qualified(&n.domain, &n.op_type)
+                crate::ir::op_label(&n.domain, &n.op_type)
             )));
         }
         let call = if n.name.is_empty() {
@@ -997,7 +993,7 @@ fn expand_functions<'a>(
             }
             body.push(m);
         }
-        let label = qualified(&n.domain, &n.op_type);
+        let label = crate::ir::op_label(&n.domain, &n.op_type);
         let inner_stack = format!("{stack}{label}>");
         let call_name = Name::from(call.as_str());
         for flat in expand_functions(cx, &body, depth + 1, &inner_stack)? {

@@ -91,11 +91,7 @@ pub fn infer(model: &mut Model, diags: &mut Vec<Diagnostic>) -> UnknownReasons {
         Some(&mut reasons),
     );
     for ((domain, op), (n, first)) in unknown_ops {
-        let q = if domain.is_empty() {
-            op.clone()
-        } else {
-            format!("{domain}.{op}")
-        };
+        let q = crate::ir::op_label(&domain, &op);
         diags.push(
             Diagnostic::new(
                 codes::UNKNOWN_OP,

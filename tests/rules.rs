@@ -498,4 +498,19 @@ fn operator_form_contrib_ops_are_inferred_and_judged() {
     let (code, out, err) = run(&["explain", path2.to_str().expect("utf8"), "QGemm_g"]);
     assert_eq!(code, 0, "{err}");
     assert!(out.contains("weight-asymmetric"), "{out}");
+    // Reports label contrib-domain ops `contrib.Op`, as profiles and `--assume-supported`
+    // write them (`ops::resolve_domain`).
+    assert!(out.contains("contrib.QGemm"), "{out}");
+    let (code, out, err) = run(&["inspect", path.to_str().expect("utf8"), "--format", "json"]);
+    assert_eq!(code, 0, "{err}");
+    let j: serde_json::Value = serde_json::from_str(&out).expect("json");
+    let ops: Vec<&str> = j["op_counts"]
+        .as_array()
+        .expect("op counts")
+        .iter()
+        .filter_map(|c| c["op"].as_str())
+        .collect();
+    assert!(ops.contains(&"contrib.QLinearAdd"), "{ops:?}");
+    // The opset list keeps the file's own domain text.
+    assert!(ops.iter().all(|o| !o.contains(CONTRIB_DOMAIN)), "{ops:?}");
 }

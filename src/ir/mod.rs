@@ -408,10 +408,18 @@ impl Node {
 /// for them allocates nothing.
 pub type Inputs = smallvec::SmallVec<[ValueId; 4]>;
 
-/// An op type qualified by its domain outside the standard one (see `Node::op_label`).
+/// The contrib operator domain, as model files name it: runtimes' optimisers and quantizers
+/// write fused and operator-form quantized ops there. Written once, here; reports and
+/// profiles call it `contrib`.
+pub const CONTRIB_DOMAIN: &str = "com.microsoft";
+
+/// An op type qualified by its domain outside the standard one (see `Node::op_label`). The
+/// contrib domain is `contrib`, as profiles and `--assume-supported` may write it.
 pub fn op_label(domain: &str, op_type: &str) -> String {
     if domain.is_empty() || domain == "ai.onnx" {
         op_type.to_string()
+    } else if domain == CONTRIB_DOMAIN {
+        format!("contrib.{op_type}")
     } else {
         format!("{domain}.{op_type}")
     }

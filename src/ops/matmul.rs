@@ -388,7 +388,7 @@ fn linear_attention_macs(ctx: &Ctx, _outs: &[Fact]) -> MacsOps {
     (figures.map(|f| f.0), figures.map(|f| f.1))
 }
 
-/// com.microsoft Attention: input [B, S, hidden] and packed QKV weights.
+/// Contrib-domain Attention: input [B, S, hidden] and packed QKV weights.
 fn ms_attention(ctx: &Ctx) -> Inferred {
     let x = ctx.dims(0).ok_or("input rank unknown")?;
     if x.len() != 3 {

@@ -85,9 +85,7 @@ pub struct OpDef {
     pub fold: Option<FoldFn>,
 }
 
-/// The contrib operator domain, as model files name it: runtimes' optimisers and quantizers
-/// write fused and operator-form quantized ops there. Written once, here.
-pub const CONTRIB_DOMAIN: &str = "com.microsoft";
+pub use crate::ir::CONTRIB_DOMAIN;
 
 /// A domain as profiles may write it: `contrib` stands for `CONTRIB_DOMAIN`.
 pub fn resolve_domain(d: &str) -> &str {

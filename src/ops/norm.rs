@@ -34,7 +34,7 @@ fn layer_norm(ctx: &Ctx) -> Inferred {
     Ok(outs)
 }
 
-/// com.microsoft SkipLayerNormalization family: output, mean, inv_std_var, input+skip(+bias).
+/// Contrib-domain SkipLayerNormalization family: output, mean, inv_std_var, input+skip(+bias).
 fn skip_norm(ctx: &Ctx) -> Inferred {
     let mut outs = vec![same_as(ctx, 0)];
     let stat = match ctx.dims(0) {

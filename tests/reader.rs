@@ -259,6 +259,14 @@ fn negative_dims() {
     let (code, out, _) = run(&["inspect", p.to_str().expect("utf8"), "--format", "json"]);
     assert_eq!(code, 0);
     assert!(out.contains("dim-unknown"));
+    // The table says what sizes the figures that depend on it.
+    let (code, out, _) = run(&["inspect", p.to_str().expect("utf8")]);
+    assert_eq!(code, 0);
+    let row = out
+        .lines()
+        .find(|l| l.contains("unknown until fixed"))
+        .expect("a fix row");
+    assert!(row.contains("--input x=…"), "{row}");
     // A negative initializer dim is an error too.
     let mut t = f32_init("w", &[2]);
     t.dims = vec![-2];

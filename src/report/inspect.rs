@@ -478,15 +478,21 @@ pub fn render_table(r: &InspectReport, out: &mut dyn Write) -> std::io::Result<(
             },
         );
     }
-    if !m.unknown_because.is_empty() {
+    // What fixes the unknown figures: the symbolic dims they depend on, and the graph inputs
+    // declared with dims the file leaves unknown (`-1`, missing), which only `--input` sizes.
+    let mut fixes: Vec<String> = m.unknown_because.iter().map(|d| crate::text::fix_hint(d)).collect();
+    if m.macs.is_none() || m.ops.is_none() || m.activation_bytes.is_none() {
+        fixes.extend(
+            r.inputs
+                .iter()
+                .filter(|p| p.shape.as_ref().is_some_and(|s| s.0.contains(&Dim::Unknown)))
+                .map(|p| format!("--input {}=…", p.name)),
+        );
+    }
+    if !fixes.is_empty() {
         kv.push(KeyValue {
             key: "unknown until fixed".into(),
-            value: m
-                .unknown_because
-                .iter()
-                .map(|d| crate::text::fix_hint(d))
-                .collect::<Vec<_>>()
-                .join(" "),
+            value: fixes.join(" "),
         });
     }
     writeln!(out, "{}", Table::new(kv).with(Style::sharp()))?;

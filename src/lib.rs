@@ -224,7 +224,12 @@ pub fn stages_from_verdicts(
         (array, latency)
     };
     let (mut array, mut latency) = mapped(&plan);
-    let (greedy_array, greedy_latency) = mapped(&greedy);
+    // Under `--strategy greedy` the chosen plan is the greedy plan: mapped once.
+    let (greedy_array, greedy_latency) = if opts.strategy == cut::Strategy::Greedy {
+        (array.clone(), latency)
+    } else {
+        mapped(&greedy)
+    };
     if opts.strategy == cut::Strategy::Mincut {
         if !array.resident {
             plan = cut::fit(g, &verdicts, &costs, &opts.pins, plan, &|p| {

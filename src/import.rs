@@ -447,21 +447,27 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     // second runs on another thread.
     let parallel = depth == 0 && flat.len() >= PARALLEL_MIN_NODES;
     let path = cx.path;
-    let (names, attrs) = if parallel {
+    // The worker, which finishes first, also checks whether the nodes' own names can all be
+    // kept; the node loop below then does not check them one by one.
+    let (names, attrs, names_kept) = if parallel {
         let flat = &flat;
         let syms = &mut syms;
         std::thread::scope(|scope| {
             let worker = std::thread::Builder::new()
                 .stack_size(crate::onnx::graph::WORKER_STACK)
-                .spawn_scoped(scope, || attr_pass(cx, flat, depth));
+                .spawn_scoped(scope, || (attr_pass(cx, flat, depth), distinct_names(flat)));
             let names = name_pass(path, flat, syms);
-            let attrs = worker
-                .ok()
-                .map(|h| h.join().unwrap_or_else(|p| std::panic::resume_unwind(p)));
-            (names, attrs)
+            let (attrs, kept) = match worker {
+                Ok(h) => {
+                    let (a, kept) = h.join().unwrap_or_else(|p| std::panic::resume_unwind(p));
+                    (Some(a), kept)
+                }
+                Err(_) => (None, false),
+            };
+            (names, attrs, kept)
         })
     } else {
-        (name_pass(path, &flat, &mut syms), None)
+        (name_pass(path, &flat, &mut syms), None, false)
     };
     // A sequential import meets the name pass's faults first.
     let (outs, ins) = names?;
@@ -515,7 +521,9 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     // Build nodes in that order. Names the file gives are checked for repeats without copies;
     // generated and renamed ones are few.
     let mut used_file: FastSet<TextKey> = FastSet::default();
-    used_file.reserve(flat.len());
+    if !names_kept {
+        used_file.reserve(flat.len());
+    }
     let mut used_made: FastSet<String> = FastSet::default();
     let mut nodes = Vec::with_capacity(flat.len());
     for &i in &order {
@@ -529,9 +537,10 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
         let file_name = n.proto.name.as_str();
         // One hash per name in the common case: made names are rare, and `insert` answers
         // whether the name was free.
-        let fresh = !file_name.is_empty()
-            && (used_made.is_empty() || !used_made.contains(file_name))
-            && used_file.insert(TextKey(file_name));
+        let fresh = names_kept
+            || (!file_name.is_empty()
+                && (used_made.is_empty() || !used_made.contains(file_name))
+                && used_file.insert(TextKey(file_name)));
         let name = if fresh {
             file_name.to_string()
         } else {
@@ -669,6 +678,15 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
         captured,
     };
     Ok((graph, graph_free))
+}
+
+/// Whether every node has a name of its own and no two share one: then every name is kept
+/// as it is (the renaming in `import_graph` has nothing to do).
+fn distinct_names(flat: &[FlatNode]) -> bool {
+    let mut seen: FastSet<TextKey> = FastSet::default();
+    seen.reserve(flat.len());
+    flat.iter()
+        .all(|n| !n.proto.name.is_empty() && seen.insert(TextKey(n.proto.name.as_str())))
 }
 
 /// Graphs with at least this many nodes import their attributes on a second thread.

@@ -119,6 +119,52 @@ fn nodes_out_of_order_are_sorted() {
     assert_eq!(v["outputs"][0]["shape"], serde_json::json!([3]));
 }
 
+/// Node names are optional and need not be unique in a file (ONNX IR spec: `name` is "an
+/// optional identifier"); tilecut keeps every name the file gives once, renames repeats
+/// `name~2`, and names unnamed nodes by op and first output. Checked on a small graph and on
+/// one large enough to be imported on two threads, where a worker checks the names ahead.
+#[test]
+fn node_names_are_kept_repeats_renamed_and_blanks_named() {
+    let d = tmp();
+    for n in [3usize, 5000] {
+        let chain = |rename: &dyn Fn(usize) -> String| {
+            let nodes = (0..n)
+                .map(|i| {
+                    let input = if i == 0 { "x".to_string() } else { format!("t{}", i - 1) };
+                    let mut r = node("Relu", &[&input], &[&format!("t{i}")]);
+                    r.name = rename(i).into();
+                    r
+                })
+                .collect();
+            let out = format!("t{}", n - 1);
+            model(nodes, vec![vi("x", 1, &[Dm::N(4)])], vec![vi(&out, 1, &[])], vec![])
+        };
+        let names = |m: &tilecut::onnx::ModelProto, file: &str| -> Vec<String> {
+            let p = write(d.path(), file, m);
+            let read = tilecut::read_model(&p, &Default::default()).expect("reads");
+            read.model.graph.nodes.iter().map(|x| x.name.clone()).collect()
+        };
+        let unique = names(&chain(&|i| format!("r{i}")), &format!("unique_{n}.onnx"));
+        assert_eq!(unique, (0..n).map(|i| format!("r{i}")).collect::<Vec<_>>());
+        // The last node repeats the first one's name; the one before it has none.
+        let odd = names(
+            &chain(&|i| match i {
+                i if i + 1 == n => "r0".into(),
+                i if i + 2 == n => String::new(),
+                i => format!("r{i}"),
+            }),
+            &format!("repeats_{n}.onnx"),
+        );
+        assert_eq!(odd[0], "r0");
+        assert_eq!(odd[n - 2], format!("Relu:t{}", n - 2));
+        assert_eq!(odd[n - 1], "r0~2");
+        assert!(odd[1..n - 2]
+            .iter()
+            .enumerate()
+            .all(|(i, x)| *x == format!("r{}", i + 1)));
+    }
+}
+
 // ---- bad input ------------------------------------------------------------------------
 
 #[test]

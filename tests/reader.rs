@@ -313,6 +313,26 @@ fn negative_dims() {
         .find(|l| l.contains("unknown until fixed"))
         .expect("a fix row");
     assert!(row.contains("--input x=…"), "{row}");
+    // So does analyze, in JSON and beside each unknown latency.
+    let args = ["analyze", p.to_str().expect("utf8"), "--target", "wide-array"];
+    let (code, out, err) = run(&[&args[..], &["--format", "json"]].concat());
+    assert_eq!(code, 0, "{err}");
+    let j: serde_json::Value = serde_json::from_str(&out).expect("json");
+    assert!(j["summary"]["est_latency_us"].is_null(), "{out}");
+    assert_eq!(j["summary"]["needs_inputs"], serde_json::json!(["x"]));
+    let (code, out, err) = run(&args);
+    assert_eq!(code, 0, "{err}");
+    let row = out
+        .lines()
+        .find(|l| l.contains("est. latency (min-cut plan)"))
+        .expect("latency row");
+    assert!(row.contains("unknown (fix --input x=…)"), "{row}");
+    // Once sized, nothing is left to fix.
+    let (code, out, err) = run(&[&args[..], &["--input", "x=8", "--format", "json"]].concat());
+    assert_eq!(code, 0, "{err}");
+    let j: serde_json::Value = serde_json::from_str(&out).expect("json");
+    assert!(j["summary"]["est_latency_us"].is_number(), "{out}");
+    assert_eq!(j["summary"]["needs_inputs"], serde_json::json!([]));
     // A negative initializer dim is an error too.
     let mut t = f32_init("w", &[2]);
     t.dims = vec![-2];

@@ -140,6 +140,7 @@ fn lifting_dims_equals_analyzing_with_the_dims_fixed() {
         let real = json(&["analyze", s(&model), "--target", target, "--format", "json"]);
         assert!(real["summary"]["est_latency_us"].is_null());
         assert_eq!(real["summary"]["needs_dims"], serde_json::json!(["batch", "frames"]));
+        assert_eq!(real["summary"]["needs_inputs"], serde_json::json!([]));
         assert!(fixed["summary"]["est_latency_us"].is_number());
         // The table says the node coverage comes from a cut that could not weigh those nodes.
         let (c, table, err) = run(&base);

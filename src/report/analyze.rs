@@ -11,7 +11,7 @@
 //! transfer_us}, `summary` {coverage_macs, coverage_nodes, accel_partitions, boundary_bytes,
 //! transfers, objective_us, mincut_us, est_latency_us, cpu_only_latency_us, greedy_us (these
 //! three null while some node's work depends on an unknown dim), unknown_cost_nodes,
-//! needs_dims, columns_budget, columns_used, columns_free, resident, reconfigure_us},
+//! needs_dims, needs_inputs, columns_budget, columns_used, columns_free, resident, reconfigure_us},
 //! `op_summary[]` {op, accel, cpu, const}, `blockers[]` {code, nodes, macs, example},
 //! `what_if` (null unless `--assume-*` was given) {assumptions[], summary, delta
 //! {coverage_macs, coverage_nodes, accel_partitions, transfers, boundary_bytes,
@@ -232,6 +232,9 @@ pub struct Summary {
     pub unknown_cost_nodes: usize,
     /// The symbolic dims that would make the unknown figures known.
     pub needs_dims: Vec<String>,
+    /// When figures are unknown, the graph inputs the file declares with unknown dims (`-1`,
+    /// missing, `?`): `--input` sizes them.
+    pub needs_inputs: Vec<String>,
     /// Columns the accelerator partitions need, of the budget, and how many stay free.
     pub columns_budget: u64,
     pub columns_used: u64,
@@ -391,6 +394,7 @@ pub fn summary(i: &Inputs) -> Summary {
         .collect();
     needs_dims.sort();
     needs_dims.dedup();
+    let needs_inputs = if known { Vec::new() } else { super::inputs_to_size(g) };
     Summary {
         macs: macs_known.then_some(total_macs),
         accel_macs,
@@ -410,6 +414,7 @@ pub fn summary(i: &Inputs) -> Summary {
         greedy_us: known.then(|| us(crate::map::est_latency_ps(i.greedy, i.costs, i.greedy_array))),
         unknown_cost_nodes: i.costs.unknown_work.len(),
         needs_dims,
+        needs_inputs,
         columns_budget: i.array.columns_budget,
         columns_used: i.array.columns_used,
         columns_free: i.array.columns_free,
@@ -637,20 +642,25 @@ pub fn render_json(r: &AnalyzeReport, out: &mut dyn Write) -> std::io::Result<()
 }
 
 /// A latency for tables: µs, or why it is unknown.
-fn micros(x: Option<f64>, needs: &[String]) -> String {
+fn micros(x: Option<f64>, s: &Summary) -> String {
     match x {
         Some(v) => format!("{v:.1} µs"),
-        None if needs.is_empty() => "unknown (some shapes are unknown)".into(),
-        None => format!("unknown (fix {})", fix_hints(needs)),
+        None => match fix_hints(s) {
+            Some(fix) => format!("unknown (fix {fix})"),
+            None => "unknown (some shapes are unknown)".into(),
+        },
     }
 }
 
-fn fix_hints(needs: &[String]) -> String {
-    needs
+/// The `--dim`s (and kin) and `--input`s that would make the unknown figures known.
+fn fix_hints(s: &Summary) -> Option<String> {
+    let hints: Vec<String> = s
+        .needs_dims
         .iter()
         .map(|d| crate::text::fix_hint(d))
-        .collect::<Vec<_>>()
-        .join(" ")
+        .chain(s.needs_inputs.iter().map(|n| format!("--input {n}=…")))
+        .collect();
+    (!hints.is_empty()).then(|| hints.join(" "))
 }
 
 /// Node coverage, and a warning beside it when some nodes' work is unknown: the cut then
@@ -666,13 +676,10 @@ fn node_coverage(s: &Summary) -> String {
 
 /// "cut with N nodes of unknown cost: fix --dim … for a real plan", when there are such nodes.
 pub(crate) fn unknown_cost_note(s: &Summary) -> Option<String> {
-    match s.unknown_cost_nodes {
-        0 => None,
-        n if s.needs_dims.is_empty() => Some(format!("cut with {n} nodes of unknown cost")),
-        n => Some(format!(
-            "cut with {n} nodes of unknown cost: fix {} for a real plan",
-            fix_hints(&s.needs_dims)
-        )),
+    match (s.unknown_cost_nodes, fix_hints(s)) {
+        (0, _) => None,
+        (n, None) => Some(format!("cut with {n} nodes of unknown cost")),
+        (n, Some(fix)) => Some(format!("cut with {n} nodes of unknown cost: fix {fix} for a real plan")),
     }
 }
 
@@ -722,8 +729,8 @@ fn what_if_rows(s: &Summary, w: &WhatIfReport) -> Vec<[String; 4]> {
         ],
         [
             "est. latency".into(),
-            micros(s.est_latency_us, &s.needs_dims),
-            micros(a.est_latency_us, &a.needs_dims),
+            micros(s.est_latency_us, s),
+            micros(a.est_latency_us, a),
             signed_us(d.est_latency_us),
         ],
     ]
@@ -881,15 +888,15 @@ pub fn render_table(r: &AnalyzeReport, out: &mut dyn Write, paint: Paint) -> std
         },
         Kv {
             k: format!("est. latency ({} plan)", strategy_name(r.strategy)),
-            v: micros(s.est_latency_us, &s.needs_dims),
+            v: micros(s.est_latency_us, s),
         },
         Kv {
             k: "est. latency, greedy offload".into(),
-            v: micros(s.greedy_us, &s.needs_dims),
+            v: micros(s.greedy_us, s),
         },
         Kv {
             k: "est. latency, CPU only".into(),
-            v: micros(s.cpu_only_latency_us, &s.needs_dims),
+            v: micros(s.cpu_only_latency_us, s),
         },
     ];
     writeln!(out, "{}", Table::new(kv).with(Style::sharp()))?;
@@ -1047,9 +1054,9 @@ pub fn render_markdown(r: &AnalyzeReport, out: &mut dyn Write) -> std::io::Resul
         out,
         "| est. latency ({} plan / greedy / CPU only) | {} / {} / {} |",
         strategy_name(r.strategy),
-        micros(s.est_latency_us, &s.needs_dims),
-        micros(s.greedy_us, &s.needs_dims),
-        micros(s.cpu_only_latency_us, &s.needs_dims)
+        micros(s.est_latency_us, s),
+        micros(s.greedy_us, s),
+        micros(s.cpu_only_latency_us, s)
     )?;
     if !r.fix_first.is_empty() {
         writeln!(out, "\n**Fix these first** (CPU-bound work, costliest first)\n")?;

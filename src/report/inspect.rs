@@ -37,6 +37,10 @@ pub struct InspectReport<'a> {
     pub tensors: TensorRows<'a>,
     pub unknown_shapes: UnknownShapes<'a>,
     pub warnings: Vec<Diagnostic>,
+    /// Inputs declared with unknown dims, for the table's hint (`super::inputs_to_size`);
+    /// the JSON shows them in `inputs[]` already.
+    #[serde(skip)]
+    pub inputs_to_size: Vec<String>,
 }
 
 #[derive(Serialize, Debug, Clone)]
@@ -377,6 +381,7 @@ pub fn build<'a>(model: &'a Model, diags: &[Diagnostic], reasons: &'a UnknownRea
         tensors: TensorRows(g),
         unknown_shapes: UnknownShapes { graph: g, reasons },
         warnings,
+        inputs_to_size: super::inputs_to_size(g),
     }
 }
 
@@ -482,12 +487,7 @@ pub fn render_table(r: &InspectReport, out: &mut dyn Write) -> std::io::Result<(
     // declared with dims the file leaves unknown (`-1`, missing), which only `--input` sizes.
     let mut fixes: Vec<String> = m.unknown_because.iter().map(|d| crate::text::fix_hint(d)).collect();
     if m.macs.is_none() || m.ops.is_none() || m.activation_bytes.is_none() {
-        fixes.extend(
-            r.inputs
-                .iter()
-                .filter(|p| p.shape.as_ref().is_some_and(|s| s.0.contains(&Dim::Unknown)))
-                .map(|p| format!("--input {}=…", p.name)),
-        );
+        fixes.extend(r.inputs_to_size.iter().map(|n| format!("--input {n}=…")));
     }
     if !fixes.is_empty() {
         kv.push(KeyValue {

@@ -53,3 +53,19 @@ pub fn pct(x: Option<f64>) -> String {
 pub fn maybe(n: Option<u64>) -> String {
     n.map(grouped).unwrap_or_else(|| "unknown".into())
 }
+
+/// Graph inputs the file declares with dims it leaves unknown (`-1`, missing, `?`): only
+/// `--input` sizes them, and reports name them beside the figures they leave unknown.
+pub(crate) fn inputs_to_size(g: &crate::ir::Graph) -> Vec<String> {
+    g.inputs
+        .iter()
+        .map(|id| g.value(*id))
+        .filter(|v| {
+            v.fact
+                .shape
+                .dims()
+                .is_some_and(|d| d.contains(&crate::ir::Dim::Unknown))
+        })
+        .map(|v| v.name.clone())
+        .collect()
+}

@@ -383,7 +383,7 @@ impl Node {
     }
 
     pub fn is_default_domain(&self) -> bool {
-        self.domain.is_empty() || self.domain == "ai.onnx"
+        is_default_domain(&self.domain)
     }
 
     /// The op type, qualified by its domain outside the standard one (`Conv`,
@@ -408,6 +408,11 @@ impl Node {
 /// for them allocates nothing.
 pub type Inputs = smallvec::SmallVec<[ValueId; 4]>;
 
+/// Domains tilecut treats as the standard one: empty, or its full name.
+pub fn is_default_domain(domain: &str) -> bool {
+    domain.is_empty() || domain == "ai.onnx"
+}
+
 /// The contrib operator domain, as model files name it: runtimes' optimisers and quantizers
 /// write fused and operator-form quantized ops there. Written once, here; reports and
 /// profiles call it `contrib`.
@@ -416,7 +421,7 @@ pub const CONTRIB_DOMAIN: &str = "com.microsoft";
 /// An op type qualified by its domain outside the standard one (see `Node::op_label`). The
 /// contrib domain is `contrib`, as profiles and `--assume-supported` may write it.
 pub fn op_label(domain: &str, op_type: &str) -> String {
-    if domain.is_empty() || domain == "ai.onnx" {
+    if is_default_domain(domain) {
         op_type.to_string()
     } else if domain == CONTRIB_DOMAIN {
         format!("contrib.{op_type}")

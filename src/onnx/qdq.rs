@@ -254,7 +254,7 @@ pub fn quantize(model: &ModelProto, opts: &QuantOptions) -> Result<ModelProto, S
         _ => 13,
     };
     for o in &mut out.opset_import {
-        if o.domain.is_empty() || o.domain == "ai.onnx" {
+        if crate::ir::is_default_domain(&o.domain) {
             o.version = o.version.max(needed_opset);
         }
     }

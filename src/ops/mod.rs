@@ -85,7 +85,7 @@ pub struct OpDef {
     pub fold: Option<FoldFn>,
 }
 
-pub use crate::ir::CONTRIB_DOMAIN;
+pub use crate::ir::{is_default_domain, CONTRIB_DOMAIN};
 
 /// A domain as profiles may write it: `contrib` stands for `CONTRIB_DOMAIN`.
 pub fn resolve_domain(d: &str) -> &str {
@@ -100,11 +100,6 @@ pub fn resolve_domain(d: &str) -> &str {
 /// any of its spellings, `contrib` for `CONTRIB_DOMAIN`, else the exact name.
 pub fn node_in_domain(node: &crate::ir::Node, domain: &str) -> bool {
     resolve_domain(domain) == node.domain || (is_default_domain(domain) && node.is_default_domain())
-}
-
-/// Domains tilecut treats as the standard one.
-pub fn is_default_domain(domain: &str) -> bool {
-    domain.is_empty() || domain == "ai.onnx"
 }
 
 /// The registry: every family's table, concatenated.

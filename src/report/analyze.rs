@@ -654,12 +654,7 @@ fn micros(x: Option<f64>, s: &Summary) -> String {
 
 /// The `--dim`s (and kin) and `--input`s that would make the unknown figures known.
 fn fix_hints(s: &Summary) -> Option<String> {
-    let hints: Vec<String> = s
-        .needs_dims
-        .iter()
-        .map(|d| crate::text::fix_hint(d))
-        .chain(s.needs_inputs.iter().map(|n| format!("--input {n}=…")))
-        .collect();
+    let hints = super::fix_hints(&s.needs_dims, &s.needs_inputs);
     (!hints.is_empty()).then(|| hints.join(" "))
 }
 

@@ -485,10 +485,12 @@ pub fn render_table(r: &InspectReport, out: &mut dyn Write) -> std::io::Result<(
     }
     // What fixes the unknown figures: the symbolic dims they depend on, and the graph inputs
     // declared with dims the file leaves unknown (`-1`, missing), which only `--input` sizes.
-    let mut fixes: Vec<String> = m.unknown_because.iter().map(|d| crate::text::fix_hint(d)).collect();
-    if m.macs.is_none() || m.ops.is_none() || m.activation_bytes.is_none() {
-        fixes.extend(r.inputs_to_size.iter().map(|n| format!("--input {n}=…")));
-    }
+    let inputs: &[String] = if m.macs.is_none() || m.ops.is_none() || m.activation_bytes.is_none() {
+        &r.inputs_to_size
+    } else {
+        &[]
+    };
+    let fixes = super::fix_hints(&m.unknown_because, inputs);
     if !fixes.is_empty() {
         kv.push(KeyValue {
             key: "unknown until fixed".into(),

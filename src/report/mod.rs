@@ -69,3 +69,12 @@ pub(crate) fn inputs_to_size(g: &crate::ir::Graph) -> Vec<String> {
         .map(|v| v.name.clone())
         .collect()
 }
+
+/// The options that would make unknown figures known: a `--dim` (or `--loop-trips`) per
+/// symbol they depend on, an `--input` per input declared with unknown dims.
+pub(crate) fn fix_hints(dims: &[String], inputs: &[String]) -> Vec<String> {
+    dims.iter()
+        .map(|d| crate::text::fix_hint(d))
+        .chain(inputs.iter().map(|n| format!("--input {n}=…")))
+        .collect()
+}

@@ -341,7 +341,7 @@ fn one_line(e: &anyhow::Error) -> String {
 fn run_tract(path: &Path, inputs: &[(String, Tensor)]) -> Result<BTreeMap<String, Tensor>, VerifyError> {
     let err = |e: anyhow::Error| VerifyError(format!("{}: tract could not run it: {}", path.display(), one_line(&e)));
     let r = std::panic::catch_unwind(|| -> TractResult<BTreeMap<String, Tensor>> {
-        // `model_for_path`, with dim names tract cannot read renamed in between.
+        // `model_for_path`, with the dim names cleared in between (`tract_safe_dims`).
         let onnx = tract_onnx::onnx();
         let mut proto = onnx.proto_model_for_path(path)?;
         if let Some(g) = proto.graph.as_mut() {

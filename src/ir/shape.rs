@@ -76,8 +76,8 @@ impl Dim {
             (Dim::Known(1), d) | (d, Dim::Known(1)) => d.clone(),
             (Dim::Known(0), _) | (_, Dim::Known(0)) => Dim::Known(0),
             (Dim::Unknown, _) | (_, Dim::Unknown) => Dim::Unknown,
-            (Dim::Sym(s), Dim::Known(k)) | (Dim::Known(k), Dim::Sym(s)) if scaled_product(s, *k).is_some() => {
-                scaled_product(s, *k)?
+            (Dim::Sym(s), Dim::Known(k)) | (Dim::Known(k), Dim::Sym(s)) => {
+                scaled_product(s, *k).unwrap_or_else(|| Dim::expression(self, '*', other))
             }
             (a, b) => Dim::expression(a, '*', b),
         })

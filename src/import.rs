@@ -448,8 +448,8 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     let parallel = depth == 0 && flat.len() >= PARALLEL_MIN_NODES;
     let path = cx.path;
     // The worker, which finishes first, also checks whether the nodes' own names can all be
-    // kept; the node loop below then does not check them one by one.
-    let (names, attrs, names_kept) = if parallel {
+    // kept, and copies them if so; the node loop below then does not check them one by one.
+    let (names, attrs, mut kept_names) = if parallel {
         let flat = &flat;
         let syms = &mut syms;
         std::thread::scope(|scope| {
@@ -462,12 +462,12 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
                     let (a, kept) = h.join().unwrap_or_else(|p| std::panic::resume_unwind(p));
                     (Some(a), kept)
                 }
-                Err(_) => (None, false),
+                Err(_) => (None, None),
             };
             (names, attrs, kept)
         })
     } else {
-        (name_pass(path, &flat, &mut syms), None, false)
+        (name_pass(path, &flat, &mut syms), None, None)
     };
     // A sequential import meets the name pass's faults first.
     let (outs, ins) = names?;
@@ -478,6 +478,7 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     };
     let AttrPass {
         attrs: mut attrs_of,
+        ops: mut ops_of,
         bodies: mut bodies_of,
         reads: body_reads,
     } = attrs;
@@ -521,7 +522,7 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     // Build nodes in that order. Names the file gives are checked for repeats without copies;
     // generated and renamed ones are few.
     let mut used_file: FastSet<TextKey> = FastSet::default();
-    if !names_kept {
+    if kept_names.is_none() {
         used_file.reserve(flat.len());
     }
     let mut used_made: FastSet<String> = FastSet::default();
@@ -530,6 +531,8 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
         let n = &flat[i];
         let id = NodeId(nodes.len() as u32);
         let attrs = std::mem::take(&mut attrs_of[i]);
+        // Each node is visited once, so its slot is still filled.
+        let (op_type, domain) = ops_of[i].take().unwrap_or_default();
         let bodies = match bodies_of.binary_search_by_key(&i, |b| b.0) {
             Ok(k) => std::mem::take(&mut bodies_of[k].1),
             Err(_) => Vec::new(),
@@ -537,11 +540,14 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
         let file_name = n.proto.name.as_str();
         // One hash per name in the common case: made names are rare, and `insert` answers
         // whether the name was free.
-        let fresh = names_kept
-            || (!file_name.is_empty()
-                && (used_made.is_empty() || !used_made.contains(file_name))
-                && used_file.insert(TextKey(file_name)));
-        let name = if fresh {
+        let kept = kept_names.as_mut().and_then(|k| k[i].take());
+        let fresh = kept.is_none()
+            && !file_name.is_empty()
+            && (used_made.is_empty() || !used_made.contains(file_name))
+            && used_file.insert(TextKey(file_name));
+        let name = if let Some(name) = kept {
+            name
+        } else if fresh {
             file_name.to_string()
         } else {
             let base = if file_name.is_empty() {
@@ -610,8 +616,8 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
         nodes.push(Node {
             name,
             generated_name: n.proto.name.is_empty(),
-            op_type: cx.names.get(&n.proto.op_type),
-            domain: cx.names.get(&n.proto.domain),
+            op_type,
+            domain,
             inputs: node_inputs.into_boxed_slice(),
             outputs: node_outputs.into_boxed_slice(),
             attrs,
@@ -682,11 +688,20 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
 
 /// Whether every node has a name of its own and no two share one: then every name is kept
 /// as it is (the renaming in `import_graph` has nothing to do).
-fn distinct_names(flat: &[FlatNode]) -> bool {
+/// Those names, copied, in node order (the copies are made on the worker too); `None` when a
+/// name is blank or repeated.
+fn distinct_names(flat: &[FlatNode]) -> Option<Vec<Option<String>>> {
     let mut seen: FastSet<TextKey> = FastSet::default();
     seen.reserve(flat.len());
-    flat.iter()
-        .all(|n| !n.proto.name.is_empty() && seen.insert(TextKey(n.proto.name.as_str())))
+    let mut names = Vec::with_capacity(flat.len());
+    for n in flat {
+        let name = n.proto.name.as_str();
+        if name.is_empty() || !seen.insert(TextKey(name)) {
+            return None;
+        }
+        names.push(Some(name.to_string()));
+    }
+    Some(names)
 }
 
 /// Graphs with at least this many nodes import their attributes on a second thread.
@@ -743,6 +758,9 @@ fn name_pass<'a>(path: &Path, flat: &'a [FlatNode], syms: &mut Symbols<'a>) -> R
 /// borrow them.
 struct AttrPass {
     attrs: Vec<Box<[Attr]>>,
+    /// Each node's interned (op type, domain): on a large graph this runs on the worker,
+    /// which has time to spare, rather than in the node loop on the critical path.
+    ops: Vec<Option<(Name, Name)>>,
     bodies: Vec<(usize, Vec<Body>)>,
     reads: Vec<(usize, Vec<String>)>,
 }
@@ -751,6 +769,7 @@ struct AttrPass {
 fn attr_pass(cx: &mut Cx, flat: &[FlatNode], depth: usize) -> Result<AttrPass, ReadError> {
     let mut out = AttrPass {
         attrs: Vec::with_capacity(flat.len()),
+        ops: Vec::with_capacity(flat.len()),
         bodies: Vec::new(),
         reads: Vec::new(),
     };
@@ -766,6 +785,8 @@ fn attr_pass(cx: &mut Cx, flat: &[FlatNode], depth: usize) -> Result<AttrPass, R
             });
         }
         out.attrs.push(attrs.into_boxed_slice());
+        out.ops
+            .push(Some((cx.names.get(&n.proto.op_type), cx.names.get(&n.proto.domain))));
         if !bodies.is_empty() {
             out.bodies.push((i, bodies));
         }

@@ -21,24 +21,27 @@ pub type UnknownReasons = Vec<(ValueId, std::sync::Arc<str>)>;
 #[derive(Default)]
 struct ReasonTexts(
     FastMap<String, std::sync::Arc<str>>,
-    FastMap<Vec<Option<crate::ir::Name>>, std::sync::Arc<str>>,
+    /// Keyed by the addresses of the shape's symbols (0 for an unknown dim): no reference
+    /// counts taken and no text hashed per tensor. The value keeps those symbols alive, so
+    /// that no other text can take one of their addresses while the key is stored.
+    FastMap<Vec<usize>, (Vec<crate::ir::Name>, std::sync::Arc<str>)>,
     /// The key being looked up, reused: one allocation per distinct key, not per tensor.
-    Vec<Option<crate::ir::Name>>,
+    Vec<usize>,
 );
 
 impl ReasonTexts {
     /// The reason for a shape that is not concrete, cached by its dims that are not known
-    /// (a symbol, or None for an unknown dim): the key shares the symbols' text instead of
-    /// splitting and joining it again for every tensor.
+    /// (a symbol, or an unknown dim): the key shares the symbols' text instead of splitting
+    /// and joining it again for every tensor.
     fn for_shape(&mut self, shape: &Shape) -> std::sync::Arc<str> {
         let mut key = std::mem::take(&mut self.2);
         key.clear();
         key.extend(shape.dims().into_iter().flatten().filter_map(|d| match d {
-            crate::ir::Dim::Sym(s) => Some(Some(s.clone())),
-            crate::ir::Dim::Unknown => Some(None),
+            crate::ir::Dim::Sym(s) => Some(s.addr()),
+            crate::ir::Dim::Unknown => Some(0),
             crate::ir::Dim::Known(_) => None,
         }));
-        if let Some(a) = self.1.get(key.as_slice()) {
+        if let Some((_, a)) = self.1.get(key.as_slice()) {
             let a = a.clone();
             self.2 = key;
             return a;
@@ -50,7 +53,16 @@ impl ReasonTexts {
             format!("depends on symbolic dims: {}", syms.join(", "))
         };
         let a = self.get(text);
-        self.1.insert(key, a.clone());
+        let alive = shape
+            .dims()
+            .into_iter()
+            .flatten()
+            .filter_map(|d| match d {
+                crate::ir::Dim::Sym(s) => Some(s.clone()),
+                _ => None,
+            })
+            .collect();
+        self.1.insert(key, (alive, a.clone()));
         a
     }
 
@@ -173,7 +185,13 @@ fn infer_graph(
             }
         }
     }
-    for v in &mut g.values {
+    // Every value of kind input is a graph input or a captured name (import makes them so),
+    // which spares a walk over all of a large graph's values.
+    for k in 0..g.inputs.len() + g.captured.len() {
+        let id = g.inputs.get(k).or_else(|| g.captured.get(k - g.inputs.len())).copied();
+        let Some(v) = id.map(|id| &mut g.values[id.index()]) else {
+            continue;
+        };
         if v.kind == ValueKind::Input {
             if let Some(d) = &v.declared {
                 v.fact = (**d).clone();

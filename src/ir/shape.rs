@@ -441,6 +441,11 @@ impl Shape {
     pub fn symbols_into(&self, out: &mut Vec<Name>) {
         for d in self.0.iter().flatten() {
             let Dim::Sym(s) = d else { continue };
+            // Dims copied from one another share their text: most repeats end here, before
+            // any scan of the text.
+            if out.iter().any(|x| x.addr() == s.addr()) {
+                continue;
+            }
             let simple = !s.contains(['*', '+', '(', ')', '/']);
             if simple {
                 if !out.iter().any(|x| x == s) && s.parse::<u64>().is_err() {

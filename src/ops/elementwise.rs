@@ -3,7 +3,7 @@
 use crate::ir::{ConstData, ConstValue, DType, Dim, Shape};
 
 use super::fold::{self, all_consts};
-use super::util::{broadcast, same_as, tensor};
+use super::util::{broadcast_all, same_as, tensor};
 use super::{CostRule, Ctx, Inferred, OpDef};
 
 /// Bernoulli, RandomUniformLike, RandomNormalLike: the input's shape; the `dtype`
@@ -103,11 +103,14 @@ fn to_bool(ctx: &Ctx) -> Inferred {
 }
 
 fn bcast_inputs(ctx: &Ctx) -> Result<Shape, String> {
-    let shapes: Vec<Shape> = (0..ctx.node.inputs.len())
-        .filter(|&i| ctx.has_input(i))
-        .map(|i| ctx.shape(i))
-        .collect();
-    broadcast(&shapes)
+    let mut shapes: smallvec::SmallVec<[&Shape; 4]> = smallvec::SmallVec::new();
+    for i in (0..ctx.node.inputs.len()).filter(|&i| ctx.has_input(i)) {
+        match ctx.fact(i) {
+            Some(f) => shapes.push(&f.shape),
+            None => return Ok(Shape::unknown()),
+        }
+    }
+    broadcast_all(shapes.iter().copied())
 }
 
 fn binary(ctx: &Ctx) -> Inferred {

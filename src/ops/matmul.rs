@@ -4,7 +4,7 @@ use std::collections::BTreeMap;
 
 use crate::ir::{DType, Dim, Fact, Shape};
 
-use super::util::{broadcast, count, tensor};
+use super::util::{broadcast, broadcast_dim, count, tensor};
 use super::{CostRule, Ctx, Inferred, MacsOps, OpDef, CONTRIB_DOMAIN};
 
 /// (A, B) input slots and output dtype of each matmul-like op.
@@ -19,42 +19,47 @@ fn ab(ctx: &Ctx) -> (usize, usize, Option<DType>) {
 
 /// numpy matmul shape: 1-D operands are promoted and the added dim removed afterwards.
 pub fn matmul_shape(a: &[Dim], b: &[Dim]) -> Result<Vec<Dim>, String> {
-    if a.is_empty() || b.is_empty() {
-        return Err("MatMul of a scalar".into());
-    }
-    let (mut a2, mut b2) = (a.to_vec(), b.to_vec());
-    if a.len() == 1 {
-        a2.insert(0, Dim::Known(1));
-    }
-    if b.len() == 1 {
-        b2.push(Dim::Known(1));
-    }
-    let (ka, kb) = (&a2[a2.len() - 1], &b2[b2.len() - 2]);
+    // A 1-D operand is a row (A) or a column (B) whose added dim is dropped again: its inner
+    // dim is its only one and it has no batch dims.
+    let (m, ka, a_batch) = match a {
+        [k] => (None, k, &[][..]),
+        [batch @ .., m, k] => (Some(m), k, batch),
+        [] => return Err("MatMul of a scalar".into()),
+    };
+    let (kb, n, b_batch) = match b {
+        [k] => (k, None, &[][..]),
+        [batch @ .., k, n] => (k, Some(n), batch),
+        [] => return Err("MatMul of a scalar".into()),
+    };
     if let (Dim::Known(x), Dim::Known(y)) = (ka, kb) {
         if x != y {
             return Err(format!("inner dims differ: {x} vs {y}"));
         }
     }
-    let batch = broadcast(&[
-        Shape::of(a2[..a2.len() - 2].to_vec()),
-        Shape::of(b2[..b2.len() - 2].to_vec()),
-    ])?;
-    let mut out = batch.0.unwrap_or_default();
-    if a.len() != 1 {
-        out.push(a2[a2.len() - 2].clone());
+    // Multidirectional broadcasting of the batch dims, aligned at the right.
+    let rank = a_batch.len().max(b_batch.len());
+    let mut out = Vec::with_capacity(rank + 2);
+    fn at(s: &[Dim], i: usize, rank: usize) -> Option<&Dim> {
+        (i + s.len()).checked_sub(rank).map(|j| &s[j])
     }
-    if b.len() != 1 {
-        out.push(b2[b2.len() - 1].clone());
+    for i in 0..rank {
+        out.push(match (at(a_batch, i, rank), at(b_batch, i, rank)) {
+            (Some(x), Some(y)) => broadcast_dim(x, y)?,
+            (Some(x), None) | (None, Some(x)) => x.clone(),
+            (None, None) => Dim::Known(1),
+        });
     }
+    out.extend(m.cloned());
+    out.extend(n.cloned());
     Ok(out)
 }
 
 fn matmul(ctx: &Ctx) -> Inferred {
     let (ia, ib, dt) = ab(ctx);
-    let (Some(a), Some(b)) = (ctx.dims(ia), ctx.dims(ib)) else {
+    let (Some(a), Some(b)) = (ctx.dims_ref(ia), ctx.dims_ref(ib)) else {
         return Err("operand rank unknown".into());
     };
-    Ok(vec![tensor(dt, Shape::of(matmul_shape(&a, &b)?))])
+    Ok(vec![tensor(dt, Shape::of(matmul_shape(a, b)?))])
 }
 
 fn matmul_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {

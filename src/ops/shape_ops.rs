@@ -311,8 +311,7 @@ fn reshape(ctx: &Ctx) -> Inferred {
             .collect(),
         _ => raw,
     };
-    let input = ctx.dims(0);
-    let dims = reshape_dims(input.as_deref(), &target, &literal, ctx.int("allowzero", 0) != 0)?;
+    let dims = reshape_dims(ctx.dims_ref(0), &target, &literal, ctx.int("allowzero", 0) != 0)?;
     Ok(vec![tensor(ctx.dtype(0), Shape::of(dims))])
 }
 
@@ -345,21 +344,25 @@ fn flatten(ctx: &Ctx) -> Inferred {
 }
 
 fn transpose(ctx: &Ctx) -> Inferred {
-    let Some(d) = ctx.dims(0) else {
+    let Some(d) = ctx.dims_ref(0) else {
         return Ok(vec![tensor(ctx.dtype(0), Shape::unknown())]);
     };
-    let perm = ctx.ints("perm").unwrap_or_else(|| (0..d.len() as i64).rev().collect());
-    if perm.len() != d.len() {
-        return Err(format!("perm has {} entries for rank {}", perm.len(), d.len()));
-    }
-    let out = perm
-        .iter()
-        .map(|&p| {
-            norm_axis(p, d.len())
-                .map(|a| d[a].clone())
-                .ok_or("perm entry out of range")
-        })
-        .collect::<Result<_, _>>()?;
+    let out = match ctx.ints_ref("perm") {
+        Some(perm) => {
+            if perm.len() != d.len() {
+                return Err(format!("perm has {} entries for rank {}", perm.len(), d.len()));
+            }
+            perm.iter()
+                .map(|&p| {
+                    norm_axis(p, d.len())
+                        .map(|a| d[a].clone())
+                        .ok_or("perm entry out of range")
+                })
+                .collect::<Result<_, _>>()?
+        }
+        // No `perm`: the dims reversed.
+        None => d.iter().rev().cloned().collect(),
+    };
     Ok(vec![tensor(ctx.dtype(0), Shape::of(out))])
 }
 

@@ -448,8 +448,8 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     let parallel = depth == 0 && flat.len() >= PARALLEL_MIN_NODES;
     let path = cx.path;
     // The worker, which finishes first, also checks whether the nodes' own names can all be
-    // kept, and copies them if so; the node loop below then does not check them one by one.
-    let (names, attrs, mut kept_names) = if parallel {
+    // kept; the node loop below then does not check them one by one.
+    let (names, attrs, names_kept) = if parallel {
         let flat = &flat;
         let syms = &mut syms;
         std::thread::scope(|scope| {
@@ -462,12 +462,12 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
                     let (a, kept) = h.join().unwrap_or_else(|p| std::panic::resume_unwind(p));
                     (Some(a), kept)
                 }
-                Err(_) => (None, None),
+                Err(_) => (None, false),
             };
             (names, attrs, kept)
         })
     } else {
-        (name_pass(path, &flat, &mut syms), None, None)
+        (name_pass(path, &flat, &mut syms), None, false)
     };
     // A sequential import meets the name pass's faults first.
     let (outs, ins) = names?;
@@ -522,7 +522,7 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     // Build nodes in that order. Names the file gives are checked for repeats without copies;
     // generated and renamed ones are few.
     let mut used_file: FastSet<TextKey> = FastSet::default();
-    if kept_names.is_none() {
+    if !names_kept {
         used_file.reserve(flat.len());
     }
     let mut used_made: FastSet<String> = FastSet::default();
@@ -540,14 +540,11 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
         let file_name = n.proto.name.as_str();
         // One hash per name in the common case: made names are rare, and `insert` answers
         // whether the name was free.
-        let kept = kept_names.as_mut().and_then(|k| k[i].take());
-        let fresh = kept.is_none()
-            && !file_name.is_empty()
-            && (used_made.is_empty() || !used_made.contains(file_name))
-            && used_file.insert(TextKey(file_name));
-        let name = if let Some(name) = kept {
-            name
-        } else if fresh {
+        let fresh = names_kept
+            || (!file_name.is_empty()
+                && (used_made.is_empty() || !used_made.contains(file_name))
+                && used_file.insert(TextKey(file_name)));
+        let name = if fresh {
             file_name.to_string()
         } else {
             let base = if file_name.is_empty() {
@@ -688,20 +685,11 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
 
 /// Whether every node has a name of its own and no two share one: then every name is kept
 /// as it is (the renaming in `import_graph` has nothing to do).
-/// Those names, copied, in node order (the copies are made on the worker too); `None` when a
-/// name is blank or repeated.
-fn distinct_names(flat: &[FlatNode]) -> Option<Vec<Option<String>>> {
+fn distinct_names(flat: &[FlatNode]) -> bool {
     let mut seen: FastSet<TextKey> = FastSet::default();
     seen.reserve(flat.len());
-    let mut names = Vec::with_capacity(flat.len());
-    for n in flat {
-        let name = n.proto.name.as_str();
-        if name.is_empty() || !seen.insert(TextKey(name)) {
-            return None;
-        }
-        names.push(Some(name.to_string()));
-    }
-    Some(names)
+    flat.iter()
+        .all(|n| !n.proto.name.is_empty() && seen.insert(TextKey(n.proto.name.as_str())))
 }
 
 /// Graphs with at least this many nodes import their attributes on a second thread.

@@ -6,7 +6,7 @@ use std::path::{Path, PathBuf};
 
 use crate::diag::{codes, Diagnostic};
 use crate::error::{ReadError, SettingError};
-use crate::fastmap::{short_text_eq, FastMap, FastSet, TextKey};
+use crate::fastmap::{short_text_eq, FastSet, TextKey};
 use crate::ir::{
     Attr, AttrValue, Body, ConstValue, DType, Dim, Fact, Graph, Model, Name, Node, NodeCost, NodeId, Shape, Storage,
     TensorData, Value, ValueId, ValueKind, ValueType,
@@ -808,19 +808,25 @@ const NONE: u32 = u32::MAX;
 /// The tensor names of one graph, each hashed once and then known by its index: the value it
 /// names so far and the node that produces it.
 struct Symbols<'a> {
-    index: FastMap<TextKey<'a>, u32>,
+    /// Symbol indices, found by their names' hashes. Four bytes an entry, not the 24 of a
+    /// (name, index) pair: a 100k-node graph's table then stays in the core's cache, where
+    /// probing a table six times larger missed it on most lookups.
+    index: hashbrown::HashTable<u32>,
     names: Vec<&'a str>,
     value: Vec<Option<ValueId>>,
     /// Index in the flat node list, or `NONE`.
     producer: Vec<u32>,
 }
 
+fn text_hash(s: &str) -> u64 {
+    use std::hash::{BuildHasher, BuildHasherDefault};
+    BuildHasherDefault::<crate::fastmap::FxHasher>::default().hash_one(TextKey(s))
+}
+
 impl<'a> Symbols<'a> {
     fn with_capacity(n: usize) -> Symbols<'a> {
-        let mut index = FastMap::default();
-        index.reserve(n);
         Symbols {
-            index,
+            index: hashbrown::HashTable::with_capacity(n),
             names: Vec::with_capacity(n),
             value: Vec::with_capacity(n),
             producer: Vec::with_capacity(n),
@@ -828,18 +834,30 @@ impl<'a> Symbols<'a> {
     }
 
     fn intern(&mut self, name: &'a str) -> u32 {
-        let next = self.names.len() as u32;
-        let k = *self.index.entry(TextKey(name)).or_insert(next);
-        if k == next {
-            self.names.push(name);
-            self.value.push(None);
-            self.producer.push(NONE);
+        let names = &self.names;
+        let entry = self.index.entry(
+            text_hash(name),
+            |&k| short_text_eq(names[k as usize], name),
+            |&k| text_hash(names[k as usize]),
+        );
+        match entry {
+            hashbrown::hash_table::Entry::Occupied(e) => *e.get(),
+            hashbrown::hash_table::Entry::Vacant(e) => {
+                let next = self.names.len() as u32;
+                e.insert(next);
+                self.names.push(name);
+                self.value.push(None);
+                self.producer.push(NONE);
+                next
+            }
         }
-        k
     }
 
     fn value_of(&self, name: &str) -> Option<ValueId> {
-        self.index.get(&TextKey(name)).and_then(|&k| self.value[k as usize])
+        let k = self
+            .index
+            .find(text_hash(name), |&k| short_text_eq(self.names[k as usize], name))?;
+        self.value[*k as usize]
     }
 
     fn bind(&mut self, name: &'a str, id: ValueId) {

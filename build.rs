@@ -10,17 +10,7 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
     config.extern_path(".onnx.TensorProto", "crate::onnx::tensor::TensorProto");
     config.extern_path(".onnx.NodeProto", "crate::onnx::node::NodeProto");
     config.extern_path(".onnx.GraphProto", "crate::onnx::graph::GraphProto");
-    // Rare, large message fields are boxed so that every attribute (most are one int or a
-    // short list) does not carry a tensor, a graph and a sparse tensor inline: unboxed, an
-    // AttributeProto is 1.7 KB and the decoded tree of a 100k-node model is mostly them.
-    for field in [
-        ".onnx.AttributeProto.t",
-        ".onnx.AttributeProto.g",
-        ".onnx.AttributeProto.sparse_tensor",
-        ".onnx.AttributeProto.tp",
-    ] {
-        config.boxed(field);
-    }
+    config.extern_path(".onnx.AttributeProto", "crate::onnx::attr::AttributeProto");
     config.compile_fds(descriptors)?;
     Ok(())
 }

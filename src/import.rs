@@ -1024,12 +1024,12 @@ fn expand_functions<'a>(
             .into();
             m.attribute = Vec::with_capacity(inner.attribute.len());
             for a in &inner.attribute {
-                if a.ref_attr_name.is_empty() {
+                if a.ref_attr_name().is_empty() {
                     m.attribute.push(a.clone());
                     continue;
                 }
-                let given = n.attribute.iter().find(|x| x.name == a.ref_attr_name);
-                let default = f.attribute_proto.iter().find(|x| x.name == a.ref_attr_name);
+                let given = n.attribute.iter().find(|x| x.name.as_str() == a.ref_attr_name());
+                let default = f.attribute_proto.iter().find(|x| x.name.as_str() == a.ref_attr_name());
                 if let Some(src) = given.or(default) {
                     let mut b = src.clone();
                     b.name = a.name.clone();
@@ -1071,9 +1071,9 @@ fn attr_value(
         7
     } else if !a.floats.is_empty() {
         6
-    } else if !a.strings.is_empty() {
+    } else if !a.strings().is_empty() {
         8
-    } else if !a.graphs.is_empty() {
+    } else if !a.graphs().is_empty() {
         10
     } else if !a.s.is_empty() {
         3
@@ -1090,7 +1090,7 @@ fn attr_value(
             }
         }
         bodies.push(Body {
-            attr: a.name.clone(),
+            attr: a.name.to_string(),
             graph,
         });
         Ok::<usize, ReadError>(bodies.len() - 1)
@@ -1110,15 +1110,20 @@ fn attr_value(
         6 => AttrValue::Floats(a.floats.clone()),
         7 => AttrValue::Ints(a.ints.clone()),
         8 => AttrValue::Strings(
-            a.strings
+            a.strings()
                 .iter()
                 .map(|s| String::from_utf8_lossy(s).into_owned())
                 .collect(),
         ),
-        9 => AttrValue::Tensors(a.tensors.iter().map(|t| tensor_data(cx, t)).collect::<Result<_, _>>()?),
+        9 => AttrValue::Tensors(
+            a.tensors()
+                .iter()
+                .map(|t| tensor_data(cx, t))
+                .collect::<Result<_, _>>()?,
+        ),
         10 => {
             let mut ids = Vec::new();
-            for g in &a.graphs {
+            for g in a.graphs() {
                 ids.push(body(cx, g, bodies, free)?);
             }
             AttrValue::Graphs(ids)

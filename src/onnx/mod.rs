@@ -1,6 +1,7 @@
 //! The ONNX wire format: generated message types, the hand-written `TensorProto`,
-//! `NodeProto` and `GraphProto`, and loading a model file by memory map. The only module that names protobuf types.
+//! `NodeProto`, `AttributeProto` and `GraphProto`, and loading a model file by memory map. The only module that names protobuf types.
 
+pub mod attr;
 pub mod builder;
 pub mod feed;
 pub mod graph;
@@ -16,6 +17,7 @@ mod generated {
     include!(concat!(env!("OUT_DIR"), "/onnx.rs"));
 }
 
+pub use attr::AttributeProto;
 pub use generated::*;
 pub use graph::GraphProto;
 pub use node::NodeProto;

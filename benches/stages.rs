@@ -1,7 +1,9 @@
 //! Per-stage timings of the reader on generated models (`tilecut dev bench-models DIR`).
 //! Run: `cargo bench --bench stages -- DIR`. Prints medians of 5 runs per stage. `load ms`
 //! reads the file as the binary's `inspect` does (mapped for the process's life); `shared`
-//! reads it as library callers do by default (see `onnx::load::MapLife`).
+//! reads it as library callers do by default (see `onnx::load::MapLife`). Stacks are read
+//! twice: with `--dim batch=1`, and with the batch left symbolic (`… symbolic`), as
+//! `bench/run.sh` reads them with `inspect` and the Python pair.
 
 use std::path::PathBuf;
 use std::time::Instant;
@@ -44,51 +46,75 @@ fn main() {
         if !path.exists() {
             continue;
         }
-        let mut t = vec![Vec::new(); 8];
-        let mut nodes = 0usize;
-        for _ in 0..5 {
-            let s = Instant::now();
-            let shared = tilecut::onnx::load::load(&path).expect("load");
-            t[7].push(s.elapsed().as_secs_f64() * 1e3);
-            drop(shared);
-            let s = Instant::now();
-            let loaded = tilecut::onnx::load::load_with(&path, MapLife::Process).expect("load");
-            t[0].push(s.elapsed().as_secs_f64() * 1e3);
-            let s = Instant::now();
-            let (mut model, mut diags) = tilecut::import::import(&loaded, &overrides).expect("import");
-            t[1].push(s.elapsed().as_secs_f64() * 1e3);
-            let s = Instant::now();
-            let unknown = tilecut::infer::infer(&mut model, &mut diags);
-            t[2].push(s.elapsed().as_secs_f64() * 1e3);
-            let s = Instant::now();
-            let report = tilecut::report::inspect::build(&model, &diags, &unknown);
-            t[3].push(s.elapsed().as_secs_f64() * 1e3);
-            let s = Instant::now();
-            let mut out = Vec::new();
-            tilecut::report::inspect::render_json(&report, &mut out).expect("json");
-            t[4].push(s.elapsed().as_secs_f64() * 1e3);
-            let s = Instant::now();
-            let verdicts = tilecut::rules::judge(&model.graph, &model.opsets, &target);
-            t[5].push(s.elapsed().as_secs_f64() * 1e3);
-            let s = Instant::now();
-            let costs = tilecut::cut::cost::costs(&model.graph, &verdicts, &target);
-            let plan = tilecut::cut::plan(
-                &model.graph,
-                &verdicts,
-                &costs,
-                tilecut::cut::Strategy::Mincut,
-                &Default::default(),
-            )
-            .expect("plan");
-            t[6].push(s.elapsed().as_secs_f64() * 1e3);
-            nodes = model.graph.nodes.len();
-            std::hint::black_box(plan);
+        // With the batch fixed, as a user sizing a model would run it; and for the stacks also
+        // with it symbolic, as the Python pair in `bench/run.sh` reads the same file.
+        let symbolic = tilecut::Overrides::default();
+        let variants: &[(&str, &tilecut::Overrides)] = if name.starts_with("stack_") {
+            &[("", &overrides), (" symbolic", &symbolic)]
+        } else {
+            &[("", &overrides)]
+        };
+        for (suffix, o) in variants {
+            let (t, nodes) = measure(&path, o, &target);
+            print_row(&format!("{name}{suffix}"), t, nodes);
         }
-        let m: Vec<f64> = t.into_iter().map(median).collect();
-        let per10k = if nodes > 0 { m[6] * 10_000.0 / nodes as f64 } else { 0.0 };
-        println!(
-            "{:<22} {:>9.1} {:>9.1} {:>9.1} {:>9.1} {:>9.1} {:>9.1} {:>9.1} {:>9.1} {:>12.1}",
-            name, m[0], m[7], m[1], m[2], m[3], m[4], m[5], m[6], per10k
-        );
     }
+}
+
+fn print_row(name: &str, t: Vec<Vec<f64>>, nodes: usize) {
+    let m: Vec<f64> = t.into_iter().map(median).collect();
+    let per10k = if nodes > 0 { m[6] * 10_000.0 / nodes as f64 } else { 0.0 };
+    println!(
+        "{:<22} {:>9.1} {:>9.1} {:>9.1} {:>9.1} {:>9.1} {:>9.1} {:>9.1} {:>9.1} {:>12.1}",
+        name, m[0], m[7], m[1], m[2], m[3], m[4], m[5], m[6], per10k
+    );
+}
+
+/// Per-stage times of five reads of `path` with `overrides`: (times per stage, node count).
+fn measure(
+    path: &std::path::Path,
+    overrides: &tilecut::Overrides,
+    target: &tilecut::target::Target,
+) -> (Vec<Vec<f64>>, usize) {
+    let mut t = vec![Vec::new(); 8];
+    let mut nodes = 0usize;
+    for _ in 0..5 {
+        let s = Instant::now();
+        let shared = tilecut::onnx::load::load(path).expect("load");
+        t[7].push(s.elapsed().as_secs_f64() * 1e3);
+        drop(shared);
+        let s = Instant::now();
+        let loaded = tilecut::onnx::load::load_with(path, MapLife::Process).expect("load");
+        t[0].push(s.elapsed().as_secs_f64() * 1e3);
+        let s = Instant::now();
+        let (mut model, mut diags) = tilecut::import::import(&loaded, overrides).expect("import");
+        t[1].push(s.elapsed().as_secs_f64() * 1e3);
+        let s = Instant::now();
+        let unknown = tilecut::infer::infer(&mut model, &mut diags);
+        t[2].push(s.elapsed().as_secs_f64() * 1e3);
+        let s = Instant::now();
+        let report = tilecut::report::inspect::build(&model, &diags, &unknown);
+        t[3].push(s.elapsed().as_secs_f64() * 1e3);
+        let s = Instant::now();
+        let mut out = Vec::new();
+        tilecut::report::inspect::render_json(&report, &mut out).expect("json");
+        t[4].push(s.elapsed().as_secs_f64() * 1e3);
+        let s = Instant::now();
+        let verdicts = tilecut::rules::judge(&model.graph, &model.opsets, target);
+        t[5].push(s.elapsed().as_secs_f64() * 1e3);
+        let s = Instant::now();
+        let costs = tilecut::cut::cost::costs(&model.graph, &verdicts, target);
+        let plan = tilecut::cut::plan(
+            &model.graph,
+            &verdicts,
+            &costs,
+            tilecut::cut::Strategy::Mincut,
+            &Default::default(),
+        )
+        .expect("plan");
+        t[6].push(s.elapsed().as_secs_f64() * 1e3);
+        nodes = model.graph.nodes.len();
+        std::hint::black_box(plan);
+    }
+    (t, nodes)
 }

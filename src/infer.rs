@@ -562,7 +562,7 @@ fn node_cost(ctx: &Ctx, rule: Option<CostRule>, outs: &[Fact], bodies: &[MacsOps
         macs = macs.zip(pick(|b| b.0)).and_then(|(a, b)| a.checked_add(b));
         ops_ = ops_.zip(pick(|b| b.1)).and_then(|(a, b)| a.checked_add(b));
     }
-    let mut needs = Vec::new();
+    let mut needs = crate::ir::NameList::new();
     if ctx.node.op_type == "Loop"
         && (macs.is_none() || ops_.is_none())
         && ctx.konst(0).is_none()

@@ -349,8 +349,9 @@ pub struct NodeCost {
     pub macs: Option<u64>,
     /// Element-wise and other non-MAC arithmetic operations.
     pub ops: Option<u64>,
-    /// Symbols whose values would make the unknown figures known.
-    pub needs_dims: Vec<Name>,
+    /// Symbols whose values would make the unknown figures known. Inline up to two: on a
+    /// graph with a symbolic batch every node has one, and a heap list each was measurable.
+    pub needs_dims: NameList,
 }
 
 #[derive(Clone, Debug)]
@@ -407,6 +408,9 @@ impl Node {
 /// A node's input values: inline up to four (most nodes read one to three), so that asking
 /// for them allocates nothing.
 pub type Inputs = smallvec::SmallVec<[ValueId; 4]>;
+
+/// A short list of names, inline up to two (as small as a `Vec`).
+pub type NameList = smallvec::SmallVec<[Name; 2]>;
 
 /// Domains tilecut treats as the standard one: empty, or its full name.
 pub fn is_default_domain(domain: &str) -> bool {

@@ -438,7 +438,7 @@ impl Shape {
 
     /// Adds the symbols that keep this shape from being concrete to `out`, skipping those
     /// already there (a shared `Name`, no allocation: large graphs repeat one `batch`).
-    pub fn symbols_into(&self, out: &mut Vec<Name>) {
+    pub fn symbols_into(&self, out: &mut super::NameList) {
         for d in self.0.iter().flatten() {
             let Dim::Sym(s) = d else { continue };
             // Dims copied from one another share their text: most repeats end here, before

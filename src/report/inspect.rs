@@ -308,7 +308,7 @@ pub fn build<'a>(model: &'a Model, diags: &[Diagnostic], reasons: &'a UnknownRea
     let mut counts: crate::fastmap::FastMap<(usize, usize), (usize, &crate::ir::Node)> = Default::default();
     let mut macs = Some(0u64);
     let mut ops = Some(0u64);
-    let mut because: Vec<crate::ir::Name> = Vec::new();
+    let mut because = crate::ir::NameList::new();
     for n in &g.nodes {
         counts.entry((n.domain.addr(), n.op_type.addr())).or_insert((0, n)).0 += 1;
         if n.folded {

@@ -809,8 +809,8 @@ const NONE: u32 = u32::MAX;
 /// names so far and the node that produces it.
 struct Symbols<'a> {
     /// Symbol indices, found by their names' hashes. Four bytes an entry, not the 24 of a
-    /// (name, index) pair: a 100k-node graph's table then stays in the core's cache, where
-    /// probing a table six times larger missed it on most lookups.
+    /// (name, index) pair: on a 100k-node graph the table is a sixth of the size, and
+    /// import took about 3 ms less (of 29).
     index: hashbrown::HashTable<u32>,
     names: Vec<&'a str>,
     value: Vec<Option<ValueId>>,

@@ -108,14 +108,6 @@ impl AttributeProto {
     pub fn graphs(&self) -> &[GraphProto] {
         &self.rare().graphs
     }
-
-    /// The graph lists for rewriting in place (empty without allocating where there are none).
-    pub fn graphs_mut(&mut self) -> &mut [GraphProto] {
-        match self.rare.as_deref_mut() {
-            Some(r) => &mut r.graphs,
-            None => &mut [],
-        }
-    }
 }
 
 /// An optional boxed message field: merged into the existing value, as protobuf requires of

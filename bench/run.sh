@@ -2,7 +2,8 @@
 # Side-by-side timing of `tilecut inspect` against the `onnx` Python package
 # (onnx.load(..., load_external_data=False) + onnx.shape_inference.infer_shapes) and
 # tract-onnx's load + type analysis, on generated models. Prints medians of N runs (whole
-# processes), peak RSS, and ratios. Usage: bash bench/run.sh [DIR] [RUNS]
+# processes), peak RSS, and ratios; the Python pair's time inside its process is the median of
+# up to five runs. Usage: bash bench/run.sh [DIR] [RUNS]
 set -euo pipefail
 cd "$(dirname "$0")/.."
 dir="${1:-bench-models}"
@@ -52,7 +53,9 @@ for m in stack_10k stack_30k stack_100k stack_200k heavy_1g_inline heavy_1g_exte
   [ "$tjr" -gt "$tr" ] && tr=$tjr
   if python3 -c 'import onnx' 2>/dev/null; then
     read -r ps pr < <(measure python3 -c "$py_pair" "$f")
-    ip=$(python3 -c "$py_inproc" "$f" 2>/dev/null || echo nan)
+    # The in-process time is the median of up to five runs: one run swings by a tenth.
+    ip=$(for _ in $(seq "$(( runs < 5 ? runs : 5 ))"); do python3 -c "$py_inproc" "$f" 2>/dev/null || echo nan; done |
+      sort -g | awk '{a[NR]=$1} END {print a[int((NR+1)/2)]}')
     ratio=$(awk -v a="$ps" -v b="$ts" 'BEGIN { if (b > 0) printf "%.1fx", a / b; else print "inf" }')
     jratio=$(awk -v a="$ps" -v b="$tj" 'BEGIN { if (b > 0) printf "%.1fx", a / b; else print "inf" }')
   else

@@ -187,11 +187,8 @@ fn infer_graph(
     }
     // Every value of kind input is a graph input or a captured name (import makes them so),
     // which spares a walk over all of a large graph's values.
-    for k in 0..g.inputs.len() + g.captured.len() {
-        let id = g.inputs.get(k).or_else(|| g.captured.get(k - g.inputs.len())).copied();
-        let Some(v) = id.map(|id| &mut g.values[id.index()]) else {
-            continue;
-        };
+    for id in g.inputs.iter().chain(&g.captured) {
+        let v = &mut g.values[id.index()];
         if v.kind == ValueKind::Input {
             if let Some(d) = &v.declared {
                 v.fact = (**d).clone();

@@ -4,7 +4,7 @@ use std::collections::BTreeMap;
 
 use crate::ir::{DType, Dim, Fact, Shape};
 
-use super::util::{broadcast, broadcast_dim, count, tensor};
+use super::util::{broadcast, broadcast_dims, count, tensor};
 use super::{CostRule, Ctx, Inferred, MacsOps, OpDef, CONTRIB_DOMAIN};
 
 /// (A, B) input slots and output dtype of each matmul-like op.
@@ -37,18 +37,7 @@ pub fn matmul_shape(a: &[Dim], b: &[Dim]) -> Result<Vec<Dim>, String> {
         }
     }
     // Multidirectional broadcasting of the batch dims, aligned at the right.
-    let rank = a_batch.len().max(b_batch.len());
-    let mut out = Vec::with_capacity(rank + 2);
-    fn at(s: &[Dim], i: usize, rank: usize) -> Option<&Dim> {
-        (i + s.len()).checked_sub(rank).map(|j| &s[j])
-    }
-    for i in 0..rank {
-        out.push(match (at(a_batch, i, rank), at(b_batch, i, rank)) {
-            (Some(x), Some(y)) => broadcast_dim(x, y)?,
-            (Some(x), None) | (None, Some(x)) => x.clone(),
-            (None, None) => Dim::Known(1),
-        });
-    }
+    let mut out = broadcast_dims([a_batch, b_batch].into_iter(), 2)?;
     out.extend(m.cloned());
     out.extend(n.cloned());
     Ok(out)

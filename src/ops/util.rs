@@ -130,7 +130,7 @@ pub fn tensor(dtype: Option<DType>, shape: Shape) -> Fact {
     Fact::tensor(dtype, shape)
 }
 
-pub(super) fn broadcast_dim(a: &Dim, b: &Dim) -> Result<Dim, String> {
+fn broadcast_dim(a: &Dim, b: &Dim) -> Result<Dim, String> {
     Ok(match (a, b) {
         (Dim::Known(1), d) | (d, Dim::Known(1)) => d.clone(),
         (Dim::Known(x), Dim::Known(y)) => {
@@ -153,23 +153,29 @@ pub fn broadcast(shapes: &[Shape]) -> Result<Shape, String> {
 
 /// `broadcast` over borrowed shapes: an element-wise node's inputs are not copied first.
 pub fn broadcast_all<'s>(shapes: impl Iterator<Item = &'s Shape> + Clone) -> Result<Shape, String> {
-    let mut rank = 0;
-    for s in shapes.clone() {
-        let Some(dims) = s.dims() else {
-            return Ok(Shape::unknown());
-        };
-        rank = rank.max(dims.len());
+    if shapes.clone().any(|s| s.dims().is_none()) {
+        return Ok(Shape::unknown());
     }
+    broadcast_dims(shapes.filter_map(Shape::dims), 0).map(Shape::of)
+}
+
+/// The broadcast of known dim lists, with room for `extra` dims after them (MatMul appends
+/// its matrix dims to the broadcast batch dims).
+pub(super) fn broadcast_dims<'d>(
+    lists: impl Iterator<Item = &'d [Dim]> + Clone,
+    extra: usize,
+) -> Result<Vec<Dim>, String> {
+    let rank = lists.clone().map(<[Dim]>::len).max().unwrap_or(0);
     // Missing leading dims are 1, which broadcasts to anything.
-    let mut out = vec![Dim::Known(1); rank];
-    for s in shapes {
-        let dims = s.dims().unwrap_or_default();
+    let mut out = Vec::with_capacity(rank + extra);
+    out.resize(rank, Dim::Known(1));
+    for dims in lists {
         let off = rank - dims.len();
         for (i, d) in dims.iter().enumerate() {
             out[off + i] = broadcast_dim(&out[off + i], d)?;
         }
     }
-    Ok(Shape::of(out))
+    Ok(out)
 }
 
 /// Product of dims as a Dim (symbolic where needed); error on overflow.

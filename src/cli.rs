@@ -229,17 +229,23 @@ pub struct CheckArgs {
     /// Fix a symbolic dimension (overrides the policy's dims).
     #[arg(long = "dim", value_name = "NAME=VALUE")]
     pub dims: Vec<String>,
-    #[arg(long)]
+    /// Least share of MACs on the accelerator, 0 to 1 (overrides the policy's).
+    #[arg(long, value_name = "FRACTION")]
     pub min_coverage_macs: Option<f64>,
-    #[arg(long)]
+    /// Least share of (non-constant) nodes on the accelerator, 0 to 1 (overrides the policy's).
+    #[arg(long, value_name = "FRACTION")]
     pub min_coverage_nodes: Option<f64>,
-    #[arg(long)]
+    /// Most accelerator partitions, i.e. dispatches per inference (overrides the policy's).
+    #[arg(long, value_name = "N")]
     pub max_accel_partitions: Option<u64>,
-    #[arg(long)]
+    /// Most bytes crossing CPU ↔ accelerator per inference (overrides the policy's).
+    #[arg(long, value_name = "BYTES")]
     pub max_boundary_bytes: Option<u64>,
-    #[arg(long)]
+    /// Most boundary crossings per inference (overrides the policy's).
+    #[arg(long, value_name = "N")]
     pub max_transfers: Option<u64>,
-    #[arg(long)]
+    /// Most estimated end-to-end latency in microseconds, an estimate (overrides the policy's).
+    #[arg(long, value_name = "MICROSECONDS")]
     pub max_latency_us: Option<f64>,
     #[command(flatten)]
     pub what_if: WhatIfArgs,

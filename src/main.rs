@@ -115,13 +115,8 @@ fn run_check(args: tilecut::cli::CheckArgs, quiet: bool) -> anyhow::Result<u8> {
         max_latency_us: args.max_latency_us,
         ..Default::default()
     };
-    for (k, v) in [
-        ("--min-coverage-macs", args.min_coverage_macs),
-        ("--min-coverage-nodes", args.min_coverage_nodes),
-    ] {
-        if v.is_some_and(|x| !(0.0..=1.0).contains(&x)) {
-            anyhow::bail!("{k}: coverage is a fraction from 0 to 1");
-        }
+    if let Some((key, why)) = cli.impossible() {
+        anyhow::bail!("--{}: {why}", key.replace('_', "-"));
     }
     if !args.dims.is_empty() {
         let mut o = tilecut::Overrides::default();

@@ -29,6 +29,27 @@ pub struct Limits {
     pub forbidden_reasons: Option<Vec<String>>,
 }
 
+impl Limits {
+    /// The first limit whose value no model could meet or miss sensibly (a coverage outside
+    /// 0..1, a latency that is not a positive number), as its policy key and the problem.
+    /// The policy file and the command line both refuse such values.
+    pub fn impossible(&self) -> Option<(&'static str, String)> {
+        for (k, v) in [
+            ("min_coverage_macs", self.min_coverage_macs),
+            ("min_coverage_nodes", self.min_coverage_nodes),
+        ] {
+            if let Some(x) = v.filter(|x| !(0.0..=1.0).contains(x)) {
+                return Some((k, format!("{x} is impossible; coverage is a fraction from 0 to 1")));
+            }
+        }
+        let x = self.max_latency_us.filter(|x| !(x.is_finite() && *x > 0.0))?;
+        Some((
+            "max_latency_us",
+            format!("{x} is impossible; give a positive number of microseconds"),
+        ))
+    }
+}
+
 #[derive(Deserialize, Serialize, Debug, Clone, Default, PartialEq)]
 #[serde(deny_unknown_fields)]
 pub struct Regression {
@@ -86,24 +107,8 @@ pub fn parse(text: &str, source_name: &str) -> Result<PolicyFile, PolicyError> {
         )));
     }
     let check = |where_: &str, l: &Limits| -> Result<(), PolicyError> {
-        for (k, v) in [
-            ("min_coverage_macs", l.min_coverage_macs),
-            ("min_coverage_nodes", l.min_coverage_nodes),
-        ] {
-            if let Some(x) = v {
-                if !(0.0..=1.0).contains(&x) {
-                    return Err(err(format!(
-                        "key `{where_}{k}`: {x} is impossible; coverage is a fraction from 0 to 1"
-                    )));
-                }
-            }
-        }
-        if let Some(x) = l.max_latency_us {
-            if !(x.is_finite() && x > 0.0) {
-                return Err(err(format!(
-                    "key `{where_}max_latency_us`: {x} is impossible; give a positive number of microseconds"
-                )));
-            }
+        if let Some((k, why)) = l.impossible() {
+            return Err(err(format!("key `{where_}{k}`: {why}")));
         }
         if let Some(t) = &l.target {
             crate::target::load(t).map_err(|e| err(format!("key `{where_}target`: {e}")))?;

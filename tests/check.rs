@@ -237,6 +237,27 @@ fn bad_policies_exit_2_with_file_line_and_key() {
     assert_eq!(c, 2, "--policy is required");
 }
 
+/// A limit given on the command line is held to what the policy file is held to: a value no
+/// model can sensibly meet is a usage error (exit 2), never a failed gate (exit 1).
+#[test]
+fn impossible_command_line_limits_exit_2() {
+    let d = tempfile::tempdir().expect("tmp");
+    let m = sample("fruit_grader_qdq_int8.onnx");
+    let p = policy(d.path(), "");
+    let (m, p) = (m.to_str().expect("utf8"), p.to_str().expect("utf8"));
+    for (arg, flag) in [
+        ("--max-latency-us=-5", "--max-latency-us"),
+        ("--max-latency-us=0", "--max-latency-us"),
+        ("--max-latency-us=nan", "--max-latency-us"),
+        ("--max-latency-us=inf", "--max-latency-us"),
+        ("--min-coverage-macs=1.5", "--min-coverage-macs"),
+        ("--min-coverage-nodes=nan", "--min-coverage-nodes"),
+    ] {
+        assert_fails_cleanly(&["check", m, "--policy", p, arg], flag);
+    }
+    assert_eq!(code(&["check", m, "--policy", p, "--max-latency-us=1e9"]), 0);
+}
+
 #[test]
 fn a_model_that_cannot_be_analyzed_is_never_passing() {
     let d = tempfile::tempdir().expect("tmp");

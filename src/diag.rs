@@ -45,7 +45,41 @@ pub mod codes {
     pub const UNUSED_INITIALIZER: &str = "initializer-unused";
     pub const INITIALIZER_AS_INPUT: &str = "initializer-as-input";
     pub const OVERRIDE_UNUSED: &str = "override-unused";
+    pub const OVERRIDE_CONFLICT: &str = "override-conflict";
     pub const OPSET_MISSING: &str = "opset-missing";
     pub const DECLARED_FALLBACK: &str = "shape-from-file";
     pub const ASSUMPTION_UNUSED: &str = "assumption-unused";
+
+    /// Every code above: the README lists them for users (a test holds it to that).
+    pub const ALL: &[&str] = &[
+        UNKNOWN_OP,
+        SYMBOLIC_DIM,
+        UNKNOWN_DIM,
+        EXTERNAL_MISSING,
+        SHAPE_DISAGREES,
+        SHAPE_FAILED,
+        UNUSED_INITIALIZER,
+        INITIALIZER_AS_INPUT,
+        OVERRIDE_UNUSED,
+        OVERRIDE_CONFLICT,
+        OPSET_MISSING,
+        DECLARED_FALLBACK,
+        ASSUMPTION_UNUSED,
+    ];
+}
+
+#[cfg(test)]
+mod tests {
+    #[test]
+    fn every_code_is_unique_and_documented_in_the_readme() {
+        let readme = include_str!("../README.md");
+        let mut seen = std::collections::BTreeSet::new();
+        for c in super::codes::ALL {
+            assert!(seen.insert(*c), "code `{c}` used twice");
+            assert!(
+                readme.contains(&format!("`{c}`")),
+                "README does not list warning code `{c}`"
+            );
+        }
+    }
 }

@@ -1244,6 +1244,33 @@ fn declared_fact(cx: &mut Cx, vi: &onnx::ValueInfoProto, apply_overrides: bool) 
     if apply_overrides {
         if let Some(dims) = cx.overrides.inputs.get(&vi.name) {
             cx.used_inputs.insert(vi.name.clone());
+            if let Some(declared) = fact.shape.dims() {
+                // Another rank is another model: every op reading the input would be judged
+                // on a shape the file rules out.
+                if declared.len() != dims.len() {
+                    return Err(cx.err(format!(
+                        "--input {}: {} dim(s) given, but the model declares {} ({})",
+                        vi.name,
+                        dims.len(),
+                        declared.len(),
+                        fact.shape
+                    )));
+                }
+                // A fixed size may be exported narrower than the graph accepts: said, not refused.
+                for (axis, (was, now)) in declared.iter().zip(dims).enumerate() {
+                    if let (Dim::Known(was), Dim::Known(now)) = (was, now) {
+                        if was != now {
+                            cx.diags.push(
+                                Diagnostic::new(
+                                    codes::OVERRIDE_CONFLICT,
+                                    format!("--input sets dim {axis} to {now}; the file declares {was}"),
+                                )
+                                .at_tensor(&vi.name),
+                            );
+                        }
+                    }
+                }
+            }
             fact.shape = Shape::of(dims.clone());
         }
         if let Some(dims) = fact.shape.0.as_mut() {

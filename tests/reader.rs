@@ -561,9 +561,42 @@ fn bad_overrides() {
     assert_fails_cleanly(&["inspect", ps, "--dim", "batch=-3"], "not a non-negative integer");
     assert_fails_cleanly(&["inspect", ps, "--input", "x=1x-3"], "not a non-negative integer");
     assert_fails_cleanly(&["inspect", ps, "--input", "nosuch=1x2"], "not an input of the model");
+    // The file declares x as [1, 1, 7, 5]: another rank is refused, naming both.
+    assert_fails_cleanly(
+        &["inspect", ps, "--input", "x=1x1x7"],
+        "--input x: 3 dim(s) given, but the model declares 4",
+    );
     // clap's own usage errors also exit 2.
     let (code, _, _) = run(&["inspect", ps, "--format", "yaml"]);
     assert_eq!(code, 2);
+}
+
+/// A fixed size given with `--input` that differs from the file's is used, and said.
+#[test]
+fn input_override_of_a_fixed_dim_is_used_and_warned() {
+    let p = conformance("test_conv_with_strides_padding.onnx");
+    let (code, out, _) = run(&[
+        "inspect",
+        p.to_str().expect("utf8"),
+        "--format",
+        "json",
+        "--input",
+        "x=1x1x9x5",
+    ]);
+    assert_eq!(code, 0);
+    let v: serde_json::Value = serde_json::from_str(&out).expect("json");
+    // ONNX operator spec, Conv: out = floor((in + pads - kernel) / stride) + 1 with a 3x3
+    // kernel, stride 2, pads 1: H 9 → 5, W 5 → 3; MACs = 5 · 3 · 3 · 3.
+    assert_eq!(v["model"]["macs"], 5 * 3 * 9);
+    let w = v["warnings"].as_array().expect("warnings");
+    assert!(
+        w.iter().any(|w| w["code"] == "override-conflict"
+            && w["tensor"] == "x"
+            && w["message"]
+                .as_str()
+                .is_some_and(|m| m.contains("dim 2 to 9") && m.contains("declares 7"))),
+        "{w:?}"
+    );
 }
 
 #[test]

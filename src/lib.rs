@@ -13,6 +13,7 @@ pub mod ir;
 pub mod map;
 pub mod onnx;
 pub mod ops;
+pub mod outpath;
 pub mod policy;
 pub mod quant;
 pub mod report;

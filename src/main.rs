@@ -137,6 +137,27 @@ fn run_check(args: tilecut::cli::CheckArgs, quiet: bool) -> anyhow::Result<u8> {
                 .map_err(|e| anyhow::anyhow!("{}: not a tilecut baseline: {e}", p.display()))?,
         ),
     };
+    // Checked before the models are analyzed: a gate's outputs must never land on its inputs.
+    let mut reads = tilecut::outpath::Reads::default();
+    for p in args.models.iter().chain([&policy_path]) {
+        reads.add(p);
+    }
+    // Saving over the baseline just compared against is how a baseline is moved forward.
+    if let Some(p) = &args.save_baseline {
+        reads.check_file("--save-baseline", p)?;
+    }
+    if let Some(p) = &args.baseline {
+        reads.add(p);
+    }
+    for (flag, p) in [
+        ("--junit", &args.junit),
+        ("--sarif", &args.sarif),
+        ("--summary-file", &args.summary_file),
+    ] {
+        if let Some(p) = p {
+            reads.check_file(flag, p)?;
+        }
+    }
     let req = tilecut::gate::CheckRequest {
         models: &args.models,
         policy: &policy,
@@ -300,6 +321,13 @@ fn run(cli: Cli) -> anyhow::Result<u8> {
             let analysis = tilecut::analyze_read(read, target, &opts)?;
             bar.update(0, 0, "writing the report");
             let report = analysis.report();
+            let mut reads = tilecut::outpath::Reads::default();
+            reads.add_model(&args.model.model, &analysis.read.model.graph);
+            for (flag, p) in [("--dot", &args.dot), ("--html", &args.html)] {
+                if let Some(p) = p {
+                    reads.check_file(flag, p)?;
+                }
+            }
             if let Some(p) = &args.dot {
                 let mut x = Vec::new();
                 tilecut::report::visual::render_dot(&analysis, &mut x)?;
@@ -357,6 +385,9 @@ fn run(cli: Cli) -> anyhow::Result<u8> {
             } else {
                 tilecut::cut::plan_at(&analysis.read.model.graph, &analysis.plan, &args.cut_at)?
             };
+            let mut reads = tilecut::outpath::Reads::default();
+            reads.add_model(&args.model.model, &analysis.read.model.graph);
+            reads.check_folder("--out", &args.out)?;
             let loaded = tilecut::onnx::load::load(&args.model.model)?;
             let (files, manifest) = tilecut::onnx::split::build(&loaded, &analysis.read.model.graph, &plan)?;
             tilecut::onnx::split::write(

@@ -533,3 +533,33 @@ fn fix_first_ranks_cpu_bound_work_with_suggestions_that_fit() {
     let s = suggestion("command_word_encoder_f32.onnx", "wide-array", "gelu_47");
     assert!(s.contains("--dim batch=N") && s.contains("--dim frames=N"), "{s}");
 }
+
+/// The visual reports are written by renaming into place: naming the model as the output
+/// would replace it. Refused before anything is written.
+#[test]
+fn report_files_never_overwrite_the_model() {
+    let d = tempfile::tempdir().expect("tmp");
+    let model = d.path().join("grader.onnx");
+    std::fs::copy(
+        Path::new(env!("CARGO_MANIFEST_DIR")).join("sample-models/fruit_grader_qdq_int8.onnx"),
+        &model,
+    )
+    .expect("copy");
+    let before = std::fs::read(&model).expect("read");
+    let ms = model.to_str().expect("utf8");
+    let (html, dot) = (d.path().join("report.html"), d.path().join("report.dot"));
+    let via_dots = d.path().join(".").join("grader.onnx");
+    let (hs, ds) = (html.to_str().expect("utf8"), dot.to_str().expect("utf8"));
+    assert_fails_cleanly(&["analyze", ms, "--dot", ds, "--html", ms], "--html would overwrite");
+    assert_fails_cleanly(
+        &["analyze", ms, "--html", hs, "--dot", via_dots.to_str().expect("utf8")],
+        "--dot would overwrite",
+    );
+    assert_eq!(std::fs::read(&model).expect("read"), before);
+    assert!(
+        !html.exists() && !dot.exists(),
+        "no report is written when another output is refused"
+    );
+    let n = std::fs::read_dir(d.path()).expect("dir").count();
+    assert_eq!(n, 1, "nothing but the model in the folder");
+}

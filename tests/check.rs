@@ -496,3 +496,36 @@ fn diff_lists_placement_changes_and_regressions() {
         "not a tilecut analyze report",
     );
 }
+
+/// A gate's output files (JUnit, SARIF, summary, baseline) never land on its inputs: the
+/// model, the policy, the baseline it compares against. Saving over that baseline is allowed:
+/// it moves the baseline forward.
+#[test]
+fn gate_outputs_never_overwrite_its_inputs() {
+    let d = tempfile::tempdir().expect("tmp");
+    let model = d.path().join("camera.onnx");
+    std::fs::copy(sample("fruit_grader_qdq_int8.onnx"), &model).expect("copy");
+    let p = policy(d.path(), "[defaults]\nmin_coverage_macs = 0.5\n");
+    let (ms, ps) = (model.to_str().expect("utf8"), p.to_str().expect("utf8"));
+    let base = d.path().join("baseline.json");
+    let bs = base.to_str().expect("utf8");
+    assert_eq!(code(&["check", ms, "--policy", ps, "--save-baseline", bs]), 0);
+    let inputs = [&model, &p, &base].map(|f| std::fs::read(f).expect("read"));
+    for flag in ["--junit", "--sarif", "--summary-file"] {
+        for target in [ms, ps, bs] {
+            assert_fails_cleanly(
+                &["check", ms, "--policy", ps, "--baseline", bs, flag, target],
+                &format!("{flag} would overwrite"),
+            );
+        }
+    }
+    assert_fails_cleanly(
+        &["check", ms, "--policy", ps, "--save-baseline", ms],
+        "--save-baseline would overwrite",
+    );
+    assert_eq!([&model, &p, &base].map(|f| std::fs::read(f).expect("read")), inputs);
+    assert_eq!(
+        code(&["check", ms, "--policy", ps, "--baseline", bs, "--save-baseline", bs]),
+        0
+    );
+}

@@ -371,6 +371,57 @@ fn output_folder_faults_leave_nothing_behind() {
     assert_eq!(before, std::fs::read(&m).expect("read"));
 }
 
+/// `--force` replaces the output folder as a whole: a folder holding the model, or the
+/// external data the model reads, is refused (it once deleted the model), and nothing is
+/// written or removed.
+#[test]
+fn the_output_folder_never_holds_what_the_split_reads() {
+    use tilecut::ir::DType;
+    use tilecut::onnx::builder::{raw_tensor, ModelBuilder};
+    use tilecut::onnx::StringStringEntryProto;
+    let d = tempfile::tempdir().expect("tmp");
+    let src = d.path().join("src");
+    std::fs::create_dir_all(src.join("data")).expect("mkdir");
+    let w: Vec<u8> = (0..8 * 8).flat_map(|i| (i as f32 * 0.01).to_le_bytes()).collect();
+    std::fs::write(src.join("data/weights.bin"), &w).expect("write");
+    let mut m = ModelBuilder::new("vibration", 17);
+    m.graph.input("x", DType::F32, &[1.into(), 8.into()]);
+    let mut t = raw_tensor("w", DType::F32, &[8, 8], Vec::new());
+    t.data_location = 1;
+    t.external_data = vec![StringStringEntryProto {
+        key: "location".into(),
+        value: "data/weights.bin".into(),
+    }];
+    m.graph.initializer(t);
+    m.graph.node("MatMul", &["x", "w"], &["h"]);
+    m.graph.node("Relu", &["h"], &["y"]);
+    m.graph.output("y", DType::F32, &[1.into(), 8.into()]);
+    let model = src.join("monitor.onnx");
+    let bytes = m.encode();
+    std::fs::write(&model, &bytes).expect("write");
+    let ms = model.to_str().expect("utf8");
+    for (out, holds) in [
+        (src.clone(), "monitor.onnx"),
+        (d.path().to_path_buf(), "monitor.onnx"),
+        (src.join("data"), "weights.bin"),
+    ] {
+        let os = out.to_str().expect("utf8");
+        assert_fails_cleanly(&["split", ms, "--out", os, "--force"], holds);
+        assert_fails_cleanly(&["split", ms, "--out", os, "--force"], "would replace a folder holding");
+    }
+    assert_eq!(std::fs::read(&model).expect("model kept"), bytes);
+    assert_eq!(std::fs::read(src.join("data/weights.bin")).expect("data kept"), w);
+    let mut left: Vec<_> = std::fs::read_dir(&src)
+        .expect("dir")
+        .map(|e| e.expect("e").file_name())
+        .collect();
+    left.sort();
+    assert_eq!(left, ["data", "monitor.onnx"], "no temporary folder left behind");
+    // A folder beside the model is fine.
+    let out = src.join("pieces");
+    assert_eq!(run(&["split", ms, "--out", out.to_str().expect("utf8")]).0, 0);
+}
+
 /// A sink that fails on its second file, like a disk filling up midway.
 struct FailingSink(usize);
 

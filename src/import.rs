@@ -49,8 +49,7 @@ impl Overrides {
         }
         // The name the file's spelling `a + 1` takes in tilecut (see `Dim::param`).
         let name = crate::ir::compact_expression(name).unwrap_or_else(|| name.to_string());
-        self.dims.insert(name, v);
-        Ok(())
+        set_once(&mut self.dims, "--dim", name, v)
     }
 
     /// Parses `NAME=V[,V…]` for `--value`: numbers, one per element, in row-major order.
@@ -68,8 +67,7 @@ impl Overrides {
                 return Err(SettingError(format!("--value `{text}`: `{p}` is not a number")));
             }
         }
-        self.values.insert(name.to_string(), parts);
-        Ok(())
+        set_once(&mut self.values, "--value", name.to_string(), parts)
     }
 
     /// Parses `NODE=N` for `--loop-trips`.
@@ -82,8 +80,7 @@ impl Overrides {
                 "--loop-trips `{text}`: `{value}` is not a non-negative integer"
             ))
         })?;
-        self.loop_trips.insert(name.trim().to_string(), v);
-        Ok(())
+        set_once(&mut self.loop_trips, "--loop-trips", name.trim().to_string(), v)
     }
 
     /// Parses `NAME=1x3x224x224`; a part may also be a symbol name; `NAME=` is a scalar.
@@ -107,8 +104,26 @@ impl Overrides {
                 dims.push(Dim::sym(part));
             }
         }
-        self.inputs.insert(name.to_string(), dims);
-        Ok(())
+        set_once(&mut self.inputs, "--input", name.to_string(), dims)
+    }
+}
+
+/// Records one setting; the same name given again with another value is an error, since
+/// either choice would silently drop what the user wrote.
+fn set_once<V: PartialEq>(
+    map: &mut BTreeMap<String, V>,
+    flag: &str,
+    name: String,
+    value: V,
+) -> Result<(), SettingError> {
+    match map.get(&name) {
+        Some(old) if *old != value => Err(SettingError(format!(
+            "{flag} {name}: given twice with different values"
+        ))),
+        _ => {
+            map.insert(name, value);
+            Ok(())
+        }
     }
 }
 

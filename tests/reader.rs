@@ -561,6 +561,20 @@ fn bad_overrides() {
     assert_fails_cleanly(&["inspect", ps, "--dim", "batch=-3"], "not a non-negative integer");
     assert_fails_cleanly(&["inspect", ps, "--input", "x=1x-3"], "not a non-negative integer");
     assert_fails_cleanly(&["inspect", ps, "--input", "nosuch=1x2"], "not an input of the model");
+    // A setting repeated with another value would silently lose one of them.
+    assert_fails_cleanly(
+        &["inspect", ps, "--dim", "n=1", "--dim", "n=2"],
+        "--dim n: given twice with different values",
+    );
+    assert_fails_cleanly(
+        &["inspect", ps, "--input", "x=1x1x7x5", "--input", "x=1x1x9x5"],
+        "--input x: given twice",
+    );
+    assert_eq!(
+        run(&["inspect", ps, "--input", "x=1x1x7x5", "--input", "x=1x1x7x5"]).0,
+        0,
+        "the same value twice is no conflict"
+    );
     // The file declares x as [1, 1, 7, 5]: another rank is refused, naming both.
     assert_fails_cleanly(
         &["inspect", ps, "--input", "x=1x1x7"],

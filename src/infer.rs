@@ -455,7 +455,10 @@ fn fill_from(fact: &Fact, decl: &Fact, fixable: &BTreeSet<String>) -> Fact {
     // A sequence whose elements the graph spells out keeps them: a declaration types the
     // elements only.
     let tracked = matches!(fact.value_type, ValueType::Sequence(_, Some(_)));
-    let value_type = if !tracked && fact.dtype.is_none() && fact.shape.rank().is_none() {
+    // An untyped declaration reads as a bare tensor: it must not turn an inferred sequence,
+    // map or optional back into one.
+    let bare = decl.value_type == ValueType::Tensor && fact.value_type != ValueType::Tensor;
+    let value_type = if !tracked && !bare && fact.dtype.is_none() && fact.shape.rank().is_none() {
         decl.value_type.clone()
     } else {
         fact.value_type.clone()

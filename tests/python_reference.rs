@@ -794,3 +794,89 @@ fn sequences_split_in_pieces_agree_with_the_onnx_reference_evaluator() {
         "the length of a sequence the graph spells out is a constant"
     );
 }
+
+/// Builds one model per ONNX-ML op (the classical-model ops converters write), runs it in the
+/// `onnx` package's reference evaluator and prints each output's shape and element type.
+const ML_MODELS: &str = r#"
+import sys, json, os, onnx, numpy as np
+from onnx import helper as h, TensorProto as T
+from onnx.reference import ReferenceEvaluator
+out_dir = sys.argv[1]
+F, I, S = T.FLOAT, T.INT64, T.STRING
+x = np.linspace(0, 1, 12, dtype=np.float32).reshape(3, 4)
+tree = dict(nodes_treeids=[0, 0, 0, 1], nodes_nodeids=[0, 1, 2, 0], nodes_featureids=[0, 0, 0, 0],
+            nodes_modes=["BRANCH_LEQ", "LEAF", "LEAF", "LEAF"], nodes_values=[0.5, 0, 0, 0],
+            nodes_truenodeids=[1, 0, 0, 0], nodes_falsenodeids=[2, 0, 0, 0])
+cases = {
+  "linear_regressor": ("LinearRegressor", [("x", F, [3, 4])], 1, {"x": x}, dict(coefficients=[0.5] * 8, targets=2)),
+  "linear_regressor_one": ("LinearRegressor", [("x", F, [4])], 1, {"x": x[0]}, dict(coefficients=[0.5] * 4)),
+  "linear_classifier": ("LinearClassifier", [("x", F, [3, 4])], 2, {"x": x}, dict(coefficients=[0.5] * 12, classlabels_ints=[0, 1, 2])),
+  "linear_classifier_binary": ("LinearClassifier", [("x", F, [3, 4])], 2, {"x": x}, dict(coefficients=[0.5] * 4, intercepts=[0.1], classlabels_strings=["ok", "worn"])),
+  "svm_classifier": ("SVMClassifier", [("x", F, [3, 4])], 2, {"x": x}, dict(classlabels_ints=[0, 1, 2], coefficients=[1.0] * 6, support_vectors=[0.5] * 12, vectors_per_class=[1, 1, 1], rho=[0.1, 0.2, 0.3], kernel_type="RBF")),
+  "svm_classifier_binary": ("SVMClassifier", [("x", F, [3, 4])], 2, {"x": x}, dict(classlabels_ints=[0, 1], coefficients=[1.0] * 2, support_vectors=[0.5] * 8, vectors_per_class=[1, 1], rho=[0.1], kernel_type="RBF")),
+  "one_hot_encoder": ("OneHotEncoder", [("x", I, [3, 4])], 1, {"x": np.ones((3, 4), np.int64)}, dict(cats_int64s=[1, 2, 3])),
+  "feature_vectorizer": ("FeatureVectorizer", [("a", F, [3, 2]), ("b", F, [3, 5])], 1, {"a": np.ones((3, 2), np.float32), "b": np.ones((3, 5), np.float32)}, dict(inputdimensions=[2, 5])),
+  "array_feature_extractor": ("ArrayFeatureExtractor", [("x", F, [3, 4]), ("i", I, [2, 2])], 1, {"x": x, "i": np.array([[0, 1], [2, 3]], np.int64)}, {}),
+  "imputer": ("Imputer", [("x", F, [3, 4])], 1, {"x": x}, dict(imputed_value_floats=[0.0], replaced_value_float=0.0)),
+  "scaler": ("Scaler", [("x", F, [3, 4])], 1, {"x": x}, dict(offset=[0.5], scale=[2.0])),
+  "normalizer": ("Normalizer", [("x", F, [3, 4])], 1, {"x": x}, dict(norm="L2")),
+  "binarizer": ("Binarizer", [("x", F, [3, 4])], 1, {"x": x}, dict(threshold=0.5)),
+  "label_encoder": ("LabelEncoder", [("x", S, [5])], 1, {"x": np.array(["a", "b", "c", "a", "z"], dtype=object)}, dict(keys_strings=["a", "b"], values_floats=[1.0, 2.0])),
+  "tree_regressor": ("TreeEnsembleRegressor", [("x", F, [3, 4])], 1, {"x": x}, dict(tree, n_targets=2, target_ids=[0, 1, 0], target_nodeids=[1, 2, 0], target_treeids=[0, 0, 1], target_weights=[1.0, 2.0, 3.0])),
+  "tree_classifier": ("TreeEnsembleClassifier", [("x", F, [3, 4])], 2, {"x": x}, dict(tree, classlabels_strings=["low", "mid", "high"], class_ids=[0, 1, 2], class_nodeids=[1, 2, 0], class_treeids=[0, 0, 1], class_weights=[1.0, 1.0, 1.0])),
+}
+result = {}
+for name, (op, inputs, n_out, feeds, attrs) in cases.items():
+    outs = [f"y{i}" for i in range(n_out)]
+    node = h.make_node(op, [i[0] for i in inputs], outs, domain="ai.onnx.ml", **attrs)
+    g = h.make_graph([node], name, [h.make_tensor_value_info(n, t, s) for n, t, s in inputs],
+                     [h.make_value_info(o, onnx.TypeProto()) for o in outs])
+    m = h.make_model(g, opset_imports=[h.make_opsetid("", 17), h.make_opsetid("ai.onnx.ml", 3)])
+    path = os.path.join(out_dir, name + ".onnx")
+    onnx.save(m, path)
+    got = ReferenceEvaluator(m).run(None, feeds)
+    kind = lambda a: "string" if a.dtype.kind in "OU" else str(a.dtype)
+    result[name] = [[list(a.shape), kind(a)] for a in got]
+print(json.dumps(result))
+"#;
+
+/// ONNX-ML ops: every output's shape and element type must be the ones the `onnx` package's
+/// reference evaluator computes (ONNX-ML operator specification), also for the cases where the
+/// spec's text is silent: a single example's LinearRegressor (`[targets]`), two-class scores
+/// (one column per class label), and indices of rank 2 (ArrayFeatureExtractor, all of them on
+/// the last axis).
+#[test]
+fn ml_ops_agree_with_the_onnx_reference_evaluator() {
+    if !python_onnx("ml_ops_agree_with_the_onnx_reference_evaluator") {
+        return;
+    }
+    let dir = tempfile::tempdir().expect("tmp");
+    let reference: BTreeMap<String, Vec<(Vec<u64>, String)>> =
+        serde_json::from_str(&python(ML_MODELS, &[dir.path().to_str().expect("utf8")])).expect("json");
+    assert_eq!(reference.len(), 16);
+    for (name, expected) in &reference {
+        let read = tilecut::read_model(&dir.path().join(format!("{name}.onnx")), &Default::default()).expect("reads");
+        assert!(
+            !read
+                .diags
+                .iter()
+                .any(|d| d.code == "op-unknown" || d.code == "shape-failed"),
+            "{name}: {:?}",
+            read.diags
+        );
+        let g = &read.model.graph;
+        let ours: Vec<(Vec<u64>, String)> = g
+            .outputs
+            .iter()
+            .map(|&o| {
+                let f = &g.value(o).fact;
+                let shape = f
+                    .shape
+                    .concrete()
+                    .unwrap_or_else(|| panic!("{name}: {} unsized", f.shape));
+                (shape, f.dtype.map_or("?", |d| d.name()).to_string())
+            })
+            .collect();
+        assert_eq!(&ours, expected, "{name}");
+    }
+}

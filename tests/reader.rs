@@ -1484,3 +1484,93 @@ fn bad_input_values_are_refused() {
     let (c, _, err) = run(&["inspect", m, "--value", "b=1,2,3,4.5,5"]);
     assert_eq!(c, 0, "{err}");
 }
+
+/// ONNX-ML ops the `onnx` package's reference evaluator does not implement, held to the
+/// ONNX-ML operator specification: CategoryMapper maps strings to int64 and int64 to strings
+/// ("the output type is the other one"), keeping the shape; ZipMap gives a sequence of maps.
+/// Both are CPU work the report names by domain, never an unknown op. A linear classifier's
+/// MACs follow the documented convention: examples × features × classes.
+#[test]
+fn ml_ops_without_a_reference_implementation_follow_the_specification() {
+    let d = tmp();
+    let ml = |mut n: onnx::NodeProto, attrs: Vec<onnx::AttributeProto>| {
+        n.domain = "ai.onnx.ml".into();
+        n.attribute = attrs;
+        n
+    };
+    let strings = |name: &str, v: &[&str]| {
+        let mut a = onnx::AttributeProto {
+            name: name.into(),
+            r#type: 8, // STRINGS
+            ..Default::default()
+        };
+        a.rare_mut().strings = v.iter().map(|s| bytes::Bytes::copy_from_slice(s.as_bytes())).collect();
+        a
+    };
+    let labels = || {
+        vec![
+            strings("cats_strings", &["ok", "worn"]),
+            ints_attr("cats_int64s", &[0, 1]),
+        ]
+    };
+    let mut floats = onnx::AttributeProto {
+        name: "coefficients".into(),
+        r#type: 6, // FLOATS
+        ..Default::default()
+    };
+    floats.floats = vec![0.5; 12];
+    let nodes = vec![
+        ml(node("CategoryMapper", &["names"], &["codes"]), labels()),
+        ml(node("CategoryMapper", &["codes"], &["names_again"]), labels()),
+        ml(
+            node("LinearClassifier", &["x"], &["label", "scores"]),
+            vec![floats, ints_attr("classlabels_ints", &[0, 1, 2])],
+        ),
+        ml(
+            node("ZipMap", &["scores"], &["by_class"]),
+            vec![ints_attr("classlabels_int64s", &[0, 1, 2])],
+        ),
+    ];
+    let mut m = model(
+        nodes,
+        vec![vi("names", 8, &[Dm::N(5)]), vi("x", 1, &[Dm::N(6), Dm::N(4)])],
+        untyped(&["codes", "names_again", "label", "by_class"]),
+        vec![],
+    );
+    m.opset_import.push(onnx::OperatorSetIdProto {
+        domain: "ai.onnx.ml".into(),
+        version: 3,
+    });
+    let p = write(d.path(), "bearing_grader.onnx", &m);
+    let (code, out, err) = run(&["inspect", p.to_str().expect("utf8"), "--format", "json"]);
+    assert_eq!(code, 0, "{err}");
+    let v: serde_json::Value = serde_json::from_str(&out).expect("json");
+    let outs = v["outputs"].as_array().expect("outputs");
+    assert_eq!(outs[0]["dtype"], "int64");
+    assert_eq!(outs[0]["shape"], serde_json::json!([5]));
+    assert_eq!(outs[1]["dtype"], "string");
+    assert_eq!(outs[1]["shape"], serde_json::json!([5]));
+    assert_eq!(outs[2]["shape"], serde_json::json!([6]));
+    assert!(
+        !v["warnings"]
+            .as_array()
+            .expect("warnings")
+            .iter()
+            .any(|w| w["code"] == "op-unknown"),
+        "{}",
+        v["warnings"]
+    );
+    assert_eq!(v["model"]["macs"], 6 * 4 * 3);
+    assert!(v["op_counts"]
+        .as_array()
+        .expect("ops")
+        .iter()
+        .any(|o| o["op"] == "ai.onnx.ml.ZipMap"));
+    let read = tilecut::read_model(&p, &Default::default()).expect("reads");
+    let g = &read.model.graph;
+    let zipped = &g.value(g.outputs[3]).fact;
+    assert!(
+        matches!(&zipped.value_type, tilecut::ir::ValueType::Sequence(e, _) if e.value_type == tilecut::ir::ValueType::Map),
+        "{zipped:?}"
+    );
+}

@@ -21,6 +21,7 @@ mod conv;
 mod elementwise;
 mod fold;
 mod matmul;
+mod ml;
 mod norm;
 mod quant;
 mod recurrent;
@@ -122,6 +123,7 @@ static REGISTRY: &[&[OpDef]] = &[
     vision::OPS,
     sequence::OPS,
     contrib::OPS,
+    ml::OPS,
 ];
 
 /// Looks an op up by domain and type (a hash index over the registry, built once).

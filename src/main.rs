@@ -335,7 +335,7 @@ fn run(cli: Cli) -> anyhow::Result<u8> {
             }
             if let Some(p) = &args.html {
                 let mut x = Vec::new();
-                tilecut::report::visual::render_html(&analysis, &mut x)?;
+                tilecut::report::visual::render_html(&analysis, &report, &mut x)?;
                 write_atomic(p, &x).with_context(|| format!("{}: cannot write", p.display()))?;
             }
             bar.finish();

@@ -5,6 +5,7 @@
 use std::io::Write;
 
 use crate::cut::Side;
+use crate::report::analyze::AnalyzeReport;
 use crate::Analysis;
 
 fn esc(s: &str) -> String {
@@ -71,9 +72,9 @@ pub fn render_dot(a: &Analysis, out: &mut dyn Write) -> std::io::Result<()> {
     writeln!(out, "}}")
 }
 
-/// The self-contained page.
-pub fn render_html(a: &Analysis, out: &mut dyn Write) -> std::io::Result<()> {
-    let r = a.report();
+/// The self-contained page, from the analysis and the report already built from it (on a
+/// large graph the report holds a row per node: building it twice cost as much memory again).
+pub fn render_html(a: &Analysis, r: &AnalyzeReport, out: &mut dyn Write) -> std::io::Result<()> {
     let s = &r.summary;
     let parts = &r.partitions;
     let lane_w = 1000.0f64;

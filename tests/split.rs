@@ -242,32 +242,37 @@ fn conformance_models_split_and_verify() {
     }
 }
 
-#[test]
-fn external_data_pieces_stay_inside_the_output_folder() {
+/// A MatMul on an n×n float weight stored outside the model, at `location` (relative to the
+/// model's folder `src`), then a Relu: the model file, and the weight bytes written.
+fn model_with_external_weights(src: &Path, name: &str, location: &str, n: i64) -> (PathBuf, Vec<u8>) {
     use tilecut::ir::DType;
     use tilecut::onnx::builder::{raw_tensor, ModelBuilder};
     use tilecut::onnx::StringStringEntryProto;
-    let d = tempfile::tempdir().expect("tmp");
-    let src = d.path().join("src");
-    std::fs::create_dir(&src).expect("mkdir");
-    let w: Vec<u8> = (0..16 * 16)
-        .flat_map(|i| ((i % 7) as f32 * 0.1).to_le_bytes())
-        .collect();
-    std::fs::write(src.join("weights.bin"), &w).expect("write");
-    let mut m = ModelBuilder::new("ext", 17);
-    m.graph.input("x", DType::F32, &[1.into(), 16.into()]);
-    let mut t = raw_tensor("w", DType::F32, &[16, 16], Vec::new());
+    let w: Vec<u8> = (0..n * n).flat_map(|i| ((i % 7) as f32 * 0.1).to_le_bytes()).collect();
+    let file = src.join(location);
+    std::fs::create_dir_all(file.parent().expect("folder")).expect("mkdir");
+    std::fs::write(&file, &w).expect("write");
+    let mut m = ModelBuilder::new(name, 17);
+    m.graph.input("x", DType::F32, &[1.into(), n.into()]);
+    let mut t = raw_tensor("w", DType::F32, &[n, n], Vec::new());
     t.data_location = 1;
     t.external_data = vec![StringStringEntryProto {
         key: "location".into(),
-        value: "weights.bin".into(),
+        value: location.into(),
     }];
     m.graph.initializer(t);
     m.graph.node("MatMul", &["x", "w"], &["h"]);
     m.graph.node("Relu", &["h"], &["y"]);
-    m.graph.output("y", DType::F32, &[1.into(), 16.into()]);
-    let model = src.join("ext.onnx");
+    m.graph.output("y", DType::F32, &[1.into(), n.into()]);
+    let model = src.join(format!("{name}.onnx"));
     std::fs::write(&model, m.encode()).expect("write");
+    (model, w)
+}
+
+#[test]
+fn external_data_pieces_stay_inside_the_output_folder() {
+    let d = tempfile::tempdir().expect("tmp");
+    let (model, _) = model_with_external_weights(&d.path().join("src"), "ext", "weights.bin", 16);
     let out = d.path().join("out");
     let engine = split_and_verify(&model, &out, &["--pin-cpu", "Relu"], false);
     assert_eq!(engine, Some("tract-onnx"));
@@ -376,29 +381,10 @@ fn output_folder_faults_leave_nothing_behind() {
 /// written or removed.
 #[test]
 fn the_output_folder_never_holds_what_the_split_reads() {
-    use tilecut::ir::DType;
-    use tilecut::onnx::builder::{raw_tensor, ModelBuilder};
-    use tilecut::onnx::StringStringEntryProto;
     let d = tempfile::tempdir().expect("tmp");
     let src = d.path().join("src");
-    std::fs::create_dir_all(src.join("data")).expect("mkdir");
-    let w: Vec<u8> = (0..8 * 8).flat_map(|i| (i as f32 * 0.01).to_le_bytes()).collect();
-    std::fs::write(src.join("data/weights.bin"), &w).expect("write");
-    let mut m = ModelBuilder::new("vibration", 17);
-    m.graph.input("x", DType::F32, &[1.into(), 8.into()]);
-    let mut t = raw_tensor("w", DType::F32, &[8, 8], Vec::new());
-    t.data_location = 1;
-    t.external_data = vec![StringStringEntryProto {
-        key: "location".into(),
-        value: "data/weights.bin".into(),
-    }];
-    m.graph.initializer(t);
-    m.graph.node("MatMul", &["x", "w"], &["h"]);
-    m.graph.node("Relu", &["h"], &["y"]);
-    m.graph.output("y", DType::F32, &[1.into(), 8.into()]);
-    let model = src.join("monitor.onnx");
-    let bytes = m.encode();
-    std::fs::write(&model, &bytes).expect("write");
+    let (model, w) = model_with_external_weights(&src, "monitor", "data/weights.bin", 8);
+    let bytes = std::fs::read(&model).expect("read");
     let ms = model.to_str().expect("utf8");
     for (out, holds) in [
         (src.clone(), "monitor.onnx"),

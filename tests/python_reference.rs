@@ -814,6 +814,7 @@ cases = {
   "linear_classifier_binary": ("LinearClassifier", [("x", F, [3, 4])], 2, {"x": x}, dict(coefficients=[0.5] * 4, intercepts=[0.1], classlabels_strings=["ok", "worn"])),
   "svm_classifier": ("SVMClassifier", [("x", F, [3, 4])], 2, {"x": x}, dict(classlabels_ints=[0, 1, 2], coefficients=[1.0] * 6, support_vectors=[0.5] * 12, vectors_per_class=[1, 1, 1], rho=[0.1, 0.2, 0.3], kernel_type="RBF")),
   "svm_classifier_binary": ("SVMClassifier", [("x", F, [3, 4])], 2, {"x": x}, dict(classlabels_ints=[0, 1], coefficients=[1.0] * 2, support_vectors=[0.5] * 8, vectors_per_class=[1, 1], rho=[0.1], kernel_type="RBF")),
+  "svm_regressor": ("SVMRegressor", [("x", F, [3, 4])], 1, {"x": x}, dict(coefficients=[1.0], support_vectors=[0.5] * 4, n_supports=1, rho=[0.1], kernel_type="RBF")),
   "one_hot_encoder": ("OneHotEncoder", [("x", I, [3, 4])], 1, {"x": np.ones((3, 4), np.int64)}, dict(cats_int64s=[1, 2, 3])),
   "feature_vectorizer": ("FeatureVectorizer", [("a", F, [3, 2]), ("b", F, [3, 5])], 1, {"a": np.ones((3, 2), np.float32), "b": np.ones((3, 5), np.float32)}, dict(inputdimensions=[2, 5])),
   "array_feature_extractor": ("ArrayFeatureExtractor", [("x", F, [3, 4]), ("i", I, [2, 2])], 1, {"x": x, "i": np.array([[0, 1], [2, 3]], np.int64)}, {}),
@@ -853,7 +854,7 @@ fn ml_ops_agree_with_the_onnx_reference_evaluator() {
     let dir = tempfile::tempdir().expect("tmp");
     let reference: BTreeMap<String, Vec<(Vec<u64>, String)>> =
         serde_json::from_str(&python(ML_MODELS, &[dir.path().to_str().expect("utf8")])).expect("json");
-    assert_eq!(reference.len(), 16);
+    assert_eq!(reference.len(), 17);
     for (name, expected) in &reference {
         let read = tilecut::read_model(&dir.path().join(format!("{name}.onnx")), &Default::default()).expect("reads");
         assert!(

@@ -60,14 +60,16 @@ fn list_len(ctx: &Ctx, name: &str) -> Option<u64> {
     }
 }
 
-/// The class labels of a classifier: their count and the label type (int64 or string).
-fn class_labels(ctx: &Ctx, ints: &str) -> Result<(u64, DType), String> {
-    if let Some(n) = list_len(ctx, ints) {
+/// The class labels of a classifier: their count and the label type (int64 or string). The
+/// integer list is `classlabels_ints` on linear models and SVMs, `classlabels_int64s` on tree
+/// ensembles.
+fn class_labels(ctx: &Ctx) -> Result<(u64, DType), String> {
+    if let Some(n) = list_len(ctx, "classlabels_ints").or_else(|| list_len(ctx, "classlabels_int64s")) {
         return Ok((n, DType::I64));
     }
     list_len(ctx, "classlabels_strings")
         .map(|n| (n, DType::Str))
-        .ok_or_else(|| format!("neither {ints} nor classlabels_strings is set"))
+        .ok_or_else(|| "no class labels (classlabels_ints, _int64s or _strings)".to_string())
 }
 
 /// Scaler, Normalizer: X's shape, float32 out.
@@ -169,32 +171,16 @@ fn svm_regressor(ctx: &Ctx) -> Inferred {
     Ok(vec![tensor(Some(DType::F32), per_row(&batch(ctx)?, &[Dim::Known(1)]))])
 }
 
-/// A classifier's outputs: the label per example `[N]`, and the scores `[N, E]`, float32.
-fn classifier_outputs(ctx: &Ctx, labels: DType, classes: u64) -> Inferred {
+/// LinearClassifier-1, SVMClassifier-1, TreeEnsembleClassifier-1/3: the label per example
+/// `[N]`, and the scores `[N, E]`, float32: "one score for each class and example", E the
+/// number of labels, also for two classes (the `onnx` package's reference evaluator).
+fn classifier(ctx: &Ctx) -> Inferred {
+    let (classes, labels) = class_labels(ctx)?;
     let b = batch(ctx)?;
     Ok(vec![
         tensor(Some(labels), per_row(&b, &[])),
         tensor(Some(DType::F32), per_row(&b, &[Dim::Known(classes)])),
     ])
-}
-
-/// LinearClassifier-1: "one score for each class and example", E = the number of labels.
-fn linear_classifier(ctx: &Ctx) -> Inferred {
-    let (e, labels) = class_labels(ctx, "classlabels_ints")?;
-    classifier_outputs(ctx, labels, e)
-}
-
-/// SVMClassifier-1: one score column per class label, also for two classes (the `onnx`
-/// package's reference evaluator).
-fn svm_classifier(ctx: &Ctx) -> Inferred {
-    let (e, labels) = class_labels(ctx, "classlabels_ints")?;
-    classifier_outputs(ctx, labels, e)
-}
-
-/// TreeEnsembleClassifier-1/3: scores for every class label.
-fn tree_classifier(ctx: &Ctx) -> Inferred {
-    let (e, labels) = class_labels(ctx, "classlabels_int64s")?;
-    classifier_outputs(ctx, labels, e)
 }
 
 /// TreeEnsembleRegressor-1/3: `[N, n_targets]`, float32.
@@ -232,7 +218,7 @@ fn zip_map(_ctx: &Ctx) -> Inferred {
 
 /// Linear models: one multiply-accumulate per feature, class (or target) and example.
 fn linear_macs(ctx: &Ctx, _outs: &[Fact]) -> MacsOps {
-    let per_example = match class_labels(ctx, "classlabels_ints") {
+    let per_example = match class_labels(ctx) {
         Ok((e, _)) => Some(e),
         Err(_) => u64::try_from(ctx.int("targets", 1)).ok(),
     };
@@ -250,7 +236,7 @@ fn svm_macs(ctx: &Ctx, _outs: &[Fact]) -> MacsOps {
         .map(|v| v.iter().map(|&x| x.max(0) as u64).sum::<u64>())
         .or_else(|| ctx.opt_int("n_supports").map(|x| x.max(0) as u64))
         .filter(|&v| v > 0)
-        .or_else(|| class_labels(ctx, "classlabels_ints").ok().map(|(e, _)| e))
+        .or_else(|| class_labels(ctx).ok().map(|(e, _)| e))
         .unwrap_or(1);
     let macs = examples_times_features(ctx).and_then(|x| x.checked_mul(vectors));
     (macs, Some(0))
@@ -307,11 +293,11 @@ pub static OPS: &[OpDef] = &[
     op!("ArrayFeatureExtractor", array_feature_extractor, CostRule::Free),
     op!("FeatureVectorizer", feature_vectorizer, CostRule::Free),
     op!("LinearRegressor", linear_regressor, CostRule::Custom(linear_macs)),
-    op!("LinearClassifier", linear_classifier, CostRule::Custom(linear_macs)),
+    op!("LinearClassifier", classifier, CostRule::Custom(linear_macs)),
     op!("SVMRegressor", svm_regressor, CostRule::Custom(svm_macs)),
-    op!("SVMClassifier", svm_classifier, CostRule::Custom(svm_macs)),
+    op!("SVMClassifier", classifier, CostRule::Custom(svm_macs)),
     op!("TreeEnsembleRegressor", tree_regressor, CostRule::Custom(tree_ops)),
-    op!("TreeEnsembleClassifier", tree_classifier, CostRule::Custom(tree_ops)),
+    op!("TreeEnsembleClassifier", classifier, CostRule::Custom(tree_ops)),
     op!("TreeEnsemble", tree_ensemble, CostRule::Custom(tree_ops)),
     op!("ZipMap", zip_map, CostRule::Free),
 ];

@@ -34,6 +34,18 @@ pub struct Overrides {
 }
 
 impl Overrides {
+    /// These settings without the sizes assumed for data-dependent dims, if any was given:
+    /// what a split piece declares must hold for every inference, and such a count changes
+    /// from one inference to the next.
+    pub fn without_assumed_sizes(&self) -> Option<Overrides> {
+        if !self.dims.keys().any(|k| crate::ir::is_data_dependent(k)) {
+            return None;
+        }
+        let mut open = self.clone();
+        open.dims.retain(|k, _| !crate::ir::is_data_dependent(k));
+        Some(open)
+    }
+
     /// Parses `NAME=VALUE` (a non-negative integer).
     pub fn add_dim(&mut self, text: &str) -> Result<(), SettingError> {
         let (name, value) = text
@@ -176,8 +188,15 @@ pub fn import(loaded: &LoadedModel, overrides: &Overrides) -> Result<(Model, Vec
             ));
         }
     }
+    // A data-dependent size (`what@node`) is met during inference, which says if it is unused.
+    let assumed_sizes: BTreeMap<String, u64> = overrides
+        .dims
+        .iter()
+        .filter(|(k, _)| crate::ir::is_data_dependent(k))
+        .map(|(k, &v)| (k.clone(), v))
+        .collect();
     for name in overrides.dims.keys() {
-        if !cx.used_dims.contains(name) {
+        if !cx.used_dims.contains(name) && !assumed_sizes.contains_key(name) {
             cx.diags.push(Diagnostic::new(
                 codes::OVERRIDE_UNUSED,
                 format!("--dim {name}: no input declares a dim of that name"),
@@ -220,6 +239,7 @@ pub fn import(loaded: &LoadedModel, overrides: &Overrides) -> Result<(Model, Vec
         graph,
         functions,
         loop_trips: overrides.loop_trips.clone(),
+        assumed_sizes,
     };
     Ok((model, cx.diags))
 }

@@ -89,9 +89,11 @@ pub fn infer(model: &mut Model, diags: &mut Vec<Diagnostic>) -> UnknownReasons {
     }
     let mut unknown_ops: BTreeMap<(String, String), (usize, String)> = BTreeMap::new();
     let mut reasons = UnknownReasons::new();
+    let assumed = crate::ops::AssumedSizes::new(model.assumed_sizes.clone());
     let settings = Settings {
         opsets: &opsets,
         trips: &trips,
+        assumed: &assumed,
         fixable: &fixable,
     };
     infer_graph(
@@ -102,6 +104,12 @@ pub fn infer(model: &mut Model, diags: &mut Vec<Diagnostic>) -> UnknownReasons {
         &mut unknown_ops,
         Some(&mut reasons),
     );
+    for name in assumed.unmet() {
+        diags.push(Diagnostic::new(
+            codes::OVERRIDE_UNUSED,
+            format!("--dim {name}: no node computes a data-dependent size of that name"),
+        ));
+    }
     for ((domain, op), (n, first)) in unknown_ops {
         let q = crate::ir::op_label(&domain, &op);
         diags.push(
@@ -160,6 +168,8 @@ struct Settings<'a> {
     opsets: &'a BTreeMap<String, i64>,
     /// `--loop-trips`, by node name.
     trips: &'a BTreeMap<String, u64>,
+    /// `--dim what@node=N` for data-dependent sizes, and which of them a node met.
+    assumed: &'a crate::ops::AssumedSizes,
     /// Symbols of the main graph's inputs (see `fill_from`).
     fixable: &'a BTreeSet<String>,
 }
@@ -172,7 +182,12 @@ fn infer_graph(
     unknown_ops: &mut BTreeMap<(String, String), (usize, String)>,
     mut reasons: Option<&mut UnknownReasons>,
 ) {
-    let Settings { opsets, trips, fixable } = *settings;
+    let Settings {
+        opsets,
+        trips,
+        assumed,
+        fixable,
+    } = *settings;
     // Captured outer values take their facts from outside.
     for &c in &g.captured.clone() {
         let name = g.values[c.index()].name.clone();
@@ -279,6 +294,7 @@ fn infer_graph(
             opset,
             body_outputs,
             loop_trips: trips.get(&node.name).copied(),
+            assumed,
         };
         let (facts, failure): (Vec<Fact>, Option<String>) = match def {
             Some(d) => match (d.infer)(&ctx) {

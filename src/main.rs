@@ -388,8 +388,15 @@ fn run(cli: Cli) -> anyhow::Result<u8> {
             let mut reads = tilecut::outpath::Reads::default();
             reads.add_model(&args.model.model, &analysis.read.model.graph);
             reads.check_folder("--out", &args.out)?;
+            // The cut is planned with the sizes assumed for data-dependent dims; the pieces
+            // declare those dims open (the same nodes and values: only facts differ).
+            let open = match overrides.without_assumed_sizes() {
+                Some(o) => Some(tilecut::read_model(&args.model.model, &o)?),
+                None => None,
+            };
+            let graph = open.as_ref().map_or(&analysis.read.model.graph, |r| &r.model.graph);
             let loaded = tilecut::onnx::load::load(&args.model.model)?;
-            let (files, manifest) = tilecut::onnx::split::build(&loaded, &analysis.read.model.graph, &plan)?;
+            let (files, manifest) = tilecut::onnx::split::build(&loaded, graph, &plan)?;
             tilecut::onnx::split::write(
                 &args.out,
                 &files,

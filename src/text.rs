@@ -46,12 +46,12 @@ pub fn glob(pattern: &str, text: &str) -> bool {
 }
 
 /// The command-line setting that makes a symbol known: `--dim NAME=N` for a symbolic dim,
-/// `--loop-trips NODE=N` for a Loop's trip count (symbols `trips@NODE`). Data-dependent sizes
-/// (`what@node`) have none; they are named as they are.
+/// `--loop-trips NODE=N` for a Loop's trip count (symbols `trips@NODE`), and `--dim` with an
+/// assumed count for a data-dependent size (`what@node`).
 pub fn fix_hint(symbol: &str) -> String {
     match symbol.split_once('@') {
         Some(("trips", node)) => format!("--loop-trips {node}=N"),
-        Some(_) => format!("(data-dependent: {symbol})"),
+        Some(_) => format!("--dim {symbol}=N (data-dependent: assume a count)"),
         None => format!("--dim {symbol}=N"),
     }
 }

@@ -1574,3 +1574,41 @@ fn ml_ops_without_a_reference_implementation_follow_the_specification() {
         "{zipped:?}"
     );
 }
+
+/// A data-dependent size (here how many boxes NonMaxSuppression keeps: its output is
+/// `[num_selected_indices, 3]`, ONNX operator specification) is named after its node, and the
+/// report says how to assume a count; `--dim NAME=N` then sizes everything after it. The
+/// MatMul on the kept boxes is then 20 × 4 × 8 MACs (MatMul = M·N·K). A name no node computes
+/// is reported unused.
+#[test]
+fn data_dependent_sizes_take_an_assumed_count() {
+    let d = tmp();
+    let p = nms_head(d.path());
+    let ps = p.to_str().expect("utf8");
+    let json = |extra: &[&str]| {
+        let (code, out, err) = run(&[&["inspect", ps, "--format", "json"], extra].concat());
+        assert_eq!(code, 0, "{err}");
+        serde_json::from_str::<serde_json::Value>(&out).expect("json")
+    };
+    let open = json(&[]);
+    assert!(open["model"]["macs"].is_null());
+    assert_eq!(open["model"]["unknown_because"], serde_json::json!([NMS_KEPT]));
+    let (_, table, _) = run(&["inspect", ps]);
+    assert!(table.contains(&format!("--dim {NMS_KEPT}=N")), "{table}");
+    let assumed = format!("{NMS_KEPT}=20");
+    let fixed = json(&["--dim", &assumed]);
+    assert_eq!(fixed["model"]["macs"], 20 * 4 * 8);
+    assert_eq!(fixed["outputs"][0]["shape"], serde_json::json!([20, 8]));
+    assert!(
+        fixed["warnings"].as_array().expect("warnings").is_empty(),
+        "{}",
+        fixed["warnings"]
+    );
+    let typo = json(&["--dim", "selected@nsm=20"]);
+    assert!(typo["model"]["macs"].is_null());
+    assert!(typo["warnings"]
+        .as_array()
+        .expect("warnings")
+        .iter()
+        .any(|w| w["code"] == "override-unused" && w["message"].as_str().is_some_and(|m| m.contains("selected@nsm"))));
+}

@@ -408,6 +408,27 @@ fn the_output_folder_never_holds_what_the_split_reads() {
     assert_eq!(run(&["split", ms, "--out", out.to_str().expect("utf8")]).0, 0);
 }
 
+/// A count assumed for a data-dependent size (`--dim selected@nms=20`) sizes the cut's costs,
+/// but the pieces keep that dim open: how many boxes are kept changes from one inference to
+/// the next, and a piece declaring 20 would be wrong for every other count.
+#[test]
+fn pieces_keep_data_dependent_dims_open() {
+    let d = tempfile::tempdir().expect("tmp");
+    let m = nms_head(d.path());
+    let out = d.path().join("pieces");
+    let assumed = format!("{NMS_KEPT}=20");
+    let args = ["--target", "wide-array", "--pin-accel", "MatMul", "--dim", &assumed];
+    split_and_verify(&m, &out, &args, false).expect("tract verifies it");
+    let read = tilecut::read_model(&out.join("piece_1_accel.onnx"), &Default::default()).expect("reads");
+    let g = &read.model.graph;
+    let kept = g.inputs.iter().copied().find(|&v| g.value(v).name == "kept");
+    let kept = kept.expect("the accelerator piece reads the kept boxes");
+    let dims = g.value(kept).fact.shape.dims().expect("rank").to_vec();
+    assert_eq!(dims.len(), 2);
+    assert!(dims[0].known().is_none(), "the kept count stays open: {dims:?}");
+    assert_eq!(dims[1].known(), Some(4));
+}
+
 /// A sink that fails on its second file, like a disk filling up midway.
 struct FailingSink(usize);
 

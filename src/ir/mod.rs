@@ -412,6 +412,12 @@ pub type Inputs = smallvec::SmallVec<[ValueId; 4]>;
 /// A short list of names, inline up to two (as small as a `Vec`).
 pub type NameList = smallvec::SmallVec<[Name; 2]>;
 
+/// Whether a dim name is one tilecut gives a data-dependent size (`what@node`; a Loop's trip
+/// count `trips@node` is set with `--loop-trips` instead).
+pub fn is_data_dependent(name: &str) -> bool {
+    name.split_once('@').is_some_and(|(what, _)| what != "trips")
+}
+
 /// Domains tilecut treats as the standard one: empty, or its full name.
 pub fn is_default_domain(domain: &str) -> bool {
     domain.is_empty() || domain == "ai.onnx"
@@ -493,6 +499,9 @@ pub struct Model {
     pub functions: Vec<String>,
     /// Trip counts given by the user for Loop nodes, by node name.
     pub loop_trips: BTreeMap<String, u64>,
+    /// Sizes the user assumed for data-dependent dims (`--dim what@node=N`: how many boxes a
+    /// NonMaxSuppression keeps, …), by the name tilecut gives such a dim.
+    pub assumed_sizes: BTreeMap<String, u64>,
 }
 
 impl Model {

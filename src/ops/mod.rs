@@ -50,6 +50,42 @@ pub struct Ctx<'a> {
     pub body_outputs: Vec<Vec<Fact>>,
     /// A Loop's trip count from `--loop-trips`, when its `M` input is not a constant.
     pub loop_trips: Option<u64>,
+    /// Sizes the user assumed for data-dependent dims.
+    pub assumed: &'a AssumedSizes,
+}
+
+/// Sizes the user assumed for data-dependent dims (`--dim what@node=N`), by the name tilecut
+/// gives such a dim, and the names a node has met (the others are reported unused).
+#[derive(Debug, Default)]
+pub struct AssumedSizes {
+    values: std::collections::BTreeMap<String, u64>,
+    met: std::cell::RefCell<std::collections::BTreeSet<String>>,
+}
+
+impl AssumedSizes {
+    pub fn new(values: std::collections::BTreeMap<String, u64>) -> AssumedSizes {
+        AssumedSizes {
+            values,
+            met: Default::default(),
+        }
+    }
+
+    /// The assumed size of the dim named `name`, noting that it was met.
+    pub fn get(&self, name: &str) -> Option<u64> {
+        let v = self.values.get(name).copied()?;
+        self.met.borrow_mut().insert(name.to_string());
+        Some(v)
+    }
+
+    /// Names given that no node computes.
+    pub fn unmet(&self) -> Vec<&str> {
+        let met = self.met.borrow();
+        self.values
+            .keys()
+            .filter(|k| !met.contains(*k))
+            .map(String::as_str)
+            .collect()
+    }
 }
 
 /// An inference outcome for one node: the output facts, or why they are unknown.

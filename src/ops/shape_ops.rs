@@ -980,7 +980,11 @@ fn fold_expand(ctx: &Ctx) -> Option<Vec<ConstValue>> {
 
 /// A size known only at run time, named after the node so the report can point at it.
 pub(super) fn data_dependent(ctx: &Ctx, what: &str) -> Dim {
-    Dim::sym(&format!("{what}@{}", ctx.node.name))
+    let name = format!("{what}@{}", ctx.node.name);
+    match ctx.assumed.get(&name) {
+        Some(v) => Dim::Known(v),
+        None => Dim::sym(&name),
+    }
 }
 
 fn top_k(ctx: &Ctx) -> Inferred {

@@ -190,3 +190,43 @@ pub fn python(script: &str, args: &[&str]) -> String {
     );
     String::from_utf8_lossy(&out.stdout).into_owned()
 }
+
+/// The name tilecut gives the kept-box count of the NonMaxSuppression in `nms_head`.
+pub const NMS_KEPT: &str = "selected@nms";
+
+/// A detector's head after suppression (a parcel-label camera): NonMaxSuppression keeps up to
+/// 20 of 100 boxes, Gather picks the kept boxes by the index column, and a MatMul embeds each
+/// kept box (4 → 8). How many boxes are kept depends on the data.
+pub fn nms_head(dir: &Path) -> PathBuf {
+    let mut gather_ids = node("Gather", &["sel", "col"], &["picked"]);
+    gather_ids.attribute.push(int_attr("axis", 1));
+    let mut gather_boxes = node("Gather", &["b2", "ids"], &["kept"]);
+    gather_boxes.attribute.push(int_attr("axis", 0));
+    let mut nms = node("NonMaxSuppression", &["boxes", "scores", "maxout"], &["sel"]);
+    nms.name = "nms".into();
+    let nodes = vec![
+        nms,
+        gather_ids,
+        node("Squeeze", &["picked", "one"], &["ids"]),
+        node("Squeeze", &["boxes", "zero"], &["b2"]),
+        gather_boxes,
+        node("MatMul", &["kept", "w"], &["feat"]),
+    ];
+    let inits = vec![
+        i64_init("maxout", &[1], &[20]),
+        i64_init("col", &[1], &[2]),
+        i64_init("zero", &[1], &[0]),
+        i64_init("one", &[1], &[1]),
+        f32_init("w", &[4, 8]),
+    ];
+    let m = model(
+        nodes,
+        vec![
+            vi("boxes", 1, &[Dm::N(1), Dm::N(100), Dm::N(4)]),
+            vi("scores", 1, &[Dm::N(1), Dm::N(1), Dm::N(100)]),
+        ],
+        untyped(&["feat"]),
+        inits,
+    );
+    write(dir, "label_head.onnx", &m)
+}

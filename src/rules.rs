@@ -383,8 +383,13 @@ fn static_shape_reasons(g: &Graph, node: &Node, rule: &str) -> Vec<Reason> {
         let data_dependent: Vec<&String> = syms.iter().filter(|s| s.contains('@')).collect();
         let msg = if !data_dependent.is_empty() {
             format!(
-                "shape depends on data at run time ({}); the array needs static shapes",
-                data_dependent.iter().map(|s| s.as_str()).collect::<Vec<_>>().join(", ")
+                "shape depends on data at run time ({}); the array needs static shapes (to judge it padded to a fixed count: {})",
+                data_dependent.iter().map(|s| s.as_str()).collect::<Vec<_>>().join(", "),
+                data_dependent
+                    .iter()
+                    .map(|s| format!("--dim {s}=N"))
+                    .collect::<Vec<_>>()
+                    .join(" ")
             )
         } else {
             format!(

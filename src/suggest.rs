@@ -265,7 +265,7 @@ pub fn suggest_one(g: &Graph, id: NodeId, first: &Reason, target: &Target) -> Op
                     syms.iter().map(|s| crate::text::fix_hint(s)).collect::<Vec<_>>().join(" ")
                 )
             } else if data_dependent {
-                "its shape depends on data at run time: keep it on the CPU, or bound the size (e.g. a fixed top-k) so the shape is static".into()
+                "its shape depends on data at run time: keep it on the CPU, or bound the size (e.g. a fixed top-k) so the shape is static; `--dim what@node=N` (the name the reason gives) shows the figures padded to N".into()
             } else {
                 "fix the input shapes (--input NAME=SHAPE) so that every dim is known".into()
             }

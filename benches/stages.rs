@@ -1,7 +1,8 @@
 //! Per-stage timings of the reader on generated models (`tilecut dev bench-models DIR`).
 //! Run: `cargo bench --bench stages -- DIR`. Prints medians of 5 runs per stage. `load ms`
-//! reads the file as the binary's `inspect` does (mapped for the process's life); `shared`
-//! reads it as library callers do by default (see `onnx::load::MapLife`). Stacks are read
+//! reads the file as the binary's `inspect` does (mapped for the process's life, the main
+//! nodes checked and kept in wire form: `onnx::load::load_for_import`); `shared` decodes it
+//! whole as `split` and other callers of `onnx::load::load` do. Stacks are read
 //! twice: with `--dim batch=1`, and with the batch left symbolic (`… symbolic`), as
 //! `bench/run.sh` reads them with `inspect` and the Python pair.
 
@@ -84,11 +85,12 @@ fn measure(
         t[7].push(s.elapsed().as_secs_f64() * 1e3);
         drop(shared);
         let s = Instant::now();
-        let loaded = tilecut::onnx::load::load_with(path, MapLife::Process).expect("load");
+        let loaded = tilecut::onnx::load::load_for_import(path, MapLife::Process).expect("load");
         t[0].push(s.elapsed().as_secs_f64() * 1e3);
         let s = Instant::now();
         let (mut model, mut diags) = tilecut::import::import(&loaded, overrides).expect("import");
         t[1].push(s.elapsed().as_secs_f64() * 1e3);
+        drop(loaded);
         let s = Instant::now();
         let unknown = tilecut::infer::infer(&mut model, &mut diags);
         t[2].push(s.elapsed().as_secs_f64() * 1e3);

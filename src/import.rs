@@ -12,6 +12,7 @@ use crate::ir::{
     TensorData, Value, ValueId, ValueKind, ValueType,
 };
 use crate::onnx::load::{resolve_external, LoadedModel};
+use crate::onnx::node::WireNode;
 use crate::onnx::{self, ProtoStr, TensorProto};
 
 /// Subgraphs (If/Loop/Scan bodies) nested deeper than this are refused instead of recursed
@@ -254,11 +255,11 @@ pub fn expanded_main_nodes(loaded: &LoadedModel) -> Result<Vec<onnx::NodeProto>,
         .graph
         .as_ref()
         .ok_or_else(|| ReadError::invalid(&loaded.path, "no graph"))?;
-    Ok(expand_functions(&mut cx, &g.node, 0, "")?
+    expand_functions(&mut cx, graph_nodes(g), 0, "")?
         .into_iter()
         .filter(|f| f.from_function.is_some())
-        .map(|f| f.proto.into_owned())
-        .collect())
+        .map(|f| f.proto.into_owned(&loaded.path))
+        .collect()
 }
 
 struct Cx<'a> {
@@ -345,32 +346,173 @@ struct FlatNode<'a> {
     source: usize,
 }
 
-/// A wire-format node, borrowed from the file or owned when a function call rewrote it. Not a
-/// `Cow`: that is as large as a whole `NodeProto` (216 bytes) even when borrowed, and a
-/// 100k-node graph holds one per node.
+/// A wire-format node: borrowed from the file decoded, owned when a function call rewrote it,
+/// or still in wire form (a model read for import only). Not a `Cow`: that is as large as a
+/// whole `NodeProto` (216 bytes) even when borrowed, and a 100k-node graph holds one per node.
 enum NodeRef<'a> {
     Borrowed(&'a onnx::NodeProto),
     Owned(Box<onnx::NodeProto>),
+    Wire(WireNode<'a>),
+}
+
+/// A node's input or output names, whichever form the node is in.
+enum NodeStrings<'s> {
+    Decoded(std::slice::Iter<'s, ProtoStr>),
+    Wire(onnx::node::Strings<'s>),
+}
+
+impl<'s> Iterator for NodeStrings<'s> {
+    type Item = &'s str;
+
+    fn next(&mut self) -> Option<&'s str> {
+        match self {
+            NodeStrings::Decoded(it) => it.next().map(|s| s.as_str()),
+            NodeStrings::Wire(it) => it.next(),
+        }
+    }
 }
 
 impl NodeRef<'_> {
-    fn into_owned(self) -> onnx::NodeProto {
+    fn decoded(&self) -> Option<&onnx::NodeProto> {
         match self {
-            NodeRef::Borrowed(n) => n.clone(),
-            NodeRef::Owned(n) => *n,
+            NodeRef::Borrowed(n) => Some(n),
+            NodeRef::Owned(n) => Some(n),
+            NodeRef::Wire(_) => None,
+        }
+    }
+
+    fn name(&self) -> &str {
+        match self {
+            NodeRef::Wire(w) => w.name(),
+            _ => self.decoded().map_or("", |n| n.name.as_str()),
+        }
+    }
+
+    fn op_type(&self) -> &str {
+        match self {
+            NodeRef::Wire(w) => w.op_type(),
+            _ => self.decoded().map_or("", |n| n.op_type.as_str()),
+        }
+    }
+
+    fn domain(&self) -> &str {
+        match self {
+            NodeRef::Wire(w) => w.domain(),
+            _ => self.decoded().map_or("", |n| n.domain.as_str()),
+        }
+    }
+
+    fn outputs(&self) -> NodeStrings<'_> {
+        match (self, self.decoded()) {
+            (NodeRef::Wire(w), _) => NodeStrings::Wire(w.outputs()),
+            (_, Some(n)) => NodeStrings::Decoded(n.output.iter()),
+            (_, None) => NodeStrings::Decoded([].iter()),
+        }
+    }
+
+    /// The fields the import passes read, in one scan of a node in wire form.
+    fn view(&self) -> NodeView<'_> {
+        match (self, self.decoded()) {
+            (NodeRef::Wire(w), _) => NodeView::Wire(w.view()),
+            (_, Some(n)) => NodeView::Decoded(n),
+            (_, None) => NodeView::Decoded(&EMPTY_NODE),
+        }
+    }
+
+    fn into_owned(self, path: &Path) -> Result<onnx::NodeProto, ReadError> {
+        match self {
+            NodeRef::Borrowed(n) => Ok(n.clone()),
+            NodeRef::Owned(n) => Ok(*n),
+            NodeRef::Wire(w) => w.decode().map_err(|e| wire_error(path, e)),
         }
     }
 }
 
-impl std::ops::Deref for NodeRef<'_> {
-    type Target = onnx::NodeProto;
+static EMPTY_NODE: onnx::NodeProto = onnx::NodeProto {
+    input: Vec::new(),
+    output: Vec::new(),
+    name: ProtoStr::new(),
+    op_type: ProtoStr::new(),
+    domain: ProtoStr::new(),
+    attribute: Vec::new(),
+    rare: None,
+};
 
-    fn deref(&self) -> &onnx::NodeProto {
+/// A node's fields as the import passes read them. A temporary on the stack, one node at a
+/// time: boxing the large variant would allocate per node, which is what it exists to avoid.
+#[allow(clippy::large_enum_variant)]
+enum NodeView<'s> {
+    Decoded(&'s onnx::NodeProto),
+    Wire(onnx::node::WireView<'s>),
+}
+
+impl<'s> NodeView<'s> {
+    fn name(&self) -> &'s str {
         match self {
-            NodeRef::Borrowed(n) => n,
-            NodeRef::Owned(n) => n,
+            NodeView::Decoded(n) => n.name.as_str(),
+            NodeView::Wire(w) => w.name,
         }
     }
+
+    fn op_type(&self) -> &'s str {
+        match self {
+            NodeView::Decoded(n) => n.op_type.as_str(),
+            NodeView::Wire(w) => w.op_type,
+        }
+    }
+
+    fn domain(&self) -> &'s str {
+        match self {
+            NodeView::Decoded(n) => n.domain.as_str(),
+            NodeView::Wire(w) => w.domain,
+        }
+    }
+
+    fn inputs(&self) -> impl Iterator<Item = &'s str> + '_ {
+        let (decoded, wire) = match self {
+            NodeView::Decoded(n) => (&n.input[..], &[][..]),
+            NodeView::Wire(w) => (&[][..], &w.inputs[..]),
+        };
+        decoded.iter().map(|s| s.as_str()).chain(wire.iter().copied())
+    }
+
+    fn outputs(&self) -> impl Iterator<Item = &'s str> + '_ {
+        let (decoded, wire) = match self {
+            NodeView::Decoded(n) => (&n.output[..], &[][..]),
+            NodeView::Wire(w) => (&[][..], &w.outputs[..]),
+        };
+        decoded.iter().map(|s| s.as_str()).chain(wire.iter().copied())
+    }
+
+    fn attribute_count(&self) -> usize {
+        match self {
+            NodeView::Decoded(n) => n.attribute.len(),
+            NodeView::Wire(w) => w.attribute_count(),
+        }
+    }
+
+    /// Calls `f` with each attribute in order; a node in wire form decodes them one at a time.
+    fn try_for_each_attribute(
+        &self,
+        path: &Path,
+        mut f: impl FnMut(&onnx::AttributeProto) -> Result<(), ReadError>,
+    ) -> Result<(), ReadError> {
+        match self {
+            NodeView::Decoded(n) => n.attribute.iter().try_for_each(f),
+            NodeView::Wire(w) => {
+                for a in w.attributes() {
+                    f(&a.map_err(|e| wire_error(path, e))?)?;
+                }
+                Ok(())
+            }
+        }
+    }
+}
+
+/// A node kept in wire form decoded whole when the file was read, so it cannot fail to decode
+/// again; if it did, it is reported as the file's fault.
+fn wire_error(path: &Path, e: prost::DecodeError) -> ReadError {
+    ReadError::invalid(path, format!("a node no longer decodes: {e}"))
 }
 
 /// Free names of a graph: (tensor name, first node reading it).
@@ -383,12 +525,12 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
             g.name
         )));
     }
-    let flat = expand_functions(cx, &g.node, 0, "")?;
+    let flat = expand_functions(cx, graph_nodes(g), 0, "")?;
 
     // Every value is an initializer, an input or a node output (plus a few placeholders):
     // sizing the tables once avoids re-growing (and re-touching) them on large graphs.
-    let outputs_total: usize = flat.iter().map(|n| n.proto.output.len()).sum();
-    let expected = g.initializer.len() + g.sparse_initializer.len() + g.input.len() + outputs_total + 8;
+    // Node outputs are counted by the name pass below, which reserves room for them.
+    let expected = g.initializer.len() + g.sparse_initializer.len() + g.input.len() + flat.len() + 8;
     let mut values: Vec<Value> = Vec::with_capacity(expected);
     // Every tensor name the graph mentions, hashed once; later passes use its index.
     let mut syms = Symbols::with_capacity(expected);
@@ -490,7 +632,11 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
         std::thread::scope(|scope| {
             let worker = std::thread::Builder::new()
                 .stack_size(crate::onnx::graph::WORKER_STACK)
-                .spawn_scoped(scope, || (attr_pass(cx, flat, depth), distinct_names(flat)));
+                .spawn_scoped(scope, || {
+                    let a = attr_pass(cx, flat, depth);
+                    let kept = a.as_ref().is_ok_and(|a| distinct_names(&a.names));
+                    (a, kept)
+                });
             let names = name_pass(path, flat, syms);
             let (attrs, kept) = match worker {
                 Ok(h) => {
@@ -506,6 +652,8 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     };
     // A sequential import meets the name pass's faults first.
     let (outs, ins) = names?;
+    // Room for every node output (the estimate above assumed one per node).
+    values.reserve((outs.items.len() + 8).saturating_sub(values.capacity() - values.len()));
     let attrs = match attrs {
         Some(a) => a?,
         // Small graphs, or no thread could be started.
@@ -514,6 +662,7 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     let AttrPass {
         attrs: mut attrs_of,
         ops: mut ops_of,
+        names: node_names,
         bodies: mut bodies_of,
         reads: body_reads,
     } = attrs;
@@ -572,7 +721,7 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
             Ok(k) => std::mem::take(&mut bodies_of[k].1),
             Err(_) => Vec::new(),
         };
-        let file_name = n.proto.name.as_str();
+        let file_name = node_names[i];
         // One hash per name in the common case: made names are rare, and `insert` answers
         // whether the name was free.
         let fresh = names_kept
@@ -647,7 +796,7 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
         }
         nodes.push(Node {
             name,
-            generated_name: n.proto.name.is_empty(),
+            generated_name: file_name.is_empty(),
             op_type,
             domain,
             inputs: node_inputs.into_boxed_slice(),
@@ -720,11 +869,10 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
 
 /// Whether every node has a name of its own and no two share one: then every name is kept
 /// as it is (the renaming in `import_graph` has nothing to do).
-fn distinct_names(flat: &[FlatNode]) -> bool {
+fn distinct_names(names: &[&str]) -> bool {
     let mut seen: FastSet<TextKey> = FastSet::default();
-    seen.reserve(flat.len());
-    flat.iter()
-        .all(|n| !n.proto.name.is_empty() && seen.insert(TextKey(n.proto.name.as_str())))
+    seen.reserve(names.len());
+    names.iter().all(|&name| !name.is_empty() && seen.insert(TextKey(name)))
 }
 
 /// Graphs with at least this many nodes import their attributes on a second thread.
@@ -736,7 +884,8 @@ fn name_pass<'a>(path: &Path, flat: &'a [FlatNode], syms: &mut Symbols<'a>) -> R
     let mut outs = Csr::with_rows(flat.len());
     let mut ins = Csr::with_rows(flat.len());
     for (i, n) in flat.iter().enumerate() {
-        for o in &n.proto.output {
+        let view = n.proto.view();
+        for o in view.outputs() {
             if o.is_empty() {
                 outs.push(NONE);
                 continue;
@@ -767,7 +916,7 @@ fn name_pass<'a>(path: &Path, flat: &'a [FlatNode], syms: &mut Symbols<'a>) -> R
             outs.push(k);
         }
         outs.end_row();
-        for x in &n.proto.input {
+        for x in view.inputs() {
             ins.push(if x.is_empty() { NONE } else { syms.intern(x) });
         }
         ins.end_row();
@@ -779,8 +928,11 @@ fn name_pass<'a>(path: &Path, flat: &'a [FlatNode], syms: &mut Symbols<'a>) -> R
 /// order), their bodies, and the outer names the bodies read (inputs of the node). The names
 /// are kept apart from the bodies, which move into the nodes, so that the name table can
 /// borrow them.
-struct AttrPass {
+struct AttrPass<'a> {
     attrs: Vec<Box<[Attr]>>,
+    /// Each node's name as the file gives it ("" for none): read here with the attributes,
+    /// in the same scan of a node kept in wire form.
+    names: Vec<&'a str>,
     /// Each node's interned (op type, domain): on a large graph this runs on the worker,
     /// which has time to spare, rather than in the node loop on the critical path.
     ops: Vec<Option<(Name, Name)>>,
@@ -789,8 +941,9 @@ struct AttrPass {
 }
 
 /// Imports the attributes of every node, and the subgraphs among them.
-fn attr_pass(cx: &mut Cx, flat: &[FlatNode], depth: usize) -> Result<AttrPass, ReadError> {
+fn attr_pass<'a>(cx: &mut Cx, flat: &'a [FlatNode], depth: usize) -> Result<AttrPass<'a>, ReadError> {
     let mut out = AttrPass {
+        names: Vec::with_capacity(flat.len()),
         attrs: Vec::with_capacity(flat.len()),
         ops: Vec::with_capacity(flat.len()),
         bodies: Vec::new(),
@@ -799,17 +952,20 @@ fn attr_pass(cx: &mut Cx, flat: &[FlatNode], depth: usize) -> Result<AttrPass, R
     for (i, n) in flat.iter().enumerate() {
         let mut bodies = Vec::new();
         let mut free: FreeNames = Vec::new();
-        let mut attrs = Vec::with_capacity(n.proto.attribute.len());
-        for a in &n.proto.attribute {
+        let view = n.proto.view();
+        let mut attrs = Vec::with_capacity(view.attribute_count());
+        view.try_for_each_attribute(cx.path, |a| {
             let value = attr_value(cx, a, depth, &mut bodies, &mut free)?;
             attrs.push(Attr {
                 name: cx.names.get(&a.name),
                 value,
             });
-        }
+            Ok(())
+        })?;
         out.attrs.push(attrs.into_boxed_slice());
         out.ops
-            .push(Some((cx.names.get(&n.proto.op_type), cx.names.get(&n.proto.domain))));
+            .push(Some((cx.names.get(view.op_type()), cx.names.get(view.domain()))));
+        out.names.push(view.name());
         if !bodies.is_empty() {
             out.bodies.push((i, bodies));
         }
@@ -820,21 +976,26 @@ fn attr_pass(cx: &mut Cx, flat: &[FlatNode], depth: usize) -> Result<AttrPass, R
     Ok(out)
 }
 
-fn display_name(n: &onnx::NodeProto, index: usize) -> String {
-    if n.name.is_empty() {
-        generated_name(n, index)
-    } else {
-        n.name.to_string()
+fn display_name(n: &NodeRef, index: usize) -> String {
+    match n.name() {
+        "" => generated_name(n, index),
+        name => name.to_string(),
     }
 }
 
 /// A name for an unnamed node that does not depend on where it stands in the file: its op
 /// and first output (output names are unique in a valid graph).
-fn generated_name(n: &onnx::NodeProto, index: usize) -> String {
-    match n.output.iter().find(|o| !o.is_empty()) {
-        Some(o) => format!("{}:{}", n.op_type, o),
-        None => format!("{}#{}", n.op_type, index),
+fn generated_name(n: &NodeRef, index: usize) -> String {
+    match n.outputs().find(|o| !o.is_empty()) {
+        Some(o) => format!("{}:{}", n.op_type(), o),
+        None => format!("{}#{}", n.op_type(), index),
     }
+}
+
+/// A graph's nodes in order: those kept in wire form first, then the decoded ones.
+fn graph_nodes(g: &onnx::GraphProto) -> impl Iterator<Item = NodeRef<'_>> {
+    let wire = g.node_run.iter().flat_map(|r| r.nodes()).map(NodeRef::Wire);
+    wire.chain(g.node.iter().map(NodeRef::Borrowed))
 }
 
 /// "No symbol / no node" in the compact tables below.
@@ -1000,24 +1161,34 @@ fn topo_order(cx: &Cx, flat: &[FlatNode], deps: &Csr) -> Result<Vec<usize>, Read
 
 fn expand_functions<'a>(
     cx: &mut Cx,
-    nodes: &'a [onnx::NodeProto],
+    nodes: impl Iterator<Item = NodeRef<'a>>,
     depth: usize,
     stack: &str,
 ) -> Result<Vec<FlatNode<'a>>, ReadError> {
-    let mut out = Vec::with_capacity(nodes.len());
-    for (source, n) in nodes.iter().enumerate() {
+    // Exact for a graph's nodes (`graph_nodes` chains two exact lists).
+    let mut out = Vec::with_capacity(nodes.size_hint().0);
+    for (source, node) in nodes.enumerate() {
         let called = if cx.functions.is_empty() {
             None
         } else {
-            cx.functions.get(&(n.domain.as_str(), n.op_type.as_str())).copied()
+            cx.functions.get(&(node.domain(), node.op_type())).copied()
         };
         let Some(f) = called else {
             out.push(FlatNode {
-                proto: NodeRef::Borrowed(n),
+                proto: node,
                 from_function: None,
                 source,
             });
             continue;
+        };
+        let wire_call;
+        let n = match &node {
+            NodeRef::Wire(w) => {
+                wire_call = w.decode().map_err(|e| wire_error(cx.path, e))?;
+                &wire_call
+            }
+            NodeRef::Borrowed(n) => *n,
+            NodeRef::Owned(n) => &**n,
         };
         if depth >= MAX_FUNCTION_DEPTH {
             return Err(cx.err(format!(
@@ -1026,7 +1197,7 @@ fn expand_functions<'a>(
             )));
         }
         let call = if n.name.is_empty() {
-            generated_name(n, out.len())
+            generated_name(&NodeRef::Borrowed(n), out.len())
         } else {
             n.name.to_string()
         };
@@ -1052,7 +1223,7 @@ fn expand_functions<'a>(
             m.input = inner.input.iter().map(map).collect();
             m.output = inner.output.iter().map(map).collect();
             m.name = if inner.name.is_empty() {
-                format!("{call}/{}", generated_name(inner, 0))
+                format!("{call}/{}", generated_name(&NodeRef::Borrowed(inner), 0))
             } else {
                 format!("{call}/{}", inner.name)
             }
@@ -1076,10 +1247,10 @@ fn expand_functions<'a>(
         let label = crate::ir::op_label(&n.domain, &n.op_type);
         let inner_stack = format!("{stack}{label}>");
         let call_name = Name::from(call.as_str());
-        for flat in expand_functions(cx, &body, depth + 1, &inner_stack)? {
+        for flat in expand_functions(cx, body.iter().map(NodeRef::Borrowed), depth + 1, &inner_stack)? {
             let from = flat.from_function.unwrap_or_else(|| call_name.clone());
             out.push(FlatNode {
-                proto: NodeRef::Owned(Box::new(flat.proto.into_owned())),
+                proto: NodeRef::Owned(Box::new(flat.proto.into_owned(cx.path)?)),
                 from_function: Some(from),
                 source,
             });

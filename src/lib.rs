@@ -55,11 +55,11 @@ pub fn read_model(path: &Path, overrides: &Overrides) -> Result<Analyzed, ReadEr
 /// `read_model`, with the file's map kept as `life` says (`Process` for a process that reads
 /// this one model and ends).
 pub fn read_model_with(path: &Path, overrides: &Overrides, life: onnx::load::MapLife) -> Result<Analyzed, ReadError> {
-    let loaded = onnx::load::load_with(path, life)?;
+    let loaded = onnx::load::load_for_import(path, life)?;
     let (mut model, mut diags) = import::import(&loaded, overrides)?;
-    // The wire-format tree is not needed past import. Freeing it (on a large graph, hundreds
-    // of thousands of small blocks) runs beside inference on another thread; if no thread
-    // can be started, the failed spawn drops it here.
+    // The wire-format tree is not needed past import. Its main nodes stayed in wire form, but
+    // a graph's value_info can still be one decoded entry per tensor: freeing it runs beside
+    // inference on another thread; if no thread can be started, the failed spawn drops it here.
     let _ = std::thread::Builder::new().spawn(move || drop(loaded));
     let unknown = infer::infer(&mut model, &mut diags);
     Ok(Analyzed { model, diags, unknown })

@@ -3,6 +3,8 @@
 
 mod common;
 
+use std::path::{Path, PathBuf};
+
 use bytes::Bytes;
 use common::*;
 use prost::Message;
@@ -1632,4 +1634,68 @@ fn data_dependent_sizes_take_an_assumed_count() {
         .expect("warnings")
         .iter()
         .any(|w| w["code"] == "override-unused" && w["message"].as_str().is_some_and(|m| m.contains("selected@nsm"))));
+}
+
+/// The JSON `inspect` report of a model read as every command reads it (the main node run
+/// kept in wire form and scanned by import) and of the same file decoded whole and imported
+/// (`read_loaded`, as `split` and the survey read it).
+fn reports_both_ways(path: &Path) -> (String, String) {
+    let render = |a: Result<tilecut::Analyzed, tilecut::error::ReadError>| -> String {
+        match a {
+            Ok(a) => {
+                let r = tilecut::report::inspect::build(&a.model, &a.diags, &a.unknown);
+                let mut out = Vec::new();
+                tilecut::report::inspect::render_json(&r, &mut out).expect("renders");
+                String::from_utf8(out).expect("utf8")
+            }
+            Err(e) => format!("error: {e}"),
+        }
+    };
+    let none = tilecut::Overrides::default();
+    let kept = render(tilecut::read_model(path, &none));
+    let whole = match tilecut::onnx::load::load(path) {
+        Ok(loaded) => render(tilecut::read_loaded(&loaded, &none)),
+        Err(e) => format!("error: {e}"),
+    };
+    (kept, whole)
+}
+
+/// Reading a model for import leaves its main graph's nodes in wire form; every figure must
+/// come out as from the full decode. Checked on every committed conformance model (ONNX
+/// project), the sample models, the deployed models when fetched, a model-local function
+/// call, and a generated stack large enough for the node run to be checked on several threads.
+#[test]
+fn nodes_kept_in_wire_form_import_as_decoded_ones() {
+    let d = tmp();
+    let stack = d.path().join("stack.onnx");
+    std::fs::write(&stack, tilecut::benchgen::stack(6000).encode()).expect("write");
+    let mut paths = vec![stack, function_model(d.path())];
+    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
+    for dir in ["tests/onnx-node", "sample-models"] {
+        let mut found: Vec<PathBuf> = std::fs::read_dir(root.join(dir))
+            .expect("dir")
+            .filter_map(|e| e.ok().map(|e| e.path()))
+            .filter(|p| p.extension().is_some_and(|x| x == "onnx"))
+            .collect();
+        found.sort();
+        assert!(!found.is_empty(), "{dir} holds models");
+        paths.extend(found);
+    }
+    let deployed = root.join("target/deployed-models");
+    let mut stack_dirs = vec![deployed];
+    while let Some(dir) = stack_dirs.pop() {
+        let Ok(entries) = std::fs::read_dir(&dir) else { continue };
+        for p in entries.filter_map(|e| e.ok().map(|e| e.path())) {
+            if p.is_dir() {
+                stack_dirs.push(p);
+            } else if p.extension().is_some_and(|x| x == "onnx") {
+                paths.push(p);
+            }
+        }
+    }
+    for p in &paths {
+        let (kept, whole) = reports_both_ways(p);
+        assert_eq!(kept, whole, "{}", p.display());
+    }
+    eprintln!("{} models read both ways, same reports", paths.len());
 }

@@ -487,43 +487,6 @@ fn verify_detects_a_mismatch_and_bad_folders() {
     );
 }
 
-/// A model whose main graph calls a model-local function `local.fn.ScaleShift` (y = x·s + b:
-/// a Mul then an Add inside the function), followed by a Relu.
-fn function_model(dir: &Path) -> PathBuf {
-    use tilecut::onnx::{FunctionProto, OperatorSetIdProto};
-    let mut m = model(
-        vec![
-            {
-                let mut n = node("ScaleShift", &["x", "s", "b"], &["y"]);
-                n.name = "ss".into();
-                n.domain = "local.fn".into();
-                n
-            },
-            node("Relu", &["y"], &["z"]),
-        ],
-        vec![vi("x", 1, &[Dm::N(1), Dm::N(8)])],
-        vec![vi("z", 1, &[Dm::N(1), Dm::N(8)])],
-        vec![f32_init("s", &[8]), f32_init("b", &[8])],
-    );
-    m.opset_import.push(OperatorSetIdProto {
-        domain: "local.fn".into(),
-        version: 1,
-    });
-    m.functions.push(FunctionProto {
-        name: "ScaleShift".into(),
-        domain: "local.fn".into(),
-        input: vec!["x".into(), "s".into(), "b".into()],
-        output: vec!["y".into()],
-        node: vec![node("Mul", &["x", "s"], &["t"]), node("Add", &["t", "b"], &["y"])],
-        opset_import: vec![OperatorSetIdProto {
-            domain: String::new(),
-            version: 17,
-        }],
-        ..Default::default()
-    });
-    write(dir, "scale_shift.onnx", &m)
-}
-
 #[test]
 fn a_cut_inside_a_function_call_writes_its_body_inline() {
     let have_python = python_onnx("a_cut_inside_a_function_call_writes_its_body_inline");

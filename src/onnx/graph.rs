@@ -20,6 +20,7 @@ use bytes::{Buf, BufMut};
 use prost::encoding::{self, DecodeContext, WireType};
 use prost::DecodeError;
 
+use super::node::{NodeCheck, NodeRun};
 use super::text::{encode_string, string_len};
 use super::{NodeProto, SparseTensorProto, StringStringEntryProto, TensorProto, ValueInfoProto};
 
@@ -40,6 +41,10 @@ mod field {
 /// skipped like any unknown field).
 #[derive(Clone, PartialEq, Default, Debug)]
 pub struct GraphProto {
+    /// The graph's first node run left in wire form, in a model read for import only
+    /// (`decode_model_for_import`); its nodes come before those in `node`. `None` in any
+    /// other decode: code that edits or writes graphs never meets one.
+    pub node_run: Option<NodeRun>,
     pub node: Vec<NodeProto>,
     pub name: String,
     pub initializer: Vec<TensorProto>,
@@ -62,6 +67,10 @@ thread_local! {
     /// Whether each piece of a split run gets an owner of its own (see `decode_run_split`):
     /// false for static bytes, whose slices take no reference count at all.
     static PIECE_OWNERS: std::cell::Cell<bool> = const { std::cell::Cell::new(true) };
+    /// Whether the current decode may still keep a node run in wire form (`node_run`): once
+    /// per `decode_model_for_import`, for the first run met, which is the main graph's in any
+    /// file written in field order.
+    static KEEP_RUN: std::cell::Cell<bool> = const { std::cell::Cell::new(false) };
 }
 
 /// Below this many nodes a run decodes on the calling thread: starting a thread costs about as
@@ -81,13 +90,26 @@ pub fn decode_model(bytes: bytes::Bytes) -> Result<super::ModelProto, DecodeErro
 /// `decode_model`, told whether `bytes` are static (a map kept for the process's life): the
 /// pieces decoded on other threads then share them as they are.
 pub fn decode_model_with(bytes: bytes::Bytes, is_static: bool) -> Result<super::ModelProto, DecodeError> {
+    decode_model_as(bytes, is_static, false)
+}
+
+/// `decode_model_with` for a reader that only imports the model: the main graph's node run is
+/// checked node by node exactly as a full decode would (same faults, same messages) but kept
+/// in wire form (`GraphProto::node_run`), each node checked field by field (`NodeCheck`).
+pub fn decode_model_for_import(bytes: bytes::Bytes, is_static: bool) -> Result<super::ModelProto, DecodeError> {
+    decode_model_as(bytes, is_static, true)
+}
+
+fn decode_model_as(bytes: bytes::Bytes, is_static: bool, keep_run: bool) -> Result<super::ModelProto, DecodeError> {
     HINT_BUDGET.with(|b| b.set(bytes.len() / 2));
     SPLIT_ALLOWED.with(|s| s.set(true));
     PIECE_OWNERS.with(|p| p.set(!is_static));
+    KEEP_RUN.with(|k| k.set(keep_run));
     let out = <super::ModelProto as prost::Message>::decode(bytes);
     HINT_BUDGET.with(|b| b.set(0));
     SPLIT_ALLOWED.with(|s| s.set(false));
     PIECE_OWNERS.with(|p| p.set(true));
+    KEEP_RUN.with(|k| k.set(false));
     out
 }
 
@@ -145,10 +167,45 @@ fn run_cuts(run: &[u8], count: usize, pieces: usize) -> Vec<(usize, usize)> {
 
 /// Decodes the `slots.len()` nodes of `piece` (length-prefixed nodes joined by node keys) into
 /// their slots, each exactly as the sequential decode would.
-fn decode_piece(slots: &mut [NodeProto], mut piece: bytes::Bytes, ctx: DecodeContext) -> Result<(), DecodeError> {
+fn decode_piece(
+    slots: &mut [NodeProto],
+    mut piece: bytes::Bytes,
+    _at: usize,
+    ctx: DecodeContext,
+) -> Result<(), DecodeError> {
     let n = slots.len();
     for (i, slot) in slots.iter_mut().enumerate() {
         encoding::message::merge(WireType::LengthDelimited, slot, &mut piece, ctx.clone())?;
+        if i + 1 < n && encoding::decode_varint(&mut piece)? != NODE_KEY {
+            return Err(DecodeError::new("node run changed while decoding"));
+        }
+    }
+    Ok(())
+}
+
+/// `decode_piece` for a run kept in wire form: each node is checked as its decode would check
+/// it (`NodeCheck`), and its slot gets the node's span (offset in the run, length). `at` is
+/// the piece's offset in the run.
+fn check_piece(
+    slots: &mut [(u32, u32)],
+    mut piece: bytes::Bytes,
+    at: usize,
+    ctx: DecodeContext,
+) -> Result<(), DecodeError> {
+    let n = slots.len();
+    let total = piece.len();
+    for (i, slot) in slots.iter_mut().enumerate() {
+        let mut peek: &[u8] = &piece;
+        let len = encoding::decode_varint(&mut peek)?;
+        let start = at + (total - peek.len());
+        encoding::message::merge(WireType::LengthDelimited, &mut NodeCheck, &mut piece, ctx.clone())?;
+        // The run fits in u32 offsets (checked before a run is kept), and merge consumed
+        // exactly `len` bytes of payload.
+        let span = (u32::try_from(start), u32::try_from(len));
+        let (Ok(start), Ok(len)) = span else {
+            return Err(DecodeError::new("node run too long to keep"));
+        };
+        *slot = (start, len);
         if i + 1 < n && encoding::decode_varint(&mut piece)? != NODE_KEY {
             return Err(DecodeError::new("node run changed while decoding"));
         }
@@ -160,8 +217,12 @@ fn decode_piece(slots: &mut [NodeProto], mut piece: bytes::Bytes, ctx: DecodeCon
 #[cfg(test)]
 static SPLIT_RUNS: std::sync::atomic::AtomicUsize = std::sync::atomic::AtomicUsize::new(0);
 
-/// Slots of the node list and the bytes of the nodes that go in them.
-type Piece<'a> = (&'a mut [NodeProto], bytes::Bytes);
+/// Slots of the node list and the bytes of the nodes that go in them, with the offset of those
+/// bytes in the run.
+type Piece<'a, T> = (&'a mut [T], bytes::Bytes, usize);
+
+/// What decodes one piece into its slots (`decode_piece`, `check_piece`).
+type PieceFn<T> = fn(&mut [T], bytes::Bytes, usize, DecodeContext) -> Result<(), DecodeError>;
 
 /// Decodes the run of `count` nodes whose `len` bytes start `buf` on up to `threads` threads,
 /// appending them to `nodes`. Falls back to one thread where no other can be started.
@@ -176,10 +237,42 @@ fn decode_run_split(
     #[cfg(test)]
     SPLIT_RUNS.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
     let run = buf.copy_to_bytes(len);
-    let cuts = run_cuts(&run, count, threads);
     let start = nodes.len();
     nodes.resize_with(start + count, NodeProto::default);
-    let mut slots: &mut [NodeProto] = &mut nodes[start..];
+    decode_pieces(&mut nodes[start..], &run, threads, ctx, decode_piece)
+}
+
+/// Checks the run of `count` nodes whose `len` bytes start `buf` on up to `threads` threads,
+/// and keeps it in wire form.
+fn keep_run(
+    buf: &mut impl Buf,
+    count: usize,
+    len: usize,
+    threads: usize,
+    ctx: DecodeContext,
+) -> Result<NodeRun, DecodeError> {
+    #[cfg(test)]
+    if threads > 1 {
+        SPLIT_RUNS.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+    }
+    let run = buf.copy_to_bytes(len);
+    let mut spans = vec![(0u32, 0u32); count];
+    decode_pieces(&mut spans, &run, threads, ctx, check_piece)?;
+    Ok(NodeRun::of_decoded(run, spans))
+}
+
+/// Cuts `run` (`slots.len()` nodes) into up to `threads` pieces of about equal bytes and hands
+/// each piece with its slots to `decode`, one piece per thread.
+fn decode_pieces<T: Send>(
+    slots: &mut [T],
+    run: &bytes::Bytes,
+    threads: usize,
+    ctx: DecodeContext,
+    decode: PieceFn<T>,
+) -> Result<(), DecodeError> {
+    let count = slots.len();
+    let cuts = run_cuts(run, count, threads);
+    let mut slots = slots;
     // Each piece shares the file's bytes through an owner of its own, so that the reference
     // counts the pieces' strings take do not all land on one contended counter.
     let owners = PIECE_OWNERS.with(|p| p.get());
@@ -195,21 +288,21 @@ fn decode_run_split(
         } else {
             run.slice(prev.1..at)
         };
-        pieces.push((head, bytes));
+        pieces.push((head, bytes, prev.1));
         prev = (index, at);
     }
     // A piece whose worker cannot start is decoded here after the first; the cells hand each
     // piece to exactly one thread.
-    let cells: Vec<std::sync::Mutex<Option<Piece>>> =
+    let cells: Vec<std::sync::Mutex<Option<Piece<T>>>> =
         pieces.into_iter().map(|p| std::sync::Mutex::new(Some(p))).collect();
-    fn run_piece(cell: &std::sync::Mutex<Option<Piece>>, ctx: DecodeContext) -> Result<(), DecodeError> {
+    let run_piece = |cell: &std::sync::Mutex<Option<Piece<T>>>, ctx: DecodeContext| -> Result<(), DecodeError> {
         // `take` cannot panic, so a poisoned lock still holds a whole piece or none.
         let piece = cell.lock().unwrap_or_else(|e| e.into_inner()).take();
         match piece {
-            Some((slots, bytes)) => decode_piece(slots, bytes, ctx),
+            Some((slots, bytes, at)) => decode(slots, bytes, at, ctx),
             None => Ok(()),
         }
-    }
+    };
     std::thread::scope(|scope| {
         let workers: Vec<_> = cells
             .iter()
@@ -244,6 +337,9 @@ fn decode_run_split(
 
 impl prost::Message for GraphProto {
     fn encode_raw(&self, buf: &mut impl BufMut) {
+        if let Some(run) = &self.node_run {
+            run.encode(field::NODE, buf);
+        }
         encoding::message::encode_repeated(field::NODE, &self.node, buf);
         encode_string(field::NAME, &self.name, buf);
         encoding::message::encode_repeated(field::INITIALIZER, &self.initializer, buf);
@@ -264,7 +360,7 @@ impl prost::Message for GraphProto {
     ) -> Result<(), DecodeError> {
         match tag {
             field::NODE => {
-                if self.node.is_empty() && wire_type == WireType::LengthDelimited {
+                if self.node.is_empty() && self.node_run.is_none() && wire_type == WireType::LengthDelimited {
                     let budget = HINT_BUDGET.with(|b| b.get());
                     let (count, len) = if budget == 0 { (0, 0) } else { node_run(buf.chunk()) };
                     let threads = || {
@@ -272,6 +368,13 @@ impl prost::Message for GraphProto {
                             .map_or(1, |n| n.get())
                             .min(SPLIT_MAX_THREADS)
                     };
+                    if count > 0 && u32::try_from(len).is_ok() && KEEP_RUN.with(|k| k.replace(false)) {
+                        HINT_BUDGET.with(|b| b.set(budget.saturating_sub(count)));
+                        let split = count >= SPLIT_MIN_NODES && SPLIT_ALLOWED.with(|s| s.replace(false));
+                        let threads = if split { threads() } else { 1 };
+                        self.node_run = Some(keep_run(buf, count, len, threads, ctx)?);
+                        return Ok(());
+                    }
                     if count >= SPLIT_MIN_NODES && SPLIT_ALLOWED.with(|s| s.replace(false)) && threads() > 1 {
                         // The run lies within the file (`node_run` checked each length), so
                         // its count is within the budget.
@@ -300,7 +403,8 @@ impl prost::Message for GraphProto {
     }
 
     fn encoded_len(&self) -> usize {
-        encoding::message::encoded_len_repeated(field::NODE, &self.node)
+        self.node_run.as_ref().map_or(0, |r| r.encoded_len(field::NODE))
+            + encoding::message::encoded_len_repeated(field::NODE, &self.node)
             + string_len(field::NAME, &self.name)
             + encoding::message::encoded_len_repeated(field::INITIALIZER, &self.initializer)
             + string_len(field::DOC_STRING, &self.doc_string)
@@ -525,6 +629,87 @@ mod tests {
         // A run truncated inside its last node is shorter than measured: not split, an error.
         let cut = Bytes::copy_from_slice(&wire[..wire.len() - 3]);
         assert!(decode_model(cut).is_err());
+    }
+
+    /// A model read for import keeps its main node run in wire form: the same nodes, field for
+    /// field, as the full decode, whether the run is split across threads or not, from shared or
+    /// static bytes; and the graph writes back to the same bytes.
+    #[test]
+    fn a_run_kept_in_wire_form_holds_the_full_decodes_nodes() {
+        for nodes in [7, 3 * SPLIT_MIN_NODES] {
+            let m = large_model(nodes);
+            let wire = Bytes::from(m.encode_to_vec());
+            let leaked: &'static [u8] = Box::leak(wire.to_vec().into_boxed_slice());
+            for (bytes, is_static) in [(wire.clone(), false), (Bytes::from_static(leaked), true)] {
+                let before = split_runs();
+                let d = decode_model_for_import(bytes, is_static).expect("decodes");
+                if nodes > SPLIT_MIN_NODES && std::thread::available_parallelism().map_or(1, |n| n.get()) > 1 {
+                    assert!(split_runs() > before, "the run was not split");
+                }
+                let g = d.graph.as_ref().expect("graph");
+                let run = g.node_run.as_ref().expect("run kept");
+                assert!(g.node.is_empty());
+                let want = &m.graph.as_ref().expect("graph").node;
+                assert_eq!(run.len(), want.len());
+                for (w, n) in run.nodes().zip(want) {
+                    assert_eq!(&w.decode().expect("decodes"), n);
+                    let v = w.view();
+                    assert_eq!((v.name, v.op_type, v.domain), (n.name.as_str(), n.op_type.as_str(), ""));
+                    assert_eq!(
+                        v.inputs.as_slice(),
+                        n.input.iter().map(|s| s.as_str()).collect::<Vec<_>>()
+                    );
+                    assert_eq!(
+                        v.outputs.as_slice(),
+                        n.output.iter().map(|s| s.as_str()).collect::<Vec<_>>()
+                    );
+                    let attrs: Vec<_> = v.attributes().map(|a| a.expect("decodes")).collect();
+                    assert_eq!(attrs, n.attribute);
+                }
+                assert_eq!(d.encode_to_vec(), wire, "written back byte for byte");
+                assert_eq!(d.encoded_len(), wire.len());
+            }
+            // The next decode on this thread is a full one again.
+            assert!(!KEEP_RUN.with(|k| k.get()));
+        }
+    }
+
+    /// Checking a node run instead of decoding it meets the same faults with the same words,
+    /// the first in file order: invalid UTF-8 in a name, a string field written as a varint, an
+    /// attribute whose field has the wrong wire type, a node cut short.
+    #[test]
+    fn a_fault_in_a_kept_run_is_the_full_decodes_error() {
+        let m = large_model(2 * SPLIT_MIN_NODES);
+        let wire = m.encode_to_vec();
+        let find = |needle: &[u8]| wire.windows(needle.len()).position(|w| w == needle).expect("present");
+        let early = find(b"n100\x22") + 1;
+        let late = find(b"n7000\x22") + 1;
+        let mut cases: Vec<Vec<u8>> = Vec::new();
+        for faults in [vec![late], vec![early], vec![early, late]] {
+            let mut bad = wire.clone();
+            for &at in &faults {
+                bad[at] = 0xff;
+            }
+            cases.push(bad);
+        }
+        // Node `n5`'s name key (field 3, length-delimited = 0x1a) turned into a varint key
+        // (0x18): its length byte is then read as the varint.
+        let mut varint = wire.clone();
+        let name = find(b"\x1a\x02n5\x22");
+        varint[name] = 0x18;
+        cases.push(varint);
+        // The `ints` attribute field (8, packed = 0x42) of the first node as a 64-bit field.
+        let mut attr = wire.clone();
+        let ints = find(b"\x42\x02\x00\x03");
+        attr[ints] = 0x41;
+        cases.push(attr);
+        cases.push(wire[..wire.len() - 3].to_vec());
+        for bad in cases {
+            let bad = Bytes::from(bad);
+            let kept = decode_model_for_import(bad.clone(), false).expect_err("faulty");
+            let full = super::super::ModelProto::decode(bad).expect_err("faulty");
+            assert_eq!(kept.to_string(), full.to_string());
+        }
     }
 
     #[test]

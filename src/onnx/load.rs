@@ -38,6 +38,18 @@ pub fn load(path: &Path) -> Result<LoadedModel, ReadError> {
 
 /// `load`, with the map kept as `life` says.
 pub fn load_with(path: &Path, life: MapLife) -> Result<LoadedModel, ReadError> {
+    open(path, life, false)
+}
+
+/// `load_with` for a caller that only imports the model (`import::import`) and then drops it:
+/// the main graph's nodes are checked as `load` checks them but stay in wire form
+/// (`GraphProto::node_run`), so that a large graph is never held decoded. Code that edits or
+/// writes the proto must use `load`.
+pub fn load_for_import(path: &Path, life: MapLife) -> Result<LoadedModel, ReadError> {
+    open(path, life, true)
+}
+
+fn open(path: &Path, life: MapLife, keep_run: bool) -> Result<LoadedModel, ReadError> {
     let io = |source| ReadError::Io {
         path: path.to_path_buf(),
         source,
@@ -70,7 +82,13 @@ pub fn load_with(path: &Path, life: MapLife) -> Result<LoadedModel, ReadError> {
             Bytes::from_static(map)
         }
     };
-    let proto = super::graph::decode_model_with(bytes, life == MapLife::Process).map_err(|e| decode_error(path, e))?;
+    let is_static = life == MapLife::Process;
+    let proto = if keep_run {
+        super::graph::decode_model_for_import(bytes, is_static)
+    } else {
+        super::graph::decode_model_with(bytes, is_static)
+    }
+    .map_err(|e| decode_error(path, e))?;
     if proto.graph.is_none() {
         return Err(ReadError::Decode {
             path: path.to_path_buf(),

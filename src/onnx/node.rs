@@ -6,7 +6,7 @@
 //! slack was half of the decoded tree, and every byte of it is memory the kernel must zero.
 //! Here short repeated fields grow one element at a time. The wire format is the standard's.
 
-use bytes::{Buf, BufMut};
+use bytes::{Buf, BufMut, Bytes};
 use prost::encoding::{self, DecodeContext, WireType};
 use prost::DecodeError;
 
@@ -152,6 +152,276 @@ impl prost::Message for NodeProto {
     }
 }
 
+/// Checks a node's wire form field by field exactly as `NodeProto`'s decode does (the same
+/// decoders, the same faults), keeping nothing: what a node run kept in wire form goes
+/// through. Attributes and metadata entries are decoded and dropped; strings are only
+/// checked, without a list to hold them.
+#[derive(Debug, Default)]
+pub(super) struct NodeCheck;
+
+impl prost::Message for NodeCheck {
+    fn encode_raw(&self, _buf: &mut impl BufMut) {}
+
+    fn merge_field(
+        &mut self,
+        tag: u32,
+        wire_type: WireType,
+        buf: &mut impl Buf,
+        ctx: DecodeContext,
+    ) -> Result<(), DecodeError> {
+        match tag {
+            field::INPUT
+            | field::OUTPUT
+            | field::NAME
+            | field::OP_TYPE
+            | field::DOC_STRING
+            | field::DOMAIN
+            | field::OVERLOAD => ProtoStr::merge(wire_type, buf, ctx).map(drop),
+            field::ATTRIBUTE => encoding::message::merge(wire_type, &mut AttributeProto::default(), buf, ctx),
+            field::METADATA_PROPS => {
+                encoding::message::merge(wire_type, &mut StringStringEntryProto::default(), buf, ctx)
+            }
+            _ => encoding::skip_field(wire_type, tag, buf, ctx),
+        }
+    }
+
+    fn encoded_len(&self) -> usize {
+        0
+    }
+
+    fn clear(&mut self) {}
+}
+
+/// A node left in its wire form: a slice of a node run that decoded without fault when the
+/// model was read (`GraphProto::node_run`). Its fields are found by scanning the slice when
+/// asked, so that a large graph never holds its nodes decoded: on a 100k-node graph the
+/// decoded nodes were about 36 MB of fresh memory, which the kernel must zero, against
+/// 0.8 MB of spans.
+#[derive(Clone, Copy, Debug)]
+pub struct WireNode<'a> {
+    run: &'a Bytes,
+    start: u32,
+    len: u32,
+}
+
+/// The node run of a graph read for import, kept as wire bytes (see `WireNode`).
+#[derive(Clone, PartialEq, Default, Debug)]
+pub struct NodeRun {
+    /// The run's bytes (nodes with the keys between them).
+    bytes: Bytes,
+    /// Each node's payload: offset into `bytes` and length.
+    spans: Vec<(u32, u32)>,
+}
+
+impl NodeRun {
+    /// A run whose every span holds a node that decoded whole as a `NodeProto`: the string
+    /// fields `WireNode` hands out were checked as UTF-8 then.
+    pub(super) fn of_decoded(bytes: Bytes, spans: Vec<(u32, u32)>) -> NodeRun {
+        NodeRun { bytes, spans }
+    }
+
+    /// The run as the standard's wire form: each node as a `node` field of its graph.
+    pub(super) fn encode(&self, tag: u32, buf: &mut impl BufMut) {
+        for n in self.nodes() {
+            encoding::encode_key(tag, WireType::LengthDelimited, buf);
+            encoding::encode_varint(n.len as u64, buf);
+            buf.put_slice(n.wire());
+        }
+    }
+
+    pub(super) fn encoded_len(&self, tag: u32) -> usize {
+        self.spans
+            .iter()
+            .map(|&(_, len)| encoding::key_len(tag) + encoding::encoded_len_varint(len as u64) + len as usize)
+            .sum()
+    }
+
+    pub fn len(&self) -> usize {
+        self.spans.len()
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.spans.is_empty()
+    }
+
+    pub fn nodes(&self) -> impl ExactSizeIterator<Item = WireNode<'_>> + '_ {
+        self.spans.iter().map(move |&(start, len)| WireNode {
+            run: &self.bytes,
+            start,
+            len,
+        })
+    }
+}
+
+impl<'a> WireNode<'a> {
+    fn wire(&self) -> &'a [u8] {
+        let start = self.start as usize;
+        self.run.get(start..start + self.len as usize).unwrap_or_default()
+    }
+
+    fn fields(&self) -> Fields<'a> {
+        Fields {
+            wire: self.wire(),
+            start: self.start as usize,
+            at: 0,
+        }
+    }
+
+    fn strings(&self, tag: u32) -> Strings<'a> {
+        Strings {
+            fields: self.fields(),
+            tag,
+        }
+    }
+
+    /// A singular string field: its last occurrence, as protobuf merges repeats.
+    fn last_string(&self, tag: u32) -> &'a str {
+        self.strings(tag).last().unwrap_or_default()
+    }
+
+    pub fn name(&self) -> &'a str {
+        self.last_string(field::NAME)
+    }
+
+    pub fn op_type(&self) -> &'a str {
+        self.last_string(field::OP_TYPE)
+    }
+
+    pub fn domain(&self) -> &'a str {
+        self.last_string(field::DOMAIN)
+    }
+
+    pub fn outputs(&self) -> Strings<'a> {
+        self.strings(field::OUTPUT)
+    }
+
+    /// Every field import reads, in one scan of the node.
+    pub fn view(&self) -> WireView<'a> {
+        let mut v = WireView {
+            run: self.run,
+            name: "",
+            op_type: "",
+            domain: "",
+            inputs: Default::default(),
+            outputs: Default::default(),
+            attributes: Default::default(),
+        };
+        for (tag, payload, at) in self.fields() {
+            match tag {
+                field::INPUT => v.inputs.push(checked_text(payload)),
+                field::OUTPUT => v.outputs.push(checked_text(payload)),
+                field::NAME => v.name = checked_text(payload),
+                field::OP_TYPE => v.op_type = checked_text(payload),
+                field::DOMAIN => v.domain = checked_text(payload),
+                field::ATTRIBUTE => v.attributes.push((at, payload.len())),
+                _ => {}
+            }
+        }
+        v
+    }
+
+    /// The whole node, decoded.
+    pub fn decode(&self) -> Result<NodeProto, DecodeError> {
+        let start = self.start as usize;
+        <NodeProto as prost::Message>::decode(self.run.slice(start..start + self.len as usize))
+    }
+}
+
+/// The fields of a `WireNode` that import reads, found in one scan.
+pub struct WireView<'a> {
+    run: &'a Bytes,
+    pub name: &'a str,
+    pub op_type: &'a str,
+    pub domain: &'a str,
+    pub inputs: smallvec::SmallVec<[&'a str; 4]>,
+    pub outputs: smallvec::SmallVec<[&'a str; 4]>,
+    /// Each attribute's payload: offset in the run and length.
+    attributes: smallvec::SmallVec<[(usize, usize); 2]>,
+}
+
+impl WireView<'_> {
+    pub fn attribute_count(&self) -> usize {
+        self.attributes.len()
+    }
+
+    /// Each attribute, decoded on its own (payloads stay slices of the file).
+    pub fn attributes(&self) -> impl Iterator<Item = Result<AttributeProto, DecodeError>> + '_ {
+        self.attributes
+            .iter()
+            .map(|&(at, len)| <AttributeProto as prost::Message>::decode(self.run.slice(at..at + len)))
+    }
+}
+
+/// The length-delimited fields of a `WireNode`, in wire order, as (field number, payload,
+/// payload's offset in the run). Fields of other wire types (none in the standard's
+/// `NodeProto`) are skipped.
+struct Fields<'a> {
+    wire: &'a [u8],
+    /// The node's offset in its run.
+    start: usize,
+    /// Where the next field starts in `wire`.
+    at: usize,
+}
+
+impl<'a> Iterator for Fields<'a> {
+    type Item = (u32, &'a [u8], usize);
+
+    fn next(&mut self) -> Option<Self::Item> {
+        let mut buf = self.wire.get(self.at..)?;
+        loop {
+            if buf.is_empty() {
+                return None;
+            }
+            // The node decoded whole when it was kept: these cannot fail, and end the scan
+            // if they did. Keys of the standard's fields and short lengths are one byte.
+            let (tag, wire_type) = match buf.first() {
+                Some(&b) if b < 0x80 && b & 7 == WireType::LengthDelimited as u8 => {
+                    buf = &buf[1..];
+                    (u32::from(b >> 3), WireType::LengthDelimited)
+                }
+                _ => encoding::decode_key(&mut buf).ok()?,
+            };
+            if wire_type != WireType::LengthDelimited {
+                encoding::skip_field(wire_type, tag, &mut buf, DecodeContext::default()).ok()?;
+                continue;
+            }
+            let len = match buf.first() {
+                Some(&b) if b < 0x80 => {
+                    buf = &buf[1..];
+                    usize::from(b)
+                }
+                _ => usize::try_from(encoding::decode_varint(&mut buf).ok()?).ok()?,
+            };
+            let offset = self.wire.len() - buf.len();
+            let payload = buf.get(..len)?;
+            self.at = offset + len;
+            return Some((tag, payload, self.start + offset));
+        }
+    }
+}
+
+/// The strings of one field number of a `WireNode`, in wire order.
+pub struct Strings<'a> {
+    fields: Fields<'a>,
+    tag: u32,
+}
+
+impl<'a> Iterator for Strings<'a> {
+    type Item = &'a str;
+
+    fn next(&mut self) -> Option<&'a str> {
+        let tag = self.tag;
+        self.fields.find(|f| f.0 == tag).map(|f| checked_text(f.1))
+    }
+}
+
+/// The text of a string field of a node kept in wire form.
+fn checked_text(bytes: &[u8]) -> &str {
+    // SAFETY: a `NodeRun` keeps only nodes that decoded whole, and decoding checks every
+    // string field as UTF-8 (`ProtoStr::merge`); the bytes are immutable since.
+    unsafe { std::str::from_utf8_unchecked(bytes) }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -223,6 +493,51 @@ mod tests {
         let plain = NodeProto::decode(Bytes::from(wire[..6].to_vec())).expect("decodes");
         assert_eq!(plain.op_type, "Relu");
         assert!(plain.rare.is_none());
+    }
+
+    /// A node read in wire form answers as its decode does: a singular field written twice
+    /// takes its last value (protobuf's merge rule), unknown fields of any wire type are
+    /// skipped, and a repeated field keeps every element in order.
+    #[test]
+    fn a_node_in_wire_form_reads_as_its_decode() {
+        let mut wire = Vec::new();
+        for (tag, s) in [(3u32, "first"), (1, "x"), (4, "Add"), (1, ""), (3, "second"), (2, "y")] {
+            encoding::encode_key(tag, WireType::LengthDelimited, &mut wire);
+            encoding::encode_varint(s.len() as u64, &mut wire);
+            wire.extend_from_slice(s.as_bytes());
+        }
+        encoding::encode_key(99, WireType::Varint, &mut wire);
+        encoding::encode_varint(300, &mut wire);
+        encoding::encode_key(98, WireType::ThirtyTwoBit, &mut wire);
+        wire.extend_from_slice(&[1, 2, 3, 4]);
+        let attr = AttributeProto {
+            name: "axis".into(),
+            i: -1,
+            r#type: 2,
+            ..Default::default()
+        };
+        encoding::message::encode(5, &attr, &mut wire);
+        encoding::encode_key(7, WireType::LengthDelimited, &mut wire);
+        encoding::encode_varint(3, &mut wire);
+        wire.extend_from_slice(b"dom");
+        let bytes = Bytes::from(wire.clone());
+        let decoded = NodeProto::decode(bytes.clone()).expect("decodes");
+        prost::Message::decode(bytes.clone())
+            .map(|NodeCheck| ())
+            .expect("checks");
+        let run = NodeRun::of_decoded(bytes, vec![(0, wire.len() as u32)]);
+        let w = run.nodes().next().expect("one node");
+        let v = w.view();
+        assert_eq!((v.name, v.op_type, v.domain), ("second", "Add", "dom"));
+        assert_eq!(decoded.name, "second");
+        assert_eq!(v.inputs.as_slice(), ["x", ""]);
+        assert_eq!(v.outputs.as_slice(), ["y"]);
+        assert_eq!(v.attribute_count(), 1);
+        let attrs: Vec<_> = v.attributes().map(|a| a.expect("decodes")).collect();
+        assert_eq!(attrs, [attr]);
+        assert_eq!((w.name(), w.op_type(), w.domain()), ("second", "Add", "dom"));
+        assert_eq!(w.outputs().collect::<Vec<_>>(), ["y"]);
+        assert_eq!(w.decode().expect("decodes"), decoded);
     }
 
     #[test]

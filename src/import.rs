@@ -12,7 +12,7 @@ use crate::ir::{
     TensorData, Value, ValueId, ValueKind, ValueType,
 };
 use crate::onnx::load::{resolve_external, LoadedModel};
-use crate::onnx::node::WireNode;
+use crate::onnx::node::{WireNode, WireView};
 use crate::onnx::{self, ProtoStr, TensorProto};
 
 /// Subgraphs (If/Loop/Scan bodies) nested deeper than this are refused instead of recursed
@@ -411,9 +411,14 @@ impl NodeRef<'_> {
     }
 
     /// The fields the import passes read, in one scan of a node in wire form.
-    fn view(&self) -> NodeView<'_> {
+    /// A node in wire form is read into `buf`, which the pass keeps from node to node.
+    fn view<'v, 's>(&'s self, buf: &'v mut WireView<'s>) -> NodeView<'s, 'v> {
         match (self, self.decoded()) {
-            (NodeRef::Wire(w), _) => NodeView::Wire(w.view()),
+            (NodeRef::Wire(w), _) => {
+                let w: WireNode<'s> = *w;
+                w.view_into(buf);
+                NodeView::Wire(buf)
+            }
             (_, Some(n)) => NodeView::Decoded(n),
             (_, None) => NodeView::Decoded(&EMPTY_NODE),
         }
@@ -438,15 +443,13 @@ static EMPTY_NODE: onnx::NodeProto = onnx::NodeProto {
     rare: None,
 };
 
-/// A node's fields as the import passes read them. A temporary on the stack, one node at a
-/// time: boxing the large variant would allocate per node, which is what it exists to avoid.
-#[allow(clippy::large_enum_variant)]
-enum NodeView<'s> {
+/// A node's fields as the import passes read them.
+enum NodeView<'s, 'v> {
     Decoded(&'s onnx::NodeProto),
-    Wire(onnx::node::WireView<'s>),
+    Wire(&'v WireView<'s>),
 }
 
-impl<'s> NodeView<'s> {
+impl<'s> NodeView<'s, '_> {
     fn name(&self) -> &'s str {
         match self {
             NodeView::Decoded(n) => n.name.as_str(),
@@ -883,8 +886,9 @@ const PARALLEL_MIN_NODES: usize = 4096;
 fn name_pass<'a>(path: &Path, flat: &'a [FlatNode], syms: &mut Symbols<'a>) -> Result<(Csr, Csr), ReadError> {
     let mut outs = Csr::with_rows(flat.len());
     let mut ins = Csr::with_rows(flat.len());
+    let mut buf = WireView::default();
     for (i, n) in flat.iter().enumerate() {
-        let view = n.proto.view();
+        let view = n.proto.view(&mut buf);
         for o in view.outputs() {
             if o.is_empty() {
                 outs.push(NONE);
@@ -949,10 +953,11 @@ fn attr_pass<'a>(cx: &mut Cx, flat: &'a [FlatNode], depth: usize) -> Result<Attr
         bodies: Vec::new(),
         reads: Vec::new(),
     };
+    let mut buf = WireView::default();
     for (i, n) in flat.iter().enumerate() {
         let mut bodies = Vec::new();
         let mut free: FreeNames = Vec::new();
-        let view = n.proto.view();
+        let view = n.proto.view(&mut buf);
         let mut attrs = Vec::with_capacity(view.attribute_count());
         view.try_for_each_attribute(cx.path, |a| {
             let value = attr_value(cx, a, depth, &mut bodies, &mut free)?;

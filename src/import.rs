@@ -8,8 +8,8 @@ use crate::diag::{codes, Diagnostic};
 use crate::error::{ReadError, SettingError};
 use crate::fastmap::{short_text_eq, FastSet, TextKey};
 use crate::ir::{
-    Attr, AttrValue, Body, ConstValue, DType, Dim, Fact, Graph, Model, Name, Node, NodeCost, NodeId, Shape, Storage,
-    TensorData, Value, ValueId, ValueKind, ValueType,
+    Attr, AttrValue, Body, ConstValue, DType, Dim, Fact, Graph, Model, Name, Node, NodeCost, NodeExtra, NodeId, Shape,
+    Storage, TensorData, Value, ValueId, ValueKind, ValueType,
 };
 use crate::onnx::load::{resolve_external, LoadedModel};
 use crate::onnx::node::{WireNode, WireView};
@@ -209,7 +209,7 @@ pub fn import(loaded: &LoadedModel, overrides: &Overrides) -> Result<(Model, Vec
             if n.op_type == "Loop" {
                 out.insert(n.name.clone());
             }
-            for b in &n.bodies {
+            for b in n.bodies() {
                 loop_names(&b.graph, out);
             }
         }
@@ -805,10 +805,18 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
             inputs: node_inputs.into_boxed_slice(),
             outputs: node_outputs.into_boxed_slice(),
             attrs,
-            bodies: bodies.into_boxed_slice(),
-            captures: caps.into_boxed_slice(),
-            from_function: n.from_function.clone(),
-            source_index: n.source,
+            extra: if bodies.is_empty() && caps.is_empty() && n.from_function.is_none() {
+                None
+            } else {
+                Some(Box::new(NodeExtra {
+                    bodies: bodies.into_boxed_slice(),
+                    captures: caps.into_boxed_slice(),
+                    from_function: n.from_function.clone(),
+                }))
+            },
+            // A file's node list cannot reach 2^32 entries (a node takes at least two bytes
+            // and a protobuf file at most 2 GiB).
+            source_index: n.source as u32,
             cost: NodeCost::default(),
             folded: false,
         });
@@ -998,9 +1006,14 @@ fn generated_name(n: &NodeRef, index: usize) -> String {
 }
 
 /// A graph's nodes in order: those kept in wire form first, then the decoded ones.
+/// Its size hint is exact, so that the flat node list is sized once: grown by doubling, a
+/// 100k-node list touched about 10 MB more fresh memory.
 fn graph_nodes(g: &onnx::GraphProto) -> impl Iterator<Item = NodeRef<'_>> {
-    let wire = g.node_run.iter().flat_map(|r| r.nodes()).map(NodeRef::Wire);
-    wire.chain(g.node.iter().map(NodeRef::Borrowed))
+    static NO_RUN: onnx::node::NodeRun = onnx::node::NodeRun::empty();
+    let run = g.node_run.as_ref().unwrap_or(&NO_RUN);
+    run.nodes()
+        .map(NodeRef::Wire)
+        .chain(g.node.iter().map(NodeRef::Borrowed))
 }
 
 /// "No symbol / no node" in the compact tables below.

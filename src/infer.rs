@@ -235,7 +235,7 @@ fn infer_graph(
         // Bodies first, with this graph's facts visible to them.
         let mut body_outputs = Vec::new();
         let mut body_costs = Vec::new();
-        if !node.bodies.is_empty() {
+        if !node.bodies().is_empty() {
             // The bodies see what the node reads (its inputs and captures, which cover nested
             // bodies too), not the whole graph: a large graph with many If/Loop nodes would
             // otherwise copy every fact once per node.
@@ -256,7 +256,11 @@ fn infer_graph(
             // it can never happen.
             let condition = node.inputs.first().copied().flatten();
             let taken = ops::taken_branch(node, condition.and_then(|c| g.values[c.index()].konst.as_deref()));
-            let mut bodies = std::mem::take(&mut g.nodes[ni].bodies);
+            let mut bodies = g.nodes[ni]
+                .extra
+                .as_mut()
+                .map(|e| std::mem::take(&mut e.bodies))
+                .unwrap_or_default();
             for (bi, b) in bodies.iter_mut().enumerate() {
                 seed_body_inputs(&mut b.graph, &op, &input_facts, scan.as_ref());
                 let mut unseen = Vec::new();
@@ -275,7 +279,9 @@ fn infer_graph(
                 );
                 body_costs.push(graph_cost(&b.graph));
             }
-            g.nodes[ni].bodies = bodies;
+            if let Some(e) = g.nodes[ni].extra.as_mut() {
+                e.bodies = bodies;
+            }
         }
 
         let node = &g.nodes[ni];

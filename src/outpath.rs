@@ -103,7 +103,7 @@ fn external_files(g: &Graph, out: &mut Vec<PathBuf>) {
                 _ => {}
             }
         }
-        for b in n.bodies.iter() {
+        for b in n.bodies().iter() {
             external_files(&b.graph, out);
         }
     }

@@ -243,7 +243,7 @@ pub fn judge_node(
         quantized_as: None,
         rate_type,
     };
-    if !node.bodies.is_empty() {
+    if !node.bodies().is_empty() {
         return cpu(
             vec![Reason {
                 code: reason::CONTROL_FLOW,

@@ -196,7 +196,7 @@ fn refuse_random(model: &Path, g: &Graph) -> Result<(), VerifyError> {
             if crate::ops::is_random(&n.op_type) {
                 Some(format!("{} ({})", n.name, n.op_type))
             } else {
-                n.bodies.iter().find_map(|b| find(&b.graph))
+                n.bodies().iter().find_map(|b| find(&b.graph))
             }
         })
     }

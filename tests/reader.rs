@@ -1344,9 +1344,9 @@ fn large_graphs_import_attributes_and_bodies_as_small_ones_do() {
             );
         }
         let f = g.nodes.iter().find(|x| x.op_type == "If").expect("If");
-        assert_eq!(f.bodies.len(), 2);
+        assert_eq!(f.bodies().len(), 2);
         let t0 = g.values.iter().position(|v| v.name == "t0").expect("t0");
-        assert_eq!(f.captures.iter().map(|c| c.index()).collect::<Vec<_>>(), [t0]);
+        assert_eq!(f.captures().iter().map(|c| c.index()).collect::<Vec<_>>(), [t0]);
         assert!(g.values[t0]
             .consumers
             .iter()

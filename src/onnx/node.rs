@@ -214,6 +214,14 @@ pub struct NodeRun {
 }
 
 impl NodeRun {
+    /// No nodes: what a graph without a run reads as.
+    pub const fn empty() -> NodeRun {
+        NodeRun {
+            bytes: Bytes::new(),
+            spans: Vec::new(),
+        }
+    }
+
     /// A run whose every span holds a node that decoded whole as a `NodeProto`: the string
     /// fields `WireNode` hands out were checked as UTF-8 then.
     pub(super) fn of_decoded(bytes: Bytes, spans: Vec<(u32, u32)>) -> NodeRun {

@@ -194,8 +194,8 @@ pub fn build(loaded: &LoadedModel, g: &Graph, plan: &Plan) -> Result<(Vec<OutFil
     // whole: its body is written inline instead (the expanded nodes, as the IR names them).
     let mut call_parts: BTreeMap<usize, BTreeSet<usize>> = BTreeMap::new();
     for (i, n) in g.nodes.iter().enumerate() {
-        if let (Some(_), Some(p)) = (&n.from_function, plan.partition_of[i]) {
-            call_parts.entry(n.source_index).or_default().insert(p);
+        if let (Some(_), Some(p)) = (n.from_function(), plan.partition_of[i]) {
+            call_parts.entry(n.source_index as usize).or_default().insert(p);
         }
     }
     let inlined_calls: BTreeSet<usize> = call_parts
@@ -264,8 +264,8 @@ pub fn build(loaded: &LoadedModel, g: &Graph, plan: &Plan) -> Result<(Vec<OutFil
         let mut inlined_here = false;
         for n in &nodes {
             let node = g.node(*n);
-            let src = node.source_index;
-            if node.from_function.is_some() && inlined_calls.contains(&src) {
+            let src = node.source_index as usize;
+            if node.from_function().is_some() && inlined_calls.contains(&src) {
                 let first = node
                     .outputs
                     .iter()
@@ -277,7 +277,7 @@ pub fn build(loaded: &LoadedModel, g: &Graph, plan: &Plan) -> Result<(Vec<OutFil
                     SplitError(format!(
                         "node `{}` of function call `{}` has no output to export it by",
                         node.name,
-                        node.from_function.clone().unwrap_or_default()
+                        node.from_function().cloned().unwrap_or_default()
                     ))
                 })?;
                 proto_nodes.push(pn.clone());

@@ -41,7 +41,7 @@ pub fn taken_branch(node: &Node, condition: Option<&ConstValue>) -> Option<usize
     let taken = *condition?.as_ints().first()? != 0;
     let want = if taken { "then_branch" } else { "else_branch" };
     Some(
-        node.bodies
+        node.bodies()
             .iter()
             .position(|b| b.attr == want)
             .unwrap_or(usize::from(!taken)),

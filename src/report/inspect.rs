@@ -279,7 +279,7 @@ fn weights(g: &Graph, acc: &mut (u64, u64)) {
         acc.1 = acc.1.saturating_add(b);
     }
     for n in &g.nodes {
-        for b in &n.bodies {
+        for b in n.bodies() {
             weights(&b.graph, acc);
         }
     }
@@ -288,7 +288,7 @@ fn weights(g: &Graph, acc: &mut (u64, u64)) {
 fn count_body_nodes(g: &Graph) -> usize {
     g.nodes
         .iter()
-        .flat_map(|n| n.bodies.iter())
+        .flat_map(|n| n.bodies().iter())
         .map(|b| b.graph.nodes.len() + count_body_nodes(&b.graph))
         .sum()
 }

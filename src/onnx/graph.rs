@@ -567,6 +567,24 @@ mod tests {
         }
     }
 
+    /// A large model's wire form with node names `n100` and `n7000` (in the first and second
+    /// halves) made invalid UTF-8: the later alone, the earlier alone, both.
+    fn name_faults(wire: &[u8]) -> Vec<Vec<u8>> {
+        let find = |needle: &[u8]| wire.windows(needle.len()).position(|w| w == needle).expect("present");
+        let early = find(b"n100\x22") + 1;
+        let late = find(b"n7000\x22") + 1;
+        [vec![late], vec![early], vec![early, late]]
+            .into_iter()
+            .map(|faults| {
+                let mut bad = wire.to_vec();
+                for at in faults {
+                    bad[at] = 0xff;
+                }
+                bad
+            })
+            .collect()
+    }
+
     fn split_runs() -> usize {
         SPLIT_RUNS.load(std::sync::atomic::Ordering::Relaxed)
     }
@@ -612,19 +630,11 @@ mod tests {
     fn a_fault_in_a_split_run_is_the_sequential_error() {
         let m = large_model(2 * SPLIT_MIN_NODES);
         let wire = m.encode_to_vec();
-        let find = |needle: &[u8]| wire.windows(needle.len()).position(|w| w == needle).expect("present");
-        // Node names `n100` and `n7000` (in the first and second halves), made invalid UTF-8.
-        let early = find(b"n100\x22") + 1;
-        let late = find(b"n7000\x22") + 1;
-        for faults in [vec![late], vec![early], vec![early, late]] {
-            let mut bad = wire.clone();
-            for &at in &faults {
-                bad[at] = 0xff;
-            }
+        for bad in name_faults(&wire) {
             let bad = Bytes::from(bad);
             let split = decode_model(bad.clone()).expect_err("invalid UTF-8");
             let sequential = super::super::ModelProto::decode(bad).expect_err("invalid UTF-8");
-            assert_eq!(split.to_string(), sequential.to_string(), "faults at {faults:?}");
+            assert_eq!(split.to_string(), sequential.to_string());
         }
         // A run truncated inside its last node is shorter than measured: not split, an error.
         let cut = Bytes::copy_from_slice(&wire[..wire.len() - 3]);
@@ -682,16 +692,7 @@ mod tests {
         let m = large_model(2 * SPLIT_MIN_NODES);
         let wire = m.encode_to_vec();
         let find = |needle: &[u8]| wire.windows(needle.len()).position(|w| w == needle).expect("present");
-        let early = find(b"n100\x22") + 1;
-        let late = find(b"n7000\x22") + 1;
-        let mut cases: Vec<Vec<u8>> = Vec::new();
-        for faults in [vec![late], vec![early], vec![early, late]] {
-            let mut bad = wire.clone();
-            for &at in &faults {
-                bad[at] = 0xff;
-            }
-            cases.push(bad);
-        }
+        let mut cases = name_faults(&wire);
         // Node `n5`'s name key (field 3, length-delimited = 0x1a) turned into a varint key
         // (0x18): its length byte is then read as the varint.
         let mut varint = wire.clone();

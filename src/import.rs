@@ -382,45 +382,44 @@ impl NodeRef<'_> {
     }
 
     fn name(&self) -> &str {
-        match self {
-            NodeRef::Wire(w) => w.name(),
-            _ => self.decoded().map_or("", |n| n.name.as_str()),
+        match (self, self.decoded()) {
+            (NodeRef::Wire(w), _) => w.name(),
+            (_, n) => n.map_or("", |n| n.name.as_str()),
         }
     }
 
     fn op_type(&self) -> &str {
-        match self {
-            NodeRef::Wire(w) => w.op_type(),
-            _ => self.decoded().map_or("", |n| n.op_type.as_str()),
+        match (self, self.decoded()) {
+            (NodeRef::Wire(w), _) => w.op_type(),
+            (_, n) => n.map_or("", |n| n.op_type.as_str()),
         }
     }
 
     fn domain(&self) -> &str {
-        match self {
-            NodeRef::Wire(w) => w.domain(),
-            _ => self.decoded().map_or("", |n| n.domain.as_str()),
+        match (self, self.decoded()) {
+            (NodeRef::Wire(w), _) => w.domain(),
+            (_, n) => n.map_or("", |n| n.domain.as_str()),
         }
     }
 
     fn outputs(&self) -> NodeStrings<'_> {
         match (self, self.decoded()) {
             (NodeRef::Wire(w), _) => NodeStrings::Wire(w.outputs()),
-            (_, Some(n)) => NodeStrings::Decoded(n.output.iter()),
-            (_, None) => NodeStrings::Decoded([].iter()),
+            (_, n) => NodeStrings::Decoded(n.map_or(&[][..], |n| &n.output).iter()),
         }
     }
 
-    /// The fields the import passes read, in one scan of a node in wire form.
-    /// A node in wire form is read into `buf`, which the pass keeps from node to node.
+    /// The fields the import passes read. A node in wire form is scanned once, into `buf`,
+    /// which the pass keeps from node to node.
     fn view<'v, 's>(&'s self, buf: &'v mut WireView<'s>) -> NodeView<'s, 'v> {
-        match (self, self.decoded()) {
-            (NodeRef::Wire(w), _) => {
+        match self {
+            NodeRef::Wire(w) => {
                 let w: WireNode<'s> = *w;
                 w.view_into(buf);
                 NodeView::Wire(buf)
             }
-            (_, Some(n)) => NodeView::Decoded(n),
-            (_, None) => NodeView::Decoded(&EMPTY_NODE),
+            NodeRef::Borrowed(n) => NodeView::Decoded(n),
+            NodeRef::Owned(n) => NodeView::Decoded(n),
         }
     }
 
@@ -432,16 +431,6 @@ impl NodeRef<'_> {
         }
     }
 }
-
-static EMPTY_NODE: onnx::NodeProto = onnx::NodeProto {
-    input: Vec::new(),
-    output: Vec::new(),
-    name: ProtoStr::new(),
-    op_type: ProtoStr::new(),
-    domain: ProtoStr::new(),
-    attribute: Vec::new(),
-    rare: None,
-};
 
 /// A node's fields as the import passes read them.
 enum NodeView<'s, 'v> {

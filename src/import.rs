@@ -372,54 +372,58 @@ impl<'s> Iterator for NodeStrings<'s> {
     }
 }
 
+/// The two forms a `NodeRef` reads in: decoded (borrowed or owned alike), or wire.
+enum Form<'s> {
+    Decoded(&'s onnx::NodeProto),
+    Wire(WireNode<'s>),
+}
+
 impl NodeRef<'_> {
-    fn decoded(&self) -> Option<&onnx::NodeProto> {
+    fn form(&self) -> Form<'_> {
         match self {
-            NodeRef::Borrowed(n) => Some(n),
-            NodeRef::Owned(n) => Some(n),
-            NodeRef::Wire(_) => None,
+            NodeRef::Borrowed(n) => Form::Decoded(n),
+            NodeRef::Owned(n) => Form::Decoded(n),
+            NodeRef::Wire(w) => Form::Wire(*w),
         }
     }
 
     fn name(&self) -> &str {
-        match (self, self.decoded()) {
-            (NodeRef::Wire(w), _) => w.name(),
-            (_, n) => n.map_or("", |n| n.name.as_str()),
+        match self.form() {
+            Form::Decoded(n) => n.name.as_str(),
+            Form::Wire(w) => w.name(),
         }
     }
 
     fn op_type(&self) -> &str {
-        match (self, self.decoded()) {
-            (NodeRef::Wire(w), _) => w.op_type(),
-            (_, n) => n.map_or("", |n| n.op_type.as_str()),
+        match self.form() {
+            Form::Decoded(n) => n.op_type.as_str(),
+            Form::Wire(w) => w.op_type(),
         }
     }
 
     fn domain(&self) -> &str {
-        match (self, self.decoded()) {
-            (NodeRef::Wire(w), _) => w.domain(),
-            (_, n) => n.map_or("", |n| n.domain.as_str()),
+        match self.form() {
+            Form::Decoded(n) => n.domain.as_str(),
+            Form::Wire(w) => w.domain(),
         }
     }
 
     fn outputs(&self) -> NodeStrings<'_> {
-        match (self, self.decoded()) {
-            (NodeRef::Wire(w), _) => NodeStrings::Wire(w.outputs()),
-            (_, n) => NodeStrings::Decoded(n.map_or(&[][..], |n| &n.output).iter()),
+        match self.form() {
+            Form::Decoded(n) => NodeStrings::Decoded(n.output.iter()),
+            Form::Wire(w) => NodeStrings::Wire(w.outputs()),
         }
     }
 
     /// The fields the import passes read. A node in wire form is scanned once, into `buf`,
     /// which the pass keeps from node to node.
     fn view<'v, 's>(&'s self, buf: &'v mut WireView<'s>) -> NodeView<'s, 'v> {
-        match self {
-            NodeRef::Wire(w) => {
-                let w: WireNode<'s> = *w;
+        match self.form() {
+            Form::Decoded(n) => NodeView::Decoded(n),
+            Form::Wire(w) => {
                 w.view_into(buf);
                 NodeView::Wire(buf)
             }
-            NodeRef::Borrowed(n) => NodeView::Decoded(n),
-            NodeRef::Owned(n) => NodeView::Decoded(n),
         }
     }
 
@@ -1189,13 +1193,12 @@ fn expand_functions<'a>(
             continue;
         };
         let wire_call;
-        let n = match &node {
-            NodeRef::Wire(w) => {
+        let n = match node.form() {
+            Form::Decoded(n) => n,
+            Form::Wire(w) => {
                 wire_call = w.decode().map_err(|e| wire_error(cx.path, e))?;
                 &wire_call
             }
-            NodeRef::Borrowed(n) => *n,
-            NodeRef::Owned(n) => &**n,
         };
         if depth >= MAX_FUNCTION_DEPTH {
             return Err(cx.err(format!(

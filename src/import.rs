@@ -699,120 +699,56 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     }
     let order = topo_order(cx, &flat, &deps)?;
 
-    // Build nodes in that order. Names the file gives are checked for repeats without copies;
-    // generated and renamed ones are few.
-    let mut used_file: FastSet<TextKey> = FastSet::default();
-    if !names_kept {
-        used_file.reserve(flat.len());
-    }
-    let mut used_made: FastSet<String> = FastSet::default();
-    let mut nodes = Vec::with_capacity(flat.len());
+    // Every node output's value id, in the order nodes are built: values and nodes can then
+    // be built apart, on two threads for a large graph (each touches about as much fresh
+    // memory as the other). Every name a node reads now has a value: the loop above gave one
+    // to each name no node writes, and the sort puts a tensor's producer before its readers.
+    let mut next = values.len() as u32;
     for &i in &order {
-        let n = &flat[i];
-        let id = NodeId(nodes.len() as u32);
-        let attrs = std::mem::take(&mut attrs_of[i]);
-        // Each node is visited once, so its slot is still filled.
-        let (op_type, domain) = ops_of[i].take().unwrap_or_default();
-        let bodies = match bodies_of.binary_search_by_key(&i, |b| b.0) {
-            Ok(k) => std::mem::take(&mut bodies_of[k].1),
-            Err(_) => Vec::new(),
-        };
-        let file_name = node_names[i];
-        // One hash per name in the common case: made names are rare, and `insert` answers
-        // whether the name was free.
-        let fresh = names_kept
-            || (!file_name.is_empty()
-                && (used_made.is_empty() || !used_made.contains(file_name))
-                && used_file.insert(TextKey(file_name)));
-        let name = if fresh {
-            file_name.to_string()
-        } else {
-            let base = if file_name.is_empty() {
-                generated_name(&n.proto, i)
-            } else {
-                file_name.to_string()
-            };
-            let taken = |x: &str| used_file.contains(&TextKey(x)) || used_made.contains(x);
-            let mut name = base.clone();
-            if taken(&name) {
-                let mut k = 2;
-                while taken(&format!("{base}~{k}")) {
-                    k += 1;
-                }
-                name = format!("{base}~{k}");
-            }
-            used_made.insert(name.clone());
-            name
-        };
-        let mut node_inputs = Vec::with_capacity(ins.of(i).len());
-        for &k in ins.of(i) {
-            if k == NONE {
-                node_inputs.push(None);
-                continue;
-            }
-            let v = match syms.value[k as usize] {
-                Some(v) => v,
-                None => {
-                    let v = new_value(
-                        &mut values,
-                        syms.names[k as usize],
-                        ValueKind::Activation,
-                        Fact::default(),
-                    );
-                    syms.value[k as usize] = Some(v);
-                    v
-                }
-            };
-            values[v.index()].consumers.push(id);
-            node_inputs.push(Some(v));
-        }
-        let mut node_outputs = Vec::with_capacity(outs.of(i).len());
         for &k in outs.of(i) {
-            if k == NONE {
-                node_outputs.push(None);
-                continue;
-            }
-            let v = new_value(
-                &mut values,
-                syms.names[k as usize],
-                ValueKind::Activation,
-                Fact::default(),
-            );
-            values[v.index()].producer = Some(id);
-            syms.value[k as usize] = Some(v);
-            node_outputs.push(Some(v));
-        }
-        let mut caps = Vec::new();
-        for &k in body_syms.of(i) {
-            let Some(v) = syms.value[k as usize] else { continue };
-            if !caps.contains(&v) && !node_inputs.contains(&Some(v)) {
-                values[v.index()].consumers.push(id);
-                caps.push(v);
+            if k != NONE {
+                syms.value[k as usize] = Some(ValueId(next));
+                next += 1;
             }
         }
-        nodes.push(Node {
-            name,
-            generated_name: file_name.is_empty(),
-            op_type,
-            domain,
-            inputs: node_inputs.into_boxed_slice(),
-            outputs: node_outputs.into_boxed_slice(),
-            attrs,
-            extra: if bodies.is_empty() && caps.is_empty() && n.from_function.is_none() {
-                None
-            } else {
-                Some(Box::new(NodeExtra {
-                    bodies: bodies.into_boxed_slice(),
-                    captures: caps.into_boxed_slice(),
-                    from_function: n.from_function.clone(),
-                }))
-            },
-            // A file's node list cannot reach 2^32 entries (a node takes at least two bytes
-            // and a protobuf file at most 2 GiB).
-            source_index: n.source as u32,
-            cost: NodeCost::default(),
-            folded: false,
-        });
+    }
+    let wiring = Wiring {
+        names: &syms.names,
+        value: &syms.value,
+        order: &order,
+        ins: &ins,
+        outs: &outs,
+        body: &body_syms,
+    };
+    let build = NodeBuild {
+        flat: &flat,
+        names: &node_names,
+        names_kept,
+        attrs: &mut attrs_of,
+        ops: &mut ops_of,
+        bodies: &mut bodies_of,
+    };
+    let (nodes, values_added) = if parallel {
+        std::thread::scope(|scope| {
+            let worker = std::thread::Builder::new()
+                .stack_size(crate::onnx::graph::WORKER_STACK)
+                .spawn_scoped(scope, || wiring.add_values(&mut values));
+            let nodes = wiring.nodes(build);
+            let added = match worker {
+                Ok(h) => {
+                    h.join().unwrap_or_else(|p| std::panic::resume_unwind(p));
+                    true
+                }
+                Err(_) => false,
+            };
+            (nodes, added)
+        })
+    } else {
+        (wiring.nodes(build), false)
+    };
+    // Small graphs, or no thread could be started.
+    if !values_added {
+        wiring.add_values(&mut values);
     }
 
     let mut outputs = Vec::new();
@@ -869,6 +805,160 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
         captured,
     };
     Ok((graph, graph_free))
+}
+
+/// How one graph's nodes connect, once every tensor name has its value id: what building its
+/// values and building its nodes both read.
+struct Wiring<'w, 'a> {
+    names: &'w [&'a str],
+    value: &'w [Option<ValueId>],
+    /// Flat node indices in the order nodes are built (a topological order).
+    order: &'w [usize],
+    ins: &'w Csr,
+    outs: &'w Csr,
+    /// The outer names each node's bodies read.
+    body: &'w Csr,
+}
+
+/// What building the nodes takes from the earlier passes, each node's part taken once.
+struct NodeBuild<'w, 'a> {
+    flat: &'w [FlatNode<'a>],
+    names: &'w [&'a str],
+    /// Every node has a name of its own, distinct from the others (see `distinct_names`).
+    names_kept: bool,
+    attrs: &'w mut [Box<[Attr]>],
+    ops: &'w mut [Option<(Name, Name)>],
+    bodies: &'w mut [(usize, Vec<Body>)],
+}
+
+impl Wiring<'_, '_> {
+    fn value_of(&self, k: u32) -> Option<ValueId> {
+        if k == NONE {
+            None
+        } else {
+            self.value[k as usize]
+        }
+    }
+
+    /// The values a node's bodies read that are not among its inputs, each once.
+    fn captures(&self, i: usize) -> Vec<ValueId> {
+        let mut caps: Vec<ValueId> = Vec::new();
+        for &k in self.body.of(i) {
+            let Some(v) = self.value_of(k) else { continue };
+            if !caps.contains(&v) && !self.ins.of(i).iter().any(|&x| self.value_of(x) == Some(v)) {
+                caps.push(v);
+            }
+        }
+        caps
+    }
+
+    /// Appends each node's outputs to `values` and records every read, in build order.
+    fn add_values(&self, values: &mut Vec<Value>) {
+        for (p, &i) in self.order.iter().enumerate() {
+            let id = NodeId(p as u32);
+            for &k in self.ins.of(i) {
+                if let Some(v) = self.value_of(k) {
+                    values[v.index()].consumers.push(id);
+                }
+            }
+            for &k in self.outs.of(i) {
+                if k == NONE {
+                    continue;
+                }
+                values.push(Value {
+                    name: self.names[k as usize].to_string(),
+                    kind: ValueKind::Activation,
+                    fact: Fact::default(),
+                    declared: None,
+                    producer: Some(id),
+                    consumers: Default::default(),
+                    data: None,
+                    konst: None,
+                });
+            }
+            for v in self.captures(i) {
+                values[v.index()].consumers.push(id);
+            }
+        }
+    }
+
+    /// The graph's nodes in build order. Names the file gives are checked for repeats
+    /// without copies; generated and renamed ones are few.
+    fn nodes(&self, b: NodeBuild) -> Vec<Node> {
+        let mut used_file: FastSet<TextKey> = FastSet::default();
+        if !b.names_kept {
+            used_file.reserve(b.flat.len());
+        }
+        let mut used_made: FastSet<String> = FastSet::default();
+        let mut nodes = Vec::with_capacity(self.order.len());
+        for &i in self.order {
+            let n = &b.flat[i];
+            let attrs = std::mem::take(&mut b.attrs[i]);
+            // Each node is visited once, so its slot is still filled.
+            let (op_type, domain) = b.ops[i].take().unwrap_or_default();
+            let bodies = match b.bodies.binary_search_by_key(&i, |x| x.0) {
+                Ok(k) => std::mem::take(&mut b.bodies[k].1),
+                Err(_) => Vec::new(),
+            };
+            let file_name = b.names[i];
+            // One hash per name in the common case: made names are rare, and `insert`
+            // answers whether the name was free.
+            let fresh = b.names_kept
+                || (!file_name.is_empty()
+                    && (used_made.is_empty() || !used_made.contains(file_name))
+                    && used_file.insert(TextKey(file_name)));
+            let name = if fresh {
+                file_name.to_string()
+            } else {
+                let base = if file_name.is_empty() {
+                    generated_name(&n.proto, i)
+                } else {
+                    file_name.to_string()
+                };
+                let taken = |x: &str| used_file.contains(&TextKey(x)) || used_made.contains(x);
+                let mut name = base.clone();
+                if taken(&name) {
+                    let mut k = 2;
+                    while taken(&format!("{base}~{k}")) {
+                        k += 1;
+                    }
+                    name = format!("{base}~{k}");
+                }
+                used_made.insert(name.clone());
+                name
+            };
+            let slots = |row: &[u32]| -> Box<[Option<ValueId>]> { row.iter().map(|&k| self.value_of(k)).collect() };
+            let caps = if self.body.of(i).is_empty() {
+                Vec::new()
+            } else {
+                self.captures(i)
+            };
+            nodes.push(Node {
+                name,
+                generated_name: file_name.is_empty(),
+                op_type,
+                domain,
+                inputs: slots(self.ins.of(i)),
+                outputs: slots(self.outs.of(i)),
+                attrs,
+                extra: if bodies.is_empty() && caps.is_empty() && n.from_function.is_none() {
+                    None
+                } else {
+                    Some(Box::new(NodeExtra {
+                        bodies: bodies.into_boxed_slice(),
+                        captures: caps.into_boxed_slice(),
+                        from_function: n.from_function.clone(),
+                    }))
+                },
+                // A file's node list cannot reach 2^32 entries (a node takes at least two
+                // bytes and a protobuf file at most 2 GiB).
+                source_index: n.source as u32,
+                cost: NodeCost::default(),
+                folded: false,
+            });
+        }
+        nodes
+    }
 }
 
 /// Whether every node has a name of its own and no two share one: then every name is kept

@@ -1355,6 +1355,43 @@ fn large_graphs_import_attributes_and_bodies_as_small_ones_do() {
         let out = &g.values[g.outputs[0].index()].fact.shape;
         let want = if n % 2 == 0 { "[2,3]" } else { "[3,2]" };
         assert_eq!(out.to_string(), want, "n = {n}");
+        // Values and nodes are built apart on a large graph (on two threads): both must
+        // describe the same edges.
+        assert_wiring_agrees(g, n);
+    }
+}
+
+/// Every edge is seen alike from both ends: a value's readers are exactly the nodes reading
+/// it, in node order, once per input slot and once for a capture; its producer lists it among
+/// its outputs; node outputs are numbered in node order.
+fn assert_wiring_agrees(g: &tilecut::ir::Graph, n: usize) {
+    let mut readers: Vec<Vec<u32>> = vec![Vec::new(); g.values.len()];
+    let mut last_output = None;
+    for (i, node) in g.nodes.iter().enumerate() {
+        for v in node.inputs.iter().flatten() {
+            readers[v.index()].push(i as u32);
+        }
+        for v in node.captures() {
+            assert!(
+                !node.inputs.contains(&Some(*v)),
+                "n = {n}: a capture that is also an input"
+            );
+            readers[v.index()].push(i as u32);
+        }
+        for v in node.outputs.iter().flatten() {
+            assert_eq!(g.values[v.index()].producer.map(|p| p.index()), Some(i), "n = {n}");
+            assert!(last_output < Some(v.index()), "n = {n}: outputs out of node order");
+            last_output = Some(v.index());
+        }
+    }
+    for (k, v) in g.values.iter().enumerate() {
+        let got: Vec<u32> = v.consumers.iter().map(|c| c.index() as u32).collect();
+        assert_eq!(got, readers[k], "n = {n}: readers of `{}`", v.name);
+        if let Some(p) = v.producer {
+            assert!(g.nodes[p.index()]
+                .outputs
+                .contains(&Some(tilecut::ir::ValueId(k as u32))));
+        }
     }
 }
 

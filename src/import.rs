@@ -928,11 +928,7 @@ impl Wiring<'_, '_> {
                 name
             };
             let slots = |row: &[u32]| -> Box<[Option<ValueId>]> { row.iter().map(|&k| self.value_of(k)).collect() };
-            let caps = if self.body.of(i).is_empty() {
-                Vec::new()
-            } else {
-                self.captures(i)
-            };
+            let caps = self.captures(i);
             nodes.push(Node {
                 name,
                 generated_name: file_name.is_empty(),
@@ -1647,7 +1643,7 @@ fn type_fact(cx: &Cx, name: &str, tp: &onnx::TypeProto) -> Result<Fact, ReadErro
                 None => Fact::default(),
             };
             Fact {
-                value_type: ValueType::Sequence(Box::new(inner), None),
+                value_type: ValueType::sequence(inner, None),
                 dtype: None,
                 shape: Shape::unknown(),
             }

@@ -476,7 +476,7 @@ fn fill_from(fact: &Fact, decl: &Fact, fixable: &BTreeSet<String>) -> Fact {
     };
     // A sequence whose elements the graph spells out keeps them: a declaration types the
     // elements only.
-    let tracked = matches!(fact.value_type, ValueType::Sequence(_, Some(_)));
+    let tracked = matches!(&fact.value_type, ValueType::Sequence(s) if s.elements.is_some());
     // An untyped declaration reads as a bare tensor: it must not turn an inferred sequence,
     // map or optional back into one.
     let bare = decl.value_type == ValueType::Tensor && fact.value_type != ValueType::Tensor;

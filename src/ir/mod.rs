@@ -64,12 +64,27 @@ impl ValueKind {
 pub enum ValueType {
     Tensor,
     SparseTensor,
-    /// A sequence: the fact every element satisfies, and each element's fact where the graph
-    /// makes the sequence element by element (construct, insert, erase, split with known
-    /// sizes; at most `MAX_TRACKED_ELEMENTS`).
-    Sequence(Box<Fact>, Option<Vec<Fact>>),
+    /// A sequence, boxed whole: every value's fact carries a `ValueType`, and few are
+    /// sequences (inline, its parts made each fact 16 bytes larger).
+    Sequence(Box<SequenceFact>),
     Map,
     Optional(Box<Fact>),
+}
+
+impl ValueType {
+    pub fn sequence(element: Fact, elements: Option<Vec<Fact>>) -> ValueType {
+        ValueType::Sequence(Box::new(SequenceFact { element, elements }))
+    }
+}
+
+/// What is known of a sequence's elements.
+#[derive(Clone, Debug, PartialEq)]
+pub struct SequenceFact {
+    /// The fact every element satisfies.
+    pub element: Fact,
+    /// Each element's fact, where the graph makes the sequence element by element (construct,
+    /// insert, erase, split with known sizes; at most `MAX_TRACKED_ELEMENTS`).
+    pub elements: Option<Vec<Fact>>,
 }
 
 /// The longest sequence whose elements are tracked one by one.

@@ -19,9 +19,14 @@ pub(super) fn merge(a: &Fact, b: &Fact) -> Fact {
         _ => Shape::unknown(),
     };
     let value_type = match (&a.value_type, &b.value_type) {
-        (ValueType::Sequence(x, xs), ValueType::Sequence(y, ys)) => {
-            ValueType::Sequence(Box::new(merge(x, y)), if xs == ys { xs.clone() } else { None })
-        }
+        (ValueType::Sequence(x), ValueType::Sequence(y)) => ValueType::sequence(
+            merge(&x.element, &y.element),
+            if x.elements == y.elements {
+                x.elements.clone()
+            } else {
+                None
+            },
+        ),
         (t, _) => t.clone(),
     };
     Fact {

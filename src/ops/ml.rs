@@ -210,7 +210,7 @@ fn zip_map(_ctx: &Ctx) -> Inferred {
         shape: Shape::unknown(),
     };
     Ok(vec![Fact {
-        value_type: ValueType::Sequence(Box::new(map), None),
+        value_type: ValueType::sequence(map, None),
         dtype: None,
         shape: Shape::unknown(),
     }])

@@ -15,7 +15,7 @@ use super::{CostRule, Ctx, Inferred, OpDef};
 
 fn sequence_of(elem: Fact) -> Fact {
     Fact {
-        value_type: ValueType::Sequence(Box::new(elem), None),
+        value_type: ValueType::sequence(elem, None),
         dtype: None,
         shape: Shape::unknown(),
     }
@@ -31,7 +31,7 @@ fn sequence_with(elements: Vec<Fact>, empty: Fact) -> Fact {
     };
     let tracked = (elements.len() <= MAX_TRACKED_ELEMENTS).then_some(elements);
     Fact {
-        value_type: ValueType::Sequence(Box::new(elem), tracked),
+        value_type: ValueType::sequence(elem, tracked),
         dtype: None,
         shape: Shape::unknown(),
     }
@@ -49,7 +49,11 @@ fn optional_of(inner: Fact) -> Fact {
 fn element(ctx: &Ctx, i: usize) -> Fact {
     match ctx.fact(i) {
         Some(Fact {
-            value_type: ValueType::Sequence(e, _) | ValueType::Optional(e),
+            value_type: ValueType::Sequence(s),
+            ..
+        }) => s.element.clone(),
+        Some(Fact {
+            value_type: ValueType::Optional(e),
             ..
         }) => (**e).clone(),
         Some(f) => f.clone(),
@@ -61,9 +65,9 @@ fn element(ctx: &Ctx, i: usize) -> Fact {
 fn elements(ctx: &Ctx, i: usize) -> Option<Vec<Fact>> {
     match ctx.fact(i) {
         Some(Fact {
-            value_type: ValueType::Sequence(_, Some(v)),
+            value_type: ValueType::Sequence(s),
             ..
-        }) => Some(v.clone()),
+        }) => s.elements.clone(),
         _ => None,
     }
 }

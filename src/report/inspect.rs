@@ -208,9 +208,9 @@ fn dtype_name(f: &Fact) -> Option<std::borrow::Cow<'static, str>> {
     match &f.value_type {
         ValueType::Tensor => f.dtype.map(|d| Cow::Borrowed(d.name())),
         ValueType::SparseTensor => f.dtype.map(|d| Cow::Owned(format!("sparse({})", d.name()))),
-        ValueType::Sequence(inner, _) => Some(Cow::Owned(format!(
+        ValueType::Sequence(s) => Some(Cow::Owned(format!(
             "sequence({})",
-            inner.dtype.map(DType::name).unwrap_or("?")
+            s.element.dtype.map(DType::name).unwrap_or("?")
         ))),
         ValueType::Optional(inner) => Some(Cow::Owned(format!(
             "optional({})",

@@ -531,16 +531,7 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     // Every tensor name the graph mentions, hashed once; later passes use its index.
     let mut syms = Symbols::with_capacity(expected);
     let new_value = |values: &mut Vec<Value>, name: &str, kind: ValueKind, fact: Fact| {
-        values.push(Value {
-            name: name.to_string(),
-            kind,
-            fact,
-            declared: None,
-            producer: None,
-            consumers: Default::default(),
-            data: None,
-            konst: None,
-        });
+        values.push(Value::new(name, kind, fact));
         ValueId(values.len() as u32 - 1)
     };
 
@@ -866,14 +857,8 @@ impl Wiring<'_, '_> {
                     continue;
                 }
                 values.push(Value {
-                    name: self.names[k as usize].to_string(),
-                    kind: ValueKind::Activation,
-                    fact: Fact::default(),
-                    declared: None,
                     producer: Some(id),
-                    consumers: Default::default(),
-                    data: None,
-                    konst: None,
+                    ..Value::new(self.names[k as usize], ValueKind::Activation, Fact::default())
                 });
             }
             for v in self.captures(i) {

@@ -325,6 +325,22 @@ pub struct Value {
     pub konst: Option<Box<ConstValue>>,
 }
 
+impl Value {
+    /// A value with nothing known of it beyond its kind and fact: no producer, no readers yet.
+    pub fn new(name: &str, kind: ValueKind, fact: Fact) -> Value {
+        Value {
+            name: name.to_string(),
+            kind,
+            fact,
+            declared: None,
+            producer: None,
+            consumers: Default::default(),
+            data: None,
+            konst: None,
+        }
+    }
+}
+
 /// An attribute value. Tensors and graphs are owned here; graphs are analyzed as bodies.
 #[derive(Clone, Debug, PartialEq)]
 pub enum AttrValue {

@@ -1177,6 +1177,12 @@ impl Csr {
 /// in order keeps it. A cycle is an error naming its nodes (found with petgraph's SCCs).
 fn topo_order(cx: &Cx, flat: &[FlatNode], deps: &Csr) -> Result<Vec<usize>, ReadError> {
     let n = flat.len();
+    // Most files list their nodes in an order that is already valid, which the sort below
+    // would keep: every node then reads only earlier ones, and one pass over the rows shows
+    // it without the sort's tables (about 2.5 MB on a 100k-node graph).
+    if (0..n).all(|i| deps.of(i).iter().all(|&d| (d as usize) < i)) {
+        return Ok((0..n).collect());
+    }
     let mut indegree = vec![0u32; n];
     // The reverse rows (who reads node d), built by counting: again one allocation.
     let mut count = vec![0u32; n + 1];

@@ -215,7 +215,10 @@ pub fn import(loaded: &LoadedModel, overrides: &Overrides) -> Result<(Model, Vec
         }
     }
     let mut loops = BTreeSet::new();
-    loop_names(&graph, &mut loops);
+    // Only `--loop-trips` needs them: a large graph is not walked again for nothing.
+    if !overrides.loop_trips.is_empty() {
+        loop_names(&graph, &mut loops);
+    }
     for name in overrides.loop_trips.keys() {
         if !loops.contains(name) {
             return Err(ReadError::invalid(
@@ -832,9 +835,14 @@ impl Wiring<'_, '_> {
     }
 
     /// The values a node's bodies read that are not among its inputs, each once.
+    #[inline]
     fn captures(&self, i: usize) -> Vec<ValueId> {
+        let reads = self.body.of(i);
+        if reads.is_empty() {
+            return Vec::new();
+        }
         let mut caps: Vec<ValueId> = Vec::new();
-        for &k in self.body.of(i) {
+        for &k in reads {
             let Some(v) = self.value_of(k) else { continue };
             if !caps.contains(&v) && !self.ins.of(i).iter().any(|&x| self.value_of(x) == Some(v)) {
                 caps.push(v);

@@ -314,6 +314,13 @@ fn run(cli: Cli) -> anyhow::Result<u8> {
             let overrides = args.model.overrides()?;
             let target = tilecut::target::load(&args.target.target)?;
             let opts = args.cut.options(args.columns, args.what_if.what_if()?);
+            // Where the reports go is checked before the model is read; whether they would
+            // replace a file the model reads, once its external data is known (below).
+            for (flag, p) in [("--dot", &args.dot), ("--html", &args.html)] {
+                if let Some(p) = p {
+                    tilecut::outpath::check_place(flag, p)?;
+                }
+            }
             let mut bar = tilecut::report::term::Progress::new("analyze", quiet);
             bar.update(0, 0, "reading the model");
             let read = tilecut::read_model_with(&args.model.model, &overrides, MapLife::Process)?;

@@ -38,8 +38,10 @@ impl Reads {
         }
     }
 
-    /// Refuses a file output (`flag` names the option) that is one of the files read.
+    /// Refuses a file output (`flag` names the option) that is one of the files read, or that
+    /// cannot be written where it points (see `check_place`).
     pub fn check_file(&self, flag: &str, out: &Path) -> Result<(), SettingError> {
+        check_place(flag, out)?;
         let Some(target) = resolved(out) else {
             return Ok(());
         };
@@ -69,6 +71,26 @@ impl Reads {
     }
 }
 
+/// Refuses a file output whose folder does not exist, or that names a folder: checked before
+/// the work, so that a mistyped path fails at once instead of after a long analysis.
+pub fn check_place(flag: &str, out: &Path) -> Result<(), SettingError> {
+    if out.is_dir() {
+        return Err(SettingError(format!(
+            "{}: {flag} names a folder, not a file",
+            out.display()
+        )));
+    }
+    let dir = folder_of(out);
+    if !dir.is_dir() {
+        return Err(SettingError(format!(
+            "{}: {flag}: the folder {} does not exist",
+            out.display(),
+            dir.display()
+        )));
+    }
+    Ok(())
+}
+
 /// The canonical path a write to `out` replaces: `out` itself if it exists, else its
 /// canonical folder joined with its name; `None` when the folder does not exist either (the
 /// write fails on its own).
@@ -77,11 +99,14 @@ fn resolved(out: &Path) -> Option<PathBuf> {
         return Some(p);
     }
     let name = out.file_name()?;
-    let dir = out
-        .parent()
+    folder_of(out).canonicalize().ok().map(|d| d.join(name))
+}
+
+/// The folder a file output lands in (`.` for a bare file name).
+fn folder_of(out: &Path) -> &Path {
+    out.parent()
         .filter(|p| !p.as_os_str().is_empty())
-        .unwrap_or(Path::new("."));
-    dir.canonicalize().ok().map(|d| d.join(name))
+        .unwrap_or(Path::new("."))
 }
 
 fn external_files(g: &Graph, out: &mut Vec<PathBuf>) {
@@ -129,7 +154,14 @@ mod tests {
             assert!(r.check_file("--html", &d.path().join("link/m.onnx")).is_err());
         }
         assert!(r.check_file("--html", &d.path().join("report.html")).is_ok());
-        assert!(r.check_file("--html", &d.path().join("no/such/dir/r.html")).is_ok());
+        // Not a file read, but nowhere to write it: refused for that, before any work.
+        let e = r
+            .check_file("--html", &d.path().join("no/such/dir/r.html"))
+            .expect_err("no folder")
+            .0;
+        assert!(e.contains("does not exist"), "{e}");
+        let e = r.check_file("--html", &d.path().join("sub")).expect_err("a folder").0;
+        assert!(e.contains("names a folder"), "{e}");
         let e = r.check_file("--junit", &model).expect_err("refused").0;
         assert!(e.contains("--junit would overwrite") && e.contains("m.onnx"), "{e}");
     }

@@ -534,6 +534,36 @@ fn fix_first_ranks_cpu_bound_work_with_suggestions_that_fit() {
     assert!(s.contains("--dim batch=N") && s.contains("--dim frames=N"), "{s}");
 }
 
+/// A report path that cannot be written (its folder missing, or a folder itself) is refused
+/// before the model is read, with nothing written.
+#[test]
+fn report_paths_that_cannot_be_written_are_refused_first() {
+    let d = tempfile::tempdir().expect("tmp");
+    let m = sample("fruit_grader_qdq_int8.onnx");
+    let ms = m.to_str().expect("utf8");
+    let missing = d.path().join("no-such-folder").join("report.html");
+    assert_fails_cleanly(
+        &["analyze", ms, "--html", missing.to_str().expect("utf8")],
+        "no-such-folder does not exist",
+    );
+    let ds = d.path().to_str().expect("utf8");
+    assert_fails_cleanly(&["analyze", ms, "--dot", ds], "--dot names a folder");
+    // Checked before reading: an unreadable model is not what the error names.
+    let broken = d.path().join("broken.onnx");
+    std::fs::write(&broken, b"not a model").expect("write");
+    assert_fails_cleanly(
+        &[
+            "analyze",
+            broken.to_str().expect("utf8"),
+            "--html",
+            missing.to_str().expect("utf8"),
+        ],
+        "does not exist",
+    );
+    let n = std::fs::read_dir(d.path()).expect("dir").count();
+    assert_eq!(n, 1, "nothing but the broken model in the folder");
+}
+
 /// The visual reports are written by renaming into place: naming the model as the output
 /// would replace it. Refused before anything is written.
 #[test]

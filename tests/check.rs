@@ -497,6 +497,24 @@ fn diff_lists_placement_changes_and_regressions() {
     );
 }
 
+/// A gate's output file that cannot be written where it points (missing folder) is refused
+/// before any model is analyzed.
+#[test]
+fn gate_outputs_in_missing_folders_are_refused_first() {
+    let d = tempfile::tempdir().expect("tmp");
+    let m = sample("fruit_grader_qdq_int8.onnx");
+    let p = policy(d.path(), "[defaults]\nmin_coverage_macs = 0.5\n");
+    let (ms, ps) = (m.to_str().expect("utf8"), p.to_str().expect("utf8"));
+    let missing = d.path().join("gone").join("out.xml");
+    for flag in ["--junit", "--sarif", "--summary-file", "--save-baseline"] {
+        assert_fails_cleanly(
+            &["check", ms, "--policy", ps, flag, missing.to_str().expect("utf8")],
+            &format!("{flag}: the folder"),
+        );
+    }
+    assert!(!d.path().join("gone").exists());
+}
+
 /// A gate's output files (JUnit, SARIF, summary, baseline) never land on its inputs: the
 /// model, the policy, the baseline it compares against. Saving over that baseline is allowed:
 /// it moves the baseline forward.

@@ -82,8 +82,13 @@ pub fn check_place(flag: &str, out: &Path) -> Result<(), SettingError> {
     }
     let dir = folder_of(out);
     if !dir.is_dir() {
+        let what = if dir.exists() {
+            "is not a folder"
+        } else {
+            "does not exist"
+        };
         return Err(SettingError(format!(
-            "{}: {flag}: the folder {} does not exist",
+            "{}: {flag}: the folder {} {what}",
             out.display(),
             dir.display()
         )));
@@ -162,6 +167,11 @@ mod tests {
         assert!(e.contains("does not exist"), "{e}");
         let e = r.check_file("--html", &d.path().join("sub")).expect_err("a folder").0;
         assert!(e.contains("names a folder"), "{e}");
+        let e = r
+            .check_file("--html", &model.join("r.html"))
+            .expect_err("under a file")
+            .0;
+        assert!(e.contains("m.onnx is not a folder"), "{e}");
         let e = r.check_file("--junit", &model).expect_err("refused").0;
         assert!(e.contains("--junit would overwrite") && e.contains("m.onnx"), "{e}");
     }

@@ -9,7 +9,7 @@ use crate::error::{ReadError, SettingError};
 use crate::fastmap::{short_text_eq, FastSet, TextKey};
 use crate::ir::{
     Attr, AttrValue, Body, ConstValue, DType, Dim, Fact, Graph, Model, Name, Node, NodeCost, NodeExtra, NodeId, Shape,
-    Storage, TensorData, Value, ValueId, ValueKind, ValueType,
+    Storage, TensorData, Text, Value, ValueId, ValueKind, ValueType,
 };
 use crate::onnx::load::{resolve_external, LoadedModel};
 use crate::onnx::node::{WireNode, WireView};
@@ -207,7 +207,7 @@ pub fn import(loaded: &LoadedModel, overrides: &Overrides) -> Result<(Model, Vec
     fn loop_names(g: &Graph, out: &mut BTreeSet<String>) {
         for n in &g.nodes {
             if n.op_type == "Loop" {
-                out.insert(n.name.clone());
+                out.insert(n.name.to_string());
             }
             for b in n.bodies() {
                 loop_names(&b.graph, out);
@@ -276,6 +276,29 @@ struct Cx<'a> {
     used_values: BTreeSet<String>,
     /// One shared copy of each op type, domain and attribute name, for every graph of the model.
     names: Interner,
+    texts: Texts,
+}
+
+/// Makes the IR's node and value names (`ir::Text`): borrowed where the text lies in a file
+/// mapped for the process, copied otherwise.
+#[derive(Clone, Copy)]
+struct Texts(Option<&'static [u8]>);
+
+impl Texts {
+    fn text(self, s: &str) -> Text {
+        if let Some(file) = self.0 {
+            // Whether `s` lies within the file: then the same bytes, re-borrowed from the
+            // lasting map, are the name. Checked again as UTF-8, which `s` already was (a
+            // short scan of a few bytes, against an allocation and a copy).
+            let at = (s.as_ptr() as usize).wrapping_sub(file.as_ptr() as usize);
+            if let Some(bytes) = at.checked_add(s.len()).and_then(|end| file.get(at..end)) {
+                if let Ok(t) = std::str::from_utf8(bytes) {
+                    return Text::borrowed(t);
+                }
+            }
+        }
+        Text::from(s)
+    }
 }
 
 /// Hands out one shared `Name` per distinct text. A model has a few dozen distinct op types
@@ -332,6 +355,7 @@ impl<'a> Cx<'a> {
             used_inputs: BTreeSet::new(),
             used_values: BTreeSet::new(),
             names: Interner::default(),
+            texts: Texts(loaded.lasting),
         }
     }
 
@@ -533,9 +557,10 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     let mut values: Vec<Value> = Vec::with_capacity(expected);
     // Every tensor name the graph mentions, hashed once; later passes use its index.
     let mut syms = Symbols::with_capacity(expected);
+    let texts = cx.texts;
     let new_value = |values: &mut Vec<Value>, name: &str, kind: ValueKind, fact: Fact| {
-        values.push(Value::new(name, kind, fact));
-        ValueId(values.len() as u32 - 1)
+        values.push(Value::new(texts.text(name), kind, fact));
+        ValueId::new(values.len() - 1)
     };
 
     for t in &g.initializer {
@@ -701,12 +726,13 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     for &i in &order {
         for &k in outs.of(i) {
             if k != NONE {
-                syms.value[k as usize] = Some(ValueId(next));
+                syms.value[k as usize] = Some(ValueId::new(next as usize));
                 next += 1;
             }
         }
     }
     let wiring = Wiring {
+        texts,
         names: &syms.names,
         value: &syms.value,
         order: &order,
@@ -777,7 +803,7 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
         .iter()
         .enumerate()
         .filter(|(i, v)| {
-            v.kind == ValueKind::Initializer && v.consumers.is_empty() && !outputs.contains(&ValueId(*i as u32))
+            v.kind == ValueKind::Initializer && v.consumers.is_empty() && !outputs.contains(&ValueId::new(*i))
         })
         .map(|(_, v)| v.name.as_str())
         .collect();
@@ -804,6 +830,7 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
 /// How one graph's nodes connect, once every tensor name has its value id: what building its
 /// values and building its nodes both read.
 struct Wiring<'w, 'a> {
+    texts: Texts,
     names: &'w [&'a str],
     value: &'w [Option<ValueId>],
     /// Flat node indices in the order nodes are built (a topological order).
@@ -866,7 +893,11 @@ impl Wiring<'_, '_> {
                 }
                 values.push(Value {
                     producer: Some(id),
-                    ..Value::new(self.names[k as usize], ValueKind::Activation, Fact::default())
+                    ..Value::new(
+                        self.texts.text(self.names[k as usize]),
+                        ValueKind::Activation,
+                        Fact::default(),
+                    )
                 });
             }
             for v in self.captures(i) {
@@ -901,7 +932,7 @@ impl Wiring<'_, '_> {
                     && (used_made.is_empty() || !used_made.contains(file_name))
                     && used_file.insert(TextKey(file_name)));
             let name = if fresh {
-                file_name.to_string()
+                self.texts.text(file_name)
             } else {
                 let base = if file_name.is_empty() {
                     generated_name(&n.proto, i)
@@ -918,9 +949,9 @@ impl Wiring<'_, '_> {
                     name = format!("{base}~{k}");
                 }
                 used_made.insert(name.clone());
-                name
+                Text::from(name)
             };
-            let slots = |row: &[u32]| -> Box<[Option<ValueId>]> { row.iter().map(|&k| self.value_of(k)).collect() };
+            let slots = |row: &[u32]| -> crate::ir::Slots { row.iter().map(|&k| self.value_of(k)).collect() };
             let caps = self.captures(i);
             nodes.push(Node {
                 name,

@@ -191,7 +191,7 @@ fn infer_graph(
     // Captured outer values take their facts from outside.
     for &c in &g.captured.clone() {
         let name = g.values[c.index()].name.clone();
-        if let Some((f, k, kind)) = outer.get(&name) {
+        if let Some((f, k, kind)) = outer.get(name.as_str()) {
             let v = &mut g.values[c.index()];
             v.fact = f.clone();
             v.konst = k.clone().map(Box::new);
@@ -242,7 +242,10 @@ fn infer_graph(
             let mut scope: OuterFacts = outer.clone();
             for c in &reads {
                 let v = &g.values[c.index()];
-                scope.insert(v.name.clone(), (v.fact.clone(), v.konst.as_deref().cloned(), v.kind));
+                scope.insert(
+                    v.name.to_string(),
+                    (v.fact.clone(), v.konst.as_deref().cloned(), v.kind),
+                );
             }
             let input_facts: Vec<Fact> = node
                 .inputs
@@ -299,7 +302,7 @@ fn infer_graph(
                 .collect(),
             opset,
             body_outputs,
-            loop_trips: trips.get(&node.name).copied(),
+            loop_trips: trips.get(node.name.as_str()).copied(),
             assumed,
         };
         let (facts, failure): (Vec<Fact>, Option<String>) = match def {
@@ -310,7 +313,7 @@ fn infer_graph(
             None => {
                 let e = unknown_ops
                     .entry((node.domain.to_string(), node.op_type.to_string()))
-                    .or_insert((0, node.name.clone()));
+                    .or_insert((0, node.name.to_string()));
                 e.0 += 1;
                 (Vec::new(), Some(format!("op `{}` is unknown to tilecut", node.op_type)))
             }
@@ -351,8 +354,8 @@ fn infer_graph(
                 if def.is_some() && filled.shape != fact.shape {
                     from_file.0 += 1;
                     if from_file.1.is_none() {
-                        let tensor = slot.map_or(String::new(), |v| g.values[v.index()].name.clone());
-                        from_file.1 = Some((tensor, node.name.clone()));
+                        let tensor = slot.map_or(String::new(), |v| g.values[v.index()].name.to_string());
+                        from_file.1 = Some((tensor, node.name.to_string()));
                     }
                 }
                 *fact = filled;

@@ -236,7 +236,7 @@ fn map_partition(g: &Graph, costs: &Costs, t: &Target, id: usize, nodes: &[NodeI
             .zip(&work)
             .zip(&wbytes)
             .map(|(((s, p), w), b)| Stage {
-                nodes: s.iter().map(|n| g.node(*n).name.clone()).collect(),
+                nodes: s.iter().map(|n| g.node(*n).name.to_string()).collect(),
                 tiles: *p,
                 work_ps_one_tile: *w,
                 weight_bytes: *b,

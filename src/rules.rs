@@ -222,7 +222,7 @@ pub fn judge_node(
         .copied()
         .flatten()
         .or_else(|| e.outputs.first().copied().flatten());
-    let bundle: Vec<String> = e.bundle.iter().map(|b| g.node(*b).name.clone()).collect();
+    let bundle: Vec<String> = e.bundle.iter().map(|b| g.node(*b).name.to_string()).collect();
     if node.folded {
         return Verdict {
             candidate: Candidate::Const,

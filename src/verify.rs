@@ -274,7 +274,7 @@ fn inputs(g: &Graph, feeds: &Feeds) -> Result<Vec<(InputSource, HostTensor)>, Ve
     let mut out = Vec::new();
     for (i, id) in g.inputs.iter().enumerate() {
         let v = g.value(*id);
-        let (source, t) = match feeds.get(&v.name) {
+        let (source, t) = match feeds.get(v.name.as_str()) {
             Some((path, t)) => (path.clone(), t.clone()),
             None if v.konst.is_some() => ("--value".to_string(), value_host(v)?),
             None => {
@@ -284,7 +284,7 @@ fn inputs(g: &Graph, feeds: &Feeds) -> Result<Vec<(InputSource, HostTensor)>, Ve
         };
         out.push((
             InputSource {
-                input: v.name.clone(),
+                input: v.name.to_string(),
                 dtype: t.dtype.name().to_string(),
                 shape: t.dims.clone(),
                 source,
@@ -486,10 +486,10 @@ pub fn verify_tract(
     for o in &g.outputs {
         let name = &g.value(*o).name;
         let want = reference
-            .get(name)
+            .get(name.as_str())
             .ok_or_else(|| VerifyError(format!("the original model produced no `{name}`")))?;
         let got = env
-            .get(name)
+            .get(name.as_str())
             .ok_or_else(|| VerifyError(format!("the pieces produced no `{name}`")))?;
         checks.push(compare(name, want, got, tol));
     }
@@ -608,15 +608,15 @@ pub fn verify_python(
         .iter()
         .map(|id| {
             let v = read.model.graph.value(*id);
-            match given.get(&v.name) {
+            match given.get(v.name.as_str()) {
                 Some((p, t)) => InputSource {
-                    input: v.name.clone(),
+                    input: v.name.to_string(),
                     dtype: t.dtype.name().into(),
                     shape: t.dims.clone(),
                     source: p.clone(),
                 },
                 None => InputSource {
-                    input: v.name.clone(),
+                    input: v.name.to_string(),
                     dtype: v.fact.dtype.map_or("?", DType::name).into(),
                     shape: v.fact.shape.concrete().unwrap_or_default(),
                     source: if v.konst.is_some() {

@@ -280,7 +280,7 @@ fn tilecut_shapes(case: &Case, fixed: bool) -> (BTreeMap<String, Vec<Dim>>, usiz
     let shapes = g
         .values
         .iter()
-        .filter_map(|v| Some((v.name.clone(), v.fact.shape.dims()?.to_vec())))
+        .filter_map(|v| Some((v.name.to_string(), v.fact.shape.dims()?.to_vec())))
         .collect();
     (shapes, read.unknown.len())
 }

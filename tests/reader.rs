@@ -8,6 +8,7 @@ use std::path::{Path, PathBuf};
 use bytes::Bytes;
 use common::*;
 use prost::Message;
+use tilecut::onnx::load::MapLife;
 use tilecut::onnx::{self, StringStringEntryProto, TensorProto};
 
 fn tmp() -> tempfile::TempDir {
@@ -141,10 +142,26 @@ fn node_names_are_kept_repeats_renamed_and_blanks_named() {
             let out = format!("t{}", n - 1);
             model(nodes, vec![vi("x", 1, &[Dm::N(4)])], vec![vi(&out, 1, &[])], vec![])
         };
+        // Read both ways: a file mapped for the process lends the IR its names (`ir::Text`),
+        // which must read exactly as the owned copies do; the names it keeps are borrowed,
+        // those it makes (blank, repeated) owned.
         let names = |m: &tilecut::onnx::ModelProto, file: &str| -> Vec<String> {
             let p = write(d.path(), file, m);
             let read = tilecut::read_model(&p, &Default::default()).expect("reads");
-            read.model.graph.nodes.iter().map(|x| x.name.clone()).collect()
+            let lent =
+                tilecut::read_model_with(&p, &Default::default(), MapLife::Process).expect("reads mapped for good");
+            let g = &lent.model.graph;
+            // Node outputs are named in the nodes, which stay in wire form; graph inputs and
+            // outputs come from decoded (copied) entries.
+            assert!(g.values.iter().all(|v| v.name.is_borrowed() == v.producer.is_some()));
+            for (a, b) in read.model.graph.nodes.iter().zip(&g.nodes) {
+                assert_eq!(a.name, b.name);
+                assert!(!a.name.is_borrowed());
+                assert_eq!(b.name.is_borrowed(), !b.generated_name && !b.name.contains('~'));
+            }
+            let values = |g: &tilecut::ir::Graph| g.values.iter().map(|v| v.name.to_string()).collect::<Vec<_>>();
+            assert_eq!(values(&read.model.graph), values(g));
+            read.model.graph.nodes.iter().map(|x| x.name.to_string()).collect()
         };
         let unique = names(&chain(&|i| format!("r{i}")), &format!("unique_{n}.onnx"));
         assert_eq!(unique, (0..n).map(|i| format!("r{i}")).collect::<Vec<_>>());
@@ -1388,9 +1405,7 @@ fn assert_wiring_agrees(g: &tilecut::ir::Graph, n: usize) {
         let got: Vec<u32> = v.consumers.iter().map(|c| c.index() as u32).collect();
         assert_eq!(got, readers[k], "n = {n}: readers of `{}`", v.name);
         if let Some(p) = v.producer {
-            assert!(g.nodes[p.index()]
-                .outputs
-                .contains(&Some(tilecut::ir::ValueId(k as u32))));
+            assert!(g.nodes[p.index()].outputs.contains(&Some(tilecut::ir::ValueId::new(k))));
         }
     }
 }

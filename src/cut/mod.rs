@@ -133,7 +133,7 @@ pub fn network(g: &Graph, costs: &Costs, forced_cpu: &[bool], forced_accel: &[bo
         net.add_edge(i, t, cpu);
     }
     for (vi, v) in g.values.iter().enumerate() {
-        let vid = ValueId(vi as u32);
+        let vid = ValueId::new(vi);
         if !is_activation(g, vid) {
             continue;
         }
@@ -180,7 +180,7 @@ pub fn serial_cost(g: &Graph, costs: &Costs, side: &[Side]) -> u64 {
         });
     }
     for (vi, v) in g.values.iter().enumerate() {
-        let vid = ValueId(vi as u32);
+        let vid = ValueId::new(vi);
         if !is_activation(g, vid) {
             continue;
         }
@@ -316,7 +316,7 @@ pub fn partitions(g: &Graph, side: &[Side]) -> (Vec<Partition>, Vec<Option<usize
 pub fn cut_points(g: &Graph, costs: &Costs, side: &[Side], partition_of: &[Option<usize>]) -> Vec<CutPoint> {
     let mut out = Vec::new();
     for (vi, v) in g.values.iter().enumerate() {
-        let vid = ValueId(vi as u32);
+        let vid = ValueId::new(vi);
         if !is_activation(g, vid) {
             continue;
         }

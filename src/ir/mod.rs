@@ -5,10 +5,12 @@
 mod dtype;
 mod name;
 mod shape;
+mod text;
 
 pub use dtype::DType;
 pub use name::Name;
 pub use shape::{compact_expression, evaluate, Dim, Shape};
+pub use text::Text;
 
 use bytes::Bytes;
 use std::collections::BTreeMap;
@@ -17,8 +19,10 @@ use std::path::PathBuf;
 #[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord, Hash)]
 pub struct NodeId(pub u32);
 
-#[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord, Hash)]
-pub struct ValueId(pub u32);
+/// A value's index in its graph, stored plus one so that `Option<ValueId>` takes four bytes
+/// (a node's input and output slots are lists of them).
+#[derive(Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash)]
+pub struct ValueId(std::num::NonZeroU32);
 
 impl NodeId {
     pub fn index(self) -> usize {
@@ -27,8 +31,24 @@ impl NodeId {
 }
 
 impl ValueId {
+    /// The id of the value at `index`. A graph holds fewer than 2^32 - 1 values: each takes
+    /// more than one byte of a file of at most 2 GiB, or of memory.
+    pub fn new(index: usize) -> ValueId {
+        let raw = u32::try_from(index).ok().and_then(|i| i.checked_add(1));
+        ValueId(
+            raw.and_then(std::num::NonZeroU32::new)
+                .unwrap_or(std::num::NonZeroU32::MAX),
+        )
+    }
+
     pub fn index(self) -> usize {
-        self.0 as usize
+        self.0.get() as usize - 1
+    }
+}
+
+impl std::fmt::Debug for ValueId {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        write!(f, "ValueId({})", self.index())
     }
 }
 
@@ -311,7 +331,7 @@ pub type Consumers = smallvec::SmallVec<[NodeId; 4]>;
 /// A value (tensor) of a graph.
 #[derive(Clone, Debug)]
 pub struct Value {
-    pub name: String,
+    pub name: Text,
     pub kind: ValueKind,
     pub fact: Fact,
     /// The fact the file declared (graph input/output or value_info), kept for cross-checks.
@@ -327,9 +347,9 @@ pub struct Value {
 
 impl Value {
     /// A value with nothing known of it beyond its kind and fact: no producer, no readers yet.
-    pub fn new(name: &str, kind: ValueKind, fact: Fact) -> Value {
+    pub fn new(name: impl Into<Text>, kind: ValueKind, fact: Fact) -> Value {
         Value {
-            name: name.to_string(),
+            name: name.into(),
             kind,
             fact,
             declared: None,
@@ -387,15 +407,15 @@ pub struct NodeCost {
 
 #[derive(Clone, Debug)]
 pub struct Node {
-    pub name: String,
+    pub name: Text,
     /// True when the file left the node unnamed and `name` was generated.
     pub generated_name: bool,
     /// Shared with every other node of the same op (see `Name`).
     pub op_type: Name,
     pub domain: Name,
     /// One slot per declared input; `None` for an omitted optional input ("").
-    pub inputs: Box<[Option<ValueId>]>,
-    pub outputs: Box<[Option<ValueId>]>,
+    pub inputs: Slots,
+    pub outputs: Slots,
     pub attrs: Box<[Attr]>,
     /// Subgraphs, captures and the function call: few nodes have any, and inline they were
     /// 40 of a node's 200 bytes (see `bodies`, `captures`, `from_function`).
@@ -459,6 +479,10 @@ impl Node {
     }
 }
 
+/// A node's input or output slots: inline up to four (as small as a `Vec`), so that building
+/// a large graph allocates nothing for them on most nodes.
+pub type Slots = smallvec::SmallVec<[Option<ValueId>; 4]>;
+
 /// A node's input values: inline up to four (most nodes read one to three), so that asking
 /// for them allocates nothing.
 pub type Inputs = smallvec::SmallVec<[ValueId; 4]>;
@@ -516,10 +540,7 @@ impl Graph {
     }
 
     pub fn value_by_name(&self, name: &str) -> Option<ValueId> {
-        self.values
-            .iter()
-            .position(|v| v.name == name)
-            .map(|i| ValueId(i as u32))
+        self.values.iter().position(|v| v.name == name).map(ValueId::new)
     }
 
     pub fn node_ids(&self) -> impl Iterator<Item = NodeId> {

@@ -14,6 +14,9 @@ pub struct LoadedModel {
     /// The folder external data is resolved against (canonical).
     pub dir: PathBuf,
     pub proto: ModelProto,
+    /// The file's bytes when it stays mapped for the process (`MapLife::Process`): names
+    /// found in them are borrowed by the IR instead of copied (`ir::Text`).
+    pub lasting: Option<&'static [u8]>,
 }
 
 /// How long a model file stays mapped.
@@ -75,11 +78,11 @@ fn open(path: &Path, life: MapLife, keep_run: bool) -> Result<LoadedModel, ReadE
     // SAFETY: the map is read-only; tilecut never writes the input. A file truncated by another
     // process while mapped would fault; that is the usual contract of mapped readers.
     let map = unsafe { memmap2::Mmap::map(&file) }.map_err(io)?;
-    let bytes = match life {
-        MapLife::Shared => Bytes::from_owner(map),
+    let (bytes, lasting) = match life {
+        MapLife::Shared => (Bytes::from_owner(map), None),
         MapLife::Process => {
             let map: &'static memmap2::Mmap = Box::leak(Box::new(map));
-            Bytes::from_static(map)
+            (Bytes::from_static(map), Some(&map[..]))
         }
     };
     let is_static = life == MapLife::Process;
@@ -104,6 +107,7 @@ fn open(path: &Path, life: MapLife, keep_run: bool) -> Result<LoadedModel, ReadE
         path: path.to_path_buf(),
         dir,
         proto,
+        lasting,
     })
 }
 
@@ -125,6 +129,7 @@ pub fn decode(path: &Path, bytes: Bytes, dir: PathBuf) -> Result<LoadedModel, Re
         path: path.to_path_buf(),
         dir,
         proto,
+        lasting: None,
     })
 }
 

@@ -223,7 +223,7 @@ pub fn build(loaded: &LoadedModel, g: &Graph, plan: &Plan) -> Result<(Vec<OutFil
         .values
         .iter()
         .enumerate()
-        .map(|(i, v)| (v.name.as_str(), crate::ir::ValueId(i as u32)))
+        .map(|(i, v)| (v.name.as_str(), crate::ir::ValueId::new(i)))
         .collect();
     let graph_outputs: BTreeSet<&str> = g.outputs.iter().map(|o| g.value(*o).name.as_str()).collect();
     let mut files = Vec::new();
@@ -255,7 +255,7 @@ pub fn build(loaded: &LoadedModel, g: &Graph, plan: &Plan) -> Result<(Vec<OutFil
             seeds.extend(const_outputs.iter().copied());
         }
         let (nodes, materialize) = piece_nodes(g, plan, &seeds)?;
-        let materialized: BTreeSet<String> = materialize.iter().map(|v| g.value(*v).name.clone()).collect();
+        let materialized: BTreeSet<String> = materialize.iter().map(|v| g.value(*v).name.to_string()).collect();
         let members: BTreeSet<NodeId> = nodes.iter().copied().collect();
         let own: BTreeSet<NodeId> = part.nodes.iter().copied().collect();
         // Proto nodes in IR (topological) order, each file node once.
@@ -297,7 +297,7 @@ pub fn build(loaded: &LoadedModel, g: &Graph, plan: &Plan) -> Result<(Vec<OutFil
         let mut reads: Vec<String> = Vec::new();
         for n in &nodes {
             for v in g.node(*n).all_inputs() {
-                let name = g.value(v).name.clone();
+                let name = g.value(v).name.to_string();
                 if !produced.contains(&name) && !reads.contains(&name) {
                     reads.push(name);
                 }
@@ -412,15 +412,17 @@ pub fn build(loaded: &LoadedModel, g: &Graph, plan: &Plan) -> Result<(Vec<OutFil
                     .any(|c| !members.contains(c) && plan.side[c.index()] != Side::Const);
                 if outside || graph_outputs.contains(val.name.as_str()) {
                     graph.output.push(value_info_fact(&val.name, &val.fact));
-                    outputs.push(val.name.clone());
-                    produced_by.insert(val.name.clone(), part.id);
+                    outputs.push(val.name.to_string());
+                    produced_by.insert(val.name.to_string(), part.id);
                 }
             }
         }
         for n in &nodes {
             for v in g.node(*n).outputs.iter().flatten() {
                 let val = g.value(*v);
-                if !outputs.contains(&val.name) && matches!(val.kind, ValueKind::Activation | ValueKind::Constant) {
+                if !outputs.iter().any(|o| *o == val.name)
+                    && matches!(val.kind, ValueKind::Activation | ValueKind::Constant)
+                {
                     graph.value_info.push(value_info_fact(&val.name, &val.fact));
                 }
             }
@@ -478,7 +480,7 @@ pub fn build(loaded: &LoadedModel, g: &Graph, plan: &Plan) -> Result<(Vec<OutFil
             external_data: ext_name,
         });
     }
-    let graph_inputs: Vec<String> = g.inputs.iter().map(|i| g.value(*i).name.clone()).collect();
+    let graph_inputs: Vec<String> = g.inputs.iter().map(|i| g.value(*i).name.to_string()).collect();
     let mut wiring = Vec::new();
     let mut names: BTreeSet<String> = consumed_by.keys().cloned().collect();
     names.extend(produced_by.keys().cloned());

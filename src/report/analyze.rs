@@ -303,7 +303,7 @@ fn fix_first(i: &Inputs) -> Vec<FixRow> {
         let e = groups
             .entry((label, first.code, suggestion))
             .or_insert_with(|| (Vec::new(), 0, 0, first.message.clone(), true));
-        e.0.push(n.name.clone());
+        e.0.push(n.name.to_string());
         e.1 = e.1.saturating_add(i.costs.cpu_ps[k]);
         e.2 = e.2.saturating_add(n.cost.macs.unwrap_or(0));
         e.4 &= n.cost.macs.is_some() && n.cost.ops.is_some();
@@ -432,7 +432,7 @@ pub fn build(i: &Inputs) -> AnalyzeReport {
         .enumerate()
         .filter(|(_, v)| matches!(v.kind, ValueKind::Input | ValueKind::Activation | ValueKind::Output))
         .map(|(k, v)| TensorCost {
-            name: v.name.clone(),
+            name: v.name.to_string(),
             dtype: v.fact.dtype.map(|d| d.name().to_string()),
             shape: shape_json(&v.fact.shape),
             bytes: i.costs.bytes[k],
@@ -460,9 +460,14 @@ pub fn build(i: &Inputs) -> AnalyzeReport {
             }
         }
         nodes.push(NodeRow {
-            name: n.name.clone(),
+            name: n.name.to_string(),
             op: n.op_type.to_string(),
-            outputs: n.outputs.iter().flatten().map(|o| g.value(*o).name.clone()).collect(),
+            outputs: n
+                .outputs
+                .iter()
+                .flatten()
+                .map(|o| g.value(*o).name.to_string())
+                .collect(),
             placement: side,
             partition: plan.partition_of[k],
             macs: n.cost.macs,
@@ -487,17 +492,17 @@ pub fn build(i: &Inputs) -> AnalyzeReport {
                     let val = g.value(v);
                     if !matches!(val.kind, ValueKind::Initializer | ValueKind::Constant)
                         && val.producer.is_none_or(|q| !members.contains(&q.index()))
-                        && !ins.contains(&val.name)
+                        && !ins.iter().any(|x| *x == val.name)
                     {
-                        ins.push(val.name.clone());
+                        ins.push(val.name.to_string());
                     }
                 }
                 for v in g.node(*n).outputs.iter().flatten() {
                     let val = g.value(*v);
                     if (val.consumers.iter().any(|c| !members.contains(&c.index())) || g.outputs.contains(v))
-                        && !outs.contains(&val.name)
+                        && !outs.iter().any(|x| *x == val.name)
                     {
-                        outs.push(val.name.clone());
+                        outs.push(val.name.to_string());
                     }
                 }
             }
@@ -526,7 +531,7 @@ pub fn build(i: &Inputs) -> AnalyzeReport {
             PartitionRow {
                 id: p.id,
                 side: p.side,
-                nodes: p.nodes.iter().map(|n| g.node(*n).name.clone()).collect(),
+                nodes: p.nodes.iter().map(|n| g.node(*n).name.to_string()).collect(),
                 macs,
                 weight_bytes: wb,
                 inputs: ins,
@@ -557,9 +562,9 @@ pub fn build(i: &Inputs) -> AnalyzeReport {
         .map(|c| {
             let v = g.value(c.value);
             CutRow {
-                tensor: v.name.clone(),
-                producer: c.producer.map(|p| g.node(p).name.clone()),
-                consumers: c.consumers.iter().map(|n| g.node(*n).name.clone()).collect(),
+                tensor: v.name.to_string(),
+                producer: c.producer.map(|p| g.node(p).name.to_string()),
+                consumers: c.consumers.iter().map(|n| g.node(*n).name.to_string()).collect(),
                 from_partition: c.from_partition,
                 to_partition: c.to_partitions.first().copied(),
                 to_partitions: c.to_partitions.clone(),

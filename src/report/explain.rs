@@ -12,7 +12,7 @@ pub fn find(a: &Analysis, name: &str) -> Option<NodeId> {
         g.values
             .iter()
             .position(|v| v.name == name)
-            .and_then(|i| g.value(ValueId(i as u32)).producer)
+            .and_then(|i| g.value(ValueId::new(i)).producer)
     })
 }
 

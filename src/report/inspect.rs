@@ -273,7 +273,7 @@ fn weights(g: &Graph, acc: &mut (u64, u64)) {
             .and_then(|d| d.bytes())
             .or_else(|| v.fact.bytes())
             .unwrap_or(0);
-        if !only_quant_params(g, crate::ir::ValueId(i as u32)) {
+        if !only_quant_params(g, crate::ir::ValueId::new(i)) {
             acc.0 = acc.0.saturating_add(n);
         }
         acc.1 = acc.1.saturating_add(b);
@@ -299,7 +299,7 @@ pub fn build<'a>(model: &'a Model, diags: &[Diagnostic], reasons: &'a UnknownRea
     let port = |id: &crate::ir::ValueId| {
         let v = g.value(*id);
         Port {
-            name: v.name.clone(),
+            name: v.name.to_string(),
             dtype: dtype_name(&v.fact).map(String::from),
             shape: shape_json(&v.fact.shape),
         }

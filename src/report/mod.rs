@@ -66,7 +66,7 @@ pub(crate) fn inputs_to_size(g: &crate::ir::Graph) -> Vec<String> {
                 .dims()
                 .is_some_and(|d| d.contains(&crate::ir::Dim::Unknown))
         })
-        .map(|v| v.name.clone())
+        .map(|v| v.name.to_string())
         .collect()
 }
 

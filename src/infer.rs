@@ -305,17 +305,23 @@ fn infer_graph(
             loop_trips: trips.get(node.name.as_str()).copied(),
             assumed,
         };
-        let (facts, failure): (Vec<Fact>, Option<String>) = match def {
+        let (facts, failure): (ops::Facts, Option<String>) = match def {
             Some(d) => match (d.infer)(&ctx) {
                 Ok(f) => (f, None),
-                Err(e) => (Vec::new(), Some(format!("{} could not be inferred: {e}", node.op_type))),
+                Err(e) => (
+                    ops::Facts::new(),
+                    Some(format!("{} could not be inferred: {e}", node.op_type)),
+                ),
             },
             None => {
                 let e = unknown_ops
                     .entry((node.domain.to_string(), node.op_type.to_string()))
                     .or_insert((0, node.name.to_string()));
                 e.0 += 1;
-                (Vec::new(), Some(format!("op `{}` is unknown to tilecut", node.op_type)))
+                (
+                    ops::Facts::new(),
+                    Some(format!("op `{}` is unknown to tilecut", node.op_type)),
+                )
             }
         };
         let folded_values = def.and_then(|d| d.fold).and_then(|f| f(&ctx));

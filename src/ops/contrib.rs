@@ -12,7 +12,10 @@ use super::{conv, matmul, reduce, shape_ops, vision, CostRule, Ctx, Inferred, Ma
 /// QLinearAdd / QLinearMul: (A, A_scale, A_zp, B, B_scale, B_zp, C_scale, C_zp) → the
 /// broadcast of A and B, in A's integer type.
 fn qlinear_binary(ctx: &Ctx) -> Inferred {
-    Ok(vec![tensor(ctx.dtype(0), broadcast(&[ctx.shape(0), ctx.shape(3)])?)])
+    Ok(smallvec::smallvec![tensor(
+        ctx.dtype(0),
+        broadcast(&[ctx.shape(0), ctx.shape(3)])?
+    )])
 }
 
 /// QLinearGlobalAveragePool: [N, C, D…] → [N, C, 1…], or [N, D…, C] → [N, 1…, C] with
@@ -32,7 +35,7 @@ fn qlinear_global_pool(ctx: &Ctx) -> Inferred {
         o.extend(std::iter::repeat_n(Dim::Known(1), x.len() - 2));
         o
     };
-    Ok(vec![tensor(ctx.dtype(0), Shape::of(out))])
+    Ok(smallvec::smallvec![tensor(ctx.dtype(0), Shape::of(out))])
 }
 
 /// The NCHW view of a channels-last tensor [N, D…, C], and back.
@@ -66,7 +69,7 @@ fn qlinear_average_pool(ctx: &Ctx) -> Inferred {
     let mut out = vec![nchw[0].clone(), nchw[1].clone()];
     out.extend(spatial(ctx, &nchw, None, ctx.int("ceil_mode", 0) != 0)?);
     let out = if last { to_channels_last(&out) } else { out };
-    Ok(vec![tensor(ctx.dtype(0), Shape::of(out))])
+    Ok(smallvec::smallvec![tensor(ctx.dtype(0), Shape::of(out))])
 }
 
 /// NhwcMaxPool: MaxPool over a channels-last X.
@@ -78,7 +81,10 @@ fn nhwc_max_pool(ctx: &Ctx) -> Inferred {
     let nchw = to_channels_first(&x);
     let mut out = vec![nchw[0].clone(), nchw[1].clone()];
     out.extend(spatial(ctx, &nchw, None, ctx.int("ceil_mode", 0) != 0)?);
-    Ok(vec![tensor(ctx.dtype(0), Shape::of(to_channels_last(&out)))])
+    Ok(smallvec::smallvec![tensor(
+        ctx.dtype(0),
+        Shape::of(to_channels_last(&out))
+    )])
 }
 
 /// NhwcConv: X [N, D…, C], W [M, C/group, k…] → [N, O…, M].
@@ -98,7 +104,10 @@ fn nhwc_conv(ctx: &Ctx) -> Inferred {
         w.as_ref().and_then(|w| w.first().cloned()).unwrap_or(Dim::Unknown),
     ];
     out.extend(spatial(ctx, &nchw, kernel, false)?);
-    Ok(vec![tensor(ctx.dtype(0), Shape::of(to_channels_last(&out)))])
+    Ok(smallvec::smallvec![tensor(
+        ctx.dtype(0),
+        Shape::of(to_channels_last(&out))
+    )])
 }
 
 /// QLinearConcat: (Y_scale, Y_zp, then X, X_scale, X_zp per input) → concat of the X along
@@ -106,7 +115,7 @@ fn nhwc_conv(ctx: &Ctx) -> Inferred {
 fn qlinear_concat(ctx: &Ctx) -> Inferred {
     let shapes: Vec<Option<Vec<Dim>>> = (2..ctx.node.inputs.len()).step_by(3).map(|i| ctx.dims(i)).collect();
     let shape = shape_ops::concat_shape(&shapes, ctx.int("axis", 0))?;
-    Ok(vec![tensor(ctx.dtype(1).or(ctx.dtype(2)), shape)])
+    Ok(smallvec::smallvec![tensor(ctx.dtype(1).or(ctx.dtype(2)), shape)])
 }
 
 /// QGemm: (A, a_scale, a_zp, B, b_scale, b_zp, C?, y_scale?, y_zp?) with transA/transB →
@@ -125,7 +134,7 @@ fn qgemm(ctx: &Ctx) -> Inferred {
     } else {
         Some(DType::F32)
     };
-    Ok(vec![tensor(dt, Shape::of(vec![m.clone(), n.clone()]))])
+    Ok(smallvec::smallvec![tensor(dt, Shape::of(vec![m.clone(), n.clone()]))])
 }
 
 /// NhwcConv MACs: every output element takes (C/group)·∏kernel, W being [M, C/group, k…].
@@ -155,7 +164,7 @@ fn embed_layer_norm(ctx: &Ctx) -> Inferred {
     if ctx.outputs() > 2 {
         outs.push(tensor(dt, hidden));
     }
-    Ok(outs)
+    Ok(outs.into())
 }
 
 /// GroupQueryAttention: query [B, S, hidden] (or packed QKV when key is absent), with
@@ -187,7 +196,7 @@ fn group_query_attention(ctx: &Ctx) -> Inferred {
             ]),
         ));
     }
-    Ok(outs)
+    Ok(outs.into())
 }
 
 /// Q·Kᵀ and A·V run over the total sequence, past cache included, which the graph does
@@ -206,7 +215,7 @@ fn bias_split_gelu(ctx: &Ctx) -> Inferred {
         Dim::Known(d) => Dim::Known(d / 2),
         _ => Dim::Unknown,
     };
-    Ok(vec![tensor(
+    Ok(smallvec::smallvec![tensor(
         ctx.dtype(0),
         Shape::of(vec![x[0].clone(), x[1].clone(), half]),
     )])
@@ -225,7 +234,7 @@ fn bias_dropout(ctx: &Ctx) -> Inferred {
     if ctx.outputs() > 1 {
         outs.push(tensor(Some(DType::Bool), ctx.shape(0)));
     }
-    Ok(outs)
+    Ok(outs.into())
 }
 
 macro_rules! op {

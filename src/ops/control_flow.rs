@@ -111,7 +111,7 @@ fn loop_(ctx: &Ctx) -> Inferred {
             outs.push(tensor(f.dtype, shape));
         }
     }
-    Ok(outs)
+    Ok(outs.into())
 }
 
 /// Where a Scan node's inputs are and how its body sees them, in both forms of the operator
@@ -241,7 +241,7 @@ fn scan(ctx: &Ctx) -> Inferred {
         };
         outs.push(tensor(f.dtype, shape));
     }
-    Ok(outs)
+    Ok(outs.into())
 }
 
 macro_rules! op {

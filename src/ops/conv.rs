@@ -183,7 +183,7 @@ pub(super) fn conv(ctx: &Ctx) -> Inferred {
         "QLinearConv" => ctx.dtype(7),
         _ => ctx.dtype(0),
     };
-    Ok(vec![tensor(dtype, Shape::of(out))])
+    Ok(smallvec::smallvec![tensor(dtype, Shape::of(out))])
 }
 
 fn conv_transpose(ctx: &Ctx) -> Inferred {
@@ -210,7 +210,7 @@ fn conv_transpose(ctx: &Ctx) -> Inferred {
     if let Some(shape) = ctx.ints("output_shape") {
         let s = &shape[shape.len().saturating_sub(spatial)..];
         out.extend(s.iter().map(|&v| Dim::Known(v.max(0) as u64)));
-        return Ok(vec![tensor(ctx.dtype(0), Shape::of(out))]);
+        return Ok(smallvec::smallvec![tensor(ctx.dtype(0), Shape::of(out))]);
     }
     for i in 0..spatial {
         let (s, k, d) = (win.strides[i] as i64, win.kernel[i] as i64, win.dilations[i] as i64);
@@ -236,7 +236,7 @@ fn conv_transpose(ctx: &Ctx) -> Inferred {
             Dim::Unknown => Dim::Unknown,
         });
     }
-    Ok(vec![tensor(ctx.dtype(0), Shape::of(out))])
+    Ok(smallvec::smallvec![tensor(ctx.dtype(0), Shape::of(out))])
 }
 
 pub(super) fn pool(ctx: &Ctx) -> Inferred {
@@ -253,7 +253,7 @@ pub(super) fn pool(ctx: &Ctx) -> Inferred {
     if ctx.outputs() > 1 {
         outs.push(tensor(Some(DType::I64), shape));
     }
-    Ok(outs)
+    Ok(outs.into())
 }
 
 fn global_pool(ctx: &Ctx) -> Inferred {
@@ -263,7 +263,7 @@ fn global_pool(ctx: &Ctx) -> Inferred {
     }
     let mut out = vec![x[0].clone(), x[1].clone()];
     out.extend(std::iter::repeat_n(Dim::Known(1), x.len() - 2));
-    Ok(vec![tensor(ctx.dtype(0), Shape::of(out))])
+    Ok(smallvec::smallvec![tensor(ctx.dtype(0), Shape::of(out))])
 }
 
 /// MaxUnpool: `output_shape` (input 2) when given, else each spatial dim is
@@ -278,7 +278,7 @@ fn max_unpool(ctx: &Ctx) -> Inferred {
             Some(c) => Shape::of(c.as_dims()),
             None => Shape::of_rank(x.len()),
         };
-        return Ok(vec![tensor(ctx.dtype(0), shape)]);
+        return Ok(smallvec::smallvec![tensor(ctx.dtype(0), shape)]);
     }
     let spatial = x.len() - 2;
     let win = window(ctx, spatial, None)?;
@@ -293,7 +293,7 @@ fn max_unpool(ctx: &Ctx) -> Inferred {
             _ => Dim::Unknown,
         });
     }
-    Ok(vec![tensor(ctx.dtype(0), Shape::of(out))])
+    Ok(smallvec::smallvec![tensor(ctx.dtype(0), Shape::of(out))])
 }
 
 pub(super) fn conv_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
@@ -362,7 +362,7 @@ fn causal_conv_with_state(ctx: &Ctx) -> Inferred {
         };
         outs.push(tensor(ctx.dtype(0), state));
     }
-    Ok(outs)
+    Ok(outs.into())
 }
 
 /// Depthwise: each output element is k multiply-accumulates; the fused SiLU is two ops per

@@ -13,7 +13,7 @@ fn like_with_dtype(ctx: &Ctx) -> Inferred {
         Some(c) => DType::from_onnx(c as i32),
         None => ctx.dtype(0),
     };
-    Ok(vec![tensor(dt, ctx.shape(0))])
+    Ok(smallvec::smallvec![tensor(dt, ctx.shape(0))])
 }
 
 /// BitCast (opset 26): the same bits as the `to` type, which must be as wide (ONNX operator
@@ -32,7 +32,7 @@ fn bitcast(ctx: &Ctx) -> Inferred {
             ));
         }
     }
-    Ok(vec![tensor(Some(dt), ctx.shape(0))])
+    Ok(smallvec::smallvec![tensor(Some(dt), ctx.shape(0))])
 }
 
 /// RandomUniform / RandomNormal: the `shape` attribute, the `dtype` attribute's type (float by
@@ -44,7 +44,7 @@ fn random(ctx: &Ctx) -> Inferred {
         .map(|&d| u64::try_from(d).map_err(|_| format!("negative dim {d} in `shape`")))
         .collect::<Result<_, _>>()?;
     let dt = DType::from_onnx(ctx.int("dtype", 1) as i32);
-    Ok(vec![tensor(dt, Shape::known(&dims))])
+    Ok(smallvec::smallvec![tensor(dt, Shape::known(&dims))])
 }
 
 /// Multinomial: [batch, sample_size] of the `dtype` attribute's type (int32 by default, per the
@@ -57,7 +57,10 @@ fn multinomial(ctx: &Ctx) -> Inferred {
     };
     let samples = u64::try_from(ctx.int("sample_size", 1)).map_err(|_| "negative sample_size")?;
     let dt = DType::from_onnx(ctx.int("dtype", 6) as i32);
-    Ok(vec![tensor(dt, Shape::of(vec![batch, Dim::Known(samples)]))])
+    Ok(smallvec::smallvec![tensor(
+        dt,
+        Shape::of(vec![batch, Dim::Known(samples)])
+    )])
 }
 
 /// SwiGLU (opset 28): Swish(A)·B over two inputs of identical shape, no broadcasting (ONNX
@@ -84,9 +87,12 @@ fn swiglu(ctx: &Ctx) -> Inferred {
                 }
             })
             .collect();
-        return Ok(vec![tensor(ctx.dtype(0).or(ctx.dtype(1)), Shape::of(merged))]);
+        return Ok(smallvec::smallvec![tensor(
+            ctx.dtype(0).or(ctx.dtype(1)),
+            Shape::of(merged)
+        )]);
     }
-    Ok(vec![tensor(
+    Ok(smallvec::smallvec![tensor(
         ctx.dtype(0).or(ctx.dtype(1)),
         if a.rank().is_some() { a } else { b },
     )])
@@ -95,11 +101,11 @@ fn swiglu(ctx: &Ctx) -> Inferred {
 fn unary(ctx: &Ctx) -> Inferred {
     let mut outs = vec![same_as(ctx, 0)];
     outs.truncate(ctx.outputs().max(1));
-    Ok(outs)
+    Ok(outs.into())
 }
 
 fn to_bool(ctx: &Ctx) -> Inferred {
-    Ok(vec![tensor(Some(DType::Bool), ctx.shape(0))])
+    Ok(smallvec::smallvec![tensor(Some(DType::Bool), ctx.shape(0))])
 }
 
 fn bcast_inputs(ctx: &Ctx) -> Result<Shape, String> {
@@ -114,30 +120,36 @@ fn bcast_inputs(ctx: &Ctx) -> Result<Shape, String> {
 }
 
 fn binary(ctx: &Ctx) -> Inferred {
-    Ok(vec![tensor(ctx.dtype(0).or(ctx.dtype(1)), bcast_inputs(ctx)?)])
+    Ok(smallvec::smallvec![tensor(
+        ctx.dtype(0).or(ctx.dtype(1)),
+        bcast_inputs(ctx)?
+    )])
 }
 
 fn compare(ctx: &Ctx) -> Inferred {
-    Ok(vec![tensor(Some(DType::Bool), bcast_inputs(ctx)?)])
+    Ok(smallvec::smallvec![tensor(Some(DType::Bool), bcast_inputs(ctx)?)])
 }
 
 fn prelu(ctx: &Ctx) -> Inferred {
     // Unidirectional broadcast of slope to X: the output has X's shape.
-    Ok(vec![same_as(ctx, 0)])
+    Ok(smallvec::smallvec![same_as(ctx, 0)])
 }
 
 fn where_(ctx: &Ctx) -> Inferred {
-    Ok(vec![tensor(ctx.dtype(1).or(ctx.dtype(2)), bcast_inputs(ctx)?)])
+    Ok(smallvec::smallvec![tensor(
+        ctx.dtype(1).or(ctx.dtype(2)),
+        bcast_inputs(ctx)?
+    )])
 }
 
 fn cast(ctx: &Ctx) -> Inferred {
     let to = ctx.opt_int("to").ok_or("Cast without `to`")?;
     let dt = DType::from_onnx(to as i32).ok_or_else(|| format!("Cast to unknown type code {to}"))?;
-    Ok(vec![tensor(Some(dt), ctx.shape(0))])
+    Ok(smallvec::smallvec![tensor(Some(dt), ctx.shape(0))])
 }
 
 fn cast_like(ctx: &Ctx) -> Inferred {
-    Ok(vec![tensor(ctx.dtype(1), ctx.shape(0))])
+    Ok(smallvec::smallvec![tensor(ctx.dtype(1), ctx.shape(0))])
 }
 
 fn dropout(ctx: &Ctx) -> Inferred {
@@ -145,7 +157,7 @@ fn dropout(ctx: &Ctx) -> Inferred {
     if ctx.outputs() > 1 {
         outs.push(tensor(Some(DType::Bool), ctx.shape(0)));
     }
-    Ok(outs)
+    Ok(outs.into())
 }
 
 fn eye_like(ctx: &Ctx) -> Inferred {
@@ -153,7 +165,7 @@ fn eye_like(ctx: &Ctx) -> Inferred {
         .opt_int("dtype")
         .and_then(|c| DType::from_onnx(c as i32))
         .or(ctx.dtype(0));
-    Ok(vec![tensor(dt, ctx.shape(0))])
+    Ok(smallvec::smallvec![tensor(dt, ctx.shape(0))])
 }
 
 fn fold_with(

@@ -48,7 +48,7 @@ fn matmul(ctx: &Ctx) -> Inferred {
     let (Some(a), Some(b)) = (ctx.dims_ref(ia), ctx.dims_ref(ib)) else {
         return Err("operand rank unknown".into());
     };
-    Ok(vec![tensor(dt, Shape::of(matmul_shape(a, b)?))])
+    Ok(smallvec::smallvec![tensor(dt, Shape::of(matmul_shape(a, b)?))])
 }
 
 fn matmul_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
@@ -82,7 +82,7 @@ pub(super) fn gemm(ctx: &Ctx) -> Inferred {
     } else {
         b[1].clone()
     };
-    Ok(vec![tensor(ctx.dtype(0), Shape::of(vec![m, n]))])
+    Ok(smallvec::smallvec![tensor(ctx.dtype(0), Shape::of(vec![m, n]))])
 }
 
 pub(super) fn gemm_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
@@ -197,7 +197,7 @@ fn einsum(ctx: &Ctx) -> Inferred {
             );
         }
     }
-    Ok(vec![tensor(ctx.dtype(0), Shape::of(out))])
+    Ok(smallvec::smallvec![tensor(ctx.dtype(0), Shape::of(out))])
 }
 
 fn einsum_macs(ctx: &Ctx, _outs: &[Fact]) -> MacsOps {
@@ -271,7 +271,7 @@ fn attention(ctx: &Ctx) -> Inferred {
     if ctx.outputs() > 3 {
         outs.push(tensor(dt, Shape::of(vec![batch, q_heads, q_len, total])));
     }
-    Ok(outs)
+    Ok(outs.into())
 }
 
 fn attention_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
@@ -336,7 +336,7 @@ fn linear_attention(ctx: &Ctx) -> Inferred {
         };
         outs.push(tensor(ctx.dtype(3).or(ctx.dtype(0)), state));
     }
-    Ok(outs)
+    Ok(outs.into())
 }
 
 /// The recurrence a LinearAttention node runs: (gated, delta). `gated_delta` by default, as
@@ -398,7 +398,7 @@ fn ms_attention(ctx: &Ctx) -> Inferred {
             _ => Dim::Unknown,
         },
     };
-    Ok(vec![tensor(
+    Ok(smallvec::smallvec![tensor(
         ctx.dtype(0),
         Shape::of(vec![x[0].clone(), x[1].clone(), v_hidden]),
     )])
@@ -427,7 +427,7 @@ fn mha(ctx: &Ctx) -> Inferred {
         Some(v) if v.len() == 3 => v[2].clone(),
         _ => q[2].clone(),
     };
-    Ok(vec![tensor(
+    Ok(smallvec::smallvec![tensor(
         ctx.dtype(0),
         Shape::of(vec![q[0].clone(), q[1].clone(), v_last]),
     )])
@@ -439,7 +439,7 @@ fn matmul_nbits(ctx: &Ctx) -> Inferred {
     let mut out = a.clone();
     let last = out.last_mut().ok_or("A is a scalar")?;
     *last = Dim::Known(n.max(0) as u64);
-    Ok(vec![tensor(ctx.dtype(0), Shape::of(out))])
+    Ok(smallvec::smallvec![tensor(ctx.dtype(0), Shape::of(out))])
 }
 
 fn matmul_nbits_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
@@ -464,7 +464,10 @@ fn fused_matmul(ctx: &Ctx) -> Inferred {
         let n = b.len();
         b.swap(n - 1, n - 2);
     }
-    Ok(vec![tensor(ctx.dtype(0), Shape::of(matmul_shape(&a, &b)?))])
+    Ok(smallvec::smallvec![tensor(
+        ctx.dtype(0),
+        Shape::of(matmul_shape(&a, &b)?)
+    )])
 }
 
 macro_rules! op {

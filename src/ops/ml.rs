@@ -74,7 +74,7 @@ fn class_labels(ctx: &Ctx) -> Result<(u64, DType), String> {
 
 /// Scaler, Normalizer: X's shape, float32 out.
 fn float_like_input(ctx: &Ctx) -> Inferred {
-    Ok(vec![tensor(Some(DType::F32), ctx.shape(0))])
+    Ok(smallvec::smallvec![tensor(Some(DType::F32), ctx.shape(0))])
 }
 
 /// LabelEncoder-1/2/4: X's shape; the type of the values it maps to.
@@ -95,7 +95,7 @@ fn label_encoder(ctx: &Ctx) -> Inferred {
             _ => None,
         }
     };
-    Ok(vec![tensor(dtype, ctx.shape(0))])
+    Ok(smallvec::smallvec![tensor(dtype, ctx.shape(0))])
 }
 
 /// CategoryMapper-1: strings to int64 and int64 to strings, X's shape.
@@ -106,7 +106,7 @@ fn category_mapper(ctx: &Ctx) -> Inferred {
         Some(t) => return Err(format!("input of type {}, expected string or int64", t.name())),
         None => None,
     };
-    Ok(vec![tensor(dtype, ctx.shape(0))])
+    Ok(smallvec::smallvec![tensor(dtype, ctx.shape(0))])
 }
 
 /// OneHotEncoder-1: X's shape plus one axis as long as the category list, float32.
@@ -122,7 +122,7 @@ fn one_hot_encoder(ctx: &Ctx) -> Inferred {
         }
         None => Shape::unknown(),
     };
-    Ok(vec![tensor(Some(DType::F32), shape)])
+    Ok(smallvec::smallvec![tensor(Some(DType::F32), shape)])
 }
 
 /// ArrayFeatureExtractor-1: the indices Y pick along X's last axis. For the 1-D Y the spec's
@@ -138,7 +138,7 @@ fn array_feature_extractor(ctx: &Ctx) -> Inferred {
         (Some(_), Some(_)) => return Err("X is a scalar".into()),
         _ => Shape::unknown(),
     };
-    Ok(vec![tensor(ctx.dtype(0), shape)])
+    Ok(smallvec::smallvec![tensor(ctx.dtype(0), shape)])
 }
 
 /// FeatureVectorizer-1: the inputs' features side by side, `[N, Σ inputdimensions]`, float32.
@@ -149,7 +149,7 @@ fn feature_vectorizer(ctx: &Ctx) -> Inferred {
         .iter()
         .map(|&d| u64::try_from(d).map_err(|_| format!("negative input dimension {d}")))
         .sum::<Result<u64, String>>()?;
-    Ok(vec![tensor(
+    Ok(smallvec::smallvec![tensor(
         Some(DType::F32),
         per_row(&batch(ctx)?, &[Dim::Known(total)]),
     )])
@@ -163,12 +163,15 @@ fn linear_regressor(ctx: &Ctx) -> Inferred {
         Batch::Single(_) => Shape::known(&[targets]),
         b => per_row(&b, &[Dim::Known(targets)]),
     };
-    Ok(vec![tensor(Some(DType::F32), shape)])
+    Ok(smallvec::smallvec![tensor(Some(DType::F32), shape)])
 }
 
 /// SVMRegressor-1: one score per example, `[N, 1]`, float32.
 fn svm_regressor(ctx: &Ctx) -> Inferred {
-    Ok(vec![tensor(Some(DType::F32), per_row(&batch(ctx)?, &[Dim::Known(1)]))])
+    Ok(smallvec::smallvec![tensor(
+        Some(DType::F32),
+        per_row(&batch(ctx)?, &[Dim::Known(1)])
+    )])
 }
 
 /// LinearClassifier-1, SVMClassifier-1, TreeEnsembleClassifier-1/3: the label per example
@@ -177,7 +180,7 @@ fn svm_regressor(ctx: &Ctx) -> Inferred {
 fn classifier(ctx: &Ctx) -> Inferred {
     let (classes, labels) = class_labels(ctx)?;
     let b = batch(ctx)?;
-    Ok(vec![
+    Ok(smallvec::smallvec![
         tensor(Some(labels), per_row(&b, &[])),
         tensor(Some(DType::F32), per_row(&b, &[Dim::Known(classes)])),
     ])
@@ -186,7 +189,7 @@ fn classifier(ctx: &Ctx) -> Inferred {
 /// TreeEnsembleRegressor-1/3: `[N, n_targets]`, float32.
 fn tree_regressor(ctx: &Ctx) -> Inferred {
     let targets = u64::try_from(ctx.int("n_targets", 1)).map_err(|_| "negative n_targets")?;
-    Ok(vec![tensor(
+    Ok(smallvec::smallvec![tensor(
         Some(DType::F32),
         per_row(&batch(ctx)?, &[Dim::Known(targets)]),
     )])
@@ -196,7 +199,7 @@ fn tree_regressor(ctx: &Ctx) -> Inferred {
 fn tree_ensemble(ctx: &Ctx) -> Inferred {
     let targets = ctx.opt_int("n_targets").ok_or("no n_targets")?;
     let targets = u64::try_from(targets).map_err(|_| "negative n_targets")?;
-    Ok(vec![tensor(
+    Ok(smallvec::smallvec![tensor(
         ctx.dtype(0),
         per_row(&batch(ctx)?, &[Dim::Known(targets)]),
     )])
@@ -209,7 +212,7 @@ fn zip_map(_ctx: &Ctx) -> Inferred {
         dtype: Some(DType::F32),
         shape: Shape::unknown(),
     };
-    Ok(vec![Fact {
+    Ok(smallvec::smallvec![Fact {
         value_type: ValueType::sequence(map, None),
         dtype: None,
         shape: Shape::unknown(),

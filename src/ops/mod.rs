@@ -89,7 +89,11 @@ impl AssumedSizes {
 }
 
 /// An inference outcome for one node: the output facts, or why they are unknown.
-pub type Inferred = Result<Vec<Fact>, String>;
+/// The facts of a node's outputs, inline up to two: most ops have one or two outputs, and a
+/// large graph paid one allocation per node for the list.
+pub type Facts = smallvec::SmallVec<[Fact; 2]>;
+
+pub type Inferred = Result<Facts, String>;
 
 /// (MACs, other ops) of one node; `None` where a dim is unknown.
 pub type MacsOps = (Option<u64>, Option<u64>);

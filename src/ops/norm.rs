@@ -10,7 +10,7 @@ fn batch_norm(ctx: &Ctx) -> Inferred {
     for _ in 1..ctx.outputs() {
         outs.push(tensor(ctx.dtype(1).or(ctx.dtype(0)), ctx.shape(1)));
     }
-    Ok(outs)
+    Ok(outs.into())
 }
 
 /// LayerNormalization (opset 17): Mean and InvStdDev keep the dims before `axis`, ones after.
@@ -31,7 +31,7 @@ fn layer_norm(ctx: &Ctx) -> Inferred {
             outs.push(tensor(stash, stat.clone()));
         }
     }
-    Ok(outs)
+    Ok(outs.into())
 }
 
 /// Contrib-domain SkipLayerNormalization family: output, mean, inv_std_var, input+skip(+bias).
@@ -52,7 +52,7 @@ fn skip_norm(ctx: &Ctx) -> Inferred {
             outs.push(tensor(Some(DType::F32), stat.clone()));
         }
     }
-    Ok(outs)
+    Ok(outs.into())
 }
 
 macro_rules! op {

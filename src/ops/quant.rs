@@ -18,7 +18,7 @@ fn quantize(ctx: &Ctx) -> Inferred {
             None => Some(DType::U8),
         }
     };
-    Ok(vec![tensor(dt, ctx.shape(0))])
+    Ok(smallvec::smallvec![tensor(dt, ctx.shape(0))])
 }
 
 /// DequantizeLinear: y has x's shape and x_scale's type (opset 23 adds `output_dtype`).
@@ -27,11 +27,11 @@ fn dequantize(ctx: &Ctx) -> Inferred {
         Some(c) => DType::from_onnx(c as i32),
         None => ctx.dtype(1).or(Some(DType::F32)),
     };
-    Ok(vec![tensor(dt, ctx.shape(0))])
+    Ok(smallvec::smallvec![tensor(dt, ctx.shape(0))])
 }
 
 fn dynamic_quantize(ctx: &Ctx) -> Inferred {
-    Ok(vec![
+    Ok(smallvec::smallvec![
         tensor(Some(DType::U8), ctx.shape(0)),
         tensor(Some(DType::F32), Shape::scalar()),
         tensor(Some(DType::U8), Shape::scalar()),

@@ -59,7 +59,7 @@ fn recurrent(ctx: &Ctx) -> Inferred {
     for _ in 1..ctx.outputs() {
         outs.push(tensor(dt, Shape::of(state.clone())));
     }
-    Ok(outs)
+    Ok(outs.into())
 }
 
 fn recurrent_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {

@@ -58,13 +58,13 @@ pub(super) fn reduce(ctx: &Ctx) -> Inferred {
     let keep = ctx.int("keepdims", 1) != 0;
     let dt = ctx.dtype(0);
     let Some(dims) = ctx.dims(0) else {
-        return Ok(vec![tensor(dt, Shape::unknown())]);
+        return Ok(smallvec::smallvec![tensor(dt, Shape::unknown())]);
     };
     let reduced = match reduced_axes(ctx, dims.len())? {
         Axes::Reduce(r) => r,
-        Axes::Identity => return Ok(vec![tensor(dt, Shape::of(dims))]),
-        Axes::Unknown if keep => return Ok(vec![tensor(dt, Shape::of_rank(dims.len()))]),
-        Axes::Unknown => return Ok(vec![tensor(dt, Shape::unknown())]),
+        Axes::Identity => return Ok(smallvec::smallvec![tensor(dt, Shape::of(dims))]),
+        Axes::Unknown if keep => return Ok(smallvec::smallvec![tensor(dt, Shape::of_rank(dims.len()))]),
+        Axes::Unknown => return Ok(smallvec::smallvec![tensor(dt, Shape::unknown())]),
     };
     let out: Vec<Dim> = dims
         .iter()
@@ -75,7 +75,7 @@ pub(super) fn reduce(ctx: &Ctx) -> Inferred {
             (false, _) => Some(d.clone()),
         })
         .collect();
-    Ok(vec![tensor(dt, Shape::of(out))])
+    Ok(smallvec::smallvec![tensor(dt, Shape::of(out))])
 }
 
 /// Folds ReduceMin, ReduceMax, ReduceSum and ReduceProd of a small constant: exporters compute
@@ -101,7 +101,7 @@ fn fold_reduce(ctx: &Ctx) -> Option<Vec<ConstValue>> {
 fn arg_reduce(ctx: &Ctx) -> Inferred {
     let keep = ctx.int("keepdims", 1) != 0;
     let Some(dims) = ctx.dims(0) else {
-        return Ok(vec![tensor(Some(DType::I64), Shape::unknown())]);
+        return Ok(smallvec::smallvec![tensor(Some(DType::I64), Shape::unknown())]);
     };
     let axis = norm_axis(ctx.int("axis", 0), dims.len()).ok_or("axis out of range")?;
     let mut out = dims;
@@ -110,7 +110,7 @@ fn arg_reduce(ctx: &Ctx) -> Inferred {
     } else {
         out.remove(axis);
     }
-    Ok(vec![tensor(Some(DType::I64), Shape::of(out))])
+    Ok(smallvec::smallvec![tensor(Some(DType::I64), Shape::of(out))])
 }
 
 /// SoftmaxCrossEntropyLoss (opset 12) and NegativeLogLikelihoodLoss (opset 12): scores
@@ -137,7 +137,7 @@ fn loss(ctx: &Ctx) -> Inferred {
     if ctx.outputs() > 1 {
         outs.push(tensor(ctx.dtype(0), ctx.shape(0)));
     }
-    Ok(outs)
+    Ok(outs.into())
 }
 
 macro_rules! op {

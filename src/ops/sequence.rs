@@ -87,14 +87,17 @@ fn position(ctx: &Ctx, i: usize, n: usize, insertion: bool) -> Option<usize> {
 
 fn sequence_empty(ctx: &Ctx) -> Inferred {
     let dt = DType::from_onnx(ctx.int("dtype", 1) as i32);
-    Ok(vec![sequence_with(Vec::new(), tensor(dt, Shape::unknown()))])
+    Ok(smallvec::smallvec![sequence_with(
+        Vec::new(),
+        tensor(dt, Shape::unknown())
+    )])
 }
 
 fn sequence_construct(ctx: &Ctx) -> Inferred {
     let facts: Vec<Fact> = (0..ctx.node.inputs.len())
         .map(|i| ctx.fact(i).cloned().unwrap_or_default())
         .collect();
-    Ok(vec![sequence_with(facts, Fact::default())])
+    Ok(smallvec::smallvec![sequence_with(facts, Fact::default())])
 }
 
 fn sequence_insert(ctx: &Ctx) -> Inferred {
@@ -108,7 +111,7 @@ fn sequence_insert(ctx: &Ctx) -> Inferred {
         };
         if let Some(at) = at {
             v.insert(at, added);
-            return Ok(vec![sequence_with(v, elem)]);
+            return Ok(smallvec::smallvec![sequence_with(v, elem)]);
         }
     }
     // An empty sequence's element has no shape yet: the inserted tensor decides it.
@@ -117,7 +120,7 @@ fn sequence_insert(ctx: &Ctx) -> Inferred {
     } else {
         merge(&elem, &added)
     };
-    Ok(vec![sequence_of(merged)])
+    Ok(smallvec::smallvec![sequence_of(merged)])
 }
 
 fn sequence_erase(ctx: &Ctx) -> Inferred {
@@ -129,19 +132,19 @@ fn sequence_erase(ctx: &Ctx) -> Inferred {
         };
         if let Some(at) = at {
             v.remove(at);
-            return Ok(vec![sequence_with(v, element(ctx, 0))]);
+            return Ok(smallvec::smallvec![sequence_with(v, element(ctx, 0))]);
         }
     }
-    Ok(vec![sequence_of(element(ctx, 0))])
+    Ok(smallvec::smallvec![sequence_of(element(ctx, 0))])
 }
 
 fn sequence_at(ctx: &Ctx) -> Inferred {
     let at = elements(ctx, 0).and_then(|v| Some(v.get(position(ctx, 1, v.len(), false)?)?.clone()));
-    Ok(vec![at.unwrap_or_else(|| element(ctx, 0))])
+    Ok(smallvec::smallvec![at.unwrap_or_else(|| element(ctx, 0))])
 }
 
 fn sequence_length(_ctx: &Ctx) -> Inferred {
-    Ok(vec![tensor(Some(DType::I64), Shape::scalar())])
+    Ok(smallvec::smallvec![tensor(Some(DType::I64), Shape::scalar())])
 }
 
 /// The length of a sequence whose elements are tracked is fixed by the graph, not the data.
@@ -156,7 +159,7 @@ fn fold_sequence_length(ctx: &Ctx) -> Option<Vec<ConstValue>> {
 /// tracked one by one.
 fn split_to_sequence(ctx: &Ctx) -> Inferred {
     let Some(x) = ctx.dims(0) else {
-        return Ok(vec![sequence_of(tensor(ctx.dtype(0), Shape::unknown()))]);
+        return Ok(smallvec::smallvec![sequence_of(tensor(ctx.dtype(0), Shape::unknown()))]);
     };
     let axis = norm_axis(ctx.int("axis", 0), x.len()).ok_or("axis out of range")?;
     let piece = |size: Option<u64>| {
@@ -170,7 +173,7 @@ fn split_to_sequence(ctx: &Ctx) -> Inferred {
             let mut d = x.clone();
             d.remove(axis);
             let one = tensor(ctx.dtype(0), Shape::of(d));
-            return Ok(vec![match n.and_then(|n| usize::try_from(n).ok()) {
+            return Ok(smallvec::smallvec![match n.and_then(|n| usize::try_from(n).ok()) {
                 Some(n) if n <= MAX_TRACKED_ELEMENTS => sequence_with(vec![one; n], Fact::default()),
                 _ => sequence_of(one),
             }]);
@@ -195,7 +198,7 @@ fn split_to_sequence(ctx: &Ctx) -> Inferred {
         }
     };
     match sizes {
-        Some(sizes) if sizes.len() <= MAX_TRACKED_ELEMENTS => Ok(vec![sequence_with(
+        Some(sizes) if sizes.len() <= MAX_TRACKED_ELEMENTS => Ok(smallvec::smallvec![sequence_with(
             sizes.into_iter().map(|s| piece(Some(s))).collect(),
             Fact::default(),
         )]),
@@ -210,7 +213,7 @@ fn split_to_sequence(ctx: &Ctx) -> Inferred {
                 (Some(c), _) if c.len() == 1 && c.dims.len() == 1 => Some(c.as_ints()[0].max(0) as u64),
                 _ => None,
             };
-            Ok(vec![sequence_of(piece(size))])
+            Ok(smallvec::smallvec![sequence_of(piece(size))])
         }
     }
 }
@@ -235,10 +238,10 @@ fn concat_from_sequence(ctx: &Ctx) -> Inferred {
         } else {
             concat_shape(&shapes, ctx.int("axis", 0))?
         };
-        return Ok(vec![tensor(e.dtype, shape)]);
+        return Ok(smallvec::smallvec![tensor(e.dtype, shape)]);
     }
     let Some(d) = e.shape.dims() else {
-        return Ok(vec![tensor(e.dtype, Shape::unknown())]);
+        return Ok(smallvec::smallvec![tensor(e.dtype, Shape::unknown())]);
     };
     let mut d = d.to_vec();
     if new_axis {
@@ -248,19 +251,21 @@ fn concat_from_sequence(ctx: &Ctx) -> Inferred {
         let a = norm_axis(ctx.int("axis", 0), d.len()).ok_or("axis out of range")?;
         d[a] = Dim::Unknown;
     }
-    Ok(vec![tensor(e.dtype, Shape::of(d))])
+    Ok(smallvec::smallvec![tensor(e.dtype, Shape::of(d))])
 }
 
 fn optional(ctx: &Ctx) -> Inferred {
-    Ok(vec![optional_of(ctx.fact(0).cloned().unwrap_or_default())])
+    Ok(smallvec::smallvec![optional_of(
+        ctx.fact(0).cloned().unwrap_or_default()
+    )])
 }
 
 fn optional_get_element(ctx: &Ctx) -> Inferred {
-    Ok(vec![element(ctx, 0)])
+    Ok(smallvec::smallvec![element(ctx, 0)])
 }
 
 fn optional_has_element(_ctx: &Ctx) -> Inferred {
-    Ok(vec![tensor(Some(DType::Bool), Shape::scalar())])
+    Ok(smallvec::smallvec![tensor(Some(DType::Bool), Shape::scalar())])
 }
 
 macro_rules! op {

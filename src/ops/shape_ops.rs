@@ -51,7 +51,7 @@ fn constant_value(ctx: &Ctx) -> Option<(Option<DType>, Vec<u64>, Option<ConstVal
 
 fn constant(ctx: &Ctx) -> Inferred {
     let (dt, dims, _) = constant_value(ctx).ok_or("Constant without a value attribute tilecut reads")?;
-    Ok(vec![tensor(dt, Shape::known(&dims))])
+    Ok(smallvec::smallvec![tensor(dt, Shape::known(&dims))])
 }
 
 fn fold_constant(ctx: &Ctx) -> Option<Vec<ConstValue>> {
@@ -70,7 +70,7 @@ fn constant_of_shape(ctx: &Ctx) -> Inferred {
             _ => Shape::unknown(),
         },
     };
-    Ok(vec![tensor(dt, shape)])
+    Ok(smallvec::smallvec![tensor(dt, shape)])
 }
 
 fn fold_constant_of_shape(ctx: &Ctx) -> Option<Vec<ConstValue>> {
@@ -115,7 +115,7 @@ fn shape(ctx: &Ctx) -> Inferred {
         }
         None => Shape::of_rank(1),
     };
-    Ok(vec![tensor(Some(DType::I64), shape)])
+    Ok(smallvec::smallvec![tensor(Some(DType::I64), shape)])
 }
 
 fn fold_shape(ctx: &Ctx) -> Option<Vec<ConstValue>> {
@@ -133,7 +133,7 @@ fn fold_shape(ctx: &Ctx) -> Option<Vec<ConstValue>> {
 }
 
 fn size(_ctx: &Ctx) -> Inferred {
-    Ok(vec![tensor(Some(DType::I64), Shape::scalar())])
+    Ok(smallvec::smallvec![tensor(Some(DType::I64), Shape::scalar())])
 }
 
 fn fold_size(ctx: &Ctx) -> Option<Vec<ConstValue>> {
@@ -193,7 +193,7 @@ fn range(ctx: &Ctx) -> Inferred {
         (None, Some(sym)) => Shape::of(vec![sym]),
         (None, None) => Shape::of_rank(1),
     };
-    Ok(vec![tensor(ctx.dtype(0), shape)])
+    Ok(smallvec::smallvec![tensor(ctx.dtype(0), shape)])
 }
 
 fn fold_range(ctx: &Ctx) -> Option<Vec<ConstValue>> {
@@ -284,7 +284,7 @@ fn reshape(ctx: &Ctx) -> Inferred {
             Some(c) => (c.as_ints(), c.as_dims()),
             None => {
                 let rank = ctx.shape(1).concrete().and_then(|s| s.first().copied());
-                return Ok(vec![tensor(
+                return Ok(smallvec::smallvec![tensor(
                     ctx.dtype(0),
                     rank.map(|r| Shape::of_rank(r as usize)).unwrap_or_else(Shape::unknown),
                 )]);
@@ -312,7 +312,7 @@ fn reshape(ctx: &Ctx) -> Inferred {
         _ => raw,
     };
     let dims = reshape_dims(ctx.dims_ref(0), &target, &literal, ctx.int("allowzero", 0) != 0)?;
-    Ok(vec![tensor(ctx.dtype(0), Shape::of(dims))])
+    Ok(smallvec::smallvec![tensor(ctx.dtype(0), Shape::of(dims))])
 }
 
 fn fold_reshape(ctx: &Ctx) -> Option<Vec<ConstValue>> {
@@ -328,7 +328,7 @@ fn fold_reshape(ctx: &Ctx) -> Option<Vec<ConstValue>> {
 
 fn flatten(ctx: &Ctx) -> Inferred {
     let Some(d) = ctx.dims(0) else {
-        return Ok(vec![tensor(ctx.dtype(0), Shape::of_rank(2))]);
+        return Ok(smallvec::smallvec![tensor(ctx.dtype(0), Shape::of_rank(2))]);
     };
     // Flatten's axis lies in [-r, r]; a negative one counts from the end (r + axis).
     let (r, a) = (d.len() as i64, ctx.int("axis", 1));
@@ -337,7 +337,7 @@ fn flatten(ctx: &Ctx) -> Inferred {
         return Err(format!("axis {a} out of range for rank {r}"));
     }
     let axis = axis as usize;
-    Ok(vec![tensor(
+    Ok(smallvec::smallvec![tensor(
         ctx.dtype(0),
         Shape::of(vec![product(&d[..axis])?, product(&d[axis..])?]),
     )])
@@ -345,7 +345,7 @@ fn flatten(ctx: &Ctx) -> Inferred {
 
 fn transpose(ctx: &Ctx) -> Inferred {
     let Some(d) = ctx.dims_ref(0) else {
-        return Ok(vec![tensor(ctx.dtype(0), Shape::unknown())]);
+        return Ok(smallvec::smallvec![tensor(ctx.dtype(0), Shape::unknown())]);
     };
     let out = match ctx.ints_ref("perm") {
         Some(perm) => {
@@ -363,7 +363,7 @@ fn transpose(ctx: &Ctx) -> Inferred {
         // No `perm`: the dims reversed.
         None => d.iter().rev().cloned().collect(),
     };
-    Ok(vec![tensor(ctx.dtype(0), Shape::of(out))])
+    Ok(smallvec::smallvec![tensor(ctx.dtype(0), Shape::of(out))])
 }
 
 fn fold_transpose(ctx: &Ctx) -> Option<Vec<ConstValue>> {
@@ -394,10 +394,10 @@ fn axes(ctx: &Ctx, since: i64) -> Result<Option<Vec<i64>>, ()> {
 fn squeeze(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(0);
     let Some(d) = ctx.dims(0) else {
-        return Ok(vec![tensor(dt, Shape::unknown())]);
+        return Ok(smallvec::smallvec![tensor(dt, Shape::unknown())]);
     };
     let Ok(axes) = axes(ctx, 13) else {
-        return Ok(vec![tensor(dt, Shape::unknown())]);
+        return Ok(smallvec::smallvec![tensor(dt, Shape::unknown())]);
     };
     let out = match axes {
         Some(a) => {
@@ -415,23 +415,23 @@ fn squeeze(ctx: &Ctx) -> Inferred {
         }
         None => {
             if d.iter().any(|x| !matches!(x, Dim::Known(_))) {
-                return Ok(vec![tensor(dt, Shape::unknown())]);
+                return Ok(smallvec::smallvec![tensor(dt, Shape::unknown())]);
             }
             d.into_iter().filter(|x| *x != Dim::Known(1)).collect()
         }
     };
-    Ok(vec![tensor(dt, Shape::of(out))])
+    Ok(smallvec::smallvec![tensor(dt, Shape::of(out))])
 }
 
 fn unsqueeze(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(0);
     let Some(d) = ctx.dims(0) else {
-        return Ok(vec![tensor(dt, Shape::unknown())]);
+        return Ok(smallvec::smallvec![tensor(dt, Shape::unknown())]);
     };
     let a = match axes(ctx, 13) {
         Ok(Some(a)) => a,
         Ok(None) => return Err("Unsqueeze without axes".into()),
-        Err(()) => return Ok(vec![tensor(dt, Shape::unknown())]),
+        Err(()) => return Ok(smallvec::smallvec![tensor(dt, Shape::unknown())]),
     };
     let rank = d.len() + a.len();
     let mut out: Vec<Option<Dim>> = vec![None; rank];
@@ -444,7 +444,7 @@ fn unsqueeze(ctx: &Ctx) -> Inferred {
         .into_iter()
         .map(|o| o.or_else(|| it.next()).unwrap_or(Dim::Unknown))
         .collect();
-    Ok(vec![tensor(dt, Shape::of(out))])
+    Ok(smallvec::smallvec![tensor(dt, Shape::of(out))])
 }
 
 fn fold_same_data(ctx: &Ctx) -> Option<Vec<ConstValue>> {
@@ -464,7 +464,10 @@ fn concat(ctx: &Ctx) -> Inferred {
     let n = ctx.node.inputs.len();
     let shapes: Vec<Option<Vec<Dim>>> = (0..n).filter(|&i| ctx.has_input(i)).map(|i| ctx.dims(i)).collect();
     let dt = (0..n).find_map(|i| ctx.dtype(i));
-    Ok(vec![tensor(dt, concat_shape(&shapes, ctx.int("axis", 0))?)])
+    Ok(smallvec::smallvec![tensor(
+        dt,
+        concat_shape(&shapes, ctx.int("axis", 0))?
+    )])
 }
 
 /// The shape of a concatenation along `axis`: the other dims from whichever input knows them,
@@ -539,7 +542,7 @@ fn split(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(0);
     let n = ctx.outputs();
     let Some(d) = ctx.dims(0) else {
-        return Ok(vec![tensor(dt, Shape::unknown()); n]);
+        return Ok(smallvec::smallvec![tensor(dt, Shape::unknown()); n]);
     };
     let axis = norm_axis(ctx.int("axis", 0), d.len()).ok_or("axis out of range")?;
     let sizes: Option<Vec<i64>> = if ctx.opset >= 13 {
@@ -549,7 +552,7 @@ fn split(ctx: &Ctx) -> Inferred {
                 None => {
                     let mut s = d.clone();
                     s[axis] = Dim::Unknown;
-                    return Ok(vec![tensor(dt, Shape::of(s)); n]);
+                    return Ok(smallvec::smallvec![tensor(dt, Shape::of(s)); n]);
                 }
             }
         } else {
@@ -674,7 +677,7 @@ fn open_span(d: &Dim, start: i64, end: i64, step: i64) -> Dim {
 fn slice(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(0);
     let Some(d) = ctx.dims(0) else {
-        return Ok(vec![tensor(dt, Shape::unknown())]);
+        return Ok(smallvec::smallvec![tensor(dt, Shape::unknown())]);
     };
     let Some(ranges) = slice_ranges(ctx, &d)? else {
         // Unknown bounds: the rank stays, the sliced sizes are unknown.
@@ -692,7 +695,7 @@ fn slice(ctx: &Ctx) -> Inferred {
             },
             false => s.iter_mut().for_each(|x| *x = Dim::Unknown),
         }
-        return Ok(vec![tensor(dt, Shape::of(s))]);
+        return Ok(smallvec::smallvec![tensor(dt, Shape::of(s))]);
     };
     let mut out = d.clone();
     for (axis, r) in ranges {
@@ -709,7 +712,7 @@ fn slice(ctx: &Ctx) -> Inferred {
             AxisSpan::Open(dim) => dim,
         };
     }
-    Ok(vec![tensor(dt, Shape::of(out))])
+    Ok(smallvec::smallvec![tensor(dt, Shape::of(out))])
 }
 
 fn fold_slice(ctx: &Ctx) -> Option<Vec<ConstValue>> {
@@ -729,13 +732,13 @@ fn fold_slice(ctx: &Ctx) -> Option<Vec<ConstValue>> {
 fn gather(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(0);
     let (Some(d), Some(idx)) = (ctx.dims(0), ctx.dims(1)) else {
-        return Ok(vec![tensor(dt, Shape::unknown())]);
+        return Ok(smallvec::smallvec![tensor(dt, Shape::unknown())]);
     };
     let axis = norm_axis(ctx.int("axis", 0), d.len()).ok_or("axis out of range")?;
     let mut out = d[..axis].to_vec();
     out.extend(idx);
     out.extend_from_slice(&d[axis + 1..]);
-    Ok(vec![tensor(dt, Shape::of(out))])
+    Ok(smallvec::smallvec![tensor(dt, Shape::of(out))])
 }
 
 fn fold_gather(ctx: &Ctx) -> Option<Vec<ConstValue>> {
@@ -746,17 +749,17 @@ fn fold_gather(ctx: &Ctx) -> Option<Vec<ConstValue>> {
 }
 
 fn gather_elements(ctx: &Ctx) -> Inferred {
-    Ok(vec![tensor(ctx.dtype(0), ctx.shape(1))])
+    Ok(smallvec::smallvec![tensor(ctx.dtype(0), ctx.shape(1))])
 }
 
 fn gather_nd(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(0);
     let (Some(d), Some(i)) = (ctx.dims(0), ctx.dims(1)) else {
-        return Ok(vec![tensor(dt, Shape::unknown())]);
+        return Ok(smallvec::smallvec![tensor(dt, Shape::unknown())]);
     };
     let b = ctx.int("batch_dims", 0).max(0) as usize;
     let Some(Dim::Known(last)) = i.last().cloned() else {
-        return Ok(vec![tensor(dt, Shape::unknown())]);
+        return Ok(smallvec::smallvec![tensor(dt, Shape::unknown())]);
     };
     let last = last as usize;
     if b + last > d.len() {
@@ -764,7 +767,7 @@ fn gather_nd(ctx: &Ctx) -> Inferred {
     }
     let mut out = i[..i.len() - 1].to_vec();
     out.extend_from_slice(&d[b + last..]);
-    Ok(vec![tensor(dt, Shape::of(out))])
+    Ok(smallvec::smallvec![tensor(dt, Shape::of(out))])
 }
 
 // ---- Pad, Resize, Upsample, Tile, Expand -----------------------------------------------
@@ -772,7 +775,7 @@ fn gather_nd(ctx: &Ctx) -> Inferred {
 fn pad(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(0);
     let Some(d) = ctx.dims(0) else {
-        return Ok(vec![tensor(dt, Shape::unknown())]);
+        return Ok(smallvec::smallvec![tensor(dt, Shape::unknown())]);
     };
     let pads = if ctx.opset >= 11 {
         ctx.const_ints(1)
@@ -780,7 +783,7 @@ fn pad(ctx: &Ctx) -> Inferred {
         ctx.ints("pads").or_else(|| ctx.ints("paddings"))
     };
     let Some(pads) = pads else {
-        return Ok(vec![tensor(dt, Shape::of_rank(d.len()))]);
+        return Ok(smallvec::smallvec![tensor(dt, Shape::of_rank(d.len()))]);
     };
     let axes: Vec<usize> = if ctx.opset >= 18 && ctx.has_input(3) {
         match ctx.const_ints(3) {
@@ -788,7 +791,7 @@ fn pad(ctx: &Ctx) -> Inferred {
                 .iter()
                 .map(|&x| norm_axis(x, d.len()).ok_or("axis out of range"))
                 .collect::<Result<_, _>>()?,
-            None => return Ok(vec![tensor(dt, Shape::of_rank(d.len()))]),
+            None => return Ok(smallvec::smallvec![tensor(dt, Shape::of_rank(d.len()))]),
         }
     } else {
         (0..d.len()).collect()
@@ -805,7 +808,7 @@ fn pad(ctx: &Ctx) -> Inferred {
             Dim::Unknown => Dim::Unknown,
         };
     }
-    Ok(vec![tensor(dt, Shape::of(out))])
+    Ok(smallvec::smallvec![tensor(dt, Shape::of(out))])
 }
 
 /// floor(size × scale), per the Resize specification. A symbolic size stays an expression
@@ -833,7 +836,7 @@ fn scaled(d: &Dim, s: f64) -> Dim {
 fn resize(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(0);
     let Some(d) = ctx.dims(0) else {
-        return Ok(vec![tensor(dt, Shape::unknown())]);
+        return Ok(smallvec::smallvec![tensor(dt, Shape::unknown())]);
     };
     let (scale_slot, size_slot) = match (ctx.node.op_type.as_str(), ctx.opset) {
         ("Upsample", _) | (_, ..=10) => (1, None),
@@ -846,7 +849,7 @@ fn resize(ctx: &Ctx) -> Inferred {
             .collect::<Result<_, _>>()?,
         None => (0..d.len()).collect(),
     };
-    let unknown = || Ok(vec![tensor(dt, Shape::of_rank(d.len()))]);
+    let unknown = || Ok(smallvec::smallvec![tensor(dt, Shape::of_rank(d.len()))]);
     let mut out = d.clone();
     if let Some(sizes) = size_slot.filter(|&i| ctx.has_input(i)).map(|i| ctx.konst(i)) {
         let Some(sizes) = sizes.filter(|s| !s.is_empty()) else {
@@ -878,7 +881,7 @@ fn resize(ctx: &Ctx) -> Inferred {
                 out[a] = size;
             }
         }
-        return Ok(vec![tensor(dt, Shape::of(out))]);
+        return Ok(smallvec::smallvec![tensor(dt, Shape::of(out))]);
     }
     let scales: Option<Vec<f64>> = if ctx.node.op_type == "Upsample" && ctx.opset < 9 {
         match ctx.node.attr("scales") {
@@ -899,16 +902,16 @@ fn resize(ctx: &Ctx) -> Inferred {
     for (k, &a) in axes.iter().enumerate() {
         out[a] = scaled(&d[a], scales[k]);
     }
-    Ok(vec![tensor(dt, Shape::of(out))])
+    Ok(smallvec::smallvec![tensor(dt, Shape::of(out))])
 }
 
 fn tile(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(0);
     let Some(d) = ctx.dims(0) else {
-        return Ok(vec![tensor(dt, Shape::unknown())]);
+        return Ok(smallvec::smallvec![tensor(dt, Shape::unknown())]);
     };
     let Some(reps) = ctx.const_ints(1) else {
-        return Ok(vec![tensor(dt, Shape::of_rank(d.len()))]);
+        return Ok(smallvec::smallvec![tensor(dt, Shape::of_rank(d.len()))]);
     };
     if reps.len() != d.len() {
         return Err("repeats length differs from the rank".into());
@@ -918,15 +921,15 @@ fn tile(ctx: &Ctx) -> Inferred {
         .zip(&reps)
         .map(|(x, &r)| x.mul(&Dim::Known(r.max(0) as u64)).ok_or("overflow"))
         .collect::<Result<_, _>>()?;
-    Ok(vec![tensor(dt, Shape::of(out))])
+    Ok(smallvec::smallvec![tensor(dt, Shape::of(out))])
 }
 
 fn expand(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(0);
     let Some(target) = ctx.konst(1) else {
-        return Ok(vec![tensor(dt, expand_unknown_target(ctx))]);
+        return Ok(smallvec::smallvec![tensor(dt, expand_unknown_target(ctx))]);
     };
-    Ok(vec![tensor(
+    Ok(smallvec::smallvec![tensor(
         dt,
         broadcast(&[ctx.shape(0), Shape::of(target.as_dims())])?,
     )])
@@ -989,7 +992,7 @@ pub(super) fn data_dependent(ctx: &Ctx, what: &str) -> Dim {
 
 fn top_k(ctx: &Ctx) -> Inferred {
     let Some(d) = ctx.dims(0) else {
-        return Ok(vec![
+        return Ok(smallvec::smallvec![
             tensor(ctx.dtype(0), Shape::unknown()),
             tensor(Some(DType::I64), Shape::unknown()),
         ]);
@@ -1005,14 +1008,14 @@ fn top_k(ctx: &Ctx) -> Inferred {
         Some(k) => Dim::Known(k.max(0) as u64),
         None => data_dependent(ctx, "k"),
     };
-    Ok(vec![
+    Ok(smallvec::smallvec![
         tensor(ctx.dtype(0), Shape::of(out.clone())),
         tensor(Some(DType::I64), Shape::of(out)),
     ])
 }
 
 fn non_max_suppression(ctx: &Ctx) -> Inferred {
-    Ok(vec![tensor(
+    Ok(smallvec::smallvec![tensor(
         Some(DType::I64),
         Shape::of(vec![data_dependent(ctx, "selected"), Dim::Known(3)]),
     )])
@@ -1024,7 +1027,7 @@ fn non_zero(ctx: &Ctx) -> Inferred {
         .rank()
         .map(|r| Dim::Known(r as u64))
         .unwrap_or(Dim::Unknown);
-    Ok(vec![tensor(
+    Ok(smallvec::smallvec![tensor(
         Some(DType::I64),
         Shape::of(vec![rank, data_dependent(ctx, "nonzero")]),
     )])
@@ -1033,15 +1036,18 @@ fn non_zero(ctx: &Ctx) -> Inferred {
 fn compress(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(0);
     let Some(mut d) = ctx.dims(0) else {
-        return Ok(vec![tensor(dt, Shape::unknown())]);
+        return Ok(smallvec::smallvec![tensor(dt, Shape::unknown())]);
     };
     match ctx.opt_int("axis") {
         Some(a) => {
             let i = norm_axis(a, d.len()).ok_or("axis out of range")?;
             d[i] = data_dependent(ctx, "kept");
-            Ok(vec![tensor(dt, Shape::of(d))])
+            Ok(smallvec::smallvec![tensor(dt, Shape::of(d))])
         }
-        None => Ok(vec![tensor(dt, Shape::of(vec![data_dependent(ctx, "kept")]))]),
+        None => Ok(smallvec::smallvec![tensor(
+            dt,
+            Shape::of(vec![data_dependent(ctx, "kept")])
+        )]),
     }
 }
 
@@ -1083,13 +1089,13 @@ fn unique(ctx: &Ctx) -> Inferred {
             },
         ));
     }
-    Ok(outs)
+    Ok(outs.into())
 }
 
 fn depth_to_space(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(0);
     let Some(d) = ctx.dims(0) else {
-        return Ok(vec![tensor(dt, Shape::of_rank(4))]);
+        return Ok(smallvec::smallvec![tensor(dt, Shape::of_rank(4))]);
     };
     if d.len() != 4 {
         return Err(format!("input of rank {}", d.len()));
@@ -1110,13 +1116,16 @@ fn depth_to_space(ctx: &Ctx) -> Inferred {
         Dim::Known(v) => Dim::Known(v / b),
         _ => Dim::Unknown,
     };
-    Ok(vec![tensor(dt, Shape::of(vec![d[0].clone(), c, sp(&d[2]), sp(&d[3])]))])
+    Ok(smallvec::smallvec![tensor(
+        dt,
+        Shape::of(vec![d[0].clone(), c, sp(&d[2]), sp(&d[3])])
+    )])
 }
 
 fn one_hot(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(2);
     let Some(d) = ctx.dims(0) else {
-        return Ok(vec![tensor(dt, Shape::unknown())]);
+        return Ok(smallvec::smallvec![tensor(dt, Shape::unknown())]);
     };
     let depth = ctx
         .konst(1)
@@ -1126,7 +1135,7 @@ fn one_hot(ctx: &Ctx) -> Inferred {
     let axis = norm_insert_axis(ctx.int("axis", -1), d.len()).ok_or("axis out of range")?;
     let mut out = d;
     out.insert(axis, depth);
-    Ok(vec![tensor(dt, Shape::of(out))])
+    Ok(smallvec::smallvec![tensor(dt, Shape::of(out))])
 }
 
 macro_rules! op {

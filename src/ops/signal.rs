@@ -36,7 +36,7 @@ fn stft(ctx: &Ctx) -> Inferred {
         Dim::Known(f) => Dim::Known(f),
         _ => Dim::Unknown,
     };
-    Ok(vec![tensor(
+    Ok(smallvec::smallvec![tensor(
         ctx.dtype(0),
         Shape::of(vec![x[0].clone(), frames, bins, Dim::Known(2)]),
     )])
@@ -97,7 +97,7 @@ fn dft(ctx: &Ctx) -> Inferred {
         }
         _ => out[a] = len,
     }
-    Ok(vec![tensor(ctx.dtype(0), Shape::of(out))])
+    Ok(smallvec::smallvec![tensor(ctx.dtype(0), Shape::of(out))])
 }
 
 /// A naive DFT costs N complex multiply-adds per output bin; FFT libraries do far fewer,
@@ -138,7 +138,7 @@ fn window(ctx: &Ctx) -> Inferred {
     let n = scalar(ctx, 0)
         .map(|v| Dim::Known(v.max(0) as u64))
         .unwrap_or(Dim::Unknown);
-    Ok(vec![tensor(dt, Shape::of(vec![n]))])
+    Ok(smallvec::smallvec![tensor(dt, Shape::of(vec![n]))])
 }
 
 /// MelWeightMatrix: [⌊dft_length/2⌋ + 1, num_mel_bins] of `output_datatype` (float32).
@@ -150,7 +150,7 @@ fn mel_weight_matrix(ctx: &Ctx) -> Inferred {
     let mels = scalar(ctx, 0)
         .map(|v| Dim::Known(v.max(0) as u64))
         .unwrap_or(Dim::Unknown);
-    Ok(vec![tensor(dt, Shape::of(vec![bins, mels]))])
+    Ok(smallvec::smallvec![tensor(dt, Shape::of(vec![bins, mels]))])
 }
 
 macro_rules! op {

@@ -10,13 +10,13 @@ use super::{CostRule, Ctx, Inferred, OpDef};
 
 /// RegexFullMatch-20: one bool per string.
 fn regex_full_match(ctx: &Ctx) -> Inferred {
-    Ok(vec![tensor(Some(DType::Bool), ctx.shape(0))])
+    Ok(smallvec::smallvec![tensor(Some(DType::Bool), ctx.shape(0))])
 }
 
 /// StringConcat-20: element-wise with multidirectional broadcasting.
 fn string_concat(ctx: &Ctx) -> Inferred {
     let shape = broadcast(&[ctx.shape(0), ctx.shape(1)])?;
-    Ok(vec![tensor(Some(DType::Str), shape)])
+    Ok(smallvec::smallvec![tensor(Some(DType::Str), shape)])
 }
 
 /// StringSplit-20: Y is X's shape plus a last axis as long as the most substrings any element
@@ -35,7 +35,7 @@ fn string_split(ctx: &Ctx) -> Inferred {
     if ctx.outputs() > 1 {
         outs.push(tensor(Some(DType::I64), x));
     }
-    Ok(outs)
+    Ok(outs.into())
 }
 
 /// StringNormalizer-10: [C] or [1, C]; removing stop words makes C depend on the data.
@@ -58,7 +58,7 @@ fn string_normalizer(ctx: &Ctx) -> Inferred {
         Some(d) => return Err(format!("input of rank {}, expected [C] or [1, C]", d.len())),
         None => Shape::unknown(),
     };
-    Ok(vec![tensor(Some(DType::Str), shape)])
+    Ok(smallvec::smallvec![tensor(Some(DType::Str), shape)])
 }
 
 /// TfIdfVectorizer-9: [N] → [C] and [B, N] → [B, C], C = the largest `ngram_indexes` + 1;
@@ -75,7 +75,7 @@ fn tfidf_vectorizer(ctx: &Ctx) -> Inferred {
         Some(d) => return Err(format!("input of rank {}, expected [N] or [B, N]", d.len())),
         None => Shape::unknown(),
     };
-    Ok(vec![tensor(Some(DType::F32), shape)])
+    Ok(smallvec::smallvec![tensor(Some(DType::F32), shape)])
 }
 
 /// ImageDecoder-20: an encoded image to [H, W, C] uint8; H and W are the image's, C is 1 for
@@ -91,7 +91,7 @@ fn image_decoder(ctx: &Ctx) -> Inferred {
         data_dependent(ctx, "width"),
         Dim::Known(channels),
     ]);
-    Ok(vec![tensor(Some(DType::U8), shape)])
+    Ok(smallvec::smallvec![tensor(Some(DType::U8), shape)])
 }
 
 macro_rules! op {

@@ -123,7 +123,7 @@ pub fn same_as(ctx: &Ctx, i: usize) -> Fact {
 /// One output with input 0's fact: the shape function of every op that keeps its input's
 /// type and shape.
 pub fn like_input(ctx: &Ctx) -> super::Inferred {
-    Ok(vec![same_as(ctx, 0)])
+    Ok(smallvec::smallvec![same_as(ctx, 0)])
 }
 
 pub fn tensor(dtype: Option<DType>, shape: Shape) -> Fact {

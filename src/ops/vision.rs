@@ -15,7 +15,7 @@ pub(super) fn grid_sample(ctx: &Ctx) -> Inferred {
     }
     let mut out = vec![x[0].clone(), x[1].clone()];
     out.extend(g[1..g.len() - 1].iter().cloned());
-    Ok(vec![tensor(ctx.dtype(0), Shape::of(out))])
+    Ok(smallvec::smallvec![tensor(ctx.dtype(0), Shape::of(out))])
 }
 
 /// AffineGrid: theta [N, 2, 3] or [N, 3, 4], size = [N, C, H, W] or [N, C, D, H, W] (a
@@ -35,7 +35,7 @@ fn affine_grid(ctx: &Ctx) -> Inferred {
             _ => Shape::unknown(),
         },
     };
-    Ok(vec![tensor(ctx.dtype(0), shape)])
+    Ok(smallvec::smallvec![tensor(ctx.dtype(0), shape)])
 }
 
 /// RoiAlign: X [N, C, H, W], rois [R, 4], batch_indices [R] → [R, C, output_height,
@@ -48,7 +48,7 @@ fn roi_align(ctx: &Ctx) -> Inferred {
     let rois = ctx.dims(1).and_then(|r| r.first().cloned()).unwrap_or(Dim::Unknown);
     let h = ctx.int("output_height", 1).max(0) as u64;
     let w = ctx.int("output_width", 1).max(0) as u64;
-    Ok(vec![tensor(
+    Ok(smallvec::smallvec![tensor(
         ctx.dtype(0),
         Shape::of(vec![rois, x[1].clone(), Dim::Known(h), Dim::Known(w)]),
     )])
@@ -65,7 +65,7 @@ fn max_roi_pool(ctx: &Ctx) -> Inferred {
         return Err("pooled_shape needs two values".into());
     }
     let rois = ctx.dims(1).and_then(|r| r.first().cloned()).unwrap_or(Dim::Unknown);
-    Ok(vec![tensor(
+    Ok(smallvec::smallvec![tensor(
         ctx.dtype(0),
         Shape::of(vec![
             rois,
@@ -96,14 +96,14 @@ fn col2im(ctx: &Ctx) -> Inferred {
     };
     let mut out = vec![x[0].clone(), c];
     out.extend(image.iter().map(|&v| Dim::Known(v.max(0) as u64)));
-    Ok(vec![tensor(ctx.dtype(0), Shape::of(out))])
+    Ok(smallvec::smallvec![tensor(ctx.dtype(0), Shape::of(out))])
 }
 
 /// CenterCropPad: the input with the dims named by `axes` (all, by default) set to `shape`.
 fn center_crop_pad(ctx: &Ctx) -> Inferred {
     let x = ctx.dims(0).ok_or("input rank unknown")?;
     let Some(want) = ctx.const_ints(1) else {
-        return Ok(vec![tensor(ctx.dtype(0), Shape::of_rank(x.len()))]);
+        return Ok(smallvec::smallvec![tensor(ctx.dtype(0), Shape::of_rank(x.len()))]);
     };
     let axes: Vec<i64> = ctx.ints("axes").unwrap_or_else(|| (0..x.len() as i64).collect());
     if axes.len() != want.len() {
@@ -114,7 +114,7 @@ fn center_crop_pad(ctx: &Ctx) -> Inferred {
         let i = norm_axis(*a, x.len()).ok_or(format!("axis {a} out of range"))?;
         out[i] = Dim::Known(w.max(0) as u64);
     }
-    Ok(vec![tensor(ctx.dtype(0), Shape::of(out))])
+    Ok(smallvec::smallvec![tensor(ctx.dtype(0), Shape::of(out))])
 }
 
 /// Det: [*, M, M] → [*].
@@ -123,7 +123,10 @@ fn det(ctx: &Ctx) -> Inferred {
     if x.len() < 2 {
         return Err(format!("input of rank {}", x.len()));
     }
-    Ok(vec![tensor(ctx.dtype(0), Shape::of(x[..x.len() - 2].to_vec()))])
+    Ok(smallvec::smallvec![tensor(
+        ctx.dtype(0),
+        Shape::of(x[..x.len() - 2].to_vec())
+    )])
 }
 
 macro_rules! op {

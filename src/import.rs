@@ -21,6 +21,11 @@ use crate::onnx::{self, ProtoStr, TensorProto};
 pub const MAX_SUBGRAPH_DEPTH: usize = 16;
 /// Model-local functions calling functions deeper than this are refused (and recursion is).
 pub const MAX_FUNCTION_DEPTH: usize = 8;
+/// Nodes that expanding model-local function calls may produce in one model. Calls nest (a
+/// function calling another many times, and so on), so a file of a few kilobytes can describe
+/// billions of nodes: the expansion's size is counted from the functions before any call is
+/// expanded, and a model over this bound is refused.
+pub const MAX_FUNCTION_NODES: u64 = 1 << 20;
 
 /// Shape settings given by the user: `--dim NAME=VALUE` and `--input NAME=AxBxC`.
 #[derive(Clone, Debug, Default)]
@@ -277,6 +282,11 @@ struct Cx<'a> {
     /// One shared copy of each op type, domain and attribute name, for every graph of the model.
     names: Interner,
     texts: Texts,
+    /// Nodes the function calls met so far expand to, and each function's own count (`None`
+    /// while it is being counted: a function reached again then is recursion, which the
+    /// expansion refuses by depth).
+    function_nodes: u64,
+    function_sizes: HashMap<(&'a str, &'a str), Option<u64>>,
 }
 
 /// Makes the IR's node and value names (`ir::Text`): borrowed where the text lies in a file
@@ -356,7 +366,39 @@ impl<'a> Cx<'a> {
             used_values: BTreeSet::new(),
             names: Interner::default(),
             texts: Texts(loaded.lasting),
+            function_nodes: 0,
+            function_sizes: HashMap::new(),
         }
+    }
+
+    /// Nodes a call of the function `key` expands to, nested calls included (saturating).
+    /// Functions nested deeper than `MAX_FUNCTION_DEPTH`, and recursion, count nothing here:
+    /// the expansion refuses them with its own message.
+    fn function_size(&mut self, key: (&'a str, &'a str), depth: usize) -> u64 {
+        match self.function_sizes.get(&key) {
+            Some(Some(n)) => return *n,
+            Some(None) => return 0,
+            None => {}
+        }
+        let Some(f) = self.functions.get(&key).copied() else {
+            return 1;
+        };
+        if depth >= MAX_FUNCTION_DEPTH {
+            return 0;
+        }
+        self.function_sizes.insert(key, None);
+        let mut n = 0u64;
+        for inner in &f.node {
+            let k = (inner.domain.as_str(), inner.op_type.as_str());
+            let add = if self.functions.contains_key(&k) {
+                self.function_size(k, depth + 1)
+            } else {
+                1
+            };
+            n = n.saturating_add(add);
+        }
+        self.function_sizes.insert(key, Some(n));
+        n
     }
 
     fn err(&self, msg: impl Into<String>) -> ReadError {
@@ -1321,6 +1363,17 @@ fn expand_functions<'a>(
                 "model-local functions call each other deeper than {MAX_FUNCTION_DEPTH} levels at `{}` (recursive?)",
                 crate::ir::op_label(&n.domain, &n.op_type)
             )));
+        }
+        // Calls inside a function were counted with the call that reached it.
+        if depth == 0 {
+            let size = cx.function_size((f.domain.as_str(), f.name.as_str()), 0);
+            cx.function_nodes = cx.function_nodes.saturating_add(size);
+            if cx.function_nodes > MAX_FUNCTION_NODES {
+                return Err(cx.err(format!(
+                    "model-local function calls expand to more than {MAX_FUNCTION_NODES} nodes (at the call of `{}`); refusing to expand them",
+                    crate::ir::op_label(&n.domain, &n.op_type)
+                )));
+            }
         }
         let call = if n.name.is_empty() {
             generated_name(&NodeRef::Borrowed(n), out.len())

@@ -1751,3 +1751,86 @@ fn nodes_kept_in_wire_form_import_as_decoded_ones() {
     }
     eprintln!("{} models read both ways, same reports", paths.len());
 }
+
+/// Model-local functions: a call that would expand to more nodes than the bound, and a
+/// function that calls itself, are refused with one line each (exit 2), quickly and without
+/// expanding anything first. The nesting is allowed by the ONNX standard (FunctionProto
+/// bodies may call other functions of the model); the bound is tilecut's own.
+#[test]
+fn function_calls_that_expand_too_far_or_recurse_are_refused() {
+    use tilecut::onnx::{FunctionProto, OperatorSetIdProto};
+    let d = tmp();
+    let call = |f: &str, out: &str| {
+        let mut n = node(f, &["x"], &[out]);
+        n.domain = "local.fn".into();
+        n
+    };
+    let function = |name: &str, body: Vec<onnx::NodeProto>| FunctionProto {
+        name: name.into(),
+        domain: "local.fn".into(),
+        input: vec!["x".into()],
+        output: vec!["y".into()],
+        node: body,
+        opset_import: vec![OperatorSetIdProto {
+            domain: String::new(),
+            version: 17,
+        }],
+        ..Default::default()
+    };
+    let with = |functions: Vec<FunctionProto>, file: &str| {
+        let mut m = model(
+            vec![call("F0", "y")],
+            vec![vi("x", 1, &[Dm::N(4)])],
+            vec![vi("y", 1, &[Dm::N(4)])],
+            vec![],
+        );
+        m.opset_import.push(OperatorSetIdProto {
+            domain: "local.fn".into(),
+            version: 1,
+        });
+        m.functions = functions;
+        write(d.path(), file, &m)
+    };
+    // F0 … F7 each call the next eight times and F7 holds eight Relus: the one call of F0
+    // expands to 8^8 = 16.8 million nodes, from a file of about a kilobyte.
+    let fanned: Vec<FunctionProto> = (0..8)
+        .map(|k| {
+            let body = (0..8)
+                .map(|i| {
+                    let out = if i == 7 { "y".to_string() } else { format!("t{i}") };
+                    if k == 7 {
+                        node("Relu", &["x"], &[&out])
+                    } else {
+                        call(&format!("F{}", k + 1), &out)
+                    }
+                })
+                .collect();
+            function(&format!("F{k}"), body)
+        })
+        .collect();
+    let p = with(fanned.clone(), "fanned.onnx");
+    assert!(std::fs::metadata(&p).expect("written").len() < 4096);
+    assert_fails_cleanly(
+        &["inspect", p.to_str().expect("utf8")],
+        "model-local function calls expand to more than 1048576 nodes (at the call of `local.fn.F0`)",
+    );
+    // Six levels of the same fan-out (8^6 = 262,144 nodes) stay under the bound and read.
+    let mut six = fanned;
+    six.truncate(6);
+    let relus = (0..8)
+        .map(|i| {
+            node(
+                "Relu",
+                &["x"],
+                &[&if i == 7 { "y".to_string() } else { format!("t{i}") }],
+            )
+        })
+        .collect();
+    six[5] = function("F5", relus);
+    let p = with(six, "six_levels.onnx");
+    let read = tilecut::read_model(&p, &Default::default()).expect("reads");
+    assert_eq!(read.model.graph.nodes.len(), 8usize.pow(6));
+    // A function that calls itself.
+    let p = with(vec![function("F0", vec![call("F0", "y")])], "recursive.onnx");
+    assert_fails_cleanly(&["inspect", p.to_str().expect("utf8")], "deeper than 8 levels");
+}

@@ -910,10 +910,13 @@ impl Wiring<'_, '_> {
         if reads.is_empty() {
             return Vec::new();
         }
+        // The node's inputs and the captures so far, in a set: bodies can read tens of
+        // thousands of outer names, and a scan per name would be quadratic.
+        let mut seen: FastSet<ValueId> = self.ins.of(i).iter().filter_map(|&x| self.value_of(x)).collect();
         let mut caps: Vec<ValueId> = Vec::new();
         for &k in reads {
             let Some(v) = self.value_of(k) else { continue };
-            if !caps.contains(&v) && !self.ins.of(i).iter().any(|&x| self.value_of(x) == Some(v)) {
+            if seen.insert(v) {
                 caps.push(v);
             }
         }
@@ -1469,9 +1472,13 @@ fn attr_value(
     };
     let body = |cx: &mut Cx, g: &onnx::GraphProto, bodies: &mut Vec<Body>, free: &mut FreeNames| {
         let (graph, f) = import_graph(cx, g, depth + 1)?;
-        for x in f {
-            if !free.iter().any(|y| y.0 == x.0) {
-                free.push(x);
+        // A set, not a scan of `free` per name: a body can read tens of thousands of outer names.
+        if !f.is_empty() {
+            let mut seen: FastSet<String> = free.iter().map(|y| y.0.clone()).collect();
+            for x in f {
+                if seen.insert(x.0.clone()) {
+                    free.push(x);
+                }
             }
         }
         bodies.push(Body {

@@ -1834,3 +1834,75 @@ fn function_calls_that_expand_too_far_or_recurse_are_refused() {
     let p = with(vec![function("F0", vec![call("F0", "y")])], "recursive.onnx");
     assert_fails_cleanly(&["inspect", p.to_str().expect("utf8")], "deeper than 8 levels");
 }
+
+/// A node whose body reads hundreds of outer values (and a Sum with hundreds of inputs): the
+/// captures are each outer value the bodies read that is not already an input, once, in the
+/// order first read, and a node's reads are its inputs then its captures, once each (the
+/// ONNX IR spec lets a subgraph name any value of the enclosing scope). Wide nodes take the
+/// set-based paths of import and of `Node::all_inputs`, narrow ones the scans; both agree.
+#[test]
+fn wide_bodies_capture_each_outer_value_once_in_order() {
+    use tilecut::ir::DType;
+    use tilecut::onnx::builder::{attr, DimSpec, GraphBuilder, ModelBuilder};
+    let d = tmp();
+    for n in [3usize, 300] {
+        let xs: Vec<String> = (0..n).map(|i| format!("x{i}")).collect();
+        // The then-branch reads x0 twice, every xi, and the If's own input `c` (an input,
+        // so not a capture); the else-branch reads x1 and x0 again.
+        let mut reads: Vec<&str> = vec!["x0", "c"];
+        reads.extend(xs.iter().map(String::as_str));
+        let mut then_ = GraphBuilder::new("then");
+        then_.node("Sum", &reads, &["s"]);
+        then_.graph.output.push(onnx::ValueInfoProto {
+            name: "s".into(),
+            ..Default::default()
+        });
+        let mut else_ = GraphBuilder::new("else");
+        else_.node("Add", &["x1", "x0"], &["e"]);
+        else_.graph.output.push(onnx::ValueInfoProto {
+            name: "e".into(),
+            ..Default::default()
+        });
+        let mut m = ModelBuilder::new("wide", 17);
+        m.graph.input("c", DType::Bool, &[]);
+        for x in &xs {
+            m.graph.input(x, DType::F32, &[DimSpec::Fixed(2)]);
+        }
+        let node = m.graph.node("If", &["c"], &["y"]);
+        node.attribute.push(attr::graph("then_branch", then_.graph));
+        node.attribute.push(attr::graph("else_branch", else_.graph));
+        m.graph.graph.output.push(onnx::ValueInfoProto {
+            name: "y".into(),
+            ..Default::default()
+        });
+        let p = d.path().join(format!("wide_{n}.onnx"));
+        std::fs::write(&p, m.encode()).expect("write");
+        let read = tilecut::read_model(&p, &Default::default()).expect("reads");
+        let g = &read.model.graph;
+        let names = |ids: &[tilecut::ir::ValueId]| ids.iter().map(|v| g.value(*v).name.to_string()).collect::<Vec<_>>();
+        let node = &g.nodes[0];
+        assert_eq!(names(node.captures()), xs);
+        let mut all = vec!["c".to_string()];
+        all.extend(xs.iter().cloned());
+        assert_eq!(names(&node.all_inputs()), all);
+        // The Sum reads x0 twice: listed once among its reads, in slot order.
+        let body = &node.bodies()[0].graph;
+        let sum_reads: Vec<String> = body.nodes[0]
+            .all_inputs()
+            .iter()
+            .map(|v| body.value(*v).name.to_string())
+            .collect();
+        let mut want = vec!["x0".to_string(), "c".to_string()];
+        want.extend(xs.iter().skip(1).cloned());
+        assert_eq!(sum_reads, want);
+        // Main-graph activation bytes, each value once: `c` (a bool scalar, 1 byte), every x
+        // (two float32s, 8 bytes) and `y` (the Sum's two float32s, 8 bytes).
+        let j: serde_json::Value =
+            serde_json::from_str(&run(&["inspect", p.to_str().expect("utf8"), "--format", "json"]).1).expect("json");
+        assert_eq!(
+            j["model"]["activation_bytes"],
+            serde_json::json!(1 + 8 * n as u64 + 8),
+            "n={n}"
+        );
+    }
+}

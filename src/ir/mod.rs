@@ -470,10 +470,18 @@ impl Node {
     /// Values read by this node, bodies' captures included, in slot order, deduplicated.
     pub fn all_inputs(&self) -> Inputs {
         let mut out = Inputs::new();
-        for v in self.inputs.iter().flatten().chain(self.captures()) {
-            if !out.contains(v) {
-                out.push(*v);
+        let all = self.inputs.iter().flatten().chain(self.captures());
+        if self.inputs.len() + self.captures().len() <= 16 {
+            for v in all {
+                if !out.contains(v) {
+                    out.push(*v);
+                }
             }
+        } else {
+            // A set for wide nodes (a Sum or a body over thousands of values): a scan of the
+            // list per value would be quadratic.
+            let mut seen = std::collections::HashSet::new();
+            out.extend(all.copied().filter(|v| seen.insert(*v)));
         }
         out
     }

@@ -325,9 +325,11 @@ pub fn build<'a>(model: &'a Model, diags: &[Diagnostic], reasons: &'a UnknownRea
         }
     }
     let mut activation_bytes = Some(0u64);
+    // A set: a graph can read very many names it does not define.
+    let captured: std::collections::HashSet<&str> = g.captured.iter().map(|c| g.value(*c).name.as_str()).collect();
     for v in &g.values {
         if matches!(v.kind, ValueKind::Input | ValueKind::Activation | ValueKind::Output)
-            && !g.captured.iter().any(|c| g.value(*c).name == v.name)
+            && !captured.contains(v.name.as_str())
         {
             let bytes = value_bytes(v);
             activation_bytes = activation_bytes.zip(bytes).and_then(|(a, b)| a.checked_add(b));

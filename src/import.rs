@@ -371,29 +371,25 @@ impl<'a> Cx<'a> {
         }
     }
 
-    /// Nodes a call of the function `key` expands to, nested calls included (saturating).
+    /// Nodes a call of the function `f` expands to, nested calls included (saturating).
     /// Functions nested deeper than `MAX_FUNCTION_DEPTH`, and recursion, count nothing here:
     /// the expansion refuses them with its own message.
-    fn function_size(&mut self, key: (&'a str, &'a str), depth: usize) -> u64 {
+    fn function_size(&mut self, f: &'a onnx::FunctionProto, depth: usize) -> u64 {
+        let key = (f.domain.as_str(), f.name.as_str());
         match self.function_sizes.get(&key) {
             Some(Some(n)) => return *n,
             Some(None) => return 0,
             None => {}
         }
-        let Some(f) = self.functions.get(&key).copied() else {
-            return 1;
-        };
         if depth >= MAX_FUNCTION_DEPTH {
             return 0;
         }
         self.function_sizes.insert(key, None);
         let mut n = 0u64;
         for inner in &f.node {
-            let k = (inner.domain.as_str(), inner.op_type.as_str());
-            let add = if self.functions.contains_key(&k) {
-                self.function_size(k, depth + 1)
-            } else {
-                1
+            let add = match self.functions.get(&(inner.domain.as_str(), inner.op_type.as_str())) {
+                Some(&callee) => self.function_size(callee, depth + 1),
+                None => 1,
             };
             n = n.saturating_add(add);
         }
@@ -1369,7 +1365,7 @@ fn expand_functions<'a>(
         }
         // Calls inside a function were counted with the call that reached it.
         if depth == 0 {
-            let size = cx.function_size((f.domain.as_str(), f.name.as_str()), 0);
+            let size = cx.function_size(f, 0);
             cx.function_nodes = cx.function_nodes.saturating_add(size);
             if cx.function_nodes > MAX_FUNCTION_NODES {
                 return Err(cx.err(format!(

@@ -592,7 +592,16 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     // sizing the tables once avoids re-growing (and re-touching) them on large graphs.
     // Node outputs are counted by the name pass below, which reserves room for them.
     let expected = g.initializer.len() + g.sparse_initializer.len() + g.input.len() + flat.len() + 8;
-    let mut values: Vec<Value> = Vec::with_capacity(expected);
+    let value_room = if depth == 0 && flat.len() >= PARALLEL_MIN_NODES {
+        prepared_room::<Value>(expected)
+    } else {
+        None
+    };
+    let mut values: Vec<Value> = Vec::with_capacity(if value_room.is_some() {
+        expected - flat.len()
+    } else {
+        expected
+    });
     // Every tensor name the graph mentions, hashed once; later passes use its index.
     let mut syms = Symbols::with_capacity(expected);
     let texts = cx.texts;
@@ -676,6 +685,11 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     // and attributes (with the subgraphs they carry) into the IR. On a large main graph the
     // second runs on another thread.
     let parallel = depth == 0 && flat.len() >= PARALLEL_MIN_NODES;
+    let node_room = if parallel {
+        prepared_room::<Node>(flat.len())
+    } else {
+        None
+    };
     let path = cx.path;
     // The worker, which finishes first, also checks whether the nodes' own names can all be
     // kept; the node loop below then does not check them one by one.
@@ -705,6 +719,10 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     };
     // A sequential import meets the name pass's faults first.
     let (outs, ins) = names?;
+    if let Some(mut room) = value_room.and_then(|h| h.join().ok()) {
+        room.append(&mut values);
+        values = room;
+    }
     // Room for every node output (the estimate above assumed one per node).
     values.reserve((outs.items.len() + 8).saturating_sub(values.capacity() - values.len()));
     let attrs = match attrs {
@@ -791,7 +809,8 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
             let worker = std::thread::Builder::new()
                 .stack_size(crate::onnx::graph::WORKER_STACK)
                 .spawn_scoped(scope, || wiring.add_values(&mut values));
-            let nodes = wiring.nodes(build);
+            let room = node_room.and_then(|h| h.join().ok());
+            let nodes = wiring.nodes(build, room);
             let added = match worker {
                 Ok(h) => {
                     h.join().unwrap_or_else(|p| std::panic::resume_unwind(p));
@@ -802,7 +821,7 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
             (nodes, added)
         })
     } else {
-        (wiring.nodes(build), false)
+        (wiring.nodes(build, None), false)
     };
     // Small graphs, or no thread could be started.
     if !values_added {
@@ -949,13 +968,14 @@ impl Wiring<'_, '_> {
 
     /// The graph's nodes in build order. Names the file gives are checked for repeats
     /// without copies; generated and renamed ones are few.
-    fn nodes(&self, b: NodeBuild) -> Vec<Node> {
+    fn nodes(&self, b: NodeBuild, room: Option<Vec<Node>>) -> Vec<Node> {
         let mut used_file: FastSet<TextKey> = FastSet::default();
         if !b.names_kept {
             used_file.reserve(b.flat.len());
         }
         let mut used_made: FastSet<String> = FastSet::default();
-        let mut nodes = Vec::with_capacity(self.order.len());
+        let mut nodes = room.unwrap_or_default();
+        nodes.reserve(self.order.len());
         for &i in self.order {
             let n = &b.flat[i];
             let attrs = std::mem::take(&mut b.attrs[i]);
@@ -1020,6 +1040,30 @@ impl Wiring<'_, '_> {
         }
         nodes
     }
+}
+
+/// Room for `n` nodes, its memory first touched on another thread while this one reads
+/// names and attributes: a fresh process pays the kernel's page clearing on first touch, and
+/// the node array is the largest single table import fills.
+fn prepared_room<T: Send + 'static>(n: usize) -> Option<std::thread::JoinHandle<Vec<T>>> {
+    std::thread::Builder::new()
+        .spawn(move || {
+            let mut room: Vec<T> = Vec::with_capacity(n);
+            let spare = room.spare_capacity_mut();
+            let len = std::mem::size_of_val(spare);
+            // SAFETY: the bytes of the spare capacity, as bytes that may be uninitialized:
+            // the same allocation, length and lifetime, and `MaybeUninit<u8>` has no validity
+            // invariant nor alignment beyond one.
+            let bytes =
+                unsafe { std::slice::from_raw_parts_mut(spare.as_mut_ptr().cast::<std::mem::MaybeUninit<u8>>(), len) };
+            // One write a page is what makes the kernel map (and clear) it; the rest of each
+            // page is left for the builder to write.
+            for page in bytes.chunks_mut(4096) {
+                page[0] = std::mem::MaybeUninit::new(0);
+            }
+            room
+        })
+        .ok()
 }
 
 /// Whether every node has a name of its own and no two share one: then every name is kept

@@ -179,6 +179,7 @@ fn scale_slots(node: &Node) -> Option<(usize, usize)> {
     Some(match node.op_type.as_str() {
         "QLinearConv" | "QLinearMatMul" => (1, 6),
         "QGemm" if contrib => (1, 7),
+        "QLinearConvTranspose" if contrib => (1, 6),
         "QLinearAdd" | "QLinearMul" if contrib => (1, 6),
         "QLinearSigmoid"
         | "QLinearLeakyRelu"
@@ -195,14 +196,18 @@ fn scale_slots(node: &Node) -> Option<(usize, usize)> {
 }
 
 /// Operator-form quantized ops carry their scales as inputs; the weight of QLinearConv,
-/// QLinearMatMul and QGemm is slot 3 and is presented in slot 1, where the rule table looks.
+/// QLinearMatMul, QGemm and QLinearConvTranspose is slot 3 and is presented in slot 1, where
+/// the rule table looks.
 fn operator_form(g: &Graph, node: &Node, e: &mut Effective) {
     let Some((x_scale, y_scale)) = scale_slots(node) else {
         return;
     };
     let slot = |i: usize| node.inputs.get(i).copied().flatten();
     let dt = |i: usize| slot(i).and_then(|v| g.value(v).fact.dtype);
-    if !matches!(node.op_type.as_str(), "QLinearConv" | "QLinearMatMul" | "QGemm") {
+    if !matches!(
+        node.op_type.as_str(),
+        "QLinearConv" | "QLinearMatMul" | "QGemm" | "QLinearConvTranspose"
+    ) {
         if let (Some(x), Some(q)) = (dt(0), e.input_quant.get_mut(0)) {
             *q = Some(params(g, node, slot(x_scale), slot(x_scale + 1), x));
         }

@@ -158,6 +158,7 @@ fn has_weight(op: &str) -> bool {
             | "ConvInteger"
             | "MatMulInteger"
             | "QGemm"
+            | "QLinearConvTranspose"
             | "FusedConv"
             | "FusedGemm"
             | "NhwcConv"
@@ -658,7 +659,11 @@ fn check_rule(
     }
     // Attributes.
     let spatial_kernel: Option<Vec<i64>> = attr_ints(node, "kernel_shape").or_else(|| {
-        let slot = if node.op_type == "QLinearConv" { 3 } else { 1 };
+        let slot = if matches!(node.op_type.as_str(), "QLinearConv" | "QLinearConvTranspose") {
+            3
+        } else {
+            1
+        };
         node.inputs
             .get(slot)
             .copied()

@@ -514,3 +514,103 @@ fn operator_form_contrib_ops_are_inferred_and_judged() {
     // The opset list keeps the file's own domain text.
     assert!(ops.iter().all(|o| !o.contains(CONTRIB_DOMAIN)), "{ops:?}");
 }
+
+/// The contrib domain's quantized ops that quantized detection, OCR and language exports
+/// carry beside the ones above: QLinearConvTranspose (a quantized decoder's upsampling),
+/// QLinearWhere, GatherBlockQuantized (a 4-bit embedding table) and QAttention. Slots,
+/// attribute defaults and the packing of 4-bit data in `uint8` follow the contrib domain's
+/// documentation (from memory); ConvTranspose's output size follows the ONNX operator
+/// specification (ConvTranspose: s·(in − 1) + output_padding + ((k − 1)·d + 1) − pads).
+/// Every figure below is computed by hand.
+#[test]
+fn contrib_quantized_ops_of_real_exports_are_inferred() {
+    use tilecut::onnx::builder::attr;
+    use tilecut::ops::CONTRIB_DOMAIN;
+    let d = tempfile::tempdir().expect("tmp");
+    let contrib = |mut n: tilecut::onnx::NodeProto| {
+        n.domain = CONTRIB_DOMAIN.into();
+        n
+    };
+    let mut ct = contrib(node(
+        "QLinearConvTranspose",
+        &["x", "s", "zu", "w", "s", "zi", "s", "zu"],
+        &["up"],
+    ));
+    ct.attribute.push(attr::ints("strides", &[2, 2]));
+    ct.attribute.push(attr::ints("pads", &[1, 1, 1, 1]));
+    ct.attribute.push(attr::ints("output_padding", &[1, 1]));
+    let mut gbq = contrib(node("GatherBlockQuantized", &["table", "ids", "tscale"], &["emb"]));
+    gbq.attribute.push(attr::int("block_size", 32));
+    let mut qa = contrib(node("QAttention", &["e", "qw", "qb", "s", "s"], &["att"]));
+    qa.attribute.push(attr::int("num_heads", 4));
+    let nodes = vec![
+        ct,
+        contrib(node(
+            "QLinearWhere",
+            &["cond", "up", "s", "zu", "row", "s", "zu", "s", "zu"],
+            &["sel"],
+        )),
+        gbq,
+        qa,
+    ];
+    let inits = vec![
+        scalar_init("s", 1, 0.5f32.to_le_bytes().to_vec(), &[]),
+        scalar_init("zu", 2, vec![0], &[]),
+        scalar_init("zi", 3, vec![0], &[]),
+        // ConvTranspose weights are [Cin, Cout/group, kH, kW].
+        scalar_init("w", 3, vec![1; 4 * 2 * 3 * 3], &[4, 2, 3, 3]),
+        scalar_init("row", 2, vec![3; 16], &[16]),
+        // Ten rows of 32 4-bit values, two to a byte; one scale per 32-value block.
+        scalar_init("table", 2, vec![0x11; 10 * 16], &[10, 16]),
+        scalar_init("tscale", 1, [0.25f32.to_le_bytes(); 10].concat(), &[10, 1]),
+        scalar_init("qw", 3, vec![1; 32 * 96], &[32, 96]),
+        scalar_init("qb", 1, [0f32.to_le_bytes(); 96].concat(), &[96]),
+    ];
+    let mut m = model(
+        nodes,
+        vec![
+            vi("x", 2, &[Dm::N(1), Dm::N(4), Dm::N(8), Dm::N(8)]),
+            vi("cond", 9, &[Dm::N(1), Dm::N(1), Dm::N(16), Dm::N(1)]),
+            vi("ids", 7, &[Dm::N(2), Dm::N(3)]),
+            vi("e", 2, &[Dm::N(2), Dm::N(3), Dm::N(32)]),
+        ],
+        untyped(&["sel", "emb", "att"]),
+        inits,
+    );
+    m.opset_import.push(tilecut::onnx::OperatorSetIdProto {
+        domain: CONTRIB_DOMAIN.into(),
+        version: 1,
+    });
+    let path = write(d.path(), "contrib_quantized.onnx", &m);
+    let read = tilecut::read_model(&path, &Default::default()).expect("reads");
+    let g = &read.model.graph;
+    let fact = |t: &str| {
+        let f = &g.value(g.value_by_name(t).expect("tensor")).fact;
+        (f.dtype.map(|d| d.name()).unwrap_or("?"), f.shape.to_string())
+    };
+    // 2·(8 − 1) + 1 + ((3 − 1)·1 + 1) − 2 = 16; Cout = 2·group 1; y_zero_point's uint8.
+    assert_eq!(fact("up"), ("uint8", "[1,2,16,16]".to_string()));
+    // [1,1,16,1], [1,2,16,16] and [16] broadcast; z_zero_point's uint8.
+    assert_eq!(fact("sel"), ("uint8", "[1,2,16,16]".to_string()));
+    // Rows gathered by [2, 3] ids; 16 bytes unpack to 32 values; the scales' float.
+    assert_eq!(fact("emb"), ("float32", "[2,3,32]".to_string()));
+    // 96 packed QKV columns: 32 per projection; the bias's float.
+    assert_eq!(fact("att"), ("float32", "[2,3,32]".to_string()));
+    assert!(read.unknown.is_empty(), "{:?}", read.unknown);
+    let macs = |op: &str| g.nodes.iter().find(|n| n.op_type == op).and_then(|n| n.cost.macs);
+    // Every input element scatters into Cout/group·k·k outputs: (4·8·8)·(2·3·3) = 4,608.
+    assert_eq!(macs("QLinearConvTranspose"), Some(4_608));
+    // Projection 2·3·32 inputs × 96 columns = 18,432, plus scores and weighted sum
+    // 2·B·S·S·hidden = 2·2·3·3·32 = 1,152 (the convention of contrib Attention here).
+    assert_eq!(macs("QAttention"), Some(19_584));
+    // Known ops: no warning names any of them as unknown.
+    let (code, out, err) = run(&["inspect", path.to_str().expect("utf8"), "--format", "json"]);
+    assert_eq!(code, 0, "{err}");
+    let j: serde_json::Value = serde_json::from_str(&out).expect("json");
+    let warnings = j["warnings"].to_string();
+    assert!(!warnings.contains("not known"), "{warnings}");
+    // The weight of QLinearConvTranspose is slot 3, shown where the rule table looks.
+    let (code, out, err) = run(&["explain", path.to_str().expect("utf8"), "QLinearConvTranspose_up"]);
+    assert_eq!(code, 0, "{err}");
+    assert!(out.contains("uint8 × int8 → uint8"), "{out}");
+}

@@ -6,7 +6,7 @@
 
 use crate::ir::{DType, Dim, Fact, Shape};
 
-use super::util::{broadcast, count, like_input, tensor};
+use super::util::{broadcast, count, like_input, norm_axis, tensor};
 use super::{conv, matmul, reduce, shape_ops, vision, CostRule, Ctx, Inferred, MacsOps, OpDef, CONTRIB_DOMAIN};
 
 /// QLinearAdd / QLinearMul: (A, A_scale, A_zp, B, B_scale, B_zp, C_scale, C_zp) → the
@@ -221,6 +221,38 @@ fn bias_split_gelu(ctx: &Ctx) -> Inferred {
     )])
 }
 
+/// QLinearWhere: (condition, X, x_scale, x_zp, Y, y_scale, y_zp, z_scale, z_zp) → the
+/// broadcast of condition, X and Y, in z_zp's type (X's when z_zp is absent).
+fn qlinear_where(ctx: &Ctx) -> Inferred {
+    Ok(smallvec::smallvec![tensor(
+        ctx.dtype(8).or(ctx.dtype(1)),
+        broadcast(&[ctx.shape(0), ctx.shape(1), ctx.shape(4)])?
+    )])
+}
+
+/// GatherBlockQuantized: (data, indices, scales, zero_points?) with `gather_axis` (default
+/// 0), `quantize_axis` (default 1), `block_size` and `bits` (default 4) → Gather over the
+/// dequantized data, in the scales' type. A `uint8` data packs 8/bits values per byte along
+/// `quantize_axis` (its last axis); `int4`/`uint4` data are not packed in the shape. Slots,
+/// defaults and packing from the contrib domain's documentation (from memory).
+fn gather_block_quantized(ctx: &Ctx) -> Inferred {
+    let dt = ctx.dtype(2);
+    let (Some(mut d), Some(idx)) = (ctx.dims(0), ctx.dims(1)) else {
+        return Ok(smallvec::smallvec![tensor(dt, Shape::unknown())]);
+    };
+    let rank = d.len();
+    let bits = ctx.int("bits", 4);
+    if ctx.dtype(0) == Some(DType::U8) && (1..8).contains(&bits) && 8 % bits == 0 {
+        let q = norm_axis(ctx.int("quantize_axis", 1), rank).ok_or("quantize_axis out of range")?;
+        d[q] = d[q].mul(&Dim::Known((8 / bits) as u64)).ok_or("packed dim overflows")?;
+    }
+    let axis = norm_axis(ctx.int("gather_axis", 0), rank).ok_or("gather_axis out of range")?;
+    let mut out = d[..axis].to_vec();
+    out.extend(idx);
+    out.extend_from_slice(&d[axis + 1..]);
+    Ok(smallvec::smallvec![tensor(dt, Shape::of(out))])
+}
+
 /// Output 0 (and every other output) like input 0: fused element-wise and normalisation ops.
 fn same(ctx: &Ctx) -> Inferred {
     Ok((0..ctx.outputs().max(1))
@@ -265,6 +297,17 @@ pub static OPS: &[OpDef] = &[
         CostRule::Custom(conv::pool_ops)
     ),
     op!("QLinearConcat", qlinear_concat, CostRule::PerOutput(2)),
+    // Dequantize both operands, select, requantize.
+    op!("QLinearWhere", qlinear_where, CostRule::PerOutput(5)),
+    // QLinearConvTranspose: QLinearConv's slots (x, x_scale, x_zp, w, w_scale, w_zp,
+    // y_scale, y_zp, B) around ConvTranspose.
+    op!(
+        "QLinearConvTranspose",
+        conv::conv_transpose,
+        CostRule::Custom(conv::conv_transpose_macs)
+    ),
+    // One multiply and one subtraction per element gathered.
+    op!("GatherBlockQuantized", gather_block_quantized, CostRule::PerOutput(2)),
     op!("QLinearReduceMean", reduce::reduce, CostRule::PerInput(1)),
     // QGemm's A is slot 0 as in Gemm, so Gemm's count (outputs × K) applies.
     op!("QGemm", qgemm, CostRule::Custom(matmul::gemm_macs)),

@@ -14,7 +14,7 @@ struct ConvIo {
 
 fn io(op: &str) -> ConvIo {
     match op {
-        "QLinearConv" => ConvIo { x: 0, w: Some(3) },
+        "QLinearConv" | "QLinearConvTranspose" => ConvIo { x: 0, w: Some(3) },
         _ => ConvIo { x: 0, w: Some(1) },
     }
 }
@@ -186,13 +186,19 @@ pub(super) fn conv(ctx: &Ctx) -> Inferred {
     Ok(smallvec::smallvec![tensor(dtype, Shape::of(out))])
 }
 
-fn conv_transpose(ctx: &Ctx) -> Inferred {
-    let x = ctx.dims(0).ok_or("input rank unknown")?;
+pub(super) fn conv_transpose(ctx: &Ctx) -> Inferred {
+    let io = io(&ctx.node.op_type);
+    let x = ctx.dims(io.x).ok_or("input rank unknown")?;
     if x.len() < 3 {
         return Err(format!("input of rank {}", x.len()));
     }
     let spatial = x.len() - 2;
-    let wdims = ctx.dims(1);
+    let wdims = io.w.and_then(|i| ctx.dims(i));
+    let dtype = match ctx.node.op_type.as_str() {
+        // y_zero_point's type, as QLinearConv's output.
+        "QLinearConvTranspose" => ctx.dtype(7).or(ctx.dtype(0)),
+        _ => ctx.dtype(0),
+    };
     let kernel = wdims
         .as_ref()
         .and_then(|w| w.get(2..).map(|k| k.iter().map(Dim::known).collect::<Option<Vec<_>>>()))
@@ -210,7 +216,7 @@ fn conv_transpose(ctx: &Ctx) -> Inferred {
     if let Some(shape) = ctx.ints("output_shape") {
         let s = &shape[shape.len().saturating_sub(spatial)..];
         out.extend(s.iter().map(|&v| Dim::Known(v.max(0) as u64)));
-        return Ok(smallvec::smallvec![tensor(ctx.dtype(0), Shape::of(out))]);
+        return Ok(smallvec::smallvec![tensor(dtype, Shape::of(out))]);
     }
     for i in 0..spatial {
         let (s, k, d) = (win.strides[i] as i64, win.kernel[i] as i64, win.dilations[i] as i64);
@@ -236,7 +242,7 @@ fn conv_transpose(ctx: &Ctx) -> Inferred {
             Dim::Unknown => Dim::Unknown,
         });
     }
-    Ok(smallvec::smallvec![tensor(ctx.dtype(0), Shape::of(out))])
+    Ok(smallvec::smallvec![tensor(dtype, Shape::of(out))])
 }
 
 pub(super) fn pool(ctx: &Ctx) -> Inferred {
@@ -307,10 +313,11 @@ pub(super) fn conv_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
     (macs, Some(0))
 }
 
-fn conv_transpose_macs(ctx: &Ctx, _outs: &[Fact]) -> MacsOps {
+pub(super) fn conv_transpose_macs(ctx: &Ctx, _outs: &[Fact]) -> MacsOps {
+    let io = io(&ctx.node.op_type);
     let macs = (|| {
-        let x = ctx.shape(0).concrete()?;
-        let w = ctx.shape(1).concrete()?;
+        let x = ctx.shape(io.x).concrete()?;
+        let w = ctx.shape(io.w?).concrete()?;
         // W is [Cin, Cout/group, k...]: every input element scatters into Cout/group·∏k outputs.
         count(&x)?.checked_mul(count(w.get(1..)?)?)
     })();

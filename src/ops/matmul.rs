@@ -404,6 +404,19 @@ fn ms_attention(ctx: &Ctx) -> Inferred {
     )])
 }
 
+/// QAttention: contrib Attention's shapes over (input, weight, bias, input_scale,
+/// weight_scale, mask_index?, input_zp?, weight_zp?, past?), with an integer input and
+/// weight; the output is in the bias's (float) type. Slots from the contrib domain's
+/// documentation (from memory).
+fn q_attention(ctx: &Ctx) -> Inferred {
+    let mut outs = ms_attention(ctx)?;
+    let dt = ctx.dtype(2).or(ctx.dtype(3));
+    for f in outs.iter_mut() {
+        f.dtype = dt;
+    }
+    Ok(outs)
+}
+
 fn ms_attention_macs(ctx: &Ctx, _outs: &[Fact]) -> MacsOps {
     let macs = (|| {
         let x = ctx.shape(0).concrete()?;
@@ -500,6 +513,12 @@ pub static OPS: &[OpDef] = &[
         CONTRIB_DOMAIN,
         "Attention",
         ms_attention,
+        CostRule::Custom(ms_attention_macs)
+    ),
+    op!(
+        CONTRIB_DOMAIN,
+        "QAttention",
+        q_attention,
         CostRule::Custom(ms_attention_macs)
     ),
     op!(CONTRIB_DOMAIN, "MultiHeadAttention", mha, CostRule::PerOutput(1)),

@@ -27,6 +27,9 @@ struct ReasonTexts(
     FastMap<Vec<usize>, (Vec<crate::ir::Name>, std::sync::Arc<str>)>,
     /// The key being looked up, reused: one allocation per distinct key, not per tensor.
     Vec<usize>,
+    /// The last key found and its reason: tensors in a row mostly share their symbols (a
+    /// batch dim on every tensor), and comparing a few addresses is cheaper than hashing.
+    (Vec<usize>, Option<std::sync::Arc<str>>),
 );
 
 impl ReasonTexts {
@@ -41,8 +44,15 @@ impl ReasonTexts {
             crate::ir::Dim::Unknown => Some(0),
             crate::ir::Dim::Known(_) => None,
         }));
+        if let (true, Some(a)) = (self.3 .0 == key, &self.3 .1) {
+            let a = a.clone();
+            self.2 = key;
+            return a;
+        }
         if let Some((_, a)) = self.1.get(key.as_slice()) {
             let a = a.clone();
+            self.3 .0.clone_from(&key);
+            self.3 .1 = Some(a.clone());
             self.2 = key;
             return a;
         }

@@ -381,7 +381,9 @@ fn static_shape_reasons(g: &Graph, node: &Node, rule: &str) -> Vec<Reason> {
     syms.dedup();
     let mut out = Vec::new();
     if !syms.is_empty() {
-        let data_dependent: Vec<&String> = syms.iter().filter(|s| s.contains('@')).collect();
+        // A Loop's trip count (`trips@node`) is fixed with `--loop-trips`, not assumed with
+        // `--dim`: it takes the symbolic branch below, whose hints say so.
+        let data_dependent: Vec<&String> = syms.iter().filter(|s| crate::ir::is_data_dependent(s)).collect();
         let msg = if !data_dependent.is_empty() {
             format!(
                 "shape depends on data at run time ({}); the array needs static shapes (to judge it padded to a fixed count: {})",

@@ -175,7 +175,7 @@ fn node_symbols(g: &Graph, id: NodeId) -> (Vec<String>, bool) {
         for d in g.value(*v).fact.shape.dims().into_iter().flatten() {
             if let Dim::Sym(_) = d {
                 for s in d.symbols() {
-                    if s.contains('@') {
+                    if crate::ir::is_data_dependent(&s) {
                         data_dependent = true;
                     } else {
                         syms.push(s);

@@ -720,6 +720,55 @@ fn unknown_loop_trips_name_the_loop_trips_setting() {
     assert!(!out.contains("--dim trips@"), "{out}");
 }
 
+/// A node downstream of a Loop's scan output has a leading dim of the trip count (ONNX spec,
+/// Loop: scan outputs are concatenated over the iterations). When the count is a graph input,
+/// the verdict and the advice name `--loop-trips` for it, the setting that fixes it; `--dim`
+/// does not (it assumes data-dependent sizes, and warns that no node computes `trips@…`).
+#[test]
+fn shapes_after_a_loop_name_the_loop_trips_setting() {
+    use tilecut::ir::DType;
+    use tilecut::onnx::builder::{attr, f32_tensor, GraphBuilder, ModelBuilder};
+    let d = tmp();
+    let mut m = ModelBuilder::new("loop", 17);
+    m.graph.input("m", DType::I64, &[]);
+    m.graph.input("cond", DType::Bool, &[]);
+    m.graph.input("x", DType::F32, &[1.into(), 8.into()]);
+    m.graph.initializer(f32_tensor("one", &[1], &[1.0]));
+    let mut body = GraphBuilder::new("step");
+    body.input("i", DType::I64, &[]);
+    body.input("c", DType::Bool, &[]);
+    body.input("s", DType::F32, &[1.into(), 8.into()]);
+    body.node("Identity", &["c"], &["c_out"]);
+    body.node("Add", &["s", "one"], &["s_out"]);
+    body.node("Identity", &["s_out"], &["scan"]);
+    body.output("c_out", DType::Bool, &[]);
+    body.output("s_out", DType::F32, &[1.into(), 8.into()]);
+    body.output("scan", DType::F32, &[1.into(), 8.into()]);
+    m.graph
+        .node("Loop", &["m", "cond", "x"], &["y", "ys"])
+        .attribute
+        .push(attr::graph("body", body.graph));
+    m.graph.node("Relu", &["ys"], &["r"]);
+    m.graph.output("r", DType::F32, &[]);
+    let p = d.path().join("loop_then_relu.onnx");
+    std::fs::write(&p, m.encode()).expect("write");
+    let ps = p.to_str().expect("utf8");
+    let (code, out, err) = run(&["explain", ps, "relu_2"]);
+    assert_eq!(code, 0, "{err}");
+    assert!(out.contains("[trips@loop_1,1,8]"), "{out}");
+    assert!(out.contains("--loop-trips loop_1=N"), "{out}");
+    assert!(!out.contains("--dim trips@"), "{out}");
+    let (code, out, err) = run(&["analyze", ps, "--format", "json"]);
+    assert_eq!(code, 0, "{err}");
+    assert!(out.contains("--loop-trips loop_1=N"), "{out}");
+    assert!(!out.contains("--dim trips@"), "{out}");
+    // With the count given, the shape is known and the dynamic-shape reason is gone.
+    let (code, out, err) = run(&["explain", ps, "relu_2", "--loop-trips", "loop_1=3"]);
+    assert_eq!(code, 0, "{err}");
+    assert!(out.contains("[3,1,8]"), "{out}");
+    assert!(!out.contains("shape-dynamic"), "{out}");
+}
+
 /// A pipe or a device in place of a model is refused before it is opened: opening a FIFO
 /// would block, reading /dev/zero would never end. Likewise in a survey folder.
 #[test]

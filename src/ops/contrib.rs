@@ -247,10 +247,7 @@ fn gather_block_quantized(ctx: &Ctx) -> Inferred {
         d[q] = d[q].mul(&Dim::Known((8 / bits) as u64)).ok_or("packed dim overflows")?;
     }
     let axis = norm_axis(ctx.int("gather_axis", 0), rank).ok_or("gather_axis out of range")?;
-    let mut out = d[..axis].to_vec();
-    out.extend(idx);
-    out.extend_from_slice(&d[axis + 1..]);
-    Ok(smallvec::smallvec![tensor(dt, Shape::of(out))])
+    Ok(smallvec::smallvec![tensor(dt, shape_ops::gather_shape(&d, idx, axis))])
 }
 
 /// Output 0 (and every other output) like input 0: fused element-wise and normalisation ops.

@@ -178,12 +178,17 @@ pub(super) fn conv(ctx: &Ctx) -> Inferred {
         wdims.as_ref().and_then(|w| w.first().cloned()).unwrap_or(Dim::Unknown),
     ];
     out.extend(conv_spatial(ctx, &x, &win, false)?);
-    let dtype = match ctx.node.op_type.as_str() {
+    Ok(smallvec::smallvec![tensor(out_dtype(ctx), Shape::of(out))])
+}
+
+/// A conv's output type: int32 accumulators for ConvInteger, y_zero_point's type for the
+/// operator-form quantized convs, else X's.
+fn out_dtype(ctx: &Ctx) -> Option<DType> {
+    match ctx.node.op_type.as_str() {
         "ConvInteger" => Some(DType::I32),
-        "QLinearConv" => ctx.dtype(7),
+        "QLinearConv" | "QLinearConvTranspose" => ctx.dtype(7),
         _ => ctx.dtype(0),
-    };
-    Ok(smallvec::smallvec![tensor(dtype, Shape::of(out))])
+    }
 }
 
 pub(super) fn conv_transpose(ctx: &Ctx) -> Inferred {
@@ -194,11 +199,7 @@ pub(super) fn conv_transpose(ctx: &Ctx) -> Inferred {
     }
     let spatial = x.len() - 2;
     let wdims = io.w.and_then(|i| ctx.dims(i));
-    let dtype = match ctx.node.op_type.as_str() {
-        // y_zero_point's type, as QLinearConv's output.
-        "QLinearConvTranspose" => ctx.dtype(7).or(ctx.dtype(0)),
-        _ => ctx.dtype(0),
-    };
+    let dtype = out_dtype(ctx);
     let kernel = wdims
         .as_ref()
         .and_then(|w| w.get(2..).map(|k| k.iter().map(Dim::known).collect::<Option<Vec<_>>>()))

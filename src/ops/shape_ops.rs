@@ -735,10 +735,16 @@ fn gather(ctx: &Ctx) -> Inferred {
         return Ok(smallvec::smallvec![tensor(dt, Shape::unknown())]);
     };
     let axis = norm_axis(ctx.int("axis", 0), d.len()).ok_or("axis out of range")?;
-    let mut out = d[..axis].to_vec();
+    Ok(smallvec::smallvec![tensor(dt, gather_shape(&d, idx, axis))])
+}
+
+/// Gather's output: `data`'s dims with the one at `axis` replaced by the indices' dims (ONNX
+/// spec, Gather). `axis` is already within `data`'s rank.
+pub(super) fn gather_shape(data: &[Dim], idx: Vec<Dim>, axis: usize) -> Shape {
+    let mut out = data[..axis].to_vec();
     out.extend(idx);
-    out.extend_from_slice(&d[axis + 1..]);
-    Ok(smallvec::smallvec![tensor(dt, Shape::of(out))])
+    out.extend_from_slice(&data[axis + 1..]);
+    Shape::of(out)
 }
 
 fn fold_gather(ctx: &Ctx) -> Option<Vec<ConstValue>> {

@@ -204,10 +204,7 @@ fn operator_form(g: &Graph, node: &Node, e: &mut Effective) {
     };
     let slot = |i: usize| node.inputs.get(i).copied().flatten();
     let dt = |i: usize| slot(i).and_then(|v| g.value(v).fact.dtype);
-    if !matches!(
-        node.op_type.as_str(),
-        "QLinearConv" | "QLinearMatMul" | "QGemm" | "QLinearConvTranspose"
-    ) {
+    if !crate::ops::weight_in_slot_3(&node.op_type) {
         if let (Some(x), Some(q)) = (dt(0), e.input_quant.get_mut(0)) {
             *q = Some(params(g, node, slot(x_scale), slot(x_scale + 1), x));
         }

@@ -661,7 +661,9 @@ fn check_rule(
     }
     // Attributes.
     let spatial_kernel: Option<Vec<i64>> = attr_ints(node, "kernel_shape").or_else(|| {
-        let slot = if matches!(node.op_type.as_str(), "QLinearConv" | "QLinearConvTranspose") {
+        // Only convs have a spatial kernel (filter below), so QLinearMatMul and QGemm,
+        // whose weight is slot 3 too, never reach the check.
+        let slot = if crate::ops::weight_in_slot_3(&node.op_type) {
             3
         } else {
             1

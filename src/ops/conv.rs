@@ -13,9 +13,9 @@ struct ConvIo {
 }
 
 fn io(op: &str) -> ConvIo {
-    match op {
-        "QLinearConv" | "QLinearConvTranspose" => ConvIo { x: 0, w: Some(3) },
-        _ => ConvIo { x: 0, w: Some(1) },
+    ConvIo {
+        x: 0,
+        w: Some(if super::weight_in_slot_3(op) { 3 } else { 1 }),
     }
 }
 

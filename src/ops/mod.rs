@@ -143,6 +143,14 @@ pub fn node_in_domain(node: &crate::ir::Node, domain: &str) -> bool {
     resolve_domain(domain) == node.domain || (is_default_domain(domain) && node.is_default_domain())
 }
 
+/// Operator-form quantized ops whose weight is input 3, after (x, x_scale, x_zero_point):
+/// QLinearConv and QLinearMatMul (ONNX spec), the contrib domain's QGemm and
+/// QLinearConvTranspose. Inference, quantization parameters and the rule table's kernel check
+/// all read the weight there.
+pub fn weight_in_slot_3(op: &str) -> bool {
+    matches!(op, "QLinearConv" | "QLinearMatMul" | "QGemm" | "QLinearConvTranspose")
+}
+
 /// The registry: every family's table, concatenated.
 pub fn registry() -> &'static [&'static [OpDef]] {
     REGISTRY

@@ -76,6 +76,21 @@ impl ReasonTexts {
         a
     }
 
+    /// The reason for a value that is not concrete: a tensor's shape, or what inside a
+    /// sequence or optional is not known.
+    fn for_fact(&mut self, fact: &Fact) -> std::sync::Arc<str> {
+        if is_tensor(fact) {
+            return self.for_shape(&fact.shape);
+        }
+        match fact.first_unknown() {
+            Some(inner) => self.for_shape(&inner.shape),
+            None => self.get(format!(
+                "a sequence whose elements are not known one by one (its length is unknown or above {})",
+                crate::ir::MAX_TRACKED_ELEMENTS
+            )),
+        }
+    }
+
     fn get(&mut self, text: String) -> std::sync::Arc<str> {
         if let Some(a) = self.0.get(&text) {
             return a.clone();
@@ -387,6 +402,11 @@ fn infer_graph(
         } else {
             node_cost(&ctx, def.map(|d| d.cost), &[], &body_costs)
         };
+        let merged = if node.bodies().is_empty() || def.is_none() {
+            Vec::new()
+        } else {
+            ops::merge_reasons(&ctx)
+        };
         // The context borrows the graph, which the outputs below are written into.
         drop(ctx);
         if let Some(f) = &failure {
@@ -405,10 +425,11 @@ fn infer_graph(
             let fact = std::mem::take(&mut outputs[k]);
             let value = &mut g.values[v.index()];
             if let Some(r) = reasons.as_deref_mut() {
-                if !fact.shape.is_concrete() {
-                    let why = match &failure {
-                        Some(f) if !ranked[k] => texts.get(f.clone()),
-                        _ => texts.for_shape(&fact.shape),
+                if !fact.is_concrete() {
+                    let why = match (&failure, merged.get(k)) {
+                        (Some(f), _) if !ranked[k] => texts.get(f.clone()),
+                        (_, Some(Some(m))) => texts.get(m.clone()),
+                        _ => texts.for_fact(&fact),
                     };
                     r.push((*v, why));
                 }
@@ -441,11 +462,14 @@ fn infer_graph(
     if let Some(r) = reasons {
         for &i in &g.inputs {
             let f = &g.values[i.index()].fact;
-            if !f.shape.is_concrete() {
-                let syms = f.shape.symbols();
+            if !f.is_concrete() {
+                let inner = f.first_unknown();
+                let syms = inner.map(|u| u.shape.symbols()).unwrap_or_default();
                 r.push((
                     i,
-                    texts.get(if syms.is_empty() {
+                    texts.get(if inner.is_none() {
+                        "declared as a sequence, whose length is not known".into()
+                    } else if syms.is_empty() {
                         "declared with unknown dims".into()
                     } else {
                         format!("declared with symbolic dims: {}", syms.join(", "))

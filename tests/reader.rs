@@ -769,6 +769,141 @@ fn shapes_after_a_loop_name_the_loop_trips_setting() {
     assert!(!out.contains("shape-dynamic"), "{out}");
 }
 
+/// An If whose condition is not a constant and whose branches give different shapes, and a
+/// Loop whose carried value grows each iteration, leave dims unknown that no symbol names:
+/// the reason says which (not "depends on a tensor whose shape is unknown", which is true
+/// only of what follows them). Per the ONNX operator specification the If's output is the
+/// taken branch's and the Loop's final carried value the last iteration's, so neither shape
+/// is known before the run; with the condition fixed (`--value`), the If's is.
+#[test]
+fn if_and_loop_outputs_that_change_shape_say_why() {
+    use tilecut::ir::DType;
+    use tilecut::onnx::builder::{attr, GraphBuilder, ModelBuilder};
+    let d = tmp();
+    let mut m = ModelBuilder::new("branches", 17);
+    m.graph.input("c", DType::Bool, &[]);
+    m.graph.input("n", DType::I64, &[]);
+    m.graph.input("x", DType::F32, &[2.into(), 3.into()]);
+    let mut then_g = GraphBuilder::new("keep");
+    then_g.node("Identity", &["x"], &["t"]);
+    then_g.output("t", DType::F32, &[]);
+    let mut else_g = GraphBuilder::new("twice");
+    else_g
+        .node("Concat", &["x", "x"], &["e"])
+        .attribute
+        .push(attr::int("axis", 0));
+    else_g.output("e", DType::F32, &[]);
+    let node = m.graph.node("If", &["c"], &["y"]);
+    node.attribute.push(attr::graph("else_branch", else_g.graph));
+    node.attribute.push(attr::graph("then_branch", then_g.graph));
+    m.graph.node("Relu", &["y"], &["z"]);
+    let mut body = GraphBuilder::new("grow");
+    body.input("i", DType::I64, &[]);
+    body.input("cin", DType::Bool, &[]);
+    body.input("acc", DType::F32, &[2.into(), 3.into()]);
+    body.node("Identity", &["cin"], &["cout"]);
+    body.node("Concat", &["acc", "x"], &["acc_out"])
+        .attribute
+        .push(attr::int("axis", 0));
+    body.output("cout", DType::Bool, &[]);
+    body.output("acc_out", DType::F32, &[]);
+    m.graph
+        .node("Loop", &["n", "", "x"], &["grown"])
+        .attribute
+        .push(attr::graph("body", body.graph));
+    m.graph.output("z", DType::F32, &[]);
+    m.graph.output("grown", DType::F32, &[]);
+    let p = d.path().join("branches.onnx");
+    std::fs::write(&p, m.encode()).expect("write");
+    let ps = p.to_str().expect("utf8");
+    let reasons = |extra: &[&str]| -> std::collections::BTreeMap<String, String> {
+        let mut args = vec!["inspect", ps, "--format", "json"];
+        args.extend_from_slice(extra);
+        let (code, out, err) = run(&args);
+        assert_eq!(code, 0, "{err}");
+        let v: serde_json::Value = serde_json::from_str(&out).expect("json");
+        v["unknown_shapes"]
+            .as_array()
+            .expect("list")
+            .iter()
+            .map(|u| {
+                (
+                    u["tensor"].as_str().expect("tensor").to_string(),
+                    u["reason"].as_str().expect("reason").to_string(),
+                )
+            })
+            .collect()
+    };
+    let r = reasons(&[]);
+    // Then [2,3] (x itself), else [4,3] (x twice along axis 0), named by attribute although
+    // the file lists else_branch first.
+    assert_eq!(
+        r["y"],
+        "the If's then_branch gives [2,3] and its else_branch [4,3], and its condition is not a constant"
+    );
+    assert_eq!(r["z"], "depends on a tensor whose shape is unknown");
+    // The carried [2,3] leaves the first iteration as [4,3] (x appended along axis 0).
+    assert!(
+        r["grown"].starts_with("the Loop's carried value enters as [2,3] and leaves an iteration as [4,3]"),
+        "{}",
+        r["grown"]
+    );
+    // A known condition runs one branch: the else branch's [4,3].
+    let r = reasons(&["--value", "c=0"]);
+    assert!(!r.contains_key("y") && !r.contains_key("z"), "{r:?}");
+}
+
+/// A sequence or an optional is sized by what it holds. The ONNX conformance model
+/// `test_if_seq` returns from either branch a SequenceConstruct of one float tensor of 5
+/// elements (a Constant of dims [5] in each branch): 20 bytes. The conformance model
+/// `test_optional_has_element_optional_input` reads an optional holding a float tensor of
+/// dims [4]: 16 bytes. Neither is a tensor of unknown shape, and the model's activation
+/// bytes stay known. A sequence whose length is not known says so
+/// (`test_split_to_sequence_1`: its `split` input is not a constant).
+#[test]
+fn sequences_and_optionals_are_sized_by_what_they_hold() {
+    let inspect = |name: &str| -> serde_json::Value {
+        let p = conformance(name);
+        let (code, out, err) = run(&["inspect", p.to_str().expect("utf8"), "--format", "json"]);
+        assert_eq!(code, 0, "{err}");
+        serde_json::from_str(&out).expect("json")
+    };
+    let tensor = |v: &serde_json::Value, name: &str| -> serde_json::Value {
+        v["tensors"]
+            .as_array()
+            .expect("tensors")
+            .iter()
+            .find(|t| t["name"] == name)
+            .cloned()
+            .expect("listed")
+    };
+    let v = inspect("test_if_seq.onnx");
+    assert_eq!(tensor(&v, "res")["bytes"], 20);
+    assert_eq!(tensor(&v, "res")["dtype"], "sequence(float32)");
+    // The bool condition (1 byte) and the sequence.
+    assert_eq!(v["model"]["activation_bytes"], 21);
+    assert_eq!(v["unknown_shapes"], serde_json::json!([]));
+    let v = inspect("test_optional_has_element_optional_input.onnx");
+    assert_eq!(tensor(&v, "optional_input")["bytes"], 16);
+    assert_eq!(v["unknown_shapes"], serde_json::json!([]));
+    let v = inspect("test_split_to_sequence_1.onnx");
+    let seq = v["unknown_shapes"]
+        .as_array()
+        .expect("list")
+        .iter()
+        .find(|u| u["tensor"] == "seq")
+        .cloned()
+        .expect("the sequence is listed");
+    assert!(
+        seq["reason"]
+            .as_str()
+            .expect("reason")
+            .starts_with("a sequence whose elements are not known"),
+        "{seq}"
+    );
+    assert!(v["model"]["activation_bytes"].is_null());
+}
+
 /// A pipe or a device in place of a model is refused before it is opened: opening a FIFO
 /// would block, reading /dev/zero would never end. Likewise in a survey folder.
 #[test]

@@ -53,7 +53,8 @@ pub fn value_bytes(g: &Graph, verdicts: &[Verdict]) -> Vec<Option<u64>> {
     }
     let resize = |bytes: &mut Vec<Option<u64>>, v: crate::ir::ValueId, to: DType| {
         let val = g.value(v);
-        if val.fact.dtype.is_some_and(DType::is_float) {
+        // A sequence keeps its elements' sizes: its own shape is not a tensor's.
+        if crate::infer::is_tensor(&val.fact) && val.fact.dtype.is_some_and(DType::is_float) {
             bytes[v.index()] = val.fact.shape.element_count().and_then(|n| to.bytes_for(n));
         }
     };

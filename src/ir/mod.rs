@@ -137,13 +137,43 @@ impl Fact {
         }
     }
 
-    /// Bytes of one instance of the value, if dtype and every dim are known.
+    /// Bytes of one instance of the value, if dtype and every dim are known. A sequence is
+    /// its elements together, when each is known; an optional, the value it holds (what it
+    /// takes when it holds one); a map or a sparse tensor is not sized.
     pub fn bytes(&self) -> Option<u64> {
-        if self.value_type != ValueType::Tensor {
-            return None;
+        match &self.value_type {
+            ValueType::Tensor => {
+                let n = self.shape.element_count()?;
+                self.dtype?.bytes_for(n)
+            }
+            ValueType::Sequence(s) => s
+                .elements
+                .as_ref()?
+                .iter()
+                .try_fold(0u64, |acc, e| acc.checked_add(e.bytes()?)),
+            ValueType::Optional(inner) => inner.bytes(),
+            ValueType::SparseTensor | ValueType::Map => None,
         }
-        let n = self.shape.element_count()?;
-        self.dtype?.bytes_for(n)
+    }
+
+    /// Whether every dim of the value is known: a tensor's own; each element's of a sequence
+    /// whose elements are tracked; the held value's of an optional.
+    pub fn is_concrete(&self) -> bool {
+        match &self.value_type {
+            ValueType::Sequence(s) => s.elements.as_ref().is_some_and(|es| es.iter().all(Fact::is_concrete)),
+            ValueType::Optional(inner) => inner.is_concrete(),
+            ValueType::Tensor | ValueType::SparseTensor | ValueType::Map => self.shape.is_concrete(),
+        }
+    }
+
+    /// The first fact inside this one that is not concrete (itself, for a tensor): what
+    /// a reason for it should describe. None for a sequence whose elements are not tracked.
+    pub fn first_unknown(&self) -> Option<&Fact> {
+        match &self.value_type {
+            ValueType::Sequence(s) => s.elements.as_ref()?.iter().find_map(Fact::first_unknown),
+            ValueType::Optional(inner) => inner.first_unknown(),
+            ValueType::Tensor | ValueType::SparseTensor | ValueType::Map => (!self.shape.is_concrete()).then_some(self),
+        }
     }
 }
 

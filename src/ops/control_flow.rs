@@ -53,6 +53,52 @@ pub fn taken_branch(node: &Node, condition: Option<&ConstValue>) -> Option<usize
     )
 }
 
+/// Why an If or Loop output has dims that neither its inputs nor its bodies leave unknown,
+/// per output: an If whose condition is not a constant and whose branches give different
+/// shapes; a Loop whose carried value changes shape from one iteration to the next. `None`
+/// where the usual reason (what the dims depend on) applies.
+pub fn merge_reasons(ctx: &Ctx) -> Vec<Option<String>> {
+    let differ = |a: &Fact, b: &Fact| a.shape.rank().is_some() && b.shape.rank().is_some() && a.shape != b.shape;
+    match ctx.node.op_type.as_str() {
+        "If" if ctx.body_outputs.len() == 2 && taken_branch(ctx.node, ctx.konst(0)).is_none() => (0..ctx.outputs())
+            .map(|i| {
+                // Named by attribute: the bodies keep the file's order, either branch first.
+                let mut by_attr: Vec<(&str, &Fact)> = ctx
+                    .node
+                    .bodies()
+                    .iter()
+                    .zip(&ctx.body_outputs)
+                    .filter_map(|(b, outs)| Some((b.attr.as_str(), outs.get(i)?)))
+                    .collect();
+                by_attr.sort_by_key(|(attr, _)| *attr != "then_branch");
+                match by_attr[..] {
+                    [(ta, a), (eb, b)] if differ(a, b) => Some(format!(
+                        "the If's {ta} gives {} and its {eb} {}, and its condition is not a constant",
+                        a.shape, b.shape
+                    )),
+                    _ => None,
+                }
+            })
+            .collect(),
+        "Loop" => {
+            let Some(body) = ctx.body_outputs.first() else {
+                return Vec::new();
+            };
+            let carried = ctx.node.inputs.len().saturating_sub(2);
+            (0..ctx.outputs().min(carried))
+                .map(|i| match (ctx.fact(i + 2), body.get(i + 1)) {
+                    (Some(entry), Some(f)) if differ(entry, f) => Some(format!(
+                        "the Loop's carried value enters as {} and leaves an iteration as {}: its shape changes from one iteration to the next",
+                        entry.shape, f.shape
+                    )),
+                    _ => None,
+                })
+                .collect()
+        }
+        _ => Vec::new(),
+    }
+}
+
 fn if_(ctx: &Ctx) -> Inferred {
     let n = ctx.outputs();
     let branches = &ctx.body_outputs;

@@ -33,7 +33,7 @@ mod strings;
 mod util;
 mod vision;
 
-pub use control_flow::{taken_branch, ScanLayout};
+pub use control_flow::{merge_reasons, taken_branch, ScanLayout};
 pub use util::broadcast;
 
 use crate::ir::{ConstValue, Fact, Node};

@@ -334,7 +334,9 @@ pub fn build<'a>(model: &'a Model, diags: &[Diagnostic], reasons: &'a UnknownRea
             let bytes = value_bytes(v);
             activation_bytes = activation_bytes.zip(bytes).and_then(|(a, b)| a.checked_add(b));
             if bytes.is_none() {
-                v.fact.shape.symbols_into(&mut because);
+                if let Some(u) = v.fact.first_unknown() {
+                    u.shape.symbols_into(&mut because);
+                }
             }
         }
     }

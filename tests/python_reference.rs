@@ -595,6 +595,106 @@ fn symbolic_ranges_and_strided_stacks_agree_with_the_onnx_reference_evaluator() 
     }
 }
 
+/// Exporters compute sizes from a `Shape` in arithmetic: a length cast to float, scaled by a
+/// whole number, rounded and cast back (upsampling to twice the input's size), halved or
+/// shortened by one in integers, offset in float and rounded up. Each size stays an expression
+/// of the symbolic length T, evaluated at several lengths it must equal what the `onnx`
+/// package's reference evaluator computes (Cast, Mul, Floor, Ceil, Div, Sub, Add, Range and
+/// Resize with `sizes`, per the ONNX operator specification). A length scaled by 0.5 in float
+/// is not a whole number before it is rounded: it stays unknown, never guessed.
+#[test]
+fn symbolic_size_arithmetic_agrees_with_the_onnx_reference_evaluator() {
+    if !python_onnx("symbolic_size_arithmetic_agrees_with_the_onnx_reference_evaluator") {
+        return;
+    }
+    use tilecut::ir::{evaluate, Dim};
+    let with_int = |mut n: tilecut::onnx::NodeProto, name: &str, v: i64| {
+        n.attribute = vec![int_attr(name, v)];
+        n
+    };
+    let cast = |from: &str, to: &str, ty: i64| with_int(node("Cast", &[from], &[to]), "to", ty);
+    let nodes = vec![
+        node("Shape", &["x"], &["s"]),
+        node("Gather", &["s", "zero"], &["t"]),
+        cast("t", "tf", 1),
+        // 2T through float: Mul by 2.0, Floor, back to int64.
+        node("Mul", &["tf", "f2"], &["t2"]),
+        node("Floor", &["t2"], &["t2r"]),
+        cast("t2r", "t2i", 7),
+        node("Range", &["i0", "t2i", "i1"], &["r_double"]),
+        // T//2 and T-1 in integers.
+        node("Div", &["t", "i2"], &["half"]),
+        node("Range", &["i0", "half", "i1"], &["r_half"]),
+        node("Sub", &["t", "i1"], &["less"]),
+        node("Range", &["i0", "less", "i1"], &["r_less"]),
+        // T+3 through float: Add 3.0, Ceil.
+        node("Add", &["tf", "f3"], &["t3"]),
+        node("Ceil", &["t3"], &["t3r"]),
+        node("Range", &["f0", "t3r", "f1"], &["r_more"]),
+        // Nearest-neighbour upsampling of [1,1,T] to [1,1,2T] by `sizes`.
+        node("Reshape", &["x", "to3"], &["x3"]),
+        // Opset 18: Unsqueeze takes its axes as an input.
+        node("Unsqueeze", &["t2i", "axis0"], &["t2u"]),
+        with_int(node("Concat", &["ones", "t2u"], &["sizes"]), "axis", 0),
+        node("Resize", &["x3", "", "", "sizes"], &["up"]),
+        // T × 0.5 in float, rounded down: not a whole-number product, so not folded.
+        node("Mul", &["tf", "fhalf"], &["th"]),
+        node("Floor", &["th"], &["thr"]),
+        node("Range", &["f0", "thr", "f1"], &["r_scaled"]),
+    ];
+    let inits = vec![
+        i64_init("zero", &[], &[0]),
+        i64_init("i0", &[], &[0]),
+        i64_init("i1", &[], &[1]),
+        i64_init("i2", &[], &[2]),
+        i64_init("to3", &[3], &[1, 1, -1]),
+        i64_init("ones", &[2], &[1, 1]),
+        i64_init("axis0", &[1], &[0]),
+        f32_scalar("f0", 0.0),
+        f32_scalar("f1", 1.0),
+        f32_scalar("f2", 2.0),
+        f32_scalar("f3", 3.0),
+        f32_scalar("fhalf", 0.5),
+    ];
+    let outs = ["r_double", "r_half", "r_less", "r_more", "up", "r_scaled"];
+    let mut m = model(nodes, vec![vi("x", 1, &[Dm::S("T")])], untyped(&outs), inits);
+    m.opset_import[0].version = 18;
+    let dir = tempfile::tempdir().expect("tmp");
+    let path = write(dir.path(), "size_arithmetic.onnx", &m);
+
+    let read = tilecut::read_model(&path, &Default::default()).expect("reads");
+    let g = &read.model.graph;
+    let ours: Vec<Dim> = g
+        .outputs
+        .iter()
+        .map(|&o| {
+            let dims = g.value(o).fact.shape.dims().expect("rank").to_vec();
+            dims.last().cloned().expect("a dim")
+        })
+        .collect();
+    assert_eq!(ours[5], Dim::Unknown, "T × 0.5 is not guessed");
+
+    let lengths = [1u64, 2, 7, 12];
+    let out = python(RUN_AT_LENGTHS, &[path.to_str().expect("utf8"), "[1, 2, 7, 12]"]);
+    let reference: serde_json::Map<String, serde_json::Value> = serde_json::from_str(&out).expect("json");
+    for t in lengths {
+        let shapes = reference[&t.to_string()].as_array().expect("outputs");
+        for (k, dim) in ours.iter().enumerate().take(5) {
+            let want = shapes[k]
+                .as_array()
+                .and_then(|s| s.last())
+                .and_then(|d| d.as_u64())
+                .expect("size");
+            let Dim::Sym(text) = dim else {
+                panic!("{}: tilecut gives {dim:?}", outs[k])
+            };
+            let got = evaluate(text, &|n| (n == "T").then_some(t)).expect("an expression");
+            // `T-1` at T = 1 is 0, an empty range; below zero it would be unknown.
+            assert_eq!(got, Some(want), "{} at T = {t}: `{text}`", outs[k]);
+        }
+    }
+}
+
 /// Lists the models of the `onnx` package's backend test data converted from a training
 /// framework and its "simple" models, each with the dims of its test inputs (by input name)
 /// and of the outputs the ONNX project recorded for them (by output index), from

@@ -160,6 +160,13 @@ impl Dim {
         }
     }
 
+    /// Difference by a known amount (`T-1`); a size less another unknown one is not
+    /// expressed (it could be anything, negative included).
+    pub fn less_known(&self, other: &Dim) -> Option<Dim> {
+        let k = i64::try_from(other.known()?).ok()?;
+        Some(self.offset(-k))
+    }
+
     pub fn add(&self, other: &Dim) -> Option<Dim> {
         Some(match (self, other) {
             (Dim::Known(a), Dim::Known(b)) => Dim::Known(a.checked_add(*b)?),

@@ -182,14 +182,15 @@ fn fold_with(
     Some(vec![fold::elementwise(&c, int_op, float_op, boolean)?])
 }
 
-/// Sums and products of shape values keep their symbols (`Shape` of `[batch, T]` × 2 is
-/// `[batch*2, T*2]`): the arithmetic dim expressions have.
+/// Sums, differences, products and quotients of shape values keep their symbols (`Shape` of
+/// `[batch, T]` × 2 is `[batch*2, T*2]`): the arithmetic dim expressions have. Whole-number
+/// floats take part in sums, differences and products, which are exact on them.
 fn fold_symbolic(ctx: &Ctx, op: fn(&Dim, &Dim) -> Option<Dim>) -> Option<Vec<ConstValue>> {
     let c = all_consts(ctx)?;
     if c.len() != 2 {
         return None;
     }
-    Some(vec![fold::dims_elementwise(&c, op)?])
+    Some(vec![fold::dims_elementwise(&c, op, true)?])
 }
 
 fn fold_add(ctx: &Ctx) -> Option<Vec<ConstValue>> {
@@ -197,12 +198,26 @@ fn fold_add(ctx: &Ctx) -> Option<Vec<ConstValue>> {
 }
 fn fold_sub(ctx: &Ctx) -> Option<Vec<ConstValue>> {
     fold_with(ctx, 2..=2, |a| a[0].checked_sub(a[1]), |a| a[0] - a[1], false)
+        .or_else(|| fold_symbolic(ctx, Dim::less_known))
 }
 fn fold_mul(ctx: &Ctx) -> Option<Vec<ConstValue>> {
     fold_with(ctx, 2..=2, |a| a[0].checked_mul(a[1]), |a| a[0] * a[1], false).or_else(|| fold_symbolic(ctx, Dim::mul))
 }
 fn fold_div(ctx: &Ctx) -> Option<Vec<ConstValue>> {
-    fold_with(ctx, 2..=2, |a| fold::trunc_div(a[0], a[1]), |a| a[0] / a[1], false)
+    fold_with(ctx, 2..=2, |a| fold::trunc_div(a[0], a[1]), |a| a[0] / a[1], false).or_else(|| {
+        // Integer division of a size by a positive constant rounds down (sizes are not
+        // negative, so truncation is the floor). A float quotient is not a whole number in
+        // general, and what rounds it comes later: not folded.
+        if ctx.dtype(0).is_none_or(DType::is_float) {
+            return None;
+        }
+        let c = all_consts(ctx)?;
+        let quotient = |a: &Dim, b: &Dim| match b.known() {
+            Some(k) if k > 0 => Some(a.div_floor(k)),
+            _ => None,
+        };
+        Some(vec![fold::dims_elementwise(&c, quotient, false)?])
+    })
 }
 fn fold_equal(ctx: &Ctx) -> Option<Vec<ConstValue>> {
     fold_with(
@@ -360,14 +375,20 @@ fn fold_pow(ctx: &Ctx) -> Option<Vec<ConstValue>> {
     }
 }
 fn fold_floor(ctx: &Ctx) -> Option<Vec<ConstValue>> {
-    fold_with(ctx, 1..=1, |a| Some(a[0]), |a| a[0].floor(), false)
+    fold_with(ctx, 1..=1, |a| Some(a[0]), |a| a[0].floor(), false).or_else(|| whole_sizes(ctx))
 }
 fn fold_ceil(ctx: &Ctx) -> Option<Vec<ConstValue>> {
-    fold_with(ctx, 1..=1, |a| Some(a[0]), |a| a[0].ceil(), false)
+    fold_with(ctx, 1..=1, |a| Some(a[0]), |a| a[0].ceil(), false).or_else(|| whole_sizes(ctx))
 }
 /// Round halves to even, per the ONNX operator specification.
 fn fold_round(ctx: &Ctx) -> Option<Vec<ConstValue>> {
-    fold_with(ctx, 1..=1, |a| Some(a[0]), |a| a[0].round_ties_even(), false)
+    fold_with(ctx, 1..=1, |a| Some(a[0]), |a| a[0].round_ties_even(), false).or_else(|| whole_sizes(ctx))
+}
+
+/// Rounding sizes (a shape cast to float) leaves them as they are: they are whole numbers.
+fn whole_sizes(ctx: &Ctx) -> Option<Vec<ConstValue>> {
+    let v = ctx.konst(0)?;
+    matches!(v.data, ConstData::Dims(_)).then(|| vec![v.clone()])
 }
 fn fold_sqrt(ctx: &Ctx) -> Option<Vec<ConstValue>> {
     fold_with(ctx, 1..=1, |_| None, |a| a[0].sqrt(), false)

@@ -163,16 +163,26 @@ pub fn reduce(data: &ConstValue, reduced: &[bool], keep: bool, (int_op, float_op
 }
 
 /// An element-wise op over shape values of which at least one is known only in part
-/// (`ConstData::Dims`), all others integers. The result is integers where every element came
-/// out known, dims otherwise.
-pub fn dims_elementwise(values: &[&ConstValue], op: fn(&Dim, &Dim) -> Option<Dim>) -> Option<ConstValue> {
-    if !values.iter().any(|v| matches!(v.data, ConstData::Dims(_)))
-        || values.iter().any(|v| matches!(v.data, ConstData::Float(_)))
-    {
+/// (`ConstData::Dims`), all others integers or, with `whole_floats`, floats that are whole
+/// numbers (exporters cast a shape to float to scale it: `H` × 2.0 is `2*H` exactly). The
+/// result is integers where every element came out known, dims otherwise.
+pub fn dims_elementwise(
+    values: &[&ConstValue],
+    op: impl Fn(&Dim, &Dim) -> Option<Dim>,
+    whole_floats: bool,
+) -> Option<ConstValue> {
+    if !values.iter().any(|v| matches!(v.data, ConstData::Dims(_))) {
         return None;
     }
     let dims = folded_shape(values)?;
-    let args: Vec<Vec<Dim>> = values.iter().map(|v| v.as_dims()).collect();
+    let args: Vec<Vec<Dim>> = values
+        .iter()
+        .map(|v| match &v.data {
+            ConstData::Float(f) if whole_floats => f.iter().map(|&x| whole_dim(x)).collect(),
+            ConstData::Float(_) => None,
+            _ => Some(v.as_dims()),
+        })
+        .collect::<Option<_>>()?;
     let mut out = Vec::new();
     for pos in positions(&dims) {
         let mut it = values.iter().zip(&args).map(|(v, a)| &a[source_index(&pos, &v.dims)]);
@@ -190,6 +200,11 @@ pub fn dims_elementwise(values: &[&ConstValue], op: fn(&Dim, &Dim) -> Option<Dim
             None => ConstData::Dims(out),
         },
     })
+}
+
+/// A float that is a whole, non-negative number that fits a size, as a dim.
+fn whole_dim(x: f64) -> Option<Dim> {
+    (x.is_finite() && x >= 0.0 && x.fract() == 0.0 && x < 9.0e15).then_some(Dim::Known(x as u64))
 }
 
 /// All inputs present and constant, in slot order.

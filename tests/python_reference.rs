@@ -695,6 +695,77 @@ fn symbolic_size_arithmetic_agrees_with_the_onnx_reference_evaluator() {
     }
 }
 
+/// The exporters' `Expand` to a target shape with -1 for "keep this dim": the target read off
+/// a `Shape` is tested `Equal` to -1 and the matches replaced by 1 (`Where`), then expanded.
+/// A size is never -1, so the target keeps its symbol: [T, 4, 8], and ConstantOfShape of the
+/// same target likewise. At each length the shapes must equal what the `onnx` package's
+/// reference evaluator computes (Equal, Where, Expand, ConstantOfShape per the ONNX operator
+/// specification).
+#[test]
+fn expand_targets_tested_against_minus_one_keep_their_symbols() {
+    if !python_onnx("expand_targets_tested_against_minus_one_keep_their_symbols") {
+        return;
+    }
+    use tilecut::ir::{evaluate, Dim};
+    let mut concat = node("Concat", &["lead", "four", "eight"], &["target"]);
+    concat.attribute = vec![int_attr("axis", 0)];
+    let nodes = vec![
+        node("Reshape", &["x", "to3"], &["x3"]),
+        node("Shape", &["x3"], &["s"]),
+        node("Slice", &["s", "start", "stop"], &["lead"]),
+        concat,
+        node("Equal", &["target", "minus1"], &["keep"]),
+        node("Where", &["keep", "ones", "target"], &["to"]),
+        node("Expand", &["x3", "to"], &["y"]),
+        node("ConstantOfShape", &["target"], &["c"]),
+    ];
+    let inits = vec![
+        i64_init("to3", &[3], &[-1, 1, 1]),
+        i64_init("start", &[1], &[0]),
+        i64_init("stop", &[1], &[1]),
+        i64_init("four", &[1], &[4]),
+        i64_init("eight", &[1], &[8]),
+        i64_init("minus1", &[1], &[-1]),
+        i64_init("ones", &[3], &[1, 1, 1]),
+    ];
+    let outs = ["y", "c"];
+    let mut m = model(nodes, vec![vi("x", 1, &[Dm::S("T")])], untyped(&outs), inits);
+    m.opset_import[0].version = 18;
+    let dir = tempfile::tempdir().expect("tmp");
+    let path = write(dir.path(), "expand_target.onnx", &m);
+
+    let read = tilecut::read_model(&path, &Default::default()).expect("reads");
+    let g = &read.model.graph;
+    let ours: Vec<Vec<Dim>> = g
+        .outputs
+        .iter()
+        .map(|&o| g.value(o).fact.shape.dims().expect("rank").to_vec())
+        .collect();
+    assert_eq!(ours[0], vec![Dim::sym("T"), Dim::Known(4), Dim::Known(8)]);
+    let out = python(RUN_AT_LENGTHS, &[path.to_str().expect("utf8"), "[1, 3, 10]"]);
+    let reference: serde_json::Map<String, serde_json::Value> = serde_json::from_str(&out).expect("json");
+    for t in [1u64, 3, 10] {
+        let shapes = reference[&t.to_string()].as_array().expect("outputs");
+        for (k, dims) in ours.iter().enumerate() {
+            let got: Vec<Option<u64>> = dims
+                .iter()
+                .map(|d| match d {
+                    Dim::Known(v) => Some(*v),
+                    Dim::Sym(text) => evaluate(text, &|n| (n == "T").then_some(t)).expect("an expression"),
+                    Dim::Unknown => None,
+                })
+                .collect();
+            let want: Vec<Option<u64>> = shapes[k]
+                .as_array()
+                .expect("shape")
+                .iter()
+                .map(|d| d.as_u64())
+                .collect();
+            assert_eq!(got, want, "{} at T = {t}", outs[k]);
+        }
+    }
+}
+
 /// Lists the models of the `onnx` package's backend test data converted from a training
 /// framework and its "simple" models, each with the dims of its test inputs (by input name)
 /// and of the outputs the ONNX project recorded for them (by output index), from

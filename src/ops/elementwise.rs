@@ -227,6 +227,7 @@ fn fold_equal(ctx: &Ctx) -> Option<Vec<ConstValue>> {
         |a| (a[0] == a[1]) as i64 as f64,
         true,
     )
+    .or_else(|| Some(vec![fold::dims_equal(ctx.konst(0)?, ctx.konst(1)?)?]))
 }
 fn fold_less(ctx: &Ctx) -> Option<Vec<ConstValue>> {
     fold_with(
@@ -269,12 +270,14 @@ fn fold_where(ctx: &Ctx) -> Option<Vec<ConstValue>> {
     if c.len() != 3 {
         return None;
     }
-    Some(vec![fold::elementwise(
+    fold::elementwise(
         &c,
         |a| Some(if a[0] != 0 { a[1] } else { a[2] }),
         |a| if a[0] != 0.0 { a[1] } else { a[2] },
         false,
-    )?])
+    )
+    .or_else(|| fold::dims_where(c[0], c[1], c[2]))
+    .map(|v| vec![v])
 }
 fn fold_neg(ctx: &Ctx) -> Option<Vec<ConstValue>> {
     fold_with(ctx, 1..=1, |a| a[0].checked_neg(), |a| -a[0], false)

@@ -202,6 +202,92 @@ pub fn dims_elementwise(
     })
 }
 
+/// One element of a shape value known in part: an integer (negative ones included, as
+/// `Reshape`'s -1), or a size that may be symbolic.
+#[derive(Clone)]
+enum Elem {
+    Int(i64),
+    Size(Dim),
+}
+
+/// The elements of an integer or partly symbolic value; None for floats.
+fn elems(v: &ConstValue) -> Option<Vec<Elem>> {
+    match &v.data {
+        ConstData::Dims(d) => Some(
+            d.iter()
+                .map(|x| match x.known().and_then(|k| i64::try_from(k).ok()) {
+                    Some(k) => Elem::Int(k),
+                    None => Elem::Size(x.clone()),
+                })
+                .collect(),
+        ),
+        ConstData::Float(_) => None,
+        ConstData::Int(_) => Some(v.as_ints().into_iter().map(Elem::Int).collect()),
+    }
+}
+
+/// `Equal` where a shape value is known in part, as exporters test a target shape against -1
+/// before `Expand`: a size is never negative, and a symbol equals itself; any other question
+/// about a symbol has no answer here.
+pub fn dims_equal(a: &ConstValue, b: &ConstValue) -> Option<ConstValue> {
+    if !matches!(a.data, ConstData::Dims(_)) && !matches!(b.data, ConstData::Dims(_)) {
+        return None;
+    }
+    let dims = folded_shape(&[a, b])?;
+    let (x, y) = (elems(a)?, elems(b)?);
+    let out = positions(&dims)
+        .map(|pos| {
+            match (&x[source_index(&pos, &a.dims)], &y[source_index(&pos, &b.dims)]) {
+                (Elem::Int(p), Elem::Int(q)) => Some(p == q),
+                (Elem::Size(_), Elem::Int(k)) | (Elem::Int(k), Elem::Size(_)) if *k < 0 => Some(false),
+                (Elem::Size(Dim::Sym(p)), Elem::Size(Dim::Sym(q))) if p == q => Some(true),
+                _ => None,
+            }
+            .map(i64::from)
+        })
+        .collect::<Option<Vec<i64>>>()?;
+    Some(ConstValue::ints(dims, out))
+}
+
+/// `Where` choosing between shape values known in part, with a known condition. The result
+/// keeps exact integers (a -1 for `Reshape` included) when every chosen element is one; a
+/// negative integer beside a symbol is not a size, and is not folded.
+pub fn dims_where(cond: &ConstValue, a: &ConstValue, b: &ConstValue) -> Option<ConstValue> {
+    if !matches!(a.data, ConstData::Dims(_)) && !matches!(b.data, ConstData::Dims(_)) {
+        return None;
+    }
+    let c = cond.try_ints()?;
+    let dims = folded_shape(&[cond, a, b])?;
+    let (x, y) = (elems(a)?, elems(b)?);
+    let chosen: Vec<Elem> = positions(&dims)
+        .map(|pos| {
+            let pick = *c.get(source_index(&pos, &cond.dims))? != 0;
+            let (from, v) = if pick { (&x, a) } else { (&y, b) };
+            from.get(source_index(&pos, &v.dims)).cloned()
+        })
+        .collect::<Option<_>>()?;
+    let data = match chosen
+        .iter()
+        .map(|e| match e {
+            Elem::Int(k) => Some(*k),
+            Elem::Size(_) => None,
+        })
+        .collect::<Option<Vec<i64>>>()
+    {
+        Some(ints) => ConstData::Int(ints),
+        None => ConstData::Dims(
+            chosen
+                .into_iter()
+                .map(|e| match e {
+                    Elem::Int(k) => u64::try_from(k).ok().map(Dim::Known),
+                    Elem::Size(d) => Some(d),
+                })
+                .collect::<Option<_>>()?,
+        ),
+    };
+    Some(ConstValue { dims, data })
+}
+
 /// A float that is a whole, non-negative number that fits a size, as a dim.
 fn whole_dim(x: f64) -> Option<Dim> {
     (x.is_finite() && x >= 0.0 && x.fract() == 0.0 && x < 9.0e15).then_some(Dim::Known(x as u64))

@@ -766,6 +766,126 @@ fn expand_targets_tested_against_minus_one_keep_their_symbols() {
     }
 }
 
+/// Runs a model at each of several shapes of its input `x` (a JSON list of shapes) in the
+/// `onnx` package's reference evaluator; prints the output shapes per run.
+const RUN_AT_SHAPES: &str = r#"
+import sys, json, onnx, numpy as np
+from onnx.reference import ReferenceEvaluator
+ev = ReferenceEvaluator(onnx.load(sys.argv[1]))
+print(json.dumps([[list(o.shape) for o in ev.run(None, {"x": np.ones(s, dtype=np.float32)})]
+                  for s in json.loads(sys.argv[2])]))
+"#;
+
+/// Transformer exports with a symbolic batch B and length T: tokens flattened to [B*T, 8] and
+/// back with -1 for the batch (the product counts as its factors, so -1 is B), a table of
+/// positions sliced to the length (`positions[:T]` and `positions[3:T]`, the end assumed
+/// within the table, as the Add after it requires), and a Slice whose start is computed from
+/// the data, with default axes: only the first axis is unknown. At each (B, T) every dim
+/// tilecut gives must equal what the `onnx` package's reference evaluator computes (Reshape,
+/// Slice, Add per the ONNX operator specification).
+#[test]
+fn transformer_reshapes_and_position_slices_keep_their_symbols() {
+    if !python_onnx("transformer_reshapes_and_position_slices_keep_their_symbols") {
+        return;
+    }
+    use tilecut::ir::{evaluate, Dim};
+    let un = |i: &str, o: &str| node("Unsqueeze", &[i, "axis0"], &[o]);
+    let cat = |ins: &[&str], o: &str| {
+        let mut n = node("Concat", ins, &[o]);
+        n.attribute = vec![int_attr("axis", 0)];
+        n
+    };
+    let mut cast = node("Cast", &["peak"], &["start"]);
+    cast.attribute = vec![int_attr("to", 7)];
+    let mut reduce = node("ReduceMax", &["x"], &["peak3"]);
+    reduce.attribute = vec![int_attr("keepdims", 0)];
+    let nodes = vec![
+        node("Shape", &["x"], &["s"]),
+        node("Gather", &["s", "zero"], &["b"]),
+        node("Gather", &["s", "one"], &["t"]),
+        node("Mul", &["b", "t"], &["bt"]),
+        un("bt", "btu"),
+        cat(&["btu", "eight"], "flat_shape"),
+        node("Reshape", &["x", "flat_shape"], &["flat"]),
+        un("t", "tu"),
+        cat(&["minus1", "tu", "eight"], "back_shape"),
+        node("Reshape", &["flat", "back_shape"], &["back"]),
+        node("Slice", &["positions", "zero1", "tu"], &["pe"]),
+        node("Add", &["back", "pe"], &["y"]),
+        node("Slice", &["positions", "three", "tu"], &["pe3"]),
+        // A start read off the data (all ones: 1), default axes.
+        reduce,
+        node("Reshape", &["peak3", "one1"], &["peak"]),
+        cast,
+        node("Slice", &["x", "start", "big"], &["tail"]),
+    ];
+    let mut inits = vec![
+        i64_init("zero", &[], &[0]),
+        i64_init("one", &[], &[1]),
+        i64_init("axis0", &[1], &[0]),
+        i64_init("eight", &[1], &[8]),
+        i64_init("minus1", &[1], &[-1]),
+        i64_init("zero1", &[1], &[0]),
+        i64_init("three", &[1], &[3]),
+        i64_init("one1", &[1], &[1]),
+        i64_init("big", &[1], &[i64::MAX]),
+    ];
+    inits.push(tilecut::onnx::TensorProto {
+        name: "positions".into(),
+        data_type: 1,
+        dims: vec![32, 8],
+        raw_data: vec![0u8; 32 * 8 * 4].into(),
+        ..Default::default()
+    });
+    let outs = ["flat", "back", "y", "pe3", "tail"];
+    let mut m = model(
+        nodes,
+        vec![vi("x", 1, &[Dm::S("B"), Dm::S("T"), Dm::N(8)])],
+        untyped(&outs),
+        inits,
+    );
+    m.opset_import[0].version = 18;
+    let dir = tempfile::tempdir().expect("tmp");
+    let path = write(dir.path(), "tokens.onnx", &m);
+
+    let read = tilecut::read_model(&path, &Default::default()).expect("reads");
+    let g = &read.model.graph;
+    let ours: Vec<Vec<Dim>> = g
+        .outputs
+        .iter()
+        .map(|&o| g.value(o).fact.shape.dims().expect("rank").to_vec())
+        .collect();
+    assert_eq!(ours[1], vec![Dim::sym("B"), Dim::sym("T"), Dim::Known(8)]);
+    assert_eq!(ours[2], ours[1]);
+    assert_eq!(ours[4], vec![Dim::Unknown, Dim::sym("T"), Dim::Known(8)]);
+    let runs: &[(u64, u64)] = &[(1, 3), (2, 5), (3, 32)];
+    let shapes: Vec<String> = runs.iter().map(|(b, t)| format!("[{b}, {t}, 8]")).collect();
+    let out = python(
+        RUN_AT_SHAPES,
+        &[path.to_str().expect("utf8"), &format!("[{}]", shapes.join(", "))],
+    );
+    let reference: Vec<Vec<Vec<u64>>> = serde_json::from_str(&out).expect("json");
+    for (&(b, t), want) in runs.iter().zip(&reference) {
+        for (k, dims) in ours.iter().enumerate() {
+            for (i, d) in dims.iter().enumerate() {
+                let got = match d {
+                    Dim::Known(v) => *v,
+                    Dim::Sym(text) => evaluate(text, &|n| match n {
+                        "B" => Some(b),
+                        "T" => Some(t),
+                        _ => None,
+                    })
+                    .expect("an expression")
+                    .expect("a size"),
+                    // Unknown is never wrong; only the data-dependent start is expected here.
+                    Dim::Unknown => continue,
+                };
+                assert_eq!(got, want[k][i], "{} dim {i} at B = {b}, T = {t}", outs[k]);
+            }
+        }
+    }
+}
+
 /// Lists the models of the `onnx` package's backend test data converted from a training
 /// framework and its "simple" models, each with the dims of its test inputs (by input name)
 /// and of the outputs the ONNX project recorded for them (by output index), from

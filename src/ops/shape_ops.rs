@@ -235,37 +235,41 @@ fn reshape_dims(input: Option<&[Dim]>, target: &[Dim], raw: &[i64], allowzero: b
     Ok(out)
 }
 
-/// The -1 dim of a reshape: ∏input / ∏(other output dims), cancelling equal symbols.
+/// The -1 dim of a reshape: ∏input / ∏(other output dims), cancelling equal symbols. A
+/// product dim (`B*S`, `64*T`) counts as its factors, so that `[B*S, 64]` reshaped to
+/// `[-1, S, 64]` gives `B`.
 fn infer_dim(input: &[Dim], out: &[Dim], at: usize) -> Dim {
     let mut num: u64 = 1;
     let mut syms: Vec<Dim> = Vec::new();
     for d in input {
-        match d {
-            Dim::Known(v) => match num.checked_mul(*v) {
-                Some(x) => num = x,
-                None => return Dim::Unknown,
-            },
-            Dim::Sym(_) => syms.push(d.clone()),
-            Dim::Unknown => return Dim::Unknown,
-        }
+        let Some((k, fs)) = factors(d) else {
+            return Dim::Unknown;
+        };
+        let Some(x) = num.checked_mul(k) else {
+            return Dim::Unknown;
+        };
+        num = x;
+        syms.extend(fs);
     }
     let mut den: u64 = 1;
     for (i, d) in out.iter().enumerate() {
         if i == at {
             continue;
         }
-        match d {
-            Dim::Known(v) => match den.checked_mul(*v) {
-                Some(x) => den = x,
-                None => return Dim::Unknown,
-            },
-            Dim::Sym(_) => match syms.iter().position(|s| s == d) {
+        let Some((k, fs)) = factors(d) else {
+            return Dim::Unknown;
+        };
+        let Some(x) = den.checked_mul(k) else {
+            return Dim::Unknown;
+        };
+        den = x;
+        for f in fs {
+            match syms.iter().position(|s| *s == f) {
                 Some(p) => {
                     syms.remove(p);
                 }
                 None => return Dim::Unknown,
-            },
-            Dim::Unknown => return Dim::Unknown,
+            }
         }
     }
     if den == 0 || num % den != 0 {
@@ -276,6 +280,29 @@ fn infer_dim(input: &[Dim], out: &[Dim], at: usize) -> Dim {
         d = d.mul(&s).unwrap_or(Dim::Unknown);
     }
     d
+}
+
+/// A dim as a whole number times symbols: a known size, one symbol or expression, or a
+/// plain product of them (`64*S`, `B*S`). None for an unknown dim. A name with `@` (a size
+/// named after its node, which may hold any character) is one factor.
+fn factors(d: &Dim) -> Option<(u64, Vec<Dim>)> {
+    match d {
+        Dim::Known(v) => Some((*v, Vec::new())),
+        Dim::Unknown => None,
+        Dim::Sym(s) if s.contains(['@', '(', '+', '-', '/']) || !s.contains('*') => Some((1, vec![d.clone()])),
+        Dim::Sym(s) => {
+            let mut k = 1u64;
+            let mut fs = Vec::new();
+            for part in s.split('*') {
+                match part.parse::<u64>() {
+                    Ok(v) => k = k.checked_mul(v)?,
+                    Err(_) if part.is_empty() => return Some((1, vec![d.clone()])),
+                    Err(_) => fs.push(Dim::sym(part)),
+                }
+            }
+            Some((k, fs))
+        }
+    }
 }
 
 fn reshape(ctx: &Ctx) -> Inferred {
@@ -595,11 +622,18 @@ fn split(ctx: &Ctx) -> Inferred {
 }
 
 /// Slice parameters: (starts, ends, axes, steps), from attributes (opset < 10) or inputs.
-type SliceParams = (Vec<i64>, Vec<i64>, Option<Vec<i64>>, Option<Vec<i64>>);
+/// A slice's end: a number, or a size known only as a symbol (an end read off a `Shape`).
+enum End {
+    At(i64),
+    Size(Dim),
+}
+
+type SliceParams = (Vec<i64>, Vec<End>, Option<Vec<i64>>, Option<Vec<i64>>);
 
 fn slice_params(ctx: &Ctx) -> Option<SliceParams> {
     if ctx.opset < 10 {
-        return Some((ctx.ints("starts")?, ctx.ints("ends")?, ctx.ints("axes"), None));
+        let ends = ctx.ints("ends")?.into_iter().map(End::At).collect();
+        return Some((ctx.ints("starts")?, ends, ctx.ints("axes"), None));
     }
     let opt = |i: usize| {
         if ctx.has_input(i) {
@@ -608,7 +642,21 @@ fn slice_params(ctx: &Ctx) -> Option<SliceParams> {
             Some(None)
         }
     };
-    Some((ctx.const_ints(1)?, ctx.const_ints(2)?, opt(3)?, opt(4)?))
+    let ends = ctx.konst(2)?;
+    let ends = match ends.try_ints() {
+        Some(v) => v.into_iter().map(End::At).collect(),
+        None => match &ends.data {
+            ConstData::Dims(d) => d
+                .iter()
+                .map(|x| match x.known().and_then(|k| i64::try_from(k).ok()) {
+                    Some(k) => End::At(k),
+                    None => End::Size(x.clone()),
+                })
+                .collect(),
+            _ => return None,
+        },
+    };
+    Some((ctx.const_ints(1)?, ends, opt(3)?, opt(4)?))
 }
 
 /// One sliced axis: its clamped (start, end, step) where the axis size is known, per the
@@ -634,13 +682,20 @@ fn slice_ranges(ctx: &Ctx, d: &[Dim]) -> Result<Option<Vec<(usize, AxisSpan)>>, 
         if step == 0 {
             return Err("step 0".into());
         }
+        let end = match &ends[i] {
+            End::At(e) => *e,
+            End::Size(size) => {
+                out.push((axis, AxisSpan::Open(sized_span(&d[axis], starts[i], size, step))));
+                continue;
+            }
+        };
         let Dim::Known(dim) = d[axis] else {
-            out.push((axis, AxisSpan::Open(open_span(&d[axis], starts[i], ends[i], step))));
+            out.push((axis, AxisSpan::Open(open_span(&d[axis], starts[i], end, step))));
             continue;
         };
         let dim = dim as i64;
         let fix = |v: i64| if v < 0 { v.saturating_add(dim) } else { v };
-        let (s, e) = (fix(starts[i]), fix(ends[i]));
+        let (s, e) = (fix(starts[i]), fix(end));
         let (s, e) = if step > 0 {
             (s.clamp(0, dim), e.clamp(0, dim))
         } else {
@@ -649,6 +704,36 @@ fn slice_ranges(ctx: &Ctx, d: &[Dim]) -> Result<Option<Vec<(usize, AxisSpan)>>, 
         out.push((axis, AxisSpan::Clamped(s, e, step)));
     }
     Ok(Some(out))
+}
+
+/// The output size of a forward slice from a fixed start to an end that is a symbolic size:
+/// up to the axis's own size when the end is that size (`x[:, 2:T]` of a length T), else the
+/// end less the start, the end assumed within the axis. Exporters slice a table of fixed
+/// length to the sequence's (`positions[:T]`), which the graph after it only accepts when T
+/// fits; a figure that depends on T stays unknown until T is fixed, and then the slice is
+/// computed exactly.
+fn sized_span(axis: &Dim, start: i64, end: &Dim, step: i64) -> Dim {
+    let Ok(stride) = u64::try_from(step) else {
+        return Dim::Unknown;
+    };
+    let span = |from: i64| end.offset(-from).offset(step - 1).div_floor(stride);
+    match axis {
+        Dim::Known(k) => {
+            let k = i64::try_from(*k).unwrap_or(i64::MAX);
+            let from = if start < 0 {
+                start.saturating_add(k).max(0)
+            } else {
+                start
+            };
+            if from >= k {
+                Dim::Known(0)
+            } else {
+                span(from)
+            }
+        }
+        Dim::Sym(_) if axis == end && start >= 0 => span(start),
+        _ => Dim::Unknown,
+    }
 }
 
 /// Exporters write "to the end" as a large end: INT64_MAX, INT32_MAX, or 10^9 (one TF
@@ -693,7 +778,14 @@ fn slice(ctx: &Ctx) -> Inferred {
                 }
                 None => s.iter_mut().for_each(|x| *x = Dim::Unknown),
             },
-            false => s.iter_mut().for_each(|x| *x = Dim::Unknown),
+            // The default axes are the first as many as there are starts.
+            false => {
+                let n = match ctx.dims(1).as_deref() {
+                    Some([Dim::Known(n)]) if ctx.opset >= 10 => *n as usize,
+                    _ => s.len(),
+                };
+                s.iter_mut().take(n).for_each(|x| *x = Dim::Unknown)
+            }
         }
         return Ok(smallvec::smallvec![tensor(dt, Shape::of(s))]);
     };

@@ -621,13 +621,13 @@ fn split(ctx: &Ctx) -> Inferred {
         .collect())
 }
 
-/// Slice parameters: (starts, ends, axes, steps), from attributes (opset < 10) or inputs.
 /// A slice's end: a number, or a size known only as a symbol (an end read off a `Shape`).
 enum End {
     At(i64),
     Size(Dim),
 }
 
+/// Slice parameters: (starts, ends, axes, steps), from attributes (opset < 10) or inputs.
 type SliceParams = (Vec<i64>, Vec<End>, Option<Vec<i64>>, Option<Vec<i64>>);
 
 fn slice_params(ctx: &Ctx) -> Option<SliceParams> {
@@ -707,31 +707,17 @@ fn slice_ranges(ctx: &Ctx, d: &[Dim]) -> Result<Option<Vec<(usize, AxisSpan)>>, 
 }
 
 /// The output size of a forward slice from a fixed start to an end that is a symbolic size:
-/// up to the axis's own size when the end is that size (`x[:, 2:T]` of a length T), else the
-/// end less the start, the end assumed within the axis. Exporters slice a table of fixed
-/// length to the sequence's (`positions[:T]`), which the graph after it only accepts when T
-/// fits; a figure that depends on T stays unknown until T is fixed, and then the slice is
-/// computed exactly.
+/// up to the axis's own size when the end is that size (`x[:, 2:T]` of a length T, exactly
+/// T-2). On an axis of fixed length K the size is `min(T, K)` less the start, which a dim
+/// cannot say (`positions[:T]` of a 512-row table is T only while T fits): unknown until T
+/// is fixed, then computed exactly; empty when the start is past the axis.
 fn sized_span(axis: &Dim, start: i64, end: &Dim, step: i64) -> Dim {
     let Ok(stride) = u64::try_from(step) else {
         return Dim::Unknown;
     };
-    let span = |from: i64| end.offset(-from).offset(step - 1).div_floor(stride);
     match axis {
-        Dim::Known(k) => {
-            let k = i64::try_from(*k).unwrap_or(i64::MAX);
-            let from = if start < 0 {
-                start.saturating_add(k).max(0)
-            } else {
-                start
-            };
-            if from >= k {
-                Dim::Known(0)
-            } else {
-                span(from)
-            }
-        }
-        Dim::Sym(_) if axis == end && start >= 0 => span(start),
+        Dim::Known(k) if start >= 0 && u64::try_from(start).is_ok_and(|s| s >= *k) => Dim::Known(0),
+        Dim::Sym(_) if axis == end && start >= 0 => end.offset(-start).offset(step - 1).div_floor(stride),
         _ => Dim::Unknown,
     }
 }

@@ -683,7 +683,8 @@ fn symbolic_size_arithmetic_agrees_with_the_onnx_reference_evaluator() {
 /// The exporters' `Expand` to a target shape with -1 for "keep this dim": the target read off
 /// a `Shape` is tested `Equal` to -1 and the matches replaced by 1 (`Where`), then expanded.
 /// A size is never -1, so the target keeps its symbol: [T, 4, 8], and ConstantOfShape of the
-/// same target likewise. At each length the shapes must equal what the `onnx` package's
+/// same target likewise; a target with a literal -1 beside the symbol (`expand(-1, T, 8)`)
+/// has that element found and replaced. At each length the shapes must equal what the `onnx` package's
 /// reference evaluator computes (Equal, Where, Expand, ConstantOfShape per the ONNX operator
 /// specification).
 #[test]
@@ -693,6 +694,8 @@ fn expand_targets_tested_against_minus_one_keep_their_symbols() {
     }
     let mut concat = node("Concat", &["lead", "four", "eight"], &["target"]);
     concat.attribute = vec![int_attr("axis", 0)];
+    let mut concat2 = node("Concat", &["minus1", "lead", "eight"], &["target2"]);
+    concat2.attribute = vec![int_attr("axis", 0)];
     let nodes = vec![
         node("Reshape", &["x", "to3"], &["x3"]),
         node("Shape", &["x3"], &["s"]),
@@ -702,6 +705,12 @@ fn expand_targets_tested_against_minus_one_keep_their_symbols() {
         node("Where", &["keep", "ones", "target"], &["to"]),
         node("Expand", &["x3", "to"], &["y"]),
         node("ConstantOfShape", &["target"], &["c"]),
+        // The target with a literal -1 in it, as exporters write expand(-1, T, 8): that -1
+        // is the one Equal finds, and becomes 1.
+        concat2,
+        node("Equal", &["target2", "minus1"], &["keep2"]),
+        node("Where", &["keep2", "ones", "target2"], &["to2"]),
+        node("Expand", &["x3", "to2"], &["y2"]),
     ];
     let inits = vec![
         i64_init("to3", &[3], &[-1, 1, 1]),
@@ -712,11 +721,13 @@ fn expand_targets_tested_against_minus_one_keep_their_symbols() {
         i64_init("minus1", &[1], &[-1]),
         i64_init("ones", &[3], &[1, 1, 1]),
     ];
-    let outs = ["y", "c"];
+    let outs = ["y", "c", "y2"];
     let m = model(nodes, vec![vi("x", 1, &[Dm::S("T")])], untyped(&outs), inits);
     let dir = tempfile::tempdir().expect("tmp");
     let (path, ours) = symbolic_outputs(m, dir.path(), "expand_target.onnx");
     assert_eq!(ours[0], vec![Dim::sym("T"), Dim::Known(4), Dim::Known(8)]);
+    // [T,1,1] expanded to [1,T,8].
+    assert_eq!(ours[2], vec![Dim::sym("T"), Dim::sym("T"), Dim::Known(8)]);
     let lengths = [1u64, 3, 10];
     let reference = reference_shapes(&path, &lengths.map(|t| vec![t]));
     for (t, shapes) in lengths.into_iter().zip(&reference) {

@@ -6,6 +6,9 @@ use crate::ir::{ConstData, ConstValue, Dim};
 use super::util::count;
 use super::Ctx;
 
+/// Stands for a literal -1 inside a partly symbolic shape value (Reshape's "infer this dim").
+pub const INFER_MARK: &str = "-1";
+
 /// Element limit for folded values: shape arithmetic is tiny; anything larger is left alone.
 pub const MAX_FOLD_ELEMENTS: u64 = 1 << 16;
 
@@ -183,6 +186,14 @@ pub fn dims_elementwise(
             _ => Some(v.as_dims()),
         })
         .collect::<Option<_>>()?;
+    // Reshape's -1 is not a size: no arithmetic on it.
+    if args
+        .iter()
+        .flatten()
+        .any(|d| matches!(d, Dim::Sym(s) if &**s == INFER_MARK))
+    {
+        return None;
+    }
     let mut out = Vec::new();
     for pos in positions(&dims) {
         let mut it = values.iter().zip(&args).map(|(v, a)| &a[source_index(&pos, &v.dims)]);
@@ -203,7 +214,8 @@ pub fn dims_elementwise(
 }
 
 /// One element of a shape value known in part: an integer (negative ones included, as
-/// `Reshape`'s -1), or a size that may be symbolic.
+/// `Reshape`'s -1, which a partly symbolic value holds as `INFER_MARK`), or a size that may
+/// be symbolic.
 #[derive(Clone)]
 enum Elem {
     Int(i64),
@@ -215,9 +227,12 @@ fn elems(v: &ConstValue) -> Option<Vec<Elem>> {
     match &v.data {
         ConstData::Dims(d) => Some(
             d.iter()
-                .map(|x| match x.known().and_then(|k| i64::try_from(k).ok()) {
-                    Some(k) => Elem::Int(k),
-                    None => Elem::Size(x.clone()),
+                .map(|x| match x {
+                    Dim::Sym(s) if &**s == INFER_MARK => Elem::Int(-1),
+                    _ => match x.known().and_then(|k| i64::try_from(k).ok()) {
+                        Some(k) => Elem::Int(k),
+                        None => Elem::Size(x.clone()),
+                    },
                 })
                 .collect(),
         ),
@@ -250,8 +265,8 @@ pub fn dims_equal(a: &ConstValue, b: &ConstValue) -> Option<ConstValue> {
 }
 
 /// `Where` choosing between shape values known in part, with a known condition. The result
-/// keeps exact integers (a -1 for `Reshape` included) when every chosen element is one; a
-/// negative integer beside a symbol is not a size, and is not folded.
+/// keeps exact integers when every chosen element is one; beside a symbol, a -1 is kept as
+/// `INFER_MARK` (as `Concat` keeps it) and any other negative integer is not folded.
 pub fn dims_where(cond: &ConstValue, a: &ConstValue, b: &ConstValue) -> Option<ConstValue> {
     if !matches!(a.data, ConstData::Dims(_)) && !matches!(b.data, ConstData::Dims(_)) {
         return None;
@@ -279,6 +294,7 @@ pub fn dims_where(cond: &ConstValue, a: &ConstValue, b: &ConstValue) -> Option<C
             chosen
                 .into_iter()
                 .map(|e| match e {
+                    Elem::Int(-1) => Some(Dim::sym(INFER_MARK)),
                     Elem::Int(k) => u64::try_from(k).ok().map(Dim::Known),
                     Elem::Size(d) => Some(d),
                 })

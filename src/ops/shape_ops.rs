@@ -8,8 +8,7 @@ use super::fold::{self, MAX_FOLD_ELEMENTS};
 use super::util::{broadcast, count, norm_axis, norm_insert_axis, product, tensor};
 use super::{CostRule, Ctx, Inferred, OpDef};
 
-/// Stands for a literal -1 inside a partly symbolic shape value (Reshape's "infer this dim").
-const INFER_MARK: &str = "-1";
+use super::fold::INFER_MARK;
 
 fn i64_shape(n: usize) -> Shape {
     Shape::known(&[n as u64])

@@ -832,6 +832,57 @@ fn transformer_reshapes_and_position_slices_keep_their_symbols() {
     }
 }
 
+/// A shape value built by Concat from constants and a part computed from the data (here the
+/// input's maximum, cast to an integer): the result's known parts still size what it shapes,
+/// [2, ?, 3] from ConstantOfShape and from a Reshape to it, not rank 3 alone. The known dims
+/// must equal what the `onnx` package's reference evaluator computes (Concat,
+/// ConstantOfShape, Reshape per the ONNX operator specification), and the computed one is
+/// unknown, never guessed.
+#[test]
+fn concat_keeps_the_known_parts_of_a_shape_computed_in_part_from_data() {
+    if !python_onnx("concat_keeps_the_known_parts_of_a_shape_computed_in_part_from_data") {
+        return;
+    }
+    let mut reduce = node("ReduceMax", &["x"], &["peak"]);
+    reduce.attribute = vec![int_attr("keepdims", 0)];
+    let mut cast = node("Cast", &["peak"], &["peak_i"]);
+    cast.attribute = vec![int_attr("to", 7)];
+    let mut concat = node("Concat", &["two", "middle", "three"], &["shape"]);
+    concat.attribute = vec![int_attr("axis", 0)];
+    let nodes = vec![
+        reduce,
+        cast,
+        node("Reshape", &["peak_i", "one1"], &["middle"]),
+        concat,
+        node("ConstantOfShape", &["shape"], &["c"]),
+        node("Reshape", &["c", "shape"], &["r"]),
+    ];
+    let inits = vec![
+        i64_init("one1", &[1], &[1]),
+        i64_init("two", &[1], &[2]),
+        i64_init("three", &[1], &[3]),
+    ];
+    let outs = ["c", "r"];
+    let m = model(nodes, vec![vi("x", 1, &[Dm::S("T")])], untyped(&outs), inits);
+    let dir = tempfile::tempdir().expect("tmp");
+    let (path, ours) = symbolic_outputs(m, dir.path(), "partial_shape.onnx");
+    for dims in &ours {
+        assert_eq!(*dims, vec![Dim::Known(2), Dim::Unknown, Dim::Known(3)]);
+    }
+    // All ones: the maximum is 1 at every length.
+    let lengths = [1u64, 4];
+    let reference = reference_shapes(&path, &lengths.map(|t| vec![t]));
+    for shapes in &reference {
+        for (k, dims) in ours.iter().enumerate() {
+            for (i, d) in dims.iter().enumerate() {
+                if let Dim::Known(v) = d {
+                    assert_eq!(*v, shapes[k][i], "{} dim {i}", outs[k]);
+                }
+            }
+        }
+    }
+}
+
 /// Lists the models of the `onnx` package's backend test data converted from a training
 /// framework and its "simple" models, each with the dims of its test inputs (by input name)
 /// and of the outputs the ONNX project recorded for them (by output index), from

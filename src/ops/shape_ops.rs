@@ -525,7 +525,33 @@ pub(super) fn concat_shape(shapes: &[Option<Vec<Dim>>], axis: i64) -> Result<Sha
 }
 
 fn fold_concat(ctx: &Ctx) -> Option<Vec<ConstValue>> {
-    let parts = fold::all_consts(ctx)?;
+    // A part computed from the data, of a known short length, is that many unknown sizes: the
+    // known parts beside it still size what the result shapes ([2, ?, 3], not rank 3 alone).
+    let unknown_part = |i: usize| -> Option<ConstValue> {
+        match (ctx.dtype(i), ctx.dims(i).as_deref()) {
+            (Some(DType::I64 | DType::I32), Some([Dim::Known(n)])) if *n <= MAX_UNKNOWN_PART => Some(ConstValue {
+                dims: vec![*n],
+                data: ConstData::Dims(vec![Dim::Unknown; *n as usize]),
+            }),
+            _ => None,
+        }
+    };
+    let present: Vec<usize> = (0..ctx.node.inputs.len()).filter(|&i| ctx.has_input(i)).collect();
+    let computed: Vec<Option<ConstValue>> = present
+        .iter()
+        .map(|&i| match ctx.konst(i) {
+            Some(_) => None,
+            None => unknown_part(i),
+        })
+        .collect();
+    if present.iter().all(|&i| ctx.konst(i).is_none()) {
+        return None;
+    }
+    let parts: Vec<&ConstValue> = present
+        .iter()
+        .zip(&computed)
+        .map(|(&i, c)| ctx.konst(i).or(c.as_ref()))
+        .collect::<Option<_>>()?;
     if parts.iter().any(|p| p.dims.len() != 1) {
         return None;
     }
@@ -563,6 +589,9 @@ fn fold_concat(ctx: &Ctx) -> Option<Vec<ConstValue>> {
         ConstValue::ints(dims, parts.iter().flat_map(|p| p.as_ints()).collect())
     }])
 }
+
+/// The longest part of a shape value computed from the data that `Concat` still folds.
+const MAX_UNKNOWN_PART: u64 = 8;
 
 fn split(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(0);

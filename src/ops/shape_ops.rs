@@ -536,21 +536,16 @@ fn fold_concat(ctx: &Ctx) -> Option<Vec<ConstValue>> {
             _ => None,
         }
     };
-    let present: Vec<usize> = (0..ctx.node.inputs.len()).filter(|&i| ctx.has_input(i)).collect();
-    let computed: Vec<Option<ConstValue>> = present
-        .iter()
-        .map(|&i| match ctx.konst(i) {
-            Some(_) => None,
-            None => unknown_part(i),
-        })
-        .collect();
-    if present.iter().all(|&i| ctx.konst(i).is_none()) {
+    // Concats of activations are the common case: nothing to fold, nothing allocated.
+    if !(0..ctx.node.inputs.len()).any(|i| ctx.konst(i).is_some()) {
         return None;
     }
-    let parts: Vec<&ConstValue> = present
-        .iter()
-        .zip(&computed)
-        .map(|(&i, c)| ctx.konst(i).or(c.as_ref()))
+    let parts: Vec<std::borrow::Cow<ConstValue>> = (0..ctx.node.inputs.len())
+        .filter(|&i| ctx.has_input(i))
+        .map(|i| match ctx.konst(i) {
+            Some(c) => Some(std::borrow::Cow::Borrowed(c)),
+            None => unknown_part(i).map(std::borrow::Cow::Owned),
+        })
         .collect::<Option<_>>()?;
     if parts.iter().any(|p| p.dims.len() != 1) {
         return None;

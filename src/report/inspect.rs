@@ -246,43 +246,48 @@ pub fn params_and_weight_bytes(g: &Graph) -> (u64, u64) {
 
 fn weights(g: &Graph, acc: &mut (u64, u64)) {
     for (i, v) in g.values.iter().enumerate() {
-        let source = match v.kind {
-            ValueKind::Initializer => true,
-            ValueKind::Constant => v
-                .producer
-                .is_some_and(|p| matches!(g.node(p).op_type.as_str(), "Constant" | "ConstantOfShape")),
-            _ => false,
-        };
-        if !source
-            || matches!(
-                v.fact.dtype,
-                Some(DType::I64) | Some(DType::Bool) | Some(DType::Str) | None
-            )
-        {
-            continue;
-        }
-        let n = v
-            .data
-            .as_ref()
-            .and_then(|d| d.element_count())
-            .or_else(|| v.fact.shape.element_count())
-            .unwrap_or(0);
-        let b = v
-            .data
-            .as_ref()
-            .and_then(|d| d.bytes())
-            .or_else(|| v.fact.bytes())
-            .unwrap_or(0);
-        if !only_quant_params(g, crate::ir::ValueId::new(i)) {
-            acc.0 = acc.0.saturating_add(n);
-        }
-        acc.1 = acc.1.saturating_add(b);
+        add_weight(g, i, v, acc);
     }
     for n in &g.nodes {
         for b in n.bodies() {
             weights(&b.graph, acc);
         }
     }
+}
+
+/// Adds value `i` of `g` to (parameters, weight bytes) if it is a weight.
+fn add_weight(g: &Graph, i: usize, v: &crate::ir::Value, acc: &mut (u64, u64)) {
+    let source = match v.kind {
+        ValueKind::Initializer => true,
+        ValueKind::Constant => v
+            .producer
+            .is_some_and(|p| matches!(g.node(p).op_type.as_str(), "Constant" | "ConstantOfShape")),
+        _ => false,
+    };
+    if !source
+        || matches!(
+            v.fact.dtype,
+            Some(DType::I64) | Some(DType::Bool) | Some(DType::Str) | None
+        )
+    {
+        return;
+    }
+    let n = v
+        .data
+        .as_ref()
+        .and_then(|d| d.element_count())
+        .or_else(|| v.fact.shape.element_count())
+        .unwrap_or(0);
+    let b = v
+        .data
+        .as_ref()
+        .and_then(|d| d.bytes())
+        .or_else(|| v.fact.bytes())
+        .unwrap_or(0);
+    if !only_quant_params(g, crate::ir::ValueId::new(i)) {
+        acc.0 = acc.0.saturating_add(n);
+    }
+    acc.1 = acc.1.saturating_add(b);
 }
 
 fn count_body_nodes(g: &Graph) -> usize {
@@ -309,8 +314,16 @@ pub fn build<'a>(model: &'a Model, diags: &[Diagnostic], reasons: &'a UnknownRea
     let mut macs = Some(0u64);
     let mut ops = Some(0u64);
     let mut because = crate::ir::NameList::new();
+    // One walk over the nodes and one over the values gather every figure: on a large graph
+    // each walk reads tens of megabytes, and a walk per figure read them again and again.
+    let mut w = (0u64, 0u64);
+    let mut body_nodes = 0usize;
     for n in &g.nodes {
         counts.entry((n.domain.addr(), n.op_type.addr())).or_insert((0, n)).0 += 1;
+        for b in n.bodies() {
+            body_nodes += b.graph.nodes.len() + count_body_nodes(&b.graph);
+            weights(&b.graph, &mut w);
+        }
         if n.folded {
             continue;
         }
@@ -327,7 +340,8 @@ pub fn build<'a>(model: &'a Model, diags: &[Diagnostic], reasons: &'a UnknownRea
     let mut activation_bytes = Some(0u64);
     // A set: a graph can read very many names it does not define.
     let captured: std::collections::HashSet<&str> = g.captured.iter().map(|c| g.value(*c).name.as_str()).collect();
-    for v in &g.values {
+    for (i, v) in g.values.iter().enumerate() {
+        add_weight(g, i, v, &mut w);
         if matches!(v.kind, ValueKind::Input | ValueKind::Activation | ValueKind::Output)
             && !captured.contains(v.name.as_str())
         {
@@ -351,7 +365,6 @@ pub fn build<'a>(model: &'a Model, diags: &[Diagnostic], reasons: &'a UnknownRea
             });
     because.sort();
     because.dedup();
-    let w = params_and_weight_bytes(g);
     let mut warnings = diags.to_vec();
     warnings.sort();
     warnings.dedup();
@@ -370,7 +383,7 @@ pub fn build<'a>(model: &'a Model, diags: &[Diagnostic], reasons: &'a UnknownRea
                 })
                 .collect(),
             nodes: g.nodes.len(),
-            nodes_in_subgraphs: count_body_nodes(g),
+            nodes_in_subgraphs: body_nodes,
             functions: model.functions.clone(),
             params: w.0,
             weight_bytes: w.1,

@@ -6,37 +6,36 @@ use std::collections::{BTreeMap, BTreeSet, HashMap};
 
 use crate::diag::{codes, Diagnostic};
 use crate::fastmap::FastMap;
-use crate::ir::{ConstValue, DType, Fact, Graph, Model, NodeCost, Shape, Storage, ValueId, ValueKind, ValueType};
+use crate::ir::{ConstValue, DType, Fact, Graph, Model, Name, NodeCost, Shape, Storage, ValueId, ValueKind, ValueType};
 use crate::onnx::load::read_external;
 use crate::ops::{self, CostRule, Ctx, MacsOps};
 use crate::values::{self, MAX_DECODE_ELEMENTS};
 
 /// Why a main-graph value's shape is not concrete, by value index. A large graph with one
-/// symbolic dim has the same reason on every tensor: the text is shared, not repeated.
-/// Sorted by value id, one entry per value (a list, not a map: it is built in one pass and
-/// only read in order).
-pub type UnknownReasons = Vec<(ValueId, std::sync::Arc<str>)>;
+/// symbolic dim has the same reason on every tensor: the text is shared (an interned `Name`,
+/// copied as a pointer), not repeated. Sorted by value id, one entry per value (a list, not a
+/// map: it is built in one pass and only read in order).
+pub type UnknownReasons = Vec<(ValueId, Name)>;
 
 /// One shared copy of each distinct reason text.
 #[derive(Default)]
 struct ReasonTexts(
-    FastMap<String, std::sync::Arc<str>>,
-    /// Keyed by the addresses of the shape's symbols (0 for an unknown dim): no reference
-    /// counts taken and no text hashed per tensor. The value keeps those symbols alive, so
-    /// that no other text can take one of their addresses while the key is stored.
-    FastMap<Vec<usize>, (Vec<crate::ir::Name>, std::sync::Arc<str>)>,
+    FastMap<String, Name>,
+    /// Keyed by the addresses of the shape's symbols (0 for an unknown dim): no text hashed
+    /// per tensor. Interned names are never freed, so an address stays one text's.
+    FastMap<Vec<usize>, Name>,
     /// The key being looked up, reused: one allocation per distinct key, not per tensor.
     Vec<usize>,
     /// The last key found and its reason: tensors in a row mostly share their symbols (a
     /// batch dim on every tensor), and comparing a few addresses is cheaper than hashing.
-    (Vec<usize>, Option<std::sync::Arc<str>>),
+    (Vec<usize>, Option<Name>),
 );
 
 impl ReasonTexts {
     /// The reason for a shape that is not concrete, cached by its dims that are not known
     /// (a symbol, or an unknown dim): the key shares the symbols' text instead of splitting
     /// and joining it again for every tensor.
-    fn for_shape(&mut self, shape: &Shape) -> std::sync::Arc<str> {
+    fn for_shape(&mut self, shape: &Shape) -> Name {
         let mut key = std::mem::take(&mut self.2);
         key.clear();
         key.extend(shape.dims().into_iter().flatten().filter_map(|d| match d {
@@ -49,7 +48,7 @@ impl ReasonTexts {
             self.2 = key;
             return a;
         }
-        if let Some((_, a)) = self.1.get(key.as_slice()) {
+        if let Some(a) = self.1.get(key.as_slice()) {
             let a = a.clone();
             self.3 .0.clone_from(&key);
             self.3 .1 = Some(a.clone());
@@ -63,22 +62,13 @@ impl ReasonTexts {
             format!("depends on symbolic dims: {}", syms.join(", "))
         };
         let a = self.get(text);
-        let alive = shape
-            .dims()
-            .into_iter()
-            .flatten()
-            .filter_map(|d| match d {
-                crate::ir::Dim::Sym(s) => Some(s.clone()),
-                _ => None,
-            })
-            .collect();
-        self.1.insert(key, (alive, a.clone()));
+        self.1.insert(key, a.clone());
         a
     }
 
     /// The reason for a value that is not concrete: a tensor's shape, or what inside a
     /// sequence or optional is not known.
-    fn for_fact(&mut self, fact: &Fact) -> std::sync::Arc<str> {
+    fn for_fact(&mut self, fact: &Fact) -> Name {
         if is_tensor(fact) {
             return self.for_shape(&fact.shape);
         }
@@ -91,11 +81,11 @@ impl ReasonTexts {
         }
     }
 
-    fn get(&mut self, text: String) -> std::sync::Arc<str> {
+    fn get(&mut self, text: String) -> Name {
         if let Some(a) = self.0.get(&text) {
             return a.clone();
         }
-        let a: std::sync::Arc<str> = std::sync::Arc::from(text.as_str());
+        let a = Name::from(text.as_str());
         self.0.insert(text, a.clone());
         a
     }

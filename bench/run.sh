@@ -3,7 +3,9 @@
 # (onnx.load(..., load_external_data=False) + onnx.shape_inference.infer_shapes) and
 # tract-onnx's load + type analysis, on generated models. Prints medians of N runs (whole
 # processes), peak RSS, and ratios; the Python pair's time inside its process is the median of
-# up to five runs. Usage: bash bench/run.sh [DIR] [RUNS]
+# up to five runs, and tilecut's (`tc_in_ms`, milliseconds: read + import + inference + report, from the
+# stage bench) is measured right after it, so that `inproc_rt` compares the two side by side.
+# Usage: bash bench/run.sh [DIR] [RUNS]
 set -euo pipefail
 cd "$(dirname "$0")/.."
 dir="${1:-bench-models}"
@@ -43,7 +45,7 @@ measure() {
   echo "$med $rss"
 }
 
-printf '%-20s %10s %9s %9s %10s %9s %10s %8s %8s\n' model tilecut_s json_s rss_MB onnx_py_s rss_MB in-proc_s ratio json_rt
+printf '%-20s %10s %9s %9s %10s %9s %10s %8s %8s %10s %8s\n' model tilecut_s json_s rss_MB onnx_py_s rss_MB in-proc_s ratio json_rt tc_in_ms inproc_rt
 for m in stack_10k stack_30k stack_100k stack_200k heavy_1g_inline heavy_1g_external heavy_2g_external; do
   f="$dir/$m.onnx"
   [ -f "$f" ] || continue
@@ -56,12 +58,22 @@ for m in stack_10k stack_30k stack_100k stack_200k heavy_1g_inline heavy_1g_exte
     # The in-process time is the median of up to five runs: one run swings by a tenth.
     ip=$(for _ in $(seq "$(( runs < 5 ? runs : 5 ))"); do python3 -c "$py_inproc" "$f" 2>/dev/null || echo nan; done |
       sort -g | awk '{a[NR]=$1} END {print a[int((NR+1)/2)]}')
+    # tilecut's own in-process time right after it, batch symbolic as the Python pair reads
+    # it: read + import + inference + report, medians of five rounds (the stage bench).
+    tip=$(cargo bench --quiet --bench stages -- "$dir" "$m" 2>/dev/null |
+      awk -v m="$m" '$1 == m && $2 == "symbolic" { printf "%.1f", $3 + $5 + $6 + $7 }')
+    if [ -z "$tip" ]; then
+      tip=$(cargo bench --quiet --bench stages -- "$dir" "$m" 2>/dev/null |
+        awk -v m="$m" '$1 == m { printf "%.1f", $2 + $4 + $5 + $6 }')
+    fi
+    tip=${tip:-n/a}
+    iratio=$(awk -v a="$ip" -v b="$tip" 'BEGIN { if (b + 0 > 0 && a + 0 > 0) printf "%.1fx", a * 1000 / b; else print "n/a" }')
     ratio=$(awk -v a="$ps" -v b="$ts" 'BEGIN { if (b > 0) printf "%.1fx", a / b; else print "inf" }')
     jratio=$(awk -v a="$ps" -v b="$tj" 'BEGIN { if (b > 0) printf "%.1fx", a / b; else print "inf" }')
   else
-    ps=nan; pr=0; ip=nan; ratio=n/a; jratio=n/a
+    ps=nan; pr=0; ip=nan; tip=nan; ratio=n/a; jratio=n/a; iratio=n/a
   fi
-  printf '%-20s %10s %9s %9d %10s %9d %10.3f %8s %8s\n' "$m" "$ts" "$tj" $((tr / 1024)) "$ps" $((pr / 1024)) "$ip" "$ratio" "$jratio"
+  printf '%-20s %10s %9s %9d %10s %9d %10.3f %8s %8s %10s %8s\n' "$m" "$ts" "$tj" $((tr / 1024)) "$ps" $((pr / 1024)) "$ip" "$ratio" "$jratio" "$tip" "$iratio"
 done
 echo
 echo "analyze end to end (read, judge, cut, map, report), whole process, table output:"

@@ -1,5 +1,5 @@
 //! Per-stage timings of the reader on generated models (`tilecut dev bench-models DIR`).
-//! Run: `cargo bench --bench stages -- DIR`. Prints medians of 5 runs per stage. `load ms`
+//! Run: `cargo bench --bench stages -- DIR [MODEL]`. Prints medians of 5 runs per stage. `load ms`
 //! reads the file as the binary's `inspect` does (mapped for the process's life, the main
 //! nodes checked and kept in wire form: `onnx::load::load_for_import`); `shared` decodes it
 //! whole as `split` and other callers of `onnx::load::load` do. Stacks are read
@@ -22,11 +22,13 @@ static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;
 
 fn main() {
     tilecut::tune_allocator();
-    let dir = std::env::args()
-        .skip(1)
-        .find(|a| !a.starts_with('-'))
+    // `DIR [MODEL]`: a model name (`stack_100k`) times that model alone.
+    let args: Vec<String> = std::env::args().skip(1).filter(|a| !a.starts_with('-')).collect();
+    let dir = args
+        .first()
         .map(PathBuf::from)
         .unwrap_or_else(|| PathBuf::from("bench-models"));
+    let only = args.get(1);
     println!(
         "{:<22} {:>9} {:>9} {:>9} {:>9} {:>9} {:>9} {:>9} {:>9} {:>12}",
         "model", "load ms", "shared", "import", "infer", "report", "json", "judge", "cut", "cut/10k nodes"
@@ -44,7 +46,7 @@ fn main() {
         "heavy_1g_external",
     ] {
         let path = dir.join(format!("{name}.onnx"));
-        if !path.exists() {
+        if !path.exists() || only.is_some_and(|o| o != name) {
             continue;
         }
         // With the batch fixed, as a user sizing a model would run it; and for the stacks also

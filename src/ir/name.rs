@@ -129,3 +129,33 @@ impl PartialEq<Name> for &str {
         *self == other.0.as_str()
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::Name;
+
+    /// Equality is by address, so it holds only if every way of making a `Name` interns:
+    /// texts made apart (from a `&str`, a `String`, on another thread) must share one.
+    #[test]
+    fn equal_texts_share_one_address_however_made() {
+        let a = Name::from("batch");
+        let b = Name::from(String::from("batch"));
+        let c = std::thread::spawn(|| Name::from("batch")).join().expect("thread");
+        assert_eq!(a, b);
+        assert_eq!(a, c);
+        assert_eq!(a.addr(), c.addr());
+        assert_ne!(a, Name::from("batch_size"));
+        assert_eq!(Name::default(), Name::from(""));
+    }
+
+    /// Sets of names are looked up by `&str` (`Borrow<str>`): a name must hash as its text.
+    #[test]
+    fn a_name_hashes_and_orders_as_its_text() {
+        let set: std::collections::HashSet<Name> = ["axis", "perm"].into_iter().map(Name::from).collect();
+        assert!(set.contains("perm"));
+        assert!(!set.contains("pads"));
+        let mut v = vec![Name::from("b"), Name::from("a"), Name::from("c")];
+        v.sort();
+        assert_eq!(v.iter().map(|n| n.as_str()).collect::<Vec<_>>(), ["a", "b", "c"]);
+    }
+}

@@ -154,7 +154,7 @@ mod tests {
         let set: std::collections::HashSet<Name> = ["axis", "perm"].into_iter().map(Name::from).collect();
         assert!(set.contains("perm"));
         assert!(!set.contains("pads"));
-        let mut v = vec![Name::from("b"), Name::from("a"), Name::from("c")];
+        let mut v = [Name::from("b"), Name::from("a"), Name::from("c")];
         v.sort();
         assert_eq!(v.iter().map(|n| n.as_str()).collect::<Vec<_>>(), ["a", "b", "c"]);
     }

@@ -3,8 +3,9 @@
 # (onnx.load(..., load_external_data=False) + onnx.shape_inference.infer_shapes) and
 # tract-onnx's load + type analysis, on generated models. Prints medians of N runs (whole
 # processes), peak RSS, and ratios; the Python pair's time inside its process is the median of
-# up to five runs, and tilecut's (`tc_in_ms`, milliseconds: read + import + inference + report, from the
-# stage bench) is measured right after it, so that `inproc_rt` compares the two side by side.
+# up to five runs, and tilecut's (`tc_in_ms`, milliseconds: read + import + inference +
+# report, from the stage bench) is measured right after it, so that `inproc_rt` compares the
+# two side by side.
 # Usage: bash bench/run.sh [DIR] [RUNS]
 set -euo pipefail
 cd "$(dirname "$0")/.."
@@ -60,11 +61,11 @@ for m in stack_10k stack_30k stack_100k stack_200k heavy_1g_inline heavy_1g_exte
       sort -g | awk '{a[NR]=$1} END {print a[int((NR+1)/2)]}')
     # tilecut's own in-process time right after it, batch symbolic as the Python pair reads
     # it: read + import + inference + report, medians of five rounds (the stage bench).
-    tip=$(cargo bench --quiet --bench stages -- "$dir" "$m" 2>/dev/null |
-      awk -v m="$m" '$1 == m && $2 == "symbolic" { printf "%.1f", $3 + $5 + $6 + $7 }')
+    # Stacks have a `symbolic` row; the weight-heavy models only the plain one.
+    stages=$(cargo bench --quiet --bench stages -- "$dir" "$m" 2>/dev/null || true)
+    tip=$(awk -v m="$m" '$1 == m && $2 == "symbolic" { printf "%.1f", $3 + $5 + $6 + $7 }' <<< "$stages")
     if [ -z "$tip" ]; then
-      tip=$(cargo bench --quiet --bench stages -- "$dir" "$m" 2>/dev/null |
-        awk -v m="$m" '$1 == m { printf "%.1f", $2 + $4 + $5 + $6 }')
+      tip=$(awk -v m="$m" '$1 == m { printf "%.1f", $2 + $4 + $5 + $6 }' <<< "$stages")
     fi
     tip=${tip:-n/a}
     iratio=$(awk -v a="$ip" -v b="$tip" 'BEGIN { if (b + 0 > 0 && a + 0 > 0) printf "%.1fx", a * 1000 / b; else print "n/a" }')

@@ -20,7 +20,7 @@ use bytes::{Buf, BufMut};
 use prost::encoding::{self, DecodeContext, WireType};
 use prost::DecodeError;
 
-use super::node::{NodeCheck, NodeRun};
+use super::node::{plainly_sound, NodeCheck, NodeRun};
 use super::text::{encode_string, string_len};
 use super::{NodeProto, SparseTensorProto, StringStringEntryProto, TensorProto, ValueInfoProto};
 
@@ -198,7 +198,13 @@ fn check_piece(
         let mut peek: &[u8] = &piece;
         let len = encoding::decode_varint(&mut peek)?;
         let start = at + (total - peek.len());
-        encoding::message::merge(WireType::LengthDelimited, &mut NodeCheck, &mut piece, ctx.clone())?;
+        let node = usize::try_from(len).ok().and_then(|l| peek.get(..l));
+        match node {
+            // The fast judgment first; a node it is unsure of gets the full check, which
+            // raises the fault a decode would.
+            Some(node) if plainly_sound(node) => piece.advance(piece.len() - peek.len() + node.len()),
+            _ => encoding::message::merge(WireType::LengthDelimited, &mut NodeCheck, &mut piece, ctx.clone())?,
+        }
         // The run fits in u32 offsets (checked before a run is kept), and merge consumed
         // exactly `len` bytes of payload.
         let span = (u32::try_from(start), u32::try_from(len));

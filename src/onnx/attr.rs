@@ -16,7 +16,7 @@ use super::text::ProtoStr;
 use super::{GraphProto, SparseTensorProto, TensorProto, TypeProto};
 
 /// Field numbers of the standard's `AttributeProto`.
-pub(super) mod field {
+pub(crate) mod field {
     pub const NAME: u32 = 1;
     pub const F: u32 = 2;
     pub const I: u32 = 3;

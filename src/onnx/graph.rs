@@ -20,7 +20,7 @@ use bytes::{Buf, BufMut};
 use prost::encoding::{self, DecodeContext, WireType};
 use prost::DecodeError;
 
-use super::node::{plainly_sound, NodeCheck, NodeRun};
+use super::node::{plainly_sound, varint, NodeCheck, NodeRun};
 use super::text::{encode_string, string_len};
 use super::{NodeProto, SparseTensorProto, StringStringEntryProto, TensorProto, ValueInfoProto};
 
@@ -122,7 +122,7 @@ fn node_run(mut wire: &[u8]) -> (usize, usize) {
     let total = wire.len();
     let mut count = 0;
     let mut end = 0;
-    while let Ok(len) = encoding::decode_varint(&mut wire) {
+    while let Some(len) = varint(&mut wire) {
         let Ok(len) = usize::try_from(len) else { break };
         if len > wire.len() {
             break;
@@ -130,7 +130,7 @@ fn node_run(mut wire: &[u8]) -> (usize, usize) {
         wire = &wire[len..];
         count += 1;
         end = total - wire.len();
-        if encoding::decode_varint(&mut wire) != Ok(NODE_KEY) {
+        if varint(&mut wire) != Some(NODE_KEY) {
             break;
         }
     }
@@ -150,7 +150,7 @@ fn run_cuts(run: &[u8], count: usize, pieces: usize) -> Vec<(usize, usize)> {
             cuts.push((index, at));
         }
         // The run was measured: each length and key decodes and each length fits.
-        let Ok(len) = encoding::decode_varint(&mut wire) else {
+        let Some(len) = varint(&mut wire) else {
             break;
         };
         let Some(rest) = usize::try_from(len).ok().and_then(|l| wire.get(l..)) else {
@@ -158,7 +158,7 @@ fn run_cuts(run: &[u8], count: usize, pieces: usize) -> Vec<(usize, usize)> {
         };
         wire = rest;
         index += 1;
-        if index < count && encoding::decode_varint(&mut wire).is_err() {
+        if index < count && varint(&mut wire).is_none() {
             break;
         }
     }
@@ -188,31 +188,35 @@ fn decode_piece(
 /// the piece's offset in the run.
 fn check_piece(
     slots: &mut [(u32, u32)],
-    mut piece: bytes::Bytes,
+    piece: bytes::Bytes,
     at: usize,
     ctx: DecodeContext,
 ) -> Result<(), DecodeError> {
     let n = slots.len();
     let total = piece.len();
+    let mut wire: &[u8] = &piece;
     for (i, slot) in slots.iter_mut().enumerate() {
-        let mut peek: &[u8] = &piece;
-        let len = encoding::decode_varint(&mut peek)?;
+        let mut peek = wire;
+        let len = varint(&mut peek).ok_or_else(|| DecodeError::new("invalid varint"))?;
         let start = at + (total - peek.len());
-        let node = usize::try_from(len).ok().and_then(|l| peek.get(..l));
-        match node {
+        match usize::try_from(len).ok().and_then(|l| peek.split_at_checked(l)) {
             // The fast judgment first; a node it is unsure of gets the full check, which
             // raises the fault a decode would.
-            Some(node) if plainly_sound(node) => piece.advance(piece.len() - peek.len() + node.len()),
-            _ => encoding::message::merge(WireType::LengthDelimited, &mut NodeCheck, &mut piece, ctx.clone())?,
+            Some((node, rest)) if plainly_sound(node) => wire = rest,
+            _ => {
+                let mut rest = piece.slice(total - wire.len()..);
+                encoding::message::merge(WireType::LengthDelimited, &mut NodeCheck, &mut rest, ctx.clone())?;
+                wire = &piece[total - rest.len()..];
+            }
         }
-        // The run fits in u32 offsets (checked before a run is kept), and merge consumed
-        // exactly `len` bytes of payload.
+        // The run fits in u32 offsets (checked before a run is kept), and the node's length
+        // was read (or the check consumed exactly `len` bytes of payload).
         let span = (u32::try_from(start), u32::try_from(len));
         let (Ok(start), Ok(len)) = span else {
             return Err(DecodeError::new("node run too long to keep"));
         };
         *slot = (start, len);
-        if i + 1 < n && encoding::decode_varint(&mut piece)? != NODE_KEY {
+        if i + 1 < n && varint(&mut wire) != Some(NODE_KEY) {
             return Err(DecodeError::new("node run changed while decoding"));
         }
     }

@@ -199,36 +199,40 @@ impl prost::Message for NodeCheck {
 /// reference on the file's buffer per string and built every attribute: 5.5 ms of reading a
 /// 100k-node graph.
 pub(super) fn plainly_sound(wire: &[u8]) -> bool {
-    let mut buf = wire;
+    // A node whose every byte is ASCII has only ASCII strings, and every key and length in it
+    // is one byte: one word-at-a-time scan, then a walk from length to length.
+    let ascii = wire.is_ascii();
+    let mut at = 0;
+    if ascii {
+        while let (Some(&k), Some(&len)) = (wire.get(at), wire.get(at + 1)) {
+            match u64::from(k) {
+                key::INPUT | key::OUTPUT | key::NAME | key::OP_TYPE | key::DOC_STRING | key::DOMAIN | key::OVERLOAD => {
+                }
+                _ => break,
+            }
+            at += 2 + usize::from(len);
+        }
+        match at.cmp(&wire.len()) {
+            std::cmp::Ordering::Equal => return true,
+            std::cmp::Ordering::Greater => return false,
+            // From a field the walk does not take (an attribute, an unknown field) on, the
+            // node is judged field by field.
+            std::cmp::Ordering::Less => {}
+        }
+    }
+    let mut buf = wire.get(at..).unwrap_or_default();
     while !buf.is_empty() {
-        let Ok((tag, wire_type)) = encoding::decode_key(&mut buf) else {
+        let Some(k) = varint(&mut buf) else {
             return false;
         };
-        let sound = match (tag, wire_type) {
-            (
-                field::INPUT
-                | field::OUTPUT
-                | field::NAME
-                | field::OP_TYPE
-                | field::DOC_STRING
-                | field::DOMAIN
-                | field::OVERLOAD,
-                WireType::LengthDelimited,
-            ) => payload(&mut buf).is_some_and(is_text),
-            (field::ATTRIBUTE, WireType::LengthDelimited) => payload(&mut buf).is_some_and(plainly_sound_attribute),
-            (
-                field::INPUT
-                | field::OUTPUT
-                | field::NAME
-                | field::OP_TYPE
-                | field::DOC_STRING
-                | field::DOMAIN
-                | field::OVERLOAD
-                | field::ATTRIBUTE
-                | field::METADATA_PROPS,
-                _,
-            ) => false,
-            (_, wire_type) => skip_plain(wire_type, &mut buf),
+        // Whole keys (field number and wire type) are matched: a field of the right number
+        // but another wire type is a fault, left to the full check.
+        let sound = match k {
+            key::INPUT | key::OUTPUT | key::NAME | key::OP_TYPE | key::DOC_STRING | key::DOMAIN | key::OVERLOAD => {
+                payload(&mut buf).is_some_and(|p| ascii || is_text(p))
+            }
+            key::ATTRIBUTE => payload(&mut buf).is_some_and(|p| plainly_sound_attribute(p, ascii)),
+            _ => skip_unknown(k, field::METADATA_PROPS, &mut buf),
         };
         if !sound {
             return false;
@@ -240,51 +244,35 @@ pub(super) fn plainly_sound(wire: &[u8]) -> bool {
 /// `plainly_sound` for an `AttributeProto`: the scalar and list fields nearly every attribute
 /// uses are judged here; an attribute carrying a tensor, graph, type or sparse tensor is left
 /// to the full check.
-fn plainly_sound_attribute(wire: &[u8]) -> bool {
-    use super::attr::field as a;
+fn plainly_sound_attribute(wire: &[u8], ascii: bool) -> bool {
     let mut buf = wire;
     while !buf.is_empty() {
-        let Ok((tag, wire_type)) = encoding::decode_key(&mut buf) else {
+        let Some(k) = varint(&mut buf) else {
             return false;
         };
-        let sound = match (tag, wire_type) {
-            (a::NAME | a::DOC_STRING | a::REF_ATTR_NAME, WireType::LengthDelimited) => {
-                payload(&mut buf).is_some_and(is_text)
+        let sound = match k {
+            key::attr::NAME | key::attr::DOC_STRING | key::attr::REF_ATTR_NAME => {
+                payload(&mut buf).is_some_and(|p| ascii || is_text(p))
             }
-            (a::S | a::STRINGS, WireType::LengthDelimited) => payload(&mut buf).is_some(),
-            (a::I | a::TYPE | a::INTS, WireType::Varint) => encoding::decode_varint(&mut buf).is_ok(),
-            (a::F | a::FLOATS, WireType::ThirtyTwoBit) => skip_plain(WireType::ThirtyTwoBit, &mut buf),
-            (a::FLOATS, WireType::LengthDelimited) => payload(&mut buf).is_some_and(|p| p.len() % 4 == 0),
-            (a::INTS, WireType::LengthDelimited) => payload(&mut buf).is_some_and(|mut p| {
+            key::attr::S | key::attr::STRINGS => payload(&mut buf).is_some(),
+            key::attr::I | key::attr::TYPE | key::attr::INTS_ONE => varint(&mut buf).is_some(),
+            key::attr::F | key::attr::FLOATS_ONE => match buf.get(4..) {
+                Some(rest) => {
+                    buf = rest;
+                    true
+                }
+                None => false,
+            },
+            key::attr::FLOATS => payload(&mut buf).is_some_and(|p| p.len() % 4 == 0),
+            key::attr::INTS => payload(&mut buf).is_some_and(|mut p| {
                 while !p.is_empty() {
-                    if encoding::decode_varint(&mut p).is_err() {
+                    if varint(&mut p).is_none() {
                         return false;
                     }
                 }
                 true
             }),
-            (
-                a::NAME
-                | a::F
-                | a::I
-                | a::S
-                | a::T
-                | a::G
-                | a::FLOATS
-                | a::INTS
-                | a::STRINGS
-                | a::TENSORS
-                | a::GRAPHS
-                | a::DOC_STRING
-                | a::TP
-                | a::TYPE_PROTOS
-                | a::TYPE
-                | a::REF_ATTR_NAME
-                | a::SPARSE_TENSOR
-                | a::SPARSE_TENSORS,
-                _,
-            ) => false,
-            (_, wire_type) => skip_plain(wire_type, &mut buf),
+            _ => skip_unknown(k, super::attr::field::SPARSE_TENSORS, &mut buf),
         };
         if !sound {
             return false;
@@ -293,11 +281,96 @@ fn plainly_sound_attribute(wire: &[u8]) -> bool {
     true
 }
 
+/// Keys (field number << 3 | wire type) of the fields the fast judgment reads, each with the
+/// wire type the standard gives it.
+mod key {
+    use super::field;
+
+    const fn len(tag: u32) -> u64 {
+        (tag as u64) << 3 | 2
+    }
+
+    pub const INPUT: u64 = len(field::INPUT);
+    pub const OUTPUT: u64 = len(field::OUTPUT);
+    pub const NAME: u64 = len(field::NAME);
+    pub const OP_TYPE: u64 = len(field::OP_TYPE);
+    pub const ATTRIBUTE: u64 = len(field::ATTRIBUTE);
+    pub const DOC_STRING: u64 = len(field::DOC_STRING);
+    pub const DOMAIN: u64 = len(field::DOMAIN);
+    pub const OVERLOAD: u64 = len(field::OVERLOAD);
+
+    pub mod attr {
+        use super::len;
+        use crate::onnx::attr::field;
+
+        const fn varint(tag: u32) -> u64 {
+            (tag as u64) << 3
+        }
+
+        const fn fixed32(tag: u32) -> u64 {
+            (tag as u64) << 3 | 5
+        }
+
+        pub const NAME: u64 = len(field::NAME);
+        pub const F: u64 = fixed32(field::F);
+        pub const I: u64 = varint(field::I);
+        pub const S: u64 = len(field::S);
+        /// Packed, as writers put repeated numbers; `…_ONE`: one element per field, which
+        /// protobuf parsers must also accept.
+        pub const FLOATS: u64 = len(field::FLOATS);
+        pub const FLOATS_ONE: u64 = fixed32(field::FLOATS);
+        pub const INTS: u64 = len(field::INTS);
+        pub const INTS_ONE: u64 = varint(field::INTS);
+        pub const STRINGS: u64 = len(field::STRINGS);
+        pub const DOC_STRING: u64 = len(field::DOC_STRING);
+        pub const TYPE: u64 = varint(field::TYPE);
+        pub const REF_ATTR_NAME: u64 = len(field::REF_ATTR_NAME);
+    }
+}
+
+/// A field whose key `k` the fast judgment did not match: skipped as prost's `skip_field`
+/// would if its number is unknown to the message (above `last_known`, the message's highest
+/// field number). A number up to `last_known` is a field the message knows (or a reserved
+/// one, rarer still): with another wire type a fault, or a message field; either way left to
+/// the full check, as are groups and malformed keys.
+fn skip_unknown(k: u64, last_known: u32, buf: &mut &[u8]) -> bool {
+    let Ok(k) = u32::try_from(k) else {
+        return false;
+    };
+    let tag = k >> 3;
+    if tag <= last_known {
+        return false;
+    }
+    match WireType::try_from(u64::from(k & 7)) {
+        Ok(wire_type) => skip_plain(wire_type, buf),
+        Err(_) => false,
+    }
+}
+
+/// A varint, as prost's `decode_varint` reads it; the one- and two-byte forms (keys, lengths
+/// of names and of most nodes) inline.
+#[inline(always)]
+pub(super) fn varint(buf: &mut &[u8]) -> Option<u64> {
+    match *buf {
+        [b, ref rest @ ..] if *b < 0x80 => {
+            *buf = rest;
+            Some(u64::from(*b))
+        }
+        // Keys of field numbers 16 to 2047 (an attribute's `type`).
+        [b0, b1, ref rest @ ..] if *b1 < 0x80 => {
+            *buf = rest;
+            Some(u64::from(*b0 & 0x7f) | u64::from(*b1) << 7)
+        }
+        _ => encoding::decode_varint(buf).ok(),
+    }
+}
+
 /// A length-delimited field's payload (its key already read), if its length fits in `buf`.
+#[inline(always)]
 fn payload<'a>(buf: &mut &'a [u8]) -> Option<&'a [u8]> {
-    let len = usize::try_from(encoding::decode_varint(buf).ok()?).ok()?;
-    let p = buf.get(..len)?;
-    *buf = &buf[len..];
+    let len = usize::try_from(varint(buf)?).ok()?;
+    let (p, rest) = buf.split_at_checked(len)?;
+    *buf = rest;
     Some(p)
 }
 
@@ -767,14 +840,21 @@ mod tests {
         attrs.push(rare);
         let mut plain = 0;
         let mut cases: Vec<Vec<u8>> = Vec::new();
-        for attr in &attrs {
+        // Each attribute kind, and no attribute at all: then a node of ASCII names is judged
+        // by its own walk, and one with a non-ASCII name field by field.
+        for attribute in attrs
+            .iter()
+            .map(|a| vec![a.clone(), named("group")])
+            .chain([vec![], vec![]])
+        {
+            let plain_names = cases.len() == attrs.len();
             let node = NodeProto {
-                input: vec!["x".into(), "".into(), "w_é".into()],
+                input: vec!["x".into(), "".into(), if plain_names { "w" } else { "w_é" }.into()],
                 output: vec!["y".into()],
                 name: "grader/conv_3".into(),
                 op_type: "Conv".into(),
                 domain: "".into(),
-                attribute: vec![attr.clone(), named("group")],
+                attribute,
                 rare: None,
             };
             cases.push(node.encode_to_vec());
@@ -822,9 +902,10 @@ mod tests {
                 passed_fast += usize::from(fast);
             }
         }
-        // Six of the attribute kinds and the hand-made form take the fast path (tensor and
-        // graph attributes are left to the full check); the changed bytes exercise both paths.
-        assert_eq!(plain, 7, "sound plain nodes judged on the fast path");
+        // Six of the attribute kinds, both nodes without one and the hand-made form take the
+        // fast path (tensor and graph attributes are left to the full check); the changed
+        // bytes exercise both paths.
+        assert_eq!(plain, 9, "sound plain nodes judged on the fast path");
         assert!(
             passed_fast > tried / 10 && passed_fast < tried,
             "{passed_fast} of {tried}"

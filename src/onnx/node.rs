@@ -361,6 +361,8 @@ pub(super) fn varint(buf: &mut &[u8]) -> Option<u64> {
             *buf = rest;
             Some(u64::from(*b0 & 0x7f) | u64::from(*b1) << 7)
         }
+        // prost's error would be built (a heap allocation) only to be dropped.
+        [] => None,
         _ => encoding::decode_varint(buf).ok(),
     }
 }
@@ -524,14 +526,31 @@ impl<'a> WireNode<'a> {
         v.inputs.clear();
         v.outputs.clear();
         v.attributes.clear();
-        for (tag, payload, at) in self.fields() {
-            match tag {
-                field::INPUT => v.inputs.push(checked_text(payload)),
-                field::OUTPUT => v.outputs.push(checked_text(payload)),
-                field::NAME => v.name = checked_text(payload),
-                field::OP_TYPE => v.op_type = checked_text(payload),
-                field::DOMAIN => v.domain = checked_text(payload),
-                field::ATTRIBUTE => v.attributes.push((at, payload.len())),
+        // The node decoded whole when it was kept: each key, length and skip below succeeds
+        // (a failure ends the scan). Whole keys are matched, as in `plainly_sound`.
+        let wire = self.wire();
+        let mut buf = wire;
+        while let Some(k) = varint(&mut buf) {
+            if k & 7 != WireType::LengthDelimited as u64 {
+                let skipped = WireType::try_from(k & 7).is_ok_and(|t| {
+                    encoding::skip_field(t, (k >> 3) as u32, &mut buf, DecodeContext::default()).is_ok()
+                });
+                if skipped {
+                    continue;
+                }
+                break;
+            }
+            let Some(p) = payload(&mut buf) else { break };
+            match k {
+                key::INPUT => v.inputs.push(checked_text(p)),
+                key::OUTPUT => v.outputs.push(checked_text(p)),
+                key::NAME => v.name = checked_text(p),
+                key::OP_TYPE => v.op_type = checked_text(p),
+                key::DOMAIN => v.domain = checked_text(p),
+                key::ATTRIBUTE => {
+                    let at = self.start as usize + (wire.len() - buf.len() - p.len());
+                    v.attributes.push((at, p.len()));
+                }
                 _ => {}
             }
         }

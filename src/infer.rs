@@ -6,7 +6,9 @@ use std::collections::{BTreeMap, BTreeSet, HashMap};
 
 use crate::diag::{codes, Diagnostic};
 use crate::fastmap::FastMap;
-use crate::ir::{ConstValue, DType, Fact, Graph, Model, Name, NodeCost, Shape, Storage, ValueId, ValueKind, ValueType};
+use crate::ir::{
+    ConstValue, DType, Fact, Graph, Model, Name, NodeCost, Shape, Storage, Value, ValueId, ValueKind, ValueType,
+};
 use crate::onnx::load::read_external;
 use crate::ops::{self, CostRule, Ctx, MacsOps};
 use crate::values::{self, MAX_DECODE_ELEMENTS};
@@ -145,8 +147,8 @@ pub fn infer(model: &mut Model, diags: &mut Vec<Diagnostic>) -> UnknownReasons {
 
 type OuterFacts<'a> = HashMap<String, (Fact, Option<ConstValue>, ValueKind)>;
 
-fn load_const(g: &mut Graph, v: ValueId) {
-    let value = &mut g.values[v.index()];
+fn load_const(values: &mut [Value], v: ValueId) {
+    let value = &mut values[v.index()];
     if value.konst.is_some() {
         return;
     }
@@ -235,10 +237,10 @@ fn infer_graph(
     // looked up by text once per distinct op instead of once per node.
     let mut defs: FastMap<(usize, usize), (i64, Option<&'static ops::OpDef>)> = Default::default();
     for ni in 0..g.nodes.len() {
-        // Inputs and captures, once: constants are loaded, bodies see them, folding checks them.
-        let reads = g.nodes[ni].all_inputs();
-        for v in &reads {
-            load_const(g, *v);
+        // Constants among the inputs (and captures) are loaded: folding checks them, bodies see
+        // them. Only a node with bodies needs its reads as a list of its own.
+        for v in g.nodes[ni].inputs.iter().flatten().chain(g.nodes[ni].captures()) {
+            load_const(&mut g.values, *v);
         }
         let node = &g.nodes[ni];
         let (opset, def) = *defs
@@ -258,7 +260,7 @@ fn infer_graph(
             // bodies too), not the whole graph: a large graph with many If/Loop nodes would
             // otherwise copy every fact once per node.
             let mut scope: OuterFacts = outer.clone();
-            for c in &reads {
+            for c in &node.all_inputs() {
                 let v = &g.values[c.index()];
                 scope.insert(
                     v.name.to_string(),
@@ -343,7 +345,8 @@ fn infer_graph(
             }
         };
         let folded_values = def.and_then(|d| d.fold).and_then(|f| f(&ctx));
-        let all_const_inputs = reads.iter().all(|v| {
+        let node = &g.nodes[ni];
+        let all_const_inputs = node.inputs.iter().flatten().chain(node.captures()).all(|v| {
             is_const_kind(g.values[v.index()].kind)
                 || g.values[v.index()].konst.as_deref().is_some_and(ConstValue::is_numeric)
         });

@@ -8,8 +8,8 @@ use crate::diag::{codes, Diagnostic};
 use crate::error::{ReadError, SettingError};
 use crate::fastmap::{short_text_eq, FastSet, TextKey};
 use crate::ir::{
-    Attr, AttrValue, Body, ConstValue, DType, Dim, Fact, Graph, Model, Name, Node, NodeCost, NodeExtra, NodeId, Shape,
-    Storage, TensorData, Text, Value, ValueId, ValueKind, ValueType,
+    Attr, AttrValue, Body, ConstValue, DType, Dim, Fact, Graph, Model, Name, Node, NodeExtra, NodeId, Shape, Storage,
+    TensorData, Text, Value, ValueId, ValueKind, ValueType,
 };
 use crate::onnx::load::{resolve_external, LoadedModel};
 use crate::onnx::node::{WireNode, WireView};
@@ -892,6 +892,7 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
         inputs,
         outputs,
         captured,
+        costs: Vec::new(),
     };
     Ok((graph, graph_free))
 }
@@ -1046,7 +1047,6 @@ impl Wiring<'_, '_> {
                 // A file's node list cannot reach 2^32 entries (a node takes at least two
                 // bytes and a protobuf file at most 2 GiB).
                 source_index: n.source as u32,
-                cost: NodeCost::default(),
                 folded: false,
             });
         }

@@ -230,6 +230,8 @@ fn infer_graph(
             }
         }
     }
+    // Every node's entry is written in the loop below.
+    g.costs.resize_with(g.nodes.len(), NodeCost::default);
     let mut texts = ReasonTexts::default();
     // Outputs of known ops that only the file's declaration sized: (count, first tensor, its node).
     let mut from_file: (usize, Option<(String, String)>) = (0, None);
@@ -436,7 +438,7 @@ fn infer_graph(
                 value.kind = ValueKind::Constant;
             }
         }
-        g.nodes[ni].cost = cost;
+        g.costs[ni] = cost;
         g.nodes[ni].folded = folded;
     }
     if let (n, Some((tensor, node))) = from_file {
@@ -570,9 +572,10 @@ fn seed_body_inputs(body: &mut Graph, op: &str, inputs: &[Fact], scan: Option<&o
 fn graph_cost(g: &Graph) -> MacsOps {
     let mut macs = Some(0u64);
     let mut ops_ = Some(0u64);
-    for n in g.nodes.iter().filter(|n| !n.folded) {
-        macs = macs.zip(n.cost.macs).and_then(|(a, b)| a.checked_add(b));
-        ops_ = ops_.zip(n.cost.ops).and_then(|(a, b)| a.checked_add(b));
+    for id in g.node_ids().filter(|&id| !g.node(id).folded) {
+        let cost = g.cost(id);
+        macs = macs.zip(cost.macs).and_then(|(a, b)| a.checked_add(b));
+        ops_ = ops_.zip(cost.ops).and_then(|(a, b)| a.checked_add(b));
     }
     (macs, ops_)
 }

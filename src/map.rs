@@ -108,7 +108,7 @@ fn map_partition(g: &Graph, costs: &Costs, t: &Target, id: usize, nodes: &[NodeI
     // Stages: a new one at each MAC-carrying node.
     let mut groups: Vec<Vec<NodeId>> = Vec::new();
     for &n in nodes {
-        let starts = g.node(n).cost.macs.is_some_and(|m| m > 0) || groups.is_empty();
+        let starts = g.cost(n).macs.is_some_and(|m| m > 0) || groups.is_empty();
         if starts {
             groups.push(vec![n]);
         } else if let Some(last) = groups.last_mut() {

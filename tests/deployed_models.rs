@@ -416,12 +416,12 @@ fn quantized_lstms_take_the_lstm_shapes_of_the_operator_specification() {
     assert_eq!(read.unknown.len(), 0, "every tensor sized");
     let g = &read.model.graph;
     let lstms: Vec<_> = g
-        .nodes
-        .iter()
-        .filter(|n| n.op_type.as_str() == "DynamicQuantizeLSTM")
+        .node_ids()
+        .filter(|&id| g.node(id).op_type.as_str() == "DynamicQuantizeLSTM")
         .collect();
     assert_eq!(lstms.len(), 1);
-    for n in lstms {
+    for id in lstms {
+        let n = g.node(id);
         let dims = |v: Option<tilecut::ir::ValueId>| g.value(v.expect("port")).fact.shape.concrete().expect("sized");
         let x = dims(n.inputs[0]);
         let (seq, batch, hidden) = (x[0], x[1], 512);
@@ -431,7 +431,7 @@ fn quantized_lstms_take_the_lstm_shapes_of_the_operator_specification() {
         // LSTM MACs (tilecut's recurrent convention): 4 gates × (input + hidden) per output
         // element, the same as the float LSTM of these sizes.
         let input = x[2];
-        assert_eq!(n.cost.macs, Some(seq * 2 * batch * hidden * 4 * (input + hidden)));
+        assert_eq!(g.cost(id).macs, Some(seq * 2 * batch * hidden * 4 * (input + hidden)));
     }
 }
 

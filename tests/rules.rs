@@ -467,10 +467,9 @@ fn operator_form_contrib_ops_are_inferred_and_judged() {
     assert_eq!(shape("g"), "[1,4]");
     assert_eq!(shape("q"), "[1,4]");
     let macs = |op: &str| {
-        g.nodes
-            .iter()
-            .find(|n| n.op_type == op)
-            .and_then(|n| n.cost.macs)
+        g.node_ids()
+            .find(|&id| g.node(id).op_type == op)
+            .and_then(|id| g.cost(id).macs)
             .expect("macs")
     };
     // 1·8·16·16 outputs × 3·3·3 = 55,296; QGemm 1·4 outputs × K = 8 → 32.
@@ -597,7 +596,11 @@ fn contrib_quantized_ops_of_real_exports_are_inferred() {
     // 96 packed QKV columns: 32 per projection; the bias's float.
     assert_eq!(fact("att"), ("float32", "[2,3,32]".to_string()));
     assert!(read.unknown.is_empty(), "{:?}", read.unknown);
-    let macs = |op: &str| g.nodes.iter().find(|n| n.op_type == op).and_then(|n| n.cost.macs);
+    let macs = |op: &str| {
+        g.node_ids()
+            .find(|&id| g.node(id).op_type == op)
+            .and_then(|id| g.cost(id).macs)
+    };
     // Every input element scatters into Cout/group·k·k outputs: (4·8·8)·(2·3·3) = 4,608.
     assert_eq!(macs("QLinearConvTranspose"), Some(4_608));
     // Projection 2·3·32 inputs × 96 columns = 18,432, plus scores and weighted sum

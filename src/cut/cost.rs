@@ -119,7 +119,8 @@ pub fn costs(g: &Graph, verdicts: &[Verdict], target: &Target) -> Costs {
             accel_ps.push(Some(0));
             continue;
         }
-        let work = match (n.cost.macs, n.cost.ops) {
+        let cost = g.cost(id);
+        let work = match (cost.macs, cost.ops) {
             (Some(m), Some(o)) => (2 * m).saturating_add(o) as f64,
             _ => {
                 unknown_work.push(id);
@@ -143,7 +144,7 @@ pub fn costs(g: &Graph, verdicts: &[Verdict], target: &Target) -> Costs {
             Candidate::Cpu => None,
             Candidate::Const => Some(0),
             Candidate::Accel => {
-                let is_move = work == 0.0 && n.cost.macs == Some(0);
+                let is_move = work == 0.0 && cost.macs == Some(0);
                 if is_move {
                     Some(ps(moved as f64 / array_io))
                 } else {

@@ -305,8 +305,9 @@ fn fix_first(i: &Inputs) -> Vec<FixRow> {
             .or_insert_with(|| (Vec::new(), 0, 0, first.message.clone(), true));
         e.0.push(n.name.to_string());
         e.1 = e.1.saturating_add(i.costs.cpu_ps[k]);
-        e.2 = e.2.saturating_add(n.cost.macs.unwrap_or(0));
-        e.4 &= n.cost.macs.is_some() && n.cost.ops.is_some();
+        let cost = g.cost(crate::ir::NodeId(k as u32));
+        e.2 = e.2.saturating_add(cost.macs.unwrap_or(0));
+        e.4 &= cost.macs.is_some() && cost.ops.is_some();
     }
     let mut rows: Vec<(u64, FixRow)> = groups
         .into_iter()
@@ -365,19 +366,20 @@ pub fn summary(i: &Inputs) -> Summary {
     let plan = i.plan;
     let (mut total_macs, mut accel_macs, mut macs_known) = (0u64, 0u64, true);
     let (mut live, mut accel_nodes) = (0usize, 0usize);
-    for (k, n) in g.nodes.iter().enumerate() {
+    for k in 0..g.nodes.len() {
         let side = plan.side[k];
         if side == Side::Const {
             continue;
         }
         live += 1;
-        match n.cost.macs {
+        let macs = g.cost(crate::ir::NodeId(k as u32)).macs;
+        match macs {
             Some(m) => total_macs = total_macs.saturating_add(m),
             None => macs_known = false,
         }
         if side == Side::Accel {
             accel_nodes += 1;
-            accel_macs = accel_macs.saturating_add(n.cost.macs.unwrap_or(0));
+            accel_macs = accel_macs.saturating_add(macs.unwrap_or(0));
         }
     }
     let boundary_bytes: u64 = plan
@@ -390,7 +392,7 @@ pub fn summary(i: &Inputs) -> Summary {
         .costs
         .unknown_work
         .iter()
-        .flat_map(|n| g.node(*n).cost.needs_dims.iter().map(|d| d.to_string()))
+        .flat_map(|n| g.cost(*n).needs_dims.iter().map(|d| d.to_string()))
         .collect();
     needs_dims.sort();
     needs_dims.dedup();
@@ -445,6 +447,7 @@ pub fn build(i: &Inputs) -> AnalyzeReport {
     for (k, n) in g.nodes.iter().enumerate() {
         let v = &i.verdicts[k];
         let side = plan.side[k];
+        let cost = g.cost(crate::ir::NodeId(k as u32));
         let label = n.op_label();
         let e = ops.entry(label).or_default();
         match side {
@@ -456,7 +459,7 @@ pub fn build(i: &Inputs) -> AnalyzeReport {
             for r in v.reasons.iter().filter(|r| r.blocking) {
                 let b = blockers.entry(r.code).or_insert((0, 0, r.message.clone()));
                 b.0 += 1;
-                b.1 = b.1.saturating_add(n.cost.macs.unwrap_or(0));
+                b.1 = b.1.saturating_add(cost.macs.unwrap_or(0));
             }
         }
         nodes.push(NodeRow {
@@ -470,7 +473,7 @@ pub fn build(i: &Inputs) -> AnalyzeReport {
                 .collect(),
             placement: side,
             partition: plan.partition_of[k],
-            macs: n.cost.macs,
+            macs: cost.macs,
             cpu_us: us(i.costs.cpu_ps[k]),
             accel_us: i.costs.accel_ps[k].map(us),
             rule: v.rule.clone(),
@@ -506,7 +509,7 @@ pub fn build(i: &Inputs) -> AnalyzeReport {
                     }
                 }
             }
-            let macs: u64 = p.nodes.iter().map(|n| g.node(*n).cost.macs.unwrap_or(0)).sum();
+            let macs: u64 = p.nodes.iter().map(|n| g.cost(*n).macs.unwrap_or(0)).sum();
             let wb = crate::cut::cost::weight_bytes(g, i.costs, &p.nodes);
             let node_ps: u64 = p
                 .nodes

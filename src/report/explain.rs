@@ -49,7 +49,7 @@ pub fn render(a: &Analysis, id: NodeId, out: &mut dyn Write) -> std::io::Result<
             )?;
         }
     }
-    writeln!(out, "MACs       {}", crate::report::maybe(n.cost.macs))?;
+    writeln!(out, "MACs       {}", crate::report::maybe(g.cost(id).macs))?;
     writeln!(out, "cpu        {:.3} µs", a.costs.cpu_ps[id.index()] as f64 / 1e6)?;
     match a.costs.accel_ps[id.index()] {
         Some(t) => writeln!(out, "accel      {:.3} µs (estimate)", t as f64 / 1e6)?,

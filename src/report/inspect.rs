@@ -318,7 +318,7 @@ pub fn build<'a>(model: &'a Model, diags: &[Diagnostic], reasons: &'a UnknownRea
     // each walk reads tens of megabytes, and a walk per figure read them again and again.
     let mut w = (0u64, 0u64);
     let mut body_nodes = 0usize;
-    for n in &g.nodes {
+    for (k, n) in g.nodes.iter().enumerate() {
         counts.entry((n.domain.addr(), n.op_type.addr())).or_insert((0, n)).0 += 1;
         for b in n.bodies() {
             body_nodes += b.graph.nodes.len() + count_body_nodes(&b.graph);
@@ -327,10 +327,11 @@ pub fn build<'a>(model: &'a Model, diags: &[Diagnostic], reasons: &'a UnknownRea
         if n.folded {
             continue;
         }
-        macs = macs.zip(n.cost.macs).and_then(|(a, b)| a.checked_add(b));
-        ops = ops.zip(n.cost.ops).and_then(|(a, b)| a.checked_add(b));
-        if n.cost.macs.is_none() || n.cost.ops.is_none() {
-            for d in &n.cost.needs_dims {
+        let cost = g.cost(crate::ir::NodeId(k as u32));
+        macs = macs.zip(cost.macs).and_then(|(a, b)| a.checked_add(b));
+        ops = ops.zip(cost.ops).and_then(|(a, b)| a.checked_add(b));
+        if cost.macs.is_none() || cost.ops.is_none() {
+            for d in &cost.needs_dims {
                 if !because.contains(d) {
                     because.push(d.clone());
                 }

@@ -108,6 +108,7 @@ impl PartialEq for TextKey<'_> {
 impl Eq for TextKey<'_> {}
 
 impl std::hash::Hash for TextKey<'_> {
+    #[inline]
     fn hash<H: Hasher>(&self, state: &mut H) {
         self.0.hash(state);
     }

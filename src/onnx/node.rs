@@ -205,10 +205,8 @@ pub(super) fn plainly_sound(wire: &[u8]) -> bool {
     let mut at = 0;
     if ascii {
         while let (Some(&k), Some(&len)) = (wire.get(at), wire.get(at + 1)) {
-            match u64::from(k) {
-                key::INPUT | key::OUTPUT | key::NAME | key::OP_TYPE | key::DOC_STRING | key::DOMAIN | key::OVERLOAD => {
-                }
-                _ => break,
+            if !is_string_key(u64::from(k)) {
+                break;
             }
             at += 2 + usize::from(len);
         }
@@ -228,9 +226,7 @@ pub(super) fn plainly_sound(wire: &[u8]) -> bool {
         // Whole keys (field number and wire type) are matched: a field of the right number
         // but another wire type is a fault, left to the full check.
         let sound = match k {
-            key::INPUT | key::OUTPUT | key::NAME | key::OP_TYPE | key::DOC_STRING | key::DOMAIN | key::OVERLOAD => {
-                payload(&mut buf).is_some_and(|p| ascii || is_text(p))
-            }
+            k if is_string_key(k) => payload(&mut buf).is_some_and(|p| ascii || is_text(p)),
             key::ATTRIBUTE => payload(&mut buf).is_some_and(|p| plainly_sound_attribute(p, ascii)),
             _ => skip_unknown(k, field::METADATA_PROPS, &mut buf),
         };
@@ -239,6 +235,14 @@ pub(super) fn plainly_sound(wire: &[u8]) -> bool {
         }
     }
     true
+}
+
+/// Whether `k` is the key of one of a node's string fields.
+fn is_string_key(k: u64) -> bool {
+    matches!(
+        k,
+        key::INPUT | key::OUTPUT | key::NAME | key::OP_TYPE | key::DOC_STRING | key::DOMAIN | key::OVERLOAD
+    )
 }
 
 /// `plainly_sound` for an `AttributeProto`: the scalar and list fields nearly every attribute
@@ -476,39 +480,41 @@ impl<'a> WireNode<'a> {
     }
 
     fn fields(&self) -> Fields<'a> {
+        let wire = self.wire();
         Fields {
-            wire: self.wire(),
+            wire,
             start: self.start as usize,
-            at: 0,
+            rest: wire,
         }
     }
 
-    fn strings(&self, tag: u32) -> Strings<'a> {
+    /// The strings of field `key` (a string field's key: its number << 3 | 2).
+    fn strings(&self, key: u64) -> Strings<'a> {
         Strings {
             fields: self.fields(),
-            tag,
+            key,
         }
     }
 
     /// A singular string field: its last occurrence, as protobuf merges repeats.
-    fn last_string(&self, tag: u32) -> &'a str {
-        self.strings(tag).last().unwrap_or_default()
+    fn last_string(&self, key: u64) -> &'a str {
+        self.strings(key).last().unwrap_or_default()
     }
 
     pub fn name(&self) -> &'a str {
-        self.last_string(field::NAME)
+        self.last_string(key::NAME)
     }
 
     pub fn op_type(&self) -> &'a str {
-        self.last_string(field::OP_TYPE)
+        self.last_string(key::OP_TYPE)
     }
 
     pub fn domain(&self) -> &'a str {
-        self.last_string(field::DOMAIN)
+        self.last_string(key::DOMAIN)
     }
 
     pub fn outputs(&self) -> Strings<'a> {
-        self.strings(field::OUTPUT)
+        self.strings(key::OUTPUT)
     }
 
     /// Every field import reads, in one scan of the node.
@@ -526,31 +532,14 @@ impl<'a> WireNode<'a> {
         v.inputs.clear();
         v.outputs.clear();
         v.attributes.clear();
-        // The node decoded whole when it was kept: each key, length and skip below succeeds
-        // (a failure ends the scan). Whole keys are matched, as in `plainly_sound`.
-        let wire = self.wire();
-        let mut buf = wire;
-        while let Some(k) = varint(&mut buf) {
-            if k & 7 != WireType::LengthDelimited as u64 {
-                let skipped = WireType::try_from(k & 7).is_ok_and(|t| {
-                    encoding::skip_field(t, (k >> 3) as u32, &mut buf, DecodeContext::default()).is_ok()
-                });
-                if skipped {
-                    continue;
-                }
-                break;
-            }
-            let Some(p) = payload(&mut buf) else { break };
+        for (k, p, at) in self.fields() {
             match k {
                 key::INPUT => v.inputs.push(checked_text(p)),
                 key::OUTPUT => v.outputs.push(checked_text(p)),
                 key::NAME => v.name = checked_text(p),
                 key::OP_TYPE => v.op_type = checked_text(p),
                 key::DOMAIN => v.domain = checked_text(p),
-                key::ATTRIBUTE => {
-                    let at = self.start as usize + (wire.len() - buf.len() - p.len());
-                    v.attributes.push((at, p.len()));
-                }
+                key::ATTRIBUTE => v.attributes.push((at, p.len())),
                 _ => {}
             }
         }
@@ -605,66 +594,49 @@ impl WireView<'_> {
     }
 }
 
-/// The length-delimited fields of a `WireNode`, in wire order, as (field number, payload,
-/// payload's offset in the run). Fields of other wire types (none in the standard's
-/// `NodeProto`) are skipped.
+/// The length-delimited fields of a `WireNode`, in wire order, as (key, payload, payload's
+/// offset in the run); keys and lengths read as `plainly_sound` reads them. Fields of other
+/// wire types (none in the standard's `NodeProto`) are skipped.
 struct Fields<'a> {
     wire: &'a [u8],
     /// The node's offset in its run.
     start: usize,
-    /// Where the next field starts in `wire`.
-    at: usize,
+    /// What is left of `wire` to scan.
+    rest: &'a [u8],
 }
 
 impl<'a> Iterator for Fields<'a> {
-    type Item = (u32, &'a [u8], usize);
+    type Item = (u64, &'a [u8], usize);
 
+    #[inline(always)]
     fn next(&mut self) -> Option<Self::Item> {
-        let mut buf = self.wire.get(self.at..)?;
+        // The node decoded whole when it was kept: each key, length and skip succeeds (a
+        // failure ends the scan).
         loop {
-            if buf.is_empty() {
-                return None;
+            let k = varint(&mut self.rest)?;
+            if k & 7 == WireType::LengthDelimited as u64 {
+                let p = payload(&mut self.rest)?;
+                let at = self.start + (self.wire.len() - self.rest.len() - p.len());
+                return Some((k, p, at));
             }
-            // The node decoded whole when it was kept: these cannot fail, and end the scan
-            // if they did. Keys of the standard's fields and short lengths are one byte.
-            let (tag, wire_type) = match buf.first() {
-                Some(&b) if b < 0x80 && b & 7 == WireType::LengthDelimited as u8 => {
-                    buf = &buf[1..];
-                    (u32::from(b >> 3), WireType::LengthDelimited)
-                }
-                _ => encoding::decode_key(&mut buf).ok()?,
-            };
-            if wire_type != WireType::LengthDelimited {
-                encoding::skip_field(wire_type, tag, &mut buf, DecodeContext::default()).ok()?;
-                continue;
-            }
-            let len = match buf.first() {
-                Some(&b) if b < 0x80 => {
-                    buf = &buf[1..];
-                    usize::from(b)
-                }
-                _ => usize::try_from(encoding::decode_varint(&mut buf).ok()?).ok()?,
-            };
-            let offset = self.wire.len() - buf.len();
-            let payload = buf.get(..len)?;
-            self.at = offset + len;
-            return Some((tag, payload, self.start + offset));
+            let wire_type = WireType::try_from(k & 7).ok()?;
+            encoding::skip_field(wire_type, (k >> 3) as u32, &mut self.rest, DecodeContext::default()).ok()?;
         }
     }
 }
 
-/// The strings of one field number of a `WireNode`, in wire order.
+/// The strings of one field of a `WireNode`, in wire order.
 pub struct Strings<'a> {
     fields: Fields<'a>,
-    tag: u32,
+    key: u64,
 }
 
 impl<'a> Iterator for Strings<'a> {
     type Item = &'a str;
 
     fn next(&mut self) -> Option<&'a str> {
-        let tag = self.tag;
-        self.fields.find(|f| f.0 == tag).map(|f| checked_text(f.1))
+        let key = self.key;
+        self.fields.find(|f| f.0 == key).map(|f| checked_text(f.1))
     }
 }
 

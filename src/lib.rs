@@ -31,13 +31,20 @@ use std::path::Path;
 pub use error::ReadError;
 pub use import::Overrides;
 
-/// The allocator setting of every tilecut process (the binary and the benches, which also
+/// The memory setting of every tilecut process (the binary and the benches, which also
 /// declare mimalloc as their global allocator so that they measure what the binary does):
-/// large OS pages for the arenas, since on virtual machines a page fault costs microseconds
-/// and a 100k-node model touches over a hundred MB.
+/// transparent huge pages off for the process. With them, the first touch of each 2 MiB of
+/// heap has the kernel clear all of it, which on virtual machines swung a 100k-node
+/// `inspect` from 70 ms to over 300 ms by whether the host had the memory at hand (a third
+/// to two thirds of the process's time was the kernel clearing pages); with 4 KiB pages
+/// only what is written is cleared, and the run time holds steady (`bench/run.sh`).
 pub fn tune_allocator() {
-    // SAFETY: setting an allocator option is a plain store, valid at any time.
-    unsafe { libmimalloc_sys::mi_option_set(libmimalloc_sys::mi_option_large_os_pages, 1) };
+    #[cfg(target_os = "linux")]
+    // SAFETY: `prctl` with `PR_SET_THP_DISABLE` sets a flag of the calling process and reads
+    // no memory of it; on failure (an old kernel) the process keeps the system's setting.
+    unsafe {
+        libc::prctl(libc::PR_SET_THP_DISABLE, 1, 0, 0, 0);
+    }
 }
 
 /// A model read, imported and inferred: the input of every later stage.

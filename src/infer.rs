@@ -235,9 +235,9 @@ fn infer_graph(
     let mut texts = ReasonTexts::default();
     // Outputs of known ops that only the file's declaration sized: (count, first tensor, its node).
     let mut from_file: (usize, Option<(String, String)>) = (0, None);
-    // (opset, op definition) per (domain, op type), keyed by the interned names' addresses:
+    // What a node's op is, per (domain, op type), keyed by the interned names' addresses:
     // looked up by text once per distinct op instead of once per node.
-    let mut defs: FastMap<(usize, usize), (i64, Option<&'static ops::OpDef>)> = Default::default();
+    let mut defs = OpTable::default();
     for ni in 0..g.nodes.len() {
         // Constants among the inputs (and captures) are loaded: folding checks them, bodies see
         // them. Only a node with bodies needs its reads as a list of its own.
@@ -245,14 +245,7 @@ fn infer_graph(
             load_const(&mut g.values, *v);
         }
         let node = &g.nodes[ni];
-        let (opset, def) = *defs
-            .entry((node.domain.addr(), node.op_type.addr()))
-            .or_insert_with(|| {
-                (
-                    crate::ir::opset_of(opsets, &node.domain),
-                    ops::lookup(&node.domain, &node.op_type),
-                )
-            });
+        let OpInfo { opset, def, random } = defs.get(node, opsets);
 
         // Bodies first, with this graph's facts visible to them.
         let mut body_outputs = Vec::new();
@@ -359,7 +352,11 @@ fn infer_graph(
         outputs.resize_with(node.outputs.len(), Fact::default);
         // Whether inference gave each output a rank: an unranked one takes the failure as its
         // reason, below.
-        let ranked: smallvec::SmallVec<[bool; 4]> = outputs.iter().map(|f| f.shape.rank().is_some()).collect();
+        let ranked: smallvec::SmallVec<[bool; 4]> = if failure.is_some() {
+            outputs.iter().map(|f| f.shape.rank().is_some()).collect()
+        } else {
+            smallvec::SmallVec::new()
+        };
         for (slot, fact) in node.outputs.iter().zip(outputs.iter_mut()) {
             if let Some(decl) = slot.and_then(|v| g.values[v.index()].declared.as_deref()) {
                 let fact_known = fact.dtype.is_some() && fact.shape.is_concrete();
@@ -409,7 +406,6 @@ fn infer_graph(
                 diags.push(Diagnostic::new(codes::SHAPE_FAILED, f.clone()).at_node(&node.name));
             }
         }
-        let random = ops::is_random(&node.op_type);
         let fully_folded = folded_values.as_ref().is_some_and(|vals| {
             vals.len() >= node.outputs.iter().flatten().count() && vals.iter().all(ConstValue::is_numeric)
         });
@@ -422,7 +418,7 @@ fn infer_graph(
             if let Some(r) = reasons.as_deref_mut() {
                 if !fact.is_concrete() {
                     let why = match (&failure, merged.get(k)) {
-                        (Some(f), _) if !ranked[k] => texts.get(f.clone()),
+                        (Some(f), _) if !ranked.get(k).copied().unwrap_or(true) => texts.get(f.clone()),
                         (_, Some(Some(m))) => texts.get(m.clone()),
                         _ => texts.for_fact(&fact),
                     };
@@ -472,6 +468,52 @@ fn infer_graph(
                 ));
             }
         }
+    }
+}
+
+/// What inference needs of a node's op beyond the node: the opset it is read at, its
+/// definition (none for an op tilecut does not know) and whether it draws random values.
+#[derive(Clone, Copy)]
+struct OpInfo {
+    opset: i64,
+    def: Option<&'static ops::OpDef>,
+    random: bool,
+}
+
+/// `OpInfo` per (domain, op type), by the interned names' addresses: a 64-slot table in front
+/// of a map, since a graph has a few dozen distinct ops and a hash per node was a tenth of
+/// inference's own time on a 100k-node graph.
+struct OpTable {
+    slots: [Option<((usize, usize), OpInfo)>; 64],
+    all: FastMap<(usize, usize), OpInfo>,
+}
+
+impl Default for OpTable {
+    fn default() -> Self {
+        OpTable {
+            slots: [None; 64],
+            all: FastMap::default(),
+        }
+    }
+}
+
+impl OpTable {
+    fn get(&mut self, node: &crate::ir::Node, opsets: &BTreeMap<String, i64>) -> OpInfo {
+        let key = (node.domain.addr(), node.op_type.addr());
+        // Names are separate heap allocations: the low bits are alignment, the next vary.
+        let slot = ((key.0 ^ key.1) >> 4) % 64;
+        if let Some((k, info)) = self.slots[slot] {
+            if k == key {
+                return info;
+            }
+        }
+        let info = *self.all.entry(key).or_insert_with(|| OpInfo {
+            opset: crate::ir::opset_of(opsets, &node.domain),
+            def: ops::lookup(&node.domain, &node.op_type),
+            random: ops::is_random(&node.op_type),
+        });
+        self.slots[slot] = Some((key, info));
+        info
     }
 }
 

@@ -37,7 +37,8 @@ pub use import::Overrides;
 /// heap has the kernel clear all of it, which on virtual machines swung a 100k-node
 /// `inspect` from 70 ms to over 300 ms by whether the host had the memory at hand (a third
 /// to two thirds of the process's time was the kernel clearing pages); with 4 KiB pages
-/// only what is written is cleared, and the run time holds steady (`bench/run.sh`).
+/// only what is written is cleared, and the run time holds steady (README, Benchmarks,
+/// "Ninth session").
 pub fn tune_allocator() {
     #[cfg(target_os = "linux")]
     // SAFETY: `prctl` with `PR_SET_THP_DISABLE` sets a flag of the calling process and reads

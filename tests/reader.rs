@@ -2090,3 +2090,63 @@ fn wide_bodies_capture_each_outer_value_once_in_order() {
         );
     }
 }
+
+/// A chain of `n` MatMul + Add pairs on a `[rows, 16]` input, sharing one `[16, 16]` weight and
+/// one `[16]` bias, beside an input `[aux, 2]` that no node reads: `rows` and `aux` are numbers
+/// or symbolic dims.
+fn matmul_add_chain(n: usize, rows: tilecut::onnx::builder::DimSpec, aux: tilecut::onnx::builder::DimSpec) -> Vec<u8> {
+    use tilecut::ir::DType;
+    use tilecut::onnx::builder::{f32_tensor, DimSpec, ModelBuilder};
+    let mut m = ModelBuilder::new("chain", 17);
+    let g = &mut m.graph;
+    g.input("y0", DType::F32, &[rows.clone(), DimSpec::Fixed(16)]);
+    g.input("aux", DType::F32, &[aux, DimSpec::Fixed(2)]);
+    g.initializer(f32_tensor("w", &[16, 16], &[0.5; 256]));
+    g.initializer(f32_tensor("b", &[16], &[0.25; 16]));
+    for i in 0..n {
+        let (y, z, next) = (format!("y{i}"), format!("z{i}"), format!("y{}", i + 1));
+        g.node("MatMul", &[&y, "w"], &[&z]);
+        g.node("Add", &[&z, "b"], &[&next]);
+    }
+    g.output(&format!("y{n}"), DType::F32, &[rows, DimSpec::Fixed(16)]);
+    m.encode()
+}
+
+#[test]
+fn large_graphs_sum_their_figures_as_small_ones_do() {
+    use tilecut::onnx::builder::DimSpec;
+    let d = tmp();
+    // 100 nodes are walked on one thread, 5,000 on two (the report's walks split at 4,096).
+    for n in [50usize, 2500] {
+        let p = d.path().join(format!("known{n}.onnx"));
+        std::fs::write(&p, matmul_add_chain(n, DimSpec::Fixed(4), DimSpec::Fixed(3))).expect("write");
+        let read = tilecut::read_model(&p, &Default::default()).expect("reads");
+        let r = tilecut::report::inspect::build(&read.model, &read.diags, &read.unknown);
+        let m = &r.model;
+        assert_eq!(m.nodes, 2 * n);
+        // ONNX MatMul: [4, 16] x [16, 16] -> [4, 16], 4 * 16 * 16 multiply-accumulates (MACs as
+        // M * K * N, common practice); Add: one op per output element, 4 * 16 (README convention).
+        assert_eq!(m.macs, Some(1024 * n as u64), "n = {n}");
+        assert_eq!(m.ops, Some(64 * n as u64), "n = {n}");
+        // The weight and the bias once each, however many nodes read them.
+        assert_eq!((m.params, m.weight_bytes), (256 + 16, (256 + 16) * 4), "n = {n}");
+        // The input, every MatMul and Add output: 2n + 1 tensors of 4 * 16 float32; and the
+        // unread input's 3 * 2 float32, which only the walk over the values sees.
+        assert_eq!(m.activation_bytes, Some((2 * n as u64 + 1) * 256 + 24), "n = {n}");
+        assert!(m.unknown_because.is_empty(), "n = {n}");
+
+        let p = d.path().join(format!("symbolic{n}.onnx"));
+        std::fs::write(
+            &p,
+            matmul_add_chain(n, DimSpec::Named("rows".into()), DimSpec::Named("extra".into())),
+        )
+        .expect("write");
+        let read = tilecut::read_model(&p, &Default::default()).expect("reads");
+        let r = tilecut::report::inspect::build(&read.model, &read.diags, &read.unknown);
+        let m = &r.model;
+        assert_eq!((m.macs, m.ops, m.activation_bytes), (None, None, None), "n = {n}");
+        // `rows` keeps the nodes' figures unknown; `extra` only the unread input's bytes.
+        assert_eq!(m.unknown_because, ["extra", "rows"], "n = {n}");
+        assert_eq!((m.params, m.weight_bytes), (256 + 16, (256 + 16) * 4), "n = {n}");
+    }
+}

@@ -298,6 +298,9 @@ fn count_body_nodes(g: &Graph) -> usize {
         .sum()
 }
 
+/// Nodes from which `build` walks the values on a thread of their own.
+const PARALLEL_WALK_MIN_NODES: usize = 4096;
+
 /// Builds the report. Pure: same model, same report.
 pub fn build<'a>(model: &'a Model, diags: &[Diagnostic], reasons: &'a UnknownReasons) -> InspectReport<'a> {
     let g = &model.graph;
@@ -309,52 +312,80 @@ pub fn build<'a>(model: &'a Model, diags: &[Diagnostic], reasons: &'a UnknownRea
             shape: shape_json(&v.fact.shape),
         }
     };
-    // Counted by the interned (domain, op) names' addresses; labels are made once per op.
-    let mut counts: crate::fastmap::FastMap<(usize, usize), (usize, &crate::ir::Node)> = Default::default();
-    let mut macs = Some(0u64);
-    let mut ops = Some(0u64);
-    let mut because = crate::ir::NameList::new();
     // One walk over the nodes and one over the values gather every figure: on a large graph
-    // each walk reads tens of megabytes, and a walk per figure read them again and again.
-    let mut w = (0u64, 0u64);
-    let mut body_nodes = 0usize;
-    for (k, n) in g.nodes.iter().enumerate() {
-        counts.entry((n.domain.addr(), n.op_type.addr())).or_insert((0, n)).0 += 1;
-        for b in n.bodies() {
-            body_nodes += b.graph.nodes.len() + count_body_nodes(&b.graph);
-            weights(&b.graph, &mut w);
-        }
-        if n.folded {
-            continue;
-        }
-        let cost = g.cost(crate::ir::NodeId(k as u32));
-        macs = macs.zip(cost.macs).and_then(|(a, b)| a.checked_add(b));
-        ops = ops.zip(cost.ops).and_then(|(a, b)| a.checked_add(b));
-        if cost.macs.is_none() || cost.ops.is_none() {
-            for d in &cost.needs_dims {
-                if !because.contains(d) {
-                    because.push(d.clone());
+    // each walk reads tens of megabytes, and a walk per figure read them again and again. The
+    // two share nothing until their sums (all order-free) are added: a large graph's value
+    // walk runs on another thread beside the node walk.
+    let node_walk = || {
+        // Counted by the interned (domain, op) names' addresses; labels are made once per op.
+        let mut counts: crate::fastmap::FastMap<(usize, usize), (usize, &crate::ir::Node)> = Default::default();
+        let mut macs = Some(0u64);
+        let mut ops = Some(0u64);
+        let mut because = crate::ir::NameList::new();
+        let mut w = (0u64, 0u64);
+        let mut body_nodes = 0usize;
+        for (k, n) in g.nodes.iter().enumerate() {
+            counts.entry((n.domain.addr(), n.op_type.addr())).or_insert((0, n)).0 += 1;
+            for b in n.bodies() {
+                body_nodes += b.graph.nodes.len() + count_body_nodes(&b.graph);
+                weights(&b.graph, &mut w);
+            }
+            if n.folded {
+                continue;
+            }
+            let cost = g.cost(crate::ir::NodeId(k as u32));
+            macs = macs.zip(cost.macs).and_then(|(a, b)| a.checked_add(b));
+            ops = ops.zip(cost.ops).and_then(|(a, b)| a.checked_add(b));
+            if cost.macs.is_none() || cost.ops.is_none() {
+                for d in &cost.needs_dims {
+                    if !because.contains(d) {
+                        because.push(d.clone());
+                    }
                 }
             }
         }
-    }
-    let mut activation_bytes = Some(0u64);
-    // A set: a graph can read very many names it does not define.
-    let captured: std::collections::HashSet<&str> = g.captured.iter().map(|c| g.value(*c).name.as_str()).collect();
-    for (i, v) in g.values.iter().enumerate() {
-        add_weight(g, i, v, &mut w);
-        if matches!(v.kind, ValueKind::Input | ValueKind::Activation | ValueKind::Output)
-            && !captured.contains(v.name.as_str())
-        {
-            let bytes = value_bytes(v);
-            activation_bytes = activation_bytes.zip(bytes).and_then(|(a, b)| a.checked_add(b));
-            if bytes.is_none() {
-                if let Some(u) = v.fact.first_unknown() {
-                    u.shape.symbols_into(&mut because);
+        (counts, macs, ops, because, w, body_nodes)
+    };
+    let value_walk = || {
+        let mut activation_bytes = Some(0u64);
+        let mut because = crate::ir::NameList::new();
+        let mut w = (0u64, 0u64);
+        // A set: a graph can read very many names it does not define.
+        let captured: std::collections::HashSet<&str> = g.captured.iter().map(|c| g.value(*c).name.as_str()).collect();
+        for (i, v) in g.values.iter().enumerate() {
+            add_weight(g, i, v, &mut w);
+            if matches!(v.kind, ValueKind::Input | ValueKind::Activation | ValueKind::Output)
+                && !captured.contains(v.name.as_str())
+            {
+                let bytes = value_bytes(v);
+                activation_bytes = activation_bytes.zip(bytes).and_then(|(a, b)| a.checked_add(b));
+                if bytes.is_none() {
+                    if let Some(u) = v.fact.first_unknown() {
+                        u.shape.symbols_into(&mut because);
+                    }
                 }
             }
         }
-    }
+        (activation_bytes, because, w)
+    };
+    let ((counts, macs, ops, mut because, wn, body_nodes), (activation_bytes, because_v, wv)) =
+        if g.nodes.len() >= PARALLEL_WALK_MIN_NODES {
+            std::thread::scope(|scope| {
+                let worker = std::thread::Builder::new().spawn_scoped(scope, value_walk);
+                let nodes = node_walk();
+                let values = match worker {
+                    Ok(h) => h.join().unwrap_or_else(|p| std::panic::resume_unwind(p)),
+                    // No thread could be started.
+                    Err(_) => value_walk(),
+                };
+                (nodes, values)
+            })
+        } else {
+            (node_walk(), value_walk())
+        };
+    // `add_weight` saturates, so two partial sums saturate to what one walk would have found.
+    let w = (wn.0.saturating_add(wv.0), wn.1.saturating_add(wv.1));
+    because.extend(because_v);
     // Re-keyed by label ("Conv", "my.domain.Op") for a stable order; "" and "ai.onnx" merge.
     let counts: BTreeMap<String, usize> =
         counts

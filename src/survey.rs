@@ -452,7 +452,7 @@ pub fn lift(
                 if n.op_type == op && crate::ops::node_in_domain(n, domain) {
                     verdicts[i] = crate::rules::judge_node(
                         g,
-                        crate::ir::NodeId(i as u32),
+                        crate::ir::NodeId::new(i),
                         &read.model.opsets,
                         &target,
                         &Assumptions::default(),

@@ -148,7 +148,7 @@ pub fn check_partitions(g: &Graph, side: &[Side], parts: &[cut::Partition], part
             Side::Const => assert!(partition_of[i].is_none()),
             _ => {
                 let p = partition_of[i].expect("every live node has a partition");
-                assert!(parts[p].nodes.contains(&NodeId(i as u32)));
+                assert!(parts[p].nodes.contains(&NodeId::new(i)));
                 assert_eq!(parts[p].side, side[i]);
             }
         }

@@ -113,7 +113,7 @@ pub fn costs(g: &Graph, verdicts: &[Verdict], target: &Target) -> Costs {
     let mut unknown_work = Vec::new();
     let array_io = f.array.columns as f64 * f.array.io_tile.bandwidth_bytes_per_s;
     for (i, n) in g.nodes.iter().enumerate() {
-        let id = NodeId(i as u32);
+        let id = NodeId::new(i);
         if n.folded {
             cpu_ps.push(0);
             accel_ps.push(Some(0));

@@ -305,7 +305,7 @@ pub fn partitions(g: &Graph, side: &[Side]) -> (Vec<Partition>, Vec<Option<usize
             parts.push(Partition {
                 id,
                 side: *s,
-                nodes: comp.into_iter().map(|c| NodeId(c as u32)).collect(),
+                nodes: comp.into_iter().map(NodeId::new).collect(),
             });
         }
     }

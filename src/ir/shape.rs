@@ -390,9 +390,10 @@ pub fn evaluate(text: &str, value: &dyn Fn(&str) -> Option<u64>) -> Result<Optio
     Ok(v)
 }
 
-/// A shape: `None` when even the rank is unknown.
+/// A shape: `None` when even the rank is unknown. A boxed slice (16 bytes, not a vector's
+/// 24): every value's fact holds one, and shapes are made whole, never grown in place.
 #[derive(Clone, Debug, PartialEq, Eq, Hash)]
-pub struct Shape(pub Option<Vec<Dim>>);
+pub struct Shape(pub Option<Box<[Dim]>>);
 
 impl Shape {
     pub fn unknown() -> Shape {
@@ -404,16 +405,16 @@ impl Shape {
     }
 
     pub fn of(dims: Vec<Dim>) -> Shape {
-        Shape(Some(dims))
+        Shape(Some(dims.into_boxed_slice()))
     }
 
     pub fn scalar() -> Shape {
-        Shape(Some(Vec::new()))
+        Shape(Some(Box::default()))
     }
 
     /// Unknown dims of a known rank.
     pub fn of_rank(rank: usize) -> Shape {
-        Shape(Some(vec![Dim::Unknown; rank]))
+        Shape(Some(vec![Dim::Unknown; rank].into_boxed_slice()))
     }
 
     pub fn dims(&self) -> Option<&[Dim]> {
@@ -421,7 +422,7 @@ impl Shape {
     }
 
     pub fn rank(&self) -> Option<usize> {
-        self.0.as_ref().map(Vec::len)
+        self.0.as_ref().map(|d| d.len())
     }
 
     /// Every dim as a number, if all are known.

@@ -464,6 +464,16 @@ impl NodeRun {
         self.spans.is_empty()
     }
 
+    /// The node at `i`, an index below `len()`.
+    pub fn node(&self, i: usize) -> WireNode<'_> {
+        let (start, len) = self.spans[i];
+        WireNode {
+            run: &self.bytes,
+            start,
+            len,
+        }
+    }
+
     pub fn nodes(&self) -> impl ExactSizeIterator<Item = WireNode<'_>> + '_ {
         self.spans.iter().map(move |&(start, len)| WireNode {
             run: &self.bytes,

@@ -203,10 +203,12 @@ impl ScanLayout {
     pub fn body_input(&self, k: usize, inputs: &[Fact]) -> Option<Fact> {
         let mut f = inputs.get(self.first + k)?.clone();
         let remove = |f: &mut Fact, axis: i64| {
-            if let Some(d) = f.shape.0.as_mut() {
+            if let Some(d) = f.shape.dims() {
                 match super::util::norm_axis(axis, d.len()) {
                     Some(a) => {
+                        let mut d = d.to_vec();
                         d.remove(a);
+                        f.shape = Shape::of(d);
                     }
                     None => f.shape = Shape::unknown(),
                 }

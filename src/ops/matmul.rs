@@ -179,7 +179,7 @@ fn einsum_sizes(ctx: &Ctx) -> Result<EinsumSizes, String> {
             }
         }
     }
-    Ok((eq, sizes, ellipsis.0.unwrap_or_default()))
+    Ok((eq, sizes, ellipsis.0.map(Vec::from).unwrap_or_default()))
 }
 
 fn einsum(ctx: &Ctx) -> Inferred {

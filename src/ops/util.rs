@@ -36,7 +36,7 @@ impl<'a> Ctx<'a> {
     }
 
     pub fn dims(&self, i: usize) -> Option<Vec<Dim>> {
-        self.fact(i)?.shape.0.clone()
+        self.fact(i)?.shape.dims().map(<[Dim]>::to_vec)
     }
 
     pub fn konst(&self, i: usize) -> Option<&'a ConstValue> {

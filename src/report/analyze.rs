@@ -299,13 +299,13 @@ fn fix_first(i: &Inputs) -> Vec<FixRow> {
             continue;
         };
         let label = n.op_label();
-        let suggestion = crate::suggest::suggest(g, crate::ir::NodeId(k as u32), v, i.target);
+        let suggestion = crate::suggest::suggest(g, crate::ir::NodeId::new(k), v, i.target);
         let e = groups
             .entry((label, first.code, suggestion))
             .or_insert_with(|| (Vec::new(), 0, 0, first.message.clone(), true));
         e.0.push(n.name.to_string());
         e.1 = e.1.saturating_add(i.costs.cpu_ps[k]);
-        let cost = g.cost(crate::ir::NodeId(k as u32));
+        let cost = g.cost(crate::ir::NodeId::new(k));
         e.2 = e.2.saturating_add(cost.macs.unwrap_or(0));
         e.4 &= cost.macs.is_some() && cost.ops.is_some();
     }
@@ -372,7 +372,7 @@ pub fn summary(i: &Inputs) -> Summary {
             continue;
         }
         live += 1;
-        let macs = g.cost(crate::ir::NodeId(k as u32)).macs;
+        let macs = g.cost(crate::ir::NodeId::new(k)).macs;
         match macs {
             Some(m) => total_macs = total_macs.saturating_add(m),
             None => macs_known = false,
@@ -447,7 +447,7 @@ pub fn build(i: &Inputs) -> AnalyzeReport {
     for (k, n) in g.nodes.iter().enumerate() {
         let v = &i.verdicts[k];
         let side = plan.side[k];
-        let cost = g.cost(crate::ir::NodeId(k as u32));
+        let cost = g.cost(crate::ir::NodeId::new(k));
         let label = n.op_label();
         let e = ops.entry(label).or_default();
         match side {

@@ -333,7 +333,7 @@ pub fn build<'a>(model: &'a Model, diags: &[Diagnostic], reasons: &'a UnknownRea
             if n.folded {
                 continue;
             }
-            let cost = g.cost(crate::ir::NodeId(k as u32));
+            let cost = g.cost(crate::ir::NodeId::new(k));
             macs = macs.zip(cost.macs).and_then(|(a, b)| a.checked_add(b));
             ops = ops.zip(cost.ops).and_then(|(a, b)| a.checked_add(b));
             if cost.macs.is_none() || cost.ops.is_none() {

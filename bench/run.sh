@@ -2,7 +2,7 @@
 # Side-by-side timing of `tilecut inspect` against the `onnx` Python package
 # (onnx.load(..., load_external_data=False) + onnx.shape_inference.infer_shapes) and
 # tract-onnx's load + type analysis, on generated models. Prints medians of N runs (whole
-# processes), peak RSS, and ratios; the Python pair's time inside its process is the median of
+# processes; tilecut's two outputs and the Python pair take turns), peak RSS, and ratios; the Python pair's time inside its process is the median of
 # up to five runs, and tilecut's (`tc_in_ms`, milliseconds: read + import + inference +
 # report, from the stage bench) is measured right after it, so that `inproc_rt` compares the
 # two side by side.
@@ -46,16 +46,42 @@ measure() {
   echo "$med $rss"
 }
 
+# One timed run of a command: appends "seconds max_rss_kb" to the file $1.
+once() {
+  local log=$1 tmp s e
+  shift
+  tmp=$(mktemp)
+  s=$(date +%s%N)
+  /usr/bin/time -o "$tmp" -f "%M" "$@" > /dev/null 2>&1 || true
+  e=$(date +%s%N)
+  echo "$(awk -v a="$s" -v b="$e" 'BEGIN { printf "%.3f", (b - a) / 1e9 }') $(tail -1 "$tmp")" >> "$log"
+  rm -f "$tmp"
+}
+
+# Median seconds and max RSS (KB) of the runs logged in the file $1.
+summary() {
+  sort -g "$1" | awk '{ t[NR] = $1; if ($2 > r) r = $2 } END { print t[int((NR + 1) / 2)], r + 0 }'
+}
+
+have_py=$(python3 -c 'import onnx' 2>/dev/null && echo yes || true)
 printf '%-20s %10s %9s %9s %10s %9s %10s %8s %8s %10s %8s\n' model tilecut_s json_s rss_MB onnx_py_s rss_MB in-proc_s ratio json_rt tc_in_ms inproc_rt
 for m in stack_10k stack_30k stack_100k stack_200k heavy_1g_inline heavy_1g_external heavy_2g_external; do
   f="$dir/$m.onnx"
   [ -f "$f" ] || continue
-  # The default table output, and the full JSON report (every tensor listed).
-  read -r ts tr < <(measure "$bin" inspect "$f")
-  read -r tj tjr < <(measure "$bin" inspect "$f" --format json)
+  # The default table output, the full JSON report (every tensor listed) and the Python
+  # pair, round-robin: the machine's speed drifts within minutes, and three blocks of runs
+  # one after the other each met a different stretch of it.
+  lt=$(mktemp) lj=$(mktemp) lp=$(mktemp)
+  for _ in $(seq "$runs"); do
+    once "$lt" "$bin" inspect "$f"
+    once "$lj" "$bin" inspect "$f" --format json
+    if [ -n "$have_py" ]; then once "$lp" python3 -c "$py_pair" "$f"; fi
+  done
+  read -r ts tr < <(summary "$lt")
+  read -r tj tjr < <(summary "$lj")
   [ "$tjr" -gt "$tr" ] && tr=$tjr
-  if python3 -c 'import onnx' 2>/dev/null; then
-    read -r ps pr < <(measure python3 -c "$py_pair" "$f")
+  if [ -n "$have_py" ]; then
+    read -r ps pr < <(summary "$lp")
     # The in-process time is the median of up to five runs: one run swings by a tenth.
     ip=$(for _ in $(seq "$(( runs < 5 ? runs : 5 ))"); do python3 -c "$py_inproc" "$f" 2>/dev/null || echo nan; done |
       sort -g | awk '{a[NR]=$1} END {print a[int((NR+1)/2)]}')
@@ -76,6 +102,7 @@ for m in stack_10k stack_30k stack_100k stack_200k heavy_1g_inline heavy_1g_exte
     ps=nan; pr=0; ip=nan; tip=nan; ratio=n/a; jratio=n/a; iratio=n/a
   fi
   printf '%-20s %10s %9s %9d %10s %9d %10.3f %8s %8s %10s %8s\n' "$m" "$ts" "$tj" $((tr / 1024)) "$ps" $((pr / 1024)) "$ip" "$ratio" "$jratio" "$tip" "$iratio"
+  rm -f "$lt" "$lj" "$lp"
 done
 echo
 echo "analyze end to end (read, judge, cut, map, report), whole process, table output:"

@@ -446,10 +446,9 @@ struct FlatRef<'f> {
 
 impl<'a> Flat<'a> {
     fn of_graph(cx: &mut Cx, g: &'a onnx::GraphProto) -> Result<Flat<'a>, ReadError> {
-        static NO_RUN: onnx::node::NodeRun = onnx::node::NodeRun::empty();
         if cx.functions.is_empty() {
             Ok(Flat::InPlace {
-                run: g.node_run.as_ref().unwrap_or(&NO_RUN),
+                run: wire_run(g),
                 decoded: &g.node,
             })
         } else {
@@ -1306,13 +1305,18 @@ fn generated_name(n: Form, index: usize) -> String {
     }
 }
 
+/// The nodes of a graph kept in wire form (none, for a graph read whole).
+fn wire_run(g: &onnx::GraphProto) -> &onnx::node::NodeRun {
+    static NO_RUN: onnx::node::NodeRun = onnx::node::NodeRun::empty();
+    g.node_run.as_ref().unwrap_or(&NO_RUN)
+}
+
 /// A graph's nodes in order: those kept in wire form first, then the decoded ones.
 /// Its size hint is exact, so that the flat node list is sized once: grown by doubling, a
 /// 100k-node list touched about 10 MB more fresh memory.
 fn graph_nodes(g: &onnx::GraphProto) -> impl Iterator<Item = NodeRef<'_>> {
-    static NO_RUN: onnx::node::NodeRun = onnx::node::NodeRun::empty();
-    let run = g.node_run.as_ref().unwrap_or(&NO_RUN);
-    run.nodes()
+    wire_run(g)
+        .nodes()
         .map(NodeRef::Wire)
         .chain(g.node.iter().map(NodeRef::Borrowed))
 }

@@ -30,11 +30,7 @@ impl NodeId {
     /// The id of the node at `index`; a graph holds fewer than 2^32 - 1 nodes, for the
     /// reason `ValueId::new` gives.
     pub fn new(index: usize) -> NodeId {
-        let raw = u32::try_from(index).ok().and_then(|i| i.checked_add(1));
-        NodeId(
-            raw.and_then(std::num::NonZeroU32::new)
-                .unwrap_or(std::num::NonZeroU32::MAX),
-        )
+        NodeId(plus_one(index))
     }
 
     pub fn index(self) -> usize {
@@ -52,16 +48,21 @@ impl ValueId {
     /// The id of the value at `index`. A graph holds fewer than 2^32 - 1 values: each takes
     /// more than one byte of a file of at most 2 GiB, or of memory.
     pub fn new(index: usize) -> ValueId {
-        let raw = u32::try_from(index).ok().and_then(|i| i.checked_add(1));
-        ValueId(
-            raw.and_then(std::num::NonZeroU32::new)
-                .unwrap_or(std::num::NonZeroU32::MAX),
-        )
+        ValueId(plus_one(index))
     }
 
     pub fn index(self) -> usize {
         self.0.get() as usize - 1
     }
+}
+
+/// An index stored plus one, as both ids keep it (the largest for an index beyond them).
+fn plus_one(index: usize) -> std::num::NonZeroU32 {
+    u32::try_from(index)
+        .ok()
+        .and_then(|i| i.checked_add(1))
+        .and_then(std::num::NonZeroU32::new)
+        .unwrap_or(std::num::NonZeroU32::MAX)
 }
 
 impl std::fmt::Debug for ValueId {
@@ -665,6 +666,7 @@ pub fn opset_of(opsets: &BTreeMap<String, i64>, domain: &str) -> i64 {
         .copied()
         .unwrap_or(0)
 }
+
 #[cfg(test)]
 mod tests {
     use super::*;

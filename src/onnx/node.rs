@@ -475,11 +475,7 @@ impl NodeRun {
     }
 
     pub fn nodes(&self) -> impl ExactSizeIterator<Item = WireNode<'_>> + '_ {
-        self.spans.iter().map(move |&(start, len)| WireNode {
-            run: &self.bytes,
-            start,
-            len,
-        })
+        (0..self.len()).map(move |i| self.node(i))
     }
 }
 

@@ -2,7 +2,8 @@
 # Side-by-side timing of `tilecut inspect` against the `onnx` Python package
 # (onnx.load(..., load_external_data=False) + onnx.shape_inference.infer_shapes) and
 # tract-onnx's load + type analysis, on generated models. Prints medians of N runs (whole
-# processes; tilecut's two outputs and the Python pair take turns), peak RSS, and ratios; the Python pair's time inside its process is the median of
+# processes, each timed from spawn to reap by bench/timeit.py; tilecut's two outputs and the
+# Python pair take turns), peak RSS, and ratios; the Python pair's time inside its process is the median of
 # up to five runs, and tilecut's (`tc_in_ms`, milliseconds: read + import + inference +
 # report, from the stage bench) is measured right after it, so that `inproc_rt` compares the
 # two side by side.
@@ -27,35 +28,31 @@ m = onnx.load(sys.argv[1], load_external_data=False)
 shape_inference.infer_shapes(m)
 print(time.perf_counter() - t)'
 
-# median seconds (wall clock to the millisecond; /usr/bin/time's own figure has 10 ms steps)
-# and max RSS (KB) of a command over $runs runs
-measure() {
-  local times=() rss=0 tmp s e r
-  tmp=$(mktemp)
-  for _ in $(seq "$runs"); do
-    s=$(date +%s%N)
-    /usr/bin/time -o "$tmp" -f "%M" "$@" > /dev/null 2>&1 || true
-    e=$(date +%s%N)
-    times+=("$(awk -v a="$s" -v b="$e" 'BEGIN { printf "%.3f", (b - a) / 1e9 }')")
-    r=$(tail -1 "$tmp")
-    [ "$r" -gt "$rss" ] && rss=$r
-  done
-  rm -f "$tmp"
-  local med
-  med=$(printf '%s\n' "${times[@]}" | sort -g | awk '{a[NR]=$1} END {print a[int((NR+1)/2)]}')
-  echo "$med $rss"
-}
-
-# One timed run of a command: appends "seconds max_rss_kb" to the file $1.
+# One timed run of a command: appends "seconds max_rss_kb" to the file $1. With Python, the
+# clock spans the process alone (bench/timeit.py: spawn to reap); without it, `date` around
+# `/usr/bin/time`, whose own start and the `date` process add about 2.5 ms a run.
 once() {
   local log=$1 tmp s e
   shift
+  if [ -n "$have_py3" ]; then
+    python3 bench/timeit.py "$log" "$@"
+    return
+  fi
   tmp=$(mktemp)
   s=$(date +%s%N)
   /usr/bin/time -o "$tmp" -f "%M" "$@" > /dev/null 2>&1 || true
   e=$(date +%s%N)
-  echo "$(awk -v a="$s" -v b="$e" 'BEGIN { printf "%.3f", (b - a) / 1e9 }') $(tail -1 "$tmp")" >> "$log"
+  echo "$(awk -v a="$s" -v b="$e" 'BEGIN { printf "%.4f", (b - a) / 1e9 }') $(tail -1 "$tmp")" >> "$log"
   rm -f "$tmp"
+}
+
+# Median seconds and max RSS (KB) of a command over $runs runs.
+measure() {
+  local log
+  log=$(mktemp)
+  for _ in $(seq "$runs"); do once "$log" "$@"; done
+  summary "$log"
+  rm -f "$log"
 }
 
 # Median seconds and max RSS (KB) of the runs logged in the file $1.
@@ -63,6 +60,7 @@ summary() {
   sort -g "$1" | awk '{ t[NR] = $1; if ($2 > r) r = $2 } END { print t[int((NR + 1) / 2)], r + 0 }'
 }
 
+have_py3=$(command -v python3 > /dev/null && echo yes || true)
 have_py=$(python3 -c 'import onnx' 2>/dev/null && echo yes || true)
 printf '%-20s %10s %9s %9s %10s %9s %10s %8s %8s %10s %8s\n' model tilecut_s json_s rss_MB onnx_py_s rss_MB in-proc_s ratio json_rt tc_in_ms inproc_rt
 for m in stack_10k stack_30k stack_100k stack_200k heavy_1g_inline heavy_1g_external heavy_2g_external; do

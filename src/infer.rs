@@ -249,6 +249,7 @@ fn infer_graph(
 
         // Bodies first, with this graph's facts visible to them.
         let mut body_outputs = Vec::new();
+        let mut body_consts = Vec::new();
         let mut body_costs = Vec::new();
         if !node.bodies().is_empty() {
             // The bodies see what the node reads (its inputs and captures, which cover nested
@@ -295,6 +296,13 @@ fn infer_graph(
                         .map(|&o| b.graph.values[o.index()].fact.clone())
                         .collect(),
                 );
+                body_consts.push(
+                    b.graph
+                        .outputs
+                        .iter()
+                        .map(|&o| b.graph.values[o.index()].konst.as_deref().cloned())
+                        .collect(),
+                );
                 body_costs.push(graph_cost(&b.graph));
             }
             if let Some(e) = g.nodes[ni].extra.as_mut() {
@@ -317,6 +325,7 @@ fn infer_graph(
                 .collect(),
             opset,
             body_outputs,
+            body_consts,
             loop_trips: trips.get(node.name.as_str()).copied(),
             assumed,
         };
@@ -414,17 +423,20 @@ fn infer_graph(
         for (k, slot) in node.outputs.iter().enumerate() {
             let Some(v) = slot else { continue };
             let fact = std::mem::take(&mut outputs[k]);
-            let value = &mut g.values[v.index()];
             if let Some(r) = reasons.as_deref_mut() {
                 if !fact.is_concrete() {
                     let why = match (&failure, merged.get(k)) {
                         (Some(f), _) if !ranked.get(k).copied().unwrap_or(true) => texts.get(f.clone()),
                         (_, Some(Some(m))) => texts.get(m.clone()),
-                        _ => texts.for_fact(&fact),
+                        _ => match sized_by_values(g, node, &fact) {
+                            Some(text) => texts.get(text),
+                            None => texts.for_fact(&fact),
+                        },
                     };
                     r.push((*v, why));
                 }
             }
+            let value = &mut g.values[v.index()];
             value.fact = fact;
             value.konst = folded_values
                 .as_ref()
@@ -468,6 +480,152 @@ fn infer_graph(
                 ));
             }
         }
+    }
+}
+
+/// Tensors of at most this many elements are read as sizes (a shape, a count, a scale per
+/// axis) when saying what leaves an output dim unknown.
+const SIZE_LIKE_ELEMENTS: u64 = 64;
+
+/// Why an output of a node whose inputs all have known shapes still has an unknown dim: its
+/// size comes from the values of small inputs that are not constants (Range's limits,
+/// Reshape's or Expand's shape, Tile's repeats, Resize's sizes). Names them, and the main-graph
+/// inputs their values come from, which `--value` can set. None when the unknown dim came in
+/// with an input, or when no input looks like a size: the shape-based reason then stands.
+fn sized_by_values(g: &Graph, node: &crate::ir::Node, fact: &Fact) -> Option<String> {
+    if !is_tensor(fact) || !fact.shape.dims()?.iter().any(|d| matches!(d, crate::ir::Dim::Unknown)) {
+        return None;
+    }
+    let mut reads = node.inputs.iter().flatten().chain(node.captures()).peekable();
+    reads.peek()?;
+    if !reads.all(|v| g.values[v.index()].fact.is_concrete()) {
+        return None;
+    }
+    let mut sizes: Vec<ValueId> = Vec::new();
+    for &v in node.inputs.iter().flatten() {
+        if value_unknown(&g.values[v.index()]) && size_like(&g.values[v.index()].fact) && !sizes.contains(&v) {
+            sizes.push(v);
+        }
+    }
+    if sizes.is_empty() {
+        return None;
+    }
+    let quoted = |ids: &[ValueId]| {
+        listed(
+            &ids.iter()
+                .map(|v| format!("`{}`", g.values[v.index()].name))
+                .collect::<Vec<_>>(),
+        )
+    };
+    let inputs_named = |ids: &[ValueId]| match ids {
+        [_] => format!("graph input {}", quoted(ids)),
+        _ => format!("graph inputs {}", quoted(ids)),
+    };
+    let (direct, computed): (Vec<ValueId>, Vec<ValueId>) = sizes.iter().partition(|v| g.inputs.contains(v));
+    let mut parts = Vec::new();
+    let mut settable = direct.clone();
+    if !direct.is_empty() {
+        parts.push(inputs_named(&direct));
+    }
+    if !computed.is_empty() {
+        let (sources, from_data) = value_sources(g, &computed);
+        parts.push(match (sources.is_empty(), from_data) {
+            (true, _) => format!("{}, computed at run time", quoted(&computed)),
+            (false, false) => format!("{}, computed from {}", quoted(&computed), inputs_named(&sources)),
+            (false, true) => format!(
+                "{}, computed at run time, partly from {}",
+                quoted(&computed),
+                inputs_named(&sources)
+            ),
+        });
+        settable.extend(sources.iter().filter(|v| !direct.contains(v)));
+    }
+    let hint = match settable.len() {
+        0 => "",
+        1 => " (set it with --value NAME=…)",
+        _ => " (set them with --value NAME=…)",
+    };
+    Some(if computed.is_empty() {
+        format!(
+            "sized by the value of {}, which the file does not give{hint}",
+            parts.join("")
+        )
+    } else {
+        format!("sized by the value of {}{hint}", parts.join(" and of "))
+    })
+}
+
+/// A value whose contents the file does not give and inference did not work out, wholly or
+/// in part (a shape built from a known and an unknown dim).
+fn value_unknown(v: &Value) -> bool {
+    match v.konst.as_deref() {
+        Some(k) => !k.is_numeric(),
+        None => !is_const_kind(v.kind),
+    }
+}
+
+/// A tensor small enough to be read as sizes: a scalar or a short list.
+fn size_like(f: &Fact) -> bool {
+    is_tensor(f)
+        && f.shape.rank().is_some_and(|r| r <= 1)
+        && f.shape.element_count().is_some_and(|n| n <= SIZE_LIKE_ELEMENTS)
+}
+
+/// Steps of the walk in `value_sources`: size arithmetic is short, and a reason is not worth
+/// a long search.
+const SOURCE_WALK_LIMIT: usize = 256;
+
+/// The main-graph inputs whose values the values `start` are computed from, following
+/// producers through size-like tensors only, in the order met; and whether some part comes
+/// from elsewhere (a large tensor's data, an outer scope, or a walk cut at its limit).
+fn value_sources(g: &Graph, start: &[ValueId]) -> (Vec<ValueId>, bool) {
+    let mut stack: Vec<ValueId> = start.iter().rev().copied().collect();
+    let mut seen: Vec<ValueId> = Vec::new();
+    let mut sources = Vec::new();
+    let mut from_data = false;
+    while let Some(v) = stack.pop() {
+        if seen.contains(&v) {
+            continue;
+        }
+        if seen.len() >= SOURCE_WALK_LIMIT {
+            from_data = true;
+            break;
+        }
+        seen.push(v);
+        let value = &g.values[v.index()];
+        if !value_unknown(value) {
+            continue;
+        }
+        if g.inputs.contains(&v) {
+            sources.push(v);
+            continue;
+        }
+        let Some(p) = value.producer else {
+            from_data = true;
+            continue;
+        };
+        let producer = g.node(p);
+        for &u in producer.inputs.iter().flatten().chain(producer.captures()).rev() {
+            let read = &g.values[u.index()];
+            if !value_unknown(read) {
+                continue;
+            }
+            if size_like(&read.fact) {
+                stack.push(u);
+            } else {
+                from_data = true;
+            }
+        }
+    }
+    (sources, from_data)
+}
+
+/// `a`, `a and b`, `a, b and c`.
+fn listed(names: &[String]) -> String {
+    match names {
+        [] => String::new(),
+        [one] => one.clone(),
+        [rest @ .., last] => format!("{} and {last}", rest.join(", ")),
     }
 }
 

@@ -94,26 +94,13 @@ fn inference_reproduces_declared_output_shapes_of_conformance_models() {
             skipped += 1;
             continue;
         };
-        let encoded = Bytes::from(stripped.encode_to_vec());
-        let loaded = match tilecut::onnx::load::decode(
-            &path,
-            encoded,
-            path.parent().expect("folder").canonicalize().expect("canonical"),
-        ) {
-            Ok(l) => l,
+        let model = match infer_stripped(&path, &stripped, &Default::default()) {
+            Ok(m) => m,
             Err(e) => {
-                failures.push(format!("{name}: decode failed: {e}"));
+                failures.push(format!("{name}: {e}"));
                 continue;
             }
         };
-        let (mut model, mut diags) = match tilecut::import::import(&loaded, &Default::default()) {
-            Ok(x) => x,
-            Err(e) => {
-                failures.push(format!("{name}: import failed: {e}"));
-                continue;
-            }
-        };
-        tilecut::infer::infer(&mut model, &mut diags);
         for (k, d) in declared.iter().enumerate() {
             let Some(decl) = d.as_ref().and_then(declared_fact) else {
                 skipped += 1;
@@ -138,6 +125,96 @@ fn inference_reproduces_declared_output_shapes_of_conformance_models() {
     );
     // A floor, so that a regression that turns known shapes into unknown ones fails too.
     assert!(agree >= 1800, "only {agree} outputs agree");
+}
+
+/// The stripped model read, imported with `overrides` and inferred.
+fn infer_stripped(
+    path: &Path,
+    stripped: &ModelProto,
+    overrides: &tilecut::Overrides,
+) -> Result<tilecut::ir::Model, String> {
+    let encoded = Bytes::from(stripped.encode_to_vec());
+    let folder = path.parent().expect("folder").canonicalize().expect("canonical");
+    let loaded = tilecut::onnx::load::decode(path, encoded, folder).map_err(|e| format!("decode failed: {e}"))?;
+    let (mut model, mut diags) =
+        tilecut::import::import(&loaded, overrides).map_err(|e| format!("import failed: {e}"))?;
+    tilecut::infer::infer(&mut model, &mut diags);
+    Ok(model)
+}
+
+/// Conformance models whose output size comes from an input's value, not its shape: with
+/// the declarations stripped the output is not known, and once the value is given (as
+/// `--value` gives it) inference must reproduce the declared output. The values follow from
+/// the declared output by the ONNX operator specification: AffineGrid's `size` is (N, C, H, W)
+/// or (N, C, D, H, W) and its grid [N, H, W, 2] or [N, D, H, W, 3] (C does not appear in it;
+/// 3 is used); a window op's output has `size` elements; CenterCropPad without `axes` gives a
+/// tensor of dims `shape`. The expanded models reach the size through Split, an If with a
+/// constant condition, Slice, Concat and ConstantOfShape (the function bodies in the spec).
+#[test]
+fn value_sized_models_reproduce_declared_outputs_once_the_value_is_given() {
+    type FromDeclared = fn(&[i64]) -> Vec<i64>;
+    let grid_2d: FromDeclared = |g| vec![g[0], 3, g[1], g[2]];
+    let grid_3d: FromDeclared = |g| vec![g[0], 3, g[1], g[2], g[3]];
+    let window: FromDeclared = |g| vec![g[0]];
+    let crop: FromDeclared = |g| g.to_vec();
+    let mut cases: Vec<(String, &str, FromDeclared)> = Vec::new();
+    for stem in ["affine_grid_2d", "affine_grid_2d_align_corners"] {
+        cases.push((format!("test_{stem}"), "size", grid_2d));
+    }
+    for stem in ["affine_grid_3d", "affine_grid_3d_align_corners"] {
+        cases.push((format!("test_{stem}"), "size", grid_3d));
+    }
+    for kind in ["blackman", "hamming", "hann"] {
+        for variant in ["", "_symmetric"] {
+            cases.push((format!("test_{kind}window{variant}"), "x", window));
+        }
+    }
+    for stem in [
+        "center_crop_pad_crop",
+        "center_crop_pad_pad",
+        "center_crop_pad_crop_and_pad",
+    ] {
+        cases.push((format!("test_{stem}"), "shape", crop));
+    }
+    let dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/onnx-node");
+    let mut checked = 0;
+    for (stem, input, from_declared) in &cases {
+        for name in [format!("{stem}.onnx"), format!("{stem}_expanded.onnx")] {
+            let path = dir.join(&name);
+            let bytes = std::fs::read(&path).unwrap_or_else(|e| panic!("{name}: {e}"));
+            let (stripped, declared) = strip(&bytes).expect("a model with a graph");
+            let decl = declared[0]
+                .as_ref()
+                .and_then(declared_fact)
+                .expect("a declared tensor output");
+            let dims: Vec<i64> = decl.1.iter().map(|d| d.expect("declared dims are numbers")).collect();
+            let output = |m: &tilecut::ir::Model| m.graph.value(m.graph.outputs[0]).fact.clone();
+
+            let unfed = infer_stripped(&path, &stripped, &Default::default()).unwrap_or_else(|e| panic!("{name}: {e}"));
+            assert!(
+                matches!(compare(&output(&unfed), &decl), Outcome::Unknown),
+                "{name}: the output is known without the value of `{input}`: {}",
+                output(&unfed).shape
+            );
+
+            let mut overrides = tilecut::Overrides::default();
+            let value: Vec<String> = from_declared(&dims).iter().map(i64::to_string).collect();
+            overrides
+                .add_value(&format!("{input}={}", value.join(",")))
+                .expect("a valid --value");
+            let fed = infer_stripped(&path, &stripped, &overrides).unwrap_or_else(|e| panic!("{name}: {e}"));
+            match compare(&output(&fed), &decl) {
+                Outcome::Agree => checked += 1,
+                Outcome::Unknown => panic!(
+                    "{name}: still unknown with {input}={}: {}",
+                    value.join(","),
+                    output(&fed).shape
+                ),
+                Outcome::Disagree(why) => panic!("{name}: {why}"),
+            }
+        }
+    }
+    assert_eq!(checked, cases.len() * 2);
 }
 
 /// The model's (MACs, other ops) as `tilecut inspect` reports them; `None` for an unknown one.

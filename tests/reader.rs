@@ -2150,3 +2150,97 @@ fn large_graphs_sum_their_figures_as_small_ones_do() {
         assert_eq!((m.params, m.weight_bytes), (256 + 16, (256 + 16) * 4), "n = {n}");
     }
 }
+
+/// A size read from a tensor's value (Range's limits, Reshape's shape) that the file does not
+/// give: the reason names the tensors and the graph inputs they come from, which `--value`
+/// sets, instead of "depends on a tensor whose shape is unknown" (every input's shape is
+/// known). With the values given, the shapes follow the ONNX operator specification: Range
+/// has max(ceil((limit - start) / delta), 0) elements, Reshape takes the shape it is given.
+#[test]
+fn sizes_read_from_values_name_the_inputs_to_set() {
+    use tilecut::ir::DType;
+    use tilecut::onnx::builder::{i64_tensor, ModelBuilder};
+    let d = tmp();
+    let mut m = ModelBuilder::new("sizes", 17);
+    m.graph.input("start", DType::I64, &[]);
+    m.graph.input("limit", DType::I64, &[]);
+    m.graph.input("step", DType::I64, &[]);
+    m.graph.input("x", DType::F32, &[4.into(), 6.into()]);
+    m.graph.input("rows", DType::I64, &[1.into()]);
+    m.graph.initializer(i64_tensor("minus_one", &[1], &[-1]));
+    m.graph.node("Range", &["start", "limit", "step"], &["r"]);
+    // The shape is computed from an input: (rows, -1).
+    m.graph
+        .node("Concat", &["rows", "minus_one"], &["target"])
+        .attribute
+        .push(tilecut::onnx::builder::attr::int("axis", 0));
+    m.graph.node("Reshape", &["x", "target"], &["y"]);
+    // A count taken from the data itself: no input sets it.
+    m.graph
+        .node("ReduceMax", &["x"], &["peak"])
+        .attribute
+        .push(tilecut::onnx::builder::attr::int("keepdims", 0));
+    m.graph
+        .node("Cast", &["peak"], &["n"])
+        .attribute
+        .push(tilecut::onnx::builder::attr::int("to", 7));
+    m.graph.node("Range", &["start", "n", "step"], &["data_sized"]);
+    m.graph.output("r", DType::I64, &[]);
+    m.graph.output("y", DType::F32, &[]);
+    m.graph.output("data_sized", DType::I64, &[]);
+    let p = d.path().join("sizes.onnx");
+    std::fs::write(&p, m.encode()).expect("write");
+    let ps = p.to_str().expect("utf8");
+    let report = |extra: &[&str]| -> serde_json::Value {
+        let mut args = vec!["inspect", ps, "--format", "json"];
+        args.extend_from_slice(extra);
+        let (code, out, err) = run(&args);
+        assert_eq!(code, 0, "{err}");
+        serde_json::from_str(&out).expect("json")
+    };
+    let reasons = |v: &serde_json::Value| -> std::collections::BTreeMap<String, String> {
+        v["unknown_shapes"]
+            .as_array()
+            .expect("list")
+            .iter()
+            .map(|u| {
+                (
+                    u["tensor"].as_str().expect("tensor").to_string(),
+                    u["reason"].as_str().expect("reason").to_string(),
+                )
+            })
+            .collect()
+    };
+    let r = reasons(&report(&[]));
+    assert_eq!(
+        r["r"],
+        "sized by the value of graph inputs `start`, `limit` and `step`, which the file does not give (set them with --value NAME=…)"
+    );
+    assert_eq!(
+        r["y"],
+        "sized by the value of `target`, computed from graph input `rows` (set it with --value NAME=…)"
+    );
+    assert_eq!(
+        r["data_sized"],
+        "sized by the value of graph inputs `start` and `step` and of `n`, computed at run time (set them with --value NAME=…)"
+    );
+
+    let v = report(&[
+        "--value", "start=1", "--value", "limit=10", "--value", "step=2", "--value", "rows=3",
+    ]);
+    let shape = |name: &str| {
+        v["tensors"]
+            .as_array()
+            .expect("list")
+            .iter()
+            .find(|t| t["name"] == name)
+            .map(|t| t["shape"].clone())
+            .expect("listed")
+    };
+    // ceil((10 - 1) / 2) = 5 elements; 24 elements as (3, -1) = (3, 8).
+    assert_eq!(shape("r"), serde_json::json!([5]));
+    assert_eq!(shape("y"), serde_json::json!([3, 8]));
+    let r = reasons(&v);
+    assert!(!r.contains_key("r") && !r.contains_key("y"), "{r:?}");
+    assert_eq!(r["data_sized"], "sized by the value of `n`, computed at run time");
+}

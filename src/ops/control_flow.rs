@@ -118,6 +118,16 @@ fn if_(ctx: &Ctx) -> Inferred {
         .collect())
 }
 
+/// An If whose condition is a constant passes on the values its taken branch computes (ONNX
+/// operator specification: the outputs are the taken branch's), in output order up to the
+/// first whose value is not known. Exporters select a 2-D or 3-D path this way, and sizes
+/// read from a `--value` input then stay known past the If.
+fn if_values(ctx: &Ctx) -> Option<Vec<ConstValue>> {
+    let taken = taken_branch(ctx.node, ctx.konst(0))?;
+    let values: Vec<ConstValue> = ctx.body_consts.get(taken)?.iter().map_while(Clone::clone).collect();
+    (!values.is_empty()).then_some(values)
+}
+
 /// Loop: outputs are the final carried values, then scan outputs stacked over iterations.
 fn loop_(ctx: &Ctx) -> Inferred {
     let body = ctx.body_outputs.first().ok_or("Loop without body")?;
@@ -293,7 +303,7 @@ fn scan(ctx: &Ctx) -> Inferred {
 }
 
 macro_rules! op {
-    ($name:literal, $infer:expr) => {
+    ($name:literal, $infer:expr, $fold:expr) => {
         // Bodies are costed by the driver (If: costlier branch; Loop: × trips); the node itself adds nothing.
         OpDef {
             domain: "",
@@ -301,9 +311,13 @@ macro_rules! op {
             family: "control_flow",
             infer: $infer,
             cost: CostRule::Free,
-            fold: None,
+            fold: $fold,
         }
     };
 }
 
-pub static OPS: &[OpDef] = &[op!("If", if_), op!("Loop", loop_), op!("Scan", scan)];
+pub static OPS: &[OpDef] = &[
+    op!("If", if_, Some(if_values)),
+    op!("Loop", loop_, None),
+    op!("Scan", scan, None),
+];

@@ -48,6 +48,9 @@ pub struct Ctx<'a> {
     pub opset: i64,
     /// Facts inferred for each body's outputs (If/Loop/Scan), in body order.
     pub body_outputs: Vec<Vec<Fact>>,
+    /// The values of those outputs that inference worked out, in the same order (an If whose
+    /// condition is known passes its taken branch's on).
+    pub body_consts: Vec<Vec<Option<ConstValue>>>,
     /// A Loop's trip count from `--loop-trips`, when its `M` input is not a constant.
     pub loop_trips: Option<u64>,
     /// Sizes the user assumed for data-dependent dims.

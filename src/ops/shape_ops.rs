@@ -830,6 +830,25 @@ fn fold_slice(ctx: &Ctx) -> Option<Vec<ConstValue>> {
     Some(vec![fold::slice(data, &r)?])
 }
 
+/// Split of a constant: each output is the run of the data along the axis that its size
+/// gives (ONNX operator specification, Split), in output order. Exporters cut a shape into
+/// its dims this way (the AffineGrid function body splits `size` into N, C, H, W).
+fn fold_split(ctx: &Ctx) -> Option<Vec<ConstValue>> {
+    let data = ctx.konst(0)?;
+    let axis = norm_axis(ctx.int("axis", 0), data.dims.len())?;
+    let total = i64::try_from(*data.dims.get(axis)?).ok()?;
+    let parts = split(ctx).ok()?;
+    let mut start = 0i64;
+    let mut values = Vec::with_capacity(parts.len());
+    for part in &parts {
+        let len = i64::try_from(part.shape.dims()?.get(axis)?.known()?).ok()?;
+        let end = start.checked_add(len).filter(|&e| e <= total)?;
+        values.push(fold::slice(data, &[(axis, start, end, 1)])?);
+        start = end;
+    }
+    Some(values)
+}
+
 fn gather(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(0);
     let (Some(d), Some(idx)) = (ctx.dims(0), ctx.dims(1)) else {
@@ -1280,7 +1299,7 @@ pub static OPS: &[OpDef] = &[
     op!("Squeeze", squeeze, fold_same_data),
     op!("Unsqueeze", unsqueeze, fold_same_data),
     op!("Concat", concat, fold_concat),
-    op!("Split", split),
+    op!("Split", split, fold_split),
     op!("Slice", slice, fold_slice),
     op!("Gather", gather, fold_gather),
     op!("GatherElements", gather_elements),

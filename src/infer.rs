@@ -548,7 +548,7 @@ fn sized_by_values(g: &Graph, node: &crate::ir::Node, fact: &Fact) -> Option<Str
     Some(if computed.is_empty() {
         format!(
             "sized by the value of {}, which the file does not give{hint}",
-            parts.join("")
+            inputs_named(&direct)
         )
     } else {
         format!("sized by the value of {}{hint}", parts.join(" and of "))

@@ -769,6 +769,30 @@ fn shapes_after_a_loop_name_the_loop_trips_setting() {
     assert!(!out.contains("shape-dynamic"), "{out}");
 }
 
+/// `tilecut inspect MODEL --format json EXTRA…`, which must succeed.
+fn inspect_json(model: &str, extra: &[&str]) -> serde_json::Value {
+    let mut args = vec!["inspect", model, "--format", "json"];
+    args.extend_from_slice(extra);
+    let (code, out, err) = run(&args);
+    assert_eq!(code, 0, "{err}");
+    serde_json::from_str(&out).expect("json")
+}
+
+/// A report's `unknown_shapes[]` as tensor → reason.
+fn unknown_reasons(report: &serde_json::Value) -> std::collections::BTreeMap<String, String> {
+    report["unknown_shapes"]
+        .as_array()
+        .expect("list")
+        .iter()
+        .map(|u| {
+            (
+                u["tensor"].as_str().expect("tensor").to_string(),
+                u["reason"].as_str().expect("reason").to_string(),
+            )
+        })
+        .collect()
+}
+
 /// An If whose condition is not a constant and whose branches give different shapes, and a
 /// Loop whose carried value grows each iteration, leave dims unknown that no symbol names:
 /// the reason says which (not "depends on a tensor whose shape is unknown", which is true
@@ -816,24 +840,7 @@ fn if_and_loop_outputs_that_change_shape_say_why() {
     let p = d.path().join("branches.onnx");
     std::fs::write(&p, m.encode()).expect("write");
     let ps = p.to_str().expect("utf8");
-    let reasons = |extra: &[&str]| -> std::collections::BTreeMap<String, String> {
-        let mut args = vec!["inspect", ps, "--format", "json"];
-        args.extend_from_slice(extra);
-        let (code, out, err) = run(&args);
-        assert_eq!(code, 0, "{err}");
-        let v: serde_json::Value = serde_json::from_str(&out).expect("json");
-        v["unknown_shapes"]
-            .as_array()
-            .expect("list")
-            .iter()
-            .map(|u| {
-                (
-                    u["tensor"].as_str().expect("tensor").to_string(),
-                    u["reason"].as_str().expect("reason").to_string(),
-                )
-            })
-            .collect()
-    };
+    let reasons = |extra: &[&str]| unknown_reasons(&inspect_json(ps, extra));
     let r = reasons(&[]);
     // Then [2,3] (x itself), else [4,3] (x twice along axis 0), named by attribute although
     // the file lists else_branch first.
@@ -2191,27 +2198,7 @@ fn sizes_read_from_values_name_the_inputs_to_set() {
     let p = d.path().join("sizes.onnx");
     std::fs::write(&p, m.encode()).expect("write");
     let ps = p.to_str().expect("utf8");
-    let report = |extra: &[&str]| -> serde_json::Value {
-        let mut args = vec!["inspect", ps, "--format", "json"];
-        args.extend_from_slice(extra);
-        let (code, out, err) = run(&args);
-        assert_eq!(code, 0, "{err}");
-        serde_json::from_str(&out).expect("json")
-    };
-    let reasons = |v: &serde_json::Value| -> std::collections::BTreeMap<String, String> {
-        v["unknown_shapes"]
-            .as_array()
-            .expect("list")
-            .iter()
-            .map(|u| {
-                (
-                    u["tensor"].as_str().expect("tensor").to_string(),
-                    u["reason"].as_str().expect("reason").to_string(),
-                )
-            })
-            .collect()
-    };
-    let r = reasons(&report(&[]));
+    let r = unknown_reasons(&inspect_json(ps, &[]));
     assert_eq!(
         r["r"],
         "sized by the value of graph inputs `start`, `limit` and `step`, which the file does not give (set them with --value NAME=…)"
@@ -2225,9 +2212,12 @@ fn sizes_read_from_values_name_the_inputs_to_set() {
         "sized by the value of graph inputs `start` and `step` and of `n`, computed at run time (set them with --value NAME=…)"
     );
 
-    let v = report(&[
-        "--value", "start=1", "--value", "limit=10", "--value", "step=2", "--value", "rows=3",
-    ]);
+    let v = inspect_json(
+        ps,
+        &[
+            "--value", "start=1", "--value", "limit=10", "--value", "step=2", "--value", "rows=3",
+        ],
+    );
     let shape = |name: &str| {
         v["tensors"]
             .as_array()
@@ -2240,7 +2230,7 @@ fn sizes_read_from_values_name_the_inputs_to_set() {
     // ceil((10 - 1) / 2) = 5 elements; 24 elements as (3, -1) = (3, 8).
     assert_eq!(shape("r"), serde_json::json!([5]));
     assert_eq!(shape("y"), serde_json::json!([3, 8]));
-    let r = reasons(&v);
+    let r = unknown_reasons(&v);
     assert!(!r.contains_key("r") && !r.contains_key("y"), "{r:?}");
     assert_eq!(r["data_sized"], "sized by the value of `n`, computed at run time");
 }

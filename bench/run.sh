@@ -3,7 +3,7 @@
 # (onnx.load(..., load_external_data=False) + onnx.shape_inference.infer_shapes) and
 # tract-onnx's load + type analysis, on generated models. Prints medians of N runs (whole
 # processes, each timed from spawn to reap by bench/timeit.py; tilecut's two outputs and the
-# Python pair take turns), peak RSS, and ratios; the Python pair's time inside its process is the median of
+# Python pair take turns), peak RSS (one more run each, under /usr/bin/time), and ratios; the Python pair's time inside its process is the median of
 # up to five runs, and tilecut's (`tc_in_ms`, milliseconds: read + import + inference +
 # report, from the stage bench) is measured right after it, so that `inproc_rt` compares the
 # two side by side.
@@ -28,9 +28,10 @@ m = onnx.load(sys.argv[1], load_external_data=False)
 shape_inference.infer_shapes(m)
 print(time.perf_counter() - t)'
 
-# One timed run of a command: appends "seconds max_rss_kb" to the file $1. With Python, the
-# clock spans the process alone (bench/timeit.py: spawn to reap); without it, `date` around
-# `/usr/bin/time`, whose own start and the `date` process add about 2.5 ms a run.
+# One timed run of a command: appends its seconds to the file $1 (and, without Python, its
+# max RSS in KB). With Python, the clock spans the process alone (bench/timeit.py: spawn to
+# reap); without it, `date` around `/usr/bin/time`, whose own start and the `date` process
+# add about 2 ms a run.
 once() {
   local log=$1 tmp s e
   shift
@@ -46,12 +47,33 @@ once() {
   rm -f "$tmp"
 }
 
-# Median seconds and max RSS (KB) of a command over $runs runs.
+# Peak RSS (KB) of one untimed run of a command under `/usr/bin/time`: a process started from
+# Python would report the Python parent's memory as its own (bench/timeit.py).
+peak() {
+  local tmp
+  tmp=$(mktemp)
+  /usr/bin/time -o "$tmp" -f "%M" "$@" > /dev/null 2>&1 || true
+  tail -1 "$tmp"
+  rm -f "$tmp"
+}
+
+# Median seconds of the runs logged in $1 and the peak RSS (KB) of the command that follows:
+# from one more run under `/usr/bin/time`, or the logged runs' own without Python.
+timed() {
+  local log=$1 t r p
+  shift
+  read -r t r < <(summary "$log")
+  p=$(peak "$@")
+  [ "${p:-0}" -gt "$r" ] && r=$p
+  echo "$t $r"
+}
+
+# Median seconds and peak RSS (KB) of a command over $runs runs.
 measure() {
   local log
   log=$(mktemp)
   for _ in $(seq "$runs"); do once "$log" "$@"; done
-  summary "$log"
+  timed "$log" "$@"
   rm -f "$log"
 }
 
@@ -75,11 +97,11 @@ for m in stack_10k stack_30k stack_100k stack_200k heavy_1g_inline heavy_1g_exte
     once "$lj" "$bin" inspect "$f" --format json
     if [ -n "$have_py" ]; then once "$lp" python3 -c "$py_pair" "$f"; fi
   done
-  read -r ts tr < <(summary "$lt")
-  read -r tj tjr < <(summary "$lj")
+  read -r ts tr < <(timed "$lt" "$bin" inspect "$f")
+  read -r tj tjr < <(timed "$lj" "$bin" inspect "$f" --format json)
   [ "$tjr" -gt "$tr" ] && tr=$tjr
   if [ -n "$have_py" ]; then
-    read -r ps pr < <(summary "$lp")
+    read -r ps pr < <(timed "$lp" python3 -c "$py_pair" "$f")
     # The in-process time is the median of up to five runs: one run swings by a tenth.
     ip=$(for _ in $(seq "$(( runs < 5 ? runs : 5 ))"); do python3 -c "$py_inproc" "$f" 2>/dev/null || echo nan; done |
       sort -g | awk '{a[NR]=$1} END {print a[int((NR+1)/2)]}')

@@ -249,6 +249,7 @@ pub fn import(loaded: &LoadedModel, overrides: &Overrides) -> Result<(Model, Vec
         functions,
         loop_trips: overrides.loop_trips.clone(),
         assumed_sizes,
+        needs_values: Vec::new(),
     };
     Ok((model, cx.diags))
 }

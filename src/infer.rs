@@ -109,6 +109,7 @@ pub fn infer(model: &mut Model, diags: &mut Vec<Diagnostic>) -> UnknownReasons {
     // fresh memory again and again (a third of inference on a 100k-node graph with a symbolic
     // batch, where every tensor has one); capacity that is never written costs nothing.
     let mut reasons = UnknownReasons::with_capacity(model.graph.values.len());
+    let mut needs = Vec::new();
     let assumed = crate::ops::AssumedSizes::new(model.assumed_sizes.clone());
     let settings = Settings {
         opsets: &opsets,
@@ -123,7 +124,9 @@ pub fn infer(model: &mut Model, diags: &mut Vec<Diagnostic>) -> UnknownReasons {
         diags,
         &mut unknown_ops,
         Some(&mut reasons),
+        &mut needs,
     );
+    model.needs_values = needs_values(&model.graph, needs);
     for name in assumed.unmet() {
         diags.push(Diagnostic::new(
             codes::OVERRIDE_UNUSED,
@@ -143,6 +146,14 @@ pub fn infer(model: &mut Model, diags: &mut Vec<Diagnostic>) -> UnknownReasons {
     // Node outputs come in node order and graph inputs last; every value appears once.
     reasons.sort_by_key(|(id, _)| *id);
     reasons
+}
+
+/// The names of the main-graph inputs in `needs`, once each, sorted.
+fn needs_values(g: &Graph, needs: Vec<ValueId>) -> Vec<String> {
+    let mut names: Vec<String> = needs.iter().map(|v| g.values[v.index()].name.to_string()).collect();
+    names.sort();
+    names.dedup();
+    names
 }
 
 type OuterFacts<'a> = HashMap<String, (Fact, Option<ConstValue>, ValueKind)>;
@@ -201,6 +212,7 @@ fn infer_graph(
     diags: &mut Vec<Diagnostic>,
     unknown_ops: &mut BTreeMap<(String, String), (usize, String)>,
     mut reasons: Option<&mut UnknownReasons>,
+    needs: &mut Vec<ValueId>,
 ) {
     let Settings {
         opsets,
@@ -288,7 +300,15 @@ fn infer_graph(
                 } else {
                     &mut *diags
                 };
-                infer_graph(&mut b.graph, settings, &scope, body_diags, unknown_ops, None);
+                infer_graph(
+                    &mut b.graph,
+                    settings,
+                    &scope,
+                    body_diags,
+                    unknown_ops,
+                    None,
+                    &mut Vec::new(),
+                );
                 body_outputs.push(
                     b.graph
                         .outputs
@@ -403,13 +423,25 @@ fn infer_graph(
         } else {
             node_cost(&ctx, def.map(|d| d.cost), &[], &body_costs)
         };
-        let merged = if node.bodies().is_empty() || def.is_none() {
+        let mut merged = if node.bodies().is_empty() || def.is_none() {
             Vec::new()
         } else {
             ops::merge_reasons(&ctx)
         };
         // The context borrows the graph, which the outputs below are written into.
         drop(ctx);
+        // An If of the main graph whose condition is not known, while some output or its cost
+        // is unknown: the graph inputs the condition comes from pick the branch.
+        if reasons.is_some() && def.is_some() && node.op_type == "If" {
+            let unknown = cost.macs.is_none() || cost.ops.is_none() || outputs.iter().any(|f| !f.is_concrete());
+            if let Some(src) = unknown.then(|| condition_sources(g, node)).flatten() {
+                let said = condition_text(g, node, &src);
+                for m in merged.iter_mut().flatten() {
+                    m.push_str(&said);
+                }
+                needs.extend(src.inputs);
+            }
+        }
         if let Some(f) = &failure {
             if def.is_some() {
                 diags.push(Diagnostic::new(codes::SHAPE_FAILED, f.clone()).at_node(&node.name));
@@ -429,7 +461,10 @@ fn infer_graph(
                         (Some(f), _) if !ranked.get(k).copied().unwrap_or(true) => texts.get(f.clone()),
                         (_, Some(Some(m))) => texts.get(m.clone()),
                         _ => match sized_by_values(g, node, &fact) {
-                            Some(text) => texts.get(text),
+                            Some((text, settable)) => {
+                                needs.extend(settable);
+                                texts.get(text)
+                            }
                             None => texts.for_fact(&fact),
                         },
                     };
@@ -487,12 +522,47 @@ fn infer_graph(
 /// axis) when saying what leaves an output dim unknown.
 const SIZE_LIKE_ELEMENTS: u64 = 64;
 
+/// For an If (the caller checks the op) whose condition is neither a constant nor folded:
+/// where the condition comes from (`value_sources`).
+fn condition_sources(g: &Graph, node: &crate::ir::Node) -> Option<Sources> {
+    let c = node.inputs.first().copied().flatten()?;
+    if !value_unknown(&g.values[c.index()]) {
+        return None;
+    }
+    Some(value_sources(g, &[c]))
+}
+
+/// What an If's unknown condition is made of, to follow its reason: the graph inputs that
+/// `--value` can set, the dims left symbolic that `--dim` can set, or that the data decides.
+fn condition_text(g: &Graph, node: &crate::ir::Node, src: &Sources) -> String {
+    let cond = node.inputs.first().copied().flatten();
+    match &src.inputs[..] {
+        [one] if Some(*one) == cond => format!("; it is {}{}", inputs_named(g, &src.inputs), src.hint()),
+        _ => format!("; it is {}{}", src.origin(g), src.hint()),
+    }
+}
+
+/// `graph input `a``, `graph inputs `a` and `b``.
+fn inputs_named(g: &Graph, ids: &[ValueId]) -> String {
+    let what = if ids.len() == 1 { "graph input" } else { "graph inputs" };
+    format!("{what} {}", quoted(g, ids))
+}
+
+/// Names of values, quoted and listed: `` `a`, `b` and `c` ``.
+fn quoted(g: &Graph, ids: &[ValueId]) -> String {
+    listed(
+        &ids.iter()
+            .map(|v| format!("`{}`", g.values[v.index()].name))
+            .collect::<Vec<_>>(),
+    )
+}
+
 /// Why an output of a node whose inputs all have known shapes still has an unknown dim: its
 /// size comes from the values of small inputs that are not constants (Range's limits,
 /// Reshape's or Expand's shape, Tile's repeats, Resize's sizes). Names them, and the main-graph
 /// inputs their values come from, which `--value` can set. None when the unknown dim came in
 /// with an input, or when no input looks like a size: the shape-based reason then stands.
-fn sized_by_values(g: &Graph, node: &crate::ir::Node, fact: &Fact) -> Option<String> {
+fn sized_by_values(g: &Graph, node: &crate::ir::Node, fact: &Fact) -> Option<(String, Vec<ValueId>)> {
     if !is_tensor(fact) || !fact.shape.dims()?.iter().any(|d| matches!(d, crate::ir::Dim::Unknown)) {
         return None;
     }
@@ -510,49 +580,28 @@ fn sized_by_values(g: &Graph, node: &crate::ir::Node, fact: &Fact) -> Option<Str
     if sizes.is_empty() {
         return None;
     }
-    let quoted = |ids: &[ValueId]| {
-        listed(
-            &ids.iter()
-                .map(|v| format!("`{}`", g.values[v.index()].name))
-                .collect::<Vec<_>>(),
-        )
-    };
-    let inputs_named = |ids: &[ValueId]| match ids {
-        [_] => format!("graph input {}", quoted(ids)),
-        _ => format!("graph inputs {}", quoted(ids)),
-    };
     let (direct, computed): (Vec<ValueId>, Vec<ValueId>) = sizes.iter().partition(|v| g.inputs.contains(v));
     let mut parts = Vec::new();
-    let mut settable = direct.clone();
     if !direct.is_empty() {
-        parts.push(inputs_named(&direct));
+        parts.push(inputs_named(g, &direct));
     }
+    let mut src = Sources::default();
     if !computed.is_empty() {
-        let (sources, from_data) = value_sources(g, &computed);
-        parts.push(match (sources.is_empty(), from_data) {
-            (true, _) => format!("{}, computed at run time", quoted(&computed)),
-            (false, false) => format!("{}, computed from {}", quoted(&computed), inputs_named(&sources)),
-            (false, true) => format!(
-                "{}, computed at run time, partly from {}",
-                quoted(&computed),
-                inputs_named(&sources)
-            ),
-        });
-        settable.extend(sources.iter().filter(|v| !direct.contains(v)));
+        src = value_sources(g, &computed);
+        parts.push(format!("{}, {}", quoted(g, &computed), src.origin(g)));
     }
-    let hint = match settable.len() {
-        0 => "",
-        1 => " (set it with --value NAME=…)",
-        _ => " (set them with --value NAME=…)",
-    };
-    Some(if computed.is_empty() {
+    src.inputs.retain(|v| !direct.contains(v));
+    src.inputs.splice(0..0, direct.iter().copied());
+    let hint = src.hint();
+    let text = if computed.is_empty() {
         format!(
             "sized by the value of {}, which the file does not give{hint}",
-            inputs_named(&direct)
+            inputs_named(g, &direct)
         )
     } else {
         format!("sized by the value of {}{hint}", parts.join(" and of "))
-    })
+    };
+    Some((text, src.inputs))
 }
 
 /// A value whose contents the file does not give and inference did not work out, wholly or
@@ -575,20 +624,73 @@ fn size_like(f: &Fact) -> bool {
 /// a long search.
 const SOURCE_WALK_LIMIT: usize = 256;
 
-/// The main-graph inputs whose values the values `start` are computed from, following
-/// producers through size-like tensors only, in the order met; and whether some part comes
-/// from elsewhere (a large tensor's data, an outer scope, or a walk cut at its limit).
-fn value_sources(g: &Graph, start: &[ValueId]) -> (Vec<ValueId>, bool) {
+/// Where the values of some size-like tensors come from, as far as the file says.
+#[derive(Default)]
+struct Sources {
+    /// Main-graph inputs, in the order met: `--value` sets them.
+    inputs: Vec<ValueId>,
+    /// Dims left symbolic that a value is an expression of (a dim read with Shape): `--dim`
+    /// sets them.
+    symbols: Vec<String>,
+    /// Whether some part comes from elsewhere: a large tensor's data, an outer scope, or a
+    /// walk cut at its limit.
+    from_data: bool,
+}
+
+impl Sources {
+    /// "computed from graph input `a` and symbolic dim `b`", "computed at run time[, partly
+    /// from …]".
+    fn origin(&self, g: &Graph) -> String {
+        let mut known = Vec::new();
+        if !self.inputs.is_empty() {
+            known.push(inputs_named(g, &self.inputs));
+        }
+        if !self.symbols.is_empty() {
+            let what = if self.symbols.len() == 1 {
+                "symbolic dim"
+            } else {
+                "symbolic dims"
+            };
+            let names: Vec<String> = self.symbols.iter().map(|s| format!("`{s}`")).collect();
+            known.push(format!("{what} {}", listed(&names)));
+        }
+        match (known.is_empty(), self.from_data) {
+            (true, _) => "computed at run time".into(),
+            (false, false) => format!("computed from {}", known.join(" and ")),
+            (false, true) => format!("computed at run time, partly from {}", known.join(" and ")),
+        }
+    }
+
+    /// The options that set what the value is computed from: " (set it with --value NAME=…)".
+    fn hint(&self) -> String {
+        let mut options = Vec::new();
+        if !self.inputs.is_empty() {
+            options.push("--value NAME=…");
+        }
+        if !self.symbols.is_empty() {
+            options.push("--dim NAME=…");
+        }
+        match (self.inputs.len() + self.symbols.len(), options.is_empty()) {
+            (_, true) => String::new(),
+            (1, false) => format!(" (set it with {})", options.join(" and ")),
+            _ => format!(" (set them with {})", options.join(" and ")),
+        }
+    }
+}
+
+/// Where the values `start` are computed from: following producers through size-like
+/// tensors only, the main-graph inputs met, and the symbols of values that are expressions
+/// of symbolic dims (a Shape read of a tensor whose dims are left symbolic).
+fn value_sources(g: &Graph, start: &[ValueId]) -> Sources {
     let mut stack: Vec<ValueId> = start.iter().rev().copied().collect();
     let mut seen: Vec<ValueId> = Vec::new();
-    let mut sources = Vec::new();
-    let mut from_data = false;
+    let mut src = Sources::default();
     while let Some(v) = stack.pop() {
         if seen.contains(&v) {
             continue;
         }
         if seen.len() >= SOURCE_WALK_LIMIT {
-            from_data = true;
+            src.from_data = true;
             break;
         }
         seen.push(v);
@@ -597,11 +699,23 @@ fn value_sources(g: &Graph, start: &[ValueId]) -> (Vec<ValueId>, bool) {
             continue;
         }
         if g.inputs.contains(&v) {
-            sources.push(v);
+            src.inputs.push(v);
             continue;
         }
+        // A value worked out as an expression of symbolic dims: those dims decide it.
+        if let Some(k) = value.konst.as_deref() {
+            let symbols: Vec<String> = k.as_dims().iter().flat_map(|d| d.symbols()).collect();
+            if !symbols.is_empty() && k.as_dims().iter().all(|d| !matches!(d, crate::ir::Dim::Unknown)) {
+                for s in symbols {
+                    if !src.symbols.contains(&s) {
+                        src.symbols.push(s);
+                    }
+                }
+                continue;
+            }
+        }
         let Some(p) = value.producer else {
-            from_data = true;
+            src.from_data = true;
             continue;
         };
         let producer = g.node(p);
@@ -613,11 +727,11 @@ fn value_sources(g: &Graph, start: &[ValueId]) -> (Vec<ValueId>, bool) {
             if size_like(&read.fact) {
                 stack.push(u);
             } else {
-                from_data = true;
+                src.from_data = true;
             }
         }
     }
-    (sources, from_data)
+    src
 }
 
 /// `a`, `a and b`, `a, b and c`.

@@ -846,7 +846,7 @@ fn if_and_loop_outputs_that_change_shape_say_why() {
     // the file lists else_branch first.
     assert_eq!(
         r["y"],
-        "the If's then_branch gives [2,3] and its else_branch [4,3], and its condition is not a constant"
+        "the If's then_branch gives [2,3] and its else_branch [4,3], and its condition is not a constant; it is graph input `c` (set it with --value NAME=…)"
     );
     assert_eq!(r["z"], "depends on a tensor whose shape is unknown");
     // The carried [2,3] leaves the first iteration as [4,3] (x appended along axis 0).
@@ -858,6 +858,127 @@ fn if_and_loop_outputs_that_change_shape_say_why() {
     // A known condition runs one branch: the else branch's [4,3].
     let r = reasons(&["--value", "c=0"]);
     assert!(!r.contains_key("y") && !r.contains_key("z"), "{r:?}");
+}
+
+/// An If whose condition is computed from an input's value (a sample rate compared with the
+/// one a branch was built for, as audio models choose a branch) names that input for
+/// `--value` in the reason, in `model.needs_values` and `summary.needs_values`, and in the
+/// hints beside the unknown figures. Per the ONNX operator specification the If runs
+/// `then_branch` when the condition is true, so `--value rate=16000` selects the branch whose
+/// MatMul is x [1,4] · [4,4]: 16 MACs (MatMul MACs = M·K·N, common practice), and
+/// `--value rate=8000` the other, [1,4] · [4,8]: 32 MACs. A condition read from a dim left
+/// symbolic names the dim for `--dim` instead.
+#[test]
+fn an_if_condition_read_from_an_input_names_the_value_to_set() {
+    use tilecut::ir::DType;
+    use tilecut::onnx::builder::{attr, i64_tensor, GraphBuilder, ModelBuilder};
+    let d = tmp();
+    let mut m = ModelBuilder::new("rate_switch", 17);
+    m.graph.input("rate", DType::I64, &[]);
+    m.graph.input("x", DType::F32, &[1.into(), 4.into()]);
+    m.graph.initializer(i64_tensor("wide_rate", &[], &[16000]));
+    m.graph.initializer(f32_init("w_wide", &[4, 4]));
+    m.graph.initializer(f32_init("w_narrow", &[4, 8]));
+    m.graph.node("Equal", &["rate", "wide_rate"], &["is_wide"]);
+    let mut then_g = GraphBuilder::new("wide");
+    then_g.node("MatMul", &["x", "w_wide"], &["t"]);
+    then_g.output("t", DType::F32, &[]);
+    let mut else_g = GraphBuilder::new("narrow");
+    else_g.node("MatMul", &["x", "w_narrow"], &["e"]);
+    else_g.output("e", DType::F32, &[]);
+    let node = m.graph.node("If", &["is_wide"], &["y"]);
+    node.attribute.push(attr::graph("then_branch", then_g.graph));
+    node.attribute.push(attr::graph("else_branch", else_g.graph));
+    m.graph.node("Relu", &["y"], &["z"]);
+    m.graph.output("z", DType::F32, &[]);
+    let p = d.path().join("rate_switch.onnx");
+    std::fs::write(&p, m.encode()).expect("write");
+    let ps = p.to_str().expect("utf8");
+
+    let v = inspect_json(ps, &[]);
+    assert_eq!(
+        unknown_reasons(&v)["y"],
+        "the If's then_branch gives [1,4] and its else_branch [1,8], and its condition is not a constant; it is computed from graph input `rate` (set it with --value NAME=…)"
+    );
+    assert_eq!(v["model"]["needs_values"], serde_json::json!(["rate"]));
+    assert!(v["model"]["activation_bytes"].is_null(), "{}", v["model"]);
+    let (code, out, err) = run(&["inspect", ps]);
+    assert_eq!(code, 0, "{err}");
+    let row = out
+        .lines()
+        .find(|l| l.contains("unknown until fixed"))
+        .expect("a fix row");
+    assert!(row.contains("--value rate=…"), "{row}");
+
+    let args = ["analyze", ps, "--target", "wide-array"];
+    let (code, out, err) = run(&[&args[..], &["--format", "json"]].concat());
+    assert_eq!(code, 0, "{err}");
+    let j: serde_json::Value = serde_json::from_str(&out).expect("json");
+    assert!(j["summary"]["est_latency_us"].is_null(), "{out}");
+    assert_eq!(j["summary"]["needs_values"], serde_json::json!(["rate"]));
+    let (code, out, err) = run(&args);
+    assert_eq!(code, 0, "{err}");
+    let row = out
+        .lines()
+        .find(|l| l.contains("est. latency (min-cut plan)"))
+        .expect("latency row");
+    assert!(row.contains("unknown (fix --value rate=…)"), "{row}");
+
+    for (rate, macs) in [("rate=16000", 16), ("rate=8000", 32)] {
+        let v = inspect_json(ps, &["--value", rate]);
+        assert_eq!(v["model"]["macs"], macs, "{rate}: {}", v["model"]);
+        assert_eq!(v["model"]["needs_values"], serde_json::json!([]));
+        assert!(unknown_reasons(&v).is_empty(), "{rate}: {}", v["unknown_shapes"]);
+        let (code, out, err) = run(&[&args[..], &["--value", rate, "--format", "json"]].concat());
+        assert_eq!(code, 0, "{err}");
+        let j: serde_json::Value = serde_json::from_str(&out).expect("json");
+        assert!(j["summary"]["est_latency_us"].is_number(), "{out}");
+        assert_eq!(j["summary"]["needs_values"], serde_json::json!([]));
+    }
+
+    // A condition read from a dim left symbolic (Equal(Gather(Shape(x), 1), 100), as exporters
+    // write a branch on a length) names the dim for `--dim`; once it is set, Shape gives the
+    // dim's value and the If picks its branch.
+    let mut m = ModelBuilder::new("length_switch", 17);
+    m.graph.input("x", DType::F32, &[1.into(), "frames".into()]);
+    m.graph.initializer(i64_tensor("axis_one", &[], &[1]));
+    m.graph.initializer(i64_tensor("hundred", &[], &[100]));
+    m.graph.node("Shape", &["x"], &["dims"]);
+    m.graph.node("Gather", &["dims", "axis_one"], &["length"]);
+    m.graph.node("Equal", &["length", "hundred"], &["is_hundred"]);
+    let mut then_g = GraphBuilder::new("keep");
+    then_g.node("Identity", &["x"], &["t"]);
+    then_g.output("t", DType::F32, &[]);
+    let mut else_g = GraphBuilder::new("twice");
+    else_g
+        .node("Concat", &["x", "x"], &["e"])
+        .attribute
+        .push(attr::int("axis", 0));
+    else_g.output("e", DType::F32, &[]);
+    let node = m.graph.node("If", &["is_hundred"], &["y"]);
+    node.attribute.push(attr::graph("then_branch", then_g.graph));
+    node.attribute.push(attr::graph("else_branch", else_g.graph));
+    m.graph.output("y", DType::F32, &[]);
+    let p = d.path().join("length_switch.onnx");
+    std::fs::write(&p, m.encode()).expect("write");
+    let ps = p.to_str().expect("utf8");
+    let v = inspect_json(ps, &[]);
+    assert_eq!(
+        unknown_reasons(&v)["y"],
+        "the If's then_branch gives [1,frames] and its else_branch [2,frames], and its condition is not a constant; it is computed from symbolic dim `frames` (set it with --dim NAME=…)"
+    );
+    assert_eq!(v["model"]["needs_values"], serde_json::json!([]));
+    assert_eq!(v["model"]["unknown_because"], serde_json::json!(["frames"]));
+    // frames = 100 takes then_branch: y is x, [1,100].
+    let v = inspect_json(ps, &["--dim", "frames=100"]);
+    assert!(unknown_reasons(&v).is_empty(), "{}", v["unknown_shapes"]);
+    let y = v["tensors"]
+        .as_array()
+        .expect("list")
+        .iter()
+        .find(|t| t["name"] == "y")
+        .expect("y");
+    assert_eq!(y["shape"], serde_json::json!([1, 100]));
 }
 
 /// A sequence or an optional is sized by what it holds. The ONNX conformance model
@@ -2198,7 +2319,13 @@ fn sizes_read_from_values_name_the_inputs_to_set() {
     let p = d.path().join("sizes.onnx");
     std::fs::write(&p, m.encode()).expect("write");
     let ps = p.to_str().expect("utf8");
-    let r = unknown_reasons(&inspect_json(ps, &[]));
+    let v = inspect_json(ps, &[]);
+    // Every input whose value some size is read from, once each and sorted.
+    assert_eq!(
+        v["model"]["needs_values"],
+        serde_json::json!(["limit", "rows", "start", "step"])
+    );
+    let r = unknown_reasons(&v);
     assert_eq!(
         r["r"],
         "sized by the value of graph inputs `start`, `limit` and `step`, which the file does not give (set them with --value NAME=…)"
@@ -2230,6 +2357,8 @@ fn sizes_read_from_values_name_the_inputs_to_set() {
     // ceil((10 - 1) / 2) = 5 elements; 24 elements as (3, -1) = (3, 8).
     assert_eq!(shape("r"), serde_json::json!([5]));
     assert_eq!(shape("y"), serde_json::json!([3, 8]));
+    // The count computed from the data is left: no input sets it.
+    assert_eq!(v["model"]["needs_values"], serde_json::json!([]));
     let r = unknown_reasons(&v);
     assert!(!r.contains_key("r") && !r.contains_key("y"), "{r:?}");
     assert_eq!(r["data_sized"], "sized by the value of `n`, computed at run time");

@@ -648,6 +648,9 @@ pub struct Model {
     /// Sizes the user assumed for data-dependent dims (`--dim what@node=N`: how many boxes a
     /// NonMaxSuppression keeps, …), by the name tilecut gives such a dim.
     pub assumed_sizes: BTreeMap<String, u64>,
+    /// Main-graph inputs whose values the file does not give and on which unknown sizes or
+    /// an If's branch depend (`--value` sets them), sorted; filled by inference.
+    pub needs_values: Vec<String>,
 }
 
 impl Model {

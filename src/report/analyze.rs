@@ -11,7 +11,7 @@
 //! transfer_us}, `summary` {coverage_macs, coverage_nodes, accel_partitions, boundary_bytes,
 //! transfers, objective_us, mincut_us, est_latency_us, cpu_only_latency_us, greedy_us (these
 //! three null while some node's work depends on an unknown dim), unknown_cost_nodes,
-//! needs_dims, needs_inputs, columns_budget, columns_used, columns_free, resident, reconfigure_us},
+//! needs_dims, needs_inputs, needs_values, columns_budget, columns_used, columns_free, resident, reconfigure_us},
 //! `op_summary[]` {op, accel, cpu, const}, `blockers[]` {code, nodes, macs, example},
 //! `what_if` (null unless `--assume-*` was given) {assumptions[], summary, delta
 //! {coverage_macs, coverage_nodes, accel_partitions, transfers, boundary_bytes,
@@ -235,6 +235,8 @@ pub struct Summary {
     /// When figures are unknown, the graph inputs the file declares with unknown dims (`-1`,
     /// missing, `?`): `--input` sizes them.
     pub needs_inputs: Vec<String>,
+    /// Inputs whose values size tensors or pick an If's branch, which `--value` gives.
+    pub needs_values: Vec<String>,
     /// Columns the accelerator partitions need, of the budget, and how many stay free.
     pub columns_budget: u64,
     pub columns_used: u64,
@@ -397,6 +399,11 @@ pub fn summary(i: &Inputs) -> Summary {
     needs_dims.sort();
     needs_dims.dedup();
     let needs_inputs = if known { Vec::new() } else { super::inputs_to_size(g) };
+    let needs_values = if known {
+        Vec::new()
+    } else {
+        i.model.needs_values.clone()
+    };
     Summary {
         macs: macs_known.then_some(total_macs),
         accel_macs,
@@ -417,6 +424,7 @@ pub fn summary(i: &Inputs) -> Summary {
         unknown_cost_nodes: i.costs.unknown_work.len(),
         needs_dims,
         needs_inputs,
+        needs_values,
         columns_budget: i.array.columns_budget,
         columns_used: i.array.columns_used,
         columns_free: i.array.columns_free,
@@ -662,7 +670,7 @@ fn micros(x: Option<f64>, s: &Summary) -> String {
 
 /// The `--dim`s (and kin) and `--input`s that would make the unknown figures known.
 fn fix_hints(s: &Summary) -> Option<String> {
-    let hints = super::fix_hints(&s.needs_dims, &s.needs_inputs);
+    let hints = super::fix_hints(&s.needs_dims, &s.needs_inputs, &s.needs_values);
     (!hints.is_empty()).then(|| hints.join(" "))
 }
 

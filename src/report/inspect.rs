@@ -3,11 +3,13 @@
 //! JSON shape (schema in `schemas/inspect.schema.json`, version `INSPECT_SCHEMA_VERSION`):
 //! `schema_version`; `model` {path, ir_version, producer, opsets[{domain, version}], nodes,
 //! nodes_in_subgraphs, functions[], params, weight_bytes, macs, ops, activation_bytes,
-//! unknown_because[]}; `inputs[]`/`outputs[]` {name, dtype, shape}; `op_counts[]` {op, count};
+//! unknown_because[], needs_values[]}; `inputs[]`/`outputs[]` {name, dtype, shape}; `op_counts[]` {op, count};
 //! `tensors[]` {name, dtype, shape, kind, producer, bytes}; `unknown_shapes[]` {tensor, node,
 //! reason}; `warnings[]` {code, node?, tensor?, message}. A shape is an array of integers
 //! (known), strings (symbolic) and nulls (unknown), or null when even the rank is unknown;
-//! a figure that depends on an unknown dim is null and `unknown_because` names the dims.
+//! a figure that depends on an unknown dim is null and `unknown_because` names the dims;
+//! `needs_values` names the inputs whose values size tensors or pick an If's branch and that
+//! the file does not give (`--value` sets them).
 
 use std::collections::BTreeMap;
 use std::io::Write;
@@ -64,6 +66,7 @@ pub struct ModelSummary {
     pub ops: Option<u64>,
     pub activation_bytes: Option<u64>,
     pub unknown_because: Vec<String>,
+    pub needs_values: Vec<String>,
 }
 
 #[derive(Serialize, Debug, Clone)]
@@ -423,6 +426,7 @@ pub fn build<'a>(model: &'a Model, diags: &[Diagnostic], reasons: &'a UnknownRea
             ops,
             activation_bytes,
             unknown_because: because.iter().map(|d| d.to_string()).collect(),
+            needs_values: model.needs_values.clone(),
         },
         inputs: g.inputs.iter().map(port).collect(),
         outputs: g.outputs.iter().map(port).collect(),
@@ -532,14 +536,16 @@ pub fn render_table(r: &InspectReport, out: &mut dyn Write) -> std::io::Result<(
             },
         );
     }
-    // What fixes the unknown figures: the symbolic dims they depend on, and the graph inputs
-    // declared with dims the file leaves unknown (`-1`, missing), which only `--input` sizes.
-    let inputs: &[String] = if m.macs.is_none() || m.ops.is_none() || m.activation_bytes.is_none() {
-        &r.inputs_to_size
-    } else {
-        &[]
-    };
-    let fixes = super::fix_hints(&m.unknown_because, inputs);
+    // What fixes the unknown figures: the symbolic dims they depend on, the graph inputs
+    // declared with dims the file leaves unknown (`-1`, missing), which only `--input` sizes,
+    // and the inputs whose values size tensors, which only `--value` gives.
+    let (inputs, values): (&[String], &[String]) =
+        if m.macs.is_none() || m.ops.is_none() || m.activation_bytes.is_none() {
+            (&r.inputs_to_size, &m.needs_values)
+        } else {
+            (&[], &[])
+        };
+    let fixes = super::fix_hints(&m.unknown_because, inputs, values);
     if !fixes.is_empty() {
         kv.push(KeyValue {
             key: "unknown until fixed".into(),

@@ -71,10 +71,12 @@ pub(crate) fn inputs_to_size(g: &crate::ir::Graph) -> Vec<String> {
 }
 
 /// The options that would make unknown figures known: a `--dim` (or `--loop-trips`) per
-/// symbol they depend on, an `--input` per input declared with unknown dims.
-pub(crate) fn fix_hints(dims: &[String], inputs: &[String]) -> Vec<String> {
+/// symbol they depend on, an `--input` per input declared with unknown dims, a `--value` per
+/// input whose value sizes tensors or picks an If's branch.
+pub(crate) fn fix_hints(dims: &[String], inputs: &[String], values: &[String]) -> Vec<String> {
     dims.iter()
         .map(|d| crate::text::fix_hint(d))
         .chain(inputs.iter().map(|n| format!("--input {n}=…")))
+        .chain(values.iter().map(|n| format!("--value {n}=…")))
         .collect()
 }

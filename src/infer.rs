@@ -430,9 +430,10 @@ fn infer_graph(
         };
         // The context borrows the graph, which the outputs below are written into.
         drop(ctx);
-        // An If of the main graph whose condition is not known, while some output or its cost
-        // is unknown: the graph inputs the condition comes from pick the branch.
-        if reasons.is_some() && def.is_some() && node.op_type == "If" {
+        // An If of the main graph whose condition is not known (`merge_reasons` then gives a
+        // slot per output), while some output or its cost is unknown: what the condition is
+        // computed from picks the branch.
+        if reasons.is_some() && !merged.is_empty() && node.op_type == "If" {
             let unknown = cost.macs.is_none() || cost.ops.is_none() || outputs.iter().any(|f| !f.is_concrete());
             if let Some(src) = unknown.then(|| condition_sources(g, node)).flatten() {
                 let said = condition_text(g, node, &src);

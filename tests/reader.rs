@@ -324,34 +324,12 @@ fn negative_dims() {
     let (code, out, _) = run(&["inspect", p.to_str().expect("utf8"), "--format", "json"]);
     assert_eq!(code, 0);
     assert!(out.contains("dim-unknown"));
-    // The table says what sizes the figures that depend on it.
-    let (code, out, _) = run(&["inspect", p.to_str().expect("utf8")]);
-    assert_eq!(code, 0);
-    let row = out
-        .lines()
-        .find(|l| l.contains("unknown until fixed"))
-        .expect("a fix row");
-    assert!(row.contains("--input x=…"), "{row}");
-    // So does analyze, in JSON and beside each unknown latency.
-    let args = ["analyze", p.to_str().expect("utf8"), "--target", "wide-array"];
-    let (code, out, err) = run(&[&args[..], &["--format", "json"]].concat());
-    assert_eq!(code, 0, "{err}");
-    let j: serde_json::Value = serde_json::from_str(&out).expect("json");
-    assert!(j["summary"]["est_latency_us"].is_null(), "{out}");
-    assert_eq!(j["summary"]["needs_inputs"], serde_json::json!(["x"]));
-    let (code, out, err) = run(&args);
-    assert_eq!(code, 0, "{err}");
-    let row = out
-        .lines()
-        .find(|l| l.contains("est. latency (min-cut plan)"))
-        .expect("latency row");
-    assert!(row.contains("unknown (fix --input x=…)"), "{row}");
+    // The table says what sizes the figures that depend on it; so does analyze, in JSON and
+    // beside each unknown latency.
+    let ps = p.to_str().expect("utf8");
+    assert_fix_named(ps, "needs_inputs", serde_json::json!(["x"]), "--input x=…");
     // Once sized, nothing is left to fix.
-    let (code, out, err) = run(&[&args[..], &["--input", "x=8", "--format", "json"]].concat());
-    assert_eq!(code, 0, "{err}");
-    let j: serde_json::Value = serde_json::from_str(&out).expect("json");
-    assert!(j["summary"]["est_latency_us"].is_number(), "{out}");
-    assert_eq!(j["summary"]["needs_inputs"], serde_json::json!([]));
+    assert_fixed(ps, &["--input", "x=8"], "needs_inputs");
     // A negative initializer dim is an error too.
     let mut t = f32_init("w", &[2]);
     t.dims = vec![-2];
@@ -778,6 +756,42 @@ fn inspect_json(model: &str, extra: &[&str]) -> serde_json::Value {
     serde_json::from_str(&out).expect("json")
 }
 
+/// The figures of `model` are unknown, and every report names `hint` as the fix: `inspect`'s
+/// "unknown until fixed" row, `analyze`'s `summary.<key>` (which lists `names`) and its
+/// latency row.
+fn assert_fix_named(model: &str, key: &str, names: serde_json::Value, hint: &str) {
+    let (code, out, err) = run(&["inspect", model]);
+    assert_eq!(code, 0, "{err}");
+    let row = out
+        .lines()
+        .find(|l| l.contains("unknown until fixed"))
+        .expect("a fix row");
+    assert!(row.contains(hint), "{row}");
+    let args = ["analyze", model, "--target", "wide-array"];
+    let (code, out, err) = run(&[&args[..], &["--format", "json"]].concat());
+    assert_eq!(code, 0, "{err}");
+    let j: serde_json::Value = serde_json::from_str(&out).expect("json");
+    assert!(j["summary"]["est_latency_us"].is_null(), "{out}");
+    assert_eq!(j["summary"][key], names);
+    let (code, out, err) = run(&args);
+    assert_eq!(code, 0, "{err}");
+    let row = out
+        .lines()
+        .find(|l| l.contains("est. latency (min-cut plan)"))
+        .expect("latency row");
+    assert!(row.contains(&format!("unknown (fix {hint})")), "{row}");
+}
+
+/// With `extra` given, `analyze` of `model` knows its latency and `summary.<key>` is empty.
+fn assert_fixed(model: &str, extra: &[&str], key: &str) {
+    let args = ["analyze", model, "--target", "wide-array", "--format", "json"];
+    let (code, out, err) = run(&[&args[..], extra].concat());
+    assert_eq!(code, 0, "{err}");
+    let j: serde_json::Value = serde_json::from_str(&out).expect("json");
+    assert!(j["summary"]["est_latency_us"].is_number(), "{out}");
+    assert_eq!(j["summary"][key], serde_json::json!([]));
+}
+
 /// A report's `unknown_shapes[]` as tensor → reason.
 fn unknown_reasons(report: &serde_json::Value) -> std::collections::BTreeMap<String, String> {
     report["unknown_shapes"]
@@ -902,38 +916,14 @@ fn an_if_condition_read_from_an_input_names_the_value_to_set() {
     );
     assert_eq!(v["model"]["needs_values"], serde_json::json!(["rate"]));
     assert!(v["model"]["activation_bytes"].is_null(), "{}", v["model"]);
-    let (code, out, err) = run(&["inspect", ps]);
-    assert_eq!(code, 0, "{err}");
-    let row = out
-        .lines()
-        .find(|l| l.contains("unknown until fixed"))
-        .expect("a fix row");
-    assert!(row.contains("--value rate=…"), "{row}");
-
-    let args = ["analyze", ps, "--target", "wide-array"];
-    let (code, out, err) = run(&[&args[..], &["--format", "json"]].concat());
-    assert_eq!(code, 0, "{err}");
-    let j: serde_json::Value = serde_json::from_str(&out).expect("json");
-    assert!(j["summary"]["est_latency_us"].is_null(), "{out}");
-    assert_eq!(j["summary"]["needs_values"], serde_json::json!(["rate"]));
-    let (code, out, err) = run(&args);
-    assert_eq!(code, 0, "{err}");
-    let row = out
-        .lines()
-        .find(|l| l.contains("est. latency (min-cut plan)"))
-        .expect("latency row");
-    assert!(row.contains("unknown (fix --value rate=…)"), "{row}");
+    assert_fix_named(ps, "needs_values", serde_json::json!(["rate"]), "--value rate=…");
 
     for (rate, macs) in [("rate=16000", 16), ("rate=8000", 32)] {
         let v = inspect_json(ps, &["--value", rate]);
         assert_eq!(v["model"]["macs"], macs, "{rate}: {}", v["model"]);
         assert_eq!(v["model"]["needs_values"], serde_json::json!([]));
         assert!(unknown_reasons(&v).is_empty(), "{rate}: {}", v["unknown_shapes"]);
-        let (code, out, err) = run(&[&args[..], &["--value", rate, "--format", "json"]].concat());
-        assert_eq!(code, 0, "{err}");
-        let j: serde_json::Value = serde_json::from_str(&out).expect("json");
-        assert!(j["summary"]["est_latency_us"].is_number(), "{out}");
-        assert_eq!(j["summary"]["needs_values"], serde_json::json!([]));
+        assert_fixed(ps, &["--value", rate], "needs_values");
     }
 
     // A condition read from a dim left symbolic (Equal(Gather(Shape(x), 1), 100), as exporters

@@ -822,18 +822,10 @@ fn if_and_loop_outputs_that_change_shape_say_why() {
     m.graph.input("c", DType::Bool, &[]);
     m.graph.input("n", DType::I64, &[]);
     m.graph.input("x", DType::F32, &[2.into(), 3.into()]);
-    let mut then_g = GraphBuilder::new("keep");
-    then_g.node("Identity", &["x"], &["t"]);
-    then_g.output("t", DType::F32, &[]);
-    let mut else_g = GraphBuilder::new("twice");
-    else_g
-        .node("Concat", &["x", "x"], &["e"])
-        .attribute
-        .push(attr::int("axis", 0));
-    else_g.output("e", DType::F32, &[]);
+    let (then_g, else_g) = keep_or_twice();
     let node = m.graph.node("If", &["c"], &["y"]);
-    node.attribute.push(attr::graph("else_branch", else_g.graph));
-    node.attribute.push(attr::graph("then_branch", then_g.graph));
+    node.attribute.push(attr::graph("else_branch", else_g));
+    node.attribute.push(attr::graph("then_branch", then_g));
     m.graph.node("Relu", &["y"], &["z"]);
     let mut body = GraphBuilder::new("grow");
     body.input("i", DType::I64, &[]);
@@ -872,6 +864,23 @@ fn if_and_loop_outputs_that_change_shape_say_why() {
     // A known condition runs one branch: the else branch's [4,3].
     let r = reasons(&["--value", "c=0"]);
     assert!(!r.contains_key("y") && !r.contains_key("z"), "{r:?}");
+}
+
+/// If branches over the outer `x`: the first gives `x` itself, the second `x` twice along
+/// axis 0 (Concat), so their shapes differ in dim 0.
+fn keep_or_twice() -> (onnx::GraphProto, onnx::GraphProto) {
+    use tilecut::ir::DType;
+    use tilecut::onnx::builder::{attr, GraphBuilder};
+    let mut keep = GraphBuilder::new("keep");
+    keep.node("Identity", &["x"], &["t"]);
+    keep.output("t", DType::F32, &[]);
+    let mut twice = GraphBuilder::new("twice");
+    twice
+        .node("Concat", &["x", "x"], &["e"])
+        .attribute
+        .push(attr::int("axis", 0));
+    twice.output("e", DType::F32, &[]);
+    (keep.graph, twice.graph)
 }
 
 /// An If whose condition is computed from an input's value (a sample rate compared with the
@@ -936,18 +945,10 @@ fn an_if_condition_read_from_an_input_names_the_value_to_set() {
     m.graph.node("Shape", &["x"], &["dims"]);
     m.graph.node("Gather", &["dims", "axis_one"], &["length"]);
     m.graph.node("Equal", &["length", "hundred"], &["is_hundred"]);
-    let mut then_g = GraphBuilder::new("keep");
-    then_g.node("Identity", &["x"], &["t"]);
-    then_g.output("t", DType::F32, &[]);
-    let mut else_g = GraphBuilder::new("twice");
-    else_g
-        .node("Concat", &["x", "x"], &["e"])
-        .attribute
-        .push(attr::int("axis", 0));
-    else_g.output("e", DType::F32, &[]);
+    let (then_g, else_g) = keep_or_twice();
     let node = m.graph.node("If", &["is_hundred"], &["y"]);
-    node.attribute.push(attr::graph("then_branch", then_g.graph));
-    node.attribute.push(attr::graph("else_branch", else_g.graph));
+    node.attribute.push(attr::graph("then_branch", then_g));
+    node.attribute.push(attr::graph("else_branch", else_g));
     m.graph.output("y", DType::F32, &[]);
     let p = d.path().join("length_switch.onnx");
     std::fs::write(&p, m.encode()).expect("write");

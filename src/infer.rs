@@ -705,8 +705,9 @@ fn value_sources(g: &Graph, start: &[ValueId]) -> Sources {
         }
         // A value worked out as an expression of symbolic dims: those dims decide it.
         if let Some(k) = value.konst.as_deref() {
-            let symbols: Vec<String> = k.as_dims().iter().flat_map(|d| d.symbols()).collect();
-            if !symbols.is_empty() && k.as_dims().iter().all(|d| !matches!(d, crate::ir::Dim::Unknown)) {
+            let dims = k.as_dims();
+            let symbols: Vec<String> = dims.iter().flat_map(|d| d.symbols()).collect();
+            if !symbols.is_empty() && dims.iter().all(|d| !matches!(d, crate::ir::Dim::Unknown)) {
                 for s in symbols {
                     if !src.symbols.contains(&s) {
                         src.symbols.push(s);

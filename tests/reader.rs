@@ -792,6 +792,17 @@ fn assert_fixed(model: &str, extra: &[&str], key: &str) {
     assert_eq!(j["summary"][key], serde_json::json!([]));
 }
 
+/// The `tensors[]` row of an `inspect` report named `name`.
+fn tensor_row(report: &serde_json::Value, name: &str) -> serde_json::Value {
+    report["tensors"]
+        .as_array()
+        .expect("tensors")
+        .iter()
+        .find(|t| t["name"] == name)
+        .cloned()
+        .unwrap_or_else(|| panic!("`{name}` is listed"))
+}
+
 /// A report's `unknown_shapes[]` as tensor → reason.
 fn unknown_reasons(report: &serde_json::Value) -> std::collections::BTreeMap<String, String> {
     report["unknown_shapes"]
@@ -963,13 +974,7 @@ fn an_if_condition_read_from_an_input_names_the_value_to_set() {
     // frames = 100 takes then_branch: y is x, [1,100].
     let v = inspect_json(ps, &["--dim", "frames=100"]);
     assert!(unknown_reasons(&v).is_empty(), "{}", v["unknown_shapes"]);
-    let y = v["tensors"]
-        .as_array()
-        .expect("list")
-        .iter()
-        .find(|t| t["name"] == "y")
-        .expect("y");
-    assert_eq!(y["shape"], serde_json::json!([1, 100]));
+    assert_eq!(tensor_row(&v, "y")["shape"], serde_json::json!([1, 100]));
 }
 
 /// A sequence or an optional is sized by what it holds. The ONNX conformance model
@@ -987,23 +992,14 @@ fn sequences_and_optionals_are_sized_by_what_they_hold() {
         assert_eq!(code, 0, "{err}");
         serde_json::from_str(&out).expect("json")
     };
-    let tensor = |v: &serde_json::Value, name: &str| -> serde_json::Value {
-        v["tensors"]
-            .as_array()
-            .expect("tensors")
-            .iter()
-            .find(|t| t["name"] == name)
-            .cloned()
-            .expect("listed")
-    };
     let v = inspect("test_if_seq.onnx");
-    assert_eq!(tensor(&v, "res")["bytes"], 20);
-    assert_eq!(tensor(&v, "res")["dtype"], "sequence(float32)");
+    assert_eq!(tensor_row(&v, "res")["bytes"], 20);
+    assert_eq!(tensor_row(&v, "res")["dtype"], "sequence(float32)");
     // The bool condition (1 byte) and the sequence.
     assert_eq!(v["model"]["activation_bytes"], 21);
     assert_eq!(v["unknown_shapes"], serde_json::json!([]));
     let v = inspect("test_optional_has_element_optional_input.onnx");
-    assert_eq!(tensor(&v, "optional_input")["bytes"], 16);
+    assert_eq!(tensor_row(&v, "optional_input")["bytes"], 16);
     assert_eq!(v["unknown_shapes"], serde_json::json!([]));
     let v = inspect("test_split_to_sequence_1.onnx");
     let seq = v["unknown_shapes"]
@@ -2336,15 +2332,7 @@ fn sizes_read_from_values_name_the_inputs_to_set() {
             "--value", "start=1", "--value", "limit=10", "--value", "step=2", "--value", "rows=3",
         ],
     );
-    let shape = |name: &str| {
-        v["tensors"]
-            .as_array()
-            .expect("list")
-            .iter()
-            .find(|t| t["name"] == name)
-            .map(|t| t["shape"].clone())
-            .expect("listed")
-    };
+    let shape = |name: &str| tensor_row(&v, name)["shape"].clone();
     // ceil((10 - 1) / 2) = 5 elements; 24 elements as (3, -1) = (3, 8).
     assert_eq!(shape("r"), serde_json::json!([5]));
     assert_eq!(shape("y"), serde_json::json!([3, 8]));

@@ -1716,9 +1716,21 @@ fn input_value(cx: &Cx, name: &str, fact: &Fact, text: &[String]) -> Result<Cons
 }
 
 fn non_negative_dims(cx: &Cx, name: &str, dims: &[i64]) -> Result<Vec<u64>, ReadError> {
+    within_rank_limit(cx, name, dims.len())?;
     dims.iter()
         .map(|&d| u64::try_from(d).map_err(|_| cx.err(format!("tensor `{name}` has negative dim {d}"))))
         .collect()
+}
+
+/// Refuses a tensor or declaration of more dims than any shape may have (`MAX_RANK`).
+fn within_rank_limit(cx: &Cx, name: &str, rank: usize) -> Result<(), ReadError> {
+    if rank > crate::ir::MAX_RANK {
+        return Err(cx.err(format!(
+            "tensor `{name}` has {rank} dims; tilecut reads shapes of at most {} dims",
+            crate::ir::MAX_RANK
+        )));
+    }
+    Ok(())
 }
 
 /// The IR view of a stored tensor; external payloads are located (and checked) but not read.
@@ -1919,6 +1931,7 @@ fn type_fact(cx: &Cx, name: &str, tp: &onnx::TypeProto) -> Result<Fact, ReadErro
 fn shape_of(cx: &Cx, name: &str, s: Option<&onnx::TensorShapeProto>) -> Result<Shape, ReadError> {
     use onnx::tensor_shape_proto::dimension::Value as D;
     let Some(s) = s else { return Ok(Shape::unknown()) };
+    within_rank_limit(cx, name, s.dim.len())?;
     let mut dims = Vec::with_capacity(s.dim.len());
     for d in &s.dim {
         dims.push(match &d.value {

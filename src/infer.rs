@@ -351,7 +351,22 @@ fn infer_graph(
         };
         let (facts, failure): (ops::Facts, Option<String>) = match def {
             Some(d) => match (d.infer)(&ctx) {
-                Ok(f) => (f, None),
+                // A shape built from a constant's values can be as long as the constant;
+                // past the limit it would be copied into every tensor downstream.
+                Ok(f) => match f
+                    .iter()
+                    .find_map(|o| o.shape.rank().filter(|&r| r > crate::ir::MAX_RANK))
+                {
+                    Some(r) => (
+                        ops::Facts::new(),
+                        Some(format!(
+                            "{} could not be inferred: {}",
+                            node.op_type,
+                            crate::ir::rank_within_limit(r as u64).err().unwrap_or_default()
+                        )),
+                    ),
+                    None => (f, None),
+                },
                 Err(e) => (
                     ops::Facts::new(),
                     Some(format!("{} could not be inferred: {e}", node.op_type)),

@@ -121,7 +121,7 @@ fn map_partition(g: &Graph, costs: &Costs, t: &Target, id: usize, nodes: &[NodeI
         .map(|s| {
             s.iter()
                 .map(|n| costs.accel_ps[n.index()].unwrap_or(0).saturating_mul(all_tiles))
-                .sum()
+                .fold(0, u64::saturating_add)
         })
         .collect();
     let wbytes: Vec<u64> = groups
@@ -130,7 +130,7 @@ fn map_partition(g: &Graph, costs: &Costs, t: &Target, id: usize, nodes: &[NodeI
         .collect();
     let local = f.compute_tile.local_memory_bytes.max(1);
     let mem_tiles: Vec<u64> = wbytes.iter().map(|b| b.div_ceil(local)).collect();
-    let total_weights: u64 = wbytes.iter().sum();
+    let total_weights: u64 = wbytes.iter().fold(0, |a, &b| a.saturating_add(b));
     let budget = budget_tiles.max(1);
     // Binary search on the bottleneck with memory-driven minimum tiles; if even one tile per
     // stage plus memory does not fit, drop the memory minimum (weights then go to buffer tiles).
@@ -156,7 +156,11 @@ fn map_partition(g: &Graph, costs: &Costs, t: &Target, id: usize, nodes: &[NodeI
         // More stages than tiles: stages share tiles round-robin (time-multiplexed).
         vec![1; work.len()]
     };
-    let used_tiles: u64 = if stages_fit { tiles.iter().sum() } else { budget };
+    let used_tiles: u64 = if stages_fit {
+        tiles.iter().fold(0, |a, &b| a.saturating_add(b))
+    } else {
+        budget
+    };
     let stage_ps: Vec<u64> = work.iter().zip(&tiles).map(|(w, p)| w / p.max(&1)).collect();
     let share = if stages_fit {
         1
@@ -164,7 +168,7 @@ fn map_partition(g: &Graph, costs: &Costs, t: &Target, id: usize, nodes: &[NodeI
         (work.len() as u64).div_ceil(budget)
     };
     let slowest = stage_ps.iter().copied().max().unwrap_or(0).saturating_mul(share);
-    let mut latency: u64 = stage_ps.iter().sum();
+    let mut latency: u64 = stage_ps.iter().fold(0, |a, &b| a.saturating_add(b));
     // Memory levels.
     let local_capacity = used_tiles * local;
     let buffer_capacity = used_tiles.div_ceil(f.compute_rows as u64).max(1) * f.buffer_tile.capacity_bytes;
@@ -267,7 +271,7 @@ pub fn map(g: &Graph, costs: &Costs, plan: &Plan, t: &Target, columns: Option<u3
         .filter(|p| p.side == Side::Accel)
         .map(|p| map_partition(g, costs, t, p.id, &p.nodes, budget_tiles))
         .collect();
-    let used: u64 = mappings.iter().map(|m| m.columns).sum();
+    let used: u64 = mappings.iter().map(|m| m.columns).fold(0, u64::saturating_add);
     let resident = used <= budget_cols;
     let reconfigure_ps = if resident || mappings.len() < 2 {
         0
@@ -289,7 +293,11 @@ pub fn map(g: &Graph, costs: &Costs, plan: &Plan, t: &Target, columns: Option<u3
 pub fn est_latency_ps(plan: &Plan, costs: &Costs, array: &ArrayUse) -> u64 {
     let mut ps = plan.objective_ps;
     for p in plan.partitions.iter().filter(|p| p.side == Side::Accel) {
-        let serial: u64 = p.nodes.iter().map(|n| costs.accel_ps[n.index()].unwrap_or(0)).sum();
+        let serial: u64 = p
+            .nodes
+            .iter()
+            .map(|n| costs.accel_ps[n.index()].unwrap_or(0))
+            .fold(0, u64::saturating_add);
         if let Some(m) = array.mappings.iter().find(|m| m.partition == p.id) {
             ps = ps.saturating_sub(serial).saturating_add(m.latency_ps);
         }

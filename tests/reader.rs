@@ -412,6 +412,140 @@ fn gigantic_dims_do_not_overflow() {
     assert!(v["model"]["macs"].is_null(), "2^93 MACs cannot be a u64");
 }
 
+/// The unknown-shape reason `inspect --format json` gives for tensor `name`.
+fn unknown_reason(json: &str, name: &str) -> String {
+    let v: serde_json::Value = serde_json::from_str(json).expect("json");
+    v["unknown_shapes"]
+        .as_array()
+        .expect("unknown_shapes")
+        .iter()
+        .find(|u| u["tensor"] == name)
+        .and_then(|u| u["reason"].as_str())
+        .unwrap_or_else(|| panic!("no unknown-shape row for {name}: {json}"))
+        .to_string()
+}
+
+/// A rank is an allocation: a file declaring thousands of dims, or a Reshape whose shape
+/// input is declared with 2^31 values (the ONNX Reshape specification: the output has as many
+/// dims as the shape input has values), must not make tilecut allocate gigabytes. Found by a
+/// structure-aware fuzz run: a deployed model with one initializer's dim changed took 14 GB.
+/// The limit, 64, is numpy's (from memory, numpy 2), the arrays the `onnx` package's
+/// reference evaluator computes with.
+#[test]
+fn shapes_of_more_dims_than_the_limit_are_refused() {
+    let d = tmp();
+    let ones = |n: usize| (0..n).map(|_| Dm::N(1)).collect::<Vec<_>>();
+    // Declared: a graph input of 65 dims is a read error (exit 2), 64 dims is read.
+    for (rank, ok) in [(64, true), (65, false), (20_000, false)] {
+        let m = model(
+            vec![node("Relu", &["x"], &["y"])],
+            vec![vi("x", 1, &ones(rank))],
+            untyped(&["y"]),
+            vec![],
+        );
+        let p = write(d.path(), &format!("rank{rank}.onnx"), &m);
+        let path = p.to_str().expect("utf8");
+        if ok {
+            let (code, out, err) = run(&["inspect", path, "--format", "json"]);
+            assert_eq!(code, 0, "{err}");
+            let v: serde_json::Value = serde_json::from_str(&out).expect("json");
+            assert_eq!(v["outputs"][0]["shape"].as_array().map(Vec::len), Some(64));
+        } else {
+            assert_fails_cleanly(&["inspect", path], &format!("tensor `x` has {rank} dims"));
+            let (code, _, err) = run(&["inspect", path]);
+            assert!(
+                code == 2 && err.contains(path) && err.contains("at most 64 dims"),
+                "{err}"
+            );
+        }
+    }
+    // A stored tensor of 65 dims, all of size 1.
+    let mut w = f32_init("w", &[1]);
+    w.dims = vec![1; 65];
+    let m = model(
+        vec![node("Add", &["x", "w"], &["y"])],
+        vec![vi("x", 1, &[Dm::N(1)])],
+        untyped(&["y"]),
+        vec![w],
+    );
+    let p = write(d.path(), "init65.onnx", &m);
+    assert_fails_cleanly(&["inspect", p.to_str().expect("utf8")], "tensor `w` has 65 dims");
+
+    // Derived: Reshape, Expand and ConstantOfShape given shape inputs whose values are not
+    // known but whose length is declared 2^31 (Expand: the output rank is the larger of the
+    // two, ONNX Expand specification; ConstantOfShape: the output has as many dims as its input
+    // has values). Each fails alone, with the limit as its reason, in milliseconds.
+    let huge = [Dm::N(1 << 31)];
+    let m = model(
+        vec![
+            node("Reshape", &["x", "s"], &["r"]),
+            node("Expand", &["x", "s"], &["e"]),
+            node("ConstantOfShape", &["s"], &["c"]),
+            node("Relu", &["x"], &["fine"]),
+        ],
+        vec![vi("x", 1, &[Dm::N(2), Dm::N(3)]), vi("s", 7, &huge)],
+        untyped(&["r", "e", "c", "fine"]),
+        vec![],
+    );
+    let p = write(d.path(), "derived.onnx", &m);
+    let (code, out, err) = run(&["inspect", p.to_str().expect("utf8"), "--format", "json"]);
+    assert_eq!(code, 0, "{err}");
+    for t in ["r", "e", "c"] {
+        let why = unknown_reason(&out, t);
+        assert!(
+            why.contains("2147483648 dims is beyond tilecut's limit of 64"),
+            "{t}: {why}"
+        );
+    }
+    let v: serde_json::Value = serde_json::from_str(&out).expect("json");
+    let fine = v["outputs"]
+        .as_array()
+        .expect("outputs")
+        .iter()
+        .find(|o| o["name"] == "fine");
+    assert_eq!(fine.map(|o| &o["shape"]), Some(&serde_json::json!([2, 3])));
+    // A constant shape of 65 ones: the values are known, the rank is over the limit.
+    let m = model(
+        vec![node("Reshape", &["x", "s"], &["r"]), node("Relu", &["r"], &["y"])],
+        vec![vi("x", 1, &[Dm::N(1)])],
+        untyped(&["y"]),
+        vec![i64_init("s", &[65], &[1; 65])],
+    );
+    let p = write(d.path(), "const65.onnx", &m);
+    let (code, out, err) = run(&["inspect", p.to_str().expect("utf8"), "--format", "json"]);
+    assert_eq!(code, 0, "{err}");
+    assert!(
+        unknown_reason(&out, "r").contains("65 dims is beyond tilecut's limit of 64"),
+        "{out}"
+    );
+}
+
+/// ONNX Slice specification: with a negative step, starts are clamped to [0, dim-1] and ends
+/// to [-1, dim-1]. On an empty axis that range is empty, and so is the slice: the `onnx`
+/// package's reference evaluator gives shape (0, 3) for `x[-1:-10:-1]` of a (0, 3) tensor,
+/// as numpy does (checked by hand with onnx 1.23.2). Found by a fuzz run: it was a panic.
+#[test]
+fn a_backward_slice_of_an_empty_axis_is_empty() {
+    let d = tmp();
+    let m = model(
+        vec![node("Slice", &["x", "s", "e", "a", "st"], &["y"])],
+        vec![vi("x", 1, &[Dm::N(0), Dm::N(3)])],
+        untyped(&["y"]),
+        vec![
+            i64_init("s", &[1], &[-1]),
+            i64_init("e", &[1], &[-10]),
+            i64_init("a", &[1], &[0]),
+            i64_init("st", &[1], &[-1]),
+        ],
+    );
+    let p = write(d.path(), "empty_slice.onnx", &m);
+    let (code, out, err) = run(&["inspect", p.to_str().expect("utf8"), "--format", "json"]);
+    assert_eq!(code, 0, "{err}");
+    assert!(!err.contains("panicked"), "{err}");
+    let v: serde_json::Value = serde_json::from_str(&out).expect("json");
+    assert_eq!(v["outputs"][0]["shape"], serde_json::json!([0, 3]));
+}
+
 fn external_model(location: &str) -> onnx::ModelProto {
     let t = TensorProto {
         name: "w".into(),

@@ -1,6 +1,7 @@
 //! Hostile input, seeded: every conformance model and sample with random byte flips,
 //! truncations and field duplication goes through the whole pipeline (read → analyze) and
-//! must give a result or an error, never a panic.
+//! must give a result or an error, never a panic; so must the same models with their
+//! structure changed (ops swapped, attributes, dims and stored values set to edge values).
 
 use std::path::{Path, PathBuf};
 
@@ -194,4 +195,219 @@ fn every_op_survives_random_shapes_and_attributes() {
         }
     }
     println!("{runs} random single-op models analyzed without a panic");
+}
+
+/// Values that break arithmetic on dims, axes and counts: zero, negatives, the 32- and 64-bit
+/// edges, and a large ordinary number.
+const EDGES: [i64; 13] = [
+    0,
+    -1,
+    -2,
+    1,
+    2,
+    3,
+    7,
+    1 << 31,
+    -(1 << 31),
+    1 << 62,
+    i64::MIN,
+    i64::MAX,
+    100_000,
+];
+
+/// One structure-aware change to a decoded model: a node becomes another registered op, an
+/// attribute or declared dim takes an edge value, a stored tensor changes its dims, type or
+/// values, a node is rewired or removed, or the opset moves. Byte flips (above) mostly stop
+/// at the decoder; these reach inference and costing with shapes and values real files carry.
+/// This is how a deployed model with one initializer dim changed to 2^31 was found to make a
+/// Reshape ask for 32 GB, and a backward Slice of an empty axis to panic.
+fn mutate(m: &mut tilecut::onnx::ModelProto, ops: &[(&str, &str)], rng: &mut Rng) {
+    use tilecut::onnx::tensor_shape_proto::dimension::Value as D;
+    use tilecut::onnx::type_proto::Value as T;
+    let pick = |rng: &mut Rng, n: usize| (rng.next_u64() % n.max(1) as u64) as usize;
+    let edge = |rng: &mut Rng| EDGES[(rng.next_u64() % EDGES.len() as u64) as usize];
+    let Some(g) = m.graph.as_mut() else { return };
+    let g = some_graph(g, rng);
+    let names: Vec<String> = g
+        .node
+        .iter()
+        .flat_map(|n| n.output.iter().map(|o| o.to_string()))
+        .chain(g.input.iter().map(|i| i.name.to_string()))
+        .chain(g.initializer.iter().map(|t| t.name.clone()))
+        .chain(["".to_string()])
+        .collect();
+    match rng.next_u64() % 8 {
+        0 if !g.node.is_empty() => {
+            let k = pick(rng, g.node.len());
+            let (domain, op) = ops[pick(rng, ops.len())];
+            g.node[k].op_type = op.into();
+            g.node[k].domain = domain.into();
+        }
+        1 if !g.node.is_empty() => {
+            let k = pick(rng, g.node.len());
+            let n = &mut g.node[k];
+            if n.attribute.is_empty() {
+                let names = ["axis", "axes", "perm", "pads", "group", "kernel_shape", "k", "to"];
+                let a = tilecut::onnx::AttributeProto {
+                    name: names[pick(rng, names.len())].into(),
+                    r#type: 7,
+                    ints: (0..pick(rng, 5)).map(|_| edge(rng)).collect(),
+                    ..Default::default()
+                };
+                n.attribute.push(a);
+            } else {
+                let j = pick(rng, n.attribute.len());
+                let v = edge(rng);
+                let a = &mut n.attribute[j];
+                if a.ints.is_empty() {
+                    a.i = v;
+                } else {
+                    let i = pick(rng, a.ints.len());
+                    a.ints[i] = v;
+                }
+            }
+        }
+        2 => {
+            let declared: Vec<&mut tilecut::onnx::ValueInfoProto> = g
+                .input
+                .iter_mut()
+                .chain(g.output.iter_mut())
+                .chain(g.value_info.iter_mut())
+                .collect();
+            let n = declared.len();
+            if let Some(v) = declared.into_iter().nth(pick(rng, n)) {
+                if let Some(T::TensorType(t)) = v.r#type.as_mut().and_then(|t| t.value.as_mut()) {
+                    match t.shape.as_mut().filter(|s| !s.dim.is_empty()) {
+                        Some(s) => {
+                            let i = pick(rng, s.dim.len());
+                            s.dim[i].value = Some(match rng.next_u64() % 3 {
+                                0 => D::DimParam(["n", "2*n+1", "a b", ""][pick(rng, 4)].into()),
+                                _ => D::DimValue(edge(rng).max(-1)),
+                            });
+                        }
+                        None => t.elem_type = [0, 1, 7, 16, 22, 23, 99][pick(rng, 7)],
+                    }
+                }
+            }
+        }
+        3 if !g.initializer.is_empty() => {
+            let k = pick(rng, g.initializer.len());
+            let t = &mut g.initializer[k];
+            match rng.next_u64() % 3 {
+                0 if !t.dims.is_empty() => {
+                    let i = pick(rng, t.dims.len());
+                    t.dims[i] = edge(rng).max(0);
+                }
+                1 => t.data_type = [0, 1, 2, 6, 7, 10, 16, 22, 99][pick(rng, 9)],
+                _ => {
+                    // Edge values as a small int64 tensor: shapes, axes, pads, sizes, counts.
+                    let vals: Vec<i64> = (0..1 + pick(rng, 4)).map(|_| edge(rng)).collect();
+                    t.dims = vec![vals.len() as i64];
+                    t.data_type = 7;
+                    t.raw_data = vals.iter().flat_map(|v| v.to_le_bytes()).collect::<Vec<u8>>().into();
+                    t.float_data = Default::default();
+                    t.int64_data = Default::default();
+                    t.int32_data = Default::default();
+                }
+            }
+        }
+        4 if !g.node.is_empty() => {
+            let k = pick(rng, g.node.len());
+            let name = names[pick(rng, names.len())].as_str().into();
+            let n = &mut g.node[k];
+            if n.input.is_empty() || rng.next_u64() % 3 == 0 {
+                n.input.push(name);
+            } else {
+                let i = pick(rng, n.input.len());
+                n.input[i] = name;
+            }
+        }
+        5 if g.node.len() > 1 => {
+            let k = pick(rng, g.node.len());
+            g.node.remove(k);
+        }
+        6 if !g.node.is_empty() => {
+            let k = pick(rng, g.node.len());
+            let n = &mut g.node[k];
+            if !n.input.is_empty() {
+                let i = pick(rng, n.input.len());
+                n.input.remove(i);
+            }
+        }
+        _ => {
+            if let Some(o) = m.opset_import.first_mut().filter(|_| rng.next_u64() % 2 == 0) {
+                o.version = [1, 7, 11, 13, 17, 21, 23, 0, -1][pick(rng, 9)];
+            }
+        }
+    }
+}
+
+/// `g` or, half the time when it has any, one of its subgraphs (If branches, Loop and Scan
+/// bodies), chosen the same way in turn.
+fn some_graph<'g>(g: &'g mut tilecut::onnx::GraphProto, rng: &mut Rng) -> &'g mut tilecut::onnx::GraphProto {
+    let places: Vec<(usize, usize)> = g
+        .node
+        .iter()
+        .enumerate()
+        .flat_map(|(i, n)| {
+            n.attribute
+                .iter()
+                .enumerate()
+                .filter(|(_, a)| a.g.is_some())
+                .map(move |(j, _)| (i, j))
+        })
+        .collect();
+    if places.is_empty() || rng.next_u64() % 2 == 0 {
+        return g;
+    }
+    let (i, j) = places[(rng.next_u64() % places.len() as u64) as usize];
+    let body = g.node[i].attribute[j].g.as_deref_mut().expect("a graph attribute");
+    some_graph(body, rng)
+}
+
+#[test]
+fn structurally_mutated_models_never_panic() {
+    use prost::Message;
+    let ops: Vec<(&str, &str)> = tilecut::ops::registry()
+        .iter()
+        .flat_map(|t| t.iter())
+        .map(|d| (d.domain, d.op))
+        .collect();
+    let seed = std::env::var("TC_SEED")
+        .ok()
+        .and_then(|v| v.parse().ok())
+        .unwrap_or(0x005e_ed0f_5a5e);
+    let mut rng = Rng::new(seed);
+    let target = tilecut::target::load("compact-array").expect("target");
+    let dir = tempfile::tempdir().expect("tmp");
+    let mut runs = 0;
+    for f in corpus() {
+        let bytes = std::fs::read(&f).expect("read");
+        let Ok(original) = tilecut::onnx::ModelProto::decode(bytes.as_slice()) else {
+            continue;
+        };
+        let rounds: usize = std::env::var("TC_ROUNDS")
+            .ok()
+            .and_then(|v| v.parse().ok())
+            .unwrap_or(12);
+        for round in 0..rounds {
+            let mut m = original.clone();
+            for _ in 0..1 + rng.next_u64() % 4 {
+                mutate(&mut m, &ops, &mut rng);
+            }
+            let p = dir.path().join("m.onnx");
+            std::fs::write(&p, m.encode_to_vec()).expect("write");
+            let result = std::panic::catch_unwind(|| {
+                let _ = tilecut::analyze_stages(&p, &Default::default(), target.clone(), &Default::default())
+                    .map(|a| a.report());
+            });
+            assert!(
+                result.is_ok(),
+                "panic on a structural mutation of {} (round {round})",
+                f.display()
+            );
+            runs += 1;
+        }
+    }
+    println!("{runs} structurally mutated models analyzed without a panic");
 }

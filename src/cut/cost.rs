@@ -121,7 +121,7 @@ pub fn costs(g: &Graph, verdicts: &[Verdict], target: &Target) -> Costs {
         }
         let cost = g.cost(id);
         let work = match (cost.macs, cost.ops) {
-            (Some(m), Some(o)) => (2 * m).saturating_add(o) as f64,
+            (Some(m), Some(o)) => m.saturating_mul(2).saturating_add(o) as f64,
             _ => {
                 unknown_work.push(id);
                 0.0
@@ -134,7 +134,7 @@ pub fn costs(g: &Graph, verdicts: &[Verdict], target: &Target) -> Costs {
             .chain(n.outputs.iter().flatten())
             .filter(|v| !matches!(g.value(**v).kind, ValueKind::Initializer | ValueKind::Constant))
             .filter_map(|v| bytes[v.index()])
-            .sum();
+            .fold(0, u64::saturating_add);
         let dt = node_type(&verdicts[i]);
         let tname = dt.map(type_name).unwrap_or("fp32");
         let cpu = (work / target.cpu_ops_per_s(tname)).max(moved as f64 / f.cpu.memory_bandwidth_bytes_per_s);

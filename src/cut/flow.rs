@@ -222,7 +222,7 @@ mod tests {
             .iter()
             .filter(|e| cut.source_side[e.0 as usize] && !cut.source_side[e.1 as usize])
             .map(|e| e.2)
-            .sum();
+            .fold(0, u64::saturating_add);
         assert_eq!(cap, 23);
     }
 }

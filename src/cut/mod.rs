@@ -395,9 +395,9 @@ fn finish(g: &Graph, costs: &Costs, strategy: Strategy, side: Vec<Side>, mincut_
             Side::Accel => costs.accel_ps[i].unwrap_or(0),
             Side::Const => 0,
         })
-        .sum();
-    let transfers: u64 = cps.iter().map(|c| c.cost_ps).sum();
-    let dispatches = parts.iter().filter(|p| p.side == Side::Accel).count() as u64 * costs.dispatch_ps;
+        .fold(0, u64::saturating_add);
+    let transfers: u64 = cps.iter().map(|c| c.cost_ps).fold(0, u64::saturating_add);
+    let dispatches = (parts.iter().filter(|p| p.side == Side::Accel).count() as u64).saturating_mul(costs.dispatch_ps);
     Plan {
         strategy,
         side,

@@ -9,7 +9,7 @@ mod text;
 
 pub use dtype::DType;
 pub use name::Name;
-pub use shape::{compact_expression, evaluate, Dim, Shape};
+pub use shape::{compact_expression, evaluate, rank_within_limit, Dim, Shape, MAX_RANK};
 pub use text::Text;
 
 use bytes::Bytes;

@@ -194,6 +194,21 @@ impl std::fmt::Display for Dim {
 /// The longest symbolic dim expression tilecut builds; longer ones become unknown.
 pub const MAX_EXPRESSION: usize = 256;
 
+/// The most dims a shape may have. A file declaring more is refused, and an op whose output
+/// would have more (a Reshape to a shape tensor declared with 2^31 values) fails with a reason:
+/// a rank is an allocation, and a hostile file could otherwise ask for gigabytes per tensor.
+/// 64 is numpy's limit since numpy 2 (32 before; from memory), the arrays the `onnx` package's
+/// reference evaluator computes with, so no model that evaluator runs has more.
+pub const MAX_RANK: usize = 64;
+
+/// `len` as a rank, or why it cannot be one.
+pub fn rank_within_limit(len: u64) -> Result<usize, String> {
+    usize::try_from(len)
+        .ok()
+        .filter(|&r| r <= MAX_RANK)
+        .ok_or_else(|| format!("a shape of {len} dims is beyond tilecut's limit of {MAX_RANK}"))
+}
+
 /// Each byte of `s` with the parenthesis depth after it.
 fn depths(s: &str) -> impl Iterator<Item = (u8, i32)> + '_ {
     s.bytes().scan(0i32, |depth, b| {

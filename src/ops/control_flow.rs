@@ -189,9 +189,14 @@ impl ScanLayout {
             Some(AttrValue::Int(n)) => Some(*n),
             _ => None,
         };
-        let n_scan = int("num_scan_inputs").unwrap_or(0).max(0) as usize;
         let batched = opset < 9;
         let first = usize::from(batched);
+        // No more scan inputs than the node has inputs (`scan` refuses the node when the
+        // attribute says more); the attribute is the file's and may be any number.
+        let n_scan = int("num_scan_inputs")
+            .and_then(|n| usize::try_from(n).ok())
+            .unwrap_or(0)
+            .min(node.inputs.len().saturating_sub(first));
         let n_state = node.inputs.len().saturating_sub(first + n_scan);
         let axes = match node.attr("scan_input_axes") {
             Some(AttrValue::Ints(a)) if !batched => a.clone(),
@@ -267,6 +272,13 @@ impl ScanLayout {
 /// gain the scanned axis (at `scan_output_axes`, Scan-9 and later).
 fn scan(ctx: &Ctx) -> Inferred {
     let body = ctx.body_outputs.first().ok_or("Scan without body")?;
+    let inputs = ctx.node.inputs.len().saturating_sub(usize::from(ctx.opset < 9));
+    let declared = ctx.int("num_scan_inputs", 0);
+    if u64::try_from(declared).is_ok_and(|n| n > inputs as u64) {
+        return Err(format!(
+            "num_scan_inputs {declared} but the node has {inputs} state and scan inputs"
+        ));
+    }
     let layout = ScanLayout::of(ctx.node, ctx.opset);
     let (batch, seq) = layout.lengths(ctx);
     let out_axes = ctx.ints("scan_output_axes");

@@ -19,11 +19,14 @@ fn io(op: &str) -> ConvIo {
     }
 }
 
-fn floor_div(a: i64, b: i64) -> i64 {
+// The window arithmetic runs in 128 bits: kernel, stride, dilation and pads are the file's
+// 64-bit values, and (kernel - 1) · dilation alone can pass 64 bits. A result that does not
+// fit a dim is an error, never a wrapped number.
+fn floor_div(a: i128, b: i128) -> i128 {
     a.div_euclid(b)
 }
 
-fn ceil_div(a: i64, b: i64) -> i64 {
+fn ceil_div(a: i128, b: i128) -> i128 {
     -(-a).div_euclid(b)
 }
 
@@ -38,14 +41,16 @@ fn spatial_out(
     auto_pad: &str,
     ceil_mode: bool,
 ) -> Result<Dim, String> {
-    let (k, s, d) = (kernel as i64, stride as i64, dilation as i64);
+    let (k, s, d) = (i128::from(kernel), i128::from(stride), i128::from(dilation));
     if s <= 0 || d <= 0 {
         return Err("stride and dilation must be positive".into());
     }
     let ek = (k - 1) * d + 1;
-    let (pad_begin, pad_total) = pads.map(|(b, e)| (b, b + e)).unwrap_or((0, 0));
+    let (pad_begin, pad_total) = pads
+        .map(|(b, e)| (i128::from(b), i128::from(b) + i128::from(e)))
+        .unwrap_or((0, 0));
     let i = match input {
-        Dim::Known(i) => *i as i64,
+        Dim::Known(i) => i128::from(*i),
         Dim::Unknown => return Ok(Dim::Unknown),
         // A symbolic size stays symbolic: the specification's floor((in + pads − extent) / s)
         // + 1 is floor((in + c) / s) with c = pads − extent + s; SAME padding gives
@@ -60,7 +65,10 @@ fn spatial_out(
                 "VALID" => s - ek,
                 _ => pad_total - ek + s,
             };
-            return Ok(sym.offset(c).div_floor(s as u64));
+            return Ok(match i64::try_from(c) {
+                Ok(c) => sym.offset(c).div_floor(stride),
+                Err(_) => Dim::Unknown,
+            });
         }
     };
     let out = match auto_pad {
@@ -90,7 +98,9 @@ fn spatial_out(
             }
         }
     };
-    Ok(Dim::Known(out.max(0) as u64))
+    u64::try_from(out.max(0))
+        .map(Dim::Known)
+        .map_err(|_| format!("output size {out} does not fit 64 bits"))
 }
 
 pub(super) struct Window {
@@ -210,7 +220,8 @@ pub(super) fn conv_transpose(ctx: &Ctx) -> Inferred {
         .as_ref()
         .and_then(|w| w.get(1))
         .and_then(Dim::known)
-        .map(|c| Dim::Known(c * group))
+        .map(|c| c.checked_mul(group).map(Dim::Known).ok_or("output channels overflow"))
+        .transpose()?
         .unwrap_or(Dim::Unknown);
     let out_pad = ctx.ints("output_padding").unwrap_or_else(|| vec![0; spatial]);
     let mut out = vec![x[0].clone(), cout];
@@ -220,17 +231,28 @@ pub(super) fn conv_transpose(ctx: &Ctx) -> Inferred {
         return Ok(smallvec::smallvec![tensor(dtype, Shape::of(out))]);
     }
     for i in 0..spatial {
-        let (s, k, d) = (win.strides[i] as i64, win.kernel[i] as i64, win.dilations[i] as i64);
-        let op = out_pad.get(i).copied().unwrap_or(0);
+        let (s, k, d) = (
+            i128::from(win.strides[i]),
+            i128::from(win.kernel[i]),
+            i128::from(win.dilations[i]),
+        );
+        let op = i128::from(out_pad.get(i).copied().unwrap_or(0));
         // out = s·in + extra (ONNX spec, ConvTranspose: s·(in − 1) + output_padding +
-        // ((k − 1)·d + 1) − pads; SAME: s·in).
+        // ((k − 1)·d + 1) − pads; SAME: s·in). In 128 bits: the file's 64-bit attributes
+        // can pass 64 bits in between, and an extra that does not fit is an error.
         let extra = match win.auto_pad.as_str() {
             "SAME_UPPER" | "SAME_LOWER" => 0,
             _ => {
-                let pads = win.pads.as_ref().map(|p| p[i] + p[i + spatial]).unwrap_or(0);
+                let pads = win
+                    .pads
+                    .as_ref()
+                    .map(|p| i128::from(p[i]) + i128::from(p[i + spatial]))
+                    .unwrap_or(0);
                 op + ((k - 1) * d + 1) - s - if win.auto_pad == "VALID" { 0 } else { pads }
             }
         };
+        let extra = i64::try_from(extra).map_err(|_| "output size overflows")?;
+        let s = i64::try_from(s).map_err(|_| "stride overflows")?;
         out.push(match &x[2 + i] {
             Dim::Known(inp) => {
                 let o = i64::try_from(*inp)
@@ -293,9 +315,14 @@ fn max_unpool(ctx: &Ctx) -> Inferred {
     for i in 0..spatial {
         out.push(match x[2 + i] {
             Dim::Known(n) => {
-                let pads = win.pads.as_ref().map(|p| p[i] + p[i + spatial]).unwrap_or(0);
-                let o = (n as i64 - 1) * win.strides[i] as i64 - pads + win.kernel[i] as i64;
-                Dim::Known(o.max(0) as u64)
+                // In 128 bits, as the window arithmetic above.
+                let pads = win
+                    .pads
+                    .as_ref()
+                    .map(|p| i128::from(p[i]) + i128::from(p[i + spatial]))
+                    .unwrap_or(0);
+                let o = (i128::from(n) - 1) * i128::from(win.strides[i]) - pads + i128::from(win.kernel[i]);
+                Dim::Known(u64::try_from(o.max(0)).map_err(|_| "output size overflows")?)
             }
             _ => Dim::Unknown,
         });

@@ -290,7 +290,12 @@ fn attention_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
         let (q_elems, skv) = (count(&q)?, new_kv.checked_add(past)?);
         q_elems.checked_mul(skv)?.checked_add(y.checked_mul(skv)?)
     })();
-    (macs, outs.first().and_then(|f| f.shape.element_count()).map(|y| y * 3))
+    (
+        macs,
+        outs.first()
+            .and_then(|f| f.shape.element_count())
+            .and_then(|y| y.checked_mul(3)),
+    )
 }
 
 /// LinearAttention (opset 27): query (B, T, Hq·dk), key (B, T, ·), value (B, T, Hkv·dv), an
@@ -422,10 +427,10 @@ fn ms_attention_macs(ctx: &Ctx, _outs: &[Fact]) -> MacsOps {
         let x = ctx.shape(0).concrete()?;
         let w = ctx.shape(1).concrete()?;
         let proj = count(&x)?.checked_mul(*w.get(1)?)?;
-        let heads = ctx.opt_int("num_heads")?.max(1) as u64;
-        let (b, s, h) = (x[0], x[1], x[2]);
+        // The contrib Attention requires num_heads; the count does not depend on it.
+        ctx.opt_int("num_heads")?;
+        let [b, s, h] = x[..] else { return None };
         // Projection, then scores and weighted sum over all heads: 2·B·S·S·hidden.
-        let _ = heads;
         proj.checked_add(2u64.checked_mul(b)?.checked_mul(s)?.checked_mul(s)?.checked_mul(h)?)
     })();
     (macs, Some(0))

@@ -69,7 +69,7 @@ fn recurrent_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
         let input = *x.last()?;
         let hidden = *y.last()?;
         // Every output element of every step: gates × (input + hidden) MACs.
-        let elems: u64 = y.iter().product();
+        let elems = super::util::count(&y)?;
         elems
             .checked_mul(gates(&ctx.node.op_type))?
             .checked_mul(input.checked_add(hidden)?)
@@ -78,7 +78,7 @@ fn recurrent_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
         macs,
         outs.first()
             .and_then(|f| f.shape.element_count())
-            .map(|e| e * gates(&ctx.node.op_type) * 3),
+            .and_then(|e| e.checked_mul(gates(&ctx.node.op_type) * 3)),
     )
 }
 

@@ -1,6 +1,7 @@
 //! Shape and data-movement ops, with constant folding for the shape arithmetic exporters
 //! emit (Shape → Gather → Unsqueeze → Concat → Reshape and friends).
 
+use crate::ir::rank_within_limit;
 use crate::ir::{AttrValue, ConstData, ConstValue, DType, Dim, Shape};
 use crate::values;
 
@@ -65,7 +66,7 @@ fn constant_of_shape(ctx: &Ctx) -> Inferred {
     let shape = match ctx.konst(0) {
         Some(c) => Shape::of(c.as_dims()),
         None => match ctx.shape(0).concrete() {
-            Some(s) if s.len() == 1 => Shape::of_rank(s[0] as usize),
+            Some(s) if s.len() == 1 => Shape::of_rank(rank_within_limit(s[0])?),
             _ => Shape::unknown(),
         },
     };
@@ -309,11 +310,11 @@ fn reshape(ctx: &Ctx) -> Inferred {
         match ctx.konst(1) {
             Some(c) => (c.as_ints(), c.as_dims()),
             None => {
-                let rank = ctx.shape(1).concrete().and_then(|s| s.first().copied());
-                return Ok(smallvec::smallvec![tensor(
-                    ctx.dtype(0),
-                    rank.map(|r| Shape::of_rank(r as usize)).unwrap_or_else(Shape::unknown),
-                )]);
+                let shape = match ctx.shape(1).concrete().and_then(|s| s.first().copied()) {
+                    Some(len) => Shape::of_rank(rank_within_limit(len)?),
+                    None => Shape::unknown(),
+                };
+                return Ok(smallvec::smallvec![tensor(ctx.dtype(0), shape)]);
             }
         }
     } else {
@@ -628,7 +629,7 @@ fn split(ctx: &Ctx) -> Inferred {
                 // opset 18: chunks of ceil(total / k), the last one smaller.
                 let chunk = total.div_ceil(k);
                 (0..n as u64)
-                    .map(|i| Dim::Known(chunk.min(total.saturating_sub(i * chunk))))
+                    .map(|i| Dim::Known(chunk.min(total.saturating_sub(i.saturating_mul(chunk)))))
                     .collect()
             }
             _ => vec![Dim::Unknown; n],
@@ -721,6 +722,9 @@ fn slice_ranges(ctx: &Ctx, d: &[Dim]) -> Result<Option<Vec<(usize, AxisSpan)>>, 
         let (s, e) = (fix(starts[i]), fix(end));
         let (s, e) = if step > 0 {
             (s.clamp(0, dim), e.clamp(0, dim))
+        } else if dim == 0 {
+            // The spec's clamp to [0, dim-1] has no room on an empty axis: nothing is taken.
+            (0, 0)
         } else {
             (s.clamp(0, dim - 1), e.clamp(-1, dim - 1))
         };
@@ -1053,7 +1057,7 @@ fn tile(ctx: &Ctx) -> Inferred {
 fn expand(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(0);
     let Some(target) = ctx.konst(1) else {
-        return Ok(smallvec::smallvec![tensor(dt, expand_unknown_target(ctx))]);
+        return Ok(smallvec::smallvec![tensor(dt, expand_unknown_target(ctx)?)]);
     };
     Ok(smallvec::smallvec![tensor(
         dt,
@@ -1065,19 +1069,16 @@ fn expand(ctx: &Ctx) -> Inferred {
 /// known, still fixes the rank (max of the two, per the ONNX Expand specification's
 /// multidirectional broadcasting), and a known dim of the data other than 1 survives, since
 /// the target's dim there must be 1 or that dim.
-fn expand_unknown_target(ctx: &Ctx) -> Shape {
+fn expand_unknown_target(ctx: &Ctx) -> Result<Shape, String> {
     let (Some(data), Some(target)) = (ctx.dims(0), ctx.shape(1).concrete()) else {
-        return Shape::unknown();
+        return Ok(Shape::unknown());
     };
     let [len] = target[..] else {
-        return Shape::unknown();
+        return Ok(Shape::unknown());
     };
-    let Ok(len) = usize::try_from(len) else {
-        return Shape::unknown();
-    };
-    let rank = data.len().max(len);
+    let rank = data.len().max(rank_within_limit(len)?);
     let lead = rank - data.len();
-    Shape::of(
+    Ok(Shape::of(
         (0..rank)
             .map(|i| match i.checked_sub(lead).map(|j| &data[j]) {
                 // A symbolic dim may be 1 at run time, and then the target's dim wins.
@@ -1085,7 +1086,7 @@ fn expand_unknown_target(ctx: &Ctx) -> Shape {
                 _ => Dim::Unknown,
             })
             .collect(),
-    )
+    ))
 }
 
 fn fold_expand(ctx: &Ctx) -> Option<Vec<ConstValue>> {
@@ -1231,20 +1232,23 @@ fn depth_to_space(ctx: &Ctx) -> Inferred {
         return Err("blocksize must be positive".into());
     }
     let b = b as u64;
+    let b2 = b.checked_mul(b).ok_or("blocksize squared overflows")?;
     let up = ctx.node.op_type == "DepthToSpace";
     let c = match &d[1] {
-        Dim::Known(c) if up => Dim::Known(c / (b * b)),
-        Dim::Known(c) => Dim::Known(c * b * b),
+        Dim::Known(c) if up => Dim::Known(c / b2),
+        Dim::Known(c) => Dim::Known(c.checked_mul(b2).ok_or("overflow")?),
         _ => Dim::Unknown,
     };
-    let sp = |x: &Dim| match x {
-        Dim::Known(v) if up => Dim::Known(v * b),
-        Dim::Known(v) => Dim::Known(v / b),
-        _ => Dim::Unknown,
+    let sp = |x: &Dim| -> Result<Dim, String> {
+        Ok(match x {
+            Dim::Known(v) if up => Dim::Known(v.checked_mul(b).ok_or("overflow")?),
+            Dim::Known(v) => Dim::Known(v / b),
+            _ => Dim::Unknown,
+        })
     };
     Ok(smallvec::smallvec![tensor(
         dt,
-        Shape::of(vec![d[0].clone(), c, sp(&d[2]), sp(&d[3])])
+        Shape::of(vec![d[0].clone(), c, sp(&d[2])?, sp(&d[3])?])
     )])
 }
 

@@ -89,7 +89,7 @@ fn dft(ctx: &Ctx) -> Inferred {
                 len
             } else {
                 match &x[a] {
-                    Dim::Known(n) if *n > 0 => Dim::Known(2 * (n - 1)),
+                    Dim::Known(n) if *n > 0 => (n - 1).checked_mul(2).map_or(Dim::Unknown, Dim::Known),
                     _ => Dim::Unknown,
                 }
             };
@@ -109,7 +109,7 @@ fn fft_macs(_ctx: &Ctx, outs: &[Fact]) -> MacsOps {
         let n = *y.get(y.len().checked_sub(2)?)?;
         let vectors = count(&y[..y.len() - 2])?;
         let log = 64 - n.max(1).leading_zeros() as u64;
-        vectors.checked_mul(n / 2 * log * 4)
+        vectors.checked_mul((n / 2).checked_mul(log * 4)?)
     })();
     (macs, Some(0))
 }
@@ -127,7 +127,7 @@ fn stft_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
                 w.first().copied()
             })?;
         let log = 64 - frame.max(1).leading_zeros() as u64;
-        count(&y[..2])?.checked_mul(frame / 2 * log * 4)
+        count(y.get(..2)?)?.checked_mul((frame / 2).checked_mul(log * 4)?)
     })();
     (macs, Some(0))
 }

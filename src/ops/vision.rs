@@ -31,7 +31,7 @@ fn affine_grid(ctx: &Ctx) -> Inferred {
         }
         Some(s) => return Err(format!("size has {} values", s.len())),
         None => match ctx.shape(1).concrete() {
-            Some(n) if n.len() == 1 && n[0] >= 3 => Shape::of_rank(n[0] as usize),
+            Some(n) if n.len() == 1 && n[0] >= 3 => Shape::of_rank(crate::ir::rank_within_limit(n[0])?),
             _ => Shape::unknown(),
         },
     };

@@ -388,7 +388,7 @@ pub fn summary(i: &Inputs) -> Summary {
         .cut_points
         .iter()
         .map(|c| i.costs.bytes[c.value.index()].unwrap_or(0))
-        .sum();
+        .fold(0, u64::saturating_add);
     let known = i.costs.unknown_work.is_empty();
     let mut needs_dims: Vec<String> = i
         .costs
@@ -517,7 +517,11 @@ pub fn build(i: &Inputs) -> AnalyzeReport {
                     }
                 }
             }
-            let macs: u64 = p.nodes.iter().map(|n| g.cost(*n).macs.unwrap_or(0)).sum();
+            let macs: u64 = p
+                .nodes
+                .iter()
+                .map(|n| g.cost(*n).macs.unwrap_or(0))
+                .fold(0, u64::saturating_add);
             let wb = crate::cut::cost::weight_bytes(g, i.costs, &p.nodes);
             let node_ps: u64 = p
                 .nodes
@@ -529,7 +533,7 @@ pub fn build(i: &Inputs) -> AnalyzeReport {
                         i.costs.cpu_ps[n.index()]
                     }
                 })
-                .sum();
+                .fold(0, u64::saturating_add);
             let m = i.array.mappings.iter().find(|m| m.partition == p.id);
             let (columns, tiles, dispatch) = match m {
                 Some(m) if p.side == Side::Accel => (Some(m.columns), Some(m.tiles), i.costs.dispatch_ps),

@@ -1168,3 +1168,91 @@ fn ml_ops_agree_with_the_onnx_reference_evaluator() {
         assert_eq!(&ours, expected, "{name}");
     }
 }
+
+/// Random single-op models (shapes and attributes drawn at random, for the ops of vision,
+/// audio, transformer and quantized models) and random op chains over x[1, C, H, W] with H and
+/// W symbolic and exporter-style shape arithmetic, drawn by `tests/py/random_ops.py`. Where the
+/// `onnx` package's two references, its reference evaluator running the model and its shape
+/// inference, agree (or shape inference leaves an output open), tilecut must infer exactly the
+/// evaluator's output shapes and element types, the chains' H and W fixed as `--dim` fixes
+/// them. Where they disagree on a single-op model, tilecut must give one of their answers (or
+/// the specification text's, where both deviate from it); the script says which cases.
+#[test]
+fn random_ops_and_chains_agree_with_the_onnx_references() {
+    if !python_onnx("random_ops_and_chains_agree_with_the_onnx_references") {
+        return;
+    }
+    // `TC_SEED` and `TC_ROUNDS` (a multiple of the default counts) widen a local search.
+    let env = |name: &str, default: u64| std::env::var(name).ok().and_then(|v| v.parse().ok()).unwrap_or(default);
+    let (seed, rounds) = (env("TC_SEED", 20261204), env("TC_ROUNDS", 1));
+    let dir = tempfile::tempdir().expect("tmp");
+    let out = python(
+        include_str!("py/random_ops.py"),
+        &[
+            dir.path().to_str().expect("utf8"),
+            &seed.to_string(),
+            &(1600 * rounds).to_string(),
+            &(240 * rounds).to_string(),
+        ],
+    );
+    let drawn: serde_json::Value = serde_json::from_str(&out).expect("json");
+    let cases = drawn["cases"].as_array().expect("cases");
+    let mut failures = Vec::new();
+    let mut outputs = 0;
+    for case in cases {
+        let file = case["file"].as_str().expect("file");
+        let mut overrides = tilecut::import::Overrides::default();
+        for (k, v) in case["dims"].as_object().expect("dims") {
+            overrides.add_dim(&format!("{k}={v}")).expect("dim");
+        }
+        let read = match tilecut::read_model(&dir.path().join(file), &overrides) {
+            Ok(r) => r,
+            Err(e) => {
+                failures.push(format!("{file}: {e}"));
+                continue;
+            }
+        };
+        let g = &read.model.graph;
+        let ours: Vec<(Option<Vec<u64>>, &str)> = g
+            .outputs
+            .iter()
+            .map(|&o| {
+                let fact = &g.value(o).fact;
+                (fact.shape.concrete(), fact.dtype.map_or("?", |d| d.name()))
+            })
+            .collect();
+        let expected = |outputs: &serde_json::Value| -> Vec<(Option<Vec<u64>>, String)> {
+            outputs
+                .as_array()
+                .expect("outputs")
+                .iter()
+                .map(|o| {
+                    let dims = o[0].as_array().expect("shape").iter().map(|d| d.as_u64().expect("dim"));
+                    (Some(dims.collect()), o[1].as_str().expect("dtype").to_string())
+                })
+                .collect()
+        };
+        let matches = |want: &[(Option<Vec<u64>>, String)]| {
+            want.len() == ours.len() && want.iter().zip(&ours).all(|(w, o)| w.0 == o.0 && w.1 == o.1)
+        };
+        outputs += ours.len();
+        let mut accepted = vec![expected(&case["outputs"])];
+        if let Some(alternatives) = case.get("alternatives").and_then(|a| a.as_array()) {
+            accepted.extend(alternatives.iter().map(expected));
+        }
+        if !accepted.iter().any(|want| matches(want)) {
+            failures.push(format!(
+                "{file} {}: tilecut {ours:?}, accepted {accepted:?}",
+                case["dims"]
+            ));
+        }
+    }
+    println!(
+        "random ops and chains: {} cases, {outputs} outputs, {} failures; {}",
+        cases.len(),
+        failures.len(),
+        drawn["counts"]
+    );
+    assert!(failures.is_empty(), "{failures:#?}");
+    assert!(cases.len() as u64 >= 1500 * rounds, "only {} cases drawn", cases.len());
+}

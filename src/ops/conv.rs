@@ -82,7 +82,10 @@ fn spatial_out(
         }
         _ => {
             let n = i + pad_total - ek;
-            if n < 0 {
+            // With ceil_mode a window may run past the padded end by less than a stride: the
+            // specification's ceil((in + pads − extent) / s + 1) is then still 1 (ONNX operator
+            // spec, MaxPool / AveragePool output shape; the reference implementation agrees).
+            if n < 0 && !(ceil_mode && n > -s) {
                 return Err(format!("kernel extent {ek} exceeds padded input {}", i + pad_total));
             }
             if ceil_mode {

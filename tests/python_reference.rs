@@ -1279,11 +1279,57 @@ fn random_ops_and_chains_agree_with_the_onnx_references() {
         }
     }
     println!(
-        "random ops and chains: {} cases, {outputs} outputs, {expressions} dims written as expressions of H and W, {} failures; {}",
+        "random ops and chains: {} cases, {outputs} outputs, {expressions} dims written as expressions of the open sizes, {} failures; {}",
         cases.len(),
         failures.len(),
         drawn["counts"]
     );
     assert!(failures.is_empty(), "{failures:#?}");
     assert!(cases.len() as u64 >= 1500 * rounds, "only {} cases drawn", cases.len());
+}
+
+/// Reshape's -1 beside dims copied by 0: a copied dim is the input's dim at the same place,
+/// so the two cancel even where that dim is unknown (an attention head merge, `[B, ?, 2, 4]`
+/// to `[0, 0, -1]`, after a slice whose length is a `min` with the sequence). The `onnx`
+/// package's shape inference gives the same dims.
+#[test]
+fn reshape_infers_minus_one_past_unknown_copied_dims_as_onnx_shape_inference_does() {
+    if !python_onnx("reshape_infers_minus_one_past_unknown_copied_dims_as_onnx_shape_inference_does") {
+        return;
+    }
+    let dir = tempfile::tempdir().expect("tmp");
+    let script = r#"
+import sys, json, onnx, numpy as np
+from onnx import helper, numpy_helper
+shapes = {"heads": [0, 0, -1], "front": [-1, 0, 0], "keep_last": [0, -1, 4]}
+res = {}
+for name, target in shapes.items():
+    x = helper.make_tensor_value_info("x", 1, ["B", None, 2, 4])
+    y = helper.make_tensor_value_info("y", 1, None)
+    t = numpy_helper.from_array(np.array(target, np.int64), "t")
+    m = helper.make_model(helper.make_graph([helper.make_node("Reshape", ["x", "t"], ["y"])], "g", [x], [y], [t]),
+                          opset_imports=[helper.make_opsetid("", 17)])
+    p = sys.argv[1] + "/" + name + ".onnx"
+    onnx.save(m, p)
+    out = onnx.shape_inference.infer_shapes(m, strict_mode=True).graph.output[0].type.tensor_type.shape.dim
+    res[name] = [d.dim_value if d.HasField("dim_value") else None for d in out]
+print(json.dumps(res))
+"#;
+    let reference: BTreeMap<String, Vec<Option<u64>>> =
+        serde_json::from_str(&python(script, &[dir.path().to_str().expect("utf8")])).expect("json");
+    assert_eq!(reference["heads"], [None, None, Some(8)], "the reference's own answer");
+    for (name, theirs) in &reference {
+        let read = tilecut::read_model(&dir.path().join(format!("{name}.onnx")), &Default::default()).expect("reads");
+        let g = &read.model.graph;
+        let ours: Vec<Option<u64>> = g
+            .value(g.outputs[0])
+            .fact
+            .shape
+            .dims()
+            .expect("rank")
+            .iter()
+            .map(Dim::known)
+            .collect();
+        assert_eq!(&ours, theirs, "{name}");
+    }
 }

@@ -213,10 +213,13 @@ fn fold_range(ctx: &Ctx) -> Option<Vec<ConstValue>> {
 /// carried through when the inferred dim's factors cancel.
 fn reshape_dims(input: Option<&[Dim]>, target: &[Dim], raw: &[i64], allowzero: bool) -> Result<Vec<Dim>, String> {
     let mut out: Vec<Dim> = Vec::with_capacity(raw.len());
+    let mut copied = vec![false; raw.len()];
     let mut infer_at = None;
     for (i, (&r, t)) in raw.iter().zip(target).enumerate() {
         if r == 0 && !allowzero && matches!(t, Dim::Known(0)) {
-            out.push(input.and_then(|d| d.get(i).cloned()).unwrap_or(Dim::Unknown));
+            let d = input.and_then(|d| d.get(i).cloned());
+            copied[i] = d.is_some();
+            out.push(d.unwrap_or(Dim::Unknown));
         } else if r == -1 {
             if infer_at.is_some() {
                 return Err("shape has more than one -1".into());
@@ -230,18 +233,23 @@ fn reshape_dims(input: Option<&[Dim]>, target: &[Dim], raw: &[i64], allowzero: b
         }
     }
     if let (Some(at), Some(input)) = (infer_at, input) {
-        out[at] = infer_dim(input, &out, at);
+        out[at] = infer_dim(input, &out, at, &copied);
     }
     Ok(out)
 }
 
 /// The -1 dim of a reshape: ∏input / ∏(other output dims), cancelling equal symbols. A
 /// product dim (`B*S`, `64*T`) counts as its factors, so that `[B*S, 64]` reshaped to
-/// `[-1, S, 64]` gives `B`.
-fn infer_dim(input: &[Dim], out: &[Dim], at: usize) -> Dim {
+/// `[-1, S, 64]` gives `B`. A dim copied by a 0 is the input's dim at the same place, so the
+/// two cancel whatever they are: `[B, ?, 2, 4]` reshaped to `[0, 0, -1]` gives 8 with the
+/// second dim unknown (as `onnx.shape_inference` does).
+fn infer_dim(input: &[Dim], out: &[Dim], at: usize, copied: &[bool]) -> Dim {
     let mut num: u64 = 1;
     let mut syms: Vec<Dim> = Vec::new();
-    for d in input {
+    for (i, d) in input.iter().enumerate() {
+        if copied.get(i) == Some(&true) {
+            continue;
+        }
         let Some((k, fs)) = factors(d) else {
             return Dim::Unknown;
         };
@@ -253,7 +261,7 @@ fn infer_dim(input: &[Dim], out: &[Dim], at: usize) -> Dim {
     }
     let mut den: u64 = 1;
     for (i, d) in out.iter().enumerate() {
-        if i == at {
+        if i == at || copied[i] {
             continue;
         }
         let Some((k, fs)) = factors(d) else {

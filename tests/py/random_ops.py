@@ -825,6 +825,83 @@ SINGLE = [conv, conv_t, pool("MaxPool"), pool("AveragePool"), pool("LpPool"), re
           split, reduce_, einsum, matmul, shape_ops, norm, misc, rnn, quant, assorted]
 
 
+def seq_step(b, x, d):
+    """one random transformation of a [B, S, D] float tensor, as transformer and audio
+    exports write them (shape arithmetic on Shape(x) where they do); returns (name, d)"""
+    k = R.choice(["linear", "layernorm", "heads", "attention", "position", "causal", "conv1d", "cls", "pad",
+                  "downsample", "last", "gelu_residual", "flatten_heads", "expand_batch"])
+    if k == "linear":
+        d2 = R.choice([4, 8, 12])
+        y = b.op("MatMul", [x, b.const(np.zeros([d, d2], np.float32))])
+        return b.op("Add", [y, b.const(np.zeros([d2], np.float32))]), d2
+    if k == "layernorm":
+        return b.op("LayerNormalization", [x, b.const(np.ones([d], np.float32)), b.const(np.zeros([d], np.float32))],
+                    axis=-1), d
+    if k in ("heads", "attention", "flatten_heads"):
+        h = R.choice([v for v in (1, 2, 4) if d % v == 0])
+        sh = b.op("Shape", [x])
+        bs = b.op("Slice", [sh, b.const(i64([0])), b.const(i64([2]))])
+        split = b.op("Reshape", [x, b.op("Concat", [bs, b.const(i64([h, d // h]))], axis=0)])
+        q = b.op("Transpose", [split], perm=[0, 2, 1, 3])
+        if k == "attention":
+            kt = b.op("Transpose", [split], perm=[0, 2, 3, 1])
+            scores = b.op("Softmax", [b.op("Div", [b.op("MatMul", [q, kt]), b.const(np.array(2.0, np.float32))])],
+                          axis=-1)
+            q = b.op("MatMul", [scores, q])
+        back = b.op("Transpose", [q], perm=[0, 2, 1, 3])
+        if k == "flatten_heads" or R.random() < 0.5:
+            # [B, S, h, d/h] -> [B, S, D] with Reshape(0, 0, -1)
+            return b.op("Reshape", [back, b.const(i64([0, 0, -1]))]), d
+        s_dim = b.op("Gather", [sh, b.const(i64(1))], axis=0)
+        b_dim = b.op("Gather", [sh, b.const(i64(0))], axis=0)
+        tgt = b.op("Concat", [b.op("Unsqueeze", [b_dim, b.const(i64([0]))]),
+                              b.op("Unsqueeze", [s_dim, b.const(i64([0]))]), b.const(i64([d]))], axis=0)
+        return b.op("Reshape", [back, tgt]), d
+    if k == "position":
+        # positions table sliced to the sequence length read off the input
+        s_len = b.op("Gather", [b.op("Shape", [x]), b.const(i64([1]))], axis=0)
+        pos = b.op("Slice", [b.const(np.zeros([64, d], np.float32)), b.const(i64([0])), s_len, b.const(i64([0]))])
+        return b.op("Add", [x, pos]), d
+    if k == "causal":
+        s_len = b.op("Gather", [b.op("Shape", [x]), b.const(i64(1))], axis=0)
+        r = b.op("Range", [b.const(i64(0)), s_len, b.const(i64(1))])
+        mask = b.op("Less", [b.op("Unsqueeze", [r, b.const(i64([0]))]), b.op("Unsqueeze", [r, b.const(i64([1]))])])
+        bias = b.op("Where", [mask, b.const(np.array(-1e4, np.float32)), b.const(np.array(0.0, np.float32))])
+        scores = b.op("MatMul", [x, b.op("Transpose", [x], perm=[0, 2, 1])])
+        att = b.op("Softmax", [b.op("Add", [scores, bias])], axis=-1)
+        return b.op("MatMul", [att, x]), d
+    if k == "conv1d":
+        d2 = R.choice([4, 8])
+        kk, st = R.randint(1, 3), R.randint(1, 2)
+        t = b.op("Transpose", [x], perm=[0, 2, 1])
+        at = {"strides": [st]}
+        if R.random() < 0.5:
+            at["pads"] = [R.randint(0, 1), R.randint(0, 1)]
+        y = b.op("Conv", [t, b.const(np.zeros([d2, d, kk], np.float32))], **at)
+        return b.op("Transpose", [y], perm=[0, 2, 1]), d2
+    if k == "cls":
+        # a learned token expanded to the batch and put in front: S + 1
+        b_dim = b.op("Slice", [b.op("Shape", [x]), b.const(i64([0])), b.const(i64([1]))])
+        tgt = b.op("Concat", [b_dim, b.const(i64([1, d]))], axis=0)
+        cls = b.op("Expand", [b.const(np.zeros([1, 1, d], np.float32)), tgt])
+        return b.op("Concat", [cls, x], axis=1), d
+    if k == "pad":
+        return b.op("Pad", [x, b.const(i64([0, R.randint(0, 3), 0, 0, R.randint(0, 3), 0]))]), d
+    if k == "downsample":
+        return b.op("Slice", [x, b.const(i64([R.randint(0, 1)])), b.const(i64([2**63 - 1])), b.const(i64([1])),
+                              b.const(i64([R.randint(2, 3)]))]), d
+    if k == "last":
+        # the last position kept with its axis: Slice(-1, INT64_MAX)
+        return b.op("Slice", [x, b.const(i64([-1])), b.const(i64([2**63 - 1])), b.const(i64([1]))]), d
+    if k == "gelu_residual":
+        y = b.op("Mul", [x, b.op("Sigmoid", [b.op("Mul", [x, b.const(np.array(1.702, np.float32))])])])
+        return b.op("Add", [x, y]), d
+    if k == "expand_batch":
+        sh = b.op("Shape", [x])
+        return b.op("Add", [x, b.op("Expand", [b.const(np.zeros([1, 1, d], np.float32)), sh])]), d
+    return x, d
+
+
 def evaluated(m, feeds, names=None):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
@@ -897,45 +974,58 @@ for n in range(SINGLES):
     onnx.save(m, os.path.join(OUT, case["file"]))
     cases.append(case)
 
-for n in range(CHAINS):
-    b = B()
-    C = R.randint(1, 3)
-    x, c = "x", C
-    for _ in range(R.randint(2, 7)):
-        nx, nc = step(b, x, c)
-        last = b.nodes[-1] if b.nodes else None
-        if last is not None and last.op_type == "Concat" and list(last.input) == [x, x]:
-            ax = [a.i for a in last.attribute if a.name == "axis"][0]
-            nc = 2 * c if ax == 1 else c
-        x, c = nx, nc
-    if x == "x":
-        continue
-    gout = [helper.make_tensor_value_info(x, TensorProto.FLOAT, None)]
-    def model(h, w):
-        gin = [helper.make_tensor_value_info("x", TensorProto.FLOAT, [1, C, h, w])]
-        m = helper.make_model(helper.make_graph(b.nodes, "g", gin, gout, b.inits),
-                              opset_imports=[helper.make_opsetid("", 18)])
-        m.ir_version = 9
-        return m
-    name = f"chain{n:04}.onnx"
-    wrote = False
-    for h, w in [(R.randint(4, 24), R.randint(4, 24)) for _ in range(2)]:
-        # Every tensor of the chain, not only its output: a window wider than its input or
-        # a slice left empty midway is outside the specification, and the evaluator's numpy
-        # still returns sizes from there on that shape inference does not give.
-        m = model(h, w)
-        names = [o for nd in m.graph.node for o in nd.output]
-        try:
-            ref = [list(np.asarray(t).shape) for t in evaluated(m, {"x": np.zeros([1, C, h, w], np.float32)}, names)]
-        except Exception:
-            skipped["left out: invalid, refused or empty"] += 1
+def chains(prefix, count, draw_input, feature_axis, sizes, step_fn):
+    """`count` random chains of `step_fn` from x of a shape `draw_input` draws (numbers and
+    symbol names), each case at two sizes drawn from `sizes` (symbol -> (lo, hi))."""
+    for n in range(count):
+        b = B()
+        first = draw_input()
+        x, feat = "x", first[feature_axis]
+        for _ in range(R.randint(2, 7)):
+            nx, nf = step_fn(b, x, feat)
+            last = b.nodes[-1] if b.nodes else None
+            if last is not None and last.op_type == "Concat" and list(last.input) == [x, x]:
+                ax = [a.i for a in last.attribute if a.name == "axis"][0]
+                nf = 2 * feat if ax == 1 else feat
+            x, feat = nx, nf
+        if x == "x":
             continue
-        if not settled(ref, inferred(m, names)):
-            skipped["left out: chain the references disagree on"] += 1
-            continue
-        if not wrote:
-            onnx.save(model("H", "W"), os.path.join(OUT, name))
-            wrote = True
-        cases.append({"file": name, "dims": {"H": h, "W": w}, "outputs": [[ref[names.index(x)], "float32"]]})
+        gout = [helper.make_tensor_value_info(x, TensorProto.FLOAT, None)]
+
+        def model(values):
+            dims = [values.get(d, d) if isinstance(d, str) else d for d in first]
+            gin = [helper.make_tensor_value_info("x", TensorProto.FLOAT, dims)]
+            m = helper.make_model(helper.make_graph(b.nodes, "g", gin, gout, b.inits),
+                                  opset_imports=[helper.make_opsetid("", 18)])
+            m.ir_version = 9
+            return m
+        name = f"{prefix}{n:04}.onnx"
+        wrote = False
+        for _ in range(2):
+            values = {k: R.randint(lo, hi) for k, (lo, hi) in sizes.items()}
+            # Every tensor of the chain, not only its output: a window wider than its input
+            # or a slice left empty midway is outside the specification, and the evaluator's
+            # numpy still returns sizes from there on that shape inference does not give.
+            m = model(values)
+            names = [o for nd in m.graph.node for o in nd.output]
+            shape = [values.get(d, d) if isinstance(d, str) else d for d in first]
+            try:
+                ref = [list(np.asarray(t).shape) for t in evaluated(m, {"x": np.zeros(shape, np.float32)}, names)]
+            except Exception:
+                skipped["left out: invalid, refused or empty"] += 1
+                continue
+            if not settled(ref, inferred(m, names)):
+                skipped["left out: chain the references disagree on"] += 1
+                continue
+            if not wrote:
+                onnx.save(model({}), os.path.join(OUT, name))
+                wrote = True
+            cases.append({"file": name, "dims": values, "outputs": [[ref[names.index(x)], "float32"]]})
+
+
+# Image chains: x[1, C, H, W]; sequence chains: x[B, S, D], as transformer and audio
+# encoders take them.
+chains("chain", CHAINS, lambda: [1, R.randint(1, 3), "H", "W"], 1, {"H": (4, 24), "W": (4, 24)}, step)
+chains("seq", CHAINS, lambda: ["B", "S", R.choice([4, 8, 12])], 2, {"B": (1, 3), "S": (2, 20)}, seq_step)
 
 print(json.dumps({"cases": cases, "counts": skipped}))

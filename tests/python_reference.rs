@@ -1171,7 +1171,8 @@ fn ml_ops_agree_with_the_onnx_reference_evaluator() {
 
 /// Random single-op models (shapes and attributes drawn at random, for the ops of vision,
 /// audio, transformer and quantized models) and random op chains over x[1, C, H, W] with H and
-/// W symbolic and exporter-style shape arithmetic, drawn by `tests/py/random_ops.py`. Where the
+/// W symbolic and exporter-style shape arithmetic, random sequence chains over x[B, S, D], and
+/// models with a Loop, Scan, If or a sequence, drawn by `tests/py/random_ops.py`. Where the
 /// `onnx` package's two references, its reference evaluator running the model and its shape
 /// inference, agree (or shape inference leaves an output open), tilecut must infer exactly the
 /// evaluator's output shapes and element types, the chains' H and W fixed as `--dim` fixes

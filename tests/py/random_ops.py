@@ -1,18 +1,21 @@
 """Random ONNX models for tilecut's differential test (tests/python_reference.rs).
 
-Writes single-op models with shapes and attributes drawn at random, and chains of ops over
+Writes single-op models with shapes and attributes drawn at random; chains of ops over
 x[1, C, H, W] with H and W symbolic (with exporter-style shape arithmetic: Shape, Gather,
-Concat, Reshape, Resize sizes), into a folder, and prints as JSON the output shapes the
-`onnx` package's two references give: the reference evaluator (`onnx.reference`) running
-the model, and `onnx.shape_inference.infer_shapes` (strict, with data propagation). A case
-is exact where both references agree on every output (or shape inference leaves it open)
-and no output is empty. Where they disagree on a single-op model both accept (seen: numpy
-slicing in the evaluator for negative steps and clamped ends, pools with ceil_mode, Resize,
-ConvTranspose, STFT), the case lists the other reference's shapes, and the specification
-text's where both deviate from it, as `alternatives`: this check does not adjudicate between
-them. Chains are kept only where the references agree on every tensor.
+Concat, Reshape, Resize sizes); chains over x[B, S, D] as transformer and audio encoders
+write them; and models with a Loop, Scan, If or sequence. They go into a folder, and the
+output shapes the `onnx` package's two references give are printed as JSON: the reference
+evaluator (`onnx.reference`) running the model, and `onnx.shape_inference.infer_shapes`
+(strict, with data propagation). A case is exact where both references agree on every
+output (or shape inference leaves it open) and no output is empty. Where they disagree on a
+single-op model both accept (seen: numpy slicing in the evaluator for negative steps and
+clamped ends, pools with ceil_mode, Resize, ConvTranspose, STFT), the case lists the other
+reference's shapes, and the specification text's where both deviate from it, as
+`alternatives`: this check does not adjudicate between them. Chains are kept only where the
+references agree on every tensor. A Loop's scan outputs are written per the specification
+(the evaluator concatenates what the specification stacks).
 
-Usage: random_ops.py OUT_DIR SEED SINGLE_COUNT CHAIN_COUNT
+Usage: random_ops.py OUT_DIR SEED SINGLE_COUNT CHAIN_COUNT (CHAIN_COUNT of each kind)
 """
 import json, os, random, sys, warnings
 
@@ -902,6 +905,95 @@ def seq_step(b, x, d):
     return x, d
 
 
+def control():
+    """A model with a subgraph or a sequence: a Loop of fixed trip count with a carried value
+    and a scan output, a Scan over a sequence axis, an If on a constant condition whose
+    branches differ in shape, or a tensor split to a sequence and joined back. Returns
+    (model, feeds, the output shapes the specification gives where the evaluator deviates)."""
+    k = R.choice(["loop", "scan", "if", "sequence"])
+    spec = None
+    shp = rshape(R.randint(1, 3), 1, 5)
+    x = f32(shp)
+    xin = helper.make_tensor_value_info("x", TensorProto.FLOAT, shp)
+    inits, nodes, outs = [], [], []
+    if k == "loop":
+        trips = R.randint(1, 4)
+        inits += [numpy_helper.from_array(i64(trips), "m"), numpy_helper.from_array(np.array(True), "c")]
+        body_nodes = [helper.make_node("Identity", ["c_in"], ["c_out"]),
+                      helper.make_node("Add", ["v_in", "x"], ["v_out"])]
+        scan = R.choice(["same", "reduced", "cast"])
+        if scan == "same":
+            body_nodes.append(helper.make_node("Mul", ["v_in", "v_in"], ["s_out"]))
+        elif scan == "reduced":
+            body_nodes.append(helper.make_node("ReduceSum", ["v_in", "ax"], ["s_out"], keepdims=0))
+            body_nodes.insert(0, helper.make_node("Constant", [], ["ax"], value=numpy_helper.from_array(i64([0]))))
+        else:
+            body_nodes.append(helper.make_node("Cast", ["i"], ["s_out"], to=TensorProto.FLOAT))
+        body = helper.make_graph(
+            body_nodes, "body",
+            [helper.make_tensor_value_info("i", TensorProto.INT64, []),
+             helper.make_tensor_value_info("c_in", TensorProto.BOOL, []),
+             helper.make_tensor_value_info("v_in", TensorProto.FLOAT, None)],
+            [helper.make_tensor_value_info("c_out", TensorProto.BOOL, []),
+             helper.make_tensor_value_info("v_out", TensorProto.FLOAT, None),
+             helper.make_tensor_value_info("s_out", TensorProto.FLOAT, None)])
+        nodes.append(helper.make_node("Loop", ["m", "c", "x"], ["v", "s"], body=body))
+        outs = ["v", "s"]
+        # Scan outputs are stacked, one row per iteration (ONNX operator spec, Loop; its
+        # conformance model test_loop11 stacks five [1] values to [5, 1]). The reference
+        # evaluator concatenates them instead, so the expected shapes are written here.
+        stacked = {"same": shp, "reduced": shp[1:], "cast": []}[scan]
+        spec = [shp, [trips] + stacked]
+    elif k == "scan":
+        # The reference evaluator scans axis 0 only.
+        axis, out_axis = 0, 0
+        state = [d for i, d in enumerate(shp) if i != axis]
+        inits.append(numpy_helper.from_array(np.zeros(state, np.float32), "s0"))
+        body = helper.make_graph(
+            [helper.make_node("Add", ["s_in", "xi"], ["s_out"]),
+             helper.make_node("Identity", ["s_out"], ["y_out"])], "body",
+            [helper.make_tensor_value_info("s_in", TensorProto.FLOAT, state),
+             helper.make_tensor_value_info("xi", TensorProto.FLOAT, state)],
+            [helper.make_tensor_value_info("s_out", TensorProto.FLOAT, state),
+             helper.make_tensor_value_info("y_out", TensorProto.FLOAT, state)])
+        nodes.append(helper.make_node("Scan", ["s0", "x"], ["s", "y"], body=body, num_scan_inputs=1,
+                                      scan_input_axes=[axis], scan_output_axes=[out_axis]))
+        outs = ["s", "y"]
+    elif k == "if":
+        inits.append(numpy_helper.from_array(np.array(R.random() < 0.5), "c"))
+        def branch(name, op):
+            if op == "flat":
+                n = [helper.make_node("Flatten", ["x"], [name + "_y"], axis=R.randint(0, len(shp)))]
+            elif op == "twice":
+                n = [helper.make_node("Concat", ["x", "x"], [name + "_y"], axis=R.randrange(len(shp)))]
+            else:
+                n = [helper.make_node("Neg", ["x"], [name + "_y"])]
+            return helper.make_graph(n, name, [], [helper.make_tensor_value_info(name + "_y", TensorProto.FLOAT, None)])
+        nodes.append(helper.make_node("If", ["c"], ["y"], then_branch=branch("then", R.choice(["flat", "twice", "neg"])),
+                                      else_branch=branch("else", R.choice(["flat", "twice", "neg"]))))
+        outs = ["y"]
+    else:
+        axis = R.randrange(len(shp))
+        keep = R.randint(0, 1)
+        ins = ["x"]
+        if R.random() < 0.5 and shp[axis] > 1:
+            cut = R.randint(1, shp[axis] - 1)
+            inits.append(numpy_helper.from_array(i64([cut, shp[axis] - cut]), "parts"))
+            ins.append("parts")
+            keep = 1
+        nodes.append(helper.make_node("SplitToSequence", ins, ["q"], axis=axis, keepdims=keep))
+        nodes.append(helper.make_node("ConcatFromSequence", ["q"], ["y"], axis=R.randint(0, len(shp) - 1 + (1 - keep)),
+                                      new_axis=1 - keep if len(ins) == 1 else 0))
+        inits.append(numpy_helper.from_array(i64(0), "zero"))
+        nodes.append(helper.make_node("SequenceAt", ["q", "zero"], ["z"]))
+        outs = ["y", "z"]
+    gout = [helper.make_tensor_value_info(o, TensorProto.FLOAT, None) for o in outs]
+    m = helper.make_model(helper.make_graph(nodes, "g", [xin], gout, inits), opset_imports=[helper.make_opsetid("", 18)])
+    m.ir_version = 9
+    return m, {"x": x}, spec
+
+
+
 def evaluated(m, feeds, names=None):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
@@ -949,6 +1041,7 @@ def spec_text(g, types):
 
 cases = []
 skipped = {"left out: invalid, refused or empty": 0, "left out: chain the references disagree on": 0,
+           "left out: control flow the references disagree on": 0,
            "checked against either: single op the references disagree on": 0}
 for n in range(SINGLES):
     g = SINGLE[R.randrange(len(SINGLE))]()
@@ -1022,6 +1115,25 @@ def chains(prefix, count, draw_input, feature_axis, sizes, step_fn):
                 wrote = True
             cases.append({"file": name, "dims": values, "outputs": [[ref[names.index(x)], "float32"]]})
 
+
+for n in range(CHAINS):
+    m, feeds, spec = control()
+    try:
+        outs = evaluated(m, feeds)
+        # The checker wants a shape on each graph output: symbolic dims of the rank found.
+        for o, t in zip(m.graph.output, outs):
+            o.CopyFrom(helper.make_tensor_value_info(o.name, TensorProto.FLOAT, [f"{o.name}{i}" for i in range(np.ndim(t))]))
+        onnx.checker.check_model(m)
+    except Exception:
+        skipped["left out: invalid, refused or empty"] += 1
+        continue
+    ref = spec or [list(np.asarray(o).shape) for o in outs]
+    if not settled(ref, inferred(m)):
+        skipped["left out: control flow the references disagree on"] += 1
+        continue
+    name = f"control{n:04}_{m.graph.node[0].op_type}.onnx"
+    onnx.save(m, os.path.join(OUT, name))
+    cases.append({"file": name, "dims": {}, "outputs": [[r, np.asarray(o).dtype.name] for r, o in zip(ref, outs)]})
 
 # Image chains: x[1, C, H, W]; sequence chains: x[B, S, D], as transformer and audio
 # encoders take them.

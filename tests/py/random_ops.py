@@ -582,6 +582,107 @@ def rnn():
     return g
 
 
+def legacy():
+    """Ops at the older opsets many deployed exports still use, where attributes later became
+    inputs: Slice-1/9, Pad-2/11, Upsample-7/9, Resize-10/11, Squeeze/Unsqueeze-11,
+    ReduceMean-11, Split-2/11, Clip-6/11, TopK-1/10."""
+    op = R.choice(["Slice", "Pad", "Upsample", "Resize", "Squeeze", "Unsqueeze", "ReduceMean", "Split", "Clip", "TopK"])
+    g = G(op)
+    rank = R.randint(1, 4)
+    shp = rshape(rank, 1, 6)
+    a = g.attrs
+    if op == "Slice":
+        g.opset = R.choice([1, 9])
+        g.data(f32(shp))
+        axes = R.sample(range(rank), R.randint(1, rank))
+        a["starts"] = [R.randint(-6, 6) for _ in axes]
+        a["ends"] = [R.choice([R.randint(-6, 6), 2**62]) for _ in axes]
+        if R.random() < 0.7:
+            a["axes"] = axes
+        else:
+            a["starts"], a["ends"] = a["starts"][:rank], a["ends"][:rank]
+            n = len(a["starts"])
+            a["starts"] = [R.randint(-6, 6) for _ in range(n)]
+            a["ends"] = [R.randint(-6, 6) for _ in range(n)]
+    elif op == "Pad":
+        g.opset = R.choice([2, 11])
+        g.data(f32(shp))
+        pads = [R.randint(0, 2) for _ in range(2 * rank)]
+        if g.opset == 2:
+            a["pads"] = pads
+        else:
+            g.const(i64(pads))
+    elif op == "Upsample":
+        g.opset = R.choice([7, 9])
+        shp = rshape(R.randint(3, 4), 1, 4)
+        g.data(f32(shp))
+        scales = [1.0, 1.0] + [R.choice([1.0, 2.0, 3.0]) for _ in shp[2:]]
+        if g.opset == 7:
+            a["scales"] = scales
+        else:
+            g.const(np.array(scales, np.float32))
+    elif op == "Resize":
+        g.opset = R.choice([10, 11])
+        shp = rshape(4, 1, 5)
+        g.data(f32(shp))
+        scales = np.array([1.0, 1.0, R.choice([0.5, 2.0, 1.5]), R.choice([2.0, 1.0, 3.0])], np.float32)
+        if g.opset == 10:
+            g.const(scales)
+        elif R.random() < 0.5:
+            g.const(np.zeros([0], np.float32)).const(scales)
+        else:
+            g.const(np.zeros([0], np.float32)).const(np.zeros([0], np.float32)).const(
+                i64(shp[:2] + [R.randint(1, 9), R.randint(1, 9)]))
+    elif op == "Squeeze":
+        g.opset = 11
+        shp = [R.choice([1, d]) for d in shp]
+        g.data(f32(shp))
+        ones = [i for i, d in enumerate(shp) if d == 1]
+        if ones and R.random() < 0.7:
+            a["axes"] = [x - rank if R.random() < 0.3 else x for x in R.sample(ones, R.randint(1, len(ones)))]
+    elif op == "Unsqueeze":
+        g.opset = 11
+        g.data(f32(shp))
+        k = R.randint(1, 2)
+        a["axes"] = R.sample(range(rank + k), k)
+    elif op == "ReduceMean":
+        g.opset = 11
+        g.data(f32(shp))
+        if R.random() < 0.7:
+            a["axes"] = R.sample(range(-rank, rank), 1)
+        a["keepdims"] = R.randint(0, 1)
+    elif op == "Split":
+        g.opset = R.choice([2, 11])
+        g.data(f32(shp))
+        ax = R.randrange(rank)
+        a["axis"] = ax
+        if shp[ax] >= 2 and R.random() < 0.6:
+            cut = R.randint(1, shp[ax] - 1)
+            a["split"] = [cut, shp[ax] - cut]
+            g.n_out = 2
+        else:
+            g.n_out = 1
+    elif op == "Clip":
+        g.opset = R.choice([6, 11])
+        g.data(f32(shp))
+        if g.opset == 6:
+            a["min"], a["max"] = -1.0, 1.0
+        else:
+            g.const(np.array(-1.0, np.float32)).const(np.array(1.0, np.float32))
+    elif op == "TopK":
+        g.opset = R.choice([1, 10])
+        g.data(f32(shp))
+        ax = R.randint(-rank, rank - 1)
+        a["axis"] = ax
+        k = R.randint(1, shp[ax])
+        if g.opset == 1:
+            a["k"] = k
+        else:
+            g.const(i64([k]))
+        g.n_out = 2
+    return g
+
+
 def u8(shape):
     return np.random.RandomState(R.randint(0, 1 << 30)).randint(0, 255, size=shape).astype(np.uint8)
 
@@ -825,7 +926,7 @@ def step(b, x, c):
 
 
 SINGLE = [conv, conv_t, pool("MaxPool"), pool("AveragePool"), pool("LpPool"), resize, slice_, pad, gather,
-          split, reduce_, einsum, matmul, shape_ops, norm, misc, rnn, quant, assorted]
+          split, reduce_, einsum, matmul, shape_ops, norm, misc, rnn, quant, assorted, legacy]
 
 
 def seq_step(b, x, d):

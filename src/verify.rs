@@ -340,7 +340,7 @@ fn one_line(e: &anyhow::Error) -> String {
 
 fn run_tract(path: &Path, inputs: &[(String, Tensor)]) -> Result<BTreeMap<String, Tensor>, VerifyError> {
     let err = |e: anyhow::Error| VerifyError(format!("{}: tract could not run it: {}", path.display(), one_line(&e)));
-    let r = std::panic::catch_unwind(|| -> TractResult<BTreeMap<String, Tensor>> {
+    let r = quietly(|| -> TractResult<BTreeMap<String, Tensor>> {
         // `model_for_path`, with the dim names cleared in between (`tract_safe_dims`).
         let onnx = tract_onnx::onnx();
         let mut proto = onnx.proto_model_for_path(path)?;
@@ -388,8 +388,36 @@ fn run_tract(path: &Path, inputs: &[(String, Tensor)]) -> Result<BTreeMap<String
     match r {
         Ok(Ok(m)) => Ok(m),
         Ok(Err(e)) => Err(err(e)),
-        Err(_) => Err(VerifyError(format!("{}: tract panicked on it", path.display()))),
+        Err(why) => Err(VerifyError(format!("{}: tract panicked on it: {why}", path.display()))),
     }
+}
+
+/// Runs `f`, turning a panic in it (tract asserts on some models it cannot run) into its
+/// message, without the panic report the default hook would print on stderr first: the user
+/// gets tilecut's one-line error. Other threads' panics still reach the previous hook.
+fn quietly<T>(f: impl FnOnce() -> T) -> Result<T, String> {
+    use std::sync::Arc;
+    let here = std::thread::current().id();
+    let previous = Arc::new(std::panic::take_hook());
+    let outer = Arc::clone(&previous);
+    std::panic::set_hook(Box::new(move |info| {
+        if std::thread::current().id() != here {
+            outer(info);
+        }
+    }));
+    let r = std::panic::catch_unwind(std::panic::AssertUnwindSafe(f));
+    drop(std::panic::take_hook());
+    if let Ok(hook) = Arc::try_unwrap(previous) {
+        std::panic::set_hook(hook);
+    }
+    r.map_err(|payload| {
+        let text = payload
+            .downcast_ref::<&str>()
+            .map(|s| s.to_string())
+            .or_else(|| payload.downcast_ref::<String>().cloned())
+            .unwrap_or_else(|| "no message".into());
+        text.lines().next().unwrap_or_default().to_string()
+    })
 }
 
 fn compare(name: &str, a: &Tensor, b: &Tensor, tol: Tolerance) -> OutputCheck {

@@ -793,6 +793,36 @@ fn tract_verifies_models_whose_dim_names_it_cannot_parse() {
     assert_eq!(j["outputs"][0]["elements"], 12);
 }
 
+/// A model tract panics on (a Squeeze-11 with a negative axis: tract-hir 0.21 asserts in its
+/// shape rules; the ONNX operator spec, Squeeze-11, allows axes in [-r, r-1]) is a one-line
+/// error, exit 2, with tract's message and no panic report on stderr.
+#[test]
+fn a_panic_inside_tract_is_a_one_line_error() {
+    let d = tempfile::tempdir().expect("tmp");
+    let mut m = model(
+        vec![{
+            let mut n = node("Squeeze", &["x"], &["y"]);
+            n.attribute.push(ints_attr("axes", &[-1, 0]));
+            n
+        }],
+        vec![vi("x", 1, &[Dm::N(1), Dm::N(3), Dm::N(1)])],
+        vec![vi("y", 1, &[Dm::N(3)])],
+        vec![],
+    );
+    m.opset_import[0].version = 11;
+    let p = write(d.path(), "squeeze11.onnx", &m);
+    let out = d.path().join("pieces");
+    let (pm, o) = (p.to_str().expect("utf8"), out.to_str().expect("utf8"));
+    let (c, _, err) = run(&["split", pm, "--out", o]);
+    assert_eq!(c, 0, "{err}");
+    let (c, stdout, err) = run(&["verify", pm, o]);
+    assert_eq!(c, 2, "{stdout}{err}");
+    assert!(stdout.is_empty(), "{stdout}");
+    assert_eq!(err.lines().count(), 1, "{err}");
+    assert!(err.contains("squeeze11.onnx: tract panicked on it: "), "{err}");
+    assert!(!err.contains("panicked at"), "{err}");
+}
+
 /// Tolerances must be non-negative numbers: anything else is a one-line error, exit 2.
 #[test]
 fn bad_tolerances_are_refused() {

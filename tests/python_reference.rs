@@ -430,9 +430,9 @@ fn size_at(d: &Dim, values: &[(&str, u64)]) -> Option<u64> {
 
 /// Slices of a symbolic length T keep T in their size where the size is an expression of T:
 /// to the end from a start (ends written as INT64_MAX, INT32_MAX or 10^9), with a stride,
-/// and the whole axis backwards. Each expression, evaluated at several lengths, must equal the
-/// size the `onnx` package's reference evaluator gives at that length. A slice whose size is
-/// a `min` with T (a fixed end) stays unknown.
+/// to an end counted from the end (`x[1:-1]`), the whole axis backwards, and the first or
+/// last k (`min(T,k)`). Each expression, evaluated at several lengths, must equal the size
+/// the `onnx` package's reference evaluator gives at that length.
 #[test]
 fn symbolic_slices_agree_with_the_onnx_reference_evaluator_at_each_length() {
     if !python_onnx("symbolic_slices_agree_with_the_onnx_reference_evaluator_at_each_length") {
@@ -448,6 +448,10 @@ fn symbolic_slices_agree_with_the_onnx_reference_evaluator_at_each_length() {
         (-1, -i64::MAX, -2),
         (i64::MAX, i64::MIN, -1),
         (0, 5, 1),
+        (-5, i64::MAX, 1),
+        (0, -1, 1),
+        (1, -1, 1),
+        (2, -3, 2),
     ];
     let mut nodes = Vec::new();
     let mut inits = Vec::new();
@@ -473,12 +477,12 @@ fn symbolic_slices_agree_with_the_onnx_reference_evaluator_at_each_length() {
     let dir = tempfile::tempdir().expect("tmp");
     let (path, dims) = symbolic_outputs(m, dir.path(), "slices.onnx");
     let ours: Vec<Dim> = dims.iter().map(|d| d[0].clone()).collect();
-    assert_eq!(ours[forms.len() - 1], Dim::Unknown, "min(T, 5) is not guessed");
+    assert_eq!(ours[8], Dim::sym("min(T,5)"));
 
-    let lengths = [1u64, 2, 7, 12];
+    let lengths = [1u64, 2, 3, 4, 5, 6, 7, 12];
     let reference = reference_shapes(&path, &lengths.map(|t| vec![t]));
     for (t, shapes) in lengths.into_iter().zip(&reference) {
-        for (k, dim) in ours.iter().enumerate().take(forms.len() - 1) {
+        for (k, dim) in ours.iter().enumerate() {
             let want = shapes[k][0];
             let Dim::Sym(text) = dim else {
                 panic!("slice {:?}: tilecut gives {dim:?}", forms[k])
@@ -486,7 +490,9 @@ fn symbolic_slices_agree_with_the_onnx_reference_evaluator_at_each_length() {
             let got = size_at(dim, &[("T", t)]);
             // `T-2` is below zero at T = 1, where the slice is empty: the expression then
             // evaluates to unknown, never to a wrong size.
-            let empty_below = forms[k].0 > 0 && forms[k].2 > 0 && t < forms[k].0 as u64;
+            let (start, end, step) = forms[k];
+            let taken = start.max(0) as u64 + if end < 0 && step > 0 { end.unsigned_abs() } else { 0 };
+            let empty_below = step > 0 && start >= 0 && t < taken;
             if empty_below {
                 assert!(
                     got.is_none() || got == Some(want),
@@ -496,6 +502,73 @@ fn symbolic_slices_agree_with_the_onnx_reference_evaluator_at_each_length() {
             } else {
                 assert_eq!(got, Some(want), "slice {:?} at T = {t}: `{text}`", forms[k]);
             }
+        }
+    }
+}
+
+/// Encoder exports slice fixed tables to the input's length: learned positions
+/// (`table[:, :S]` of a 16-row table), a causal mask (`mask[:, :, :S, :S]`), and a TopK whose
+/// k is `Min(S, 5)`. Each slice is `min(S,16)` (ONNX Slice clamps its end to the axis) and
+/// broadcasting it against S gives S back, so the sequence keeps its length through the
+/// Add and the attention scores; the TopK keeps `min(S,5)`. Every output size, evaluated at
+/// several lengths, must equal the reference evaluator's.
+#[test]
+fn positions_and_masks_sliced_to_the_length_keep_it() {
+    if !python_onnx("positions_and_masks_sliced_to_the_length_keep_it") {
+        return;
+    }
+    let mut nodes = vec![
+        node("Shape", &["x"], &["sx"]),
+        node("Gather", &["sx", "index1"], &["s"]),
+        node("Unsqueeze", &["s", "zero"], &["s1"]),
+        node("Slice", &["table", "zero", "s1", "one"], &["pos"]),
+        node("Add", &["x", "pos"], &["y"]),
+        node("Transpose", &["y"], &["yt"]),
+        node("MatMul", &["y", "yt"], &["scores"]),
+        node("Unsqueeze", &["scores", "one"], &["scores4"]),
+        node("Concat", &["s1", "s1"], &["ends"]),
+        node("Slice", &["mask", "zero2", "ends", "axes23"], &["causal"]),
+        node("Add", &["scores4", "causal"], &["masked"]),
+        node("ReduceMax", &["y", "minus1"], &["score"]),
+        node("Min", &["s1", "cap"], &["k"]),
+        node("TopK", &["score", "k"], &["top", "top_index"]),
+    ];
+    nodes[5].attribute = vec![ints_attr("perm", &[0, 2, 1])];
+    nodes[8].attribute = vec![int_attr("axis", 0)];
+    nodes[11].attribute = vec![int_attr("keepdims", 0)];
+    let inits = vec![
+        f32_init("table", &[1, 16, 4]),
+        f32_init("mask", &[1, 1, 16, 16]),
+        i64_init("index1", &[], &[1]),
+        i64_init("one", &[1], &[1]),
+        i64_init("zero", &[1], &[0]),
+        i64_init("zero2", &[2], &[0, 0]),
+        i64_init("axes23", &[2], &[2, 3]),
+        i64_init("minus1", &[1], &[-1]),
+        i64_init("cap", &[1], &[5]),
+    ];
+    let outs = ["y", "masked", "top", "pos"];
+    let m = model(
+        nodes,
+        vec![vi("x", 1, &[Dm::S("B"), Dm::S("S"), Dm::N(4)])],
+        untyped(&outs),
+        inits,
+    );
+    let dir = tempfile::tempdir().expect("tmp");
+    let (path, ours) = symbolic_outputs(m, dir.path(), "positions.onnx");
+    let (b, s) = (Dim::sym("B"), Dim::sym("S"));
+    assert_eq!(ours[0], [b.clone(), s.clone(), Dim::Known(4)]);
+    assert_eq!(ours[1], [b.clone(), Dim::Known(1), s.clone(), s]);
+    assert_eq!(ours[2], [b, Dim::sym("min(S,5)")]);
+    assert_eq!(ours[3], [Dim::Known(1), Dim::sym("min(S,16)"), Dim::Known(4)]);
+
+    let sizes: Vec<(u64, u64)> = vec![(1, 1), (2, 3), (1, 5), (3, 6), (2, 16)];
+    let reference = reference_shapes(&path, &sizes.iter().map(|&(b, s)| vec![b, s, 4]).collect::<Vec<_>>());
+    for (&(bv, sv), shapes) in sizes.iter().zip(&reference) {
+        for (k, dims) in ours.iter().enumerate() {
+            let got: Vec<Option<u64>> = dims.iter().map(|d| size_at(d, &[("B", bv), ("S", sv)])).collect();
+            let want: Vec<Option<u64>> = shapes[k].iter().map(|&v| Some(v)).collect();
+            assert_eq!(got, want, "output {} at B = {bv}, S = {sv}", outs[k]);
         }
     }
 }
@@ -742,8 +815,9 @@ fn expand_targets_tested_against_minus_one_keep_their_symbols() {
 /// Transformer exports with a symbolic batch B and length T: tokens flattened to [B*T, 8] and
 /// back with -1 for the batch (the product counts as its factors, so -1 is B); the tokens
 /// sliced from 1 to the length read off their own shape (`x[:, 1:T]`: T-1); a table of 32
-/// positions sliced to the length (`positions[:T]`, `positions[3:T]`: min(T, 32) less the
-/// start, which no dim expresses, so that axis is unknown and the other kept); a Slice whose
+/// positions sliced to the length (`positions[:T]`: min(T,32); `positions[3:T]`: min(T, 32)
+/// less the start, or 0, which no dim expresses, so that axis is unknown and the other
+/// kept); a Slice whose
 /// start is computed from the data, with default axes: only the first axis is unknown. At
 /// each (B, T) every dim tilecut gives must equal what the `onnx` package's reference
 /// evaluator computes (Reshape, Slice, Add per the ONNX operator specification); at T = 40
@@ -812,7 +886,7 @@ fn transformer_reshapes_and_position_slices_keep_their_symbols() {
     let (path, ours) = symbolic_outputs(m, dir.path(), "tokens.onnx");
     assert_eq!(ours[1], vec![Dim::sym("B"), Dim::sym("T"), Dim::Known(8)]);
     assert_eq!(ours[2], vec![Dim::sym("B"), Dim::sym("T-1"), Dim::Known(8)]);
-    assert_eq!(ours[3], vec![Dim::Unknown, Dim::Known(8)]);
+    assert_eq!(ours[3], vec![Dim::sym("min(T,32)"), Dim::Known(8)]);
     assert_eq!(ours[4], vec![Dim::Unknown, Dim::Known(8)]);
     assert_eq!(ours[5], vec![Dim::Unknown, Dim::sym("T"), Dim::Known(8)]);
     let runs: &[(u64, u64)] = &[(1, 3), (2, 5), (3, 40)];
@@ -821,7 +895,7 @@ fn transformer_reshapes_and_position_slices_keep_their_symbols() {
         for (k, dims) in ours.iter().enumerate() {
             for (i, d) in dims.iter().enumerate() {
                 // Unknown is never wrong; only the data-dependent start and the table's
-                // min(T, 32) are expected here.
+                // min(T, 32) - 3 are expected here.
                 if let Some(got) = size_at(d, &[("B", b), ("T", t)]) {
                     assert_eq!(got, want[k][i], "{} dim {i} at B = {b}, T = {t}", outs[k]);
                 } else {

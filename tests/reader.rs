@@ -1656,8 +1656,9 @@ fn symbols_only_the_file_invents_are_not_advised() {
         vec![
             node("Shape", &["x"], &["s"]),
             node("Slice", &["s", "one", "two"], &["len"]),
-            // pos[0:len] of a 100-row table: min(len, 100) rows, which dims cannot say.
-            node("Slice", &["table", "zero", "len", "zero"], &["pe"]),
+            // pos[1:len] of a 100-row table: min(len, 100) - 1 rows or none, which dims
+            // cannot say.
+            node("Slice", &["table", "one", "len", "zero"], &["pe"]),
             node("Transpose", &["pe"], &["pet"]),
             node("MatMul", &["x", "pet"], &["y"]),
         ],
@@ -1681,12 +1682,12 @@ fn symbols_only_the_file_invents_are_not_advised() {
     assert_eq!(v["model"]["unknown_because"], serde_json::json!(["T"]));
     assert!(!out.contains("--dim unk__"), "{out}");
     assert_eq!(v["outputs"][0]["shape"], serde_json::json!([1, "T", null]));
-    // Fixed, the input's symbol sizes everything: min(5, 100) rows.
+    // Fixed, the input's symbol sizes everything: min(5, 100) - 1 rows.
     let (code, out, err) = run(&["inspect", ps, "--format", "json", "--dim", "T=5"]);
     assert_eq!(code, 0, "{err}");
     let v: serde_json::Value = serde_json::from_str(&out).expect("json");
-    assert_eq!(v["outputs"][0]["shape"], serde_json::json!([1, 5, 5]));
-    assert_eq!(v["model"]["macs"], 5 * 8 * 5);
+    assert_eq!(v["outputs"][0]["shape"], serde_json::json!([1, 5, 4]));
+    assert_eq!(v["model"]["macs"], 5 * 8 * 4);
 }
 
 /// A chain of `n` Transposes (alternating perms) over a 2×3 input, with an `If` in the middle

@@ -41,8 +41,7 @@ impl Dim {
     pub fn symbols(&self) -> Vec<String> {
         match self {
             Dim::Sym(s) if s.contains(char::is_whitespace) => vec![s.to_string()],
-            Dim::Sym(s) => s
-                .split(['*', '+', '(', ')'])
+            Dim::Sym(s) => tokens(s)
                 // A data-dependent size is named after its node (`k@/model/TopK`), and node
                 // names have slashes: only elsewhere is `/` the division tilecut writes.
                 .map(|t| if t.contains('@') { t } else { strip_constant_tail(t) })
@@ -158,6 +157,43 @@ impl Dim {
             },
             Dim::Unknown => Dim::Unknown,
         }
+    }
+
+    /// The smaller of two sizes: `min(T,512)` for the first T rows of a 512-row table, or
+    /// for the `Min` of a length and a cap that exporters write for a TopK's k. `None` where
+    /// it cannot be written as an expression `evaluate` reads back (an unknown side, a
+    /// data-dependent size, whose node name may hold any character, or a name with spaces).
+    pub fn lesser(&self, other: &Dim) -> Option<Dim> {
+        Some(match (self, other) {
+            (Dim::Known(a), Dim::Known(b)) => Dim::Known(*a.min(b)),
+            (Dim::Known(0), _) | (_, Dim::Known(0)) => Dim::Known(0),
+            (Dim::Unknown, _) | (_, Dim::Unknown) => return None,
+            (a, b) if a == b => a.clone(),
+            (Dim::Sym(s), Dim::Known(k)) | (Dim::Known(k), Dim::Sym(s)) => {
+                // A cap of a cap is one cap: min(min(x, a), k) = min(x, min(a, k)).
+                match min_sides(s) {
+                    Some((_, a)) if a.parse::<u64>().is_ok_and(|a| a <= *k) => Dim::Sym(s.clone()),
+                    Some((x, a)) if a.parse::<u64>().is_ok() => readable(&format!("min({x},{k})"))?,
+                    _ => readable(&format!("min({s},{k})"))?,
+                }
+            }
+            (Dim::Sym(a), Dim::Sym(b)) => readable(&format!("min({a},{b})"))?,
+        })
+    }
+
+    /// Whether broadcasting `x` against this dim gives `x`: this is `min(x,k)` for a known
+    /// k ≥ 1. Broadcasting x with min(x, k) is valid only where the two are equal or one of
+    /// them is 1, and in each case the result is x (min(x, k) = 1 < x needs k = 1, and
+    /// x = 1 makes min(1, k) = 1 for k ≥ 1). Positions sliced to the length and added to the
+    /// sequence keep its length this way.
+    pub fn caps(&self, x: &Dim) -> bool {
+        let (Dim::Sym(s), Dim::Sym(x)) = (self, x) else {
+            return false;
+        };
+        min_sides(s).is_some_and(|(a, b)| {
+            let at_least_one = |t: &str| t.parse::<u64>().is_ok_and(|k| k >= 1);
+            (a == &**x && at_least_one(b)) || (b == &**x && at_least_one(a))
+        })
     }
 
     /// Difference by a known amount (`T-1`); a size less another unknown one is not
@@ -297,6 +333,54 @@ pub fn compact_expression(text: &str) -> Option<String> {
 }
 
 /// A token of an expression without a trailing `-k` or `/k` (whole numbers): `T-1` is `T`,
+/// The two sides of `min(a,b)` as tilecut writes it (the whole text one call).
+fn min_sides(s: &str) -> Option<(&str, &str)> {
+    let inner = s.strip_prefix("min(")?.strip_suffix(')')?;
+    let mut depth = 0i32;
+    let mut comma = None;
+    for (i, b) in inner.bytes().enumerate() {
+        match b {
+            b'(' => depth += 1,
+            b')' => depth -= 1,
+            b',' if depth == 0 => {
+                if comma.is_some() {
+                    return None;
+                }
+                comma = Some(i);
+            }
+            _ => {}
+        }
+        if depth < 0 {
+            return None;
+        }
+    }
+    let i = comma.filter(|_| depth == 0)?;
+    Some((&inner[..i], &inner[i + 1..]))
+}
+
+/// `text` as a dim if `evaluate` reads it back and it is not too long.
+fn readable(text: &str) -> Option<Dim> {
+    (text.len() < MAX_EXPRESSION && evaluate(text, &|_| Some(1)).is_ok()).then(|| Dim::sym(text))
+}
+
+/// The operands of an expression: the text between operators, parentheses and commas, less
+/// the name of a `min(` call.
+fn tokens(s: &str) -> impl Iterator<Item = &str> {
+    let mut rest = s;
+    std::iter::from_fn(move || loop {
+        if rest.is_empty() {
+            return None;
+        }
+        let end = rest.find(['*', '+', '(', ')', ',']).unwrap_or(rest.len());
+        let (t, after) = rest.split_at(end);
+        let call = t == "min" && after.starts_with('(');
+        rest = after.get(1..).unwrap_or("");
+        if !call {
+            return Some(t);
+        }
+    })
+}
+
 /// `T/2` is `T`; `seq-len` and `N/A` are names and stay whole.
 fn strip_constant_tail(t: &str) -> &str {
     match t.find(['-', '/']) {
@@ -309,7 +393,7 @@ fn strip_constant_tail(t: &str) -> &str {
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub struct NotAnExpression;
 
-/// Evaluates a sum of products and quotients over identifiers and whole numbers
+/// Evaluates a sum of products and quotients over identifiers, whole numbers and `min(x,y)`
 /// (`a+2*(b+1)/3`, no spaces; `/` rounds down; left to right within a product). `Err` if the
 /// text is not such an expression; `Ok(None)` if `value` does not know an identifier, the
 /// arithmetic overflows or divides by zero.
@@ -387,6 +471,20 @@ pub fn evaluate(text: &str, value: &dyn Fn(&str) -> Option<u64>) -> Result<Optio
                         self.at += 1;
                     }
                     let name = std::str::from_utf8(&self.s[start..self.at]).map_err(|_| NotAnExpression)?;
+                    if name == "min" && self.peek() == Some(b'(') {
+                        self.at += 1;
+                        let a = self.sum(depth + 1)?;
+                        if self.peek() != Some(b',') {
+                            return Err(NotAnExpression);
+                        }
+                        self.at += 1;
+                        let b = self.sum(depth + 1)?;
+                        if self.peek() != Some(b')') {
+                            return Err(NotAnExpression);
+                        }
+                        self.at += 1;
+                        return Ok(a.zip(b).map(|(a, b)| a.min(b)));
+                    }
                     Ok((self.value)(name))
                 }
                 _ => Err(NotAnExpression),
@@ -672,5 +770,66 @@ mod tests {
         // A file's name with a slash in it is a name, not a quotient.
         assert_eq!(Dim::sym("N/A").symbols(), ["N/A".to_string()]);
         assert_eq!(evaluate("N/A", &|_| Some(4)), Err(NotAnExpression));
+    }
+
+    /// Capped sizes (`min(T,k)`, what slicing a fixed table to a length gives: ONNX Slice
+    /// clamps its end to the axis) evaluate, name their operands as their symbols, merge
+    /// when capped twice, and give the length back when broadcast against it.
+    #[test]
+    fn capped_sizes_evaluate_and_broadcast_back_to_the_length() {
+        let t = Dim::sym("T");
+        let m = t.lesser(&Dim::Known(512)).expect("expressible");
+        assert_eq!(m, Dim::sym("min(T,512)"));
+        assert_eq!(m.symbols(), ["T".to_string()]);
+        assert_eq!(m.lesser(&Dim::Known(300)), Some(Dim::sym("min(T,300)")));
+        assert_eq!(m.lesser(&Dim::Known(600)), Some(m.clone()));
+        assert_eq!(Dim::Known(7).lesser(&t), Some(Dim::sym("min(T,7)")));
+        assert_eq!(t.lesser(&Dim::Known(0)), Some(Dim::Known(0)));
+        assert_eq!(t.lesser(&t), Some(t.clone()));
+        assert_eq!(t.lesser(&Dim::Unknown), None);
+        assert_eq!(
+            Dim::sym("k@/m/TopK").lesser(&Dim::Known(3)),
+            None,
+            "node names are not read back"
+        );
+        assert_eq!(Dim::sym("seq len").lesser(&Dim::Known(3)), None);
+        assert_eq!(Dim::sym("min(a,b+1)").symbols(), ["a".to_string(), "b".to_string()]);
+        // A file's dim named `min` is a name like any other.
+        assert_eq!(Dim::sym("min").symbols(), ["min".to_string()]);
+        let sized = m.mul(&Dim::Known(8)).expect("product").offset(-1);
+        assert_eq!(sized, Dim::sym("min(T,512)*8-1"));
+        for v in [1u64, 100, 511, 512, 513, 4000] {
+            let Dim::Sym(text) = &sized else { unreachable!() };
+            assert_eq!(
+                evaluate(text, &|x| (x == "T").then_some(v)),
+                Ok(Some(v.min(512) * 8 - 1))
+            );
+        }
+        for bad in ["min(T,5", "min(T)", "min(T,5,6)", "min T"] {
+            assert_eq!(evaluate(bad, &|_| Some(1)), Err(NotAnExpression), "{bad}");
+        }
+        // Broadcasting (ONNX "Broadcasting in ONNX": two dims broadcast if equal or one is
+        // 1, to the other) of T against min(T,k), at every T and k ≥ 1 where it is valid,
+        // gives T: what `caps` lets the broadcast of shapes write.
+        for k in 1..12u64 {
+            let capped = t.lesser(&Dim::Known(k)).expect("expressible");
+            assert!(capped.caps(&t));
+            for v in 0..30u64 {
+                let c = v.min(k);
+                let out = if v == c || c == 1 {
+                    Some(v)
+                } else if v == 1 {
+                    Some(c)
+                } else {
+                    None
+                };
+                if let Some(out) = out {
+                    assert_eq!(out, v, "T = {v}, k = {k}");
+                }
+            }
+        }
+        assert!(!Dim::sym("min(T,0)").caps(&t));
+        assert!(!m.caps(&Dim::sym("U")));
+        assert!(!Dim::sym("min(T,U)").caps(&t), "U may be 0");
     }
 }

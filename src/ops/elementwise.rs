@@ -255,6 +255,11 @@ fn fold_min(ctx: &Ctx) -> Option<Vec<ConstValue>> {
         |a| a.iter().copied().fold(f64::INFINITY, f64::min),
         false,
     )
+    .or_else(|| {
+        // Sizes capped by a constant (`min(T,300)`), with any number of inputs.
+        let c = all_consts(ctx)?;
+        Some(vec![fold::dims_elementwise(&c, Dim::lesser, true)?])
+    })
 }
 fn fold_max(ctx: &Ctx) -> Option<Vec<ConstValue>> {
     fold_with(

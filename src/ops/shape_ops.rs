@@ -743,9 +743,10 @@ fn slice_ranges(ctx: &Ctx, d: &[Dim]) -> Result<Option<Vec<(usize, AxisSpan)>>, 
 
 /// The output size of a forward slice from a fixed start to an end that is a symbolic size:
 /// up to the axis's own size when the end is that size (`x[:, 2:T]` of a length T, exactly
-/// T-2). On an axis of fixed length K the size is `min(T, K)` less the start, which a dim
-/// cannot say (`positions[:T]` of a 512-row table is T only while T fits): unknown until T
-/// is fixed, then computed exactly; empty when the start is past the axis.
+/// T-2); from the first element, the smaller of the two (`positions[:T]` of a 512-row table
+/// is `min(T,512)`, which broadcasting against T gives back as T: `Dim::caps`); empty when
+/// the start is past the axis. A later start on a fixed axis (`min(T,K)` less the start,
+/// or 0) stays unknown until T is fixed, then is computed exactly.
 fn sized_span(axis: &Dim, start: i64, end: &Dim, step: i64) -> Dim {
     let Ok(stride) = u64::try_from(step) else {
         return Dim::Unknown;
@@ -753,6 +754,7 @@ fn sized_span(axis: &Dim, start: i64, end: &Dim, step: i64) -> Dim {
     match axis {
         Dim::Known(k) if start >= 0 && u64::try_from(start).is_ok_and(|s| s >= *k) => Dim::Known(0),
         Dim::Sym(_) if axis == end && start >= 0 => end.offset(-start).offset(step - 1).div_floor(stride),
+        _ if start == 0 && step == 1 => end.lesser(axis).unwrap_or(Dim::Unknown),
         _ => Dim::Unknown,
     }
 }
@@ -762,18 +764,28 @@ fn sized_span(axis: &Dim, start: i64, end: &Dim, step: i64) -> Dim {
 const TO_THE_END: i64 = 1_000_000_000;
 
 /// The output size of a slice of a symbolic size T, where it is an expression of T: from
-/// `start` ≥ 0 to the end, `ceil((T - start) / step)`; the whole axis backwards (from the last
-/// element past the first), `ceil(T / |step|)`. Anything else is a `min` with T, which a
-/// dim cannot express, and stays unknown.
+/// `start` ≥ 0 to the end, `ceil((T - start) / step)`; from `start` ≥ 0 to an end counted
+/// from the end (`x[:, 1:-1]`), `ceil((T - start - |end|) / step)`; the whole axis backwards
+/// (from the last element past the first), `ceil(T / |step|)`; the first k or the last k
+/// elements (`x[:, :k]`, `x[:, -k:]`), `min(T,k)`. As for `x[:, 2:T]` (`sized_span`), a
+/// difference assumes T is at least what it takes away; at smaller T (an empty slice) it
+/// evaluates to no size rather than a wrong one. Anything else stays unknown.
 fn open_span(d: &Dim, start: i64, end: i64, step: i64) -> Dim {
     let stride = step.unsigned_abs();
     let Ok(round_up) = i64::try_from(stride - 1) else {
         return Dim::Unknown;
     };
+    let counted = |v: i64| (-TO_THE_END..0).contains(&v);
     let first_off = if step > 0 && (0..TO_THE_END).contains(&start) && end >= TO_THE_END {
         start
+    } else if step > 0 && (0..TO_THE_END).contains(&start) && counted(end) {
+        start - end
     } else if step < 0 && (start == -1 || start >= TO_THE_END) && end <= -TO_THE_END {
         0
+    } else if step == 1 && start == 0 && (0..TO_THE_END).contains(&end) {
+        return d.lesser(&Dim::Known(end.unsigned_abs())).unwrap_or(Dim::Unknown);
+    } else if step == 1 && counted(start) && end >= TO_THE_END {
+        return d.lesser(&Dim::Known(start.unsigned_abs())).unwrap_or(Dim::Unknown);
     } else {
         return Dim::Unknown;
     };
@@ -1138,9 +1150,16 @@ fn top_k(ctx: &Ctx) -> Inferred {
     } else {
         ctx.opt_int("k")
     };
+    // A k computed from sizes (`Min(Shape(scores)[1], 300)` in detection heads) is the
+    // expression it folds to; one that is not an expression is a size of its own.
+    let sized = || match ctx.konst(1)?.as_dims().as_slice() {
+        [k @ Dim::Sym(_)] => Some(k.clone()),
+        _ => None,
+    };
     let mut out = d.clone();
     out[axis] = match k {
         Some(k) => Dim::Known(k.max(0) as u64),
+        None if ctx.opset >= 10 => sized().unwrap_or_else(|| data_dependent(ctx, "k")),
         None => data_dependent(ctx, "k"),
     };
     Ok(smallvec::smallvec![

@@ -142,6 +142,7 @@ fn broadcast_dim(a: &Dim, b: &Dim) -> Result<Dim, String> {
         // A known size above one wins: the other must equal it or be 1 for the model to be valid.
         (Dim::Known(x), _) | (_, Dim::Known(x)) => Dim::Known(*x),
         (Dim::Sym(x), Dim::Sym(y)) if x == y => Dim::Sym(x.clone()),
+        (x @ Dim::Sym(_), m) | (m, x @ Dim::Sym(_)) if m.caps(x) => x.clone(),
         _ => Dim::Unknown,
     })
 }

@@ -573,6 +573,69 @@ fn positions_and_masks_sliced_to_the_length_keep_it() {
     }
 }
 
+/// Feature pyramids add an upsampled coarse map to a finer one: a stride-2 pool gives
+/// `(H+1)/2` rows, upsampling by 2 gives `((H+1)/2)*2`, and the sum with the input (H rows)
+/// is valid only where the two agree or one is 1. A size with a whole factor of 2 is never
+/// 1, so the sum has the upsampled size, in either order of the Add's inputs. Evaluated at
+/// sizes where the model runs (including H = 1, where the input's 1 broadcasts), each must
+/// equal the reference evaluator's (MaxPool, Resize, Add per the ONNX operator
+/// specification).
+#[test]
+fn upsampled_maps_added_to_finer_ones_keep_their_size() {
+    if !python_onnx("upsampled_maps_added_to_finer_ones_keep_their_size") {
+        return;
+    }
+    let mut pool = node("MaxPool", &["x"], &["p"]);
+    pool.attribute = vec![
+        ints_attr("kernel_shape", &[3, 3]),
+        ints_attr("strides", &[2, 2]),
+        ints_attr("pads", &[1, 1, 1, 1]),
+    ];
+    let nodes = vec![
+        pool,
+        node("Resize", &["p", "", "scales"], &["up"]),
+        node("Add", &["up", "x"], &["sum"]),
+        node("Add", &["x", "up"], &["sum2"]),
+    ];
+    let scales = tilecut::onnx::TensorProto {
+        name: "scales".into(),
+        data_type: 1,
+        dims: vec![4],
+        raw_data: [1f32, 1.0, 2.0, 2.0]
+            .iter()
+            .flat_map(|v| v.to_le_bytes())
+            .collect::<Vec<u8>>()
+            .into(),
+        ..Default::default()
+    };
+    let outs = ["sum", "sum2"];
+    let m = model(
+        nodes,
+        vec![vi("x", 1, &[Dm::N(1), Dm::N(4), Dm::S("H"), Dm::S("W")])],
+        untyped(&outs),
+        vec![scales],
+    );
+    let dir = tempfile::tempdir().expect("tmp");
+    let (path, ours) = symbolic_outputs(m, dir.path(), "pyramid.onnx");
+    let up = [
+        Dim::Known(1),
+        Dim::Known(4),
+        Dim::sym("((H+1)/2)*2"),
+        Dim::sym("((W+1)/2)*2"),
+    ];
+    assert_eq!(ours[0], up);
+    assert_eq!(ours[1], up);
+    let sizes: Vec<(u64, u64)> = vec![(1, 2), (2, 4), (8, 6), (16, 16), (1, 1)];
+    let reference = reference_shapes(&path, &sizes.iter().map(|&(h, w)| vec![1, 4, h, w]).collect::<Vec<_>>());
+    for (&(h, w), shapes) in sizes.iter().zip(&reference) {
+        for (k, dims) in ours.iter().enumerate() {
+            let got: Vec<Option<u64>> = dims.iter().map(|d| size_at(d, &[("H", h), ("W", w)])).collect();
+            let want: Vec<Option<u64>> = shapes[k].iter().map(|&v| Some(v)).collect();
+            assert_eq!(got, want, "output {} at H = {h}, W = {w}", outs[k]);
+        }
+    }
+}
+
 /// A float initializer of one value (shape `[]`).
 fn f32_scalar(name: &str, v: f32) -> tilecut::onnx::TensorProto {
     tilecut::onnx::TensorProto {

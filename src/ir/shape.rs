@@ -196,6 +196,34 @@ impl Dim {
         })
     }
 
+    /// Whether this size is never 1, whatever its symbols: a known size other than 1, or a
+    /// product with a whole-number factor of 2 or more (`(H+31)/32*2`, what a ×2 upsampling
+    /// gives). Broadcasting such a dim against any other gives it back: the other must equal
+    /// it or be 1 for the model to be valid, and both give this one. Feature pyramids add an
+    /// upsampled map to a finer one whose size is written differently (`(H+15)/16`).
+    pub fn never_one(&self) -> bool {
+        match self {
+            Dim::Known(v) => *v != 1,
+            Dim::Sym(s) => {
+                let s = unwrapped(s);
+                if s.contains('@') || has_top_level(s, b"+-/,") {
+                    return false;
+                }
+                let mut factors = Vec::new();
+                let mut from = 0;
+                for (i, (b, depth)) in depths(s).enumerate() {
+                    if b == b'*' && depth == 0 {
+                        factors.push(&s[from..i]);
+                        from = i + 1;
+                    }
+                }
+                factors.push(&s[from..]);
+                factors.len() > 1 && factors.iter().any(|f| f.parse::<u64>().is_ok_and(|k| k >= 2))
+            }
+            Dim::Unknown => false,
+        }
+    }
+
     /// Difference by a known amount (`T-1`); a size less another unknown one is not
     /// expressed (it could be anything, negative included).
     pub fn less_known(&self, other: &Dim) -> Option<Dim> {
@@ -831,5 +859,30 @@ mod tests {
         assert!(!Dim::sym("min(T,0)").caps(&t));
         assert!(!m.caps(&Dim::sym("U")));
         assert!(!Dim::sym("min(T,U)").caps(&t), "U may be 0");
+    }
+
+    /// Sizes `never_one` vouches for are never 1 at any value of their symbols (evaluated
+    /// over a range, floor division of whole numbers); the others can be.
+    #[test]
+    fn sizes_said_never_to_be_one_never_are() {
+        let never = ["((H+31)/32)*2", "T*3", "min(T,4)*2", "(T-1)*2", "2*T", "((T+1)/2)*2*B"];
+        let can = ["T", "T+1", "(T*2)/2", "T*2-1", "min(T,1)", "T*1", "(T*2+1)", "T/2"];
+        for text in never {
+            assert!(Dim::sym(text).never_one(), "{text}");
+            for t in 0..300u64 {
+                let v = evaluate(text, &|_| Some(t)).expect("an expression");
+                assert_ne!(v, Some(1), "{text} at {t}");
+            }
+        }
+        for text in can {
+            assert!(!Dim::sym(text).never_one(), "{text}");
+            assert!(
+                (0..300u64).any(|t| evaluate(text, &|_| Some(t)) == Ok(Some(1))),
+                "{text}"
+            );
+        }
+        assert!(Dim::Known(0).never_one() && Dim::Known(7).never_one());
+        assert!(!Dim::Known(1).never_one() && !Dim::Unknown.never_one());
+        assert!(!Dim::sym("n@/m/NonZero*2").never_one(), "node names are not read");
     }
 }

@@ -143,6 +143,8 @@ fn broadcast_dim(a: &Dim, b: &Dim) -> Result<Dim, String> {
         (Dim::Known(x), _) | (_, Dim::Known(x)) => Dim::Known(*x),
         (Dim::Sym(x), Dim::Sym(y)) if x == y => Dim::Sym(x.clone()),
         (x @ Dim::Sym(_), m) | (m, x @ Dim::Sym(_)) if m.caps(x) => x.clone(),
+        // Likewise a size that is never 1 (`Dim::never_one`) wins whatever the other is.
+        (x, _) | (_, x) if x.never_one() => x.clone(),
         _ => Dim::Unknown,
     })
 }

@@ -245,6 +245,9 @@ fn infer_graph(
     // Every node's entry is written in the loop below.
     g.costs.resize_with(g.nodes.len(), NodeCost::default);
     let mut texts = ReasonTexts::default();
+    // Outputs whose unknown dims arose from symbolic inputs alone, with the symbols that size
+    // them (`symbols_behind`): few values, so a map beside the reasons.
+    let mut behind: FastMap<ValueId, Vec<String>> = FastMap::default();
     // Outputs of known ops that only the file's declaration sized: (count, first tensor, its node).
     let mut from_file: (usize, Option<(String, String)>) = (0, None);
     // What a node's op is, per (domain, op type), keyed by the interned names' addresses:
@@ -481,7 +484,14 @@ fn infer_graph(
                                 needs.extend(settable);
                                 texts.get(text)
                             }
-                            None => texts.for_fact(&fact),
+                            None => match symbols_behind(g, node, &fact, &behind) {
+                                Some(syms) => {
+                                    let text = format!("depends on symbolic dims: {}", syms.join(", "));
+                                    behind.insert(*v, syms);
+                                    texts.get(text)
+                                }
+                                None => texts.for_fact(&fact),
+                            },
                         },
                     };
                     r.push((*v, why));
@@ -532,6 +542,48 @@ fn infer_graph(
             }
         }
     }
+}
+
+/// The symbols that size an output whose unknown dims (or rank) arose at its node from
+/// symbolic inputs alone: two different symbols broadcast against each other (`S` and `U`),
+/// a size no expression says. Fixing them sizes the output, which itself may show fewer of
+/// them or none. `behind` holds what earlier outputs were given this way, so that an unknown
+/// dim passed on keeps naming them. None when an input brings an unknown dim of another
+/// cause, or a size read from data: the shape-based reason then stands.
+fn symbols_behind(
+    g: &Graph,
+    node: &crate::ir::Node,
+    fact: &Fact,
+    behind: &FastMap<ValueId, Vec<String>>,
+) -> Option<Vec<String>> {
+    use crate::ir::Dim;
+    if !is_tensor(fact) || fact.shape.dims().is_some_and(|d| !d.contains(&Dim::Unknown)) {
+        return None;
+    }
+    let mut syms = fact.shape.symbols();
+    for &v in node.inputs.iter().flatten().chain(node.captures()) {
+        if let Some(from) = behind.get(&v) {
+            syms.extend(from.iter().cloned());
+            continue;
+        }
+        let value = &g.values[v.index()];
+        let f = &value.fact;
+        if !is_tensor(f) || f.shape.dims()?.contains(&Dim::Unknown) {
+            return None;
+        }
+        syms.extend(f.shape.symbols());
+        if value_unknown(value) && size_like(f) {
+            // A size computed from symbolic shapes is known once they are; one read from
+            // data is not.
+            match value.konst.as_deref().map(|k| k.as_dims()) {
+                Some(ds) if !ds.contains(&Dim::Unknown) => syms.extend(ds.iter().flat_map(Dim::symbols)),
+                _ => return None,
+            }
+        }
+    }
+    syms.sort();
+    syms.dedup();
+    (!syms.is_empty()).then_some(syms)
 }
 
 /// Tensors of at most this many elements are read as sizes (a shape, a count, a scale per

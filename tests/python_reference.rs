@@ -636,6 +636,50 @@ fn upsampled_maps_added_to_finer_ones_keep_their_size() {
     }
 }
 
+/// Pixel shuffles over a symbolic image: DepthToSpace multiplies H and W by the block and
+/// divides the channels, SpaceToDepth the reverse (the spec requires H and W to be multiples
+/// of the block there, so the floor division tilecut writes is exact). Each size, evaluated
+/// at several sizes, must equal the reference evaluator's (DepthToSpace, SpaceToDepth per
+/// the ONNX operator specification).
+#[test]
+fn pixel_shuffles_keep_symbolic_image_sizes() {
+    if !python_onnx("pixel_shuffles_keep_symbolic_image_sizes") {
+        return;
+    }
+    let block = |op: &str, i: &str, o: &str, b: i64| {
+        let mut n = node(op, &[i], &[o]);
+        n.attribute = vec![int_attr("blocksize", b)];
+        n
+    };
+    let nodes = vec![
+        block("DepthToSpace", "x", "up", 2),
+        block("SpaceToDepth", "up", "back", 2),
+        block("SpaceToDepth", "x", "down", 2),
+        block("DepthToSpace", "down", "again", 2),
+    ];
+    let outs = ["up", "back", "down", "again"];
+    let m = model(
+        nodes,
+        vec![vi("x", 1, &[Dm::N(1), Dm::N(8), Dm::S("H"), Dm::S("W")])],
+        untyped(&outs),
+        vec![],
+    );
+    let dir = tempfile::tempdir().expect("tmp");
+    let (path, ours) = symbolic_outputs(m, dir.path(), "shuffles.onnx");
+    assert_eq!(ours[0][1], Dim::Known(2));
+    assert_eq!(ours[2][1], Dim::Known(32));
+    assert!(ours.iter().flatten().all(|d| *d != Dim::Unknown), "{ours:?}");
+    let sizes: Vec<(u64, u64)> = vec![(2, 2), (4, 6), (10, 8)];
+    let reference = reference_shapes(&path, &sizes.iter().map(|&(h, w)| vec![1, 8, h, w]).collect::<Vec<_>>());
+    for (&(h, w), shapes) in sizes.iter().zip(&reference) {
+        for (k, dims) in ours.iter().enumerate() {
+            let got: Vec<Option<u64>> = dims.iter().map(|d| size_at(d, &[("H", h), ("W", w)])).collect();
+            let want: Vec<Option<u64>> = shapes[k].iter().map(|&v| Some(v)).collect();
+            assert_eq!(got, want, "output {} at H = {h}, W = {w}", outs[k]);
+        }
+    }
+}
+
 /// A float initializer of one value (shape `[]`).
 fn f32_scalar(name: &str, v: f32) -> tilecut::onnx::TensorProto {
     tilecut::onnx::TensorProto {

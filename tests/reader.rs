@@ -1690,6 +1690,62 @@ fn symbols_only_the_file_invents_are_not_advised() {
     assert_eq!(v["model"]["macs"], 5 * 8 * 4);
 }
 
+/// Two different symbols broadcast against each other (`S` against `U`; ONNX "Broadcasting
+/// in ONNX": equal, or one of them 1) leave the sum's dim unknown. Its reason names every
+/// symbol that sizes it, on the sum and on what reads it, not only the one its shape still
+/// shows; fixed to sizes that broadcast, both are sized.
+#[test]
+fn unknown_dims_from_symbols_name_every_symbol_that_sizes_them() {
+    let d = tmp();
+    let m = model(
+        vec![node("Add", &["x", "y"], &["z"]), node("Relu", &["z"], &["r"])],
+        vec![
+            vi("x", 1, &[Dm::S("B"), Dm::S("S"), Dm::N(8)]),
+            vi("y", 1, &[Dm::S("B"), Dm::S("U"), Dm::N(8)]),
+        ],
+        untyped(&["r"]),
+        vec![],
+    );
+    let p = write(d.path(), "sum.onnx", &m);
+    let ps = p.to_str().expect("utf8");
+    let (code, out, err) = run(&["inspect", ps, "--format", "json"]);
+    assert_eq!(code, 0, "{err}");
+    let v: serde_json::Value = serde_json::from_str(&out).expect("json");
+    let reason = |t: &str| {
+        v["unknown_shapes"]
+            .as_array()
+            .expect("list")
+            .iter()
+            .find(|u| u["tensor"] == t)
+            .map(|u| u["reason"].clone())
+    };
+    for t in ["z", "r"] {
+        assert_eq!(
+            reason(t),
+            Some(serde_json::json!("depends on symbolic dims: B, S, U")),
+            "{t}"
+        );
+    }
+    assert_eq!(v["outputs"][0]["shape"], serde_json::json!(["B", null, 8]));
+    for (u, want) in [("4", 4), ("1", 4)] {
+        let (code, out, err) = run(&[
+            "inspect",
+            ps,
+            "--format",
+            "json",
+            "--dim",
+            "B=2",
+            "--dim",
+            "S=4",
+            "--dim",
+            &format!("U={u}"),
+        ]);
+        assert_eq!(code, 0, "{err}");
+        let v: serde_json::Value = serde_json::from_str(&out).expect("json");
+        assert_eq!(v["outputs"][0]["shape"], serde_json::json!([2, want, 8]), "U = {u}");
+    }
+}
+
 /// A chain of `n` Transposes (alternating perms) over a 2×3 input, with an `If` in the middle
 /// whose branches read an outer tensor: large graphs import their attributes and bodies on a
 /// second thread (from 4,096 nodes), small ones on one. Both must give the same IR.

@@ -1261,18 +1261,17 @@ fn depth_to_space(ctx: &Ctx) -> Inferred {
     let b = b as u64;
     let b2 = b.checked_mul(b).ok_or("blocksize squared overflows")?;
     let up = ctx.node.op_type == "DepthToSpace";
-    let c = match &d[1] {
-        Dim::Known(c) if up => Dim::Known(c / b2),
-        Dim::Known(c) => Dim::Known(c.checked_mul(b2).ok_or("overflow")?),
-        _ => Dim::Unknown,
+    // Symbolic sizes too (`H*2`, `(H+1)/2`): the spec requires the divided sizes to be
+    // multiples of the block, so rounding down is exact on any valid input.
+    let scale = |x: &Dim, k: u64, grow: bool| -> Result<Dim, String> {
+        if grow {
+            x.mul(&Dim::Known(k)).ok_or_else(|| "overflow".to_string())
+        } else {
+            Ok(x.div_floor(k))
+        }
     };
-    let sp = |x: &Dim| -> Result<Dim, String> {
-        Ok(match x {
-            Dim::Known(v) if up => Dim::Known(v.checked_mul(b).ok_or("overflow")?),
-            Dim::Known(v) => Dim::Known(v / b),
-            _ => Dim::Unknown,
-        })
-    };
+    let c = scale(&d[1], b2, !up)?;
+    let sp = |x: &Dim| scale(x, b, up);
     Ok(smallvec::smallvec![tensor(
         dt,
         Shape::of(vec![d[0].clone(), c, sp(&d[2])?, sp(&d[3])?])

@@ -360,7 +360,6 @@ pub fn compact_expression(text: &str) -> Option<String> {
     (operators && evaluate(&compact, &|_| Some(1)).is_ok()).then_some(compact)
 }
 
-/// A token of an expression without a trailing `-k` or `/k` (whole numbers): `T-1` is `T`,
 /// The two sides of `min(a,b)` as tilecut writes it (the whole text one call).
 fn min_sides(s: &str) -> Option<(&str, &str)> {
     let inner = s.strip_prefix("min(")?.strip_suffix(')')?;
@@ -409,6 +408,7 @@ fn tokens(s: &str) -> impl Iterator<Item = &str> {
     })
 }
 
+/// A token of an expression without a trailing `-k` or `/k` (whole numbers): `T-1` is `T`,
 /// `T/2` is `T`; `seq-len` and `N/A` are names and stay whole.
 fn strip_constant_tail(t: &str) -> &str {
     match t.find(['-', '/']) {

@@ -506,6 +506,34 @@ fn symbolic_slices_agree_with_the_onnx_reference_evaluator_at_each_length() {
     }
 }
 
+/// Runs the reference evaluator at each pair of sizes (`input` gives x's shape for it) and
+/// asserts that every dim of every output, evaluated with the two symbols `names` set to
+/// that pair, is the size the evaluator computes.
+fn agree_at_sizes(
+    path: &Path,
+    outs: &[&str],
+    ours: &[Vec<Dim>],
+    names: [&str; 2],
+    sizes: &[(u64, u64)],
+    input: impl Fn(u64, u64) -> Vec<u64>,
+) {
+    let reference = reference_shapes(path, &sizes.iter().map(|&(a, b)| input(a, b)).collect::<Vec<_>>());
+    for (&(a, b), shapes) in sizes.iter().zip(&reference) {
+        for (k, dims) in ours.iter().enumerate() {
+            let got: Vec<Option<u64>> = dims
+                .iter()
+                .map(|d| size_at(d, &[(names[0], a), (names[1], b)]))
+                .collect();
+            let want: Vec<Option<u64>> = shapes[k].iter().map(|&v| Some(v)).collect();
+            assert_eq!(
+                got, want,
+                "output {} at {} = {a}, {} = {b}",
+                outs[k], names[0], names[1]
+            );
+        }
+    }
+}
+
 /// Encoder exports slice fixed tables to the input's length: learned positions
 /// (`table[:, :S]` of a 16-row table), a causal mask (`mask[:, :, :S, :S]`), and a TopK whose
 /// k is `Min(S, 5)`. Each slice is `min(S,16)` (ONNX Slice clamps its end to the axis) and
@@ -562,15 +590,8 @@ fn positions_and_masks_sliced_to_the_length_keep_it() {
     assert_eq!(ours[2], [b, Dim::sym("min(S,5)")]);
     assert_eq!(ours[3], [Dim::Known(1), Dim::sym("min(S,16)"), Dim::Known(4)]);
 
-    let sizes: Vec<(u64, u64)> = vec![(1, 1), (2, 3), (1, 5), (3, 6), (2, 16)];
-    let reference = reference_shapes(&path, &sizes.iter().map(|&(b, s)| vec![b, s, 4]).collect::<Vec<_>>());
-    for (&(bv, sv), shapes) in sizes.iter().zip(&reference) {
-        for (k, dims) in ours.iter().enumerate() {
-            let got: Vec<Option<u64>> = dims.iter().map(|d| size_at(d, &[("B", bv), ("S", sv)])).collect();
-            let want: Vec<Option<u64>> = shapes[k].iter().map(|&v| Some(v)).collect();
-            assert_eq!(got, want, "output {} at B = {bv}, S = {sv}", outs[k]);
-        }
-    }
+    let sizes = [(1, 1), (2, 3), (1, 5), (3, 6), (2, 16)];
+    agree_at_sizes(&path, &outs, &ours, ["B", "S"], &sizes, |b, s| vec![b, s, 4]);
 }
 
 /// Feature pyramids add an upsampled coarse map to a finer one: a stride-2 pool gives
@@ -625,15 +646,8 @@ fn upsampled_maps_added_to_finer_ones_keep_their_size() {
     ];
     assert_eq!(ours[0], up);
     assert_eq!(ours[1], up);
-    let sizes: Vec<(u64, u64)> = vec![(1, 2), (2, 4), (8, 6), (16, 16), (1, 1)];
-    let reference = reference_shapes(&path, &sizes.iter().map(|&(h, w)| vec![1, 4, h, w]).collect::<Vec<_>>());
-    for (&(h, w), shapes) in sizes.iter().zip(&reference) {
-        for (k, dims) in ours.iter().enumerate() {
-            let got: Vec<Option<u64>> = dims.iter().map(|d| size_at(d, &[("H", h), ("W", w)])).collect();
-            let want: Vec<Option<u64>> = shapes[k].iter().map(|&v| Some(v)).collect();
-            assert_eq!(got, want, "output {} at H = {h}, W = {w}", outs[k]);
-        }
-    }
+    let sizes = [(1, 2), (2, 4), (8, 6), (16, 16), (1, 1)];
+    agree_at_sizes(&path, &outs, &ours, ["H", "W"], &sizes, |h, w| vec![1, 4, h, w]);
 }
 
 /// Pixel shuffles over a symbolic image: DepthToSpace multiplies H and W by the block and
@@ -669,15 +683,8 @@ fn pixel_shuffles_keep_symbolic_image_sizes() {
     assert_eq!(ours[0][1], Dim::Known(2));
     assert_eq!(ours[2][1], Dim::Known(32));
     assert!(ours.iter().flatten().all(|d| *d != Dim::Unknown), "{ours:?}");
-    let sizes: Vec<(u64, u64)> = vec![(2, 2), (4, 6), (10, 8)];
-    let reference = reference_shapes(&path, &sizes.iter().map(|&(h, w)| vec![1, 8, h, w]).collect::<Vec<_>>());
-    for (&(h, w), shapes) in sizes.iter().zip(&reference) {
-        for (k, dims) in ours.iter().enumerate() {
-            let got: Vec<Option<u64>> = dims.iter().map(|d| size_at(d, &[("H", h), ("W", w)])).collect();
-            let want: Vec<Option<u64>> = shapes[k].iter().map(|&v| Some(v)).collect();
-            assert_eq!(got, want, "output {} at H = {h}, W = {w}", outs[k]);
-        }
-    }
+    let sizes = [(2, 2), (4, 6), (10, 8)];
+    agree_at_sizes(&path, &outs, &ours, ["H", "W"], &sizes, |h, w| vec![1, 8, h, w]);
 }
 
 /// A float initializer of one value (shape `[]`).

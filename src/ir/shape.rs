@@ -151,7 +151,7 @@ impl Dim {
             Dim::Known(a) => Dim::Known(a / divisor),
             d if divisor == 1 => d.clone(),
             Dim::Sym(s) if s.contains('@') => Dim::Unknown,
-            Dim::Sym(s) => match nested_quotient(s, divisor) {
+            Dim::Sym(s) => match nested_quotient(s, divisor).or_else(|| divided_product(s, divisor)) {
                 Some(d) => d,
                 None => Dim::expression(self, '/', &Dim::Known(divisor)),
             },
@@ -348,6 +348,36 @@ fn nested_quotient(s: &str, d: u64) -> Option<Dim> {
         return None;
     }
     Some(Dim::expression(&inner, '/', &Dim::Known(b.checked_mul(d)?)))
+}
+
+/// `(x*a + r) / d` as `x*(a/d) + r/d` where d divides a: for whole numbers,
+/// floor((a·x + r) / d) = (a/d)·x + floor(r / d) (common practice: a multiple of d divides
+/// exactly). A stride-2 window over a map upsampled by 4 then reads `x*2`, not
+/// `(x*4+1)/2`, and deep pyramids stay under `MAX_EXPRESSION`. `s` must be a product whose
+/// last factor is a whole number, with an optional whole-number term after it.
+fn divided_product(s: &str, d: u64) -> Option<Dim> {
+    let s = unwrapped(s);
+    if s.contains('@') {
+        return None;
+    }
+    let (p, r) = match s.rfind('+') {
+        Some(i) if i > 0 && i + 1 < s.len() && s[i + 1..].bytes().all(|c| c.is_ascii_digit()) => {
+            (&s[..i], s[i + 1..].parse::<u64>().ok()?)
+        }
+        _ => (s, 0),
+    };
+    if has_top_level(p, b"+-/,") {
+        return None;
+    }
+    let (x, a) = p.rsplit_once('*')?;
+    let a: u64 = a.parse().ok()?;
+    if a % d != 0 || x.is_empty() {
+        return None;
+    }
+    let base = Dim::sym(unwrapped(x));
+    let scaled = base.mul(&Dim::Known(a / d))?;
+    let shifted = scaled.offset(i64::try_from(r / d).ok()?);
+    (shifted != Dim::Unknown).then_some(shifted)
 }
 
 /// `text` without its spaces, if it is a sum of products of identifiers and whole numbers
@@ -674,6 +704,19 @@ mod tests {
                 Offset(2),
                 Window { k: 1, s: 2, p: 0 },
             ],
+            // A stride-32 map upsampled by 4, then stride-2 and stride-4 windows over it.
+            &[
+                Window { k: 1, s: 32, p: 31 },
+                Scale(4),
+                Window { k: 3, s: 2, p: 2 },
+                Window { k: 3, s: 2, p: 2 },
+            ],
+            &[
+                Scale(6),
+                Window { k: 5, s: 3, p: 4 },
+                Scale(2),
+                Window { k: 2, s: 4, p: 3 },
+            ],
         ];
         for (c, chain) in chains.iter().enumerate() {
             let mut d = Dim::sym("T");
@@ -699,6 +742,13 @@ mod tests {
                 assert_eq!(got, Some(want as u64), "chain {c} at T = {t}: `{text}`");
             }
         }
+        // A product by a multiple of the divisor divides exactly.
+        let x = Dim::sym("(h+31)/32");
+        let up = x.mul(&Dim::Known(4)).expect("product");
+        assert_eq!(up.offset(1).div_floor(2), Dim::sym("((h+31)/32)*2"));
+        assert_eq!(up.offset(3).div_floor(4), x);
+        assert_eq!(Dim::sym("T*6+7").div_floor(3), Dim::sym("T*2+2"));
+        assert_eq!(Dim::sym("T*6+7").div_floor(4), Dim::sym("(T*6+7)/4"));
         // Not merged: a sum times a number, and a quotient of a product.
         assert_eq!(Dim::sym("a+b*2").mul(&Dim::Known(2)), Some(Dim::sym("(a+b*2)*2")));
         assert_eq!(Dim::sym("a*b/2").div_floor(2), Dim::sym("(a*b/2)/2"));

@@ -484,6 +484,7 @@ fn infer_graph(
                                 needs.extend(settable);
                                 texts.get(text)
                             }
+                            None if !has_unknown_dim(&fact) => texts.for_fact(&fact),
                             None => match symbols_behind(g, node, &fact, &behind) {
                                 Some(syms) => {
                                     let text = format!("depends on symbolic dims: {}", syms.join(", "));
@@ -550,6 +551,8 @@ fn infer_graph(
 /// them or none. `behind` holds what earlier outputs were given this way, so that an unknown
 /// dim passed on keeps naming them. None when an input brings an unknown dim of another
 /// cause, or a size read from data: the shape-based reason then stands.
+#[cold]
+#[inline(never)]
 fn symbols_behind(
     g: &Graph,
     node: &crate::ir::Node,
@@ -584,6 +587,15 @@ fn symbols_behind(
     syms.sort();
     syms.dedup();
     (!syms.is_empty()).then_some(syms)
+}
+
+/// Whether a tensor's shape has an unknown dim or rank: what `symbols_behind` looks into,
+/// checked first so that the common symbolic tensor does not call it.
+fn has_unknown_dim(f: &Fact) -> bool {
+    is_tensor(f)
+        && f.shape
+            .dims()
+            .is_none_or(|d| d.iter().any(|x| matches!(x, crate::ir::Dim::Unknown)))
 }
 
 /// Tensors of at most this many elements are read as sizes (a shape, a count, a scale per

@@ -163,6 +163,7 @@ impl Dim {
     /// for the `Min` of a length and a cap that exporters write for a TopK's k. `None` where
     /// it cannot be written as an expression `evaluate` reads back (an unknown side, a
     /// data-dependent size, whose node name may hold any character, or a name with spaces).
+    #[inline(never)]
     pub fn lesser(&self, other: &Dim) -> Option<Dim> {
         Some(match (self, other) {
             (Dim::Known(a), Dim::Known(b)) => Dim::Known(*a.min(b)),
@@ -186,6 +187,7 @@ impl Dim {
     /// them is 1, and in each case the result is x (min(x, k) = 1 < x needs k = 1, and
     /// x = 1 makes min(1, k) = 1 for k ≥ 1). Positions sliced to the length and added to the
     /// sequence keep its length this way.
+    #[inline(never)]
     pub fn caps(&self, x: &Dim) -> bool {
         let (Dim::Sym(s), Dim::Sym(x)) = (self, x) else {
             return false;
@@ -201,6 +203,7 @@ impl Dim {
     /// gives). Broadcasting such a dim against any other gives it back: the other must equal
     /// it or be 1 for the model to be valid, and both give this one. Feature pyramids add an
     /// upsampled map to a finer one whose size is written differently (`(H+15)/16`).
+    #[inline(never)]
     pub fn never_one(&self) -> bool {
         match self {
             Dim::Known(v) => *v != 1,

@@ -61,7 +61,7 @@ impl ReasonTexts {
         let text = if syms.is_empty() {
             "depends on a tensor whose shape is unknown".to_string()
         } else {
-            format!("depends on symbolic dims: {}", syms.join(", "))
+            symbolic_reason(&syms)
         };
         let a = self.get(text);
         self.1.insert(key, a.clone());
@@ -487,7 +487,7 @@ fn infer_graph(
                             None if !has_unknown_dim(&fact) => texts.for_fact(&fact),
                             None => match symbols_behind(g, node, &fact, &behind) {
                                 Some(syms) => {
-                                    let text = format!("depends on symbolic dims: {}", syms.join(", "));
+                                    let text = symbolic_reason(&syms);
                                     behind.insert(*v, syms);
                                     texts.get(text)
                                 }
@@ -587,6 +587,11 @@ fn symbols_behind(
     syms.sort();
     syms.dedup();
     (!syms.is_empty()).then_some(syms)
+}
+
+/// The reason for a tensor that fixing these symbols sizes.
+fn symbolic_reason(syms: &[String]) -> String {
+    format!("depends on symbolic dims: {}", syms.join(", "))
 }
 
 /// Whether a tensor's shape has an unknown dim or rank: what `symbols_behind` looks into,

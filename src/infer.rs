@@ -560,7 +560,7 @@ fn symbols_behind(
     behind: &FastMap<ValueId, Vec<String>>,
 ) -> Option<Vec<String>> {
     use crate::ir::Dim;
-    if !is_tensor(fact) || fact.shape.dims().is_some_and(|d| !d.contains(&Dim::Unknown)) {
+    if !has_unknown_dim(fact) {
         return None;
     }
     let mut syms = fact.shape.symbols();

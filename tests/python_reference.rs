@@ -390,8 +390,10 @@ const RUN_AT_SHAPES: &str = r#"
 import sys, json, onnx, numpy as np
 from onnx.reference import ReferenceEvaluator
 ev = ReferenceEvaluator(onnx.load(sys.argv[1]))
-print(json.dumps([[list(o.shape) for o in ev.run(None, {"x": np.ones(s, dtype=np.float32)})]
-                  for s in json.loads(sys.argv[2])]))
+def feeds(s):
+    named = s if isinstance(s, dict) else {"x": s}
+    return {k: np.ones(v, dtype=np.float32) for k, v in named.items()}
+print(json.dumps([[list(o.shape) for o in ev.run(None, feeds(s))] for s in json.loads(sys.argv[2])]))
 "#;
 
 /// Writes `m` at opset 18 into `dir` and reads it with tilecut: the file and each graph
@@ -409,8 +411,9 @@ fn symbolic_outputs(mut m: tilecut::onnx::ModelProto, dir: &Path, file: &str) ->
     (path, dims)
 }
 
-/// The output shapes the `onnx` package's reference evaluator computes, per shape of `x`.
-fn reference_shapes(path: &Path, inputs: &[Vec<u64>]) -> Vec<Vec<Vec<u64>>> {
+/// The output shapes the `onnx` package's reference evaluator computes, per shape of `x`
+/// (or per map of input names to shapes).
+fn reference_shapes<T: serde::Serialize>(path: &Path, inputs: &[T]) -> Vec<Vec<Vec<u64>>> {
     let arg = serde_json::to_string(inputs).expect("json");
     let out = python(RUN_AT_SHAPES, &[path.to_str().expect("utf8"), &arg]);
     serde_json::from_str(&out).expect("json")
@@ -685,6 +688,184 @@ fn pixel_shuffles_keep_symbolic_image_sizes() {
     assert!(ours.iter().flatten().all(|d| *d != Dim::Unknown), "{ours:?}");
     let sizes = [(2, 2), (4, 6), (10, 8)];
     agree_at_sizes(&path, &outs, &ours, ["H", "W"], &sizes, |h, w| vec![1, 8, h, w]);
+}
+
+/// Window attention pads a map up to a multiple of its window with pads computed from the
+/// shape, `(k - W % k) % k` (Shape, Gather, Mod, Sub, Mod, Concat into Pad's pads); the
+/// windows are a Reshape by the padded size over k, and the map is cropped back to H and W
+/// after a roll (two Slices concatenated) and added to the input. A map cut down to a multiple
+/// (`H - H % 4`), and a sequence concatenated with itself and sliced back to the length read
+/// off a difference of shapes (a cache's total less its new part), keep exact sizes too.
+/// Each output size, evaluated at several image sizes (multiples of 7 and 4 among them),
+/// must equal the reference evaluator's.
+#[test]
+fn windows_padded_to_a_multiple_and_cropped_back_keep_exact_sizes() {
+    if !python_onnx("windows_padded_to_a_multiple_and_cropped_back_keep_exact_sizes") {
+        return;
+    }
+    let mut nodes = vec![
+        node("Shape", &["x"], &["sx"]),
+        node("Gather", &["sx", "i2"], &["h"]),
+        node("Gather", &["sx", "i3"], &["w"]),
+        node("Mod", &["h", "seven"], &["hm"]),
+        node("Sub", &["seven", "hm"], &["hs"]),
+        node("Mod", &["hs", "seven"], &["pad_b"]),
+        node("Mod", &["w", "seven"], &["wm"]),
+        node("Sub", &["seven", "wm"], &["ws"]),
+        node("Mod", &["ws", "seven"], &["pad_r"]),
+        node("Unsqueeze", &["pad_b", "zero"], &["pad_b1"]),
+        node("Unsqueeze", &["pad_r", "zero"], &["pad_r1"]),
+        node("Concat", &["zeros6", "pad_b1", "pad_r1"], &["pads"]),
+        node("Pad", &["x", "pads"], &["padded"]),
+        node("Shape", &["padded"], &["sp"]),
+        node("Gather", &["sp", "i2"], &["hp"]),
+        node("Gather", &["sp", "i3"], &["wp"]),
+        node("Div", &["hp", "seven"], &["nh"]),
+        node("Div", &["wp", "seven"], &["nw"]),
+        node("Unsqueeze", &["nh", "zero"], &["nh1"]),
+        node("Unsqueeze", &["nw", "zero"], &["nw1"]),
+        node(
+            "Concat",
+            &["one_four", "nh1", "seven1", "nw1", "seven1"],
+            &["window_shape"],
+        ),
+        node("Reshape", &["padded", "window_shape"], &["windows"]),
+        node("Reshape", &["windows", "sp"], &["merged"]),
+        node("Slice", &["merged", "minus3", "to_end", "axis2"], &["tail"]),
+        node("Slice", &["merged", "zero", "minus3", "axis2"], &["head"]),
+        node("Concat", &["tail", "head"], &["rolled"]),
+        node("Unsqueeze", &["h", "zero"], &["h1"]),
+        node("Unsqueeze", &["w", "zero"], &["w1"]),
+        node("Concat", &["h1", "w1"], &["hw"]),
+        node("Slice", &["rolled", "zero2", "hw", "axes23"], &["cropped"]),
+        node("Add", &["cropped", "x"], &["y"]),
+        node("Mod", &["h", "four"], &["h4"]),
+        node("Sub", &["h", "h4"], &["hc"]),
+        node("Unsqueeze", &["hc", "zero"], &["hc1"]),
+        node("Slice", &["x", "zero", "hc1", "axis2"], &["cut"]),
+        node("Concat", &["x", "x"], &["twice"]),
+        node("Shape", &["twice"], &["st"]),
+        node("Gather", &["st", "i2"], &["ht"]),
+        node("Sub", &["ht", "h"], &["back_h"]),
+        node("Unsqueeze", &["back_h", "zero"], &["back_h1"]),
+        node("Slice", &["twice", "zero", "back_h1", "axis2"], &["first"]),
+        node("Add", &["first", "x"], &["z"]),
+    ];
+    for i in [11, 20, 28] {
+        nodes[i].attribute = vec![int_attr("axis", 0)];
+    }
+    nodes[25].attribute = vec![int_attr("axis", 2)];
+    nodes[35].attribute = vec![int_attr("axis", 2)];
+    let inits = vec![
+        i64_init("i2", &[], &[2]),
+        i64_init("i3", &[], &[3]),
+        i64_init("seven", &[], &[7]),
+        i64_init("four", &[], &[4]),
+        i64_init("zero", &[1], &[0]),
+        i64_init("zero2", &[2], &[0, 0]),
+        i64_init("zeros6", &[6], &[0; 6]),
+        i64_init("one_four", &[2], &[1, 4]),
+        i64_init("seven1", &[1], &[7]),
+        i64_init("minus3", &[1], &[-3]),
+        i64_init("to_end", &[1], &[i64::MAX]),
+        i64_init("axis2", &[1], &[2]),
+        i64_init("axes23", &[2], &[2, 3]),
+    ];
+    let outs = ["padded", "windows", "rolled", "y", "cut", "twice", "z"];
+    let m = model(
+        nodes,
+        vec![vi("x", 1, &[Dm::N(1), Dm::N(4), Dm::S("H"), Dm::S("W")])],
+        untyped(&outs),
+        inits,
+    );
+    let dir = tempfile::tempdir().expect("tmp");
+    let (path, ours) = symbolic_outputs(m, dir.path(), "windows.onnx");
+    let (h, w) = (Dim::sym("H"), Dim::sym("W"));
+    let up = |d: &Dim| Dim::sym(&format!("(({d}+6)/7)*7"));
+    assert_eq!(ours[0][2..], [up(&h), up(&w)]);
+    assert_eq!(
+        ours[1][2..],
+        [Dim::sym("(H+6)/7"), Dim::Known(7), Dim::sym("(W+6)/7"), Dim::Known(7)]
+    );
+    assert_eq!(ours[2][2], up(&h), "a roll keeps the size");
+    assert_eq!(ours[3][2..], [h.clone(), w.clone()], "cropped back to the input's size");
+    assert_eq!(ours[4][2], Dim::sym("(H/4)*4"));
+    assert_eq!(ours[5][2], Dim::sym("H*2"), "like terms collected");
+    assert_eq!(ours[6][2], h, "a difference of shapes that cancels");
+    let sizes = [(1, 1), (5, 9), (7, 14), (8, 3), (20, 23), (28, 12)];
+    agree_at_sizes(&path, &outs, &ours, ["H", "W"], &sizes, |h, w| vec![1, 4, h, w]);
+}
+
+/// Decoders with a cache concatenate the past keys with the new ones (`P+S`) and slice a
+/// mask built to the total length from the past length on, the start computed as a
+/// difference of shapes (`K - Q`, the total less the new part): the rows are the new length,
+/// and the mask adds to the attention scores. Learned positions sliced from the past length
+/// (`table[P:P+S]` of a 64-row table) are `min(P+S,64)-(min(P,64))`, exact past the table's
+/// end too. Each size, at several lengths, must equal the reference evaluator's.
+#[test]
+fn slices_from_a_cache_length_keep_the_new_length() {
+    if !python_onnx("slices_from_a_cache_length_keep_the_new_length") {
+        return;
+    }
+    let mut nodes = vec![
+        node("Concat", &["past", "x"], &["kv"]),
+        node("Shape", &["kv"], &["sk"]),
+        node("Shape", &["x"], &["sx"]),
+        node("Gather", &["sk", "i1"], &["k"]),
+        node("Gather", &["sx", "i1"], &["q"]),
+        node("Sub", &["k", "q"], &["start"]),
+        node("Unsqueeze", &["start", "zero"], &["start1"]),
+        node("Unsqueeze", &["k", "zero"], &["k1"]),
+        node("Unsqueeze", &["q", "zero"], &["q1"]),
+        node("Concat", &["k1", "k1"], &["kk"]),
+        node("ConstantOfShape", &["kk"], &["mask"]),
+        node("Slice", &["mask", "start1", "k1", "zero"], &["rows"]),
+        node("Transpose", &["kv"], &["kvt"]),
+        node("MatMul", &["x", "kvt"], &["scores"]),
+        node("Add", &["scores", "rows"], &["masked"]),
+        node("Add", &["start1", "q1"], &["stop1"]),
+        node("Slice", &["table", "start1", "stop1", "zero"], &["pos"]),
+    ];
+    nodes[0].attribute = vec![int_attr("axis", 1)];
+    nodes[9].attribute = vec![int_attr("axis", 0)];
+    nodes[12].attribute = vec![ints_attr("perm", &[0, 2, 1])];
+    let inits = vec![
+        i64_init("i1", &[], &[1]),
+        i64_init("zero", &[1], &[0]),
+        f32_init("table", &[64, 4]),
+    ];
+    let outs = ["kv", "rows", "masked", "pos"];
+    let m = model(
+        nodes,
+        vec![
+            vi("past", 1, &[Dm::N(1), Dm::S("P"), Dm::N(4)]),
+            vi("x", 1, &[Dm::N(1), Dm::S("S"), Dm::N(4)]),
+        ],
+        untyped(&outs),
+        inits,
+    );
+    let dir = tempfile::tempdir().expect("tmp");
+    let (path, ours) = symbolic_outputs(m, dir.path(), "cache.onnx");
+    let (s, total) = (Dim::sym("S"), Dim::sym("P+S"));
+    assert_eq!(
+        ours[1],
+        [s.clone(), total.clone()],
+        "the mask's rows are the new length"
+    );
+    assert_eq!(ours[2], [Dim::Known(1), s, total]);
+    assert_eq!(ours[3][0], Dim::sym("min(P+S,64)-(min(P,64))"));
+    let sizes = [(0u64, 3u64), (5, 2), (62, 4), (64, 1), (70, 1)];
+    let feeds: Vec<_> = sizes
+        .iter()
+        .map(|&(p, s)| serde_json::json!({"past": [1, p, 4], "x": [1, s, 4]}))
+        .collect();
+    for (&(p, s), shapes) in sizes.iter().zip(reference_shapes(&path, &feeds)) {
+        for (k, dims) in ours.iter().enumerate() {
+            let got: Vec<Option<u64>> = dims.iter().map(|d| size_at(d, &[("P", p), ("S", s)])).collect();
+            let want: Vec<Option<u64>> = shapes[k].iter().map(|&v| Some(v)).collect();
+            assert_eq!(got, want, "output {} at P = {p}, S = {s}", outs[k]);
+        }
+    }
 }
 
 /// A float initializer of one value (shape `[]`).

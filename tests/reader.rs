@@ -1734,6 +1734,44 @@ fn unknown_dims_from_symbols_name_every_symbol_that_sizes_them() {
     }
 }
 
+/// Figures left unknown by a size written as an expression (`T-2` from a slice `x[1:-1]`)
+/// name the symbols to fix, never the expression: "--dim T=N", not "--dim T-2=N". With T
+/// fixed they are known (MatMul: M·K·N MACs, the reader's convention in the README).
+#[test]
+fn figures_unknown_by_an_expression_name_its_symbols() {
+    let d = tmp();
+    let m = model(
+        vec![
+            node("Slice", &["x", "one", "minus1", "zero"], &["y"]),
+            node("MatMul", &["y", "w"], &["z"]),
+        ],
+        vec![vi("x", 1, &[Dm::S("T"), Dm::N(4)])],
+        untyped(&["z"]),
+        vec![
+            i64_init("one", &[1], &[1]),
+            i64_init("minus1", &[1], &[-1]),
+            i64_init("zero", &[1], &[0]),
+            f32_init("w", &[4, 4]),
+        ],
+    );
+    let p = write(d.path(), "trimmed.onnx", &m);
+    let ps = p.to_str().expect("utf8");
+    let (code, out, err) = run(&["inspect", ps, "--format", "json"]);
+    assert_eq!(code, 0, "{err}");
+    let v: serde_json::Value = serde_json::from_str(&out).expect("json");
+    assert_eq!(v["outputs"][0]["shape"], serde_json::json!(["T-2", 4]));
+    assert_eq!(v["model"]["macs"], serde_json::Value::Null);
+    assert_eq!(v["model"]["unknown_because"], serde_json::json!(["T"]));
+    let (code, out, err) = run(&["inspect", ps]);
+    assert_eq!(code, 0, "{err}");
+    let row = out.lines().find(|l| l.contains("unknown until fixed")).expect("row");
+    assert!(row.contains("--dim T=N") && !row.contains("T-2"), "{row}");
+    let (code, out, err) = run(&["inspect", ps, "--format", "json", "--dim", "T=10"]);
+    assert_eq!(code, 0, "{err}");
+    let v: serde_json::Value = serde_json::from_str(&out).expect("json");
+    assert_eq!(v["model"]["macs"], serde_json::json!(8 * 4 * 4));
+}
+
 /// A chain of `n` Transposes (alternating perms) over a 2×3 input, with an `If` in the middle
 /// whose branches read an outer tensor: large graphs import their attributes and bodies on a
 /// second thread (from 4,096 nodes), small ones on one. Both must give the same IR.

@@ -5,6 +5,7 @@
 mod dtype;
 mod name;
 mod shape;
+mod terms;
 mod text;
 
 pub use dtype::DType;

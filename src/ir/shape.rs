@@ -1,5 +1,6 @@
 //! Dimensions and shapes: a dim is a known size, a named symbol, or unknown.
 
+use super::terms::Terms;
 use super::Name;
 
 #[derive(Clone, Debug, PartialEq, Eq, PartialOrd, Ord, Hash)]
@@ -63,7 +64,7 @@ impl Dim {
     fn wrap(&self) -> Option<String> {
         match self {
             // Division binds like a product but is not associative with one: `3*(T/2)`.
-            Dim::Sym(s) if s.contains(['+', '-', '/']) => Some(format!("({s})")),
+            Dim::Sym(s) if s.contains(['+', '-', '/', '%']) => Some(format!("({s})")),
             _ => self.text(),
         }
     }
@@ -75,8 +76,10 @@ impl Dim {
             (Dim::Known(1), d) | (d, Dim::Known(1)) => d.clone(),
             (Dim::Known(0), _) | (_, Dim::Known(0)) => Dim::Known(0),
             (Dim::Unknown, _) | (_, Dim::Unknown) => Dim::Unknown,
+            // The symbol first, the number last (`H*4`, never `4*H`), so that products read
+            // one way and the short forms (`scaled_product`, `divided_product`) apply.
             (Dim::Sym(s), Dim::Known(k)) | (Dim::Known(k), Dim::Sym(s)) => {
-                scaled_product(s, *k).unwrap_or_else(|| Dim::expression(self, '*', other))
+                scaled_product(s, *k).unwrap_or_else(|| Dim::expression(&Dim::Sym(s.clone()), '*', &Dim::Known(*k)))
             }
             (a, b) => Dim::expression(a, '*', b),
         })
@@ -170,7 +173,11 @@ impl Dim {
             (Dim::Known(0), _) | (_, Dim::Known(0)) => Dim::Known(0),
             (Dim::Unknown, _) | (_, Dim::Unknown) => return None,
             (a, b) if a == b => a.clone(),
-            (Dim::Sym(s), Dim::Known(k)) | (Dim::Known(k), Dim::Sym(s)) => {
+            (d @ Dim::Sym(s), Dim::Known(k)) | (Dim::Known(k), d @ Dim::Sym(s)) => {
+                // A sum of sizes with a constant of at least k is at least k.
+                if covers(d, &Dim::Known(*k)) {
+                    return Some(Dim::Known(*k));
+                }
                 // A cap of a cap is one cap: min(min(x, a), k) = min(x, min(a, k)).
                 match min_sides(s) {
                     Some((_, a)) if a.parse::<u64>().is_ok_and(|a| a <= *k) => Dim::Sym(s.clone()),
@@ -178,7 +185,11 @@ impl Dim {
                     _ => readable(&format!("min({s},{k})"))?,
                 }
             }
-            (Dim::Sym(a), Dim::Sym(b)) => readable(&format!("min({a},{b})"))?,
+            (a @ Dim::Sym(x), b @ Dim::Sym(y)) => match (covers(a, b), covers(b, a)) {
+                (true, _) => b.clone(),
+                (_, true) => a.clone(),
+                _ => readable(&format!("min({x},{y})"))?,
+            },
         })
     }
 
@@ -209,7 +220,7 @@ impl Dim {
             Dim::Known(v) => *v != 1,
             Dim::Sym(s) => {
                 let s = unwrapped(s);
-                if s.contains('@') || has_top_level(s, b"+-/,") {
+                if s.contains('@') || has_top_level(s, b"+-/%,") {
                     return false;
                 }
                 let mut factors = Vec::new();
@@ -243,8 +254,47 @@ impl Dim {
                 Ok(k) => d.offset(k),
                 Err(_) => Dim::Unknown,
             },
-            (a, b) => Dim::expression(a, '+', b),
+            (a, b) => collected_sum(a, b).unwrap_or_else(|| Dim::expression(a, '+', b)),
         })
+    }
+
+    /// Difference of two sizes, as a value that shape arithmetic computes (`K - Q`, `k - x%k`):
+    /// terms that cancel are taken out (`P+S` less `S` is `P`); what stays is written
+    /// `a-(b)`. Less a known amount it is `offset` (`T-2`, or an unknown dim below zero).
+    /// `None` where a symbolic side is unknown or data-dependent, or the difference is below
+    /// zero whatever the symbols.
+    pub fn sub(&self, other: &Dim) -> Option<Dim> {
+        match (self, other) {
+            (Dim::Known(a), Dim::Known(b)) => a.checked_sub(*b).map(Dim::Known),
+            (_, Dim::Known(_)) => self.less_known(other),
+            (a, b) if a == b => Some(Dim::Known(0)),
+            (a, b) => difference(a, b),
+        }
+    }
+
+    /// Remainder of a size by a positive whole number (`x%k`; for sizes, which are never
+    /// negative, ONNX Mod's two sign rules agree). A product with a factor that k divides is
+    /// 0. `None` where it cannot be written back (an unknown or data-dependent size).
+    #[inline(never)]
+    pub fn modulo(&self, k: u64) -> Option<Dim> {
+        match self {
+            _ if k == 0 => None,
+            Dim::Known(a) => Some(Dim::Known(a % k)),
+            _ if k == 1 => Some(Dim::Known(0)),
+            Dim::Sym(s) if s.contains('@') => None,
+            Dim::Sym(s) => {
+                let s = unwrapped(s);
+                if !has_top_level(s, b"+-/%") && s.split('*').any(|f| f.parse::<u64>().is_ok_and(|f| f % k == 0)) {
+                    return Some(Dim::Known(0));
+                }
+                if has_top_level(s, b"+-*/%") {
+                    readable(&format!("({s})%{k}"))
+                } else {
+                    readable(&format!("{s}%{k}"))
+                }
+            }
+            Dim::Unknown => None,
+        }
     }
 }
 
@@ -256,6 +306,48 @@ impl std::fmt::Display for Dim {
             Dim::Unknown => f.write_str("?"),
         }
     }
+}
+
+/// `a + b` for two symbolic sizes with terms in common or a whole-number identity between them
+/// (`Terms::tidy`), written with like terms collected; `None` for a plain sum, which stays as
+/// written (`P+S`).
+#[inline(never)]
+fn collected_sum(a: &Dim, b: &Dim) -> Option<Dim> {
+    let (ta, tb) = (Terms::of(a)?, Terms::of(b)?);
+    let shared = ta.shares_a_term(&tb);
+    let sum = ta.plus(&tb, 1)?;
+    let tidy = sum.clone().tidy()?;
+    (shared || tidy != sum).then(|| tidy.render()).flatten()
+}
+
+#[inline(never)]
+fn difference(a: &Dim, b: &Dim) -> Option<Dim> {
+    Terms::of(a)?.plus(&Terms::of(b)?, -1)?.tidy()?.render()
+}
+
+/// Whether `big` is at least `small` for every value of their symbols: their difference is a
+/// sum of sizes, or one is the other rounded to a multiple of k, `big` up (`((x+k-1)/k)*k`)
+/// or `small` down (`(x/k)*k`).
+fn covers(big: &Dim, small: &Dim) -> bool {
+    if let (Some(b), Some(s)) = (Terms::of(big), Terms::of(small)) {
+        if b.plus(&s, -1).is_some_and(|d| d.nonnegative()) {
+            return true;
+        }
+    }
+    let factor = |d: &Dim| match d {
+        Dim::Sym(text) => text
+            .rsplit_once('*')
+            .and_then(|(_, k)| k.parse::<u64>().ok())
+            .filter(|&k| k > 0),
+        _ => None,
+    };
+    let up = factor(big).is_some_and(|k| {
+        let padded = i64::try_from(k - 1)
+            .ok()
+            .and_then(|up| small.offset(up).div_floor(k).mul(&Dim::Known(k)));
+        padded.as_ref() == Some(big)
+    });
+    up || factor(small).is_some_and(|k| big.div_floor(k).mul(&Dim::Known(k)).as_ref() == Some(small))
 }
 
 /// The longest symbolic dim expression tilecut builds; longer ones become unknown.
@@ -277,7 +369,7 @@ pub fn rank_within_limit(len: u64) -> Result<usize, String> {
 }
 
 /// Each byte of `s` with the parenthesis depth after it.
-fn depths(s: &str) -> impl Iterator<Item = (u8, i32)> + '_ {
+pub(super) fn depths(s: &str) -> impl Iterator<Item = (u8, i32)> + '_ {
     s.bytes().scan(0i32, |depth, b| {
         match b {
             b'(' => *depth += 1,
@@ -289,12 +381,12 @@ fn depths(s: &str) -> impl Iterator<Item = (u8, i32)> + '_ {
 }
 
 /// Whether `s` has one of `ops` outside every pair of parentheses.
-fn has_top_level(s: &str, ops: &[u8]) -> bool {
+pub(super) fn has_top_level(s: &str, ops: &[u8]) -> bool {
     depths(s).any(|(b, depth)| depth == 0 && ops.contains(&b))
 }
 
 /// `s` without one pair of parentheses around all of it, if it has one.
-fn unwrapped(s: &str) -> &str {
+pub(super) fn unwrapped(s: &str) -> &str {
     match s.strip_prefix('(').and_then(|r| r.strip_suffix(')')) {
         // `(a)*(b)` also starts and ends with parentheses: only a pair that never closes
         // early encloses the whole.
@@ -303,7 +395,7 @@ fn unwrapped(s: &str) -> &str {
     }
 }
 
-fn balanced(s: &str) -> bool {
+pub(super) fn balanced(s: &str) -> bool {
     depths(s).all(|(_, depth)| depth >= 0) && depths(s).last().is_none_or(|(_, d)| d == 0)
 }
 
@@ -313,7 +405,7 @@ fn balanced(s: &str) -> bool {
 fn scaled_product(s: &str, k: u64) -> Option<Dim> {
     let s = unwrapped(s);
     // A data-dependent size's node name may hold any character: never taken apart.
-    if s.contains('@') || has_top_level(s, b"+-/") {
+    if s.contains('@') || has_top_level(s, b"+-/%") {
         return None;
     }
     let (rest, a) = s.rsplit_once('*')?;
@@ -342,7 +434,7 @@ fn nested_quotient(s: &str, d: u64) -> Option<Dim> {
     let x = match x.strip_prefix('(').and_then(|r| r.strip_suffix(')')) {
         Some(inner) if balanced(inner) => inner,
         // A bare name: anything with an operator in it would bind differently.
-        _ if !x.is_empty() && !x.contains(['+', '-', '*', '/', '(', ')']) => x,
+        _ if !x.is_empty() && !x.contains(['+', '-', '*', '/', '%', '(', ')']) => x,
         _ => return None,
     };
     let shift = a.checked_mul(i64::try_from(b).ok()?)?;
@@ -355,7 +447,7 @@ fn nested_quotient(s: &str, d: u64) -> Option<Dim> {
 
 /// `(x*a + r) / d` as `x*(a/d) + r/d` where d divides a: for whole numbers,
 /// floor((a·x + r) / d) = (a/d)·x + floor(r / d) (common practice: a multiple of d divides
-/// exactly). A stride-2 window over a map upsampled by 4 then reads `x*2`, not
+/// exactly); as `(x + r/a) / (d/a)` where a divides d and r. A stride-2 window over a map upsampled by 4 then reads `x*2`, not
 /// `(x*4+1)/2`, and deep pyramids stay under `MAX_EXPRESSION`. `s` must be a product whose
 /// last factor is a whole number, with an optional whole-number term after it.
 fn divided_product(s: &str, d: u64) -> Option<Dim> {
@@ -369,15 +461,24 @@ fn divided_product(s: &str, d: u64) -> Option<Dim> {
         }
         _ => (s, 0),
     };
-    if has_top_level(p, b"+-/,") {
+    if has_top_level(p, b"+-/%,") {
         return None;
     }
     let (x, a) = p.rsplit_once('*')?;
     let a: u64 = a.parse().ok()?;
-    if a % d != 0 || x.is_empty() {
+    if a == 0 || x.is_empty() {
         return None;
     }
     let base = Dim::sym(unwrapped(x));
+    if a % d != 0 {
+        // floor((a·x + r) / d) = floor((x + r/a) / (d/a)) where a divides both d and r:
+        // `(H*2)/4` is `H/2`.
+        if d % a != 0 || r % a != 0 {
+            return None;
+        }
+        let shifted = base.offset(i64::try_from(r / a).ok()?);
+        return (shifted != Dim::Unknown).then(|| shifted.div_floor(d / a));
+    }
     let scaled = base.mul(&Dim::Known(a / d))?;
     let shifted = scaled.offset(i64::try_from(r / d).ok()?);
     (shifted != Dim::Unknown).then_some(shifted)
@@ -389,7 +490,7 @@ pub fn compact_expression(text: &str) -> Option<String> {
     // `//` is how exporters that print Python expressions write the floor division tilecut
     // writes as `/` (the same for sizes, which are never negative).
     let compact: String = text.split_whitespace().collect::<String>().replace("//", "/");
-    let operators = compact.contains(['+', '*', '-', '/']);
+    let operators = compact.contains(['+', '*', '-', '/', '%']);
     (operators && evaluate(&compact, &|_| Some(1)).is_ok()).then_some(compact)
 }
 
@@ -436,18 +537,27 @@ fn tokens(s: &str) -> impl Iterator<Item = &str> {
         let call = t == "min" && after.starts_with('(');
         rest = after.get(1..).unwrap_or("");
         if !call {
-            return Some(t);
+            // `a-(b)`: the dash before a parenthesis takes away; it is no part of `a`.
+            return Some(match after.starts_with('(') {
+                true => t.strip_suffix('-').unwrap_or(t),
+                false => t,
+            });
         }
     })
 }
 
-/// A token of an expression without a trailing `-k` or `/k` (whole numbers): `T-1` is `T`,
-/// `T/2` is `T`; `seq-len` and `N/A` are names and stay whole.
-fn strip_constant_tail(t: &str) -> &str {
-    match t.find(['-', '/']) {
-        Some(i) if t[i + 1..].split(['-', '/']).all(|x| x.parse::<u64>().is_ok()) => &t[..i],
-        _ => t,
+/// A token of an expression without its trailing `-k`, `/k` or `%k` (whole numbers): `T-1`
+/// is `T`, `T/2` is `T`, `seq-len-2` is `seq-len`; `seq-len` and `N/A` are names and stay
+/// whole.
+fn strip_constant_tail(mut t: &str) -> &str {
+    while let Some(i) = t.rfind(['-', '/', '%']) {
+        let k = &t[i + 1..];
+        if k.is_empty() || !k.bytes().all(|c| c.is_ascii_digit()) {
+            break;
+        }
+        t = &t[..i];
     }
+    t
 }
 
 /// The text given to `evaluate` is not a sum of products.
@@ -455,7 +565,8 @@ fn strip_constant_tail(t: &str) -> &str {
 pub struct NotAnExpression;
 
 /// Evaluates a sum of products and quotients over identifiers, whole numbers and `min(x,y)`
-/// (`a+2*(b+1)/3`, no spaces; `/` rounds down; left to right within a product). `Err` if the
+/// (`a+2*(b+1)/3`, `k-(x%k)`, no spaces; `/` rounds down, `%` is the remainder; left to right
+/// within a product and within a sum). `Err` if the
 /// text is not such an expression; `Ok(None)` if `value` does not know an identifier, the
 /// arithmetic overflows or divides by zero.
 pub fn evaluate(text: &str, value: &dyn Fn(&str) -> Option<u64>) -> Result<Option<u64>, NotAnExpression> {
@@ -472,31 +583,49 @@ pub fn evaluate(text: &str, value: &dyn Fn(&str) -> Option<u64>) -> Result<Optio
         }
         /// One precedence level: operands joined by `join` (any operand) or `by_number` (a
         /// whole number only, what tilecut writes: see `offset` and `div_floor`).
+        /// One precedence level: operands joined by `join` (any operand) or by one of
+        /// `by_number`, whose right side is a whole number or, for `-`, a parenthesized
+        /// expression (what tilecut writes: see `offset`, `div_floor`, `modulo`, `sub`; a
+        /// name after `-` would be read into names like `seq-len`).
         fn chain(
             &mut self,
             depth: usize,
             (join, join_op): Operator,
-            (by_number, number_op): Operator,
+            by_number: &[Operator],
             operand: fn(&mut Self, usize) -> Result<Option<u64>, NotAnExpression>,
         ) -> Result<Option<u64>, NotAnExpression> {
             let mut acc = operand(self, depth)?;
-            while let Some(op) = self.peek().filter(|&c| c == join || c == by_number) {
+            while let Some(op) = self.peek().filter(|&c| c == join || by_number.iter().any(|o| o.0 == c)) {
                 self.at += 1;
-                if op == by_number && !self.peek().is_some_and(|c| c.is_ascii_digit()) {
+                let next_ok = |c: u8| c.is_ascii_digit() || (op == b'-' && c == b'(');
+                if op != join && !self.peek().is_some_and(next_ok) {
                     return Err(NotAnExpression);
                 }
                 let r = operand(self, depth)?;
                 // Overflow, a size below zero or a division by zero: unknown.
-                let f = if op == join { join_op } else { number_op };
+                let f = match by_number.iter().find(|o| o.0 == op) {
+                    Some(o) if op != join => o.1,
+                    _ => join_op,
+                };
                 acc = acc.zip(r).and_then(|(a, b)| f(a, b));
             }
             Ok(acc)
         }
         fn sum(&mut self, depth: usize) -> Result<Option<u64>, NotAnExpression> {
-            self.chain(depth, (b'+', u64::checked_add), (b'-', u64::checked_sub), Self::product)
+            self.chain(
+                depth,
+                (b'+', u64::checked_add),
+                &[(b'-', u64::checked_sub)],
+                Self::product,
+            )
         }
         fn product(&mut self, depth: usize) -> Result<Option<u64>, NotAnExpression> {
-            self.chain(depth, (b'*', u64::checked_mul), (b'/', u64::checked_div), Self::factor)
+            self.chain(
+                depth,
+                (b'*', u64::checked_mul),
+                &[(b'/', u64::checked_div), (b'%', u64::checked_rem)],
+                Self::factor,
+            )
         }
         fn factor(&mut self, depth: usize) -> Result<Option<u64>, NotAnExpression> {
             // Dims come from files: a hostile one must not nest parentheses into a stack overflow.
@@ -628,7 +757,8 @@ impl Shape {
             if out.iter().any(|x| x.addr() == s.addr()) {
                 continue;
             }
-            let simple = !s.contains(['*', '+', '(', ')', '/']);
+            // A dash may be a name's own (`seq-len`) or take away (`T-2`): not simple.
+            let simple = !s.contains(['*', '+', '(', ')', '/', '-', '%']);
             if simple {
                 if !out.iter().any(|x| x == s) && s.parse::<u64>().is_err() {
                     out.push(s.clone());
@@ -814,7 +944,7 @@ mod tests {
         assert_eq!(half, Dim::sym("(T+1)/2"));
         assert_eq!(half.symbols(), ["T".to_string()]);
         let tripled = Dim::Known(3).mul(&t.div_floor(2)).expect("product");
-        assert_eq!(tripled, Dim::sym("3*(T/2)"));
+        assert_eq!(tripled, Dim::sym("(T/2)*3"));
         for v in [0u64, 1, 2, 7, 100] {
             let at = |x: &str| (x == "T").then_some(v);
             assert_eq!(evaluate("(T+1)/2", &at), Ok(Some(v.div_ceil(2))));
@@ -937,5 +1067,221 @@ mod tests {
         assert!(Dim::Known(0).never_one() && Dim::Known(7).never_one());
         assert!(!Dim::Known(1).never_one() && !Dim::Unknown.never_one());
         assert!(!Dim::sym("n@/m/NonZero*2").never_one(), "node names are not read");
+    }
+
+    /// Pads to a multiple, cuts to one, a roll's halves, a cache's length less the new one,
+    /// and repeated terms: the dims `add`, `sub`, `modulo` and `lesser` write equal the same
+    /// integer arithmetic done step by step (floor division and remainder of whole numbers,
+    /// ONNX Mod, Pad, Slice and Concat sizes), and take the short forms.
+    #[test]
+    fn sums_differences_and_remainders_equal_integer_arithmetic() {
+        let x = Dim::sym("H");
+        for k in 1..9u64 {
+            let kd = Dim::Known(k);
+            let pad = kd
+                .sub(&x.modulo(k).expect("mod"))
+                .and_then(|d| d.modulo(k))
+                .expect("pad");
+            let padded = x.add(&pad).expect("sum");
+            let cut = x.sub(&x.modulo(k).expect("mod")).expect("cut");
+            for h in 0..80u64 {
+                let at = |d: &Dim| match d {
+                    Dim::Known(v) => Some(*v),
+                    Dim::Sym(s) => evaluate(s, &|_| Some(h)).expect("readable"),
+                    Dim::Unknown => None,
+                };
+                assert_eq!(at(&pad), Some((k - h % k) % k), "pad by {k} at {h}");
+                assert_eq!(at(&padded), Some(h + (k - h % k) % k), "padded by {k} at {h}");
+                assert_eq!(at(&cut), Some(h - h % k), "cut by {k} at {h}");
+            }
+            if k > 1 {
+                assert_eq!(padded, x.offset(k as i64 - 1).div_floor(k).mul(&kd).expect("product"));
+                assert_eq!(cut, x.div_floor(k).mul(&kd).expect("product"));
+                // Cropping the padded map back to H, or H to the cut size, is that size.
+                assert_eq!(x.lesser(&padded), Some(x.clone()));
+                assert_eq!(padded.lesser(&x), Some(x.clone()));
+                assert_eq!(cut.lesser(&x), Some(cut.clone()));
+            }
+            // A roll by k: `x[-k:]` then `x[:-k]`, concatenated, is x again.
+            let rolled = x.lesser(&kd).expect("cap").add(&x.offset(-(k as i64))).expect("sum");
+            assert_eq!(rolled, x, "roll by {k}");
+        }
+        let (p, s) = (Dim::sym("P"), Dim::sym("S"));
+        let total = p.add(&s).expect("sum");
+        assert_eq!(total, Dim::sym("P+S"), "a plain sum stays as written");
+        assert_eq!(total.sub(&s), Some(p.clone()));
+        assert_eq!(total.sub(&total), Some(Dim::Known(0)));
+        assert_eq!(s.sub(&total), None, "below zero whatever P and S are");
+        assert_eq!(p.sub(&s), Some(Dim::sym("P-(S)")));
+        let w3 = Dim::sym("W").offset(3);
+        assert_eq!(w3.add(&w3), Some(Dim::sym("W*2+6")));
+        assert_eq!(Dim::sym("T*4").modulo(2), Some(Dim::Known(0)));
+        assert_eq!(Dim::sym("H*2").div_floor(4), Dim::sym("H/2"));
+        assert_eq!(Dim::sym("H*2+4").div_floor(4), Dim::sym("(H+2)/2"));
+        assert_eq!(
+            Dim::Known(4).mul(&Dim::sym("H")),
+            Some(Dim::sym("H*4")),
+            "the symbol first"
+        );
+        assert_eq!(
+            Dim::sym("W+3").lesser(&Dim::Known(1)),
+            Some(Dim::Known(1)),
+            "W+3 is at least 3"
+        );
+        assert_eq!(Dim::sym("W+3").lesser(&Dim::Known(4)), Some(Dim::sym("min(W+3,4)")));
+        assert_eq!(Dim::sym("B*S").modulo(3), Some(Dim::sym("(B*S)%3")));
+        assert_eq!(Dim::sym("k@/m/TopK").modulo(3), None, "node names are not taken apart");
+        assert_eq!(evaluate("7-(H%7)", &|_| Some(3)), Ok(Some(4)));
+        assert_eq!(Dim::sym("P-(S)").symbols(), ["P".to_string(), "S".to_string()]);
+        assert_eq!(Dim::sym("(7-(H%7))%7").symbols(), ["H".to_string()]);
+        assert_eq!(Dim::sym("seq-len-2").symbols(), ["seq-len".to_string()]);
+    }
+
+    /// Random compositions of the dim operations over two symbols, evaluated at many values,
+    /// against the same operations on whole numbers step by step: wherever every step is a
+    /// size (no difference below zero, no division by zero), a dim that is known or
+    /// readable gives that size. Dims that say unknown (`None`, `Dim::Unknown`) are allowed;
+    /// a wrong size is not.
+    #[test]
+    fn composed_dim_operations_never_give_a_wrong_size() {
+        #[derive(Clone, Copy)]
+        enum Op {
+            Add,
+            Sub,
+            Mul(u64),
+            Div(u64),
+            Mod(u64),
+            Offset(i64),
+            Min,
+        }
+        let mut seed = 0x9e37_79b9_7f4a_7c15u64;
+        let mut next = move |n: u64| {
+            seed ^= seed << 13;
+            seed ^= seed >> 7;
+            seed ^= seed << 17;
+            seed % n
+        };
+        let mut wrong = Vec::new();
+        let mut readable = 0;
+        for _ in 0..6000 {
+            // Besides the symbols and a number, a product and a sum with a product in it, so
+            // that products of sums of products come up often.
+            let (a, b) = (Dim::sym("a"), Dim::sym("b"));
+            let b2 = b.mul(&Dim::Known(2)).expect("product");
+            let leaves = [a.clone(), b, Dim::Known(next(9)), b2.clone(), a.add(&b2).expect("sum")];
+            let mut dims: Vec<Dim> = leaves.to_vec();
+            let mut steps = Vec::new();
+            for _ in 0..(2 + next(7)) {
+                let op = match next(7) {
+                    0 => Op::Add,
+                    1 => Op::Sub,
+                    2 => Op::Mul(1 + next(4)),
+                    3 => Op::Div(1 + next(8)),
+                    4 => Op::Mod(1 + next(8)),
+                    5 => Op::Offset(next(9) as i64 - 4),
+                    _ => Op::Min,
+                };
+                let (i, j) = (next(dims.len() as u64) as usize, next(dims.len() as u64) as usize);
+                let (l, r) = (&dims[i], &dims[j]);
+                let d = match op {
+                    Op::Add => l.add(r),
+                    Op::Sub => l.sub(r),
+                    Op::Mul(k) => l.mul(&Dim::Known(k)),
+                    Op::Div(k) => Some(l.div_floor(k)),
+                    Op::Mod(k) => l.modulo(k),
+                    Op::Offset(k) => Some(l.offset(k)),
+                    Op::Min => l.lesser(r),
+                };
+                dims.push(d.unwrap_or(Dim::Unknown));
+                steps.push((op, i, j));
+            }
+            for (a, b) in [(0u64, 0u64), (1, 0), (3, 5), (7, 2), (12, 12), (30, 17), (64, 100)] {
+                let mut v: Vec<Option<u64>> = vec![Some(a), Some(b), leaves[2].known(), Some(b * 2), Some(a + b * 2)];
+                for &(op, i, j) in &steps {
+                    let (l, r) = (v[i], v[j]);
+                    v.push(match op {
+                        Op::Add => l.zip(r).and_then(|(l, r)| l.checked_add(r)),
+                        Op::Sub => l.zip(r).and_then(|(l, r)| l.checked_sub(r)),
+                        Op::Mul(k) => l.and_then(|l| l.checked_mul(k)),
+                        Op::Div(k) => l.map(|l| l / k),
+                        Op::Mod(k) => l.map(|l| l % k),
+                        Op::Offset(k) => l.and_then(|l| l.checked_add_signed(k)),
+                        Op::Min => l.zip(r).map(|(l, r)| l.min(r)),
+                    });
+                }
+                let (Some(want), Some(last)) = (v[v.len() - 1], dims.last()) else {
+                    continue;
+                };
+                let got = match last {
+                    Dim::Known(g) => Some(*g),
+                    Dim::Sym(s) => {
+                        let value = |n: &str| match n {
+                            "a" => Some(a),
+                            "b" => Some(b),
+                            _ => None,
+                        };
+                        evaluate(s, &value).expect("tilecut's own dims read back")
+                    }
+                    Dim::Unknown => None,
+                };
+                if got.is_some() {
+                    readable += 1;
+                }
+                if got.is_some_and(|g| g != want) {
+                    wrong.push(format!("{last} at a={a}, b={b}: {got:?}, not {want}"));
+                }
+            }
+        }
+        assert!(
+            wrong.is_empty(),
+            "{} wrong sizes, first: {:?}",
+            wrong.len(),
+            &wrong[..wrong.len().min(5)]
+        );
+        assert!(readable > 5000, "only {readable} sizes were readable");
+    }
+
+    /// Dim texts come from files too (`dim_param`): the operations take any text apart
+    /// without panicking, and whatever they write back reads as an expression or is one
+    /// opaque name they were given.
+    #[test]
+    fn operations_on_arbitrary_dim_text_never_panic() {
+        let alphabet = b"aH(()+-*/%,0123456789 min@.";
+        let mut seed = 0x2545_f491_4f6c_dd1du64;
+        let mut next = move |n: usize| {
+            seed ^= seed << 13;
+            seed ^= seed >> 7;
+            seed ^= seed << 17;
+            (seed % n as u64) as usize
+        };
+        for _ in 0..20_000 {
+            let (la, lb) = (1 + next(16), 1 + next(16));
+            let mut text =
+                |len: usize| -> String { (0..len).map(|_| alphabet[next(alphabet.len())] as char).collect() };
+            let (a, b) = (Dim::sym(&text(la)), Dim::param(&text(lb)));
+            let k = Dim::Known(3);
+            for d in [
+                a.add(&b),
+                a.sub(&b),
+                b.sub(&a),
+                a.sub(&k),
+                k.sub(&a),
+                a.modulo(7),
+                a.lesser(&b),
+                a.lesser(&k),
+                a.mul(&k),
+                Some(a.div_floor(4)),
+                Some(a.offset(-2)),
+            ]
+            .into_iter()
+            .flatten()
+            {
+                let _ = d.symbols();
+                let _ = d.never_one();
+                if let Dim::Sym(s) = &d {
+                    let _ = evaluate(s, &|_| Some(5));
+                }
+            }
+        }
     }
 }

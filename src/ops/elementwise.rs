@@ -197,8 +197,7 @@ fn fold_add(ctx: &Ctx) -> Option<Vec<ConstValue>> {
     fold_with(ctx, 2..=2, |a| a[0].checked_add(a[1]), |a| a[0] + a[1], false).or_else(|| fold_symbolic(ctx, Dim::add))
 }
 fn fold_sub(ctx: &Ctx) -> Option<Vec<ConstValue>> {
-    fold_with(ctx, 2..=2, |a| a[0].checked_sub(a[1]), |a| a[0] - a[1], false)
-        .or_else(|| fold_symbolic(ctx, Dim::less_known))
+    fold_with(ctx, 2..=2, |a| a[0].checked_sub(a[1]), |a| a[0] - a[1], false).or_else(|| fold_symbolic(ctx, Dim::sub))
 }
 fn fold_mul(ctx: &Ctx) -> Option<Vec<ConstValue>> {
     fold_with(ctx, 2..=2, |a| a[0].checked_mul(a[1]), |a| a[0] * a[1], false).or_else(|| fold_symbolic(ctx, Dim::mul))
@@ -365,7 +364,16 @@ fn fold_mod(ctx: &Ctx) -> Option<Vec<ConstValue>> {
     }
     let int_op: fn(&[i64]) -> Option<i64> = if ctx.int("fmod", 0) == 1 { trunc_mod } else { floor_mod };
     // Floats are allowed only with fmod = 1, whose sign rule is C's: Rust's `%` on f64.
-    fold_with(ctx, 2..=2, int_op, |a| a[0] % a[1], false)
+    fold_with(ctx, 2..=2, int_op, |a| a[0] % a[1], false).or_else(|| {
+        // A size's remainder by a whole number (`W % 7` of a window pad): sizes are never
+        // negative, where both sign rules agree.
+        if ctx.dtype(0).is_none_or(DType::is_float) {
+            return None;
+        }
+        let c = all_consts(ctx)?;
+        let remainder = |a: &Dim, b: &Dim| a.modulo(b.known().filter(|&k| k > 0)?);
+        Some(vec![fold::dims_elementwise(&c, remainder, false)?])
+    })
 }
 /// Pow keeps the base's type (input 0), so an integer base with a float exponent folds to
 /// integers, truncated as a cast would.

@@ -297,7 +297,7 @@ fn factors(d: &Dim) -> Option<(u64, Vec<Dim>)> {
     match d {
         Dim::Known(v) => Some((*v, Vec::new())),
         Dim::Unknown => None,
-        Dim::Sym(s) if s.contains(['@', '(', '+', '-', '/']) || !s.contains('*') => Some((1, vec![d.clone()])),
+        Dim::Sym(s) if s.contains(['@', '(', '+', '-', '/', '%']) || !s.contains('*') => Some((1, vec![d.clone()])),
         Dim::Sym(s) => {
             let mut k = 1u64;
             let mut fs = Vec::new();
@@ -653,19 +653,20 @@ fn split(ctx: &Ctx) -> Inferred {
         .collect())
 }
 
-/// A slice's end: a number, or a size known only as a symbol (an end read off a `Shape`).
+/// A slice's start or end: a number, or a size known only as a symbol (read off a `Shape`,
+/// or computed from such sizes: a cache's length).
 enum End {
     At(i64),
     Size(Dim),
 }
 
 /// Slice parameters: (starts, ends, axes, steps), from attributes (opset < 10) or inputs.
-type SliceParams = (Vec<i64>, Vec<End>, Option<Vec<i64>>, Option<Vec<i64>>);
+type SliceParams = (Vec<End>, Vec<End>, Option<Vec<i64>>, Option<Vec<i64>>);
 
 fn slice_params(ctx: &Ctx) -> Option<SliceParams> {
     if ctx.opset < 10 {
-        let ends = ctx.ints("ends")?.into_iter().map(End::At).collect();
-        return Some((ctx.ints("starts")?, ends, ctx.ints("axes"), None));
+        let at = |v: Vec<i64>| v.into_iter().map(End::At).collect();
+        return Some((at(ctx.ints("starts")?), at(ctx.ints("ends")?), ctx.ints("axes"), None));
     }
     let opt = |i: usize| {
         if ctx.has_input(i) {
@@ -674,21 +675,23 @@ fn slice_params(ctx: &Ctx) -> Option<SliceParams> {
             Some(None)
         }
     };
-    let ends = ctx.konst(2)?;
-    let ends = match ends.try_ints() {
-        Some(v) => v.into_iter().map(End::At).collect(),
-        None => match &ends.data {
-            ConstData::Dims(d) => d
-                .iter()
-                .map(|x| match x.known().and_then(|k| i64::try_from(k).ok()) {
-                    Some(k) => End::At(k),
-                    None => End::Size(x.clone()),
-                })
-                .collect(),
-            _ => return None,
-        },
+    let bounds = |i: usize| -> Option<Vec<End>> {
+        let c = ctx.konst(i)?;
+        Some(match c.try_ints() {
+            Some(v) => v.into_iter().map(End::At).collect(),
+            None => match &c.data {
+                ConstData::Dims(d) => d
+                    .iter()
+                    .map(|x| match x.known().and_then(|k| i64::try_from(k).ok()) {
+                        Some(k) => End::At(k),
+                        None => End::Size(x.clone()),
+                    })
+                    .collect(),
+                _ => return None,
+            },
+        })
     };
-    Some((ctx.const_ints(1)?, ends, opt(3)?, opt(4)?))
+    Some((bounds(1)?, bounds(2)?, opt(3)?, opt(4)?))
 }
 
 /// One sliced axis: its clamped (start, end, step) where the axis size is known, per the
@@ -714,20 +717,27 @@ fn slice_ranges(ctx: &Ctx, d: &[Dim]) -> Result<Option<Vec<(usize, AxisSpan)>>, 
         if step == 0 {
             return Err("step 0".into());
         }
+        let start = match &starts[i] {
+            End::At(s) => *s,
+            End::Size(from) => {
+                out.push((axis, AxisSpan::Open(span_from_size(&d[axis], from, &ends[i], step))));
+                continue;
+            }
+        };
         let end = match &ends[i] {
             End::At(e) => *e,
             End::Size(size) => {
-                out.push((axis, AxisSpan::Open(sized_span(&d[axis], starts[i], size, step))));
+                out.push((axis, AxisSpan::Open(sized_span(&d[axis], start, size, step))));
                 continue;
             }
         };
         let Dim::Known(dim) = d[axis] else {
-            out.push((axis, AxisSpan::Open(open_span(&d[axis], starts[i], end, step))));
+            out.push((axis, AxisSpan::Open(open_span(&d[axis], start, end, step))));
             continue;
         };
         let dim = dim as i64;
         let fix = |v: i64| if v < 0 { v.saturating_add(dim) } else { v };
-        let (s, e) = (fix(starts[i]), fix(end));
+        let (s, e) = (fix(start), fix(end));
         let (s, e) = if step > 0 {
             (s.clamp(0, dim), e.clamp(0, dim))
         } else if dim == 0 {
@@ -757,6 +767,26 @@ fn sized_span(axis: &Dim, start: i64, end: &Dim, step: i64) -> Dim {
         _ if start == 0 && step == 1 => end.lesser(axis).unwrap_or(Dim::Unknown),
         _ => Dim::Unknown,
     }
+}
+
+/// The output size of a forward slice whose start is a symbolic size (a cache's past length:
+/// `mask[:, :, P:P+S]`): the end clamped to the axis less the start clamped to it (ONNX
+/// operator specification, Slice, step 1), `min(end,axis)` written shorter where one covers
+/// the other (`P` within `P+S`). On a symbolic axis built to the total length this is exact
+/// and short (`S`); on a fixed table it is exact and stays in `min` form. A difference below
+/// zero (an end before the start, an empty slice) evaluates to no size, never a wrong one.
+fn span_from_size(axis: &Dim, start: &Dim, end: &End, step: i64) -> Dim {
+    if step != 1 {
+        return Dim::Unknown;
+    }
+    let end = match end {
+        End::Size(e) => e.lesser(axis),
+        End::At(e) if *e >= TO_THE_END => Some(axis.clone()),
+        End::At(_) => None,
+    };
+    end.zip(start.lesser(axis))
+        .and_then(|(e, s)| e.sub(&s))
+        .unwrap_or(Dim::Unknown)
 }
 
 /// Exporters write "to the end" as a large end: INT64_MAX, INT32_MAX, or 10^9 (one TF
@@ -928,7 +958,13 @@ fn pad(ctx: &Ctx) -> Inferred {
         return Ok(smallvec::smallvec![tensor(dt, Shape::unknown())]);
     };
     let pads = if ctx.opset >= 11 {
-        ctx.const_ints(1)
+        match ctx.konst(1) {
+            Some(c) if matches!(c.data, ConstData::Dims(_)) && c.try_ints().is_none() => {
+                return Ok(smallvec::smallvec![tensor(dt, padded_by_sizes(ctx, &d, c.as_dims())?)]);
+            }
+            Some(c) => c.try_ints(),
+            None => None,
+        }
     } else {
         ctx.ints("pads").or_else(|| ctx.ints("paddings"))
     };
@@ -959,6 +995,33 @@ fn pad(ctx: &Ctx) -> Inferred {
         };
     }
     Ok(smallvec::smallvec![tensor(dt, Shape::of(out))])
+}
+
+/// Pad's output where the pads are sizes computed from the input's shape (a pad up to a
+/// multiple of a window, `(k - W % k) % k`): each padded axis grows by its two pads (ONNX
+/// operator specification, Pad). Such pads are never negative (a value of sizes), so no axis
+/// is cropped.
+fn padded_by_sizes(ctx: &Ctx, d: &[Dim], pads: Vec<Dim>) -> Result<Shape, String> {
+    let axes: Vec<usize> = if ctx.opset >= 18 && ctx.has_input(3) {
+        match ctx.const_ints(3) {
+            Some(a) => a
+                .iter()
+                .map(|&x| norm_axis(x, d.len()).ok_or("axis out of range"))
+                .collect::<Result<_, _>>()?,
+            None => return Ok(Shape::of_rank(d.len())),
+        }
+    } else {
+        (0..d.len()).collect()
+    };
+    if pads.len() != 2 * axes.len() {
+        return Err(format!("pads has {} values for {} axes", pads.len(), axes.len()));
+    }
+    let mut out = d.to_vec();
+    for (k, &a) in axes.iter().enumerate() {
+        let grown = d[a].add(&pads[k]).and_then(|x| x.add(&pads[k + axes.len()]));
+        out[a] = grown.ok_or("pads overflow")?;
+    }
+    Ok(Shape::of(out))
 }
 
 /// floor(size × scale), per the Resize specification. A symbolic size stays an expression

@@ -829,7 +829,8 @@ class B:
 def step(b, x, c):
     """one random transformation of a 4-D float tensor with c channels; returns (name, c)"""
     k = R.choice(["conv", "pool", "resize_scale", "resize_sizes_shape", "slice", "pad", "transpose2", "flatten_back",
-                  "convt", "concat_self", "gap", "split", "reshape_shape", "upsample_shape", "shape_slice_expand", "space"])
+                  "convt", "concat_self", "gap", "split", "reshape_shape", "upsample_shape", "shape_slice_expand", "space",
+                  "window_pad", "roll", "cut_multiple"])
     if k == "conv":
         co = R.randint(1, 4)
         kh, kw = R.randint(1, 3), R.randint(1, 3)
@@ -921,6 +922,32 @@ def step(b, x, c):
         if R.random() < 0.5:
             return b.op("SpaceToDepth", [x], blocksize=1), c
         return b.op("DepthToSpace", [x], blocksize=1), c
+    if k == "window_pad":
+        # pad H and W up to a multiple of k with pads (k - size % k) % k computed from the
+        # shape (window attention exports), then, half the time, crop back to Shape(x)
+        win = b.const(i64(R.randint(2, 7)))
+        sh = b.op("Shape", [x])
+        hw = [b.op("Gather", [sh, b.const(i64(a))], axis=0) for a in (2, 3)]
+        pads = [b.op("Mod", [b.op("Sub", [win, b.op("Mod", [d, win])]), win]) for d in hw]
+        pads = [b.op("Unsqueeze", [p, b.const(i64([0]))]) for p in pads]
+        y = b.op("Pad", [x, b.op("Concat", [b.const(i64([0, 0, 0, 0, 0, 0])), *pads], axis=0)])
+        if R.random() < 0.5:
+            ends = b.op("Slice", [sh, b.const(i64([2])), b.const(i64([4]))])
+            y = b.op("Slice", [y, b.const(i64([0, 0])), ends, b.const(i64([2, 3]))])
+        return y, c
+    if k == "roll":
+        # torch.roll along H or W: the last k then the rest, concatenated
+        ax, sh_ = R.choice([2, 3]), R.randint(1, 3)
+        tail = b.op("Slice", [x, b.const(i64([-sh_])), b.const(i64([2**62])), b.const(i64([ax]))])
+        head = b.op("Slice", [x, b.const(i64([0])), b.const(i64([-sh_])), b.const(i64([ax]))])
+        return b.op("Concat", [tail, head], axis=ax), c
+    if k == "cut_multiple":
+        # x[:, :, :H - H % k]: H cut down to a multiple of k
+        ax = R.choice([2, 3])
+        d = b.op("Gather", [b.op("Shape", [x]), b.const(i64(ax))], axis=0)
+        end = b.op("Sub", [d, b.op("Mod", [d, b.const(i64(R.randint(2, 5)))])])
+        end = b.op("Unsqueeze", [end, b.const(i64([0]))])
+        return b.op("Slice", [x, b.const(i64([0])), end, b.const(i64([ax]))]), c
     return x, c
 
 

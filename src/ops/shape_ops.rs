@@ -971,20 +971,9 @@ fn pad(ctx: &Ctx) -> Inferred {
     let Some(pads) = pads else {
         return Ok(smallvec::smallvec![tensor(dt, Shape::of_rank(d.len()))]);
     };
-    let axes: Vec<usize> = if ctx.opset >= 18 && ctx.has_input(3) {
-        match ctx.const_ints(3) {
-            Some(a) => a
-                .iter()
-                .map(|&x| norm_axis(x, d.len()).ok_or("axis out of range"))
-                .collect::<Result<_, _>>()?,
-            None => return Ok(smallvec::smallvec![tensor(dt, Shape::of_rank(d.len()))]),
-        }
-    } else {
-        (0..d.len()).collect()
+    let Some(axes) = pad_axes(ctx, d.len(), pads.len())? else {
+        return Ok(smallvec::smallvec![tensor(dt, Shape::of_rank(d.len()))]);
     };
-    if pads.len() != 2 * axes.len() {
-        return Err(format!("pads has {} values for {} axes", pads.len(), axes.len()));
-    }
     let mut out = d.clone();
     for (k, &a) in axes.iter().enumerate() {
         let total = pads[k].checked_add(pads[k + axes.len()]).ok_or("pads overflow")?;
@@ -997,25 +986,34 @@ fn pad(ctx: &Ctx) -> Inferred {
     Ok(smallvec::smallvec![tensor(dt, Shape::of(out))])
 }
 
+/// The axes Pad pads (its `axes` input from opset 18, else every axis), checked against the
+/// number of pads; `None` where the axes are not known.
+fn pad_axes(ctx: &Ctx, rank: usize, pads: usize) -> Result<Option<Vec<usize>>, String> {
+    let axes: Vec<usize> = if ctx.opset >= 18 && ctx.has_input(3) {
+        match ctx.const_ints(3) {
+            Some(a) => a
+                .iter()
+                .map(|&x| norm_axis(x, rank).ok_or("axis out of range"))
+                .collect::<Result<_, _>>()?,
+            None => return Ok(None),
+        }
+    } else {
+        (0..rank).collect()
+    };
+    if pads != 2 * axes.len() {
+        return Err(format!("pads has {pads} values for {} axes", axes.len()));
+    }
+    Ok(Some(axes))
+}
+
 /// Pad's output where the pads are sizes computed from the input's shape (a pad up to a
 /// multiple of a window, `(k - W % k) % k`): each padded axis grows by its two pads (ONNX
 /// operator specification, Pad). Such pads are never negative (a value of sizes), so no axis
 /// is cropped.
 fn padded_by_sizes(ctx: &Ctx, d: &[Dim], pads: Vec<Dim>) -> Result<Shape, String> {
-    let axes: Vec<usize> = if ctx.opset >= 18 && ctx.has_input(3) {
-        match ctx.const_ints(3) {
-            Some(a) => a
-                .iter()
-                .map(|&x| norm_axis(x, d.len()).ok_or("axis out of range"))
-                .collect::<Result<_, _>>()?,
-            None => return Ok(Shape::of_rank(d.len())),
-        }
-    } else {
-        (0..d.len()).collect()
+    let Some(axes) = pad_axes(ctx, d.len(), pads.len())? else {
+        return Ok(Shape::of_rank(d.len()));
     };
-    if pads.len() != 2 * axes.len() {
-        return Err(format!("pads has {} values for {} axes", pads.len(), axes.len()));
-    }
     let mut out = d.to_vec();
     for (k, &a) in axes.iter().enumerate() {
         let grown = d[a].add(&pads[k]).and_then(|x| x.add(&pads[k + axes.len()]));

@@ -865,6 +865,42 @@ fn slices_from_a_cache_length_keep_the_new_length() {
     );
 }
 
+/// Slice bounds concatenated from a size read off the shape and a constant -1 (the last
+/// element: `x[:, :T, :-1]` written as one ends tensor) keep both meanings: the length on one
+/// axis, one less than the known size on the other.
+#[test]
+fn slice_ends_mixing_a_length_and_minus_one() {
+    if !python_onnx("slice_ends_mixing_a_length_and_minus_one") {
+        return;
+    }
+    let mut nodes = vec![
+        node("Shape", &["x"], &["sx"]),
+        node("Slice", &["sx", "one", "two"], &["t"]),
+        node("Concat", &["t", "minus1"], &["ends"]),
+        node("Slice", &["x", "zero2", "ends", "axes12"], &["y"]),
+    ];
+    nodes[2].attribute = vec![int_attr("axis", 0)];
+    let inits = vec![
+        i64_init("one", &[1], &[1]),
+        i64_init("two", &[1], &[2]),
+        i64_init("minus1", &[1], &[-1]),
+        i64_init("zero2", &[2], &[0, 0]),
+        i64_init("axes12", &[2], &[1, 2]),
+    ];
+    let m = model(
+        nodes,
+        vec![vi("x", 1, &[Dm::S("B"), Dm::S("T"), Dm::N(5)])],
+        untyped(&["y"]),
+        inits,
+    );
+    let dir = tempfile::tempdir().expect("tmp");
+    let (path, ours) = symbolic_outputs(m, dir.path(), "ends.onnx");
+    assert_eq!(ours[0], [Dim::sym("B"), Dim::sym("T"), Dim::Known(4)]);
+    agree_at_sizes(&path, &["y"], &ours, ["B", "T"], &[(1, 1), (2, 7)], |b, t| {
+        vec![b, t, 5]
+    });
+}
+
 /// A float initializer of one value (shape `[]`).
 fn f32_scalar(name: &str, v: f32) -> tilecut::onnx::TensorProto {
     tilecut::onnx::TensorProto {

@@ -265,7 +265,6 @@ impl Dim {
     /// zero whatever the symbols.
     pub fn sub(&self, other: &Dim) -> Option<Dim> {
         match (self, other) {
-            (Dim::Known(a), Dim::Known(b)) => a.checked_sub(*b).map(Dim::Known),
             (_, Dim::Known(_)) => self.less_known(other),
             (a, b) if a == b => Some(Dim::Known(0)),
             (a, b) => difference(a, b),

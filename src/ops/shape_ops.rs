@@ -682,9 +682,11 @@ fn slice_params(ctx: &Ctx) -> Option<SliceParams> {
             None => match &c.data {
                 ConstData::Dims(d) => d
                     .iter()
-                    .map(|x| match x.known().and_then(|k| i64::try_from(k).ok()) {
-                        Some(k) => End::At(k),
-                        None => End::Size(x.clone()),
+                    .map(|x| match x {
+                        // A -1 kept beside symbolic sizes (`fold::INFER_MARK`) is the index -1.
+                        Dim::Sym(s) if &**s == INFER_MARK => End::At(-1),
+                        Dim::Known(k) => i64::try_from(*k).map_or_else(|_| End::Size(x.clone()), End::At),
+                        _ => End::Size(x.clone()),
                     })
                     .collect(),
                 _ => return None,
@@ -1014,6 +1016,10 @@ fn padded_by_sizes(ctx: &Ctx, d: &[Dim], pads: Vec<Dim>) -> Result<Shape, String
     let Some(axes) = pad_axes(ctx, d.len(), pads.len())? else {
         return Ok(Shape::of_rank(d.len()));
     };
+    // A -1 beside the sizes (`fold::INFER_MARK`) would crop: not a size to add.
+    if pads.iter().any(|p| matches!(p, Dim::Sym(s) if &**s == INFER_MARK)) {
+        return Ok(Shape::of_rank(d.len()));
+    }
     let mut out = d.to_vec();
     for (k, &a) in axes.iter().enumerate() {
         let grown = d[a].add(&pads[k]).and_then(|x| x.add(&pads[k + axes.len()]));

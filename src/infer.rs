@@ -550,7 +550,8 @@ fn infer_graph(
 /// a size no expression says. Fixing them sizes the output, which itself may show fewer of
 /// them or none. `behind` holds what earlier outputs were given this way, so that an unknown
 /// dim passed on keeps naming them. None when an input brings an unknown dim of another
-/// cause, or a size read from data: the shape-based reason then stands.
+/// cause, or a size read from data: the shape-based reason then stands. The caller has
+/// checked that `fact` has an unknown dim (`has_unknown_dim`).
 #[cold]
 #[inline(never)]
 fn symbols_behind(
@@ -560,9 +561,6 @@ fn symbols_behind(
     behind: &FastMap<ValueId, Vec<String>>,
 ) -> Option<Vec<String>> {
     use crate::ir::Dim;
-    if !has_unknown_dim(fact) {
-        return None;
-    }
     let mut syms = fact.shape.symbols();
     for &v in node.inputs.iter().flatten().chain(node.captures()) {
         if let Some(from) = behind.get(&v) {

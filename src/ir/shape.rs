@@ -494,7 +494,7 @@ pub fn compact_expression(text: &str) -> Option<String> {
 }
 
 /// The two sides of `min(a,b)` as tilecut writes it (the whole text one call).
-fn min_sides(s: &str) -> Option<(&str, &str)> {
+pub(super) fn min_sides(s: &str) -> Option<(&str, &str)> {
     let inner = s.strip_prefix("min(")?.strip_suffix(')')?;
     let mut depth = 0i32;
     let mut comma = None;

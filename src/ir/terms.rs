@@ -3,7 +3,7 @@
 //! identities of padding a size to a multiple. `Dim::add`, `Dim::sub` and `Dim::lesser` use
 //! it on the expressions tilecut writes (grammar: `shape.rs`, `evaluate`).
 
-use super::shape::{balanced, depths, evaluate, has_top_level, unwrapped, Dim, MAX_EXPRESSION};
+use super::shape::{balanced, depths, evaluate, has_top_level, min_sides, unwrapped, Dim, MAX_EXPRESSION};
 
 /// A sum: each distinct term (its text without a whole-number factor) with its coefficient,
 /// in first-seen order, and a constant.
@@ -192,8 +192,7 @@ fn parse(s: &str, nesting: usize) -> Option<Terms> {
     let mut start = 0;
     let mut sign = 1i64;
     for (i, (b, depth)) in depths(s).enumerate().chain(std::iter::once((s.len(), (b'+', 0)))) {
-        let split = depth == 0
-            && (b == b'+' || (b == b'-' && bytes.get(i + 1).is_some_and(|c| c.is_ascii_digit() || *c == b'(')));
+        let split = depth == 0 && (b == b'+' || takes_away(bytes, i));
         if !split {
             continue;
         }
@@ -245,12 +244,17 @@ fn parse(s: &str, nesting: usize) -> Option<Terms> {
     Some(t)
 }
 
-/// Whether `s` has a top-level `-` that takes away (before a number or a parenthesis).
+/// Whether `s` has a top-level `-` that takes away.
 fn splits_at_minus(s: &str) -> bool {
-    let b = s.as_bytes();
     depths(s)
         .enumerate()
-        .any(|(i, (c, d))| d == 0 && c == b'-' && b.get(i + 1).is_some_and(|n| n.is_ascii_digit() || *n == b'('))
+        .any(|(i, (_, d))| d == 0 && takes_away(s.as_bytes(), i))
+}
+
+/// Whether the byte at `i` is a `-` that takes away: one before a whole number or a
+/// parenthesis (`T-2`, `a-(b)`), not one inside a name (`seq-len`).
+fn takes_away(s: &[u8], i: usize) -> bool {
+    s.get(i) == Some(&b'-') && s.get(i + 1).is_some_and(|c| c.is_ascii_digit() || *c == b'(')
 }
 
 /// A term without its whole-number factor: `W*2` and `2*W` are (W, 2). A leading factor is
@@ -306,17 +310,9 @@ fn pad_to_multiple(atom: &str) -> Option<(String, i64)> {
 
 /// `min(x,k)` for a whole number k: (x, k).
 fn capped(atom: &str) -> Option<(&str, i64)> {
-    let inner = atom.strip_prefix("min(")?.strip_suffix(')')?;
-    let mut comma = None;
-    for (i, (b, depth)) in depths(inner).enumerate() {
-        if b == b',' && depth == 0 {
-            comma = Some(i);
-        }
-    }
-    let i = comma?;
-    let (x, k) = (&inner[..i], &inner[i + 1..]);
+    let (x, k) = min_sides(atom)?;
     let k: i64 = k.parse().ok().filter(|&k| k >= 0)?;
-    (balanced(x) && !x.is_empty()).then_some((x, k))
+    (!x.is_empty()).then_some((x, k))
 }
 
 #[cfg(test)]

@@ -655,7 +655,12 @@ fn sized_by_values(g: &Graph, node: &crate::ir::Node, fact: &Fact) -> Option<(St
         return None;
     }
     let mut sizes: Vec<ValueId> = Vec::new();
-    for &v in node.inputs.iter().flatten() {
+    let slots = ops::sizing_slots(node);
+    for (i, slot) in node.inputs.iter().enumerate() {
+        let Some(v) = *slot else { continue };
+        if slots.is_some_and(|s| !s.contains(&i)) {
+            continue;
+        }
         if value_unknown(&g.values[v.index()]) && size_like(&g.values[v.index()].fact) && !sizes.contains(&v) {
             sizes.push(v);
         }

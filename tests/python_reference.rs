@@ -1736,3 +1736,166 @@ print(json.dumps(res))
         assert_eq!(&ours, theirs, "{name}");
     }
 }
+
+/// Builds two models into argv[1]: `contrib.onnx`, one node per case of the contrib domain
+/// (argv[2]), and `twin.onnx`, the same case written with standard ops, which the `onnx`
+/// package's reference evaluator runs. Prints the twin's output shapes by name.
+const CONTRIB_TWINS: &str = r#"
+import sys, os, json, onnx, numpy as np
+from onnx import helper as h, TensorProto as T, numpy_helper as nh
+from onnx.reference import ReferenceEvaluator
+out_dir, contrib = sys.argv[1], sys.argv[2]
+rng = np.random.default_rng(7)
+feeds, inputs, inits_c, inits_t, nodes_c, nodes_t, outs = {}, [], [], [], [], [], []
+def data(name, shape, dtype=np.float32):
+    a = rng.integers(-3, 4, size=shape).astype(dtype)
+    feeds[name] = a
+    inputs.append(h.make_tensor_value_info(name, nh.helper.np_dtype_to_tensor_dtype(a.dtype), shape))
+def const(name, arr, both=True):
+    inits_c.append(nh.from_array(np.asarray(arr), name))
+    if both:
+        inits_t.append(nh.from_array(np.asarray(arr), name))
+def case(out, c_node, t_nodes):
+    nodes_c.append(c_node); nodes_t.extend(t_nodes); outs.append(out)
+def c(op, ins, out, **kw):
+    return h.make_node(op, ins, [out], domain=contrib, name="c_" + out, **kw)
+t = h.make_node
+
+data("x", [2, 3, 5])
+# Pad: pads as input, 2·rank values or [1, 2·rank].
+const("pads", np.array([0, 1, 2, 0, 3, 1], np.int64))
+case("pad", c("Pad", ["x", "pads"], "pad"), [t("Pad", ["x", "pads"], ["pad"])])
+const("pads_row", np.array([[1, 0, 0, 1, 2, 0]], np.int64), both=False)
+const("pads_flat", np.array([1, 0, 0, 1, 2, 0], np.int64), both=False)
+inits_t.append(nh.from_array(np.array([1, 0, 0, 1, 2, 0], np.int64), "pads_row"))
+case("pad_row", c("Pad", ["x", "pads_row"], "pad_row"), [t("Pad", ["x", "pads_row"], ["pad_row"])])
+# ExpandDims: Unsqueeze at one axis, negative from the output's end.
+const("ax_last", np.array(-1, np.int32), both=False)
+const("ax_one", np.array(1, np.int32), both=False)
+const("u_last", np.array([-1], np.int64), both=False); inits_t.append(nh.from_array(np.array([-1], np.int64), "u_last"))
+inits_t.append(nh.from_array(np.array([1], np.int64), "u_one"))
+case("ed_last", c("ExpandDims", ["x", "ax_last"], "ed_last"), [t("Unsqueeze", ["x", "u_last"], ["ed_last"])])
+case("ed_one", c("ExpandDims", ["x", "ax_one"], "ed_one"), [t("Unsqueeze", ["x", "u_one"], ["ed_one"])])
+# GatherND.
+data("table", [4, 5, 6])
+const("nd_idx", np.array([[0, 1], [3, 4], [2, 2]], np.int64))
+case("gnd", c("GatherND", ["table", "nd_idx"], "gnd"), [t("GatherND", ["table", "nd_idx"], ["gnd"])])
+# Range, with the step left out (1) and given.
+const("r_start", np.array(2, np.int64)); const("r_limit", np.array(11, np.int64)); const("r_step", np.array(3, np.int64))
+inits_t.append(nh.from_array(np.array(1, np.int64), "r_one"))
+case("range1", c("Range", ["r_start", "r_limit"], "range1"), [t("Range", ["r_start", "r_limit", "r_one"], ["range1"])])
+case("range3", c("Range", ["r_start", "r_limit", "r_step"], "range3"), [t("Range", ["r_start", "r_limit", "r_step"], ["range3"])])
+# MaxpoolWithMask: MaxPool over X (the mask only zeroes values).
+data("img", [1, 2, 9, 9])
+data("mask", [1, 2, 9, 9], np.int32)
+pool = dict(kernel_shape=[3, 3], strides=[2, 2], pads=[1, 1, 1, 1])
+case("mpm", c("MaxpoolWithMask", ["img", "mask"], "mpm", **pool), [t("MaxPool", ["img"], ["mpm"], **pool)])
+# NhwcFusedConv: Conv on the channels-first view, back to channels last.
+data("nhwc", [1, 9, 9, 4])
+const("cw", rng.standard_normal((6, 4, 3, 3)).astype(np.float32))
+conv = dict(strides=[2, 2], pads=[1, 1, 1, 1])
+case("nfc", c("NhwcFusedConv", ["nhwc", "cw"], "nfc", activation="Relu", **conv),
+     [t("Transpose", ["nhwc"], ["nchw"], perm=[0, 3, 1, 2]), t("Conv", ["nchw", "cw"], ["nfc_t"], **conv),
+      t("Transpose", ["nfc_t"], ["nfc"], perm=[0, 2, 3, 1])])
+# GemmFastGelu: MatMul plus bias, then Gelu (shape of the MatMul).
+data("tok", [2, 3, 8])
+const("gw", rng.standard_normal((8, 5)).astype(np.float32)); const("gb", np.zeros(5, np.float32))
+case("gfg", c("GemmFastGelu", ["tok", "gw", "gb"], "gfg"), [t("MatMul", ["tok", "gw"], ["gmm"]), t("Add", ["gmm", "gb"], ["gfg"])])
+# MatMulInteger16 and MulInteger: the products' shapes (int32 per the contrib documentation).
+data("a16", [3, 4], np.int16); data("b16", [2, 4, 2], np.int16)
+case("mmi16", c("MatMulInteger16", ["a16", "b16"], "mmi16"),
+     [t("Cast", ["a16"], ["a16f"], to=T.FLOAT), t("Cast", ["b16"], ["b16f"], to=T.FLOAT), t("MatMul", ["a16f", "b16f"], ["mmi16"])])
+data("ma", [3, 1, 4], np.int32); data("mb", [2, 1], np.int32)
+case("muli", c("MulInteger", ["ma", "", "mb"], "muli"), [t("Mul", ["ma", "mb"], ["muli"])])
+# ReduceSumInteger: axes as an attribute.
+data("rs", [3, 4, 5], np.int32)
+inits_t.append(nh.from_array(np.array([1], np.int64), "rs_axes"))
+case("rsi", c("ReduceSumInteger", ["rs"], "rsi", axes=[1], keepdims=0), [t("ReduceSum", ["rs", "rs_axes"], ["rsi"], keepdims=0)])
+# BiasSoftmax: softmax of data + bias.
+data("sc", [2, 3, 4]); data("sb", [2, 3, 4])
+case("bsm", c("BiasSoftmax", ["sc", "sb"], "bsm", axis=-1), [t("Add", ["sc", "sb"], ["bsum"]), t("Softmax", ["bsum"], ["bsm"], axis=-1)])
+# ComplexMul: the broadcast of two [..., 2] tensors.
+data("za", [3, 1, 2]); data("zb", [4, 2])
+case("cmul", c("ComplexMul", ["za", "zb"], "cmul"), [t("Mul", ["za", "zb"], ["cmul"])])
+# CDist: distances between rows, [M, N].
+data("ca", [3, 4]); data("cb", [5, 4])
+inits_t.append(nh.from_array(np.array([1], np.int64), "one_ax")); inits_t.append(nh.from_array(np.array([0], np.int64), "zero_ax"))
+inits_t.append(nh.from_array(np.array([-1], np.int64), "last_ax"))
+case("cdist", c("CDist", ["ca", "cb"], "cdist", metric="euclidean"),
+     [t("Unsqueeze", ["ca", "one_ax"], ["ca3"]), t("Unsqueeze", ["cb", "zero_ax"], ["cb3"]), t("Sub", ["ca3", "cb3"], ["cd"]),
+      t("Mul", ["cd", "cd"], ["cd2"]), t("ReduceSum", ["cd2", "last_ax"], ["cds"], keepdims=0), t("Sqrt", ["cds"], ["cdist"])])
+# CropAndResize: RoiAlign's output, [R, C, crop_h, crop_w].
+data("fm", [1, 3, 8, 8])
+const("rois", np.array([[0, 0, 4, 4], [1, 1, 7, 7]], np.float32)); const("bidx", np.array([0, 0], np.int64))
+const("crop", np.array([4, 5], np.int32), both=False)
+case("car", c("CropAndResize", ["fm", "rois", "bidx", "crop"], "car"),
+     [t("RoiAlign", ["fm", "rois", "bidx"], ["car"], output_height=4, output_width=5)])
+# FusedMatMul: A stored [M, batch, K] with transBatchA; transA and transB; TransposeMatMul.
+data("fa", [4, 2, 3]); data("fb", [2, 3, 5])
+case("fmm_batch", c("FusedMatMul", ["fa", "fb"], "fmm_batch", transBatchA=1),
+     [t("Transpose", ["fa"], ["fa_t"], perm=[1, 0, 2]), t("MatMul", ["fa_t", "fb"], ["fmm_batch"])])
+data("ta", [2, 3, 4]); data("tb", [2, 5, 3])
+case("fmm_t", c("FusedMatMul", ["ta", "tb"], "fmm_t", transA=1, transB=1),
+     [t("Transpose", ["ta"], ["ta_t"], perm=[0, 2, 1]), t("Transpose", ["tb"], ["tb_t"], perm=[0, 2, 1]),
+      t("MatMul", ["ta_t", "tb_t"], ["fmm_t"])])
+data("pb", [5, 8])
+case("tmm", c("TransposeMatMul", ["tok", "pb"], "tmm", transB=1),
+     [t("Transpose", ["pb"], ["pb_t"], perm=[1, 0]), t("MatMul", ["tok", "pb_t"], ["tmm"])])
+
+def save(name, nodes, inits, opsets):
+    g = h.make_graph(nodes, name, inputs, [h.make_tensor_value_info(o, 0, None) for o in outs], inits)
+    m = h.make_model(g, opset_imports=opsets)
+    onnx.save(m, os.path.join(out_dir, name + ".onnx"))
+    return m
+save("contrib", nodes_c, inits_c, [h.make_opsetid("", 18), h.make_opsetid(contrib, 1)])
+twin = save("twin", nodes_t, inits_t, [h.make_opsetid("", 18)])
+res = ReferenceEvaluator(twin).run(None, feeds)
+print(json.dumps({o: list(r.shape) for o, r in zip(outs, res)}))
+"#;
+
+/// Contrib-domain ops that are a standard op in another form (Pad, ExpandDims as Unsqueeze,
+/// GatherND, Range with its step left out, MaxpoolWithMask as MaxPool, NhwcFusedConv as Conv
+/// between two transposes, GemmFastGelu and TransposeMatMul/FusedMatMul as MatMul after the
+/// transposes their attributes name, the integer products, ReduceSumInteger, BiasSoftmax,
+/// ComplexMul, CDist as a reduction of differences, CropAndResize as RoiAlign): tilecut's
+/// shape of each contrib node equals the output shape the `onnx` package's reference
+/// evaluator computes for its standard twin on the same inputs. Which twin each op has, its
+/// slots and attributes are from the contrib domain's documentation (from memory).
+#[test]
+fn contrib_ops_take_the_shapes_of_their_standard_twins() {
+    if !python_onnx("contrib_ops_take_the_shapes_of_their_standard_twins") {
+        return;
+    }
+    let dir = tempfile::tempdir().expect("tmp");
+    let d = dir.path().to_str().expect("utf8");
+    let out = python(CONTRIB_TWINS, &[d, tilecut::ops::CONTRIB_DOMAIN]);
+    let reference: BTreeMap<String, Vec<u64>> = serde_json::from_str(&out).expect("json");
+    assert_eq!(reference.len(), 20, "{reference:?}");
+    let (code, out, err) = run(&["inspect", &format!("{d}/contrib.onnx"), "--format", "json"]);
+    assert_eq!(code, 0, "{err}");
+    let j: serde_json::Value = serde_json::from_str(&out).expect("json");
+    let warnings = j["warnings"].to_string();
+    assert!(
+        !warnings.contains("op-unknown") && !warnings.contains("shape-failed"),
+        "{warnings}"
+    );
+    let tensors = j["tensors"].as_array().expect("tensors");
+    for (name, want) in &reference {
+        let t = tensors
+            .iter()
+            .find(|t| t["name"] == name.as_str())
+            .unwrap_or_else(|| panic!("{name} missing"));
+        let got: Vec<u64> = t["shape"]
+            .as_array()
+            .unwrap_or_else(|| panic!("{name}: shape unknown"))
+            .iter()
+            .map(|x| x.as_u64().unwrap_or_else(|| panic!("{name}: dim {x}")))
+            .collect();
+        assert_eq!(&got, want, "{name}");
+    }
+    // The integer products are int32 (contrib documentation, from memory).
+    for name in ["mmi16", "muli", "rsi"] {
+        let t = tensors.iter().find(|t| t["name"] == name).expect("tensor");
+        assert_eq!(t["dtype"], "int32", "{name}");
+    }
+}

@@ -617,3 +617,142 @@ fn contrib_quantized_ops_of_real_exports_are_inferred() {
     assert_eq!(code, 0, "{err}");
     assert!(out.contains("uint8 × int8 → uint8"), "{out}");
 }
+
+/// Contrib-domain ops of optimised and generative exports, their figures computed by hand:
+/// FusedMatMul with `transA` (inner dim from A's second-to-last), GemmFastGelu, CDist, the
+/// experts of MoE and QMoE (4-bit weights, two to a byte), and the decoding loops
+/// (BeamSearch, GreedySearch) around a decoder body. Slots, attributes and output layouts
+/// from the contrib domain's documentation (from memory).
+#[test]
+fn contrib_fused_expert_and_decoding_ops_are_sized_and_costed() {
+    use tilecut::ir::DType;
+    use tilecut::onnx::builder::{attr, int_tensor, raw_tensor, DimSpec, GraphBuilder, ModelBuilder};
+    let n = DimSpec::Fixed;
+    use tilecut::ops::CONTRIB_DOMAIN;
+    let dir = tempfile::tempdir().expect("tmp");
+    let mut m = ModelBuilder::new("contrib_more", 18);
+    m.opsets.push((CONTRIB_DOMAIN.into(), 1));
+    let zeros = |name: &str, dt: DType, dims: &[i64]| {
+        let n: i64 = dims.iter().product();
+        raw_tensor(name, dt, dims, vec![0; n as usize * dt.bits().div_ceil(8) as usize])
+    };
+    let g = &mut m.graph;
+    g.input("ta", DType::F32, &[n(2), n(3), n(4)]);
+    g.input("tb", DType::F32, &[n(2), n(3), n(5)]);
+    g.input("tok", DType::F32, &[n(2), n(3), n(8)]);
+    g.input("ca", DType::F32, &[n(3), n(4)]);
+    g.input("cb", DType::F32, &[n(5), n(4)]);
+    g.input("router", DType::F32, &[n(6), n(4)]);
+    g.input("flat", DType::F32, &[n(6), n(16)]);
+    g.input("seq_tok", DType::F32, &[n(2), n(3), n(16)]);
+    g.input("ids", DType::I32, &[n(3), n(7)]);
+    g.initializer(zeros("gw", DType::F32, &[8, 5]));
+    g.initializer(zeros("gb", DType::F32, &[5]));
+    // MoE: 4 experts, hidden 16, inner 32.
+    g.initializer(zeros("fc1", DType::F32, &[4, 16, 32]));
+    g.initializer(zeros("fc1_b", DType::F32, &[4, 32]));
+    g.initializer(zeros("fc2", DType::F32, &[4, 32, 16]));
+    // QMoE: the same experts in 4 bits, two values to a byte, with per-column scales.
+    g.initializer(zeros("q1", DType::U8, &[4, 16, 16]));
+    g.initializer(zeros("q1_s", DType::F32, &[4, 32]));
+    g.initializer(zeros("q2", DType::U8, &[4, 32, 8]));
+    g.initializer(zeros("q2_s", DType::F32, &[4, 16]));
+    g.initializer(int_tensor("max_len", DType::I32, &[1], &[20]));
+    g.initializer(int_tensor("beams", DType::I32, &[1], &[4]));
+    g.initializer(int_tensor("returned", DType::I32, &[1], &[2]));
+    let contrib = |n: &mut tilecut::onnx::NodeProto| n.domain = CONTRIB_DOMAIN.into();
+    let op = g.node("FusedMatMul", &["ta", "tb"], &["fmm"]);
+    contrib(op);
+    op.attribute.push(attr::int("transA", 1));
+    contrib(g.node("GemmFastGelu", &["tok", "gw", "gb"], &["gfg"]));
+    contrib(g.node("CDist", &["ca", "cb"], &["dist"]));
+    let op = g.node("MoE", &["seq_tok", "router", "fc1", "fc1_b", "fc2"], &["moe"]);
+    contrib(op);
+    op.attribute.push(attr::int("k", 2));
+    contrib(g.node("QMoE", &["flat", "router", "q1", "q1_s", "", "q2", "q2_s"], &["qmoe"]));
+    // A decoder body (one projection of 16 to 32) the loops carry.
+    let mut body = GraphBuilder::new("decoder");
+    body.input("h", DType::F32, &[n(1), n(16)]);
+    body.output("logits", DType::F32, &[n(1), n(32)]);
+    body.initializer(zeros("dw", DType::F32, &[16, 32]));
+    body.node("MatMul", &["h", "dw"], &["logits"]);
+    let op = g.node(
+        "BeamSearch",
+        &["ids", "max_len", "", "beams", "returned"],
+        &["seqs", "seq_scores"],
+    );
+    contrib(op);
+    op.attribute.push(attr::graph("decoder", body.graph.clone()));
+    let op = g.node("GreedySearch", &["ids", "max_len"], &["greedy"]);
+    contrib(op);
+    op.attribute.push(attr::graph("decoder", body.graph));
+    for o in ["fmm", "gfg", "dist", "moe", "qmoe", "seqs", "seq_scores", "greedy"] {
+        g.graph.output.push(tilecut::onnx::ValueInfoProto {
+            name: o.into(),
+            ..Default::default()
+        });
+    }
+    let path = dir.path().join("contrib_more.onnx");
+    std::fs::write(&path, m.encode()).expect("write");
+    let read = tilecut::read_model(&path, &Default::default()).expect("reads");
+    let g = &read.model.graph;
+    let fact = |t: &str| {
+        let f = &g.value(g.value_by_name(t).expect("tensor")).fact;
+        (f.dtype.map(|d| d.name()).unwrap_or("?"), f.shape.to_string())
+    };
+    let cost = |op: &str| {
+        let id = g.node_ids().find(|&id| g.node(id).op_type == op).expect("node");
+        (g.cost(id).macs, g.cost(id).ops)
+    };
+    // A [2,3,4] read transposed as [2,4,3] times [2,3,5]: [2,4,5], 40 outputs × K = 3.
+    assert_eq!(fact("fmm"), ("float32", "[2,4,5]".to_string()));
+    assert_eq!(cost("FusedMatMul"), (Some(120), Some(0)));
+    // [2,3,8] × [8,5]: 30 outputs × 8 MACs; a bias add and a Gelu per output.
+    assert_eq!(fact("gfg"), ("float32", "[2,3,5]".to_string()));
+    assert_eq!(cost("GemmFastGelu"), (Some(240), Some(60)));
+    // 3 × 5 distances over rows of 4; a square root each.
+    assert_eq!(fact("dist"), ("float32", "[3,5]".to_string()));
+    assert_eq!(cost("CDist"), (Some(60), Some(15)));
+    // 2·3 = 6 tokens × k = 2 experts × (16·32 + 32·16) weights each.
+    assert_eq!(fact("moe"), ("float32", "[2,3,16]".to_string()));
+    assert_eq!(cost("MoE").0, Some(12_288));
+    // 6 tokens × 1 expert × (16·16 + 32·8) bytes × 2 values a byte.
+    assert_eq!(fact("qmoe"), ("float32", "[6,16]".to_string()));
+    assert_eq!(cost("QMoE").0, Some(6_144));
+    // Batch 3, two sequences returned each, padded to max_length 20.
+    assert_eq!(fact("seqs"), ("int32", "[3,2,20]".to_string()));
+    assert_eq!(fact("seq_scores").1, "[3,2]");
+    assert_eq!(fact("greedy"), ("int32", "[3,20]".to_string()));
+    // How many tokens the loops generate is not in the graph: their cost is unknown, not 0.
+    assert_eq!(cost("BeamSearch"), (None, None));
+    // Every op is known to tilecut, and the decoder bodies are read (their weights count).
+    let (code, out, err) = run(&["inspect", path.to_str().expect("utf8"), "--format", "json"]);
+    assert_eq!(code, 0, "{err}");
+    let j: serde_json::Value = serde_json::from_str(&out).expect("json");
+    assert!(!j["warnings"].to_string().contains("op-unknown"), "{}", j["warnings"]);
+    assert_eq!(j["model"]["nodes_in_subgraphs"], 2);
+    assert!(j["model"]["macs"].is_null());
+    // With the loop settings as graph inputs, the sequences' reason names the two that size
+    // them, not num_beams.
+    let gr = &mut m.graph.graph;
+    gr.initializer
+        .retain(|t| !["max_len", "beams", "returned"].contains(&t.name.as_str()));
+    for name in ["max_len", "beams", "returned"] {
+        gr.input
+            .push(tilecut::onnx::builder::value_info(name, DType::I32, &[n(1)]));
+    }
+    std::fs::write(&path, m.encode()).expect("write");
+    let (code, out, err) = run(&["inspect", path.to_str().expect("utf8"), "--format", "json"]);
+    assert_eq!(code, 0, "{err}");
+    let j: serde_json::Value = serde_json::from_str(&out).expect("json");
+    let why = j["unknown_shapes"]
+        .as_array()
+        .expect("unknown shapes")
+        .iter()
+        .find(|u| u["tensor"] == "seqs")
+        .map(|u| u["reason"].to_string())
+        .expect("seqs unknown");
+    assert!(why.contains("`max_len`") && why.contains("`returned`"), "{why}");
+    assert!(!why.contains("beams"), "{why}");
+    assert_eq!(j["model"]["needs_values"], serde_json::json!(["max_len", "returned"]));
+}

@@ -6,6 +6,7 @@
 
 use crate::ir::{DType, Dim, Fact, Shape};
 
+use super::elementwise::SOFTMAX_OPS;
 use super::util::{broadcast, count, like_input, norm_axis, tensor};
 use super::{conv, matmul, reduce, shape_ops, vision, CostRule, Ctx, Inferred, MacsOps, OpDef, CONTRIB_DOMAIN};
 
@@ -257,6 +258,21 @@ fn same(ctx: &Ctx) -> Inferred {
         .collect())
 }
 
+/// Output 0 like input 0, any further outputs unknown.
+fn same_first(ctx: &Ctx) -> Inferred {
+    let mut outs = vec![tensor(ctx.dtype(0), ctx.shape(0))];
+    outs.extend((1..ctx.outputs()).map(|_| tensor(None, Shape::unknown())));
+    Ok(outs.into())
+}
+
+/// The broadcast of inputs 0 and 1, in input 0's type.
+fn binary_like(ctx: &Ctx) -> Inferred {
+    Ok(smallvec::smallvec![tensor(
+        ctx.dtype(0),
+        broadcast(&[ctx.shape(0), ctx.shape(1)])?
+    )])
+}
+
 /// BiasDropout: output like input 0, mask of bools.
 fn bias_dropout(ctx: &Ctx) -> Inferred {
     let mut outs = vec![tensor(ctx.dtype(0), ctx.shape(0))];
@@ -264,6 +280,187 @@ fn bias_dropout(ctx: &Ctx) -> Inferred {
         outs.push(tensor(Some(DType::Bool), ctx.shape(0)));
     }
     Ok(outs.into())
+}
+
+/// `ctx` read under another opset of the standard domain: contrib ops that take a standard
+/// op's inputs reuse its reading, which the opset selects (Pad's pads as input 1 from opset
+/// 11, Unsqueeze's axes as input 1 from 13). A contrib node's own opset is its domain's.
+fn under_opset<'a>(ctx: &Ctx<'a>, opset: i64) -> Ctx<'a> {
+    Ctx {
+        node: ctx.node,
+        inputs: ctx.inputs.clone(),
+        consts: ctx.consts.clone(),
+        opset,
+        body_outputs: Vec::new(),
+        body_consts: Vec::new(),
+        loop_trips: ctx.loop_trips,
+        assumed: ctx.assumed,
+    }
+}
+
+/// Pad: (data, pads, value?) with `mode`, pads an input of 2·rank values (or [1, 2·rank]):
+/// the standard Pad as read from opset 11.
+fn contrib_pad(ctx: &Ctx) -> Inferred {
+    shape_ops::pad(&under_opset(ctx, 11))
+}
+
+/// ExpandDims: (X, axis) inserts a dim of 1 at `axis` (an int32 scalar input, negative
+/// counting from the end of the output): Unsqueeze with that one axis, as read from opset 13.
+fn expand_dims(ctx: &Ctx) -> Inferred {
+    shape_ops::unsqueeze(&under_opset(ctx, 13))
+}
+
+/// ReduceSumInteger: ReduceSum over `axes` (an attribute) of 8-bit data, summed in int32.
+fn reduce_sum_integer(ctx: &Ctx) -> Inferred {
+    let mut out = reduce::reduce(ctx)?;
+    for f in out.iter_mut() {
+        f.dtype = Some(DType::I32);
+    }
+    Ok(out)
+}
+
+/// MulInteger: (A, A_zero_point?, B, B_zero_point?) → (A − a_zp)·(B − b_zp), broadcast, in
+/// int32.
+fn mul_integer(ctx: &Ctx) -> Inferred {
+    Ok(smallvec::smallvec![tensor(
+        Some(DType::I32),
+        broadcast(&[ctx.shape(0), ctx.shape(2)])?
+    )])
+}
+
+/// CDist: A [M, K], B [N, K] → the [M, N] distances between their rows, in A's type.
+fn cdist(ctx: &Ctx) -> Inferred {
+    let (Some(a), Some(b)) = (ctx.dims_ref(0), ctx.dims_ref(1)) else {
+        return Err("operand rank unknown".into());
+    };
+    let ([m, ka], [n, kb]) = (a, b) else {
+        return Err(format!("2-D operands needed, got ranks {} and {}", a.len(), b.len()));
+    };
+    if let (Dim::Known(x), Dim::Known(y)) = (ka, kb) {
+        if x != y {
+            return Err(format!("row lengths differ: {x} vs {y}"));
+        }
+    }
+    Ok(smallvec::smallvec![tensor(
+        ctx.dtype(0),
+        Shape::of(vec![m.clone(), n.clone()])
+    )])
+}
+
+/// CDist: a difference, a square and an accumulation per pair of elements (one MAC each,
+/// K per output), and a square root per output for the euclidean metric.
+fn cdist_cost(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
+    let y = outs.first().and_then(|f| f.shape.element_count());
+    let k = ctx.shape(0).concrete().and_then(|a| a.last().copied());
+    (y.zip(k).and_then(|(y, k)| y.checked_mul(k)), y)
+}
+
+/// CropAndResize: X [N, C, H, W], rois [R, 4], batch_indices [R], crop_size [2] (int32) →
+/// [R, C, crop_height, crop_width]; the crop's sizes are unknown while crop_size's values are.
+fn crop_and_resize(ctx: &Ctx) -> Inferred {
+    let x = ctx.dims(0).ok_or("input rank unknown")?;
+    if x.len() != 4 {
+        return Err(format!("input of rank {}", x.len()));
+    }
+    let rois = ctx.dims(1).and_then(|r| r.first().cloned()).unwrap_or(Dim::Unknown);
+    let (h, w) = match ctx.const_ints(3).as_deref() {
+        Some(&[h, w]) if h >= 0 && w >= 0 => (Dim::Known(h as u64), Dim::Known(w as u64)),
+        Some(&[_, _]) => return Err("negative crop_size".into()),
+        Some(c) => return Err(format!("crop_size of {} values, 2 needed", c.len())),
+        None => (Dim::Unknown, Dim::Unknown),
+    };
+    Ok(smallvec::smallvec![tensor(
+        ctx.dtype(0),
+        Shape::of(vec![rois, x[1].clone(), h, w])
+    )])
+}
+
+/// MoE and QMoE: output 0 like the tokens (input 0, [rows, hidden] or [B, S, hidden]).
+/// MACs: each token runs through `k` experts (attribute, default 1), each costing one MAC per
+/// element of that expert's fully connected weights. The weights are the rank-3 inputs
+/// [experts, …] after the router's probabilities (slot 1); for QMoE the 8-bit inputs among
+/// them, which pack 8/`expert_weight_bits` values per byte (default 4 bits). Found by rank
+/// and type, not slot, because the fc1/fc2/fc3 slots moved between the contrib domain's
+/// versions of these ops (its documentation, from memory).
+fn moe_macs(ctx: &Ctx, _outs: &[Fact]) -> MacsOps {
+    let quantized = ctx.node.op_type.as_str() == "QMoE";
+    let macs = (|| {
+        let x = ctx.shape(0).concrete()?;
+        let hidden = *x.last()?;
+        let tokens = count(&x)?.checked_div(hidden)?;
+        let k = u64::try_from(ctx.int("k", 1)).ok()?;
+        let mut per_expert = 0u64;
+        for i in 2..ctx.node.inputs.len() {
+            let Some(w) = ctx.shape(i).concrete().filter(|w| w.len() == 3) else {
+                if ctx.has_input(i) && ctx.shape(i).rank() == Some(3) {
+                    return None;
+                }
+                continue;
+            };
+            let packed = matches!(ctx.dtype(i), Some(DType::U8 | DType::I8));
+            if quantized != packed {
+                continue;
+            }
+            let per_byte = if quantized {
+                match ctx.int("expert_weight_bits", 4) {
+                    b @ (1 | 2 | 4 | 8) => 8 / b as u64,
+                    _ => return None,
+                }
+            } else {
+                1
+            };
+            let elems = count(&w[1..])?.checked_mul(per_byte)?;
+            per_expert = per_expert.checked_add(elems)?;
+        }
+        (per_expert > 0).then_some(())?;
+        tokens.checked_mul(k)?.checked_mul(per_expert)
+    })();
+    (macs, Some(0))
+}
+
+/// BeamSearch, WhisperBeamSearch, GreedySearch and Sampling: a decoding loop around the
+/// decoder graph they carry. Input 0 gives the batch (token ids [batch, length], or audio
+/// features [batch, mels, frames] for the speech form); `max_length` (input 1, int32 [1])
+/// the length every returned sequence is padded to, and for the beam searches
+/// `num_return_sequences` (input 4) how many per batch entry. Outputs: sequences (int32)
+/// [batch, num_return_sequences, max_length] for the beam searches, [batch, max_length]
+/// otherwise; the beam searches' sequences_scores [batch, num_return_sequences]; the others
+/// (per-step scores, filtered logits, attention maps) only with their rank where the
+/// documentation gives one. Slots and outputs from the contrib domain's documentation (from
+/// memory). A size read from an input whose value is not known stays unknown.
+fn decoding(ctx: &Ctx) -> Inferred {
+    let batch = ctx.dims(0).and_then(|d| d.first().cloned()).unwrap_or(Dim::Unknown);
+    let value = |i: usize| match ctx.const_ints(i).as_deref() {
+        Some(&[v]) if v >= 0 => Dim::Known(v as u64),
+        _ => Dim::Unknown,
+    };
+    let max_length = value(1);
+    let beams = matches!(ctx.node.op_type.as_str(), "BeamSearch" | "WhisperBeamSearch");
+    let mut outs = Vec::with_capacity(ctx.outputs());
+    if beams {
+        let returned = value(4);
+        outs.push(tensor(
+            Some(DType::I32),
+            Shape::of(vec![batch.clone(), returned.clone(), max_length]),
+        ));
+        outs.push(tensor(None, Shape::of(vec![batch, returned])));
+        outs.push(tensor(None, Shape::of_rank(3)));
+    } else {
+        outs.push(tensor(Some(DType::I32), Shape::of(vec![batch.clone(), max_length])));
+        if ctx.node.op_type.as_str() == "Sampling" {
+            outs.push(tensor(None, Shape::of(vec![batch, Dim::Unknown])));
+        }
+    }
+    outs.truncate(ctx.outputs().max(1));
+    while outs.len() < ctx.outputs() {
+        outs.push(tensor(None, Shape::unknown()));
+    }
+    Ok(outs.into())
+}
+
+/// The decoder runs once per generated token and beam, which the graph does not state.
+fn decoding_cost(_ctx: &Ctx, _outs: &[Fact]) -> MacsOps {
+    (None, None)
 }
 
 macro_rules! op {
@@ -275,6 +472,16 @@ macro_rules! op {
             infer: $infer,
             cost: $cost,
             fold: None,
+        }
+    };
+    ($name:literal, $infer:expr, $cost:expr, $fold:expr) => {
+        OpDef {
+            domain: CONTRIB_DOMAIN,
+            op: $name,
+            family: "contrib",
+            infer: $infer,
+            cost: $cost,
+            fold: Some($fold),
         }
     };
 }
@@ -323,4 +530,28 @@ pub static OPS: &[OpDef] = &[
     op!("Inverse", same, CostRule::PerInput(8)),
     op!("Trilu", same, CostRule::Free),
     op!("DecoderMaskedMultiHeadAttention", same, CostRule::PerOutput(4)),
+    // Contrib twins of standard ops, read as the standard op reads them.
+    op!("Pad", contrib_pad, CostRule::Free),
+    op!("ExpandDims", expand_dims, CostRule::Free),
+    op!("GatherND", shape_ops::gather_nd, CostRule::Free),
+    op!("Range", shape_ops::range, CostRule::Free, shape_ops::fold_range),
+    op!("MaxpoolWithMask", conv::pool, CostRule::Custom(conv::pool_ops)),
+    op!("NhwcFusedConv", nhwc_conv, CostRule::Custom(nhwc_conv_macs)),
+    // Integer arithmetic of dynamically quantized graphs: zero points off, then the op.
+    op!("MulInteger", mul_integer, CostRule::PerOutput(3)),
+    op!("ReduceSumInteger", reduce_sum_integer, CostRule::PerInput(1)),
+    // Softmax over data + bias.
+    op!("BiasSoftmax", like_input, CostRule::PerOutput(SOFTMAX_OPS + 1)),
+    // Complex products of [..., 2] pairs: four multiplies and two adds per pair.
+    op!("ComplexMul", binary_like, CostRule::PerOutput(3)),
+    op!("ComplexMulConj", binary_like, CostRule::PerOutput(3)),
+    op!("CDist", cdist, CostRule::Custom(cdist_cost)),
+    // Bilinear: four reads weighted and summed per output.
+    op!("CropAndResize", crop_and_resize, CostRule::PerOutput(8)),
+    op!("MoE", same_first, CostRule::Custom(moe_macs)),
+    op!("QMoE", same_first, CostRule::Custom(moe_macs)),
+    op!("BeamSearch", decoding, CostRule::Custom(decoding_cost)),
+    op!("WhisperBeamSearch", decoding, CostRule::Custom(decoding_cost)),
+    op!("GreedySearch", decoding, CostRule::Custom(decoding_cost)),
+    op!("Sampling", decoding, CostRule::Custom(decoding_cost)),
 ];

@@ -11,7 +11,7 @@ use super::{CostRule, Ctx, Inferred, MacsOps, OpDef, CONTRIB_DOMAIN};
 fn ab(ctx: &Ctx) -> (usize, usize, Option<DType>) {
     match ctx.node.op_type.as_str() {
         "QLinearMatMul" => (0, 3, ctx.dtype(7)),
-        "MatMulInteger" => (0, 1, Some(DType::I32)),
+        "MatMulInteger" | "MatMulInteger16" => (0, 1, Some(DType::I32)),
         "MatMulIntegerToFloat" | "DynamicQuantizeMatMul" => (0, 1, Some(DType::F32)),
         _ => (0, 1, ctx.dtype(0)),
     }
@@ -470,22 +470,54 @@ fn matmul_nbits_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
     (macs, Some(0))
 }
 
-fn fused_matmul(ctx: &Ctx) -> Inferred {
-    let (Some(mut a), Some(mut b)) = (ctx.dims(0), ctx.dims(1)) else {
+/// FusedMatMul (and TransposeMatMul, its earlier name): MatMul with `transA`/`transB`
+/// swapping an operand's last two dims, and `transBatchA`/`transBatchB` reading an operand
+/// stored as [M, batch…, K] as [batch…, M, K] first (its first dim moved to just before the
+/// last). Attributes from the contrib domain's documentation (from memory).
+pub(super) fn fused_matmul(ctx: &Ctx) -> Inferred {
+    let (Some(a), Some(b)) = (ctx.dims(0), ctx.dims(1)) else {
         return Err("operand rank unknown".into());
     };
-    if ctx.int("transA", 0) != 0 && a.len() >= 2 {
-        let n = a.len();
-        a.swap(n - 1, n - 2);
-    }
-    if ctx.int("transB", 0) != 0 && b.len() >= 2 {
-        let n = b.len();
-        b.swap(n - 1, n - 2);
-    }
+    let a = as_multiplied(ctx, a, "transBatchA", "transA");
+    let b = as_multiplied(ctx, b, "transBatchB", "transB");
     Ok(smallvec::smallvec![tensor(
         ctx.dtype(0),
         Shape::of(matmul_shape(&a, &b)?)
     )])
+}
+
+/// An operand of FusedMatMul as the product reads it, after its two transposes.
+fn as_multiplied<T>(ctx: &Ctx, mut d: Vec<T>, batch: &str, trans: &str) -> Vec<T> {
+    let n = d.len();
+    if ctx.int(batch, 0) != 0 && n >= 3 {
+        d[..n - 1].rotate_left(1);
+    }
+    if ctx.int(trans, 0) != 0 && n >= 2 {
+        d.swap(n - 1, n - 2);
+    }
+    d
+}
+
+/// FusedMatMul's MACs: outputs × the inner dim, the last of A as the product reads it.
+fn fused_matmul_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
+    let macs = (|| {
+        let y = outs.first()?.shape.element_count()?;
+        let a = as_multiplied(ctx, ctx.shape(0).concrete()?, "transBatchA", "transA");
+        y.checked_mul(*a.last()?)
+    })();
+    (macs, Some(0))
+}
+
+/// GemmFastGelu: X [… , K] × W [K, N] (+ bias [N]) → [… , N], then the tanh form of Gelu:
+/// MatMul's MACs, one op per output for the Gelu and one more for the bias.
+fn gemm_fast_gelu_cost(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
+    let (macs, _) = matmul_macs(ctx, outs);
+    let per = if ctx.has_input(2) { 2 } else { 1 };
+    let ops = outs
+        .first()
+        .and_then(|y| y.shape.element_count())
+        .and_then(|n| n.checked_mul(per));
+    (macs, ops)
 }
 
 macro_rules! op {
@@ -531,8 +563,21 @@ pub static OPS: &[OpDef] = &[
         CONTRIB_DOMAIN,
         "FusedMatMul",
         fused_matmul,
-        CostRule::Custom(matmul_macs)
+        CostRule::Custom(fused_matmul_macs)
     ),
+    op!(
+        CONTRIB_DOMAIN,
+        "TransposeMatMul",
+        fused_matmul,
+        CostRule::Custom(fused_matmul_macs)
+    ),
+    op!(
+        CONTRIB_DOMAIN,
+        "GemmFastGelu",
+        matmul,
+        CostRule::Custom(gemm_fast_gelu_cost)
+    ),
+    op!(CONTRIB_DOMAIN, "MatMulInteger16", matmul, CostRule::Custom(matmul_macs)),
     op!(
         CONTRIB_DOMAIN,
         "MatMulNBits",

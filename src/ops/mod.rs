@@ -154,6 +154,23 @@ pub fn weight_in_slot_3(op: &str) -> bool {
     matches!(op, "QLinearConv" | "QLinearMatMul" | "QGemm" | "QLinearConvTranspose")
 }
 
+/// The input slots whose values size a node's outputs, for ops that also read other small
+/// inputs which do not (a decoding loop's `num_beams` and `min_length`, CropAndResize's batch
+/// indices): a reason then names only the inputs worth setting with `--value`. None: every
+/// size-like input may.
+pub fn sizing_slots(node: &crate::ir::Node) -> Option<&'static [usize]> {
+    if node.domain.as_str() != CONTRIB_DOMAIN {
+        return None;
+    }
+    match node.op_type.as_str() {
+        // max_length, num_return_sequences (contrib documentation, from memory).
+        "BeamSearch" | "WhisperBeamSearch" => Some(&[1, 4]),
+        "GreedySearch" | "Sampling" => Some(&[1]),
+        "CropAndResize" => Some(&[3]),
+        _ => None,
+    }
+}
+
 /// The registry: every family's table, concatenated.
 pub fn registry() -> &'static [&'static [OpDef]] {
     REGISTRY

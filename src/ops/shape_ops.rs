@@ -143,13 +143,18 @@ fn fold_size(ctx: &Ctx) -> Option<Vec<ConstValue>> {
     )])
 }
 
+/// Range's step: input 2, which the contrib domain's Range may leave out for a step of 1
+/// (its documentation, from memory); the standard Range requires it.
+fn range_step(ctx: &Ctx) -> Option<f64> {
+    if !ctx.has_input(2) && ctx.node.domain.as_str() == super::CONTRIB_DOMAIN {
+        return Some(1.0);
+    }
+    ctx.konst(2)?.as_floats().first().copied()
+}
+
 fn range_len(ctx: &Ctx) -> Option<u64> {
-    let (s, l, d) = (ctx.konst(0)?, ctx.konst(1)?, ctx.konst(2)?);
-    let (s, l, d) = (
-        *s.as_floats().first()?,
-        *l.as_floats().first()?,
-        *d.as_floats().first()?,
-    );
+    let (s, l) = (ctx.konst(0)?, ctx.konst(1)?);
+    let (s, l, d) = (*s.as_floats().first()?, *l.as_floats().first()?, range_step(ctx)?);
     if d == 0.0 || !s.is_finite() || !l.is_finite() {
         return None;
     }
@@ -161,13 +166,12 @@ fn range_len(ctx: &Ctx) -> Option<u64> {
 /// way. Per the ONNX Range specification the output holds ceil((n - s) / k) elements, which
 /// is `n-s` for a step of one and `(n-s+k-1)/k` otherwise, whatever `n` is.
 fn range_symbolic(ctx: &Ctx) -> Option<Dim> {
-    let whole = |i: usize| -> Option<i64> {
-        match ctx.konst(i)?.as_floats().as_slice() {
-            [x] if x.fract() == 0.0 && x.abs() < 1e15 => Some(*x as i64),
-            _ => None,
-        }
+    let whole = |x: f64| (x.fract() == 0.0 && x.abs() < 1e15).then_some(x as i64);
+    let start = match ctx.konst(0)?.as_floats().as_slice() {
+        [x] => whole(*x)?,
+        _ => return None,
     };
-    let (start, step) = (whole(0)?, whole(2)?);
+    let step = whole(range_step(ctx)?)?;
     if start < 0 || step <= 0 {
         return None;
     }
@@ -187,7 +191,7 @@ fn range_symbolic(ctx: &Ctx) -> Option<Dim> {
     (len != Dim::Unknown).then_some(len)
 }
 
-fn range(ctx: &Ctx) -> Inferred {
+pub(super) fn range(ctx: &Ctx) -> Inferred {
     let shape = match (range_len(ctx), range_symbolic(ctx)) {
         (Some(n), _) => Shape::known(&[n]),
         (None, Some(sym)) => Shape::of(vec![sym]),
@@ -196,13 +200,13 @@ fn range(ctx: &Ctx) -> Inferred {
     Ok(smallvec::smallvec![tensor(ctx.dtype(0), shape)])
 }
 
-fn fold_range(ctx: &Ctx) -> Option<Vec<ConstValue>> {
+pub(super) fn fold_range(ctx: &Ctx) -> Option<Vec<ConstValue>> {
     let n = range_len(ctx)?;
     if n > MAX_FOLD_ELEMENTS {
         return None;
     }
     let s = ctx.konst(0)?;
-    let (start, delta) = (*s.as_floats().first()?, *ctx.konst(2)?.as_floats().first()?);
+    let (start, delta) = (*s.as_floats().first()?, range_step(ctx)?);
     let v: Vec<f64> = (0..n).map(|i| start + i as f64 * delta).collect();
     Some(vec![super::util::const_like(s, vec![n], v)])
 }
@@ -458,7 +462,7 @@ fn squeeze(ctx: &Ctx) -> Inferred {
     Ok(smallvec::smallvec![tensor(dt, Shape::of(out))])
 }
 
-fn unsqueeze(ctx: &Ctx) -> Inferred {
+pub(super) fn unsqueeze(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(0);
     let Some(d) = ctx.dims(0) else {
         return Ok(smallvec::smallvec![tensor(dt, Shape::unknown())]);
@@ -934,7 +938,7 @@ fn gather_elements(ctx: &Ctx) -> Inferred {
     Ok(smallvec::smallvec![tensor(ctx.dtype(0), ctx.shape(1))])
 }
 
-fn gather_nd(ctx: &Ctx) -> Inferred {
+pub(super) fn gather_nd(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(0);
     let (Some(d), Some(i)) = (ctx.dims(0), ctx.dims(1)) else {
         return Ok(smallvec::smallvec![tensor(dt, Shape::unknown())]);
@@ -954,7 +958,7 @@ fn gather_nd(ctx: &Ctx) -> Inferred {
 
 // ---- Pad, Resize, Upsample, Tile, Expand -----------------------------------------------
 
-fn pad(ctx: &Ctx) -> Inferred {
+pub(super) fn pad(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(0);
     let Some(d) = ctx.dims(0) else {
         return Ok(smallvec::smallvec![tensor(dt, Shape::unknown())]);

@@ -620,7 +620,8 @@ fn contrib_quantized_ops_of_real_exports_are_inferred() {
 
 /// Contrib-domain ops of optimised and generative exports, their figures computed by hand:
 /// FusedMatMul with `transA` (inner dim from A's second-to-last), GemmFastGelu, CDist, the
-/// experts of MoE and QMoE (4-bit weights, two to a byte), and the decoding loops
+/// experts of MoE and QMoE (4-bit weights, two to a byte), the attention ops with a past
+/// (MultiHeadAttention, Attention), and the decoding loops
 /// (BeamSearch, GreedySearch) around a decoder body. Slots, attributes and output layouts
 /// from the contrib domain's documentation (from memory).
 #[test]
@@ -646,6 +647,18 @@ fn contrib_fused_expert_and_decoding_ops_are_sized_and_costed() {
     g.input("flat", DType::F32, &[n(6), n(16)]);
     g.input("seq_tok", DType::F32, &[n(2), n(3), n(16)]);
     g.input("ids", DType::I32, &[n(3), n(7)]);
+    // MultiHeadAttention: Q, K and V packed [B, S, N, 3, H]; and apart, with a past.
+    g.input("qkv", DType::F32, &[n(2), n(3), n(2), n(3), n(4)]);
+    g.input("mq", DType::F32, &[n(2), n(3), n(8)]);
+    g.input("mk", DType::F32, &[n(2), n(5), n(8)]);
+    g.input("mv", DType::F32, &[n(2), n(5), n(12)]);
+    g.input("mpk", DType::F32, &[n(2), n(2), n(4), n(4)]);
+    g.input("mpv", DType::F32, &[n(2), n(2), n(4), n(6)]);
+    // Attention with its projection [8, 24] and a past of four keys, [2, B, N, P, H].
+    g.input("ax", DType::F32, &[n(2), n(3), n(8)]);
+    g.input("apast", DType::F32, &[n(2), n(2), n(2), n(4), n(4)]);
+    g.initializer(zeros("aw", DType::F32, &[8, 24]));
+    g.initializer(zeros("ab", DType::F32, &[24]));
     g.initializer(zeros("gw", DType::F32, &[8, 5]));
     g.initializer(zeros("gb", DType::F32, &[5]));
     // MoE: 4 experts, hidden 16, inner 32.
@@ -670,6 +683,30 @@ fn contrib_fused_expert_and_decoding_ops_are_sized_and_costed() {
     contrib(op);
     op.attribute.push(attr::int("k", 2));
     contrib(g.node("QMoE", &["flat", "router", "q1", "q1_s", "", "q2", "q2_s"], &["qmoe"]));
+    let op = g.node("MultiHeadAttention", &["qkv"], &["packed_att"]);
+    contrib(op);
+    op.attribute.push(attr::int("num_heads", 2));
+    let op = g.node(
+        "MultiHeadAttention",
+        &["mq", "mk", "mv", "", "", "", "mpk", "mpv"],
+        &["cached_att", "present_k", "present_v"],
+    );
+    contrib(op);
+    op.attribute.push(attr::int("num_heads", 2));
+    // One decoding step over a shared 16-slot cache, 5 of them filled.
+    g.input("dq", DType::F32, &[n(2), n(1), n(8)]);
+    g.input("dcache", DType::F32, &[n(2), n(2), n(16), n(4)]);
+    g.initializer(int_tensor("filled", DType::I32, &[1], &[5]));
+    let op = g.node(
+        "DecoderMaskedMultiHeadAttention",
+        &["dq", "dq", "dq", "", "", "dcache", "dcache", "filled"],
+        &["dstep", "dpres_k", "dpres_v"],
+    );
+    contrib(op);
+    op.attribute.push(attr::int("num_heads", 2));
+    let op = g.node("Attention", &["ax", "aw", "ab", "", "apast"], &["att", "att_present"]);
+    contrib(op);
+    op.attribute.push(attr::int("num_heads", 2));
     // A decoder body (one projection of 16 to 32) the loops carry.
     let mut body = GraphBuilder::new("decoder");
     body.input("h", DType::F32, &[n(1), n(16)]);
@@ -686,7 +723,24 @@ fn contrib_fused_expert_and_decoding_ops_are_sized_and_costed() {
     let op = g.node("GreedySearch", &["ids", "max_len"], &["greedy"]);
     contrib(op);
     op.attribute.push(attr::graph("decoder", body.graph));
-    for o in ["fmm", "gfg", "dist", "moe", "qmoe", "seqs", "seq_scores", "greedy"] {
+    for o in [
+        "fmm",
+        "gfg",
+        "dist",
+        "moe",
+        "qmoe",
+        "packed_att",
+        "cached_att",
+        "present_k",
+        "present_v",
+        "att",
+        "att_present",
+        "dstep",
+        "dpres_k",
+        "seqs",
+        "seq_scores",
+        "greedy",
+    ] {
         g.graph.output.push(tilecut::onnx::ValueInfoProto {
             name: o.into(),
             ..Default::default()
@@ -719,6 +773,32 @@ fn contrib_fused_expert_and_decoding_ops_are_sized_and_costed() {
     // 6 tokens × 1 expert × (16·16 + 32·8) bytes × 2 values a byte.
     assert_eq!(fact("qmoe"), ("float32", "[6,16]".to_string()));
     assert_eq!(cost("QMoE").0, Some(6_144));
+    // Packed: N·H = 2·4 = 8 wide; scores and weighted sum over B·S·S·(Dq + Dv) =
+    // 2·3·3·(8 + 8).
+    let mha_macs = |out: &str| {
+        let id = g
+            .node_ids()
+            .find(|&id| g.node(id).outputs[0].is_some_and(|v| g.value(v).name.as_str() == out))
+            .expect("node");
+        g.cost(id).macs
+    };
+    assert_eq!(fact("packed_att"), ("float32", "[2,3,8]".to_string()));
+    assert_eq!(mha_macs("packed_att"), Some(288));
+    // Four past and five new keys: T = 9; 2·3·9·(8 + 12).
+    assert_eq!(fact("cached_att"), ("float32", "[2,3,12]".to_string()));
+    assert_eq!(fact("present_k").1, "[2,2,9,4]");
+    assert_eq!(fact("present_v").1, "[2,2,9,6]");
+    assert_eq!(mha_macs("cached_att"), Some(1_080));
+    // Projection 2·3·8 inputs × 24 columns = 1,152; then over 4 past and 3 new keys,
+    // 2·3·7·(8 + 8) = 672.
+    assert_eq!(fact("att"), ("float32", "[2,3,8]".to_string()));
+    assert_eq!(fact("att_present").1, "[2,2,2,7,4]");
+    assert_eq!(mha_macs("att"), Some(1_824));
+    // The step's output like its query; the caches written in place; 5 past keys and the
+    // new one: 2·1·6·(8 + 8).
+    assert_eq!(fact("dstep").1, "[2,1,8]");
+    assert_eq!(fact("dpres_k").1, "[2,2,16,4]");
+    assert_eq!(mha_macs("dstep"), Some(192));
     // Batch 3, two sequences returned each, padded to max_length 20.
     assert_eq!(fact("seqs"), ("int32", "[3,2,20]".to_string()));
     assert_eq!(fact("seq_scores").1, "[3,2]");

@@ -258,6 +258,48 @@ fn same(ctx: &Ctx) -> Inferred {
         .collect())
 }
 
+/// DecoderMaskedMultiHeadAttention, one decoding step over a key/value buffer shared with
+/// the past (its documentation, from memory): output like the query [B, S, D] (the value's
+/// width when a value [B, L, Dv] is given); present key and value are the past ones (slots 5
+/// and 6) written in place; the optional scores are left unknown.
+fn decoder_masked_mha(ctx: &Ctx) -> Inferred {
+    let dt = ctx.dtype(0);
+    let out = match (ctx.dims(0), ctx.has_input(2).then(|| ctx.dims(2)).flatten()) {
+        (Some(q), Some(v)) if q.len() == 3 && v.len() == 3 => Shape::of(vec![q[0].clone(), q[1].clone(), v[2].clone()]),
+        _ => ctx.shape(0),
+    };
+    let mut outs = vec![tensor(dt, out)];
+    for slot in [5, 6].into_iter().take(ctx.outputs().saturating_sub(1)) {
+        let shape = if ctx.has_input(slot) {
+            ctx.shape(slot)
+        } else {
+            Shape::unknown()
+        };
+        outs.push(tensor(dt, shape));
+    }
+    while outs.len() < ctx.outputs() {
+        outs.push(tensor(None, Shape::unknown()));
+    }
+    Ok(outs.into())
+}
+
+/// Scores and weighted sum over the past keys and the new one, B·S·T·(D + Dv) with
+/// T = past_sequence_length (slot 7's value) + S; unknown while that value is.
+fn decoder_masked_mha_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
+    let macs = (|| {
+        let q = ctx.shape(0).concrete()?;
+        let [b, s, d] = q[..] else { return None };
+        let dv = *outs.first()?.shape.concrete()?.last()?;
+        let past = match ctx.const_ints(7).as_deref() {
+            Some(&[p]) => u64::try_from(p).ok()?,
+            _ => return None,
+        };
+        let t = past.checked_add(s)?;
+        b.checked_mul(s)?.checked_mul(t)?.checked_mul(d.checked_add(dv)?)
+    })();
+    (macs, Some(0))
+}
+
 /// Output 0 like input 0, any further outputs unknown.
 fn same_first(ctx: &Ctx) -> Inferred {
     let mut outs = vec![tensor(ctx.dtype(0), ctx.shape(0))];
@@ -529,7 +571,11 @@ pub static OPS: &[OpDef] = &[
     op!("SkipGroupNorm", same, CostRule::PerInput(6)),
     op!("Inverse", same, CostRule::PerInput(8)),
     op!("Trilu", same, CostRule::Free),
-    op!("DecoderMaskedMultiHeadAttention", same, CostRule::PerOutput(4)),
+    op!(
+        "DecoderMaskedMultiHeadAttention",
+        decoder_masked_mha,
+        CostRule::Custom(decoder_masked_mha_macs)
+    ),
     // Contrib twins of standard ops, read as the standard op reads them.
     op!("Pad", contrib_pad, CostRule::Free),
     op!("ExpandDims", expand_dims, CostRule::Free),

@@ -387,31 +387,78 @@ fn linear_attention_macs(ctx: &Ctx, _outs: &[Fact]) -> MacsOps {
     (figures.map(|f| f.0), figures.map(|f| f.1))
 }
 
-/// Contrib-domain Attention: input [B, S, hidden] and packed QKV weights.
-fn ms_attention(ctx: &Ctx) -> Inferred {
+/// The contrib domain's Attention and QAttention (its documentation, from memory): input
+/// [B, S, input_hidden] projected by weights [input_hidden, Dq + Dk + Dv] (three equal widths
+/// unless `qkv_hidden_sizes` gives them); a past of keys and values [2, B, N, P, Dk/N]
+/// (Attention's slot 4, QAttention's 8) in front of the new ones. Output [B, S, Dv]; present
+/// [2, B, N, P + S, Dk/N], or the past's own shape when `past_present_share_buffer` is set.
+struct ProjectedAttention {
+    x: Vec<Dim>,
+    widths: [Dim; 3],
+    past: Option<Vec<Dim>>,
+}
+
+fn projected_attention(ctx: &Ctx) -> Result<ProjectedAttention, String> {
     let x = ctx.dims(0).ok_or("input rank unknown")?;
     if x.len() != 3 {
         return Err(format!("input of rank {}", x.len()));
     }
-    let v_hidden = match ctx.ints("qkv_hidden_sizes") {
-        Some(s) if s.len() == 3 => Dim::Known(s[2].max(0) as u64),
-        _ => match ctx.dims(1) {
-            Some(w) if w.len() == 2 => match &w[1] {
-                Dim::Known(n) => Dim::Known(n / 3),
+    let widths = match ctx.ints("qkv_hidden_sizes").as_deref() {
+        Some(&[q, k, v]) if q >= 0 && k >= 0 && v >= 0 => [q, k, v].map(|w| Dim::Known(w as u64)),
+        Some(_) => return Err("qkv_hidden_sizes needs three sizes".into()),
+        None => {
+            let w = match ctx.dims(1).as_deref() {
+                Some([_, Dim::Known(n)]) if n % 3 == 0 => Dim::Known(n / 3),
                 _ => Dim::Unknown,
-            },
-            _ => Dim::Unknown,
-        },
+            };
+            [w.clone(), w.clone(), w]
+        }
     };
-    Ok(smallvec::smallvec![tensor(
-        ctx.dtype(0),
-        Shape::of(vec![x[0].clone(), x[1].clone(), v_hidden]),
-    )])
+    let slot = if ctx.node.op_type.as_str() == "QAttention" {
+        8
+    } else {
+        4
+    };
+    let past = ctx.has_input(slot).then(|| ctx.dims(slot)).flatten();
+    Ok(ProjectedAttention { x, widths, past })
+}
+
+fn ms_attention(ctx: &Ctx) -> Inferred {
+    let a = projected_attention(ctx)?;
+    let dt = ctx.dtype(0);
+    let mut outs = vec![tensor(
+        dt,
+        Shape::of(vec![a.x[0].clone(), a.x[1].clone(), a.widths[2].clone()]),
+    )];
+    if ctx.outputs() > 1 {
+        let present = match &a.past {
+            Some(p) if ctx.int("past_present_share_buffer", 0) != 0 => Shape::of(p.clone()),
+            Some(p) if p.len() == 5 => {
+                let total = p[3].add(&a.x[1]).ok_or("sequence overflows")?;
+                Shape::of(vec![p[0].clone(), p[1].clone(), p[2].clone(), total, p[4].clone()])
+            }
+            Some(_) => Shape::of_rank(5),
+            None => {
+                let heads = ctx
+                    .opt_int("num_heads")
+                    .and_then(|n| u64::try_from(n).ok())
+                    .filter(|&n| n > 0);
+                let head = match (&a.widths[1], heads) {
+                    (Dim::Known(w), Some(n)) if w % n == 0 => Dim::Known(w / n),
+                    _ => Dim::Unknown,
+                };
+                let n = heads.map_or(Dim::Unknown, Dim::Known);
+                Shape::of(vec![Dim::Known(2), a.x[0].clone(), n, a.x[1].clone(), head])
+            }
+        };
+        outs.push(tensor(dt, present));
+    }
+    Ok(outs.into())
 }
 
 /// QAttention: contrib Attention's shapes over (input, weight, bias, input_scale,
 /// weight_scale, mask_index?, input_zp?, weight_zp?, past?), with an integer input and
-/// weight; the output is in the bias's (float) type. Slots from the contrib domain's
+/// weight; the outputs are in the bias's (float) type. Slots from the contrib domain's
 /// documentation (from memory).
 fn q_attention(ctx: &Ctx) -> Inferred {
     let mut outs = ms_attention(ctx)?;
@@ -422,33 +469,127 @@ fn q_attention(ctx: &Ctx) -> Inferred {
     Ok(outs)
 }
 
+/// The projection (B·S·input_hidden·(Dq + Dk + Dv)), then scores and weighted sum over
+/// every head, B·S·T·(Dq + Dv), T counting the past keys (the README's Attention convention).
 fn ms_attention_macs(ctx: &Ctx, _outs: &[Fact]) -> MacsOps {
     let macs = (|| {
-        let x = ctx.shape(0).concrete()?;
+        let a = projected_attention(ctx).ok()?;
+        let x = Shape::of(a.x.clone()).concrete()?;
         let w = ctx.shape(1).concrete()?;
         let proj = count(&x)?.checked_mul(*w.get(1)?)?;
         // The contrib Attention requires num_heads; the count does not depend on it.
         ctx.opt_int("num_heads")?;
-        let [b, s, h] = x[..] else { return None };
-        // Projection, then scores and weighted sum over all heads: 2·B·S·S·hidden.
-        proj.checked_add(2u64.checked_mul(b)?.checked_mul(s)?.checked_mul(s)?.checked_mul(h)?)
+        let past = match &a.past {
+            Some(p) if ctx.int("past_present_share_buffer", 0) == 0 => p.get(3)?.known()?,
+            // A shared buffer's length is its capacity, not the keys attended to.
+            Some(_) => return None,
+            None => 0,
+        };
+        let total = x[1].checked_add(past)?;
+        let widths = a.widths[0].known()?.checked_add(a.widths[2].known()?)?;
+        proj.checked_add(x[0].checked_mul(x[1])?.checked_mul(total)?.checked_mul(widths)?)
     })();
     (macs, Some(0))
 }
 
-fn mha(ctx: &Ctx) -> Inferred {
+/// The contrib domain's MultiHeadAttention over already projected inputs (its
+/// documentation, from memory): query [B, S, Dq], or Q, K and V packed as [B, S, N, 3, H];
+/// key [B, L, Dk], [B, N, L, H] (a cross-attention cache, used as it is) or K and V packed as
+/// [B, L, N, 2, H]; value [B, L, Dv] or [B, N, L, Hv]; past key and value (slots 6 and 7)
+/// [B, N, P, H] in front of a key of the first or packed form. N is `num_heads`.
+struct MhaLayout {
+    b: Dim,
+    s: Dim,
+    /// Query width N·H and value width N·Hv.
+    dq: Dim,
+    dv: Dim,
+    /// Keys attended to: past and new.
+    total: Dim,
+    heads: Option<u64>,
+}
+
+fn mha_layout(ctx: &Ctx) -> Result<MhaLayout, String> {
     let q = ctx.dims(0).ok_or("query rank unknown")?;
-    if q.len() != 3 {
-        return Err(format!("query of rank {} (packed forms not modelled)", q.len()));
-    }
-    let v_last = match ctx.dims(2) {
-        Some(v) if v.len() == 3 => v[2].clone(),
-        _ => q[2].clone(),
+    // Required by the documentation; only the caches' and scores' head dims need it.
+    let heads = ctx
+        .opt_int("num_heads")
+        .and_then(|n| u64::try_from(n).ok())
+        .filter(|&n| n > 0);
+    let packed_width = |d: &[Dim]| d[2].mul(&d[4]).ok_or("query width overflows");
+    let (b, s, dq) = match q.as_slice() {
+        [b, s, dq] => (b.clone(), s.clone(), dq.clone()),
+        [_, _, _, _, _] => (q[0].clone(), q[1].clone(), packed_width(&q)?),
+        _ => return Err(format!("query of rank {}", q.len())),
     };
-    Ok(smallvec::smallvec![tensor(
-        ctx.dtype(0),
-        Shape::of(vec![q[0].clone(), q[1].clone(), v_last]),
-    )])
+    let key = if ctx.has_input(1) { ctx.dims(1) } else { None };
+    let (new_kv, cached, dv_packed) = match key.as_deref() {
+        None if q.len() == 5 => (s.clone(), false, Some(dq.clone())),
+        None => return Err("key rank unknown".into()),
+        Some([_, l, _]) => (l.clone(), false, None),
+        Some([_, _, l, _]) => (l.clone(), true, None),
+        Some(k @ [_, l, _, _, _]) => (l.clone(), false, Some(packed_width(k)?)),
+        Some(k) => return Err(format!("key of rank {}", k.len())),
+    };
+    let dv = match (dv_packed, ctx.has_input(2).then(|| ctx.dims(2)).flatten().as_deref()) {
+        (Some(d), _) => d,
+        (None, Some([_, _, dv])) => dv.clone(),
+        (None, Some([_, nv, _, hv])) => nv.mul(hv).ok_or("value width overflows")?,
+        (None, _) => dq.clone(),
+    };
+    let past = if cached || !ctx.has_input(6) {
+        Dim::Known(0)
+    } else {
+        match ctx.dims(6).as_deref() {
+            Some([_, _, p, _]) => p.clone(),
+            _ => Dim::Unknown,
+        }
+    };
+    let total = past.add(&new_kv).ok_or("sequence overflows")?;
+    Ok(MhaLayout {
+        b,
+        s,
+        dq,
+        dv,
+        total,
+        heads,
+    })
+}
+
+/// Output [B, S, Dv]; present key and value [B, N, past + L, H] and [B, N, past + L, Hv];
+/// the optional scores output [B, N, S, past + L].
+fn mha(ctx: &Ctx) -> Inferred {
+    let l = mha_layout(ctx)?;
+    let dt = ctx.dtype(0);
+    let n = l.heads.map_or(Dim::Unknown, Dim::Known);
+    let per_head = |d: &Dim| match (d, l.heads) {
+        (_, None) => Dim::Unknown,
+        (Dim::Known(v), Some(h)) if v % h == 0 => Dim::Known(v / h),
+        (Dim::Known(_), _) => Dim::Unknown,
+        // A symbolic width is N·H: division by N is exact.
+        (sym, Some(h)) => sym.div_floor(h),
+    };
+    let mut outs = vec![tensor(dt, Shape::of(vec![l.b.clone(), l.s.clone(), l.dv.clone()]))];
+    for width in [&l.dq, &l.dv].into_iter().take(ctx.outputs().saturating_sub(1)) {
+        outs.push(tensor(
+            dt,
+            Shape::of(vec![l.b.clone(), n.clone(), l.total.clone(), per_head(width)]),
+        ));
+    }
+    if ctx.outputs() > 3 {
+        outs.push(tensor(dt, Shape::of(vec![l.b, n, l.s, l.total])));
+    }
+    Ok(outs.into())
+}
+
+/// Scores and weighted sum over every head: B·S·T·(Dq + Dv), T counting the past keys (the
+/// Attention convention of the README, H·Dqk being Dq).
+fn mha_macs(ctx: &Ctx, _outs: &[Fact]) -> MacsOps {
+    let macs = (|| {
+        let l = mha_layout(ctx).ok()?;
+        let rows = l.b.known()?.checked_mul(l.s.known()?)?.checked_mul(l.total.known()?)?;
+        rows.checked_mul(l.dq.known()?.checked_add(l.dv.known()?)?)
+    })();
+    (macs, Some(0))
 }
 
 fn matmul_nbits(ctx: &Ctx) -> Inferred {
@@ -558,7 +699,7 @@ pub static OPS: &[OpDef] = &[
         q_attention,
         CostRule::Custom(ms_attention_macs)
     ),
-    op!(CONTRIB_DOMAIN, "MultiHeadAttention", mha, CostRule::PerOutput(1)),
+    op!(CONTRIB_DOMAIN, "MultiHeadAttention", mha, CostRule::Custom(mha_macs)),
     op!(
         CONTRIB_DOMAIN,
         "FusedMatMul",

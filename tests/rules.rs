@@ -621,7 +621,8 @@ fn contrib_quantized_ops_of_real_exports_are_inferred() {
 /// Contrib-domain ops of optimised and generative exports, their figures computed by hand:
 /// FusedMatMul with `transA` (inner dim from A's second-to-last), GemmFastGelu, CDist, the
 /// experts of MoE and QMoE (4-bit weights, two to a byte), the attention ops with a past
-/// (MultiHeadAttention, Attention), and the decoding loops
+/// (MultiHeadAttention, Attention, GroupQueryAttention, the one-step decoder attention), and
+/// the decoding loops
 /// (BeamSearch, GreedySearch) around a decoder body. Slots, attributes and output layouts
 /// from the contrib domain's documentation (from memory).
 #[test]
@@ -693,6 +694,28 @@ fn contrib_fused_expert_and_decoding_ops_are_sized_and_costed() {
     );
     contrib(op);
     op.attribute.push(attr::int("num_heads", 2));
+    // GroupQueryAttention, 4 query and 2 key/value heads of 8, a past of 6 and a mask over
+    // the 10 positions in all, whose length gives total_sequence_length (as exports compute
+    // it: Shape, Gather, Cast).
+    g.input("gq", DType::F32, &[n(1), n(4), n(32)]);
+    g.input("gk", DType::F32, &[n(1), n(4), n(16)]);
+    g.input("gpast", DType::F32, &[n(1), n(2), n(6), n(8)]);
+    g.input("gmask", DType::I64, &[n(1), n(10)]);
+    g.input("gseqlens", DType::I32, &[n(1)]);
+    g.initializer(int_tensor("one_idx", DType::I64, &[], &[1]));
+    g.node("Shape", &["gmask"], &["gmask_shape"]);
+    g.node("Gather", &["gmask_shape", "one_idx"], &["gtotal64"]);
+    g.node("Cast", &["gtotal64"], &["gtotal"])
+        .attribute
+        .push(attr::int("to", 6));
+    let op = g.node(
+        "GroupQueryAttention",
+        &["gq", "gk", "gk", "gpast", "gpast", "gseqlens", "gtotal"],
+        &["gqa", "gqa_k", "gqa_v"],
+    );
+    contrib(op);
+    op.attribute.push(attr::int("num_heads", 4));
+    op.attribute.push(attr::int("kv_num_heads", 2));
     // One decoding step over a shared 16-slot cache, 5 of them filled.
     g.input("dq", DType::F32, &[n(2), n(1), n(8)]);
     g.input("dcache", DType::F32, &[n(2), n(2), n(16), n(4)]);
@@ -737,6 +760,8 @@ fn contrib_fused_expert_and_decoding_ops_are_sized_and_costed() {
         "att_present",
         "dstep",
         "dpres_k",
+        "gqa",
+        "gqa_k",
         "seqs",
         "seq_scores",
         "greedy",
@@ -799,6 +824,11 @@ fn contrib_fused_expert_and_decoding_ops_are_sized_and_costed() {
     assert_eq!(fact("dstep").1, "[2,1,8]");
     assert_eq!(fact("dpres_k").1, "[2,2,16,4]");
     assert_eq!(mha_macs("dstep"), Some(192));
+    // The caches hold all 10 positions: max(6 past, 10 in all); every query head scores and
+    // sums over them: 2 × (1·4·32 outputs) × 10.
+    assert_eq!(fact("gqa").1, "[1,4,32]");
+    assert_eq!(fact("gqa_k").1, "[1,2,10,8]");
+    assert_eq!(mha_macs("gqa"), Some(2_560));
     // Batch 3, two sequences returned each, padded to max_length 20.
     assert_eq!(fact("seqs"), ("int32", "[3,2,20]".to_string()));
     assert_eq!(fact("seq_scores").1, "[3,2]");

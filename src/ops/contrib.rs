@@ -170,7 +170,10 @@ fn embed_layer_norm(ctx: &Ctx) -> Inferred {
 
 /// GroupQueryAttention: query [B, S, hidden] (or packed QKV when key is absent), with
 /// num_heads and kv_num_heads → output [B, S, num_heads·head_size]; the present key/value
-/// caches are [B, kv_num_heads, total, head_size] with total known only from past + S.
+/// caches are [B, kv_num_heads, L, head_size]. L is the longer of the past cache (slot 3,
+/// [B, kv_num_heads, P, head_size]) and `total_sequence_length` (slot 6, an int32 scalar):
+/// a cache apart from the past holds the total, one shared with it keeps its capacity.
+/// Unknown while either is. Slots from the contrib domain's documentation (from memory).
 fn group_query_attention(ctx: &Ctx) -> Inferred {
     let q = ctx.dims(0).ok_or("query rank unknown")?;
     if q.len() != 3 {
@@ -185,6 +188,7 @@ fn group_query_attention(ctx: &Ctx) -> Inferred {
     };
     let out_hidden = head_size.map_or(Dim::Unknown, |d| Dim::Known(d * heads));
     let dt = ctx.dtype(0);
+    let length = gqa_cache_length(ctx).map_or(Dim::Unknown, Dim::Known);
     let mut outs = vec![tensor(dt, Shape::of(vec![q[0].clone(), q[1].clone(), out_hidden]))];
     for _ in 1..ctx.outputs() {
         outs.push(tensor(
@@ -192,7 +196,7 @@ fn group_query_attention(ctx: &Ctx) -> Inferred {
             Shape::of(vec![
                 q[0].clone(),
                 Dim::Known(kv_heads),
-                Dim::Unknown,
+                length.clone(),
                 head_size.map_or(Dim::Unknown, Dim::Known),
             ]),
         ));
@@ -200,10 +204,33 @@ fn group_query_attention(ctx: &Ctx) -> Inferred {
     Ok(outs.into())
 }
 
-/// Q·Kᵀ and A·V run over the total sequence, past cache included, which the graph does
-/// not state: unknown.
-fn gqa_macs(_ctx: &Ctx, _outs: &[Fact]) -> MacsOps {
-    (None, None)
+/// The value of `total_sequence_length` (slot 6), when known.
+fn gqa_total(ctx: &Ctx) -> Option<u64> {
+    match ctx.const_ints(6).as_deref() {
+        Some(&[t]) => u64::try_from(t).ok(),
+        _ => None,
+    }
+}
+
+/// The present caches' length: max(past length, total), or the total without a past.
+fn gqa_cache_length(ctx: &Ctx) -> Option<u64> {
+    let total = gqa_total(ctx)?;
+    if !ctx.has_input(3) {
+        return Some(total);
+    }
+    let past = ctx.shape(3).concrete()?;
+    Some((*past.get(2)?).max(total))
+}
+
+/// Q·Kᵀ and A·V of every query head over the total sequence, past cache included:
+/// B·S·T·2·(num_heads·head_size), T being `total_sequence_length`'s value; unknown while it
+/// is.
+fn gqa_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
+    let macs = (|| {
+        let y = outs.first()?.shape.element_count()?;
+        y.checked_mul(gqa_total(ctx)?)?.checked_mul(2)
+    })();
+    (macs, Some(0))
 }
 
 /// BiasSplitGelu: [N, HW, D] → [N, HW, D/2].

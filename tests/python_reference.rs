@@ -1895,7 +1895,9 @@ print(json.dumps({o: list(r.shape) for o, r in zip(outs, res)}))
 /// GatherND, Range with its step left out, MaxpoolWithMask as MaxPool, NhwcFusedConv as Conv
 /// between two transposes, GemmFastGelu and TransposeMatMul/FusedMatMul as MatMul after the
 /// transposes their attributes name, the integer products, ReduceSumInteger, BiasSoftmax,
-/// ComplexMul, CDist as a reduction of differences, CropAndResize as RoiAlign): tilecut's
+/// ComplexMul, CDist as a reduction of differences, CropAndResize as RoiAlign, and the
+/// attention ops over the standard Attention of opset 23: MultiHeadAttention with a past and
+/// with a cross-attention cache, Attention with its projection and stacked past): tilecut's
 /// shape of each contrib node equals the output shape the `onnx` package's reference
 /// evaluator computes for its standard twin on the same inputs. Which twin each op has, its
 /// slots and attributes are from the contrib domain's documentation (from memory).

@@ -533,25 +533,21 @@ fn decoding_cost(_ctx: &Ctx, _outs: &[Fact]) -> MacsOps {
 }
 
 macro_rules! op {
-    ($name:literal, $infer:expr, $cost:expr) => {
+    (@def $name:literal, $infer:expr, $cost:expr, $fold:expr) => {
         OpDef {
             domain: CONTRIB_DOMAIN,
             op: $name,
             family: "contrib",
             infer: $infer,
             cost: $cost,
-            fold: None,
+            fold: $fold,
         }
     };
+    ($name:literal, $infer:expr, $cost:expr) => {
+        op!(@def $name, $infer, $cost, None)
+    };
     ($name:literal, $infer:expr, $cost:expr, $fold:expr) => {
-        OpDef {
-            domain: CONTRIB_DOMAIN,
-            op: $name,
-            family: "contrib",
-            infer: $infer,
-            cost: $cost,
-            fold: Some($fold),
-        }
+        op!(@def $name, $infer, $cost, Some($fold))
     };
 }
 

@@ -6,7 +6,7 @@
 
 use crate::ir::{DType, Dim, Fact, Shape};
 
-use super::elementwise::SOFTMAX_OPS;
+use super::elementwise::{self, SOFTMAX_OPS};
 use super::util::{broadcast, count, like_input, norm_axis, tensor};
 use super::{conv, matmul, reduce, shape_ops, vision, CostRule, Ctx, Inferred, MacsOps, OpDef, CONTRIB_DOMAIN};
 
@@ -334,14 +334,6 @@ fn same_first(ctx: &Ctx) -> Inferred {
     Ok(outs.into())
 }
 
-/// The broadcast of inputs 0 and 1, in input 0's type.
-fn binary_like(ctx: &Ctx) -> Inferred {
-    Ok(smallvec::smallvec![tensor(
-        ctx.dtype(0),
-        broadcast(&[ctx.shape(0), ctx.shape(1)])?
-    )])
-}
-
 /// BiasDropout: output like input 0, mask of bools.
 fn bias_dropout(ctx: &Ctx) -> Inferred {
     let mut outs = vec![tensor(ctx.dtype(0), ctx.shape(0))];
@@ -612,8 +604,8 @@ pub static OPS: &[OpDef] = &[
     // Softmax over data + bias.
     op!("BiasSoftmax", like_input, CostRule::PerOutput(SOFTMAX_OPS + 1)),
     // Complex products of [..., 2] pairs: four multiplies and two adds per pair.
-    op!("ComplexMul", binary_like, CostRule::PerOutput(3)),
-    op!("ComplexMulConj", binary_like, CostRule::PerOutput(3)),
+    op!("ComplexMul", elementwise::binary, CostRule::PerOutput(3)),
+    op!("ComplexMulConj", elementwise::binary, CostRule::PerOutput(3)),
     op!("CDist", cdist, CostRule::Custom(cdist_cost)),
     // Bilinear: four reads weighted and summed per output.
     op!("CropAndResize", crop_and_resize, CostRule::PerOutput(8)),

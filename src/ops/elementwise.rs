@@ -119,7 +119,7 @@ fn bcast_inputs(ctx: &Ctx) -> Result<Shape, String> {
     broadcast_all(shapes.iter().copied())
 }
 
-fn binary(ctx: &Ctx) -> Inferred {
+pub(super) fn binary(ctx: &Ctx) -> Inferred {
     Ok(smallvec::smallvec![tensor(
         ctx.dtype(0).or(ctx.dtype(1)),
         bcast_inputs(ctx)?

@@ -474,7 +474,7 @@ fn q_attention(ctx: &Ctx) -> Inferred {
 fn ms_attention_macs(ctx: &Ctx, _outs: &[Fact]) -> MacsOps {
     let macs = (|| {
         let a = projected_attention(ctx).ok()?;
-        let x = Shape::of(a.x.clone()).concrete()?;
+        let x = ctx.shape(0).concrete()?;
         let w = ctx.shape(1).concrete()?;
         let proj = count(&x)?.checked_mul(*w.get(1)?)?;
         // The contrib Attention requires num_heads; the count does not depend on it.

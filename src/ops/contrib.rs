@@ -296,7 +296,7 @@ fn decoder_masked_mha(ctx: &Ctx) -> Inferred {
         _ => ctx.shape(0),
     };
     let mut outs = vec![tensor(dt, out)];
-    for slot in [5, 6].into_iter().take(ctx.outputs().saturating_sub(1)) {
+    for slot in [5, 6] {
         let shape = if ctx.has_input(slot) {
             ctx.shape(slot)
         } else {
@@ -304,9 +304,14 @@ fn decoder_masked_mha(ctx: &Ctx) -> Inferred {
         };
         outs.push(tensor(dt, shape));
     }
-    while outs.len() < ctx.outputs() {
-        outs.push(tensor(None, Shape::unknown()));
-    }
+    fitted(ctx, outs)
+}
+
+/// `outs` cut or filled (with unknown facts) to the node's number of outputs.
+fn fitted(ctx: &Ctx, mut outs: Vec<Fact>) -> Inferred {
+    let n = ctx.outputs().max(1);
+    outs.truncate(n);
+    outs.resize_with(n, || tensor(None, Shape::unknown()));
     Ok(outs.into())
 }
 
@@ -329,9 +334,7 @@ fn decoder_masked_mha_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
 
 /// Output 0 like input 0, any further outputs unknown.
 fn same_first(ctx: &Ctx) -> Inferred {
-    let mut outs = vec![tensor(ctx.dtype(0), ctx.shape(0))];
-    outs.extend((1..ctx.outputs()).map(|_| tensor(None, Shape::unknown())));
-    Ok(outs.into())
+    fitted(ctx, vec![tensor(ctx.dtype(0), ctx.shape(0))])
 }
 
 /// BiasDropout: output like input 0, mask of bools.
@@ -512,11 +515,7 @@ fn decoding(ctx: &Ctx) -> Inferred {
             outs.push(tensor(None, Shape::of(vec![batch, Dim::Unknown])));
         }
     }
-    outs.truncate(ctx.outputs().max(1));
-    while outs.len() < ctx.outputs() {
-        outs.push(tensor(None, Shape::unknown()));
-    }
-    Ok(outs.into())
+    fitted(ctx, outs)
 }
 
 /// The decoder runs once per generated token and beam, which the graph does not state.

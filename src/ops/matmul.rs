@@ -439,15 +439,9 @@ fn ms_attention(ctx: &Ctx) -> Inferred {
             }
             Some(_) => Shape::of_rank(5),
             None => {
-                let heads = ctx
-                    .opt_int("num_heads")
-                    .and_then(|n| u64::try_from(n).ok())
-                    .filter(|&n| n > 0);
-                let head = match (&a.widths[1], heads) {
-                    (Dim::Known(w), Some(n)) if w % n == 0 => Dim::Known(w / n),
-                    _ => Dim::Unknown,
-                };
+                let heads = num_heads(ctx);
                 let n = heads.map_or(Dim::Unknown, Dim::Known);
+                let head = head_width(&a.widths[1], heads);
                 Shape::of(vec![Dim::Known(2), a.x[0].clone(), n, a.x[1].clone(), head])
             }
         };
@@ -511,10 +505,7 @@ struct MhaLayout {
 fn mha_layout(ctx: &Ctx) -> Result<MhaLayout, String> {
     let q = ctx.dims(0).ok_or("query rank unknown")?;
     // Required by the documentation; only the caches' and scores' head dims need it.
-    let heads = ctx
-        .opt_int("num_heads")
-        .and_then(|n| u64::try_from(n).ok())
-        .filter(|&n| n > 0);
+    let heads = num_heads(ctx);
     let packed_width = |d: &[Dim]| d[2].mul(&d[4]).ok_or("query width overflows");
     let (b, s, dq) = match q.as_slice() {
         [b, s, dq] => (b.clone(), s.clone(), dq.clone()),
@@ -561,13 +552,7 @@ fn mha(ctx: &Ctx) -> Inferred {
     let l = mha_layout(ctx)?;
     let dt = ctx.dtype(0);
     let n = l.heads.map_or(Dim::Unknown, Dim::Known);
-    let per_head = |d: &Dim| match (d, l.heads) {
-        (_, None) => Dim::Unknown,
-        (Dim::Known(v), Some(h)) if v % h == 0 => Dim::Known(v / h),
-        (Dim::Known(_), _) => Dim::Unknown,
-        // A symbolic width is N·H: division by N is exact.
-        (sym, Some(h)) => sym.div_floor(h),
-    };
+    let per_head = |d: &Dim| head_width(d, l.heads);
     let mut outs = vec![tensor(dt, Shape::of(vec![l.b.clone(), l.s.clone(), l.dv.clone()]))];
     for width in [&l.dq, &l.dv].into_iter().take(ctx.outputs().saturating_sub(1)) {
         outs.push(tensor(
@@ -579,6 +564,24 @@ fn mha(ctx: &Ctx) -> Inferred {
         outs.push(tensor(dt, Shape::of(vec![l.b, n, l.s, l.total])));
     }
     Ok(outs.into())
+}
+
+/// `num_heads`, when it is a positive count.
+fn num_heads(ctx: &Ctx) -> Option<u64> {
+    ctx.opt_int("num_heads")
+        .and_then(|n| u64::try_from(n).ok())
+        .filter(|&n| n > 0)
+}
+
+/// One head's share of a width of N·H: unknown without N or when N does not divide it.
+fn head_width(width: &Dim, heads: Option<u64>) -> Dim {
+    match (width, heads) {
+        (_, None) => Dim::Unknown,
+        (Dim::Known(v), Some(h)) if v % h == 0 => Dim::Known(v / h),
+        (Dim::Known(_), _) => Dim::Unknown,
+        // A symbolic width is N·H: division by N is exact.
+        (sym, Some(h)) => sym.div_floor(h),
+    }
 }
 
 /// Scores and weighted sum over every head: B·S·T·(Dq + Dv), T counting the past keys (the

@@ -1919,9 +1919,14 @@ fn type_fact(cx: &Cx, name: &str, tp: &onnx::TypeProto) -> Result<Fact, ReadErro
                 shape: Shape::unknown(),
             }
         }
-        Some(T::MapType(_)) => Fact {
+        // A map's element type is its values' (as ZipMap's output carries it), where they are
+        // tensors: DictVectorizer gives a tensor of that type.
+        Some(T::MapType(m)) => Fact {
             value_type: ValueType::Map,
-            dtype: None,
+            dtype: match m.value_type.as_deref().and_then(|v| v.value.as_ref()) {
+                Some(T::TensorType(t)) => DType::from_onnx(t.elem_type),
+                _ => None,
+            },
             shape: Shape::unknown(),
         },
         None => Fact::default(),

@@ -285,6 +285,7 @@ fn infer_graph(
                 .collect();
             let op = node.op_type.clone();
             let scan = (op == "Scan").then(|| ops::ScanLayout::of(node, opset));
+            let scores = (op == "FlexAttention").then(|| ops::flex_scores(node, &input_facts));
             // An If whose condition is known runs one branch: the other is still inferred
             // (split and explain read its tensors), but what it finds is not reported, as
             // it can never happen.
@@ -296,7 +297,7 @@ fn infer_graph(
                 .map(|e| std::mem::take(&mut e.bodies))
                 .unwrap_or_default();
             for (bi, b) in bodies.iter_mut().enumerate() {
-                seed_body_inputs(&mut b.graph, &op, &input_facts, scan.as_ref());
+                seed_body_inputs(&mut b.graph, &op, &input_facts, scan.as_ref(), scores.as_ref());
                 let mut unseen = Vec::new();
                 let body_diags = if taken.is_some_and(|t| t != bi) {
                     &mut unseen
@@ -941,8 +942,15 @@ fn all_symbols(f: &Fact) -> BTreeSet<String> {
     f.shape.dims().unwrap_or(&[]).iter().flat_map(|d| d.symbols()).collect()
 }
 
-/// Body graph inputs: Loop (iteration, condition, carried...), Scan (state..., scan slices).
-fn seed_body_inputs(body: &mut Graph, op: &str, inputs: &[Fact], scan: Option<&ops::ScanLayout>) {
+/// Body graph inputs: Loop (iteration, condition, carried...), Scan (state..., scan slices),
+/// SequenceMap (one element of each sequence input), FlexAttention (the scores, `scores`).
+fn seed_body_inputs(
+    body: &mut Graph,
+    op: &str,
+    inputs: &[Fact],
+    scan: Option<&ops::ScanLayout>,
+    scores: Option<&Fact>,
+) {
     let ids = body.inputs.clone();
     for (k, id) in ids.iter().enumerate() {
         let v = &mut body.values[id.index()];
@@ -960,13 +968,27 @@ fn seed_body_inputs(body: &mut Graph, op: &str, inputs: &[Fact], scan: Option<&o
                 _ => inputs.get(k).cloned(),
             },
             "Scan" => scan.and_then(|l| l.body_input(k, inputs)),
+            "FlexAttention" if k == 0 => scores.cloned(),
+            // One element of each sequence input; a tensor input as it is.
+            "SequenceMap" => inputs.get(k).map(|f| match &f.value_type {
+                ValueType::Sequence(s) => s.element.clone(),
+                _ => f.clone(),
+            }),
             _ => None,
         };
         if let Some(f) = seeded {
-            // The other direction: what the carrying node infers completes the body's own
-            // declaration, whatever symbols it has.
             let decl = v.declared.as_deref().cloned().unwrap_or_default();
-            v.declared = Some(Box::new(fill_from(&decl, &f, &all_symbols(&f))));
+            v.declared = Some(Box::new(if matches!(op, "SequenceMap" | "FlexAttention") {
+                // Every run sees an element that fits the merged element fact, dim for dim
+                // (FlexAttention's one run, the scores): it beats the body's own symbols,
+                // which only fill what it leaves unknown.
+                fill_from(&f, &decl, &all_symbols(&decl))
+            } else {
+                // The other direction: what the carrying node infers completes the body's
+                // own declaration, whatever symbols it has. A loop's carried values may
+                // change shape from one iteration to the next, which a body's symbol says.
+                fill_from(&decl, &f, &all_symbols(&f))
+            }));
         }
     }
 }
@@ -1010,6 +1032,7 @@ fn node_cost(ctx: &Ctx, rule: Option<CostRule>, outs: &[Fact], bodies: &[MacsOps
                 .map(|t| t.max(0) as u64)
                 .or(ctx.loop_trips),
             "Scan" => ops::ScanLayout::of(ctx.node, ctx.opset).trips(ctx),
+            "SequenceMap" => ops::sequence_map_trips(ctx),
             _ => Some(1),
         };
         let pick = |sel: fn(&MacsOps) -> Option<u64>| -> Option<u64> {

@@ -1406,6 +1406,37 @@ outs = ReferenceEvaluator(onnx.load(sys.argv[1])).run(None, {k: np.zeros(v, dtyp
 print(json.dumps([list(np.shape(o)) for o in outs]))
 "#;
 
+/// A model written to a folder of its own and read: its outputs' shapes as tilecut infers
+/// them and as the `onnx` package's reference evaluator computes them on zeros of `shapes`
+/// (a JSON object of input shapes). The folder lives as long as this.
+struct OnZeros {
+    _dir: tempfile::TempDir,
+    path: std::path::PathBuf,
+    read: tilecut::Analyzed,
+    ours: Vec<Vec<u64>>,
+    reference: Vec<Vec<u64>>,
+}
+
+fn on_zeros(m: &tilecut::onnx::ModelProto, shapes: &str) -> OnZeros {
+    let dir = tempfile::tempdir().expect("tmp");
+    let path = write(dir.path(), "model.onnx", m);
+    let read = tilecut::read_model(&path, &Default::default()).expect("reads");
+    let g = &read.model.graph;
+    let ours = g
+        .outputs
+        .iter()
+        .map(|&o| g.value(o).fact.shape.concrete().expect("every output sized"))
+        .collect();
+    let reference = serde_json::from_str(&python(RUN_ON_ZEROS, &[path.to_str().expect("utf8"), shapes])).expect("json");
+    OnZeros {
+        _dir: dir,
+        path,
+        read,
+        ours,
+        reference,
+    }
+}
+
 /// A sequence split from a tensor in uneven pieces (SplitToSequence, scalar split 3 over 7
 /// rows), read back piece by piece: its length folds to 3, the last piece has 1 row, erasing
 /// the first and concatenating leaves 4 rows, and stacking the pieces of 1 row each along a
@@ -1457,31 +1488,76 @@ fn sequences_split_in_pieces_agree_with_the_onnx_reference_evaluator() {
         vi("c", 1, &[Dm::N(3), Dm::N(2)]),
     ];
     let m = model(nodes, inputs, untyped(&outs), inits);
-    let dir = tempfile::tempdir().expect("tmp");
-    let path = write(dir.path(), "pieces.onnx", &m);
-
-    let read = tilecut::read_model(&path, &Default::default()).expect("reads");
-    let g = &read.model.graph;
-    let ours: Vec<Vec<u64>> = g
-        .outputs
-        .iter()
-        .map(|&o| g.value(o).fact.shape.concrete().expect("every output sized"))
-        .collect();
-    let reference: Vec<Vec<u64>> = serde_json::from_str(&python(
-        RUN_ON_ZEROS,
-        &[
-            path.to_str().expect("utf8"),
-            r#"{"x": [7, 2], "a": [1, 2], "b": [2, 2], "c": [3, 2]}"#,
-        ],
-    ))
-    .expect("json");
-    assert_eq!(ours, reference);
+    let z = on_zeros(&m, r#"{"x": [7, 2], "a": [1, 2], "b": [2, 2], "c": [3, 2]}"#);
+    assert_eq!(z.ours, z.reference);
+    let g = &z.read.model.graph;
     let count = g.value(g.outputs[0]).konst.as_deref().and_then(|c| c.try_ints());
     assert_eq!(
         count,
         Some(vec![3]),
         "the length of a sequence the graph spells out is a constant"
     );
+}
+
+/// SequenceMap (opset 17) over a sequence built from two [2, 3] tensors, with a [3, 4] tensor
+/// as its additional input: per the ONNX operator specification the body sees one element
+/// and the tensor as it is, and each body output becomes a sequence as long as the input.
+/// The body multiplies and also reads the element's shape. Concatenating the products gives
+/// [4, 4], the last one is [2, 4], each shape read is [2] and the length folds to 2; the
+/// shapes must be the ones the `onnx` package's reference evaluator computes. MACs: the
+/// body's MatMul, 2·3·4 = 24, once per element (MatMul convention M·K·N, README), 48.
+#[test]
+fn sequence_map_runs_its_body_once_per_element() {
+    if !python_onnx("sequence_map_runs_its_body_once_per_element") {
+        return;
+    }
+    let body = tilecut::onnx::GraphProto {
+        node: vec![node("MatMul", &["e", "t"], &["p"]), node("Shape", &["e"], &["s"])],
+        name: "per_element".into(),
+        input: vec![vi("e", 1, &[Dm::S("rows"), Dm::N(3)]), untyped(&["t"]).remove(0)],
+        output: untyped(&["p", "s"]),
+        ..Default::default()
+    };
+    let mut map = node("SequenceMap", &["ab", "w"], &["products", "shapes"]);
+    map.attribute = vec![tilecut::onnx::AttributeProto {
+        name: "body".into(),
+        r#type: 5,
+        g: Some(Box::new(body)),
+        ..Default::default()
+    }];
+    let with = |mut n: tilecut::onnx::NodeProto, attrs: Vec<tilecut::onnx::AttributeProto>| {
+        n.attribute = attrs;
+        n
+    };
+    let nodes = vec![
+        node("SequenceConstruct", &["a", "b"], &["ab"]),
+        map,
+        with(
+            node("ConcatFromSequence", &["products"], &["joined"]),
+            vec![int_attr("axis", 0)],
+        ),
+        node("SequenceAt", &["products", "last"], &["final"]),
+        node("SequenceAt", &["shapes", "last"], &["shape_read"]),
+        node("SequenceLength", &["products"], &["count"]),
+    ];
+    let outs = ["joined", "final", "shape_read", "count"];
+    let inputs = vec![
+        vi("a", 1, &[Dm::N(2), Dm::N(3)]),
+        vi("b", 1, &[Dm::N(2), Dm::N(3)]),
+        vi("w", 1, &[Dm::N(3), Dm::N(4)]),
+    ];
+    let m = model(nodes, inputs, untyped(&outs), vec![i64_init("last", &[], &[-1])]);
+    let z = on_zeros(&m, r#"{"a": [2, 3], "b": [2, 3], "w": [3, 4]}"#);
+    assert_eq!(z.ours, z.reference);
+    let g = &z.read.model.graph;
+    let count = g.value(g.outputs[3]).konst.as_deref().and_then(|c| c.try_ints());
+    assert_eq!(count, Some(vec![2]), "the mapped sequence is as long as its input");
+
+    let (code, out, err) = run(&["inspect", z.path.to_str().expect("utf8"), "--format", "json"]);
+    assert_eq!(code, 0, "{err}");
+    let j: serde_json::Value = serde_json::from_str(&out).expect("json");
+    assert!(!j["warnings"].to_string().contains("op-unknown"), "{}", j["warnings"]);
+    assert_eq!(j["model"]["macs"], 48);
 }
 
 /// Builds one model per ONNX-ML op (the classical-model ops converters write), runs it in the
@@ -1568,6 +1644,79 @@ fn ml_ops_agree_with_the_onnx_reference_evaluator() {
             })
             .collect();
         assert_eq!(&ours, expected, "{name}");
+    }
+}
+
+/// Builds DictVectorizer and CastMap models over map inputs and prints, per model, the
+/// output's element type from the `onnx` package's shape inference (strict mode) and, for
+/// DictVectorizer, the output shape its reference evaluator computes on a small map.
+const MAP_MODELS: &str = r#"
+import sys, json, os, onnx, numpy as np
+from onnx import helper as h, TensorProto as T
+from onnx.reference import ReferenceEvaluator
+out_dir = sys.argv[1]
+cases = {
+  "dict_int_keys": ("DictVectorizer", T.INT64, T.FLOAT, dict(int64_vocabulary=[1, 2, 3, 7]), {1: 2.0, 7: 4.0}),
+  "dict_string_keys": ("DictVectorizer", T.STRING, T.INT64, dict(string_vocabulary=["a", "b"]), {"a": np.int64(2)}),
+  "cast_dense": ("CastMap", T.INT64, T.FLOAT, dict(cast_to="TO_INT64"), None),
+  "cast_sparse": ("CastMap", T.INT64, T.STRING, dict(cast_to="TO_STRING", map_form="SPARSE", max_map=5), None),
+}
+result = {}
+for name, (op, key, value, attrs, feed) in cases.items():
+    node = h.make_node(op, ["m"], ["y"], domain="ai.onnx.ml", **attrs)
+    m_type = h.make_map_type_proto(key, h.make_tensor_type_proto(value, None))
+    g = h.make_graph([node], name, [h.make_value_info("m", m_type)], [h.make_value_info("y", onnx.TypeProto())])
+    m = h.make_model(g, opset_imports=[h.make_opsetid("", 17), h.make_opsetid("ai.onnx.ml", 3)])
+    onnx.save(m, os.path.join(out_dir, name + ".onnx"))
+    elem = onnx.shape_inference.infer_shapes(m, strict_mode=True).graph.output[0].type.tensor_type.elem_type
+    shape = list(ReferenceEvaluator(m).run(None, {"m": feed})[0].shape) if feed is not None else None
+    result[name] = [elem, shape]
+print(json.dumps(result))
+"#;
+
+/// ONNX-ML ops over maps. DictVectorizer: a tensor as long as its vocabulary (the shape the
+/// `onnx` package's reference evaluator computes), of the map's value type (its shape
+/// inference). CastMap: the element type `cast_to` names (shape inference); the length is
+/// the map's (DENSE, decided by the data: a symbolic `entries@node`) or `max_map` (SPARSE), in
+/// the `[1, n]` layout tilecut gives from memory of runtimes (the specification gives no rank).
+#[test]
+fn map_ops_agree_with_the_onnx_package() {
+    if !python_onnx("map_ops_agree_with_the_onnx_package") {
+        return;
+    }
+    let dir = tempfile::tempdir().expect("tmp");
+    let reference: BTreeMap<String, (i32, Option<Vec<u64>>)> =
+        serde_json::from_str(&python(MAP_MODELS, &[dir.path().to_str().expect("utf8")])).expect("json");
+    assert_eq!(reference.len(), 4);
+    for (name, (elem, shape)) in &reference {
+        let read = tilecut::read_model(&dir.path().join(format!("{name}.onnx")), &Default::default()).expect("reads");
+        assert!(
+            !read
+                .diags
+                .iter()
+                .any(|d| d.code == "op-unknown" || d.code == "shape-failed"),
+            "{name}: {:?}",
+            read.diags
+        );
+        let g = &read.model.graph;
+        let f = &g.value(g.outputs[0]).fact;
+        assert_eq!(f.dtype.map(|d| d.onnx_code()), Some(*elem), "{name}");
+        match shape {
+            Some(s) => assert_eq!(f.shape.concrete().as_ref(), Some(s), "{name}"),
+            None => {
+                let dims = f.shape.dims().unwrap_or_else(|| panic!("{name}: unranked"));
+                assert_eq!(dims[0], Dim::Known(1), "{name}");
+                let want = if name == "cast_dense" {
+                    Dim::sym(&format!(
+                        "entries@{}",
+                        g.node(g.value(g.outputs[0]).producer.expect("made")).name
+                    ))
+                } else {
+                    Dim::Known(5)
+                };
+                assert_eq!(dims[1], want, "{name}");
+            }
+        }
     }
 }
 

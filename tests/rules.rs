@@ -866,3 +866,62 @@ fn contrib_fused_expert_and_decoding_ops_are_sized_and_costed() {
     assert!(!why.contains("beams"), "{why}");
     assert_eq!(j["model"]["needs_values"], serde_json::json!(["max_len", "returned"]));
 }
+
+/// Gradient (training domain, ONNX operator specification): one output per name in `xs`, the
+/// gradient of `y` with respect to it, which has that tensor's shape by definition; its inputs
+/// are the values of `xs` then `zs`. The backward pass it stands for is not spelled out in
+/// the node, so its cost is unknown, never zero.
+#[test]
+fn gradient_outputs_take_the_shapes_of_what_they_differentiate() {
+    use tilecut::ir::DType;
+    use tilecut::onnx::builder::{DimSpec, ModelBuilder};
+    let n = DimSpec::Fixed;
+    let dir = tempfile::tempdir().expect("tmp");
+    let mut m = ModelBuilder::new("gradient", 17);
+    m.opsets.push(("ai.onnx.preview.training".into(), 1));
+    let g = &mut m.graph;
+    g.input("a", DType::F32, &[n(2), n(3)]);
+    g.input("b", DType::F32, &[n(3)]);
+    g.node("Add", &["a", "b"], &["c"]);
+    let op = g.node("Gradient", &["a", "b"], &["da", "db"]);
+    op.domain = "ai.onnx.preview.training".into();
+    for (name, values) in [("xs", &["a", "b"][..]), ("y", &["c"][..])] {
+        let mut a = tilecut::onnx::AttributeProto {
+            name: name.into(),
+            r#type: if values.len() == 1 { 3 } else { 8 }, // STRING, STRINGS
+            ..Default::default()
+        };
+        if values.len() == 1 {
+            a.s = bytes::Bytes::copy_from_slice(values[0].as_bytes());
+        } else {
+            a.rare_mut().strings = values
+                .iter()
+                .map(|s| bytes::Bytes::copy_from_slice(s.as_bytes()))
+                .collect();
+        }
+        op.attribute.push(a);
+    }
+    for o in ["c", "da", "db"] {
+        g.graph.output.push(tilecut::onnx::ValueInfoProto {
+            name: o.into(),
+            ..Default::default()
+        });
+    }
+    let path = dir.path().join("gradient.onnx");
+    std::fs::write(&path, m.encode()).expect("write");
+    let read = tilecut::read_model(&path, &Default::default()).expect("reads");
+    assert!(
+        !read
+            .diags
+            .iter()
+            .any(|d| d.code == "op-unknown" || d.code == "shape-failed"),
+        "{:?}",
+        read.diags
+    );
+    let g = &read.model.graph;
+    let shape = |t: &str| g.value(g.value_by_name(t).expect("tensor")).fact.shape.to_string();
+    assert_eq!(shape("da"), "[2,3]");
+    assert_eq!(shape("db"), "[3]");
+    let id = g.node_ids().find(|&id| g.node(id).op_type == "Gradient").expect("node");
+    assert_eq!((g.cost(id).macs, g.cost(id).ops), (None, None));
+}

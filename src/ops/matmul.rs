@@ -298,6 +298,49 @@ fn attention_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
     )
 }
 
+/// The domain of operators the ONNX project has in preview (FlexAttention).
+pub const PREVIEW_DOMAIN: &str = "ai.onnx.preview";
+
+/// FlexAttention (`ai.onnx.preview`, version 1): Q [B, Hq, L, D], K [B, Hkv, S, D] and
+/// V [B, Hkv, S, Dv], all rank 4, give Y [B, Hq, L, Dv] (ONNX operator specification). Its
+/// optional `score_mod` and `prob_mod` bodies each take and give the [B, Hq, L, S] scores;
+/// the driver seeds them (`flex_scores`) and adds their cost once each. MACs as Attention's.
+fn flex_attention(ctx: &Ctx) -> Inferred {
+    let q = ctx.dims_ref(0).ok_or("Q rank unknown")?;
+    let k = ctx.dims_ref(1).ok_or("K rank unknown")?;
+    let v = ctx.dims_ref(2).ok_or("V rank unknown")?;
+    if q.len() != 4 || k.len() != 4 || v.len() != 4 {
+        return Err(format!(
+            "Q, K, V of ranks {}, {}, {}; FlexAttention takes rank 4",
+            q.len(),
+            k.len(),
+            v.len()
+        ));
+    }
+    let y = vec![q[0].clone(), q[1].clone(), q[2].clone(), v[3].clone()];
+    Ok(smallvec::smallvec![tensor(ctx.dtype(0), Shape::of(y))])
+}
+
+/// The fact a FlexAttention body's input has: the scores [B, Hq, L, S], of the element type
+/// `softmax_precision` names (float32 by default, double for double inputs).
+pub fn flex_scores(node: &crate::ir::Node, inputs: &[Fact]) -> Fact {
+    let dims = |i: usize| inputs.get(i).and_then(|f| f.shape.dims());
+    let shape = match (dims(0), dims(1)) {
+        (Some(q), Some(k)) if q.len() == 4 && k.len() == 4 => {
+            Shape::of(vec![q[0].clone(), q[1].clone(), q[2].clone(), k[2].clone()])
+        }
+        _ => Shape::unknown(),
+    };
+    let dtype = match node.attr("softmax_precision") {
+        Some(crate::ir::AttrValue::Int(t)) => crate::ir::DType::from_onnx(*t as i32),
+        _ => match inputs.first().and_then(|f| f.dtype) {
+            Some(crate::ir::DType::F64) => Some(crate::ir::DType::F64),
+            _ => Some(crate::ir::DType::F32),
+        },
+    };
+    tensor(dtype, shape)
+}
+
 /// LinearAttention (opset 27): query (B, T, Hq·dk), key (B, T, ·), value (B, T, Hkv·dv), an
 /// optional past state (B, Hkv, dk, dv); the output is (B, T, Hq·dv) and the present state
 /// has the past state's shape (ONNX operator specification, LinearAttention-27).
@@ -684,6 +727,12 @@ pub static OPS: &[OpDef] = &[
     op!("", "Gemm", gemm, CostRule::Custom(gemm_macs)),
     op!("", "Einsum", einsum, CostRule::Custom(einsum_macs)),
     op!("", "Attention", attention, CostRule::Custom(attention_macs)),
+    op!(
+        PREVIEW_DOMAIN,
+        "FlexAttention",
+        flex_attention,
+        CostRule::Custom(attention_macs)
+    ),
     op!(
         "",
         "LinearAttention",

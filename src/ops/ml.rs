@@ -285,6 +285,51 @@ macro_rules! op {
     };
 }
 
+/// DictVectorizer-1: one map in, a 1-D tensor as long as the vocabulary out, of the map's
+/// value type (ONNX-ML operator specification: "the output array will be equal in length to
+/// the index mapping vector").
+fn dict_vectorizer(ctx: &Ctx) -> Inferred {
+    let length = match (ctx.node.attr("int64_vocabulary"), ctx.node.attr("string_vocabulary")) {
+        (Some(AttrValue::Ints(k)), None) => k.len(),
+        (None, Some(AttrValue::Strings(k))) => k.len(),
+        _ => return Err("needs exactly one of int64_vocabulary and string_vocabulary".into()),
+    };
+    let dtype = match ctx.fact(0).map(|f| (&f.value_type, f.dtype)) {
+        Some((ValueType::Map, dtype)) => dtype,
+        Some((ValueType::Tensor, None)) | None => None,
+        Some(_) => return Err("input is not a map".into()),
+    };
+    Ok(smallvec::smallvec![tensor(
+        dtype,
+        Shape::of(vec![Dim::Known(length as u64)])
+    )])
+}
+
+/// CastMap-1: a map keyed by int64 to a tensor of `cast_to`'s type, holding the map's values
+/// (DENSE: as many as the map has, which the data decides) or `max_map` slots (SPARSE). The
+/// specification gives the length, not the rank: the `[1, n]` layout is the one runtimes
+/// give, as I remember it (from memory).
+fn cast_map(ctx: &Ctx) -> Inferred {
+    let dtype = match ctx.string("cast_to").as_deref().unwrap_or("TO_FLOAT") {
+        "TO_FLOAT" => DType::F32,
+        "TO_STRING" => DType::Str,
+        "TO_INT64" => DType::I64,
+        other => return Err(format!("cast_to `{other}` is none of TO_FLOAT, TO_STRING, TO_INT64")),
+    };
+    let length = match ctx.string("map_form").as_deref().unwrap_or("DENSE") {
+        "DENSE" => super::shape_ops::data_dependent(ctx, "entries"),
+        "SPARSE" => match ctx.opt_int("max_map").unwrap_or(1) {
+            m if m > 0 => Dim::Known(m as u64),
+            m => return Err(format!("max_map {m} is not positive")),
+        },
+        other => return Err(format!("map_form `{other}` is neither DENSE nor SPARSE")),
+    };
+    Ok(smallvec::smallvec![tensor(
+        Some(dtype),
+        Shape::of(vec![Dim::Known(1), length])
+    )])
+}
+
 pub static OPS: &[OpDef] = &[
     op!("Binarizer", like_input, CostRule::PerOutput(1)),
     op!("Scaler", float_like_input, CostRule::PerOutput(2)),
@@ -303,4 +348,6 @@ pub static OPS: &[OpDef] = &[
     op!("TreeEnsembleClassifier", classifier, CostRule::Custom(tree_ops)),
     op!("TreeEnsemble", tree_ensemble, CostRule::Custom(tree_ops)),
     op!("ZipMap", zip_map, CostRule::Free),
+    op!("DictVectorizer", dict_vectorizer, CostRule::Free),
+    op!("CastMap", cast_map, CostRule::Free),
 ];

@@ -30,10 +30,12 @@ mod sequence;
 mod shape_ops;
 mod signal;
 mod strings;
+mod training;
 mod util;
 mod vision;
 
-pub use control_flow::{merge_reasons, taken_branch, ScanLayout};
+pub use control_flow::{merge_reasons, sequence_map_trips, taken_branch, ScanLayout};
+pub use matmul::flex_scores;
 pub use util::broadcast;
 
 use crate::ir::{ConstValue, Fact, Node};
@@ -192,6 +194,7 @@ static REGISTRY: &[&[OpDef]] = &[
     sequence::OPS,
     contrib::OPS,
     ml::OPS,
+    training::OPS,
 ];
 
 /// Looks an op up by domain and type (a hash index over the registry, built once).

@@ -261,7 +261,17 @@ fn optional(ctx: &Ctx) -> Inferred {
 }
 
 fn optional_get_element(ctx: &Ctx) -> Inferred {
-    Ok(smallvec::smallvec![element(ctx, 0)])
+    // From opset 18 the input may also be a tensor or a sequence, which is returned as it is
+    // (ONNX operator specification, OptionalGetElement-18): only an optional is unwrapped.
+    let out = match ctx.fact(0) {
+        Some(Fact {
+            value_type: ValueType::Optional(e),
+            ..
+        }) => (**e).clone(),
+        Some(f) => f.clone(),
+        None => Fact::default(),
+    };
+    Ok(smallvec::smallvec![out])
 }
 
 fn optional_has_element(_ctx: &Ctx) -> Inferred {

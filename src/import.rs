@@ -1922,7 +1922,7 @@ fn type_fact(cx: &Cx, name: &str, tp: &onnx::TypeProto) -> Result<Fact, ReadErro
         // A map's element type is its values' (as ZipMap's output carries it), where they are
         // tensors: DictVectorizer gives a tensor of that type.
         Some(T::MapType(m)) => Fact {
-            value_type: ValueType::Map,
+            value_type: ValueType::Map(DType::from_onnx(m.key_type)),
             dtype: match m.value_type.as_deref().and_then(|v| v.value.as_ref()) {
                 Some(T::TensorType(t)) => DType::from_onnx(t.elem_type),
                 _ => None,

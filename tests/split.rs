@@ -142,6 +142,59 @@ fn pieces_pass_the_onnx_full_check() {
     }
 }
 
+/// Pieces whose inputs or outputs are not tensors: a sequence, an optional, a sequence of maps
+/// (a classifier's ZipMap). Each piece declares them with their kind and element type, as the
+/// ONNX IR's `TypeProto` has them, and passes the `onnx` package's full check.
+#[test]
+fn pieces_keep_sequence_optional_and_map_types() {
+    if !python_onnx("pieces_keep_sequence_optional_and_map_types") {
+        return;
+    }
+    let d = tempfile::tempdir().expect("tmp");
+    let zipmap = d.path().join("grader_scores.onnx");
+    python(
+        "import sys, onnx\nfrom onnx import helper as h, TensorProto as T\n\
+         n = [h.make_node('LinearClassifier', ['x'], ['label', 'score'], domain='ai.onnx.ml', coefficients=[0.5] * 8, intercepts=[0.1, 0.2], classlabels_strings=['ripe', 'raw']),\n\
+              h.make_node('ZipMap', ['score'], ['scores'], domain='ai.onnx.ml', classlabels_strings=['ripe', 'raw'])]\n\
+         g = h.make_graph(n, 'g', [h.make_tensor_value_info('x', T.FLOAT, [3, 4])], [h.make_value_info('label', onnx.TypeProto()), h.make_value_info('scores', onnx.TypeProto())])\n\
+         onnx.save(h.make_model(g, opset_imports=[h.make_opsetid('', 17), h.make_opsetid('ai.onnx.ml', 3)]), sys.argv[1])",
+        &[zipmap.to_str().expect("utf8")],
+    );
+    let conformance = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/onnx-node");
+    let mut models = vec![zipmap];
+    for m in [
+        "test_split_to_sequence_1",
+        "test_sequence_insert_at_back",
+        "test_sequence_map_identity_1_sequence",
+        "test_optional_get_element_optional_sequence",
+        "test_identity_opt",
+        "test_if_opt",
+        "test_loop16_seq_none",
+    ] {
+        models.push(conformance.join(format!("{m}.onnx")));
+    }
+    for (k, model) in models.iter().enumerate() {
+        let out = d.path().join(format!("pieces{k}"));
+        let (code, _, err) = run(&[
+            "split",
+            model.to_str().expect("utf8"),
+            "--out",
+            out.to_str().expect("utf8"),
+            "--target",
+            "wide-array",
+        ]);
+        assert_eq!(code, 0, "{}: {err}", model.display());
+        let checked = python(
+            "import sys, glob, onnx\nfor p in sorted(glob.glob(sys.argv[1] + '/*.onnx')):\n    m = onnx.load(p)\n    onnx.checker.check_model(m, full_check=True)\n    print(*[o.type.WhichOneof('value') for o in m.graph.output])",
+            &[out.to_str().expect("utf8")],
+        );
+        assert!(!checked.trim().is_empty(), "{}: no pieces", model.display());
+        if k == 0 {
+            assert!(checked.contains("sequence_type"), "the ZipMap output: {checked}");
+        }
+    }
+}
+
 #[test]
 fn conformance_models_split_and_verify() {
     let have_python = python_onnx("conformance_models_split_and_verify");

@@ -107,7 +107,8 @@ pub enum ValueType {
     /// A sequence, boxed whole: every value's fact carries a `ValueType`, and few are
     /// sequences (inline, its parts made each fact 16 bytes larger).
     Sequence(Box<SequenceFact>),
-    Map,
+    /// A map, with its key type where known (the fact's `dtype` is its values' type).
+    Map(Option<DType>),
     Optional(Box<Fact>),
 }
 
@@ -172,7 +173,7 @@ impl Fact {
                 .iter()
                 .try_fold(0u64, |acc, e| acc.checked_add(e.bytes()?)),
             ValueType::Optional(inner) => inner.bytes(),
-            ValueType::SparseTensor | ValueType::Map => None,
+            ValueType::SparseTensor | ValueType::Map(_) => None,
         }
     }
 
@@ -182,7 +183,7 @@ impl Fact {
         match &self.value_type {
             ValueType::Sequence(s) => s.elements.as_ref().is_some_and(|es| es.iter().all(Fact::is_concrete)),
             ValueType::Optional(inner) => inner.is_concrete(),
-            ValueType::Tensor | ValueType::SparseTensor | ValueType::Map => self.shape.is_concrete(),
+            ValueType::Tensor | ValueType::SparseTensor | ValueType::Map(_) => self.shape.is_concrete(),
         }
     }
 
@@ -192,7 +193,9 @@ impl Fact {
         match &self.value_type {
             ValueType::Sequence(s) => s.elements.as_ref()?.iter().find_map(Fact::first_unknown),
             ValueType::Optional(inner) => inner.first_unknown(),
-            ValueType::Tensor | ValueType::SparseTensor | ValueType::Map => (!self.shape.is_concrete()).then_some(self),
+            ValueType::Tensor | ValueType::SparseTensor | ValueType::Map(_) => {
+                (!self.shape.is_concrete()).then_some(self)
+            }
         }
     }
 }

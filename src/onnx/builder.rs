@@ -57,9 +57,53 @@ pub fn value_info(name: &str, dtype: DType, dims: &[DimSpec]) -> ValueInfoProto 
 }
 
 /// A `ValueInfoProto` from an inferred fact: known dims as values, symbols as params, unknown
-/// dims (and unknown ranks) left open.
+/// dims (and unknown ranks) left open. Sequences, optionals, maps and sparse tensors keep their
+/// kind (ONNX IR `TypeProto`), so that a piece whose input or output is one stays valid.
 pub fn value_info_fact(name: &str, fact: &crate::ir::Fact) -> ValueInfoProto {
-    let shape = fact.shape.dims().map(|d| TensorShapeProto {
+    ValueInfoProto {
+        name: name.into(),
+        r#type: Some(type_of_fact(fact)),
+        ..Default::default()
+    }
+}
+
+fn type_of_fact(fact: &crate::ir::Fact) -> TypeProto {
+    use crate::ir::ValueType;
+    let elem_type = fact.dtype.map(DType::onnx_code).unwrap_or(0);
+    let value = match &fact.value_type {
+        ValueType::Tensor => type_proto::Value::TensorType(type_proto::Tensor {
+            elem_type,
+            shape: shape_proto(&fact.shape),
+        }),
+        ValueType::SparseTensor => type_proto::Value::SparseTensorType(type_proto::SparseTensor {
+            elem_type,
+            shape: shape_proto(&fact.shape),
+        }),
+        ValueType::Sequence(s) => type_proto::Value::SequenceType(Box::new(type_proto::Sequence {
+            elem_type: Some(Box::new(type_of_fact(&s.element))),
+        })),
+        ValueType::Optional(inner) => type_proto::Value::OptionalType(Box::new(type_proto::Optional {
+            elem_type: Some(Box::new(type_of_fact(inner))),
+        })),
+        ValueType::Map(key) => type_proto::Value::MapType(Box::new(type_proto::Map {
+            key_type: key.map(DType::onnx_code).unwrap_or(0),
+            value_type: Some(Box::new(TypeProto {
+                value: Some(type_proto::Value::TensorType(type_proto::Tensor {
+                    elem_type,
+                    shape: None,
+                })),
+                denotation: String::new(),
+            })),
+        })),
+    };
+    TypeProto {
+        value: Some(value),
+        denotation: String::new(),
+    }
+}
+
+fn shape_proto(shape: &crate::ir::Shape) -> Option<TensorShapeProto> {
+    shape.dims().map(|d| TensorShapeProto {
         dim: d
             .iter()
             .map(|x| tensor_shape_proto::Dimension {
@@ -76,18 +120,7 @@ pub fn value_info_fact(name: &str, fact: &crate::ir::Fact) -> ValueInfoProto {
                 denotation: String::new(),
             })
             .collect(),
-    });
-    ValueInfoProto {
-        name: name.into(),
-        r#type: Some(TypeProto {
-            value: Some(type_proto::Value::TensorType(type_proto::Tensor {
-                elem_type: fact.dtype.map(DType::onnx_code).unwrap_or(0),
-                shape,
-            })),
-            denotation: String::new(),
-        }),
-        ..Default::default()
-    }
+    })
 }
 
 /// A tensor whose payload is `raw` (little-endian, sub-byte types packed low nibble first).

@@ -205,10 +205,18 @@ fn tree_ensemble(ctx: &Ctx) -> Inferred {
     )])
 }
 
-/// ZipMap-1: a sequence of maps (label → score), one per example.
-fn zip_map(_ctx: &Ctx) -> Inferred {
+/// ZipMap-1: a sequence of maps (label → score), one per example, keyed by the labels' type.
+fn zip_map(ctx: &Ctx) -> Inferred {
+    let key = match (
+        ctx.node.attr("classlabels_int64s"),
+        ctx.node.attr("classlabels_strings"),
+    ) {
+        (Some(_), None) => Some(DType::I64),
+        (None, Some(_)) => Some(DType::Str),
+        _ => None,
+    };
     let map = Fact {
-        value_type: ValueType::Map,
+        value_type: ValueType::Map(key),
         dtype: Some(DType::F32),
         shape: Shape::unknown(),
     };
@@ -295,7 +303,7 @@ fn dict_vectorizer(ctx: &Ctx) -> Inferred {
         _ => return Err("needs exactly one of int64_vocabulary and string_vocabulary".into()),
     };
     let dtype = match ctx.fact(0).map(|f| (&f.value_type, f.dtype)) {
-        Some((ValueType::Map, dtype)) => dtype,
+        Some((ValueType::Map(_), dtype)) => dtype,
         Some((ValueType::Tensor, None)) | None => None,
         Some(_) => return Err("input is not a map".into()),
     };

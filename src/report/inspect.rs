@@ -219,7 +219,7 @@ fn dtype_name(f: &Fact) -> Option<std::borrow::Cow<'static, str>> {
             "optional({})",
             inner.dtype.map(DType::name).unwrap_or("?")
         ))),
-        ValueType::Map => Some(Cow::Borrowed("map")),
+        ValueType::Map(_) => Some(Cow::Borrowed("map")),
     }
 }
 

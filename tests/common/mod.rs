@@ -267,3 +267,19 @@ pub fn function_model(dir: &Path) -> PathBuf {
     });
     write(dir, "scale_shift.onnx", &m)
 }
+
+/// Reads, imports and infers a model, which must know every op it has and size what each
+/// op's rule gives (no `op-unknown` or `shape-failed` finding).
+pub fn read_known(path: &Path) -> tilecut::Analyzed {
+    let read = tilecut::read_model(path, &Default::default()).expect("reads");
+    assert!(
+        !read
+            .diags
+            .iter()
+            .any(|d| d.code == "op-unknown" || d.code == "shape-failed"),
+        "{}: {:?}",
+        path.display(),
+        read.diags
+    );
+    read
+}

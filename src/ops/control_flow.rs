@@ -328,16 +328,17 @@ fn scan(ctx: &Ctx) -> Inferred {
 /// where the input's elements are tracked, the outputs' are too, so their count carries on.
 fn sequence_map(ctx: &Ctx) -> Inferred {
     let body = ctx.body_outputs.first().ok_or("SequenceMap without body")?;
-    let count = match ctx.fact(0).map(|f| &f.value_type) {
-        Some(ValueType::Sequence(s)) => s.elements.as_ref().map(Vec::len),
-        Some(ValueType::Tensor) if ctx.fact(0).is_some_and(|f| f.dtype.is_some()) => {
-            return Err("input_sequence is a tensor, not a sequence".into())
-        }
-        _ => None,
-    };
+    if ctx
+        .fact(0)
+        .is_some_and(|f| f.value_type == ValueType::Tensor && f.dtype.is_some())
+    {
+        return Err("input_sequence is a tensor, not a sequence".into());
+    }
     // Element facts are copied per output: a node with very many outputs (a hostile file)
     // keeps only the common element fact.
-    let count = count.filter(|n| n.saturating_mul(ctx.outputs()) <= 16 * MAX_TRACKED_ELEMENTS);
+    let count = sequence_map_trips(ctx)
+        .and_then(|n| usize::try_from(n).ok())
+        .filter(|n| n.saturating_mul(ctx.outputs()) <= 16 * MAX_TRACKED_ELEMENTS);
     Ok((0..ctx.outputs())
         .map(|j| {
             let element = body.get(j).cloned().unwrap_or_default();

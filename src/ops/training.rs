@@ -33,11 +33,8 @@ fn updated(ctx: &Ctx, groups: usize, outputs_from: &[usize]) -> Inferred {
         .collect())
 }
 
-fn adagrad(ctx: &Ctx) -> Inferred {
-    updated(ctx, 3, &[0, 2])
-}
-
-fn momentum(ctx: &Ctx) -> Inferred {
+/// Adagrad (X, G, H → X_new, H_new) and Momentum (X, G, V → X_new, V_new): one state list.
+fn one_state(ctx: &Ctx) -> Inferred {
     updated(ctx, 3, &[0, 2])
 }
 
@@ -113,8 +110,8 @@ macro_rules! op {
 }
 
 pub static OPS: &[OpDef] = &[
-    op!("Adagrad", adagrad, adagrad_cost),
-    op!("Momentum", momentum, momentum_cost),
+    op!("Adagrad", one_state, adagrad_cost),
+    op!("Momentum", one_state, momentum_cost),
     op!("Adam", adam, adam_cost),
     op!("Gradient", gradient, gradient_cost),
 ];

@@ -87,13 +87,11 @@ fn type_of_fact(fact: &crate::ir::Fact) -> TypeProto {
         })),
         ValueType::Map(key) => type_proto::Value::MapType(Box::new(type_proto::Map {
             key_type: key.map(DType::onnx_code).unwrap_or(0),
-            value_type: Some(Box::new(TypeProto {
-                value: Some(type_proto::Value::TensorType(type_proto::Tensor {
-                    elem_type,
-                    shape: None,
-                })),
-                denotation: String::new(),
-            })),
+            // The values' type: the fact's element type, as a tensor of any shape.
+            value_type: Some(Box::new(type_of_fact(&crate::ir::Fact::tensor(
+                fact.dtype,
+                crate::ir::Shape::unknown(),
+            )))),
         })),
     };
     TypeProto {

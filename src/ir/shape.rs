@@ -756,10 +756,19 @@ impl Shape {
             if out.iter().any(|x| x.addr() == s.addr()) {
                 continue;
             }
+            // The last plain symbol met on this thread: a graph with a symbolic batch asks
+            // this of every node's tensors, and one address compare spares scanning its text.
+            thread_local!(static LAST_PLAIN: std::cell::Cell<usize> = const { std::cell::Cell::new(0) });
+            if LAST_PLAIN.get() == s.addr() {
+                out.push(s.clone());
+                continue;
+            }
             // A dash may be a name's own (`seq-len`) or take away (`T-2`): not simple.
             let simple = !s.contains(['*', '+', '(', ')', '/', '-', '%']);
             if simple {
-                if !out.iter().any(|x| x == s) && s.parse::<u64>().is_err() {
+                // Interned: a name equal to one in `out` would have matched its address above.
+                if s.parse::<u64>().is_err() {
+                    LAST_PLAIN.set(s.addr());
                     out.push(s.clone());
                 }
             } else {

@@ -1160,10 +1160,10 @@ fn prepared_room<T: Send + 'static>(n: usize) -> Option<std::thread::JoinHandle<
 
 /// Makes the kernel map (and clear) every page of `bytes`, memory not yet written (a
 /// vector's spare capacity), now and on the calling thread, so that whoever writes it later
-/// meets no page fault. One `madvise(MADV_POPULATE_WRITE)` over the whole pages took about
-/// 1.7 µs a page on the development machine against 2.8 µs for a write to each (an
-/// 11,264-page probe, three runs each), and about 2-4 ms off a whole `inspect` of the
-/// 100k-node stack (alternating runs); a kernel without it (before Linux 5.14) refuses the
+/// meets no page fault. One `madvise(MADV_POPULATE_WRITE)` over the whole pages took
+/// 1.6–1.7 µs a page on the development machine against 2.5–2.8 µs for a write to each (an
+/// 11,264-page probe), and 2–4 ms off a whole `inspect` of the 100k-node stack (alternating
+/// runs; README, "Twentieth session"); a kernel without it (before Linux 5.14) refuses the
 /// call, and then each page is written once. The partial pages at either end get one byte
 /// written, as the fallback writes one a page.
 fn prefault(bytes: &mut [std::mem::MaybeUninit<u8>]) {
@@ -1178,11 +1178,11 @@ fn prefault(bytes: &mut [std::mem::MaybeUninit<u8>]) {
             // maps pages and changes no byte of them (a page already mapped is left as it is).
             let r = unsafe { libc::madvise((start + first) as *mut libc::c_void, whole, libc::MADV_POPULATE_WRITE) };
             if r == 0 {
-                if let Some(head) = bytes.get_mut(..first) {
-                    head.iter_mut().take(1).for_each(|b| *b = std::mem::MaybeUninit::new(0));
-                }
-                if let Some(tail) = bytes.get_mut(first + whole..) {
-                    tail.iter_mut().take(1).for_each(|b| *b = std::mem::MaybeUninit::new(0));
+                // The first byte and the first past the whole pages: in the partial pages.
+                for i in [0, first + whole] {
+                    if let Some(b) = bytes.get_mut(i) {
+                        *b = std::mem::MaybeUninit::new(0);
+                    }
                 }
                 return;
             }

@@ -1868,7 +1868,7 @@ fn declared_fact(cx: &mut Cx, vi: &onnx::ValueInfoProto, apply_overrides: bool) 
             }
             fact.shape = Shape::of(dims.clone());
         }
-        if let Some(dims) = fact.shape.0.as_mut() {
+        if let Some(dims) = fact.shape.0.as_mut().map(std::sync::Arc::make_mut) {
             for (axis, d) in dims.iter_mut().enumerate() {
                 match d {
                     Dim::Sym(s) => {

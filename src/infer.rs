@@ -911,7 +911,7 @@ fn fill_from(fact: &Fact, decl: &Fact, fixable: &BTreeSet<String>) -> Fact {
     };
     let dtype = fact.dtype.or(decl.dtype);
     let shape = match (fact.shape.dims(), decl.shape.dims()) {
-        (None, Some(y)) => Shape::of(y.iter().map(declared).collect()),
+        (None, Some(y)) => Shape::of(y.iter().map(declared).collect::<crate::ir::DimVec>()),
         (Some(x), Some(y)) if x.len() == y.len() => Shape::of(
             x.iter()
                 .zip(y)
@@ -919,7 +919,7 @@ fn fill_from(fact: &Fact, decl: &Fact, fixable: &BTreeSet<String>) -> Fact {
                     Dim::Unknown => declared(q),
                     p => p.clone(),
                 })
-                .collect(),
+                .collect::<crate::ir::DimVec>(),
         ),
         _ => fact.shape.clone(),
     };
@@ -1065,8 +1065,13 @@ fn node_cost(ctx: &Ctx, rule: Option<CostRule>, outs: &[Fact], bodies: &[MacsOps
         needs.push(crate::ir::Name::from(format!("trips@{}", ctx.node.name)));
     }
     if macs.is_none() || ops_.is_none() {
+        // A shape passed on from an input is the input's own allocation: read once.
+        let mut read: smallvec::SmallVec<[&crate::ir::Shape; 6]> = smallvec::SmallVec::new();
         for f in ctx.inputs.iter().flatten().copied().chain(outs.iter()) {
-            f.shape.symbols_into(&mut needs);
+            if !read.iter().any(|s| s.same_alloc(&f.shape)) {
+                f.shape.symbols_into(&mut needs);
+                read.push(&f.shape);
+            }
         }
         needs.sort();
         needs.dedup();

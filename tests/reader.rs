@@ -2559,3 +2559,46 @@ fn sizes_read_from_values_name_the_inputs_to_set() {
     assert!(!r.contains_key("r") && !r.contains_key("y"), "{r:?}");
     assert_eq!(r["data_sized"], "sized by the value of `n`, computed at run time");
 }
+
+/// An op whose output has its input's shape (Relu, ONNX operator specification: "Y" has the
+/// shape of "X"; Add of two equal shapes, "Broadcasting in ONNX") passes the input's shape on
+/// as the same allocation, not a copy; an op that changes the shape (Transpose, with `perm`)
+/// gets a shape of its own, with the dims the specification gives; a broadcast that widens
+/// (Mul by `[1, 3, 1, 1]`) is the wider shape.
+#[test]
+fn shapes_passed_on_are_shared_not_copied() {
+    use tilecut::ir::{DType, Dim, Shape};
+    use tilecut::onnx::builder::{attr, ModelBuilder};
+    let d = tmp();
+    let mut m = ModelBuilder::new("shared", 17);
+    m.graph
+        .input("x", DType::F32, &["batch".into(), 3.into(), 8.into(), 8.into()]);
+    m.graph.initializer(f32_init("gain", &[1, 3, 1, 1]));
+    m.graph.node("Relu", &["x"], &["r"]);
+    m.graph.node("Add", &["r", "r"], &["s"]);
+    m.graph.node("Mul", &["gain", "s"], &["g"]);
+    m.graph
+        .node("Transpose", &["g"], &["t"])
+        .attribute
+        .push(attr::ints("perm", &[0, 2, 3, 1]));
+    m.graph.output("t", DType::F32, &[]);
+    let p = d.path().join("shared.onnx");
+    std::fs::write(&p, m.encode()).expect("write");
+    let read = tilecut::read_model(&p, &Default::default()).expect("reads");
+    let g = &read.model.graph;
+    let shape = |name: &str| -> &Shape {
+        let v = g.values.iter().find(|v| v.name.as_str() == name).expect(name);
+        &v.fact.shape
+    };
+    let nchw = Shape::of([Dim::sym("batch"), Dim::Known(3), Dim::Known(8), Dim::Known(8)]);
+    for name in ["x", "r", "s", "g"] {
+        assert_eq!(shape(name), &nchw, "{name}");
+    }
+    assert!(shape("r").same_alloc(shape("x")));
+    assert!(shape("s").same_alloc(shape("r")));
+    assert_eq!(
+        shape("t"),
+        &Shape::of([Dim::sym("batch"), Dim::Known(8), Dim::Known(8), Dim::Known(3)])
+    );
+    assert!(!shape("t").same_alloc(shape("g")));
+}

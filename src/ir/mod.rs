@@ -10,7 +10,7 @@ mod text;
 
 pub use dtype::DType;
 pub use name::Name;
-pub use shape::{compact_expression, evaluate, rank_within_limit, Dim, Shape, MAX_RANK};
+pub use shape::{compact_expression, evaluate, rank_within_limit, Dim, DimVec, Shape, MAX_RANK};
 pub use text::Text;
 
 use bytes::Bytes;

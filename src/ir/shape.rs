@@ -692,10 +692,16 @@ pub fn evaluate(text: &str, value: &dyn Fn(&str) -> Option<u64>) -> Result<Optio
     Ok(v)
 }
 
-/// A shape: `None` when even the rank is unknown. A boxed slice (16 bytes, not a vector's
-/// 24): every value's fact holds one, and shapes are made whole, never grown in place.
+/// Dims gathered on the stack before they become a `Shape` (`Shape::of_dims`): ranks above
+/// six are rare enough to spill.
+pub type DimVec = smallvec::SmallVec<[Dim; 6]>;
+
+/// A shape: `None` when even the rank is unknown. A shared slice (16 bytes, not a vector's
+/// 24): every value's fact holds one, shapes are made whole, never grown in place, and most
+/// ops of a model (activations, normalizations, element-wise ops on equal shapes, Q/DQ
+/// pairs) give their output the shape of an input, which is then the same allocation.
 #[derive(Clone, Debug, PartialEq, Eq, Hash)]
-pub struct Shape(pub Option<Box<[Dim]>>);
+pub struct Shape(pub Option<std::sync::Arc<[Dim]>>);
 
 impl Shape {
     pub fn unknown() -> Shape {
@@ -706,17 +712,27 @@ impl Shape {
         Shape(Some(dims.iter().map(|&d| Dim::Known(d)).collect()))
     }
 
-    pub fn of(dims: Vec<Dim>) -> Shape {
-        Shape(Some(dims.into_boxed_slice()))
+    /// A shape of these dims, in one allocation of its own. Dims gathered on the stack (an
+    /// array, a `DimVec`) cost nothing more; a vector is copied once more and freed.
+    pub fn of(dims: impl AsRef<[Dim]>) -> Shape {
+        Shape(Some(dims.as_ref().into()))
+    }
+
+    /// Whether two shapes are one allocation (a cheap "equal" for shapes passed on).
+    pub fn same_alloc(&self, other: &Shape) -> bool {
+        match (&self.0, &other.0) {
+            (Some(a), Some(b)) => std::sync::Arc::ptr_eq(a, b),
+            _ => false,
+        }
     }
 
     pub fn scalar() -> Shape {
-        Shape(Some(Box::default()))
+        Shape(Some(std::sync::Arc::new([])))
     }
 
     /// Unknown dims of a known rank.
     pub fn of_rank(rank: usize) -> Shape {
-        Shape(Some(vec![Dim::Unknown; rank].into_boxed_slice()))
+        Shape(Some(std::iter::repeat_n(Dim::Unknown, rank).collect()))
     }
 
     pub fn dims(&self) -> Option<&[Dim]> {
@@ -749,7 +765,7 @@ impl Shape {
     /// Adds the symbols that keep this shape from being concrete to `out`, skipping those
     /// already there (a shared `Name`, no allocation: large graphs repeat one `batch`).
     pub fn symbols_into(&self, out: &mut super::NameList) {
-        for d in self.0.iter().flatten() {
+        for d in self.dims().unwrap_or_default() {
             let Dim::Sym(s) = d else { continue };
             // Dims copied from one another share their text: most repeats end here, before
             // any scan of the text.
@@ -783,7 +799,7 @@ impl Shape {
 
     /// Symbols that keep this shape from being concrete.
     pub fn symbols(&self) -> Vec<String> {
-        let mut out: Vec<String> = self.0.iter().flatten().flat_map(Dim::symbols).collect();
+        let mut out: Vec<String> = self.dims().unwrap_or_default().iter().flat_map(Dim::symbols).collect();
         out.sort();
         out.dedup();
         out

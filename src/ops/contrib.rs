@@ -135,7 +135,7 @@ fn qgemm(ctx: &Ctx) -> Inferred {
     } else {
         Some(DType::F32)
     };
-    Ok(smallvec::smallvec![tensor(dt, Shape::of(vec![m.clone(), n.clone()]))])
+    Ok(smallvec::smallvec![tensor(dt, Shape::of([m.clone(), n.clone()]))])
 }
 
 /// NhwcConv MACs: every output element takes (C/group)·∏kernel, W being [M, C/group, k…].
@@ -157,10 +157,10 @@ fn embed_layer_norm(ctx: &Ctx) -> Inferred {
     }
     let h = ctx.dims(2).and_then(|w| w.get(1).cloned()).unwrap_or(Dim::Unknown);
     let dt = ctx.dtype(2);
-    let hidden = Shape::of(vec![ids[0].clone(), ids[1].clone(), h]);
+    let hidden = Shape::of([ids[0].clone(), ids[1].clone(), h]);
     let mut outs = vec![
         tensor(dt, hidden.clone()),
-        tensor(Some(DType::I32), Shape::of(vec![ids[0].clone()])),
+        tensor(Some(DType::I32), Shape::of([ids[0].clone()])),
     ];
     if ctx.outputs() > 2 {
         outs.push(tensor(dt, hidden));
@@ -189,11 +189,11 @@ fn group_query_attention(ctx: &Ctx) -> Inferred {
     let out_hidden = head_size.map_or(Dim::Unknown, |d| Dim::Known(d * heads));
     let dt = ctx.dtype(0);
     let length = gqa_cache_length(ctx).map_or(Dim::Unknown, Dim::Known);
-    let mut outs = vec![tensor(dt, Shape::of(vec![q[0].clone(), q[1].clone(), out_hidden]))];
+    let mut outs = vec![tensor(dt, Shape::of([q[0].clone(), q[1].clone(), out_hidden]))];
     for _ in 1..ctx.outputs() {
         outs.push(tensor(
             dt,
-            Shape::of(vec![
+            Shape::of([
                 q[0].clone(),
                 Dim::Known(kv_heads),
                 length.clone(),
@@ -245,7 +245,7 @@ fn bias_split_gelu(ctx: &Ctx) -> Inferred {
     };
     Ok(smallvec::smallvec![tensor(
         ctx.dtype(0),
-        Shape::of(vec![x[0].clone(), x[1].clone(), half]),
+        Shape::of([x[0].clone(), x[1].clone(), half]),
     )])
 }
 
@@ -292,7 +292,7 @@ fn same(ctx: &Ctx) -> Inferred {
 fn decoder_masked_mha(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(0);
     let out = match (ctx.dims(0), ctx.has_input(2).then(|| ctx.dims(2)).flatten()) {
-        (Some(q), Some(v)) if q.len() == 3 && v.len() == 3 => Shape::of(vec![q[0].clone(), q[1].clone(), v[2].clone()]),
+        (Some(q), Some(v)) if q.len() == 3 && v.len() == 3 => Shape::of([q[0].clone(), q[1].clone(), v[2].clone()]),
         _ => ctx.shape(0),
     };
     let mut outs = vec![tensor(dt, out)];
@@ -407,7 +407,7 @@ fn cdist(ctx: &Ctx) -> Inferred {
     }
     Ok(smallvec::smallvec![tensor(
         ctx.dtype(0),
-        Shape::of(vec![m.clone(), n.clone()])
+        Shape::of([m.clone(), n.clone()])
     )])
 }
 
@@ -435,7 +435,7 @@ fn crop_and_resize(ctx: &Ctx) -> Inferred {
     };
     Ok(smallvec::smallvec![tensor(
         ctx.dtype(0),
-        Shape::of(vec![rois, x[1].clone(), h, w])
+        Shape::of([rois, x[1].clone(), h, w])
     )])
 }
 
@@ -505,14 +505,14 @@ fn decoding(ctx: &Ctx) -> Inferred {
         let returned = value(4);
         outs.push(tensor(
             Some(DType::I32),
-            Shape::of(vec![batch.clone(), returned.clone(), max_length]),
+            Shape::of([batch.clone(), returned.clone(), max_length]),
         ));
-        outs.push(tensor(None, Shape::of(vec![batch, returned])));
+        outs.push(tensor(None, Shape::of([batch, returned])));
         outs.push(tensor(None, Shape::of_rank(3)));
     } else {
-        outs.push(tensor(Some(DType::I32), Shape::of(vec![batch.clone(), max_length])));
+        outs.push(tensor(Some(DType::I32), Shape::of([batch.clone(), max_length])));
         if ctx.node.op_type.as_str() == "Sampling" {
-            outs.push(tensor(None, Shape::of(vec![batch, Dim::Unknown])));
+            outs.push(tensor(None, Shape::of([batch, Dim::Unknown])));
         }
     }
     fitted(ctx, outs)

@@ -14,7 +14,7 @@ pub(super) fn merge(a: &Fact, b: &Fact) -> Fact {
             x.iter()
                 .zip(y)
                 .map(|(p, q)| if p == q { p.clone() } else { Dim::Unknown })
-                .collect(),
+                .collect::<crate::ir::DimVec>(),
         ),
         _ => Shape::unknown(),
     };

@@ -1,7 +1,7 @@
 //! Convolutions and pools: spatial output sizes from kernel, stride, dilation and padding
 //! (ONNX operator spec, Conv / ConvTranspose / MaxPool / AveragePool), and MAC counts.
 
-use crate::ir::{DType, Dim, Fact, Shape};
+use crate::ir::{DType, Dim, DimVec, Fact, Shape};
 
 use super::util::{count, tensor};
 use super::{CostRule, Ctx, Inferred, MacsOps, OpDef};
@@ -186,7 +186,7 @@ pub(super) fn conv(ctx: &Ctx) -> Inferred {
         .and_then(|w| w.get(2..).map(|k| k.iter().map(Dim::known).collect::<Option<Vec<_>>>()))
         .flatten();
     let win = window(ctx, x.len() - 2, kernel)?;
-    let mut out = vec![
+    let mut out: DimVec = smallvec::smallvec![
         x[0].clone(),
         wdims.as_ref().and_then(|w| w.first().cloned()).unwrap_or(Dim::Unknown),
     ];
@@ -227,7 +227,7 @@ pub(super) fn conv_transpose(ctx: &Ctx) -> Inferred {
         .transpose()?
         .unwrap_or(Dim::Unknown);
     let out_pad = ctx.ints("output_padding").unwrap_or_else(|| vec![0; spatial]);
-    let mut out = vec![x[0].clone(), cout];
+    let mut out: DimVec = smallvec::smallvec![x[0].clone(), cout];
     if let Some(shape) = ctx.ints("output_shape") {
         let s = &shape[shape.len().saturating_sub(spatial)..];
         out.extend(s.iter().map(|&v| Dim::Known(v.max(0) as u64)));
@@ -278,7 +278,7 @@ pub(super) fn pool(ctx: &Ctx) -> Inferred {
     }
     let win = window(ctx, x.len() - 2, None)?;
     let ceil_mode = ctx.int("ceil_mode", 0) != 0;
-    let mut out = vec![x[0].clone(), x[1].clone()];
+    let mut out: DimVec = smallvec::smallvec![x[0].clone(), x[1].clone()];
     out.extend(conv_spatial(ctx, &x, &win, ceil_mode)?);
     let shape = Shape::of(out);
     let mut outs = vec![tensor(ctx.dtype(0), shape.clone())];
@@ -293,7 +293,7 @@ fn global_pool(ctx: &Ctx) -> Inferred {
     if x.len() < 2 {
         return Err(format!("input of rank {}", x.len()));
     }
-    let mut out = vec![x[0].clone(), x[1].clone()];
+    let mut out: DimVec = smallvec::smallvec![x[0].clone(), x[1].clone()];
     out.extend(std::iter::repeat_n(Dim::Known(1), x.len() - 2));
     Ok(smallvec::smallvec![tensor(ctx.dtype(0), Shape::of(out))])
 }
@@ -314,7 +314,7 @@ fn max_unpool(ctx: &Ctx) -> Inferred {
     }
     let spatial = x.len() - 2;
     let win = window(ctx, spatial, None)?;
-    let mut out = vec![x[0].clone(), x[1].clone()];
+    let mut out: DimVec = smallvec::smallvec![x[0].clone(), x[1].clone()];
     for i in 0..spatial {
         out.push(match x[2 + i] {
             Dim::Known(n) => {
@@ -395,7 +395,7 @@ fn causal_conv_with_state(ctx: &Ctx) -> Inferred {
             },
         };
         let state = match x.dims() {
-            Some(d) => Shape::of(vec![d[0].clone(), d[1].clone(), carried]),
+            Some(d) => Shape::of([d[0].clone(), d[1].clone(), carried]),
             None => Shape::of_rank(3),
         };
         outs.push(tensor(ctx.dtype(0), state));

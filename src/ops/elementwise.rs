@@ -57,10 +57,7 @@ fn multinomial(ctx: &Ctx) -> Inferred {
     };
     let samples = u64::try_from(ctx.int("sample_size", 1)).map_err(|_| "negative sample_size")?;
     let dt = DType::from_onnx(ctx.int("dtype", 6) as i32);
-    Ok(smallvec::smallvec![tensor(
-        dt,
-        Shape::of(vec![batch, Dim::Known(samples)])
-    )])
+    Ok(smallvec::smallvec![tensor(dt, Shape::of([batch, Dim::Known(samples)]))])
 }
 
 /// SwiGLU (opset 28): Swish(A)·B over two inputs of identical shape, no broadcasting (ONNX
@@ -76,7 +73,7 @@ fn swiglu(ctx: &Ctx) -> Inferred {
             return Err(format!("A {a} and B {b} differ; SwiGLU does not broadcast"));
         }
         // Where A's dim is not known, B's may be.
-        let merged = x
+        let merged: crate::ir::DimVec = x
             .iter()
             .zip(y)
             .map(|(p, q)| {
@@ -99,9 +96,7 @@ fn swiglu(ctx: &Ctx) -> Inferred {
 }
 
 fn unary(ctx: &Ctx) -> Inferred {
-    let mut outs = vec![same_as(ctx, 0)];
-    outs.truncate(ctx.outputs().max(1));
-    Ok(outs.into())
+    Ok(smallvec::smallvec![same_as(ctx, 0)])
 }
 
 fn to_bool(ctx: &Ctx) -> Inferred {

@@ -2,7 +2,7 @@
 
 use std::collections::BTreeMap;
 
-use crate::ir::{DType, Dim, Fact, Shape};
+use crate::ir::{DType, Dim, DimVec, Fact, Shape};
 
 use super::util::{broadcast, broadcast_dims, count, tensor};
 use super::{CostRule, Ctx, Inferred, MacsOps, OpDef, CONTRIB_DOMAIN};
@@ -18,7 +18,7 @@ fn ab(ctx: &Ctx) -> (usize, usize, Option<DType>) {
 }
 
 /// numpy matmul shape: 1-D operands are promoted and the added dim removed afterwards.
-pub fn matmul_shape(a: &[Dim], b: &[Dim]) -> Result<Vec<Dim>, String> {
+pub fn matmul_shape(a: &[Dim], b: &[Dim]) -> Result<DimVec, String> {
     // A 1-D operand is a row (A) or a column (B) whose added dim is dropped again: its inner
     // dim is its only one and it has no batch dims.
     let (m, ka, a_batch) = match a {
@@ -36,8 +36,15 @@ pub fn matmul_shape(a: &[Dim], b: &[Dim]) -> Result<Vec<Dim>, String> {
             return Err(format!("inner dims differ: {x} vs {y}"));
         }
     }
-    // Multidirectional broadcasting of the batch dims, aligned at the right.
-    let mut out = broadcast_dims([a_batch, b_batch].into_iter(), 2)?;
+    // Multidirectional broadcasting of the batch dims, aligned at the right. Most MatMuls
+    // multiply by a weight matrix (no batch dims) or by an operand of the same batch.
+    let mut out = if b_batch.is_empty() || a_batch == b_batch {
+        let mut out = DimVec::with_capacity(a_batch.len() + 2);
+        out.extend(a_batch.iter().cloned());
+        out
+    } else {
+        broadcast_dims([a_batch, b_batch].into_iter(), 2)?
+    };
     out.extend(m.cloned());
     out.extend(n.cloned());
     Ok(out)
@@ -55,8 +62,8 @@ fn matmul_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
     let (ia, _, _) = ab(ctx);
     let macs = (|| {
         let y = outs.first()?.shape.element_count()?;
-        let a = ctx.shape(ia).concrete()?;
-        y.checked_mul(*a.last()?)
+        let k = ctx.dims_ref(ia)?.last()?.known()?;
+        y.checked_mul(k)
     })();
     (macs, Some(0))
 }
@@ -82,7 +89,7 @@ pub(super) fn gemm(ctx: &Ctx) -> Inferred {
     } else {
         b[1].clone()
     };
-    Ok(smallvec::smallvec![tensor(ctx.dtype(0), Shape::of(vec![m, n]))])
+    Ok(smallvec::smallvec![tensor(ctx.dtype(0), Shape::of([m, n]))])
 }
 
 pub(super) fn gemm_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
@@ -162,7 +169,7 @@ fn einsum_sizes(ctx: &Ctx) -> Result<EinsumSizes, String> {
         let mut pos = 0;
         for &c in term {
             if c == '.' {
-                ellipsis = broadcast(&[ellipsis, Shape::of(dims[pos..pos + ell_rank].to_vec())])?;
+                ellipsis = broadcast(&[ellipsis, Shape::of(&dims[pos..pos + ell_rank])])?;
                 pos += ell_rank;
             } else {
                 let d = &dims[pos];
@@ -179,7 +186,7 @@ fn einsum_sizes(ctx: &Ctx) -> Result<EinsumSizes, String> {
             }
         }
     }
-    Ok((eq, sizes, ellipsis.0.map(Vec::from).unwrap_or_default()))
+    Ok((eq, sizes, ellipsis.dims().map(<[Dim]>::to_vec).unwrap_or_default()))
 }
 
 fn einsum(ctx: &Ctx) -> Inferred {
@@ -259,17 +266,14 @@ fn attention(ctx: &Ctx) -> Inferred {
     if ctx.outputs() > 1 {
         outs.push(tensor(
             dt,
-            Shape::of(vec![batch.clone(), kv_heads.clone(), total.clone(), head_k]),
+            Shape::of([batch.clone(), kv_heads.clone(), total.clone(), head_k]),
         ));
     }
     if ctx.outputs() > 2 {
-        outs.push(tensor(
-            dt,
-            Shape::of(vec![batch.clone(), kv_heads, total.clone(), head_v]),
-        ));
+        outs.push(tensor(dt, Shape::of([batch.clone(), kv_heads, total.clone(), head_v])));
     }
     if ctx.outputs() > 3 {
-        outs.push(tensor(dt, Shape::of(vec![batch, q_heads, q_len, total])));
+        outs.push(tensor(dt, Shape::of([batch, q_heads, q_len, total])));
     }
     Ok(outs.into())
 }
@@ -327,7 +331,7 @@ pub fn flex_scores(node: &crate::ir::Node, inputs: &[Fact]) -> Fact {
     let dims = |i: usize| inputs.get(i).and_then(|f| f.shape.dims());
     let shape = match (dims(0), dims(1)) {
         (Some(q), Some(k)) if q.len() == 4 && k.len() == 4 => {
-            Shape::of(vec![q[0].clone(), q[1].clone(), q[2].clone(), k[2].clone()])
+            Shape::of([q[0].clone(), q[1].clone(), q[2].clone(), k[2].clone()])
         }
         _ => Shape::unknown(),
     };
@@ -373,14 +377,11 @@ fn linear_attention(ctx: &Ctx) -> Inferred {
     };
     let (dk, dv) = (per_head(&q[2], qh)?, per_head(&v[2], kvh)?);
     let y_last = dv.mul(&Dim::Known(qh)).unwrap_or(Dim::Unknown);
-    let mut outs = vec![tensor(
-        ctx.dtype(0),
-        Shape::of(vec![q[0].clone(), q[1].clone(), y_last]),
-    )];
+    let mut outs = vec![tensor(ctx.dtype(0), Shape::of([q[0].clone(), q[1].clone(), y_last]))];
     if ctx.outputs() > 1 {
         let state = match ctx.dims(3) {
             Some(p) if ctx.has_input(3) => Shape::of(p),
-            _ => Shape::of(vec![q[0].clone(), Dim::Known(kvh), dk, dv]),
+            _ => Shape::of([q[0].clone(), Dim::Known(kvh), dk, dv]),
         };
         outs.push(tensor(ctx.dtype(3).or(ctx.dtype(0)), state));
     }
@@ -471,21 +472,21 @@ fn ms_attention(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(0);
     let mut outs = vec![tensor(
         dt,
-        Shape::of(vec![a.x[0].clone(), a.x[1].clone(), a.widths[2].clone()]),
+        Shape::of([a.x[0].clone(), a.x[1].clone(), a.widths[2].clone()]),
     )];
     if ctx.outputs() > 1 {
         let present = match &a.past {
             Some(p) if ctx.int("past_present_share_buffer", 0) != 0 => Shape::of(p.clone()),
             Some(p) if p.len() == 5 => {
                 let total = p[3].add(&a.x[1]).ok_or("sequence overflows")?;
-                Shape::of(vec![p[0].clone(), p[1].clone(), p[2].clone(), total, p[4].clone()])
+                Shape::of([p[0].clone(), p[1].clone(), p[2].clone(), total, p[4].clone()])
             }
             Some(_) => Shape::of_rank(5),
             None => {
                 let heads = num_heads(ctx);
                 let n = heads.map_or(Dim::Unknown, Dim::Known);
                 let head = head_width(&a.widths[1], heads);
-                Shape::of(vec![Dim::Known(2), a.x[0].clone(), n, a.x[1].clone(), head])
+                Shape::of([Dim::Known(2), a.x[0].clone(), n, a.x[1].clone(), head])
             }
         };
         outs.push(tensor(dt, present));
@@ -596,15 +597,15 @@ fn mha(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(0);
     let n = l.heads.map_or(Dim::Unknown, Dim::Known);
     let per_head = |d: &Dim| head_width(d, l.heads);
-    let mut outs = vec![tensor(dt, Shape::of(vec![l.b.clone(), l.s.clone(), l.dv.clone()]))];
+    let mut outs = vec![tensor(dt, Shape::of([l.b.clone(), l.s.clone(), l.dv.clone()]))];
     for width in [&l.dq, &l.dv].into_iter().take(ctx.outputs().saturating_sub(1)) {
         outs.push(tensor(
             dt,
-            Shape::of(vec![l.b.clone(), n.clone(), l.total.clone(), per_head(width)]),
+            Shape::of([l.b.clone(), n.clone(), l.total.clone(), per_head(width)]),
         ));
     }
     if ctx.outputs() > 3 {
-        outs.push(tensor(dt, Shape::of(vec![l.b, n, l.s, l.total])));
+        outs.push(tensor(dt, Shape::of([l.b, n, l.s, l.total])));
     }
     Ok(outs.into())
 }

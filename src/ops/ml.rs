@@ -309,7 +309,7 @@ fn dict_vectorizer(ctx: &Ctx) -> Inferred {
     };
     Ok(smallvec::smallvec![tensor(
         dtype,
-        Shape::of(vec![Dim::Known(length as u64)])
+        Shape::of([Dim::Known(length as u64)])
     )])
 }
 
@@ -334,7 +334,7 @@ fn cast_map(ctx: &Ctx) -> Inferred {
     };
     Ok(smallvec::smallvec![tensor(
         Some(dtype),
-        Shape::of(vec![Dim::Known(1), length])
+        Shape::of([Dim::Known(1), length])
     )])
 }
 

@@ -15,7 +15,7 @@ fn batch_norm(ctx: &Ctx) -> Inferred {
 
 /// LayerNormalization (opset 17): Mean and InvStdDev keep the dims before `axis`, ones after.
 fn layer_norm(ctx: &Ctx) -> Inferred {
-    let mut outs = vec![same_as(ctx, 0)];
+    let mut outs: super::Facts = smallvec::smallvec![same_as(ctx, 0)];
     if ctx.outputs() > 1 {
         let stash = DType::from_onnx(ctx.int("stash_type", 1) as i32);
         let stat = match ctx.dims(0) {
@@ -31,7 +31,7 @@ fn layer_norm(ctx: &Ctx) -> Inferred {
             outs.push(tensor(stash, stat.clone()));
         }
     }
-    Ok(outs.into())
+    Ok(outs)
 }
 
 /// Contrib-domain SkipLayerNormalization family: output, mean, inv_std_var, input+skip(+bias).

@@ -2,7 +2,7 @@
 //! emit (Shape → Gather → Unsqueeze → Concat → Reshape and friends).
 
 use crate::ir::rank_within_limit;
-use crate::ir::{AttrValue, ConstData, ConstValue, DType, Dim, Shape};
+use crate::ir::{AttrValue, ConstData, ConstValue, DType, Dim, DimVec, Shape};
 use crate::values;
 
 use super::fold::{self, MAX_FOLD_ELEMENTS};
@@ -194,7 +194,7 @@ fn range_symbolic(ctx: &Ctx) -> Option<Dim> {
 pub(super) fn range(ctx: &Ctx) -> Inferred {
     let shape = match (range_len(ctx), range_symbolic(ctx)) {
         (Some(n), _) => Shape::known(&[n]),
-        (None, Some(sym)) => Shape::of(vec![sym]),
+        (None, Some(sym)) => Shape::of([sym]),
         (None, None) => Shape::of_rank(1),
     };
     Ok(smallvec::smallvec![tensor(ctx.dtype(0), shape)])
@@ -215,9 +215,9 @@ pub(super) fn fold_range(ctx: &Ctx) -> Option<Vec<ConstValue>> {
 
 /// Reshape with 0 (copy, unless allowzero) and -1 (infer) per the spec; symbolic sizes are
 /// carried through when the inferred dim's factors cancel.
-fn reshape_dims(input: Option<&[Dim]>, target: &[Dim], raw: &[i64], allowzero: bool) -> Result<Vec<Dim>, String> {
-    let mut out: Vec<Dim> = Vec::with_capacity(raw.len());
-    let mut copied = vec![false; raw.len()];
+fn reshape_dims(input: Option<&[Dim]>, target: &[Dim], raw: &[i64], allowzero: bool) -> Result<DimVec, String> {
+    let mut out = DimVec::with_capacity(raw.len());
+    let mut copied: smallvec::SmallVec<[bool; 6]> = smallvec::smallvec![false; raw.len()];
     let mut infer_at = None;
     for (i, (&r, t)) in raw.iter().zip(target).enumerate() {
         if r == 0 && !allowzero && matches!(t, Dim::Known(0)) {
@@ -318,9 +318,32 @@ fn factors(d: &Dim) -> Option<(u64, Vec<Dim>)> {
 }
 
 fn reshape(ctx: &Ctx) -> Inferred {
-    let (raw, target) = if ctx.opset >= 5 {
+    // Each entry of the shape value as a dim, and as the number that says what it does
+    // (0 copies, -1 infers). On the stack: every Reshape of a model passes through here.
+    let mut target = DimVec::new();
+    let mut literal: smallvec::SmallVec<[i64; 6]> = smallvec::SmallVec::new();
+    let as_dim = |x: i64| if x >= 0 { Dim::Known(x as u64) } else { Dim::Unknown };
+    if ctx.opset >= 5 {
         match ctx.konst(1) {
-            Some(c) => (c.as_ints(), c.as_dims()),
+            Some(c) => match &c.data {
+                // In a shape value, only the marker is "infer"; symbolic and unknown dims are sizes.
+                ConstData::Dims(d) => {
+                    target.extend(d.iter().cloned());
+                    literal.extend(d.iter().map(|x| match x {
+                        Dim::Known(v) => *v as i64,
+                        Dim::Sym(s) if &**s == INFER_MARK => -1,
+                        _ => 1,
+                    }));
+                }
+                ConstData::Int(v) => {
+                    target.extend(v.iter().map(|&x| as_dim(x)));
+                    literal.extend_from_slice(v);
+                }
+                ConstData::Float(v) => {
+                    target.extend(v.iter().map(|&x| as_dim(x as i64)));
+                    literal.extend(v.iter().map(|&x| x as i64));
+                }
+            },
             None => {
                 let shape = match ctx.shape(1).concrete().and_then(|s| s.first().copied()) {
                     Some(len) => Shape::of_rank(rank_within_limit(len)?),
@@ -330,26 +353,10 @@ fn reshape(ctx: &Ctx) -> Inferred {
             }
         }
     } else {
-        let s = ctx.ints("shape").ok_or("Reshape-1 without shape attribute")?;
-        (
-            s.clone(),
-            s.iter()
-                .map(|&x| if x >= 0 { Dim::Known(x as u64) } else { Dim::Unknown })
-                .collect(),
-        )
-    };
-    // In a shape value, only the marker is "infer"; symbolic and unknown dims are sizes.
-    let literal: Vec<i64> = match ctx.konst(1).map(|c| &c.data) {
-        Some(ConstData::Dims(d)) => d
-            .iter()
-            .map(|x| match x {
-                Dim::Known(v) => *v as i64,
-                Dim::Sym(s) if &**s == INFER_MARK => -1,
-                _ => 1,
-            })
-            .collect(),
-        _ => raw,
-    };
+        let s = ctx.ints_ref("shape").ok_or("Reshape-1 without shape attribute")?;
+        target.extend(s.iter().map(|&x| as_dim(x)));
+        literal.extend_from_slice(s);
+    }
     let dims = reshape_dims(ctx.dims_ref(0), &target, &literal, ctx.int("allowzero", 0) != 0)?;
     Ok(smallvec::smallvec![tensor(ctx.dtype(0), Shape::of(dims))])
 }
@@ -378,7 +385,7 @@ fn flatten(ctx: &Ctx) -> Inferred {
     let axis = axis as usize;
     Ok(smallvec::smallvec![tensor(
         ctx.dtype(0),
-        Shape::of(vec![product(&d[..axis])?, product(&d[axis..])?]),
+        Shape::of([product(&d[..axis])?, product(&d[axis..])?]),
     )])
 }
 
@@ -397,7 +404,7 @@ fn transpose(ctx: &Ctx) -> Inferred {
                         .map(|a| d[a].clone())
                         .ok_or("perm entry out of range")
                 })
-                .collect::<Result<_, _>>()?
+                .collect::<Result<DimVec, _>>()?
         }
         // No `perm`: the dims reversed.
         None => d.iter().rev().cloned().collect(),
@@ -438,7 +445,7 @@ fn squeeze(ctx: &Ctx) -> Inferred {
     let Ok(axes) = axes(ctx, 13) else {
         return Ok(smallvec::smallvec![tensor(dt, Shape::unknown())]);
     };
-    let out = match axes {
+    let out: DimVec = match axes {
         Some(a) => {
             let mut drop = vec![false; d.len()];
             for x in a {
@@ -479,7 +486,7 @@ pub(super) fn unsqueeze(ctx: &Ctx) -> Inferred {
         out[i] = Some(Dim::Known(1));
     }
     let mut it = d.into_iter();
-    let out = out
+    let out: DimVec = out
         .into_iter()
         .map(|o| o.or_else(|| it.next()).unwrap_or(Dim::Unknown))
         .collect();
@@ -516,7 +523,7 @@ pub(super) fn concat_shape(shapes: &[Option<Vec<Dim>>], axis: i64) -> Result<Sha
         return Ok(Shape::unknown());
     };
     let axis = norm_axis(axis, rank).ok_or("axis out of range")?;
-    let mut out: Vec<Dim> = vec![Dim::Unknown; rank];
+    let mut out: DimVec = smallvec::smallvec![Dim::Unknown; rank];
     let mut total = Dim::Known(0);
     for s in shapes {
         let Some(s) = s else {
@@ -830,12 +837,12 @@ fn open_span(d: &Dim, start: i64, end: i64, step: i64) -> Dim {
 
 fn slice(ctx: &Ctx) -> Inferred {
     let dt = ctx.dtype(0);
-    let Some(d) = ctx.dims(0) else {
+    let Some(d) = ctx.dims_ref(0) else {
         return Ok(smallvec::smallvec![tensor(dt, Shape::unknown())]);
     };
-    let Some(ranges) = slice_ranges(ctx, &d)? else {
+    let Some(ranges) = slice_ranges(ctx, d)? else {
         // Unknown bounds: the rank stays, the sliced sizes are unknown.
-        let mut s = d.clone();
+        let mut s = DimVec::from(d);
         match ctx.opset >= 10 && ctx.has_input(3) {
             true => match ctx.const_ints(3) {
                 Some(axes) => {
@@ -858,7 +865,7 @@ fn slice(ctx: &Ctx) -> Inferred {
         }
         return Ok(smallvec::smallvec![tensor(dt, Shape::of(s))]);
     };
-    let mut out = d.clone();
+    let mut out = DimVec::from(d);
     for (axis, r) in ranges {
         out[axis] = match r {
             AxisSpan::Clamped(s, e, step) => {
@@ -921,9 +928,9 @@ fn gather(ctx: &Ctx) -> Inferred {
 /// Gather's output: `data`'s dims with the one at `axis` replaced by the indices' dims (ONNX
 /// spec, Gather). `axis` is already within `data`'s rank.
 pub(super) fn gather_shape(data: &[Dim], idx: Vec<Dim>, axis: usize) -> Shape {
-    let mut out = data[..axis].to_vec();
+    let mut out = DimVec::from(&data[..axis]);
     out.extend(idx);
-    out.extend_from_slice(&data[axis + 1..]);
+    out.extend(data[axis + 1..].iter().cloned());
     Shape::of(out)
 }
 
@@ -1141,7 +1148,7 @@ fn tile(ctx: &Ctx) -> Inferred {
         .iter()
         .zip(&reps)
         .map(|(x, &r)| x.mul(&Dim::Known(r.max(0) as u64)).ok_or("overflow"))
-        .collect::<Result<_, _>>()?;
+        .collect::<Result<DimVec, _>>()?;
     Ok(smallvec::smallvec![tensor(dt, Shape::of(out))])
 }
 
@@ -1176,7 +1183,7 @@ fn expand_unknown_target(ctx: &Ctx) -> Result<Shape, String> {
                 Some(Dim::Known(v)) if *v != 1 => Dim::Known(*v),
                 _ => Dim::Unknown,
             })
-            .collect(),
+            .collect::<DimVec>(),
     ))
 }
 
@@ -1242,7 +1249,7 @@ fn top_k(ctx: &Ctx) -> Inferred {
 fn non_max_suppression(ctx: &Ctx) -> Inferred {
     Ok(smallvec::smallvec![tensor(
         Some(DType::I64),
-        Shape::of(vec![data_dependent(ctx, "selected"), Dim::Known(3)]),
+        Shape::of([data_dependent(ctx, "selected"), Dim::Known(3)]),
     )])
 }
 
@@ -1254,7 +1261,7 @@ fn non_zero(ctx: &Ctx) -> Inferred {
         .unwrap_or(Dim::Unknown);
     Ok(smallvec::smallvec![tensor(
         Some(DType::I64),
-        Shape::of(vec![rank, data_dependent(ctx, "nonzero")]),
+        Shape::of([rank, data_dependent(ctx, "nonzero")]),
     )])
 }
 
@@ -1271,7 +1278,7 @@ fn compress(ctx: &Ctx) -> Inferred {
         }
         None => Ok(smallvec::smallvec![tensor(
             dt,
-            Shape::of(vec![data_dependent(ctx, "kept")])
+            Shape::of([data_dependent(ctx, "kept")])
         )]),
     }
 }
@@ -1281,7 +1288,7 @@ fn unique(ctx: &Ctx) -> Inferred {
     let mut outs = vec![tensor(
         ctx.dtype(0),
         match ctx.opt_int("axis") {
-            None => Shape::of(vec![n.clone()]),
+            None => Shape::of([n.clone()]),
             Some(a) => match ctx.dims(0) {
                 Some(mut d) => {
                     let i = norm_axis(a, d.len()).ok_or("axis out of range")?;
@@ -1296,7 +1303,7 @@ fn unique(ctx: &Ctx) -> Inferred {
     let len = match ctx.opt_int("axis") {
         Some(a) => ctx
             .dims(0)
-            .and_then(|d| norm_axis(a, d.len()).map(|i| Shape::of(vec![d[i].clone()])))
+            .and_then(|d| norm_axis(a, d.len()).map(|i| Shape::of([d[i].clone()])))
             .unwrap_or_else(|| Shape::of_rank(1)),
         None => ctx
             .shape(0)
@@ -1307,11 +1314,7 @@ fn unique(ctx: &Ctx) -> Inferred {
     for i in 1..ctx.outputs() {
         outs.push(tensor(
             Some(DType::I64),
-            if i == 2 {
-                len.clone()
-            } else {
-                Shape::of(vec![n.clone()])
-            },
+            if i == 2 { len.clone() } else { Shape::of([n.clone()]) },
         ));
     }
     Ok(outs.into())
@@ -1345,7 +1348,7 @@ fn depth_to_space(ctx: &Ctx) -> Inferred {
     let sp = |x: &Dim| scale(x, b, up);
     Ok(smallvec::smallvec![tensor(
         dt,
-        Shape::of(vec![d[0].clone(), c, sp(&d[2])?, sp(&d[3])?])
+        Shape::of([d[0].clone(), c, sp(&d[2])?, sp(&d[3])?])
     )])
 }
 

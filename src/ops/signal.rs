@@ -38,7 +38,7 @@ fn stft(ctx: &Ctx) -> Inferred {
     };
     Ok(smallvec::smallvec![tensor(
         ctx.dtype(0),
-        Shape::of(vec![x[0].clone(), frames, bins, Dim::Known(2)]),
+        Shape::of([x[0].clone(), frames, bins, Dim::Known(2)]),
     )])
 }
 
@@ -138,7 +138,7 @@ fn window(ctx: &Ctx) -> Inferred {
     let n = scalar(ctx, 0)
         .map(|v| Dim::Known(v.max(0) as u64))
         .unwrap_or(Dim::Unknown);
-    Ok(smallvec::smallvec![tensor(dt, Shape::of(vec![n]))])
+    Ok(smallvec::smallvec![tensor(dt, Shape::of([n]))])
 }
 
 /// MelWeightMatrix: [⌊dft_length/2⌋ + 1, num_mel_bins] of `output_datatype` (float32).
@@ -150,7 +150,7 @@ fn mel_weight_matrix(ctx: &Ctx) -> Inferred {
     let mels = scalar(ctx, 0)
         .map(|v| Dim::Known(v.max(0) as u64))
         .unwrap_or(Dim::Unknown);
-    Ok(smallvec::smallvec![tensor(dt, Shape::of(vec![bins, mels]))])
+    Ok(smallvec::smallvec![tensor(dt, Shape::of([bins, mels]))])
 }
 
 macro_rules! op {

@@ -71,7 +71,7 @@ fn tfidf_vectorizer(ctx: &Ctx) -> Inferred {
     let c = u64::try_from(c).map_err(|_| format!("negative ngram index {c}"))? + 1;
     let shape = match ctx.dims(0) {
         Some(d) if d.len() == 1 => Shape::known(&[c]),
-        Some(d) if d.len() == 2 => Shape::of(vec![d[0].clone(), Dim::Known(c)]),
+        Some(d) if d.len() == 2 => Shape::of([d[0].clone(), Dim::Known(c)]),
         Some(d) => return Err(format!("input of rank {}, expected [N] or [B, N]", d.len())),
         None => Shape::unknown(),
     };
@@ -86,7 +86,7 @@ fn image_decoder(ctx: &Ctx) -> Inferred {
         "RGB" | "BGR" => 3,
         other => return Err(format!("unknown pixel_format `{other}`")),
     };
-    let shape = Shape::of(vec![
+    let shape = Shape::of([
         data_dependent(ctx, "height"),
         data_dependent(ctx, "width"),
         Dim::Known(channels),

@@ -1,6 +1,6 @@
 //! Helpers shared by the op families: attribute access, broadcasting, axis handling.
 
-use crate::ir::{AttrValue, ConstData, ConstValue, DType, Dim, Fact, Shape};
+use crate::ir::{AttrValue, ConstData, ConstValue, DType, Dim, DimVec, Fact, Shape};
 
 use super::Ctx;
 
@@ -159,7 +159,15 @@ pub fn broadcast_all<'s>(shapes: impl Iterator<Item = &'s Shape> + Clone) -> Res
     if shapes.clone().any(|s| s.dims().is_none()) {
         return Ok(Shape::unknown());
     }
-    broadcast_dims(shapes.filter_map(Shape::dims), 0).map(Shape::of)
+    // Operands of one shape (a residual Add, a Mul by a gate) broadcast to that shape: the
+    // output shares it instead of a copy.
+    if let Some(first) = shapes.clone().next() {
+        if shapes.clone().all(|s| s.same_alloc(first) || s == first) {
+            return Ok(first.clone());
+        }
+    }
+    let out = broadcast_dims(shapes.filter_map(Shape::dims), 0)?;
+    Ok(Shape::of(out))
 }
 
 /// The broadcast of known dim lists, with room for `extra` dims after them (MatMul appends
@@ -167,10 +175,10 @@ pub fn broadcast_all<'s>(shapes: impl Iterator<Item = &'s Shape> + Clone) -> Res
 pub(super) fn broadcast_dims<'d>(
     lists: impl Iterator<Item = &'d [Dim]> + Clone,
     extra: usize,
-) -> Result<Vec<Dim>, String> {
+) -> Result<DimVec, String> {
     let rank = lists.clone().map(<[Dim]>::len).max().unwrap_or(0);
     // Missing leading dims are 1, which broadcasts to anything.
-    let mut out = Vec::with_capacity(rank + extra);
+    let mut out = DimVec::with_capacity(rank + extra);
     out.resize(rank, Dim::Known(1));
     for dims in lists {
         let off = rank - dims.len();

@@ -1,7 +1,7 @@
 //! Detection, sampling and geometry ops (ONNX operator specification): GridSample,
 //! AffineGrid, RoiAlign, MaxRoiPool, Col2Im, CenterCropPad, Det, ImageScaler.
 
-use crate::ir::{Dim, Shape};
+use crate::ir::{Dim, DimVec, Shape};
 
 use super::util::{like_input, norm_axis, tensor};
 use super::{CostRule, Ctx, Inferred, OpDef};
@@ -13,7 +13,7 @@ pub(super) fn grid_sample(ctx: &Ctx) -> Inferred {
     if x.len() < 3 || g.len() != x.len() {
         return Err(format!("input rank {} with grid rank {}", x.len(), g.len()));
     }
-    let mut out = vec![x[0].clone(), x[1].clone()];
+    let mut out: DimVec = smallvec::smallvec![x[0].clone(), x[1].clone()];
     out.extend(g[1..g.len() - 1].iter().cloned());
     Ok(smallvec::smallvec![tensor(ctx.dtype(0), Shape::of(out))])
 }
@@ -24,7 +24,7 @@ fn affine_grid(ctx: &Ctx) -> Inferred {
     let size = ctx.konst(1).map(|c| c.as_dims());
     let shape = match size {
         Some(s) if s.len() >= 3 => {
-            let mut out = vec![s[0].clone()];
+            let mut out: DimVec = smallvec::smallvec![s[0].clone()];
             out.extend(s[2..].iter().cloned());
             out.push(Dim::Known((s.len() - 2) as u64));
             Shape::of(out)
@@ -50,7 +50,7 @@ fn roi_align(ctx: &Ctx) -> Inferred {
     let w = ctx.int("output_width", 1).max(0) as u64;
     Ok(smallvec::smallvec![tensor(
         ctx.dtype(0),
-        Shape::of(vec![rois, x[1].clone(), Dim::Known(h), Dim::Known(w)]),
+        Shape::of([rois, x[1].clone(), Dim::Known(h), Dim::Known(w)]),
     )])
 }
 
@@ -67,7 +67,7 @@ fn max_roi_pool(ctx: &Ctx) -> Inferred {
     let rois = ctx.dims(1).and_then(|r| r.first().cloned()).unwrap_or(Dim::Unknown);
     Ok(smallvec::smallvec![tensor(
         ctx.dtype(0),
-        Shape::of(vec![
+        Shape::of([
             rois,
             x[1].clone(),
             Dim::Known(pooled[0].max(0) as u64),
@@ -94,7 +94,7 @@ fn col2im(ctx: &Ctx) -> Inferred {
         }
         _ => Dim::Unknown,
     };
-    let mut out = vec![x[0].clone(), c];
+    let mut out: DimVec = smallvec::smallvec![x[0].clone(), c];
     out.extend(image.iter().map(|&v| Dim::Known(v.max(0) as u64)));
     Ok(smallvec::smallvec![tensor(ctx.dtype(0), Shape::of(out))])
 }
@@ -123,10 +123,7 @@ fn det(ctx: &Ctx) -> Inferred {
     if x.len() < 2 {
         return Err(format!("input of rank {}", x.len()));
     }
-    Ok(smallvec::smallvec![tensor(
-        ctx.dtype(0),
-        Shape::of(x[..x.len() - 2].to_vec())
-    )])
+    Ok(smallvec::smallvec![tensor(ctx.dtype(0), Shape::of(&x[..x.len() - 2]))])
 }
 
 macro_rules! op {

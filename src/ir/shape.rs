@@ -692,7 +692,7 @@ pub fn evaluate(text: &str, value: &dyn Fn(&str) -> Option<u64>) -> Result<Optio
     Ok(v)
 }
 
-/// Dims gathered on the stack before they become a `Shape` (`Shape::of_dims`): ranks above
+/// Dims gathered on the stack before they become a `Shape` (`Shape::of`): ranks above
 /// six are rare enough to spill.
 pub type DimVec = smallvec::SmallVec<[Dim; 6]>;
 

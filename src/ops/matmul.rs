@@ -62,8 +62,13 @@ fn matmul_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
     let (ia, _, _) = ab(ctx);
     let macs = (|| {
         let y = outs.first()?.shape.element_count()?;
-        let k = ctx.dims_ref(ia)?.last()?.known()?;
-        y.checked_mul(k)
+        // Every dim of A known, not only the inner one: a symbolic batch dim of A that the
+        // broadcast settled against B's is counted once its value is set, as any other.
+        let a = ctx.dims_ref(ia)?;
+        if !a.iter().all(|d| d.known().is_some()) {
+            return None;
+        }
+        y.checked_mul(a.last()?.known()?)
     })();
     (macs, Some(0))
 }

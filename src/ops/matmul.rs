@@ -36,15 +36,8 @@ pub fn matmul_shape(a: &[Dim], b: &[Dim]) -> Result<DimVec, String> {
             return Err(format!("inner dims differ: {x} vs {y}"));
         }
     }
-    // Multidirectional broadcasting of the batch dims, aligned at the right. Most MatMuls
-    // multiply by a weight matrix (no batch dims) or by an operand of the same batch.
-    let mut out = if b_batch.is_empty() || a_batch == b_batch {
-        let mut out = DimVec::with_capacity(a_batch.len() + 2);
-        out.extend(a_batch.iter().cloned());
-        out
-    } else {
-        broadcast_dims([a_batch, b_batch].into_iter(), 2)?
-    };
+    // Multidirectional broadcasting of the batch dims, aligned at the right.
+    let mut out = broadcast_dims([a_batch, b_batch].into_iter(), 2)?;
     out.extend(m.cloned());
     out.extend(n.cloned());
     Ok(out)

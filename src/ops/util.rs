@@ -162,7 +162,8 @@ pub fn broadcast_all<'s>(shapes: impl Iterator<Item = &'s Shape> + Clone) -> Res
     // Operands of one shape (a residual Add, a Mul by a gate) broadcast to that shape: the
     // output shares it instead of a copy.
     if let Some(first) = shapes.clone().next() {
-        if shapes.clone().all(|s| s.same_alloc(first) || s == first) {
+        // Shared shapes compare by address first (`Arc`'s equality for `Eq` contents).
+        if shapes.clone().all(|s| s == first) {
             return Ok(first.clone());
         }
     }
@@ -177,6 +178,16 @@ pub(super) fn broadcast_dims<'d>(
     extra: usize,
 ) -> Result<DimVec, String> {
     let rank = lists.clone().map(<[Dim]>::len).max().unwrap_or(0);
+    // Lists that each end the longest one (a weight matrix's empty batch, an operand of the
+    // same shape, a bias over the last dims) broadcast to the longest as it is: a dim
+    // broadcast with itself is itself.
+    if let Some(longest) = lists.clone().find(|l| l.len() == rank) {
+        if lists.clone().all(|l| longest.ends_with(l)) {
+            let mut out = DimVec::with_capacity(rank + extra);
+            out.extend(longest.iter().cloned());
+            return Ok(out);
+        }
+    }
     // Missing leading dims are 1, which broadcasts to anything.
     let mut out = DimVec::with_capacity(rank + extra);
     out.resize(rank, Dim::Known(1));

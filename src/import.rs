@@ -683,8 +683,14 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     // sizing the tables once avoids re-growing (and re-touching) them on large graphs.
     // Node outputs are counted by the name pass below, which reserves room for them.
     let expected = g.initializer.len() + g.sparse_initializer.len() + g.input.len() + flat.len() + 8;
-    let value_room = if depth == 0 && flat.len() >= PARALLEL_MIN_NODES {
-        prepared_room::<Value>(expected)
+    // On a large main graph the value and node arrays are reserved here, on the importing
+    // thread, and mapped by the pass threads once each is done with its pass (`RoomWork`).
+    // Reserved here, the allocator places them the same way every run: reserved on another
+    // thread, racing the passes' own allocations, they landed in one of a few places, and in
+    // some the tables import frees later left no room for inference's allocations (about
+    // 3,000 more page faults, in 11 of 30 and 26 of 40 runs on the 100k-node stack).
+    let mut value_room: Option<Vec<Value>> = if depth == 0 && flat.len() >= PARALLEL_MIN_NODES {
+        Some(Vec::with_capacity(expected))
     } else {
         None
     };
@@ -776,8 +782,8 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     // and attributes (with the subgraphs they carry) into the IR. On a large main graph the
     // second runs on another thread.
     let parallel = depth == 0 && flat.len() >= PARALLEL_MIN_NODES;
-    let node_room = if parallel {
-        prepared_room::<Node>(flat.len())
+    let mut node_room: Option<Vec<Node>> = if parallel {
+        Some(Vec::with_capacity(flat.len()))
     } else {
         None
     };
@@ -787,15 +793,26 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     let (names, attrs, names_kept) = if parallel {
         let flat = &flat;
         let syms = &mut syms;
+        let rooms = RoomWork::new(
+            [
+                value_room.as_mut().map(spare_bytes),
+                node_room.as_mut().map(spare_bytes),
+            ]
+            .into_iter()
+            .flatten(),
+        );
+        let rooms = &rooms;
         std::thread::scope(|scope| {
             let worker = std::thread::Builder::new()
                 .stack_size(crate::onnx::graph::WORKER_STACK)
                 .spawn_scoped(scope, || {
                     let a = attr_pass(cx, flat, depth);
                     let kept = a.as_ref().is_ok_and(|a| distinct_names(&a.names));
+                    rooms.help();
                     (a, kept)
                 });
             let names = name_pass(path, flat, syms);
+            rooms.help();
             let (attrs, kept) = match worker {
                 Ok(h) => {
                     let (a, kept) = h.join().unwrap_or_else(|p| std::panic::resume_unwind(p));
@@ -810,7 +827,7 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     };
     // A sequential import meets the name pass's faults first.
     let (outs, ins) = names?;
-    if let Some(mut room) = value_room.and_then(|h| h.join().ok()) {
+    if let Some(mut room) = value_room {
         room.append(&mut values);
         values = room;
     }
@@ -900,7 +917,7 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
             let worker = std::thread::Builder::new()
                 .stack_size(crate::onnx::graph::WORKER_STACK)
                 .spawn_scoped(scope, || wiring.add_values(&mut values));
-            let room = node_room.and_then(|h| h.join().ok());
+            let room = node_room.take();
             let nodes = wiring.nodes(build, room);
             let added = match worker {
                 Ok(h) => {
@@ -1133,29 +1150,48 @@ impl Wiring<'_, '_> {
     }
 }
 
-/// Room for `n` nodes, its memory first touched on another thread while this one reads
-/// names and attributes: a fresh process pays the kernel's page clearing on first touch, and
-/// the node array is the largest single table import fills.
-fn prepared_room<T: Send + 'static>(n: usize) -> Option<std::thread::JoinHandle<Vec<T>>> {
-    // Reserved here, touched there: the allocator then places the room before any helper
-    // thread allocates, at the same place every run. Reserved on the helper, where it raced
-    // the two passes' own allocations, the room landed in one of a few places; in some of
-    // them import's freed tables later left no room for inference's allocations, which then
-    // cost about 3,000 more page faults (in 11 of 30 and 26 of 40 runs on the 100k-node stack).
-    let mut room: Vec<T> = Vec::with_capacity(n);
-    std::thread::Builder::new()
-        .spawn(move || {
-            let spare = room.spare_capacity_mut();
-            let len = std::mem::size_of_val(spare);
-            // SAFETY: the bytes of the spare capacity, as bytes that may be uninitialized:
-            // the same allocation, length and lifetime, and `MaybeUninit<u8>` has no validity
-            // invariant nor alignment beyond one.
-            let bytes =
-                unsafe { std::slice::from_raw_parts_mut(spare.as_mut_ptr().cast::<std::mem::MaybeUninit<u8>>(), len) };
-            prefault(bytes);
-            room
-        })
-        .ok()
+/// The spare capacity of `v` as bytes that may be uninitialized.
+fn spare_bytes<T>(v: &mut Vec<T>) -> &mut [std::mem::MaybeUninit<u8>] {
+    let spare = v.spare_capacity_mut();
+    let len = std::mem::size_of_val(spare);
+    // SAFETY: the bytes of the spare capacity, as bytes that may be uninitialized: the same
+    // allocation, length and lifetime, and `MaybeUninit<u8>` has no validity invariant nor
+    // alignment beyond one.
+    unsafe { std::slice::from_raw_parts_mut(spare.as_mut_ptr().cast::<std::mem::MaybeUninit<u8>>(), len) }
+}
+
+/// The value and node arrays' memory, in pieces that the two pass threads map (`prefault`)
+/// as each finishes its pass, so that the build fills memory the kernel has already cleared.
+/// A fresh process pays that clearing on first touch, and the two arrays are most of what
+/// import touches (22 MB on a 100k-node graph). Done by two helper threads of their own, the
+/// mapping took the two cores first and held both passes back by up to 6 ms at their start;
+/// taken in pieces by whichever pass thread is free, the two threads end together
+/// (README, "Twenty-third session").
+struct RoomWork<'a>(std::sync::Mutex<Vec<&'a mut [std::mem::MaybeUninit<u8>]>>);
+
+impl<'a> RoomWork<'a> {
+    const PIECE: usize = 1 << 20;
+
+    fn new(rooms: impl Iterator<Item = &'a mut [std::mem::MaybeUninit<u8>]>) -> RoomWork<'a> {
+        let mut pieces: Vec<_> = rooms.flat_map(|r| r.chunks_mut(Self::PIECE)).collect();
+        // Taken from the end: the first pieces first.
+        pieces.reverse();
+        RoomWork(std::sync::Mutex::new(pieces))
+    }
+
+    /// Maps pieces until none is left.
+    fn help(&self) {
+        loop {
+            let piece = match self.0.lock() {
+                Ok(mut p) => p.pop(),
+                Err(_) => None,
+            };
+            match piece {
+                Some(p) => prefault(p),
+                None => return,
+            }
+        }
+    }
 }
 
 /// Makes the kernel map (and clear) every page of `bytes`, memory not yet written (a

@@ -790,7 +790,7 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
     let path = cx.path;
     // The worker, which finishes first, also checks whether the nodes' own names can all be
     // kept; the node loop below then does not check them one by one.
-    let (names, attrs, names_kept) = if parallel {
+    let (names, attrs, names_kept, early_deps) = if parallel {
         let flat = &flat;
         let syms = &mut syms;
         let rooms = RoomWork::new(
@@ -812,6 +812,8 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
                     (a, kept)
                 });
             let names = name_pass(path, flat, syms);
+            // While the worker still reads attributes: the sort's rows, from the names alone.
+            let early = names.as_ref().ok().and_then(|(_, ins)| plain_deps(ins, syms));
             rooms.help();
             let (attrs, kept) = match worker {
                 Ok(h) => {
@@ -820,10 +822,10 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
                 }
                 Err(_) => (None, false),
             };
-            (names, attrs, kept)
+            (names, attrs, kept, early)
         })
     } else {
-        (name_pass(path, &flat, &mut syms), None, false)
+        (name_pass(path, &flat, &mut syms), None, false, None)
     };
     // A sequential import meets the name pass's faults first.
     let (outs, ins) = names?;
@@ -860,27 +862,36 @@ fn import_graph(cx: &mut Cx, g: &onnx::GraphProto, depth: usize) -> Result<(Grap
 
     // Dependencies between nodes, for the topological sort.
     let mut graph_free: FreeNames = Vec::new();
-    // Compressed rows (node i reads the nodes `deps.of(i)`): one allocation for the whole
-    // graph instead of a vector per node.
-    let mut deps = Csr::with_rows(flat.len());
     let mut captured: Vec<ValueId> = Vec::new();
-    for (i, n) in flat.iter().enumerate() {
-        let reads = ins.of(i).iter().filter(|&&k| k != NONE).chain(body_syms.of(i));
-        for &k in reads {
-            let p = syms.producer[k as usize];
-            if p != NONE {
-                deps.push(p);
-            } else if syms.value[k as usize].is_none() {
-                let name = syms.names[k as usize];
-                let id = new_value(&mut values, name, ValueKind::Input, Fact::default());
-                syms.value[k as usize] = Some(id);
-                captured.push(id);
-                graph_free.push((name.to_string(), display_name(n.form, i)));
+    // Bodies read names the early rows did not see.
+    let (deps, sorted) = match early_deps.filter(|_| body_reads.is_empty()) {
+        Some(early) => early,
+        None => {
+            let mut deps = Csr::with_rows(flat.len());
+            for (i, n) in flat.iter().enumerate() {
+                let reads = ins.of(i).iter().filter(|&&k| k != NONE).chain(body_syms.of(i));
+                for &k in reads {
+                    let p = syms.producer[k as usize];
+                    if p != NONE {
+                        deps.push(p);
+                    } else if syms.value[k as usize].is_none() {
+                        let name = syms.names[k as usize];
+                        let id = new_value(&mut values, name, ValueKind::Input, Fact::default());
+                        syms.value[k as usize] = Some(id);
+                        captured.push(id);
+                        graph_free.push((name.to_string(), display_name(n.form, i)));
+                    }
+                }
+                deps.end_row();
             }
+            (deps, false)
         }
-        deps.end_row();
-    }
-    let order = topo_order(cx, &flat, &deps)?;
+    };
+    let order = if sorted {
+        (0..flat.len()).collect()
+    } else {
+        topo_order(cx, &flat, &deps)?
+    };
 
     // Every node output's value id, in the order nodes are built: values and nodes can then
     // be built apart, on two threads for a large graph (each touches about as much fresh
@@ -1482,6 +1493,32 @@ impl Csr {
     fn of(&self, row: usize) -> &[u32] {
         &self.items[self.starts[row] as usize..self.starts[row + 1] as usize]
     }
+}
+
+/// Each node's producers, from the names it reads (the sort's rows), when every name read
+/// has a producer or a value already; `None` when one has neither (it becomes a captured
+/// outer value, which only the full loop in `import_graph` makes). With them, whether the
+/// file's order is already a topological one (every node reads only earlier ones).
+fn plain_deps(ins: &Csr, syms: &Symbols) -> Option<(Csr, bool)> {
+    let rows = ins.starts.len() - 1;
+    let mut deps = Csr::with_rows(rows);
+    let mut sorted = true;
+    for i in 0..rows {
+        for &k in ins.of(i) {
+            if k == NONE {
+                continue;
+            }
+            let p = syms.producer[k as usize];
+            if p != NONE {
+                sorted &= (p as usize) < i;
+                deps.push(p);
+            } else if syms.value[k as usize].is_none() {
+                return None;
+            }
+        }
+        deps.end_row();
+    }
+    Some((deps, sorted))
 }
 
 /// Kahn's algorithm, always taking the earliest ready node in file order, so a file already

@@ -619,7 +619,8 @@ fn contrib_quantized_ops_of_real_exports_are_inferred() {
 }
 
 /// Contrib-domain ops of optimised and generative exports, their figures computed by hand:
-/// FusedMatMul with `transA` (inner dim from A's second-to-last), GemmFastGelu, CDist, the
+/// FusedMatMul with `transA` (inner dim from A's second-to-last), GemmFastGelu, the 4-bit
+/// weight products MatMulNBits and MatMulBnb4, CDist, the
 /// experts of MoE and QMoE (4-bit weights, two to a byte), the attention ops with a past
 /// (MultiHeadAttention, Attention, GroupQueryAttention, the one-step decoder attention), and
 /// the decoding loops
@@ -671,6 +672,12 @@ fn contrib_fused_expert_and_decoding_ops_are_sized_and_costed() {
     g.initializer(zeros("q1_s", DType::F32, &[4, 32]));
     g.initializer(zeros("q2", DType::U8, &[4, 32, 8]));
     g.initializer(zeros("q2_s", DType::F32, &[4, 16]));
+    // A [8, 5] weight in 4 bits, blocks of 16 along K: MatMulNBits' [N, blocks, 16·4/8 bytes]
+    // with a scale per block; MatMulBnb4's ⌈N·K/2⌉ bytes with an absmax per 16 values.
+    g.initializer(zeros("nb_b", DType::U8, &[5, 1, 8]));
+    g.initializer(zeros("nb_s", DType::F32, &[5]));
+    g.initializer(zeros("bnb_b", DType::U8, &[20]));
+    g.initializer(zeros("bnb_abs", DType::F32, &[3]));
     g.initializer(int_tensor("max_len", DType::I32, &[1], &[20]));
     g.initializer(int_tensor("beams", DType::I32, &[1], &[4]));
     g.initializer(int_tensor("returned", DType::I32, &[1], &[2]));
@@ -680,6 +687,16 @@ fn contrib_fused_expert_and_decoding_ops_are_sized_and_costed() {
     op.attribute.push(attr::int("transA", 1));
     contrib(g.node("GemmFastGelu", &["tok", "gw", "gb"], &["gfg"]));
     contrib(g.node("CDist", &["ca", "cb"], &["dist"]));
+    for (op, ins, out) in [
+        ("MatMulNBits", ["tok", "nb_b", "nb_s"], "nbits"),
+        ("MatMulBnb4", ["tok", "bnb_b", "bnb_abs"], "bnb4"),
+    ] {
+        let node = g.node(op, &ins, &[out]);
+        contrib(node);
+        for (name, v) in [("K", 8), ("N", 5), ("block_size", 16)] {
+            node.attribute.push(attr::int(name, v));
+        }
+    }
     let op = g.node("MoE", &["seq_tok", "router", "fc1", "fc1_b", "fc2"], &["moe"]);
     contrib(op);
     op.attribute.push(attr::int("k", 2));
@@ -789,6 +806,11 @@ fn contrib_fused_expert_and_decoding_ops_are_sized_and_costed() {
     // [2,3,8] × [8,5]: 30 outputs × 8 MACs; a bias add and a Gelu per output.
     assert_eq!(fact("gfg"), ("float32", "[2,3,5]".to_string()));
     assert_eq!(cost("GemmFastGelu"), (Some(240), Some(60)));
+    // The same product with the weight packed: 30 outputs × K = 8, nothing else counted.
+    for (op, out) in [("MatMulNBits", "nbits"), ("MatMulBnb4", "bnb4")] {
+        assert_eq!(fact(out), ("float32", "[2,3,5]".to_string()), "{op}");
+        assert_eq!(cost(op), (Some(240), Some(0)), "{op}");
+    }
     // 3 × 5 distances over rows of 4; a square root each.
     assert_eq!(fact("dist"), ("float32", "[3,5]".to_string()));
     assert_eq!(cost("CDist"), (Some(60), Some(15)));

@@ -637,15 +637,20 @@ fn mha_macs(ctx: &Ctx, _outs: &[Fact]) -> MacsOps {
     (macs, Some(0))
 }
 
+/// MatMulNBits and MatMulBnb4: A [..., K] by a weight of N·K values packed into bytes
+/// (blocks of `bits`-wide integers, or bitsandbytes' 4-bit kinds, with their scales), whose
+/// K and N are attributes: [..., N]. Slots and attributes from the contrib domain's
+/// documentation (from memory).
 fn matmul_nbits(ctx: &Ctx) -> Inferred {
     let a = ctx.dims(0).ok_or("A rank unknown")?;
-    let n = ctx.opt_int("N").ok_or("MatMulNBits without N")?;
+    let n = ctx.opt_int("N").ok_or("no N attribute")?;
     let mut out = a.clone();
     let last = out.last_mut().ok_or("A is a scalar")?;
     *last = Dim::Known(n.max(0) as u64);
     Ok(smallvec::smallvec![tensor(ctx.dtype(0), Shape::of(out))])
 }
 
+/// Outputs × K, as MatMul: the weight is unpacked, not multiplied.
 fn matmul_nbits_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
     let macs = (|| {
         outs.first()?
@@ -773,6 +778,12 @@ pub static OPS: &[OpDef] = &[
     op!(
         CONTRIB_DOMAIN,
         "MatMulNBits",
+        matmul_nbits,
+        CostRule::Custom(matmul_nbits_macs)
+    ),
+    op!(
+        CONTRIB_DOMAIN,
+        "MatMulBnb4",
         matmul_nbits,
         CostRule::Custom(matmul_nbits_macs)
     ),

@@ -650,7 +650,7 @@ fn matmul_nbits(ctx: &Ctx) -> Inferred {
     Ok(smallvec::smallvec![tensor(ctx.dtype(0), Shape::of(out))])
 }
 
-/// Outputs × K, as MatMul: the weight is unpacked, not multiplied.
+/// Outputs × K, as MatMul (unpacking the weight is not counted).
 fn matmul_nbits_macs(ctx: &Ctx, outs: &[Fact]) -> MacsOps {
     let macs = (|| {
         outs.first()?

@@ -61,6 +61,7 @@ impl Overrides {
             .trim()
             .parse()
             .map_err(|_| SettingError(format!("--dim `{text}`: `{value}` is not a non-negative integer")))?;
+        within_int64("--dim", text, v)?;
         let name = name.trim();
         if name.is_empty() {
             return Err(SettingError(format!("--dim `{text}`: empty name")));
@@ -98,6 +99,7 @@ impl Overrides {
                 "--loop-trips `{text}`: `{value}` is not a non-negative integer"
             ))
         })?;
+        within_int64("--loop-trips", text, v)?;
         set_once(&mut self.loop_trips, "--loop-trips", name.trim().to_string(), v)
     }
 
@@ -113,6 +115,7 @@ impl Overrides {
         for part in shape.split(['x', 'X', ',']).filter(|p| !p.is_empty()) {
             let part = part.trim();
             if let Ok(v) = part.parse::<u64>() {
+                within_int64("--input", text, v)?;
                 dims.push(Dim::Known(v));
             } else if part.starts_with('-') || part.chars().next().is_some_and(|c| c.is_ascii_digit()) {
                 return Err(SettingError(format!(
@@ -124,6 +127,17 @@ impl Overrides {
         }
         set_once(&mut self.inputs, "--input", name.to_string(), dims)
     }
+}
+
+/// ONNX states dims and trip counts as int64 (`TensorShapeProto`, Loop's `M`): a size
+/// past that is no model's, and tilecut's arithmetic on sizes assumes they fit.
+fn within_int64(option: &str, text: &str, v: u64) -> Result<(), SettingError> {
+    if i64::try_from(v).is_err() {
+        return Err(SettingError(format!(
+            "{option} `{text}`: {v} is beyond int64, the largest size ONNX can state"
+        )));
+    }
+    Ok(())
 }
 
 /// Records one setting; the same name given again with another value is an error, since

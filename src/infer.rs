@@ -359,19 +359,10 @@ fn infer_graph(
         };
         let (facts, failure): (ops::Facts, Option<String>) = match def {
             Some(d) => match (d.infer)(&ctx) {
-                // A shape built from a constant's values can be as long as the constant;
-                // past the limit it would be copied into every tensor downstream.
-                Ok(f) => match f
-                    .iter()
-                    .find_map(|o| o.shape.rank().filter(|&r| r > crate::ir::MAX_RANK))
-                {
-                    Some(r) => (
+                Ok(f) => match f.iter().find_map(beyond_limits) {
+                    Some(e) => (
                         ops::Facts::new(),
-                        Some(format!(
-                            "{} could not be inferred: {}",
-                            node.op_type,
-                            crate::ir::rank_within_limit(r as u64).err().unwrap_or_default()
-                        )),
+                        Some(format!("{} could not be inferred: {e}", node.op_type)),
                     ),
                     None => (f, None),
                 },
@@ -998,6 +989,23 @@ fn seed_body_inputs(
 }
 
 /// Summed (macs, ops) of a graph; None where any node's figure is unknown.
+/// Why an output fact an op's rule gave cannot stand, if it cannot. A shape built from a
+/// constant's values can be as long as the constant, and past the rank limit it would be
+/// copied into every tensor downstream. A dim is an int64 in ONNX (`TensorShapeProto`), and a
+/// product of hostile sizes (Tile, Flatten) can pass that in tilecut's unsigned arithmetic.
+fn beyond_limits(f: &Fact) -> Option<String> {
+    let dims = f.shape.dims()?;
+    if dims.len() > crate::ir::MAX_RANK {
+        return crate::ir::rank_within_limit(dims.len() as u64).err();
+    }
+    dims.iter().find_map(|d| match d {
+        crate::ir::Dim::Known(v) if i64::try_from(*v).is_err() => {
+            Some(format!("a dim of {v} does not fit in an int64, as an ONNX dim must"))
+        }
+        _ => None,
+    })
+}
+
 fn graph_cost(g: &Graph) -> MacsOps {
     let mut macs = Some(0u64);
     let mut ops_ = Some(0u64);

@@ -594,6 +594,42 @@ fn a_backward_slice_of_an_empty_axis_is_empty() {
     assert_eq!(v["outputs"][0]["shape"], serde_json::json!([0, 3]));
 }
 
+/// ONNX IR spec, `TensorShapeProto.Dimension.dim_value` is an int64: a size past it cannot
+/// be a tensor's dim. tilecut's sizes are unsigned, so a product of hostile sizes (Tile by
+/// 2^62 of an axis of 3) fits them and not the standard; found by a fuzz run, where a Slice
+/// of such an axis panicked. The Tile is now reported unknown with the reason, the Slice
+/// after it unknown because of it, and a Slice of such an axis (were one to reach it) says so.
+#[test]
+fn a_dim_beyond_int64_is_reported_not_carried() {
+    let d = tmp();
+    let m = model(
+        vec![
+            node("Tile", &["x", "reps"], &["t"]),
+            node("Slice", &["t", "s", "e", "a"], &["y"]),
+        ],
+        vec![vi("x", 1, &[Dm::N(1), Dm::N(3)])],
+        untyped(&["y"]),
+        vec![
+            i64_init("reps", &[2], &[1, 1 << 62]),
+            i64_init("s", &[1], &[0]),
+            i64_init("e", &[1], &[5]),
+            i64_init("a", &[1], &[1]),
+        ],
+    );
+    let p = write(d.path(), "tile_past_int64.onnx", &m);
+    let (code, out, err) = run(&["inspect", p.to_str().expect("utf8"), "--format", "json"]);
+    assert_eq!(code, 0, "{err}");
+    assert!(!err.contains("panicked"), "{err}");
+    assert!(
+        unknown_reason(&out, "t").contains("a dim of 13835058055282163712 does not fit in an int64"),
+        "{out}"
+    );
+    assert!(
+        unknown_reason(&out, "y").contains("depends on a tensor whose shape is unknown"),
+        "{out}"
+    );
+}
+
 fn external_model(location: &str) -> onnx::ModelProto {
     let t = TensorProto {
         name: "w".into(),
@@ -740,6 +776,20 @@ fn bad_overrides() {
     assert_fails_cleanly(&["inspect", ps, "--dim", "batch=-3"], "not a non-negative integer");
     assert_fails_cleanly(&["inspect", ps, "--input", "x=1x-3"], "not a non-negative integer");
     assert_fails_cleanly(&["inspect", ps, "--input", "nosuch=1x2"], "not an input of the model");
+    // ONNX IR spec: a dim is an int64 (and a Loop's trip count `M`); 2^63 is one past it.
+    // Before, such a size was taken, and a Slice over it panicked.
+    for (option, text) in [
+        ("--dim", "batch=9223372036854775808"),
+        ("--input", "x=1x1x9223372036854775808x5"),
+        ("--loop-trips", "l=9223372036854775808"),
+    ] {
+        assert_fails_cleanly(&["inspect", ps, option, text], "is beyond int64");
+    }
+    assert_eq!(
+        run(&["inspect", ps, "--dim", "n=9223372036854775807"]).0,
+        0,
+        "int64's largest is a size"
+    );
     // A setting repeated with another value would silently lose one of them.
     assert_fails_cleanly(
         &["inspect", ps, "--dim", "n=1", "--dim", "n=2"],

@@ -329,14 +329,15 @@ pub fn gather(data: &ConstValue, indices: &ConstValue, axis: usize) -> Option<Co
         return None;
     }
     let outer = count(&data.dims[..axis])?;
-    let dim = data.dims[axis];
+    let size = data.dims[axis];
+    let dim = i64::try_from(size).ok()?;
     let inner = count(&data.dims[axis + 1..])?;
     let idx: Vec<u64> = indices
         .as_ints()
         .into_iter()
         .map(|i| {
-            let j = if i < 0 { i + dim as i64 } else { i };
-            (0..dim as i64).contains(&j).then_some(j as u64)
+            let j = if i < 0 { i + dim } else { i };
+            (0..dim).contains(&j).then_some(j as u64)
         })
         .collect::<Option<_>>()?;
     let mut dims = data.dims[..axis].to_vec();
@@ -349,7 +350,7 @@ pub fn gather(data: &ConstValue, indices: &ConstValue, axis: usize) -> Option<Co
     for o in 0..outer {
         for &i in &idx {
             for k in 0..inner {
-                flat.push(((o * dim + i) * inner + k) as usize);
+                flat.push(((o * size + i) * inner + k) as usize);
             }
         }
     }

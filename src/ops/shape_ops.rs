@@ -748,7 +748,9 @@ fn slice_ranges(ctx: &Ctx, d: &[Dim]) -> Result<Option<Vec<(usize, AxisSpan)>>, 
             out.push((axis, AxisSpan::Open(open_span(&d[axis], start, end, step))));
             continue;
         };
-        let dim = dim as i64;
+        // Slice's starts and ends are int64: an axis beyond them (a product of hostile
+        // sizes) cannot be sliced as the specification reads.
+        let dim = i64::try_from(dim).map_err(|_| format!("axis {axis} of size {dim} is beyond int64"))?;
         let fix = |v: i64| if v < 0 { v.saturating_add(dim) } else { v };
         let (s, e) = (fix(start), fix(end));
         let (s, e) = if step > 0 {
@@ -991,7 +993,10 @@ pub(super) fn pad(ctx: &Ctx) -> Inferred {
     for (k, &a) in axes.iter().enumerate() {
         let total = pads[k].checked_add(pads[k + axes.len()]).ok_or("pads overflow")?;
         out[a] = match &d[a] {
-            Dim::Known(v) => Dim::Known((*v as i64).saturating_add(total).max(0) as u64),
+            Dim::Known(v) => {
+                let v = i64::try_from(*v).map_err(|_| format!("axis {a} of size {v} is beyond int64"))?;
+                Dim::Known(v.saturating_add(total).max(0) as u64)
+            }
             sym @ Dim::Sym(_) => sym.offset(total),
             Dim::Unknown => Dim::Unknown,
         };

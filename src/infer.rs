@@ -988,7 +988,6 @@ fn seed_body_inputs(
     }
 }
 
-/// Summed (macs, ops) of a graph; None where any node's figure is unknown.
 /// Why an output fact an op's rule gave cannot stand, if it cannot. A shape built from a
 /// constant's values can be as long as the constant, and past the rank limit it would be
 /// copied into every tensor downstream. A dim is an int64 in ONNX (`TensorShapeProto`), and a
@@ -1006,6 +1005,7 @@ fn beyond_limits(f: &Fact) -> Option<String> {
     })
 }
 
+/// Summed (macs, ops) of a graph; None where any node's figure is unknown.
 fn graph_cost(g: &Graph) -> MacsOps {
     let mut macs = Some(0u64);
     let mut ops_ = Some(0u64);

@@ -5,6 +5,8 @@
 //! whole as `split` and other callers of `onnx::load::load` do. Stacks are read
 //! twice: with `--dim batch=1`, and with the batch left symbolic (`… symbolic`), as
 //! `bench/run.sh` reads them with `inspect` and the Python pair.
+//! `-- DIR MODEL --inproc` prints one number instead: the median milliseconds of five rounds
+//! of read + import + inference + report, batch symbolic (see `inproc`).
 
 use std::path::PathBuf;
 use std::time::Instant;
@@ -29,6 +31,14 @@ fn main() {
         .map(PathBuf::from)
         .unwrap_or_else(|| PathBuf::from("bench-models"));
     let only = args.get(1);
+    if std::env::args().any(|a| a == "--inproc") {
+        let Some(name) = only else {
+            eprintln!("--inproc needs a model name");
+            std::process::exit(2);
+        };
+        println!("{:.1}", inproc(&dir.join(format!("{name}.onnx"))));
+        return;
+    }
     println!(
         "{:<22} {:>9} {:>9} {:>9} {:>9} {:>9} {:>9} {:>9} {:>9} {:>12}",
         "model", "load ms", "shared", "import", "infer", "report", "json", "judge", "cut", "cut/10k nodes"
@@ -62,6 +72,26 @@ fn main() {
             print_row(&format!("{name}{suffix}"), t, nodes);
         }
     }
+}
+
+/// What `bench/run.sh` sets against the Python pair's time inside its process: read + import +
+/// inference + report, the median of five rounds as in the stage table, with the batch left
+/// symbolic as the Python pair reads it. One figure per process, so that the script can take
+/// turns with the Python pair's runs instead of timing one side after the other.
+fn inproc(path: &std::path::Path) -> f64 {
+    let symbolic = tilecut::Overrides::default();
+    let mut t = Vec::new();
+    for _ in 0..5 {
+        let s = Instant::now();
+        let loaded = tilecut::onnx::load::load_for_import(path, MapLife::Process).expect("load");
+        let (mut model, mut diags) = tilecut::import::import(&loaded, &symbolic).expect("import");
+        drop(loaded);
+        let unknown = tilecut::infer::infer(&mut model, &mut diags);
+        let report = tilecut::report::inspect::build(&model, &diags, &unknown);
+        t.push(s.elapsed().as_secs_f64() * 1e3);
+        std::hint::black_box(report);
+    }
+    median(t)
 }
 
 fn print_row(name: &str, t: Vec<Vec<f64>>, nodes: usize) {

@@ -696,6 +696,56 @@ pub fn evaluate(text: &str, value: &dyn Fn(&str) -> Option<u64>) -> Result<Optio
 /// six are rare enough to spill.
 pub type DimVec = smallvec::SmallVec<[Dim; 6]>;
 
+/// Most distinct dim lists a thread keeps for sharing; past it the table starts again (the
+/// shapes already made keep their allocations), so that a model of ever new shapes, or a
+/// process reading many models, holds no more than this many.
+const SHARED_DIMS_MAX: usize = 4096;
+
+/// One allocation per distinct dim list made on the calling thread. Each output shape was an
+/// allocation of its own (64 bytes for a rank-3 shape): 75,000 of them, 5.6 MB, on the
+/// 100k-node stack, which has 9 distinct shapes. Shared, a whole `inspect` is 2-3% faster and
+/// peaks 1 MB lower (README, "Twenty-fourth session"). Looked up by content: `Known` by value,
+/// `Sym` by its interned text's address (equal texts share one), so no text is hashed.
+fn shared_dims(dims: &[Dim]) -> std::sync::Arc<[Dim]> {
+    use std::cell::RefCell;
+    use std::hash::Hasher;
+    use std::sync::Arc;
+    thread_local!(static TABLE: RefCell<hashbrown::HashTable<Arc<[Dim]>>> = const { RefCell::new(hashbrown::HashTable::new()) });
+    fn hash(dims: &[Dim]) -> u64 {
+        let mut h = crate::fastmap::FxHasher::default();
+        h.write_usize(dims.len());
+        for d in dims {
+            match d {
+                Dim::Known(v) => {
+                    h.write_u8(0);
+                    h.write_u64(*v);
+                }
+                Dim::Sym(s) => {
+                    h.write_u8(1);
+                    h.write_usize(s.addr());
+                }
+                Dim::Unknown => h.write_u8(2),
+            }
+        }
+        h.finish()
+    }
+    let h = hash(dims);
+    // A thread whose table is gone (its exit under way) or in use makes its own allocation.
+    let found = TABLE.try_with(|t| {
+        let mut t = t.try_borrow_mut().ok()?;
+        if let Some(a) = t.find(h, |a| **a == *dims) {
+            return Some(a.clone());
+        }
+        if t.len() >= SHARED_DIMS_MAX {
+            t.clear();
+        }
+        let a: Arc<[Dim]> = dims.into();
+        t.insert_unique(h, a.clone(), |a| hash(a));
+        Some(a)
+    });
+    found.ok().flatten().unwrap_or_else(|| dims.into())
+}
+
 /// A shape: `None` when even the rank is unknown. A shared slice (16 bytes, not a vector's
 /// 24): every value's fact holds one, shapes are made whole, never grown in place, and most
 /// ops of a model (activations, normalizations, element-wise ops on equal shapes, Q/DQ
@@ -712,10 +762,10 @@ impl Shape {
         Shape(Some(dims.iter().map(|&d| Dim::Known(d)).collect()))
     }
 
-    /// A shape of these dims, in one allocation of its own. Dims gathered on the stack (an
-    /// array, a `DimVec`) cost nothing more; a vector is copied once more and freed.
+    /// A shape of these dims. Equal dims made on one thread share one allocation (see
+    /// `shared_dims`): a 100k-node stack makes 75,000 output shapes of 9 distinct contents.
     pub fn of(dims: impl AsRef<[Dim]>) -> Shape {
-        Shape(Some(dims.as_ref().into()))
+        Shape(Some(shared_dims(dims.as_ref())))
     }
 
     /// Whether two shapes are one allocation (a cheap "equal" for shapes passed on).
@@ -1307,5 +1357,29 @@ mod tests {
                 }
             }
         }
+    }
+
+    /// Shapes of equal dims share an allocation, and shapes stay what they were made of
+    /// whatever the table holds: past its bound it starts again (checked by making more
+    /// distinct lists than it keeps, then the first ones again).
+    #[test]
+    fn equal_dims_share_one_allocation_and_keep_their_contents() {
+        let batch = Dim::sym("batch");
+        let a = Shape::of([batch.clone(), Dim::Known(32), Dim::Known(64)]);
+        let b = Shape::of(vec![Dim::sym("batch"), Dim::Known(32), Dim::Known(64)]);
+        assert!(a.same_alloc(&b));
+        assert_eq!(a, b);
+        // Same dims but a symbol in place of a number, or a different rank: not shared.
+        let c = Shape::of([batch.clone(), Dim::Known(32)]);
+        let d = Shape::of([batch.clone(), Dim::Known(32), Dim::Unknown]);
+        assert!(!a.same_alloc(&c) && !a.same_alloc(&d) && c != d);
+        let many: Vec<Shape> = (0..(SHARED_DIMS_MAX as u64 + 10))
+            .map(|i| Shape::of([Dim::Known(i), Dim::Unknown]))
+            .collect();
+        for (i, s) in many.iter().enumerate() {
+            assert_eq!(s.dims(), Some(&[Dim::Known(i as u64), Dim::Unknown][..]));
+        }
+        let again = Shape::of([Dim::Known(0), Dim::Unknown]);
+        assert_eq!(again, many[0]);
     }
 }

@@ -717,8 +717,10 @@ fn shared_dims(dims: &[Dim]) -> std::sync::Arc<[Dim]> {
         for d in dims {
             match d {
                 Dim::Known(v) => {
+                    // One word, not the byte path `write_u64` takes; a size past a 32-bit
+                    // `usize` hashes its low bits, which equality then tells apart.
                     h.write_u8(0);
-                    h.write_u64(*v);
+                    h.write_usize(*v as usize);
                 }
                 Dim::Sym(s) => {
                     h.write_u8(1);

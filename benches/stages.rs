@@ -75,19 +75,17 @@ fn main() {
 }
 
 /// What `bench/run.sh` sets against the Python pair's time inside its process: read + import +
-/// inference + report, the median of five rounds as in the stage table, with the batch left
-/// symbolic as the Python pair reads it. One figure per process, so that the script can take
-/// turns with the Python pair's runs instead of timing one side after the other.
+/// inference + report as `inspect` runs them (`read_model_with`, the map kept for the
+/// process), the median of five rounds as in the stage table, with the batch left symbolic as
+/// the Python pair reads it. One figure per process, so that the script can take turns with
+/// the Python pair's runs instead of timing one side after the other.
 fn inproc(path: &std::path::Path) -> f64 {
     let symbolic = tilecut::Overrides::default();
     let mut t = Vec::new();
     for _ in 0..5 {
         let s = Instant::now();
-        let loaded = tilecut::onnx::load::load_for_import(path, MapLife::Process).expect("load");
-        let (mut model, mut diags) = tilecut::import::import(&loaded, &symbolic).expect("import");
-        drop(loaded);
-        let unknown = tilecut::infer::infer(&mut model, &mut diags);
-        let report = tilecut::report::inspect::build(&model, &diags, &unknown);
+        let read = tilecut::read_model_with(path, &symbolic, MapLife::Process).expect("read");
+        let report = tilecut::report::inspect::build(&read.model, &read.diags, &read.unknown);
         t.push(s.elapsed().as_secs_f64() * 1e3);
         std::hint::black_box(report);
     }

@@ -6,7 +6,7 @@ use crate::ir::{AttrValue, ConstData, ConstValue, DType, Dim, DimVec, Shape};
 use crate::values;
 
 use super::fold::{self, MAX_FOLD_ELEMENTS};
-use super::util::{broadcast, count, norm_axis, norm_insert_axis, product, tensor};
+use super::util::{broadcast, count, norm_axis, norm_insert_axis, product, signed_size, tensor};
 use super::{CostRule, Ctx, Inferred, OpDef};
 
 use super::fold::INFER_MARK;
@@ -750,7 +750,7 @@ fn slice_ranges(ctx: &Ctx, d: &[Dim]) -> Result<Option<Vec<(usize, AxisSpan)>>, 
         };
         // Slice's starts and ends are int64: an axis beyond them (a product of hostile
         // sizes) cannot be sliced as the specification reads.
-        let dim = i64::try_from(dim).map_err(|_| format!("axis {axis} of size {dim} is beyond int64"))?;
+        let dim = signed_size(axis, dim)?;
         let fix = |v: i64| if v < 0 { v.saturating_add(dim) } else { v };
         let (s, e) = (fix(start), fix(end));
         let (s, e) = if step > 0 {
@@ -993,10 +993,7 @@ pub(super) fn pad(ctx: &Ctx) -> Inferred {
     for (k, &a) in axes.iter().enumerate() {
         let total = pads[k].checked_add(pads[k + axes.len()]).ok_or("pads overflow")?;
         out[a] = match &d[a] {
-            Dim::Known(v) => {
-                let v = i64::try_from(*v).map_err(|_| format!("axis {a} of size {v} is beyond int64"))?;
-                Dim::Known(v.saturating_add(total).max(0) as u64)
-            }
+            Dim::Known(v) => Dim::Known(signed_size(a, *v)?.saturating_add(total).max(0) as u64),
             sym @ Dim::Sym(_) => sym.offset(total),
             Dim::Unknown => Dim::Unknown,
         };

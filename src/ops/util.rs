@@ -209,6 +209,12 @@ pub fn product(dims: &[Dim]) -> Result<Dim, String> {
     Ok(acc)
 }
 
+/// An axis's size as the int64 that Slice's and Pad's signed arithmetic takes (ONNX states
+/// dims as int64): a size past it, a product of hostile sizes, is an error naming the axis.
+pub fn signed_size(axis: usize, size: u64) -> Result<i64, String> {
+    i64::try_from(size).map_err(|_| format!("axis {axis} of size {size} is beyond int64"))
+}
+
 /// Checked product of known sizes.
 pub fn count(dims: &[u64]) -> Option<u64> {
     dims.iter().try_fold(1u64, |a, &d| a.checked_mul(d))

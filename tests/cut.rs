@@ -57,6 +57,7 @@ fn random_costs(rng: &mut Rng, g: &Graph) -> Costs {
             })
             .collect(),
         transfer_ps: g.values.iter().map(|_| rng.next_u64() % 600).collect(),
+        convert_ps: vec![0; g.values.len()],
         bytes: g.values.iter().map(|_| Some(16)).collect(),
         dispatch_ps: 0,
         unknown_work: Vec::new(),

@@ -4,9 +4,11 @@
 //! Assumptions (also in the README): CPU time = max(work ÷ the CPU's rate for the node's
 //! type, bytes read and written ÷ CPU memory bandwidth); accelerator time = work ÷ (all
 //! compute tiles × their per-type rate) for compute ops, bytes ÷ (columns × I/O-tile
-//! bandwidth) for data movement; work = 2 × MACs + other ops; a float op run as bf16 also
-//! pays its float bytes ÷ the conversion rate. Transfer = latency + bytes ÷ host bandwidth +
-//! layout conversion. Weights are loaded once and never counted per inference.
+//! bandwidth) for data movement; work = 2 × MACs + other ops. Transfer = latency + bytes ÷
+//! host bandwidth + layout conversion, plus, for a float tensor when the array runs floats
+//! as bf16, its bytes ÷ the conversion rate: the type changes where a tensor enters or leaves
+//! the array, and tensors stay bf16 from one array op to the next. Weights are loaded once
+//! and never counted per inference.
 
 use crate::ir::{DType, Graph, NodeId, ValueKind};
 use crate::rules::{Candidate, Verdict};
@@ -28,8 +30,13 @@ pub struct Costs {
     pub cpu_ps: Vec<u64>,
     /// None where the node cannot run on the accelerator.
     pub accel_ps: Vec<Option<u64>>,
-    /// Per value: what crossing the CPU/accelerator boundary costs once.
+    /// Per value: what crossing the CPU/accelerator boundary costs once, `convert_ps`
+    /// included.
     pub transfer_ps: Vec<u64>,
+    /// Per value: the part of `transfer_ps` that converts a float tensor to or from bf16
+    /// (zero unless the target runs floats as bf16). A tensor passed between two accelerator
+    /// partitions through system memory stays bf16 and does not pay it.
+    pub convert_ps: Vec<u64>,
     /// Per value: bytes of one instance (None if unknown).
     pub bytes: Vec<Option<u64>>,
     pub dispatch_ps: u64,
@@ -43,19 +50,27 @@ fn node_type(v: &Verdict) -> Option<DType> {
     v.quantized_as.map(|q| q.act).or(v.rate_type)
 }
 
-/// Bytes of one instance of every value; under `--assume-quantized`, float tensors that an
-/// assumed-quantized node writes, reads as weights, or alone consumes take the assumed type's
-/// size (a quantized model would store and move them so).
-pub fn value_bytes(g: &Graph, verdicts: &[Verdict]) -> Vec<Option<u64>> {
+/// Bytes of one instance of every value, and whether it is moved as a float tensor other
+/// than bf16 (so that the array converts it where it enters or leaves); under
+/// `--assume-quantized`, float tensors that an assumed-quantized node writes, reads as
+/// weights, or alone consumes take the assumed type's size and type (a quantized model would
+/// store and move them so).
+pub fn value_bytes(g: &Graph, verdicts: &[Verdict]) -> (Vec<Option<u64>>, Vec<bool>) {
     let mut bytes: Vec<Option<u64>> = g.values.iter().map(|v| v.fact.bytes()).collect();
+    let mut float: Vec<bool> = g
+        .values
+        .iter()
+        .map(|v| crate::infer::is_tensor(&v.fact) && v.fact.dtype.is_some_and(|d| d.is_float() && d != DType::BF16))
+        .collect();
     if verdicts.iter().all(|v| v.quantized_as.is_none()) {
-        return bytes;
+        return (bytes, float);
     }
-    let resize = |bytes: &mut Vec<Option<u64>>, v: crate::ir::ValueId, to: DType| {
+    let mut resize = |bytes: &mut Vec<Option<u64>>, v: crate::ir::ValueId, to: DType| {
         let val = g.value(v);
         // A sequence keeps its elements' sizes: its own shape is not a tensor's.
         if crate::infer::is_tensor(&val.fact) && val.fact.dtype.is_some_and(DType::is_float) {
             bytes[v.index()] = val.fact.shape.element_count().and_then(|n| to.bytes_for(n));
+            float[v.index()] = to.is_float() && to != DType::BF16;
         }
     };
     for (i, n) in g.nodes.iter().enumerate() {
@@ -78,7 +93,7 @@ pub fn value_bytes(g: &Graph, verdicts: &[Verdict]) -> Vec<Option<u64>> {
             }
         }
     }
-    bytes
+    (bytes, float)
 }
 
 /// Bytes of the weights (initializers and constants) `nodes` read, each counted once.
@@ -99,13 +114,26 @@ pub fn weight_bytes(g: &Graph, costs: &Costs, nodes: &[NodeId]) -> u64 {
 
 pub fn costs(g: &Graph, verdicts: &[Verdict], target: &Target) -> Costs {
     let f = &target.file;
-    let bytes = value_bytes(g, verdicts);
+    let (bytes, float) = value_bytes(g, verdicts);
+    let convert_ps: Vec<u64> = bytes
+        .iter()
+        .zip(&float)
+        .map(|(b, &is_float)| {
+            if is_float && target.floats_as_bf16() {
+                ps(b.unwrap_or(0) as f64 / f.float.conversion_bytes_per_s)
+            } else {
+                0
+            }
+        })
+        .collect();
     let transfer_ps: Vec<u64> = bytes
         .iter()
-        .map(|b| {
+        .zip(&convert_ps)
+        .map(|(b, &convert)| {
             ps(f.host.transfer_latency_s
                 + b.unwrap_or(0) as f64 / f.host.bandwidth_bytes_per_s
                 + f.host.layout_conversion_s)
+            .saturating_add(convert)
         })
         .collect();
     let mut cpu_ps = Vec::with_capacity(g.nodes.len());
@@ -157,11 +185,7 @@ pub fn costs(g: &Graph, verdicts: &[Verdict], target: &Target) -> Costs {
                         .unwrap_or(1.0)
                         * 2.0
                         * target.compute_tiles() as f64;
-                    let mut t = work / rate;
-                    if is_float && target.floats_as_bf16() {
-                        t += moved as f64 / f.float.conversion_bytes_per_s;
-                    }
-                    Some(ps(t))
+                    Some(ps(work / rate))
                 }
             }
         };
@@ -171,6 +195,7 @@ pub fn costs(g: &Graph, verdicts: &[Verdict], target: &Target) -> Costs {
         cpu_ps,
         accel_ps,
         transfer_ps,
+        convert_ps,
         bytes,
         dispatch_ps: ps(f.host.dispatch_overhead_s),
         unknown_work,

@@ -376,7 +376,10 @@ pub fn cut_points(g: &Graph, costs: &Costs, side: &[Side], partition_of: &[Optio
                     from_partition: pp,
                     to_partitions: other,
                     direction: Direction::AccelToAccel,
-                    cost_ps: costs.transfer_ps[vi].saturating_mul(2),
+                    // It stays bf16 in system memory: no conversion either way.
+                    cost_ps: costs.transfer_ps[vi]
+                        .saturating_sub(costs.convert_ps[vi])
+                        .saturating_mul(2),
                 });
             }
         }

@@ -630,6 +630,46 @@ fn a_dim_beyond_int64_is_reported_not_carried() {
     );
 }
 
+/// ONNX operator specification, Slice: `steps` are int64, any but 0, and an axis yields
+/// ceil((end - start) / step) elements after clamping (numpy's `a[1:5:2**63-1]` and
+/// `a[-1:-2**63:-2**63]` each take one). A step at int64's extremes overflowed the size
+/// arithmetic and the constant folding's index walk; found by structural fuzzing (seed 3501,
+/// a mutated rotary-embedding conformance model). Run under `cargo test`, whose overflow
+/// checks are what showed it. The `onnx` package's reference evaluator gives this model's
+/// outputs the same shapes, [1, 1] and [8] (run by hand).
+#[test]
+fn slice_steps_at_int64_extremes_take_one_element() {
+    let d = tmp();
+    let m = model(
+        vec![
+            node("Slice", &["x", "s1", "e1", "a1", "max"], &["y"]),
+            node("Slice", &["c", "s2", "e2", "a0", "min"], &["k"]),
+            node("Reshape", &["x", "k"], &["r"]),
+        ],
+        vec![vi("x", 1, &[Dm::N(1), Dm::N(8)])],
+        untyped(&["y", "r"]),
+        vec![
+            i64_init("s1", &[1], &[1]),
+            i64_init("e1", &[1], &[5]),
+            i64_init("a1", &[1], &[1]),
+            i64_init("max", &[1], &[i64::MAX]),
+            // The constant [1, 8, 8, 8, 8, 8, 8, 8] sliced backwards from its last element.
+            i64_init("c", &[8], &[1, 8, 8, 8, 8, 8, 8, 8]),
+            i64_init("s2", &[1], &[-1]),
+            i64_init("e2", &[1], &[i64::MIN]),
+            i64_init("a0", &[1], &[0]),
+            i64_init("min", &[1], &[i64::MIN]),
+        ],
+    );
+    let p = write(d.path(), "slice_extreme_steps.onnx", &m);
+    let (code, out, err) = run(&["inspect", p.to_str().expect("utf8"), "--format", "json"]);
+    assert_eq!(code, 0, "{err}");
+    let v: serde_json::Value = serde_json::from_str(&out).expect("json");
+    assert_eq!(v["outputs"][0]["shape"], serde_json::json!([1, 1]));
+    // The folded [8] reshapes x's 8 elements into one axis.
+    assert_eq!(v["outputs"][1]["shape"], serde_json::json!([8]));
+}
+
 fn external_model(location: &str) -> onnx::ModelProto {
     let t = TensorProto {
         name: "w".into(),

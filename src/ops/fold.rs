@@ -365,7 +365,11 @@ pub fn slice(data: &ConstValue, ranges: &[(usize, i64, i64, i64)]) -> Option<Con
         let mut i = start;
         while (step > 0 && i < end) || (step < 0 && i > end) {
             v.push(i as u64);
-            i += step;
+            // A step near int64's extremes walks past the bounds in one stride.
+            match i.checked_add(step) {
+                Some(next) => i = next,
+                None => break,
+            }
         }
         keep[axis] = v;
     }

@@ -871,13 +871,10 @@ fn slice(ctx: &Ctx) -> Inferred {
     for (axis, r) in ranges {
         out[axis] = match r {
             AxisSpan::Clamped(s, e, step) => {
-                let (span, st) = if step > 0 {
-                    ((e - s).max(0), step)
-                } else {
-                    ((s - e).max(0), -step)
-                };
-                let n = (span + st - 1) / st;
-                Dim::Known(n as u64)
+                // Both bounds are clamped into [-1, dim], so the span fits an int64; the step
+                // is any nonzero int64, i64::MIN included, so it is divided as unsigned.
+                let span = if step > 0 { e - s } else { s - e }.max(0);
+                Dim::Known(span.unsigned_abs().div_ceil(step.unsigned_abs()))
             }
             AxisSpan::Open(dim) => dim,
         };

@@ -594,6 +594,12 @@ fn report_files_never_overwrite_the_model() {
     assert_eq!(n, 1, "nothing but the model in the folder");
 }
 
+/// `analyze --target wide-array --format json` of a model built here, with `extra` settings.
+fn on_wide_array(model: &Path, extra: &[&str]) -> serde_json::Value {
+    let m = model.to_str().expect("utf8");
+    json(&[&["analyze", m, "--target", "wide-array", "--format", "json"], extra].concat())
+}
+
 /// A float model on a target that runs floats as bf16 (wide-array's `[float] mode = "bf16"`):
 /// a float tensor changes type where it enters or leaves the array, once, and tensors stay
 /// bf16 from one array op to the next (README, "Cost model"). Built here: the hard-swish
@@ -632,15 +638,7 @@ fn float_tensors_convert_where_they_cross_the_array_boundary_not_at_every_op() {
             f32_init("six", &[]),
         ],
     );
-    let p = write(d.path(), "swish.onnx", &swish);
-    let r = json(&[
-        "analyze",
-        p.to_str().expect("utf8"),
-        "--target",
-        "wide-array",
-        "--format",
-        "json",
-    ]);
+    let r = on_wide_array(&write(d.path(), "swish.onnx", &swish), &[]);
     let nodes = r["nodes"].as_array().expect("nodes");
     assert!(nodes.iter().all(|n| n["placement"] == "accel"), "{nodes:#?}");
     assert_eq!(r["summary"]["accel_partitions"], 1);
@@ -664,21 +662,8 @@ fn float_tensors_convert_where_they_cross_the_array_boundary_not_at_every_op() {
         vec![x("y")],
         vec![f32_init("w1", &[64, 64, 1, 1]), f32_init("w2", &[64, 64, 1, 1])],
     );
-    let p = write(d.path(), "split.onnx", &split);
-    let r = json(&[
-        "analyze",
-        p.to_str().expect("utf8"),
-        "--target",
-        "wide-array",
-        "--format",
-        "json",
-        "--pin-cpu",
-        "Relu",
-        "--pin-accel",
-        "Conv",
-        "--pin-accel",
-        "Add",
-    ]);
+    let pins = ["--pin-cpu", "Relu", "--pin-accel", "Conv", "--pin-accel", "Add"];
+    let r = on_wide_array(&write(d.path(), "split.onnx", &split), &pins);
     let cost = |tensor: &str, direction: &str| {
         let c = r["cut_points"]
             .as_array()
@@ -711,15 +696,7 @@ fn a_partition_of_more_stages_than_tiles_takes_its_node_times_in_turns() {
         .collect();
     let inits = weights.iter().map(|w| f32_init(w, &[64, 64, 1, 1])).collect();
     let chain = model(nodes, vec![x("t0")], vec![x("t40")], inits);
-    let p = write(d.path(), "chain.onnx", &chain);
-    let r = json(&[
-        "analyze",
-        p.to_str().expect("utf8"),
-        "--target",
-        "wide-array",
-        "--format",
-        "json",
-    ]);
+    let r = on_wide_array(&write(d.path(), "chain.onnx", &chain), &[]);
     assert_eq!(r["summary"]["accel_partitions"], 1);
     assert_eq!(r["summary"]["resident"], true);
     let part = r["partitions"]
